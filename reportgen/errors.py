@@ -1,0 +1,50 @@
+"""Exceptions and warnings raised by reportgen.
+
+Hierarchy::
+
+    ReportgenError                 base class; the CLI turns it into exit code 2
+    ├── SpecError                  the YAML spec is malformed or invalid (names the YAML path)
+    ├── DataError                  a data file cannot be read or fails a blocking check
+    ├── EstimationError            the data cannot support the requested estimate
+    └── OutputError                the run directory cannot be written
+
+    RecordError(ReportgenError)    a run directory's record is missing or damaged
+
+    DegenerateDataWarning(UserWarning)
+                                   the fit went through but something was floored, dropped
+                                   or extrapolated; the report lists every such warning
+
+The numerical core (``reportgen.fpca``) raises only ``EstimationError`` and never warns
+through :mod:`warnings`: it returns its warnings as strings on the result so that the
+report can show them and the tests can assert them.
+"""
+
+from __future__ import annotations
+
+
+class ReportgenError(Exception):
+    """Base class of every error that reportgen raises on purpose."""
+
+
+class SpecError(ReportgenError):
+    """The spec is not valid; the message names the YAML path, what is allowed and the value."""
+
+
+class DataError(ReportgenError):
+    """A data file cannot be read, or a blocking data check failed (names file, column, row)."""
+
+
+class EstimationError(ReportgenError):
+    """The data cannot support an estimate (the message quotes the numbers involved)."""
+
+
+class OutputError(ReportgenError):
+    """The run directory could not be written (disk full, read-only folder, ...)."""
+
+
+class RecordError(ReportgenError):
+    """A run directory's record.json is missing, unreadable or structurally damaged."""
+
+
+class DegenerateDataWarning(UserWarning):
+    """The fit went through with a floor, a dropped eigenvalue or an extrapolated region."""

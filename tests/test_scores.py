@@ -1,0 +1,48 @@
+"""Conditional expectation against joint-Gaussian conditioning computed independently."""
+
+from __future__ import annotations
+
+import numpy as np
+import scipy.linalg
+
+from reportgen.fpca.scores import conditional_scores
+
+
+def _reference(
+    phi: np.ndarray, lam: np.ndarray, sigma2: float, r: np.ndarray
+) -> tuple[np.ndarray, np.ndarray]:
+    # Reference: for jointly Gaussian (xi, Y) with Cov(xi) = L, Cov(Y) = S = P L P' + s2 I,
+    # Cov(xi, Y) = L P', E[xi | Y] = L P' S^-1 (Y - mu) and
+    # Cov(xi | Y) = L - L P' S^-1 P L (standard conditioning formulas; computed here with
+    # scipy.linalg.solve on the n x n system, independently of the K x K Woodbury form).
+    big_l = np.diag(lam)
+    s = phi @ big_l @ phi.T + sigma2 * np.eye(phi.shape[0])
+    gain = scipy.linalg.solve(s, phi @ big_l, assume_a="pos").T
+    return gain @ r, big_l - gain @ phi @ big_l
+
+
+def test_scores_equal_gaussian_conditioning() -> None:
+    rng = np.random.default_rng(11)
+    lam = np.array([3.0, 1.2, 0.4])
+    sigma2 = 0.3
+    sizes = np.array([1, 2, 5, 1, 9, 3])
+    starts = np.concatenate(([0], np.cumsum(sizes)[:-1]))
+    n = sizes.sum()
+    t = rng.uniform(0, 1, n)
+    legendre2 = np.sqrt(5) * (6 * t**2 - 6 * t + 1)
+    phi = np.column_stack([np.ones(n), np.sqrt(3) * (2 * t - 1), legendre2])
+    r = rng.normal(size=n)
+    scores, cov = conditional_scores(starts, r, phi, lam, sigma2)
+    for i, (s0, m) in enumerate(zip(starts, sizes, strict=True)):
+        ref_xi, ref_cov = _reference(phi[s0:s0 + m], lam, sigma2, r[s0:s0 + m])
+        np.testing.assert_allclose(scores[i], ref_xi, rtol=1e-10, atol=1e-12)
+        np.testing.assert_allclose(cov[i], ref_cov, rtol=1e-10, atol=1e-12)
+
+
+def test_one_reading_is_enough() -> None:
+    # One reading shrinks the score towards 0 by lambda phi^2 / (lambda phi^2 + sigma2).
+    scores, cov = conditional_scores(
+        np.array([0]), np.array([2.0]), np.array([[0.5]]), np.array([4.0]), 1.0
+    )
+    assert scores[0, 0] == 4.0 * 0.5 * 2.0 / (4.0 * 0.25 + 1.0)
+    assert cov[0, 0, 0] == 4.0 - 16.0 * 0.25 / 2.0
