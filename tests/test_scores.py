@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import numpy as np
+import pytest
 import scipy.linalg
 
 from reportgen.fpca.scores import conditional_scores
@@ -46,3 +47,37 @@ def test_one_reading_is_enough() -> None:
     )
     assert scores[0, 0] == 4.0 * 0.5 * 2.0 / (4.0 * 0.25 + 1.0)
     assert cov[0, 0, 0] == 4.0 - 16.0 * 0.25 / 2.0
+
+
+def test_criteria_equal_direct_gaussian_likelihood_and_loo() -> None:
+    # Reference: scipy.stats.multivariate_normal.logpdf of each subject's readings under
+    # N(mu_i, Phi_i L Phi_i' + s2 I), and leave-one-out conditional means computed by
+    # solving the (n-1) x (n-1) system directly (standard Gaussian conditioning).
+    from scipy.stats import multivariate_normal
+
+    from reportgen.fpca.design import Sample
+    from reportgen.fpca.scores import component_criteria
+
+    rng = np.random.default_rng(2)
+    sizes = np.array([1, 3, 4, 2, 6])
+    subject = np.repeat(np.arange(sizes.size), sizes)
+    t = rng.uniform(0, 1, subject.size)
+    grid = np.linspace(0, 1, 201)
+    funcs = np.column_stack([np.ones(201), np.sqrt(3) * (2 * grid - 1)])
+    lam, s2 = np.array([2.0, 0.5]), 0.4
+    r = rng.normal(size=subject.size)
+    sample = Sample.from_arrays(subject, t, r)
+    loglik, loo = component_criteria(sample, np.arange(sizes.size), r, grid, funcs, lam, s2)
+    for k in (1, 2):
+        phi = np.column_stack([np.ones_like(t), np.sqrt(3) * (2 * t - 1)])[:, :k]
+        ref_ll, errs = 0.0, []
+        for i in range(sizes.size):
+            sel = subject == i
+            cov = phi[sel] @ np.diag(lam[:k]) @ phi[sel].T + s2 * np.eye(sel.sum())
+            ref_ll += multivariate_normal(np.zeros(sel.sum()), cov).logpdf(r[sel])
+            for j in range(sel.sum()) if sel.sum() > 1 else []:
+                o = np.arange(sel.sum()) != j
+                pred = cov[j, o] @ np.linalg.solve(cov[np.ix_(o, o)], r[sel][o])
+                errs.append((r[sel][j] - pred) ** 2)
+        assert loglik[k - 1] == pytest.approx(ref_ll, rel=1e-9)
+        assert loo[k - 1] == pytest.approx(np.mean(errs), rel=1e-9)

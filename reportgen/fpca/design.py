@@ -135,7 +135,8 @@ class PairStats:
 
 
 def pair_stats(
-    sample: Sample, resid: FloatArray, grid: BinGrid, folds: IntArray, n_folds: int
+    sample: Sample, resid: FloatArray, grid: BinGrid, folds: IntArray, n_folds: int,
+    located: tuple[IntArray, FloatArray] | None = None,
 ) -> PairStats:
     """Bin all within-subject pairs of residuals without forming the pairs.
 
@@ -143,10 +144,11 @@ def pair_stats(
     vector of linear-binning weights of time ``t``, the binned sums over pairs j != l are
     ``sum_i u_i u_i^T - sum_ij r_ij^2 b b^T`` and the pair counts are
     ``sum_i v_i v_i^T - sum_ij b b^T``. The first terms are one matrix product per block
-    of subjects; the second are bincounts over readings.
+    of subjects and fold (rows of a block are ordered by fold, so each fold is a slice);
+    the second are bincounts over readings.
     """
     g = grid.n_bins
-    left, frac = grid.locate(sample.t)
+    left, frac = grid.locate(sample.t) if located is None else located
     wl = 1.0 - frac
     obs_fold = folds[sample.subject]
     r2 = resid * resid
@@ -157,47 +159,54 @@ def pair_stats(
     for b0 in range(0, sample.n_subjects, _BLOCK):
         b1 = min(b0 + _BLOCK, sample.n_subjects)
         o0, o1 = starts[b0], starts[b1]
-        row = (sample.subject[o0:o1] - b0) * g + left[o0:o1]
-        size = (b1 - b0) * g
-        u = (np.bincount(row, wl[o0:o1] * resid[o0:o1], size)
-             + np.bincount(row + 1, frac[o0:o1] * resid[o0:o1], size)).reshape(-1, g)
-        v = (np.bincount(row, wl[o0:o1], size)
-             + np.bincount(row + 1, frac[o0:o1], size)).reshape(-1, g)
         block_folds = folds[b0:b1]
+        order = np.argsort(block_folds, kind="stable")
+        rank = np.empty_like(order)
+        rank[order] = np.arange(order.size)
+        bounds = np.searchsorted(block_folds[order], np.arange(n_folds + 1))
+        row = rank[sample.subject[o0:o1] - b0] * g + left[o0:o1]
+        index = np.concatenate((row, row + 1))
+        size = (b1 - b0) * g
+        w = np.concatenate((wl[o0:o1], frac[o0:o1]))
+        v = np.bincount(index, w, size).reshape(-1, g)
+        u = np.bincount(index, w * np.tile(resid[o0:o1], 2), size).reshape(-1, g)
         for f in range(n_folds):
-            mask = block_folds == f
-            uf, vf = u[mask], v[mask]
+            uf, vf = u[bounds[f]:bounds[f + 1]], v[bounds[f]:bounds[f + 1]]
             sums[f] += uf.T @ uf
             counts[f] += vf.T @ vf
     cross = sums.sum(axis=0)  # u_i u_i^T summed, diagonal terms included
 
     # Diagonal terms b b^T of each reading: (i,i) wl^2, (i+1,i+1) f^2, (i,i+1) and (i+1,i) wl f.
-    base = obs_fold * (g * g) + left * g + left
-    size = n_folds * g * g
+    index = obs_fold * g + left
+    size = n_folds * g
+    a, b, c = wl * wl, frac * frac, wl * frac
+    rows, cols = np.arange(g - 1), np.arange(1, g)
 
-    def outer_terms(weight: FloatArray) -> FloatArray:
-        m = (np.bincount(base, weight * wl * wl, size)
-             + np.bincount(base + g + 1, weight * frac * frac, size))
-        off = np.bincount(base + 1, weight * wl * frac, size)
-        m = m + off + np.bincount(base + g, weight * wl * frac, size)
-        return m.reshape(n_folds, g, g)
+    def outer_terms(weight: FloatArray | None) -> FloatArray:
+        out = np.zeros((n_folds, g, g))
+        ta, tb, tc = ((np.bincount(index, x if weight is None else weight * x, size)
+                       .reshape(n_folds, g)) for x in (a, b, c))
+        out[:, rows, rows] += ta[:, :-1]
+        out[:, cols, cols] += tb[:, :-1]
+        out[:, rows, cols] += tc[:, :-1]
+        out[:, cols, rows] += tc[:, :-1]
+        return out
 
-    diag_sums_2d = outer_terms(r2)
-    diag_counts_2d = outer_terms(np.ones_like(r2))
-    sums -= diag_sums_2d
-    counts -= diag_counts_2d
+    sums -= outer_terms(r2)
+    counts -= outer_terms(None)
 
     # Sum of squared raw covariances over pairs j != l: (sum_j r^2)^2 - sum_j r^4 per subject.
-    per_subject_r2 = np.add.reduceat(r2, sample.starts) if sample.subject.size else r2
-    per_subject_r4 = np.add.reduceat(r2 * r2, sample.starts) if sample.subject.size else r2
-    subj_sumsq = per_subject_r2 ** 2 - per_subject_r4
-    sumsq = np.bincount(folds, subj_sumsq, n_folds)
+    per_subject_r2 = np.add.reduceat(r2, sample.starts)
+    per_subject_r4 = np.add.reduceat(r2 * r2, sample.starts)
+    sumsq = np.bincount(folds, per_subject_r2**2 - per_subject_r4, n_folds)
     n_pairs = np.bincount(folds, (sample.n_obs * (sample.n_obs - 1)).astype(np.float64), n_folds)
     offdiag = BinnedStats(counts, sums, sumsq, n_pairs)
 
-    dcounts, dsums = bin_1d(grid, sample.t, r2, obs_fold, n_folds)
+    dcounts = (np.bincount(index, wl, size) + np.bincount(index + 1, frac, size))
+    dsums = (np.bincount(index, wl * r2, size) + np.bincount(index + 1, frac * r2, size))
     diag = BinnedStats(
-        dcounts, dsums, np.bincount(obs_fold, r2 * r2, n_folds),
+        dcounts.reshape(n_folds, g), dsums.reshape(n_folds, g),
+        np.bincount(obs_fold, r2 * r2, n_folds),
         np.bincount(obs_fold, minlength=n_folds).astype(np.float64),
     )
     return PairStats(offdiag, diag, cross)

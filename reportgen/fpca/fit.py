@@ -72,7 +72,7 @@ class FPCAOptions:
     fve_threshold: float = 0.95
     n_components: int | None = None
     max_components: int = 8
-    criteria_max_subjects: int = 20000
+    criteria_max_subjects: int = 10000
     error_variance_floor: float = 1e-3
     band_level: float = 0.95
     seed: int = 0
@@ -415,7 +415,7 @@ def fit_arrays(
         mbins.centers, mbins.centers, total.counts[0], total.sums[0], mean_choice.value, kernel
     )
     mean = np.interp(grid, mbins.centers, fine)
-    resid = sample.y - np.interp(sample.t, mbins.centers, fine)
+    resid = sample.y - mbins.interpolate(fine, mbins.locate(sample.t))
 
     # 2. covariance
     cbins = BinGrid(lo, hi, options.covariance_bins)
@@ -445,7 +445,8 @@ def fit_arrays(
     values, funcs = eig.values[:k], eig.functions[:, :k]
 
     # 6. scores
-    phi_obs = evaluate_at(sample.t, grid, funcs)
+    out_grid = BinGrid(lo, hi, options.n_grid)  # the output grid is regular too
+    phi_obs = out_grid.interpolate(funcs, out_grid.locate(sample.t))
     scores, score_cov = conditional_scores(sample.starts, resid, phi_obs, values, sigma2)
     fve = eig.values / eig.values.sum()
     return FPCAFit(

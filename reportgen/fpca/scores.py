@@ -19,7 +19,6 @@ outer products summed by subject. It needs no more than one reading per subject.
 from __future__ import annotations
 
 import numpy as np
-from numpy.typing import NDArray
 
 from .components import evaluate_at
 from .design import IntArray, Sample
@@ -52,14 +51,28 @@ def conditional_scores(
     scores : ndarray of shape (n_subjects, K)
     error_cov : ndarray of shape (n_subjects, K, K)
     """
-    n_subj, k = starts.size, eigenvalues.size
+    gram, cross = _subject_sums(starts, resid, phi_obs)
+    precision = gram / sigma2 + np.diag(1.0 / eigenvalues)
+    error_cov = np.linalg.inv(precision)
+    scores = np.einsum("ijk,ik->ij", error_cov, cross / sigma2)
+    return scores, error_cov
+
+
+def _subject_sums(
+    starts: IntArray, resid: FloatArray, phi_obs: FloatArray
+) -> tuple[FloatArray, FloatArray]:
+    """Per subject: Phi_i' Phi_i, shape (n, K, K), and Phi_i' r_i, shape (n, K).
+
+    Sums of per-reading outer products by subject (``np.add.reduceat``), in chunks of about
+    ``_CHUNK`` readings so that memory stays at chunk x K x K doubles.
+    """
+    n_subj, k = starts.size, phi_obs.shape[1]
     n_obs = resid.size
     gram = np.empty((n_subj, k, k))
     cross = np.empty((n_subj, k))
     ends = np.append(starts[1:], n_obs)
     s0 = 0
     while s0 < n_subj:
-        # Take subjects until the chunk holds about _CHUNK readings (at least one subject).
         s1 = int(np.searchsorted(starts, starts[s0] + _CHUNK, side="right"))
         s1 = min(max(s1, s0 + 1), n_subj)
         o0, o1 = starts[s0], ends[s1 - 1]
@@ -68,20 +81,7 @@ def conditional_scores(
         gram[s0:s1] = np.add.reduceat(p[:, :, None] * p[:, None, :], local, axis=0)
         cross[s0:s1] = np.add.reduceat(p * resid[o0:o1, None], local, axis=0)
         s0 = s1
-    precision = gram / sigma2 + np.diag(1.0 / eigenvalues)
-    error_cov = np.linalg.inv(precision)
-    scores = np.einsum("ijk,ik->ij", error_cov, cross / sigma2)
-    return scores, error_cov
-
-
-def _size_groups(sample: Sample, subjects: IntArray) -> list[NDArray[np.intp]]:
-    """Reading indices of ``subjects`` grouped by readings per subject: (count, n) each."""
-    n = sample.n_obs[subjects]
-    groups = []
-    for size in np.unique(n):
-        chosen = subjects[n == size]
-        groups.append(sample.starts[chosen][:, None] + np.arange(size)[None, :])
-    return groups
+    return gram, cross
 
 
 def component_criteria(
@@ -90,37 +90,48 @@ def component_criteria(
 ) -> tuple[FloatArray, FloatArray]:
     """Marginal Gaussian log-likelihood and leave-one-reading-out error for K = 1 .. K_max.
 
-    For each K the readings of subject i are N(mu_i, Sigma_i(K)); the log-likelihood is
-    summed over ``subjects``. The predictive criterion is the mean over readings (of
-    subjects with two or more) of ``(y_ij - E[y_ij | y_i,-j])^2``, which for a Gaussian
-    vector equals ``((Sigma^-1 r)_j / (Sigma^-1)_jj)^2`` (a standard identity for
-    leave-one-out in Gaussian models; common practice, no source).
+    For each K the readings of subject i are N(mu_i, Sigma_i(K)) with
+    ``Sigma_i = Phi_i Lambda Phi_i' + sigma^2 I``. By the Woodbury identity and the matrix
+    determinant lemma, with ``A = Lambda^-1 + Phi_i' Phi_i / sigma^2`` (K x K)::
+
+        Sigma^-1 = I / s2 - Phi A^-1 Phi' / s2^2
+        log det Sigma = n log s2 + log det Lambda + log det A
+
+    so every K needs only the leading K x K blocks of the per-subject sums that the
+    scores use. The predictive criterion is the mean over readings (of subjects with two
+    or more) of ``(y_ij - E[y_ij | y_i,-j])^2 = ((Sigma^-1 r)_j / (Sigma^-1)_jj)^2``
+    (leave-one-out identity for a Gaussian vector; common practice, no source).
 
     Returns
     -------
     loglik, loo_mse : ndarray of shape (K_max,)
     """
     k_max = eigenvalues.size
+    n_i = sample.n_obs[subjects]
+    owner = np.repeat(np.arange(subjects.size), n_i)  # subject row of each used reading
+    first = np.concatenate(([0], np.cumsum(n_i)[:-1])).astype(np.intp)
+    idx = sample.starts[subjects][owner] + (np.arange(owner.size) - first[owner])
+    r = resid[idx]
+    phi = evaluate_at(sample.t[idx], grid, eigenfunctions)
+    gram, cross = _subject_sums(first, r, phi)
+    rr = np.bincount(owner, r * r, subjects.size)
+    multi = n_i[owner] >= 2
     loglik = np.zeros(k_max)
-    sq_err = np.zeros(k_max)
-    n_err = 0
-    for idx in _size_groups(sample, subjects):
-        r = resid[idx]  # (c, n)
-        p = evaluate_at(sample.t[idx].ravel(), grid, eigenfunctions).reshape(*idx.shape, -1)
-        size = idx.shape[1]
-        eye = np.eye(size) * sigma2
-        if size >= 2:
-            n_err += r.size
-        for k in range(1, k_max + 1):
-            pk = p[:, :, :k]
-            sigma = (pk * eigenvalues[:k]) @ np.swapaxes(pk, 1, 2) + eye
-            _, logdet = np.linalg.slogdet(sigma)  # sigma is positive definite
-            inv = np.linalg.inv(sigma)
-            a = np.einsum("cij,cj->ci", inv, r)
-            quad = np.einsum("ci,ci->c", r, a)
-            loglik[k - 1] += -0.5 * float(np.sum(size * np.log(2 * np.pi) + logdet + quad))
-            if size >= 2:
-                diag = np.diagonal(inv, axis1=1, axis2=2)
-                sq_err[k - 1] += float(np.sum((a / diag) ** 2))
-    loo = sq_err / n_err if n_err else np.full(k_max, np.nan)
+    loo = np.full(k_max, np.nan)
+    s2 = sigma2
+    for k in range(1, k_max + 1):
+        lam = eigenvalues[:k]
+        a_inv = np.linalg.inv(gram[:, :k, :k] / s2 + np.diag(1.0 / lam))
+        _, logdet_a_inv = np.linalg.slogdet(a_inv)
+        c = cross[:, :k]
+        a_c = np.einsum("nij,nj->ni", a_inv, c)  # A^-1 Phi' r per subject
+        quad = rr / s2 - np.sum(c * a_c, axis=1) / s2**2
+        logdet = n_i * np.log(s2) + np.sum(np.log(lam)) - logdet_a_inv
+        loglik[k - 1] = -0.5 * float(np.sum(n_i * np.log(2 * np.pi) + logdet + quad))
+        if np.any(multi):
+            pk, own = phi[multi, :k], owner[multi]
+            sinv_r = r[multi] / s2 - np.sum(pk * a_c[own], axis=1) / s2**2
+            pa = np.matmul(pk[:, None, :], a_inv[own])[:, 0, :]
+            sinv_diag = 1.0 / s2 - np.sum(pa * pk, axis=1) / s2**2
+            loo[k - 1] = float(np.mean((sinv_r / sinv_diag) ** 2))
     return loglik, loo
