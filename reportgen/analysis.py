@@ -1,0 +1,153 @@
+"""Fit, sensitivity runs, diagnostics and caveats -> one frozen :class:`AnalysisResult`.
+
+No files and no printing: the runner writes, the renderer reads.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+from scipy import stats as sps
+
+from .data import Dataset
+from .errors import EstimationError
+from .fpca import FPCAFit, fit_arrays, with_bandwidths
+from .fpca.components import trapezoid_weights
+from .fpca.frame import arrays_from_frame
+from .spec import Spec
+
+Progress = Callable[[str], None]
+
+
+@dataclass(frozen=True)
+class SensitivityRun:
+    factor: float
+    mean_bandwidth: float
+    covariance_bandwidth: float
+    fit: FPCAFit | None
+    similarity: tuple[float, ...]  # |<phi_k main, phi_k run>| for k = 1..K of the main fit
+    error: str = ""
+
+
+@dataclass(frozen=True)
+class AnalysisResult:
+    spec: Spec
+    dataset: Dataset
+    fit: FPCAFit
+    sensitivity: tuple[SensitivityRun, ...]
+    residuals: pd.DataFrame  # subject, time, value, fitted, residual, standardized
+    outliers: pd.DataFrame  # subject, distance, flagged
+    shown_subjects: tuple[str, ...]
+    caveats: tuple[str, ...]
+    stable: tuple[bool, ...]  # per component, by the sensitivity threshold
+
+
+def _similarity(grid: np.ndarray, a: np.ndarray, b: np.ndarray) -> float:
+    return float(abs(trapezoid_weights(grid) @ (a * b)))
+
+
+def _sensitivity(spec: Spec, codes: np.ndarray, t: np.ndarray, y: np.ndarray,
+                 labels: np.ndarray, fit: FPCAFit, progress: Progress) -> list[SensitivityRun]:
+    runs = []
+    for factor in spec.sensitivity["factors"]:
+        hm, hc = factor * fit.mean_bandwidth, factor * fit.covariance_bandwidth
+        progress(f"sensitivity: bandwidths x {factor:g}")
+        try:
+            other = fit_arrays(codes, t, y, labels, with_bandwidths(fit.options, hm, hc))
+        except EstimationError as e:
+            runs.append(SensitivityRun(factor, hm, hc, None, (), str(e)))
+            continue
+        sims = tuple(
+            _similarity(fit.grid, fit.eigenfunctions[:, k], other.eigenfunctions[:, k])
+            if k < other.n_components else float("nan")
+            for k in range(fit.n_components)
+        )
+        runs.append(SensitivityRun(factor, hm, hc, other, sims))
+    return runs
+
+
+def _residuals(fit: FPCAFit, frame: pd.DataFrame) -> pd.DataFrame:
+    rows = pd.Index(fit.subjects).get_indexer(frame.subject)
+    t = frame.time.to_numpy()
+    phi = fit.eigenfunctions_at(t)
+    fitted = fit.mean_at(t) + np.einsum("nk,nk->n", phi, fit.score_values[rows])
+    resid = frame.value.to_numpy() - fitted
+    return pd.DataFrame({"subject": frame.subject.to_numpy(), "time": t,
+                         "value": frame.value.to_numpy(), "fitted": fitted, "residual": resid,
+                         "standardized": resid / np.sqrt(fit.error_variance)})
+
+
+def _outliers(fit: FPCAFit, quantile: float) -> pd.DataFrame:
+    """Squared Mahalanobis distance of the scores under N(0, Lambda), flagged above the
+    chi-square(K) quantile (rule stated in the report)."""
+    d2 = np.sum(fit.score_values**2 / fit.eigenvalues, axis=1)
+    cut = float(sps.chi2.ppf(quantile, fit.n_components))
+    return pd.DataFrame({"subject": fit.subjects, "distance2": d2, "flagged": d2 > cut})
+
+
+def _shown(fit: FPCAFit, spec: Spec) -> tuple[str, ...]:
+    chosen = [str(s) for s in spec.subjects["show"]]
+    known = set(map(str, fit.subjects))
+    missing = [s for s in chosen if s not in known]
+    if missing:
+        raise EstimationError(f"subjects.show names subjects not in the data: {missing[:5]!r}")
+    count = spec.subjects["count"]
+    if len(chosen) < count:
+        # Deterministic spread: subjects ordered by readings then id, taken at even steps.
+        order = sorted(zip(fit.n_obs, map(str, fit.subjects), strict=True))
+        picks = np.unique(np.linspace(0, len(order) - 1, count - len(chosen)).round().astype(int))
+        chosen += [order[i][1] for i in picks if order[i][1] not in chosen]
+    return tuple(chosen)
+
+
+def _caveats(spec: Spec, ds: Dataset, fit: FPCAFit, runs: list[SensitivityRun],
+             stable: list[bool]) -> list[str]:
+    out = list(fit.warnings)
+    for c in ds.checks:
+        if c.name == "time-pair coverage" and c.status == "warn":
+            out.append("Parts of the time-pair square have no pairs of readings: the covariance "
+                       f"there is an extrapolation of the smoother ({c.detail}).")
+    single = int(np.sum(fit.n_obs == 1))
+    if single > 0.2 * fit.n_subjects:
+        out.append(f"{single} of {fit.n_subjects} subjects have one reading: their trajectories "
+                   "lean on the mean and the components, and their bands are wide.")
+    for k, ok in enumerate(stable):
+        if not ok:
+            out.append(f"Component {k + 1} changes when the bandwidths change (similarity below "
+                       f"{spec.sensitivity['similarity_threshold']:g} in a sensitivity run): "
+                       "interpret its shape with care.")
+    out.append("Scores and bands come from conditional expectation under joint Gaussianity of "
+               "scores and errors; with skewed or heavy-tailed data they are best linear "
+               "predictions and the bands' coverage is approximate.")
+    out.append("Visit times are assumed unrelated to the subject's state; where readings are "
+               "taken because a subject is unwell (or drop out because of it), the mean and the "
+               "trajectories can be biased.")
+    return out
+
+
+STANDARD_CAUTIONS = (
+    "These results describe the study sample under the model's assumptions.",
+    "They are not for decisions about an individual without review by a qualified "
+    "statistician or clinician.",
+    "The study protocol and statistical analysis plan take precedence over this appendix.",
+)
+
+
+def analyse(spec: Spec, ds: Dataset, progress: Progress = lambda _: None) -> AnalysisResult:
+    codes, t, y, labels = arrays_from_frame(ds.frame, "subject", "time", "value")
+    progress("fit")
+    fit = fit_arrays(codes, t, y, labels, spec.options)
+    runs = _sensitivity(spec, codes, t, y, labels, fit, progress)
+    threshold = spec.sensitivity["similarity_threshold"]
+    stable = [all(r.fit is not None and np.nan_to_num(r.similarity[k]) >= threshold
+                  for r in runs) for k in range(fit.n_components)]
+    return AnalysisResult(
+        spec=spec, dataset=ds, fit=fit, sensitivity=tuple(runs),
+        residuals=_residuals(fit, ds.frame),
+        outliers=_outliers(fit, spec.subjects["outlier_quantile"]),
+        shown_subjects=_shown(fit, spec),
+        caveats=tuple(_caveats(spec, ds, fit, runs, stable)), stable=tuple(stable),
+    )

@@ -1,0 +1,234 @@
+"""Command line: a thin adapter from arguments to the library, errors to exit codes.
+
+Exit codes: 0 success / everything matched; 1 a verify or compare finding; 2 bad input or
+usage (one clear paragraph, no traceback).
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import sys
+from collections.abc import Sequence
+from pathlib import Path
+
+from . import __version__
+from .errors import ReportgenError
+
+STARTER = """\
+# reportgen spec: edit the values, then run `reportgen check {name}` and `reportgen run {name}`.
+report:
+  id: {rid}                 # folder name of the runs: letters, digits, . _ -
+  title: "{title}"
+  authors: []
+  band_level: 0.95          # level of the pointwise bands
+data:
+  file: {file}              # relative to this spec; .csv or .parquet
+  subject: {subject}        # column that identifies the subject
+  time: {time}              # numeric time of the reading
+  value: {value}            # the measurement
+  time_unit: ""
+  value_unit: ""
+  transform: none           # none, log or log10
+checks:
+  missing: drop             # drop or fail
+  duplicates: average       # average, keep or fail
+  min_subjects: 10
+model:
+  mean_bandwidth: auto      # a number, or auto (chosen by bandwidth_method)
+  covariance_bandwidth: auto
+  bandwidth_method: cv      # cv (K-fold over subjects) or gcv
+  component_rule: fve       # fve, aic, bic, cv or fixed (then set n_components)
+  fve_threshold: 0.95
+sensitivity:
+  factors: [0.5, 0.75, 1.5, 2.0]
+  similarity_threshold: 0.9
+subjects:
+  count: 6                  # trajectories shown; or list ids under show: [...]
+gates:                      # what `reportgen compare` treats as a failure
+  max_mean_change: 0.1
+  max_eigenvalue_change: 0.5
+  max_error_variance_change: 0.5
+  min_eigenfunction_similarity: 0.9
+  same_components: true
+"""
+
+
+def _progress(quiet: bool):  # type: ignore[no-untyped-def]
+    show = not quiet and sys.stderr.isatty() and not os.environ.get("CI")
+
+    def report(step: str) -> None:
+        if show:
+            print(f"... {step}", file=sys.stderr, flush=True)
+
+    return report
+
+
+def _cmd_run(args: argparse.Namespace) -> int:
+    from .runner import run_spec
+
+    run_dir = run_spec(args.spec, args.out, _progress(args.quiet))
+    print(f"run written: {run_dir}")
+    print(f"report: {run_dir / 'report.html'}")
+    return 0
+
+
+def _cmd_check(args: argparse.Namespace) -> int:
+    from .data import load_dataset
+    from .spec import load_spec
+
+    spec = load_spec(args.spec)
+    ds = load_dataset(spec)
+    width = max(len(c.name) for c in ds.checks)
+    for c in ds.checks:
+        print(f"{c.name:<{width}}  {c.status:<4}  {c.detail}")
+    if ds.failed:
+        print(f"check: {len(ds.failed)} check(s) failed", file=sys.stderr)
+        return 2
+    print("check: spec and data are usable")
+    return 0
+
+
+def _print_rows(header: tuple[str, ...], rows: list[tuple[str, ...]]) -> None:
+    widths = [max(len(h), *(len(r[i]) for r in rows)) for i, h in enumerate(header)]
+    for row in (header, *rows):
+        print("  ".join(c.ljust(w) for c, w in zip(row, widths, strict=True)).rstrip())
+
+
+def _cmd_verify(args: argparse.Namespace) -> int:
+    from .runner import verify_run
+
+    rows = verify_run(args.run_dir, _progress(args.quiet))
+    _print_rows(("item", "recorded", "now", "match"),
+                [(r.item, r.recorded[:16], r.now[:16], "yes" if r.match else "NO")
+                 for r in rows])
+    bad = [r.item for r in rows if not r.match]
+    if bad:
+        print(f"verify: {len(bad)} item(s) do not match: {', '.join(bad[:10])}")
+        return 1
+    print("verify: everything matches")
+    return 0
+
+
+def _cmd_compare(args: argparse.Namespace) -> int:
+    from .record import compare_runs
+    from .spec import spec_from_bytes
+
+    b = Path(args.run_b)
+    spec_b = spec_from_bytes((b / "spec.yaml").read_bytes(), b / "spec.yaml") \
+        if (b / "spec.yaml").is_file() else None
+    from .spec import DEFAULT_GATES
+
+    gates = spec_b.gates if spec_b is not None else DEFAULT_GATES
+    findings = compare_runs(Path(args.run_a), b, gates)
+    _print_rows(("item", "A", "B", "gate"),
+                [(f.item, f.a, f.b, "CROSSED" if f.crossed else "") for f in findings])
+    crossed = [f.item for f in findings if f.crossed]
+    if crossed:
+        print(f"compare: gate(s) crossed: {', '.join(crossed)}")
+        return 1
+    print("compare: within the gates")
+    return 0
+
+
+def _cmd_init(args: argparse.Namespace) -> int:
+    import pandas as pd
+
+    from .errors import DataError
+
+    data = Path(args.data)
+    if not data.is_file():
+        raise DataError(f"data file {str(data)!r} does not exist or is not a file")
+    try:
+        head = (pd.read_parquet(data) if data.suffix.lower() in (".parquet", ".pq")
+                else pd.read_csv(data, nrows=50))
+    except Exception as e:
+        raise DataError(f"cannot read {str(data)!r}: {str(e).splitlines()[0]}") from e
+    cols = [str(c) for c in head.columns]
+    if len(cols) < 3:
+        raise DataError(f"{str(data)!r} has {len(cols)} column(s); a subject, a time and a "
+                        "value column are needed")
+    target = Path(args.spec)
+    if target.exists():
+        raise DataError(f"{str(target)!r} exists already; choose another name")
+    rel = os.path.relpath(data.resolve(), target.resolve().parent)
+    rid = "".join(ch if ch.isalnum() or ch in "._-" else "-" for ch in data.stem)[:60] or "study"
+    text = STARTER.format(name=target.name, rid=rid, title=f"Appendix: {data.stem}", file=rel,
+                          subject=cols[0], time=cols[1], value=cols[2])
+    target.write_text(text, encoding="utf-8")
+    print(f"starter spec written: {target} (check the column names: {', '.join(cols[:6])})")
+    return 0
+
+
+def _cmd_schema(args: argparse.Namespace) -> int:
+    from .validation import spec_schema
+
+    print(json.dumps(spec_schema(), indent=2))
+    return 0
+
+
+def _cmd_demo(args: argparse.Namespace) -> int:
+    from .runner import run_spec
+
+    spec = Path(__file__).resolve().parent.parent / "specs" / "clinic_visits.yaml"
+    if not spec.is_file():
+        raise ReportgenError(f"the demo spec {str(spec)!r} is missing (run from a checkout)")
+    run_dir = run_spec(spec, args.out, _progress(args.quiet))
+    print(f"demo report: {run_dir / 'report.html'}")
+    return 0
+
+
+def build_parser() -> argparse.ArgumentParser:
+    p = argparse.ArgumentParser(prog="reportgen", description="Study appendices for sparse "
+                                "longitudinal data from one YAML spec.")
+    p.add_argument("--version", action="version", version=f"reportgen {__version__}")
+    sub = p.add_subparsers(dest="command", required=True)
+
+    def add(name: str, helptext: str) -> argparse.ArgumentParser:
+        sp = sub.add_parser(name, help=helptext, description=helptext)
+        sp.add_argument("--quiet", action="store_true", help="no progress messages")
+        return sp
+
+    sp = add("run", "fit, render and write a new run directory OUT/<report id>/vNNN")
+    sp.add_argument("spec")
+    sp.add_argument("--out", default="runs", help="folder of the runs (default: runs)")
+    sp.set_defaults(func=_cmd_run)
+    sp = add("check", "validate the spec and the data; fit nothing")
+    sp.add_argument("spec")
+    sp.set_defaults(func=_cmd_check)
+    sp = add("verify", "re-hash and re-run a run directory; exit 1 on any mismatch")
+    sp.add_argument("run_dir")
+    sp.set_defaults(func=_cmd_verify)
+    sp = add("compare", "what changed from RUN_A to RUN_B; exit 1 when a gate is crossed")
+    sp.add_argument("run_a")
+    sp.add_argument("run_b")
+    sp.set_defaults(func=_cmd_compare)
+    sp = add("init", "write a commented starter spec for a data file")
+    sp.add_argument("data")
+    sp.add_argument("spec", nargs="?", default="spec.yaml")
+    sp.set_defaults(func=_cmd_init)
+    sp = add("schema", "print the JSON Schema of a spec")
+    sp.set_defaults(func=_cmd_schema)
+    sp = add("demo", "run the first example spec")
+    sp.add_argument("--out", default="runs")
+    sp.set_defaults(func=_cmd_demo)
+    return p
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    try:
+        code = int(args.func(args))
+    except ReportgenError as e:
+        print(f"reportgen {args.command}: error: {e}", file=sys.stderr)
+        code = 2
+    except KeyboardInterrupt:
+        print(f"reportgen {args.command}: interrupted; nothing was written", file=sys.stderr)
+        code = 2
+    return code
+
+
+if __name__ == "__main__":
+    sys.exit(main())

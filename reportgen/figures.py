@@ -1,0 +1,207 @@
+"""Figures: AnalysisResult -> deterministic SVG text (fixed metadata and hash salt).
+
+Dense data are drawn as densities (hexbin / binned images), never one mark per reading.
+"""
+
+from __future__ import annotations
+
+import io
+from typing import Any, cast
+
+import matplotlib
+
+matplotlib.use("Agg")
+import matplotlib.pyplot as plt
+import numpy as np
+from cycler import cycler
+from scipy import stats as sps
+
+from .analysis import AnalysisResult
+
+PALETTE = ("#1f5f8b", "#c0632b", "#3f8f4f", "#8a3f8f", "#7a7a2a", "#2a7a7a")
+STYLE = {
+    "font.size": 9, "axes.titlesize": 10, "axes.labelsize": 9, "axes.grid": True,
+    "grid.color": "#dde2ea", "grid.linewidth": 0.6, "axes.edgecolor": "#5b6578",
+    "axes.prop_cycle": cycler(color=PALETTE), "svg.hashsalt": "reportgen",
+    "svg.fonttype": "path", "figure.dpi": 100, "lines.linewidth": 1.6,
+}
+MAX_POINTS = 4000  # above this, scatter plots become densities
+
+
+def _svg(fig: plt.Figure) -> str:
+    buf = io.StringIO()
+    fig.savefig(buf, format="svg", metadata={"Date": None, "Creator": None}, bbox_inches="tight")
+    plt.close(fig)
+    text = buf.getvalue()
+    return text[text.index("<svg"):]  # drop the XML prolog and doctype: inline SVG
+
+
+def make_figures(result: AnalysisResult) -> dict[str, tuple[str, str, str]]:
+    """name -> (svg, caption, alt text)."""
+    with plt.rc_context(cast(Any, STYLE)):
+        return _make(result)
+
+
+def _make(r: AnalysisResult) -> dict[str, tuple[str, str, str]]:
+    fit, spec = r.fit, r.spec
+    tl = "time" + (f" ({spec.data['time_unit']})" if spec.data["time_unit"] else "")
+    vl = "value" + (f" ({spec.data['value_unit']})" if spec.data["value_unit"] else "")
+    g = fit.grid
+    out: dict[str, tuple[str, str, str]] = {}
+    frame = r.dataset.frame
+
+    fig, ax = plt.subplots(figsize=(6, 2.6))
+    counts = np.bincount(fit.n_obs)
+    ax.bar(np.arange(counts.size), counts, color=PALETTE[0])
+    ax.set_xlabel("readings per subject")
+    ax.set_ylabel("subjects")
+    out["readings_per_subject"] = (_svg(fig), "Readings per subject.",
+                                   "Bar chart of the number of subjects by readings per subject.")
+
+    fig, ax = plt.subplots(figsize=(4.2, 3.6))
+    pc = fit.pair_counts
+    img = ax.imshow(np.log1p(np.maximum(pc, 0)).T, origin="lower", cmap="Blues",
+                    extent=(g[0], g[-1], g[0], g[-1]), aspect="auto")
+    fig.colorbar(img, ax=ax, label="log(1 + pairs)")
+    ax.set_xlabel(tl)
+    ax.set_ylabel(tl)
+    out["design"] = (_svg(fig), "Design: where pairs of readings (t_j, t_l) of one subject "
+                     "fall; white areas have no support for the covariance.",
+                     "Heat map of the density of within-subject time pairs.")
+
+    fig, ax = plt.subplots(figsize=(6, 3.2))
+    ax.hexbin(frame.time, frame.value, gridsize=40, cmap="Greys", mincnt=1, linewidths=0)
+    z = fit.band_multiplier()
+    ax.fill_between(g, fit.mean - z * fit.mean_se, fit.mean + z * fit.mean_se,
+                    color=PALETTE[1], alpha=0.3, linewidth=0)
+    ax.plot(g, fit.mean, color=PALETTE[1])
+    ax.set_xlabel(tl)
+    ax.set_ylabel(vl)
+    out["mean"] = (_svg(fig), f"Mean curve with a pointwise {fit.options.band_level:.0%} band "
+                   "(cluster-robust over subjects) over the density of all readings.",
+                   "Grey density of readings against time with the mean curve and its band.")
+
+    fig, axes = plt.subplots(1, 2, figsize=(7.2, 3.2))
+    cov = fit.covariance
+    sd = np.sqrt(np.maximum(np.diag(cov), 1e-300))
+    for ax, surf, title in ((axes[0], cov, "covariance"),
+                            (axes[1], np.clip(cov / np.outer(sd, sd), -1, 1), "correlation")):
+        cs = ax.contourf(g, g, surf, levels=12, cmap="RdBu_r")
+        fig.colorbar(cs, ax=ax)
+        ax.set_title(title)
+        ax.set_xlabel(tl)
+        ax.set_ylabel(tl)
+    out["covariance"] = (_svg(fig), "Smoothed covariance and correlation surfaces.",
+                         "Two filled contour maps of the covariance and correlation surfaces.")
+
+    fig, ax = plt.subplots(figsize=(6, 3))
+    for k in range(fit.n_components):
+        ax.plot(g, fit.eigenfunctions[:, k], label=f"phi_{k + 1} (FVE {fit.fve[k]:.2f})")
+    ax.axhline(0, color="#888", linewidth=0.8)
+    ax.set_xlabel(tl)
+    ax.set_ylabel("eigenfunction")
+    ax.legend(fontsize=8)
+    out["eigenfunctions"] = (_svg(fig), "Eigenfunctions of the retained components.",
+                             "Line plot of each retained eigenfunction against time.")
+
+    k_show = min(fit.n_components, 3)
+    fig, axes = plt.subplots(1, k_show, figsize=(2.6 * k_show + 0.6, 2.8), squeeze=False)
+    for k in range(k_show):
+        ax = axes[0, k]
+        step = 2 * np.sqrt(fit.eigenvalues[k]) * fit.eigenfunctions[:, k]
+        ax.plot(g, fit.mean, color="#333")
+        ax.plot(g, fit.mean + step, color=PALETTE[0], linestyle="--", label="+2 sd")
+        ax.plot(g, fit.mean - step, color=PALETTE[1], linestyle=":", label="-2 sd")
+        ax.set_title(f"component {k + 1}")
+        ax.set_xlabel(tl)
+    axes[0, 0].set_ylabel(vl)
+    axes[0, 0].legend(fontsize=7)
+    out["effects"] = (_svg(fig), "Effect of each component: the mean plus and minus two "
+                      "times sqrt(eigenvalue) times the eigenfunction.",
+                      "Mean curve with curves two standard deviations above and below along "
+                      "each component.")
+
+    fig, ax = plt.subplots(figsize=(4.4, 3.8))
+    sc = fit.score_values
+    y2 = sc[:, 1] if fit.n_components > 1 else np.zeros(len(sc))
+    if len(sc) > MAX_POINTS:
+        ax.hexbin(sc[:, 0], y2, gridsize=40, cmap="Greys", mincnt=1, linewidths=0)
+    else:
+        ax.scatter(sc[:, 0], y2, s=8, color=PALETTE[0], alpha=0.6, linewidths=0)
+    flagged = r.outliers.flagged.to_numpy()
+    ax.scatter(sc[flagged, 0], y2[flagged], s=18, facecolors="none", edgecolors=PALETTE[1],
+               label="flagged")
+    ax.set_xlabel("score 1")
+    ax.set_ylabel("score 2" if fit.n_components > 1 else "")
+    out["scores"] = (_svg(fig), "Scores of the first two components; flagged subjects circled.",
+                     "Scatter of subjects' first two scores with outlying subjects circled.")
+
+    shown = list(r.shown_subjects)
+    traj = fit.trajectories([s for s in fit.subjects if str(s) in set(shown)])
+    n = max(len(shown), 1)
+    cols = min(n, 3)
+    rows = int(np.ceil(n / cols))
+    fig, axes = plt.subplots(rows, cols, figsize=(2.5 * cols + 0.4, 2.2 * rows),
+                             squeeze=False, sharex=True)
+    for i, sid in enumerate(shown):
+        ax = axes[i // cols, i % cols]
+        tr = traj[traj.subject.astype(str) == sid]
+        obs = frame[frame.subject.astype(str) == sid]
+        ax.fill_between(tr.time, tr.lower, tr.upper, color=PALETTE[0], alpha=0.2, linewidth=0)
+        ax.plot(tr.time, tr.fitted, color=PALETTE[0])
+        ax.plot(obs.time, obs.value, "o", color=PALETTE[1], markersize=3)
+        ax.set_title(f"subject {sid}", fontsize=8)
+    for j in range(len(shown), rows * cols):
+        axes[j // cols, j % cols].set_visible(False)
+    out["trajectories"] = (_svg(fig), f"Recovered trajectories with pointwise "
+                           f"{fit.options.band_level:.0%} bands and the subjects' readings.",
+                           "Small multiples: each selected subject's fitted curve, band and "
+                           "readings.")
+
+    res = r.residuals
+    fig, axes = plt.subplots(1, 3, figsize=(8.4, 2.8))
+    for ax, xcol, xl in ((axes[0], "time", tl), (axes[1], "fitted", "fitted " + vl)):
+        if len(res) > MAX_POINTS:
+            ax.hexbin(res[xcol], res.standardized, gridsize=35, cmap="Greys", mincnt=1,
+                      linewidths=0)
+        else:
+            ax.scatter(res[xcol], res.standardized, s=5, color=PALETTE[0], alpha=0.5,
+                       linewidths=0)
+        ax.axhline(0, color="#888", linewidth=0.8)
+        ax.set_xlabel(xl)
+        ax.set_ylabel("standardized residual")
+    q = np.sort(res.standardized.to_numpy())
+    if q.size > MAX_POINTS:
+        q = q[np.linspace(0, q.size - 1, MAX_POINTS).astype(int)]
+    theo = sps.norm.ppf((np.arange(q.size) + 0.5) / q.size)
+    axes[2].plot(theo, q, ".", markersize=2, color=PALETTE[0])
+    axes[2].plot(theo, theo, color="#888", linewidth=0.8)
+    axes[2].set_xlabel("normal quantile")
+    axes[2].set_ylabel("residual quantile")
+    out["residuals"] = (_svg(fig), "Standardized residuals (reading minus fitted trajectory, "
+                        "over the error standard deviation) against time and fitted value, and "
+                        "a normal quantile plot.",
+                        "Three panels: residuals against time, against fitted values, and a "
+                        "normal quantile plot.")
+
+    k_show = min(fit.n_components, 2)
+    fig, axes = plt.subplots(1, 1 + k_show, figsize=(2.8 * (1 + k_show) + 0.4, 2.8),
+                             squeeze=False)
+    axes[0, 0].plot(g, fit.mean, color="#222", label="main")
+    for j, run in enumerate(r.sensitivity):
+        if run.fit is None:
+            continue
+        color = PALETTE[(j + 1) % len(PALETTE)]
+        axes[0, 0].plot(g, run.fit.mean, color=color, linewidth=1, label=f"x{run.factor:g}")
+        for k in range(min(k_show, run.fit.n_components)):
+            sign = np.sign(np.sum(run.fit.eigenfunctions[:, k] * fit.eigenfunctions[:, k])) or 1
+            axes[0, 1 + k].plot(g, sign * run.fit.eigenfunctions[:, k], color=color, linewidth=1)
+    for k in range(k_show):
+        axes[0, 1 + k].plot(g, fit.eigenfunctions[:, k], color="#222")
+        axes[0, 1 + k].set_title(f"phi_{k + 1}")
+    axes[0, 0].set_title("mean")
+    axes[0, 0].legend(fontsize=7)
+    out["sensitivity"] = (_svg(fig), "Mean and eigenfunctions at each bandwidth factor (black: "
+                          "main fit).", "Overlaid curves of the mean and eigenfunctions under "
+                          "each bandwidth setting.")
+    return out

@@ -1,0 +1,163 @@
+"""AnalysisResult (+ figures) -> HTML via jinja2 (autoescape on) -> PDF/A via weasyprint."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Any
+
+import jinja2
+import numpy as np
+
+from .analysis import STANDARD_CAUTIONS, AnalysisResult
+
+
+@dataclass
+class _Numbering:
+    table: int = 0
+    figure: int = 0
+
+
+@dataclass
+class Section:
+    id: str
+    title: str
+    lead: str
+    blocks: list[dict[str, Any]] = field(default_factory=list)
+
+
+def _fmt(x: Any) -> str:
+    if isinstance(x, bool | np.bool_):
+        return "yes" if x else "no"
+    if isinstance(x, int | np.integer):
+        return str(int(x))
+    if isinstance(x, float | np.floating):
+        return "—" if not np.isfinite(x) else f"{float(x):.4g}"
+    return str(x)
+
+
+class _Builder:
+    def __init__(self) -> None:
+        self.n = _Numbering()
+        self.sections: list[Section] = []
+
+    def section(self, id_: str, title: str, lead: str) -> Section:
+        s = Section(id_, title, lead)
+        self.sections.append(s)
+        return s
+
+    def table(self, s: Section, caption: str, header: list[str], rows: list[list[Any]]) -> None:
+        self.n.table += 1
+        s.blocks.append({"kind": "table", "number": self.n.table, "caption": caption,
+                         "header": header, "rows": [[_fmt(c) for c in r] for r in rows]})
+
+    def figure(self, s: Section, svg: str, caption: str, alt: str) -> None:
+        self.n.figure += 1
+        s.blocks.append({"kind": "figure", "number": self.n.figure, "svg": svg,
+                         "caption": caption, "alt": alt})
+
+
+def build_sections(result: AnalysisResult, record_view: dict[str, Any],
+                   figures: dict[str, tuple[str, str, str]]) -> list[Section]:
+    """Sections in report order. ``figures`` maps a name to (svg, caption, alt)."""
+    fit, spec, ds = result.fit, result.spec, result.dataset
+    b = _Builder()
+    tu = f" ({spec.data['time_unit']})" if spec.data["time_unit"] else ""
+    vu = f" ({spec.data['value_unit']})" if spec.data["value_unit"] else ""
+
+    def fig(s: Section, name: str) -> None:
+        if name in figures:
+            b.figure(s, *figures[name])
+
+    s = b.section("summary", "Summary", "The key numbers of this analysis at a glance.")
+    per = fit.n_obs
+    b.table(s, "Key estimates.", ["quantity", "value"], [
+        ["subjects", fit.n_subjects], ["readings", fit.n_readings],
+        ["readings per subject (min / median / max)",
+         f"{per.min()} / {np.median(per):g} / {per.max()}"],
+        ["components chosen", f"{fit.n_components} (rule: {fit.selection.rule})"],
+        ["FVE of the chosen components", f"{fit.cumulative_fve[fit.n_components - 1]:.3f}"],
+        ["error variance" + vu, fit.error_variance],
+        ["mean bandwidth" + tu, f"{fit.mean_bandwidth:.4g} ({fit.mean_bandwidth_choice.method})"],
+        ["covariance bandwidth" + tu,
+         f"{fit.covariance_bandwidth:.4g} ({fit.covariance_bandwidth_choice.method})"],
+    ])
+
+    s = b.section("checks", "Data checks", "What was checked in the data before fitting.")
+    b.table(s, f"Checks of {ds.relpath}.", ["check", "status", "detail"],
+            [[c.name, c.status, c.detail] for c in ds.checks])
+    fig(s, "readings_per_subject")
+    fig(s, "design")
+
+    s = b.section("mean", "Mean curve", "The average curve over all subjects, with a pointwise "
+                  f"{fit.options.band_level:.0%} band.")
+    fig(s, "mean")
+    s = b.section("covariance", "Covariance and correlation", "How readings at two times vary "
+                  "together across subjects.")
+    fig(s, "covariance")
+    s = b.section("components", "Components", "The main modes of variation and how many were "
+                  "kept.")
+    b.table(s, "Eigenvalues and fraction of variance explained (FVE).",
+            ["component", "eigenvalue", "FVE", "cumulative FVE"],
+            [[k + 1, fit.all_eigenvalues[k], fit.fve[k], fit.cumulative_fve[k]]
+             for k in range(min(fit.all_eigenvalues.size, 10))])
+    sel = fit.selection
+    b.table(s, f"Component selection: every criterion; the rule used was {sel.rule}. AIC, BIC "
+            f"and cv were computed over {sel.n_subjects_used} subjects.",
+            ["K", "cumulative FVE", "AIC", "BIC", "cv error", "chosen"],
+            [[int(k), sel.cumulative_fve[i], sel.aic[i], sel.bic[i], sel.cv[i],
+              "chosen" if k == sel.chosen else ""] for i, k in enumerate(sel.k)])
+    fig(s, "eigenfunctions")
+    fig(s, "effects")
+    s = b.section("scores", "Scores", "Where each subject sits on the components.")
+    flagged = result.outliers[result.outliers.flagged]
+    s.blocks.append({"kind": "text", "text": (
+        f"Rule: a subject is flagged when its squared Mahalanobis distance of the scores "
+        f"exceeds the chi-square({fit.n_components}) quantile "
+        f"{spec.subjects['outlier_quantile']:g}; {len(flagged)} subject(s) flagged.")})
+    fig(s, "scores")
+    s = b.section("trajectories", "Trajectories", "Recovered curves of selected subjects with "
+                  "their readings and pointwise bands.")
+    fig(s, "trajectories")
+    s = b.section("residuals", "Residual diagnostics", "Whether the readings scatter around the "
+                  "fitted curves as the model assumes.")
+    fig(s, "residuals")
+    s = b.section("sensitivity", "Sensitivity to the bandwidths", "How the estimates move when "
+                  "both bandwidths are multiplied by a factor.")
+    thr = spec.sensitivity["similarity_threshold"]
+    rows = []
+    for run in result.sensitivity:
+        rows.append([run.factor, run.mean_bandwidth, run.covariance_bandwidth,
+                     run.fit.n_components if run.fit else "failed",
+                     run.fit.error_variance if run.fit else float("nan"),
+                     ", ".join(f"{x:.3f}" for x in run.similarity) or run.error[:80]])
+    b.table(s, "Key estimates per bandwidth setting (similarity = |inner product| with the "
+            "main fit's eigenfunction).",
+            ["factor", "mean bw", "covariance bw", "K", "error variance", "similarity"], rows)
+    b.table(s, f"Verdict per component (stable when every similarity is at least {thr:g}).",
+            ["component", "verdict"],
+            [[k + 1, "stable" if ok else "not stable"] for k, ok in enumerate(result.stable)])
+    fig(s, "sensitivity")
+    s = b.section("caveats", "Caveats", "What could be wrong with these results, and how to "
+                  "use them.")
+    s.blocks.append({"kind": "list", "items": list(result.caveats) + list(STANDARD_CAUTIONS)})
+    s = b.section("reproducibility", "Reproducibility", "How to re-run this analysis and "
+                  "confirm by hash that nothing changed.")
+    b.table(s, "Record.", ["item", "value"], [[k, v] for k, v in record_view["items"]])
+    s.blocks.append({"kind": "pre", "text": record_view["commands"]})
+    s.blocks.append({"kind": "pre", "text": spec.raw.decode("utf-8")})
+    return b.sections
+
+
+def render_html(result: AnalysisResult, version: int, record_view: dict[str, Any],
+                figures: dict[str, tuple[str, str, str]]) -> bytes:
+    env = jinja2.Environment(
+        loader=jinja2.PackageLoader("reportgen", "templates"),
+        autoescape=True, undefined=jinja2.StrictUndefined, keep_trailing_newline=True,
+    )
+    spec = result.spec
+    html = env.get_template("report.html.j2").render(
+        title=spec.report["title"], report_id=spec.report_id, version=version,
+        authors=spec.report["authors"], description=spec.report["description"],
+        sections=build_sections(result, record_view, figures),
+    )
+    return html.encode("utf-8")

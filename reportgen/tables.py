@@ -1,0 +1,90 @@
+"""The CSV tables of a run, in canonical form (fixed float format, fixed column order).
+
+The canonical bytes are what ``results_sha256`` digests: floats are written with 10
+significant digits so that the digest does not depend on the last bits of a BLAS.
+"""
+
+from __future__ import annotations
+
+import hashlib
+
+import numpy as np
+import pandas as pd
+
+from .analysis import AnalysisResult
+
+FLOAT_FORMAT = "%.10g"
+
+
+def to_csv_bytes(frame: pd.DataFrame) -> bytes:
+    text = frame.to_csv(index=False, float_format=FLOAT_FORMAT, lineterminator="\n")
+    return text.encode("utf-8")
+
+
+def build_tables(result: AnalysisResult) -> dict[str, pd.DataFrame]:
+    fit = result.fit
+    k = fit.n_components
+    tables: dict[str, pd.DataFrame] = {}
+    tables["mean"] = pd.DataFrame({"time": fit.grid, "mean": fit.mean,
+                                   "standard_error": fit.mean_se})
+    tables["components"] = pd.DataFrame({
+        "component": np.arange(1, fit.all_eigenvalues.size + 1),
+        "eigenvalue": fit.all_eigenvalues, "fve": fit.fve, "cumulative_fve": fit.cumulative_fve,
+        "retained": np.arange(fit.all_eigenvalues.size) < k,
+    })
+    ef = pd.DataFrame({"time": fit.grid})
+    for j in range(k):
+        ef[f"phi_{j + 1}"] = fit.eigenfunctions[:, j]
+    tables["eigenfunctions"] = ef
+    scores = fit.scores.reset_index()
+    scores["subject"] = scores["subject"].astype(str)
+    tables["scores"] = scores
+    tables["trajectories"] = fit.trajectories(
+        [s for s in fit.subjects if str(s) in set(result.shown_subjects)]
+    )
+    tables["checks"] = pd.DataFrame(
+        [(c.name, c.status, c.detail) for c in result.dataset.checks],
+        columns=["check", "status", "detail"],
+    )
+    sel = fit.selection
+    tables["selection"] = pd.DataFrame({
+        "components": sel.k, "cumulative_fve": sel.cumulative_fve, "aic": sel.aic,
+        "bic": sel.bic, "cv_error": sel.cv, "chosen": sel.k == sel.chosen,
+    })
+    rows = []
+    for run in result.sensitivity:
+        row: dict[str, object] = {"factor": run.factor, "mean_bandwidth": run.mean_bandwidth,
+                                  "covariance_bandwidth": run.covariance_bandwidth}
+        if run.fit is None:
+            row.update({"n_components": np.nan, "error_variance": np.nan, "note": run.error})
+        else:
+            row.update({"n_components": run.fit.n_components,
+                        "error_variance": run.fit.error_variance, "note": ""})
+        for j in range(k):
+            ev = run.fit.all_eigenvalues[j] if run.fit is not None and \
+                j < run.fit.all_eigenvalues.size else np.nan
+            row[f"eigenvalue_{j + 1}"] = ev
+            row[f"similarity_{j + 1}"] = run.similarity[j] if run.similarity else np.nan
+        rows.append(row)
+    tables["sensitivity"] = pd.DataFrame(rows)
+    tables["residuals_by_subject"] = (
+        result.residuals.groupby("subject", sort=True)
+        .agg(n_obs=("residual", "size"), mean_residual=("residual", "mean"),
+             rms_standardized=("standardized", lambda s: float(np.sqrt(np.mean(s**2)))))
+        .reset_index()
+    )
+    return tables
+
+
+def canonical_bytes(tables: dict[str, pd.DataFrame]) -> dict[str, bytes]:
+    return {f"tables/{name}.csv": to_csv_bytes(frame) for name, frame in sorted(tables.items())}
+
+
+def results_digest(canonical: dict[str, bytes]) -> str:
+    """SHA-256 over the canonical tables: name, length and bytes of each, in name order."""
+    h = hashlib.sha256()
+    for name in sorted(canonical):
+        data = canonical[name]
+        h.update(f"{name}\n{len(data)}\n".encode())
+        h.update(data)
+    return h.hexdigest()
