@@ -96,40 +96,43 @@ def _print_rows(header: tuple[str, ...], rows: list[tuple[str, ...]]) -> None:
         print("  ".join(c.ljust(w) for c, w in zip(row, widths, strict=True)).rstrip())
 
 
+def _report(command: str, header: tuple[str, ...], rows: list[tuple[str, ...]],
+            failures: list[str], fail_text: str, ok_text: str) -> int:
+    """Print the table of a verify/compare, then one summary line; 1 when anything failed."""
+    _print_rows(header, rows)
+    if failures:
+        print(f"{command}: {fail_text}: {', '.join(failures[:10])}")
+        return 1
+    print(f"{command}: {ok_text}")
+    return 0
+
+
 def _cmd_verify(args: argparse.Namespace) -> int:
     from .runner import verify_run
 
     rows = verify_run(args.run_dir, _progress(args.quiet))
-    _print_rows(("item", "recorded", "now", "match"),
-                [(r.item, r.recorded[:16], r.now[:16], "yes" if r.match else "NO")
-                 for r in rows])
-    bad = [r.item for r in rows if not r.match]
-    if bad:
-        print(f"verify: {len(bad)} item(s) do not match: {', '.join(bad[:10])}")
-        return 1
-    print("verify: everything matches")
-    return 0
+    return _report(
+        "verify", ("item", "recorded", "now", "match"),
+        [(r.item, r.recorded[:16], r.now[:16], "yes" if r.match else "NO") for r in rows],
+        [r.item for r in rows if not r.match],
+        f"{sum(not r.match for r in rows)} item(s) do not match", "everything matches",
+    )
 
 
 def _cmd_compare(args: argparse.Namespace) -> int:
     from .record import compare_runs
-    from .spec import spec_from_bytes
+    from .spec import DEFAULT_GATES, spec_from_bytes
 
     b = Path(args.run_b)
-    spec_b = spec_from_bytes((b / "spec.yaml").read_bytes(), b / "spec.yaml") \
-        if (b / "spec.yaml").is_file() else None
-    from .spec import DEFAULT_GATES
-
-    gates = spec_b.gates if spec_b is not None else DEFAULT_GATES
+    spec_file = b / "spec.yaml"
+    gates = (spec_from_bytes(spec_file.read_bytes(), spec_file).gates if spec_file.is_file()
+             else DEFAULT_GATES)
     findings = compare_runs(Path(args.run_a), b, gates)
-    _print_rows(("item", "A", "B", "gate"),
-                [(f.item, f.a, f.b, "CROSSED" if f.crossed else "") for f in findings])
-    crossed = [f.item for f in findings if f.crossed]
-    if crossed:
-        print(f"compare: gate(s) crossed: {', '.join(crossed)}")
-        return 1
-    print("compare: within the gates")
-    return 0
+    return _report(
+        "compare", ("item", "A", "B", "gate"),
+        [(f.item, f.a, f.b, "CROSSED" if f.crossed else "") for f in findings],
+        [f.item for f in findings if f.crossed], "gate(s) crossed", "within the gates",
+    )
 
 
 def _cmd_init(args: argparse.Namespace) -> int:
