@@ -136,11 +136,19 @@ STANDARD_CAUTIONS = (
 )
 
 
-def analyse(spec: Spec, ds: Dataset, progress: Progress = lambda _: None) -> AnalysisResult:
+def analyse(spec: Spec, ds: Dataset, progress: Progress = lambda _: None,
+            lap: Progress = lambda _: None) -> AnalysisResult:
+    """The main fit, the sensitivity fits, diagnostics and caveats.
+
+    ``progress`` receives a message before each long step; ``lap`` the name of each step
+    just finished (for timing).
+    """
     codes, t, y, labels = arrays_from_frame(ds.frame, "subject", "time", "value")
     progress("fit")
     fit = fit_arrays(codes, t, y, labels, spec.options)
+    lap("fit")
     runs = _sensitivity(spec, codes, t, y, labels, fit, progress)
+    lap("sensitivity")
     threshold = spec.sensitivity["similarity_threshold"]
     stable = [all(r.fit is not None and np.nan_to_num(r.similarity[k]) >= threshold
                   for r in runs) for k in range(fit.n_components)]

@@ -6,6 +6,7 @@ Dense data are drawn as densities (hexbin / binned images), never one mark per r
 from __future__ import annotations
 
 import io
+import re
 from typing import Any, cast
 
 import matplotlib
@@ -28,12 +29,26 @@ STYLE = {
 MAX_POINTS = 4000  # above this, scatter plots become densities
 
 
-def _svg(fig: plt.Figure) -> str:
+def inline_svg(text: str, prefix: str) -> str:
+    """Make matplotlib's SVG fit for inlining in HTML: no prolog, comments, RDF metadata or
+    namespace URIs (inline SVG needs none), plain ``href``, and ids prefixed so that several
+    figures in one page never share an id."""
+    text = text[text.index("<svg"):]
+    text = re.sub(r"<!--.*?-->", "", text, flags=re.S)
+    text = re.sub(r"\s*<metadata>.*?</metadata>", "", text, flags=re.S)
+    text = re.sub(r'\s+xmlns(:\w+)?="[^"]*"', "", text)
+    text = text.replace("xlink:href=", "href=")
+    text = re.sub(r'\bid="', f'id="{prefix}-', text)
+    text = text.replace("url(#", f"url(#{prefix}-").replace('href="#', f'href="#{prefix}-')
+    return text
+
+
+def _svg(fig: plt.Figure, name: str) -> str:
     buf = io.StringIO()
+    fig.tight_layout()
     fig.savefig(buf, format="svg", metadata={"Date": None, "Creator": None}, bbox_inches="tight")
     plt.close(fig)
-    text = buf.getvalue()
-    return text[text.index("<svg"):]  # drop the XML prolog and doctype: inline SVG
+    return inline_svg(buf.getvalue(), name)
 
 
 def make_figures(result: AnalysisResult) -> dict[str, tuple[str, str, str]]:
@@ -50,12 +65,15 @@ def _make(r: AnalysisResult) -> dict[str, tuple[str, str, str]]:
     out: dict[str, tuple[str, str, str]] = {}
     frame = r.dataset.frame
 
+    def put(name: str, fig: plt.Figure, caption: str, alt: str) -> None:
+        out[name] = (_svg(fig, name), caption, alt)
+
     fig, ax = plt.subplots(figsize=(6, 2.6))
     counts = np.bincount(fit.n_obs)
     ax.bar(np.arange(counts.size), counts, color=PALETTE[0])
     ax.set_xlabel("readings per subject")
     ax.set_ylabel("subjects")
-    out["readings_per_subject"] = (_svg(fig), "Readings per subject.",
+    put("readings_per_subject", fig, "Readings per subject.",
                                    "Bar chart of the number of subjects by readings per subject.")
 
     fig, ax = plt.subplots(figsize=(4.2, 3.6))
@@ -65,7 +83,7 @@ def _make(r: AnalysisResult) -> dict[str, tuple[str, str, str]]:
     fig.colorbar(img, ax=ax, label="log(1 + pairs)")
     ax.set_xlabel(tl)
     ax.set_ylabel(tl)
-    out["design"] = (_svg(fig), "Design: where pairs of readings (t_j, t_l) of one subject "
+    put("design", fig, "Design: where pairs of readings (t_j, t_l) of one subject "
                      "fall; white areas have no support for the covariance.",
                      "Heat map of the density of within-subject time pairs.")
 
@@ -77,11 +95,11 @@ def _make(r: AnalysisResult) -> dict[str, tuple[str, str, str]]:
     ax.plot(g, fit.mean, color=PALETTE[1])
     ax.set_xlabel(tl)
     ax.set_ylabel(vl)
-    out["mean"] = (_svg(fig), f"Mean curve with a pointwise {fit.options.band_level:.0%} band "
+    put("mean", fig, f"Mean curve with a pointwise {fit.options.band_level:.0%} band "
                    "(cluster-robust over subjects) over the density of all readings.",
                    "Grey density of readings against time with the mean curve and its band.")
 
-    fig, axes = plt.subplots(1, 2, figsize=(7.2, 3.2))
+    fig, axes = plt.subplots(1, 2, figsize=(6.6, 3.0))
     cov = fit.covariance
     sd = np.sqrt(np.maximum(np.diag(cov), 1e-300))
     for ax, surf, title in ((axes[0], cov, "covariance"),
@@ -91,7 +109,7 @@ def _make(r: AnalysisResult) -> dict[str, tuple[str, str, str]]:
         ax.set_title(title)
         ax.set_xlabel(tl)
         ax.set_ylabel(tl)
-    out["covariance"] = (_svg(fig), "Smoothed covariance and correlation surfaces.",
+    put("covariance", fig, "Smoothed covariance and correlation surfaces.",
                          "Two filled contour maps of the covariance and correlation surfaces.")
 
     fig, ax = plt.subplots(figsize=(6, 3))
@@ -101,11 +119,11 @@ def _make(r: AnalysisResult) -> dict[str, tuple[str, str, str]]:
     ax.set_xlabel(tl)
     ax.set_ylabel("eigenfunction")
     ax.legend(fontsize=8)
-    out["eigenfunctions"] = (_svg(fig), "Eigenfunctions of the retained components.",
+    put("eigenfunctions", fig, "Eigenfunctions of the retained components.",
                              "Line plot of each retained eigenfunction against time.")
 
     k_show = min(fit.n_components, 3)
-    fig, axes = plt.subplots(1, k_show, figsize=(2.6 * k_show + 0.6, 2.8), squeeze=False)
+    fig, axes = plt.subplots(1, k_show, figsize=(2.1 * k_show + 0.4, 2.6), squeeze=False)
     for k in range(k_show):
         ax = axes[0, k]
         step = 2 * np.sqrt(fit.eigenvalues[k]) * fit.eigenfunctions[:, k]
@@ -116,7 +134,7 @@ def _make(r: AnalysisResult) -> dict[str, tuple[str, str, str]]:
         ax.set_xlabel(tl)
     axes[0, 0].set_ylabel(vl)
     axes[0, 0].legend(fontsize=7)
-    out["effects"] = (_svg(fig), "Effect of each component: the mean plus and minus two "
+    put("effects", fig, "Effect of each component: the mean plus and minus two "
                       "times sqrt(eigenvalue) times the eigenfunction.",
                       "Mean curve with curves two standard deviations above and below along "
                       "each component.")
@@ -133,7 +151,7 @@ def _make(r: AnalysisResult) -> dict[str, tuple[str, str, str]]:
                label="flagged")
     ax.set_xlabel("score 1")
     ax.set_ylabel("score 2" if fit.n_components > 1 else "")
-    out["scores"] = (_svg(fig), "Scores of the first two components; flagged subjects circled.",
+    put("scores", fig, "Scores of the first two components; flagged subjects circled.",
                      "Scatter of subjects' first two scores with outlying subjects circled.")
 
     shown = list(r.shown_subjects)
@@ -141,7 +159,7 @@ def _make(r: AnalysisResult) -> dict[str, tuple[str, str, str]]:
     n = max(len(shown), 1)
     cols = min(n, 3)
     rows = int(np.ceil(n / cols))
-    fig, axes = plt.subplots(rows, cols, figsize=(2.5 * cols + 0.4, 2.2 * rows),
+    fig, axes = plt.subplots(rows, cols, figsize=(2.1 * cols + 0.3, 1.9 * rows),
                              squeeze=False, sharex=True)
     for i, sid in enumerate(shown):
         ax = axes[i // cols, i % cols]
@@ -153,13 +171,13 @@ def _make(r: AnalysisResult) -> dict[str, tuple[str, str, str]]:
         ax.set_title(f"subject {sid}", fontsize=8)
     for j in range(len(shown), rows * cols):
         axes[j // cols, j % cols].set_visible(False)
-    out["trajectories"] = (_svg(fig), f"Recovered trajectories with pointwise "
+    put("trajectories", fig, f"Recovered trajectories with pointwise "
                            f"{fit.options.band_level:.0%} bands and the subjects' readings.",
                            "Small multiples: each selected subject's fitted curve, band and "
                            "readings.")
 
     res = r.residuals
-    fig, axes = plt.subplots(1, 3, figsize=(8.4, 2.8))
+    fig, axes = plt.subplots(1, 3, figsize=(6.6, 2.4))
     for ax, xcol, xl in ((axes[0], "time", tl), (axes[1], "fitted", "fitted " + vl)):
         if len(res) > MAX_POINTS:
             ax.hexbin(res[xcol], res.standardized, gridsize=35, cmap="Greys", mincnt=1,
@@ -178,14 +196,14 @@ def _make(r: AnalysisResult) -> dict[str, tuple[str, str, str]]:
     axes[2].plot(theo, theo, color="#888", linewidth=0.8)
     axes[2].set_xlabel("normal quantile")
     axes[2].set_ylabel("residual quantile")
-    out["residuals"] = (_svg(fig), "Standardized residuals (reading minus fitted trajectory, "
+    put("residuals", fig, "Standardized residuals (reading minus fitted trajectory, "
                         "over the error standard deviation) against time and fitted value, and "
                         "a normal quantile plot.",
                         "Three panels: residuals against time, against fitted values, and a "
                         "normal quantile plot.")
 
     k_show = min(fit.n_components, 2)
-    fig, axes = plt.subplots(1, 1 + k_show, figsize=(2.8 * (1 + k_show) + 0.4, 2.8),
+    fig, axes = plt.subplots(1, 1 + k_show, figsize=(2.1 * (1 + k_show) + 0.3, 2.4),
                              squeeze=False)
     axes[0, 0].plot(g, fit.mean, color="#222", label="main")
     for j, run in enumerate(r.sensitivity):
@@ -201,7 +219,7 @@ def _make(r: AnalysisResult) -> dict[str, tuple[str, str, str]]:
         axes[0, 1 + k].set_title(f"phi_{k + 1}")
     axes[0, 0].set_title("mean")
     axes[0, 0].legend(fontsize=7)
-    out["sensitivity"] = (_svg(fig), "Mean and eigenfunctions at each bandwidth factor (black: "
+    put("sensitivity", fig, "Mean and eigenfunctions at each bandwidth factor (black: "
                           "main fit).", "Overlaid curves of the mean and eigenfunctions under "
                           "each bandwidth setting.")
     return out

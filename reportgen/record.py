@@ -101,7 +101,11 @@ def load_record(run_dir: Path) -> dict[str, Any]:
         raise RecordError(f"record.json is damaged: missing key(s) {', '.join(missing)}")
     shape_ok = (isinstance(record["outputs"], dict) and isinstance(record["inputs"], list)
                 and isinstance(record["spec"], dict) and "sha256" in record["spec"]
-                and "source" in record["spec"] and isinstance(record["run"], dict))
+                and "source" in record["spec"] and isinstance(record["run"], dict)
+                and isinstance(record["run"].get("version"), int)
+                and isinstance(record["run"].get("finished"), str)
+                and all(isinstance(i, dict) and {"path", "sha256"} <= set(i)
+                        for i in record["inputs"]))
     if not shape_ok:
         raise RecordError("record.json is damaged: outputs, inputs, spec or run has the "
                           "wrong structure")

@@ -161,3 +161,56 @@ def render_html(result: AnalysisResult, version: int, record_view: dict[str, Any
         sections=build_sections(result, record_view, figures),
     )
     return html.encode("utf-8")
+
+
+class _NoFetch:
+    """URL fetcher for weasyprint that refuses every URL except inline ``data:`` ones.
+
+    The HTML is self-contained (inline CSS and SVG; raster parts of figures are ``data:``
+    URIs that the renderer itself wrote); a spec or data value that looks like a URL or a
+    path must never make the renderer read a file or open a connection.
+    """
+
+    def __init__(self) -> None:
+        self.refused: list[str] = []
+
+    def fetch(self, url: str, headers: Any = None) -> Any:
+        if url.startswith("data:"):
+            import weasyprint
+
+            return weasyprint.URLFetcher(allowed_protocols={"data"}).fetch(url, headers)
+        self.refused.append(url)
+        raise ValueError(f"reportgen renders offline; refused to fetch {url!r}")
+
+    def __call__(self, url: str, *args: Any, **kwargs: Any) -> Any:
+        return self.fetch(url)
+
+
+def render_pdf(html: bytes, spec_bytes: bytes, record_bytes: bytes, stamp: str) -> bytes:
+    """PDF/A-3b from the report HTML with spec.yaml and record.json attached.
+
+    PDF/A-3 is the archival variant that allows embedded files. The result is a pure
+    function of its inputs (the attachments' dates are ``stamp``, the run's finish time in
+    UTC as ``YYYY-MM-DDTHH:MM:SSZ``; fixed identifier), so ``verify`` can re-render it and
+    compare bytes.
+    """
+    import logging
+    from datetime import datetime
+
+    import weasyprint
+
+    logging.getLogger("weasyprint").setLevel(logging.ERROR)
+    fetcher = _NoFetch()
+    when = datetime.strptime(stamp, "%Y-%m-%dT%H:%M:%SZ")
+    attachments = [
+        weasyprint.Attachment(string=spec_bytes, name="spec.yaml",
+                              description="The spec of this run, as given", url_fetcher=fetcher,
+                              created=when, modified=when),
+        weasyprint.Attachment(string=record_bytes, name="record.json",
+                              description="The hashed record of this run", url_fetcher=fetcher,
+                              created=when, modified=when),
+    ]
+    document = weasyprint.HTML(string=html.decode("utf-8"), base_url=None, url_fetcher=fetcher)
+    pdf = document.write_pdf(pdf_variant="pdf/a-3b", attachments=attachments,
+                             pdf_identifier=b"reportgen", uncompressed_pdf=False)
+    return bytes(pdf)

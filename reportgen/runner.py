@@ -12,7 +12,6 @@ import errno
 import os
 import re
 import shutil
-import tempfile
 import time
 from collections.abc import Callable
 from dataclasses import dataclass
@@ -22,7 +21,7 @@ from .analysis import AnalysisResult, analyse
 from .data import load_dataset, require_passed
 from .errors import OutputError
 from .record import build_record, dump_record, load_record, sha256_bytes, sha256_file
-from .render import render_html
+from .render import render_html, render_pdf
 from .spec import Spec, load_spec, spec_from_bytes
 from .tables import build_tables, canonical_bytes, results_digest
 
@@ -45,17 +44,35 @@ class Built:
     result: AnalysisResult
 
 
-def build_outputs(spec: Spec, version: int, source_spec: str,
-                  progress: Progress = lambda _: None) -> Built:
+class Timer:
+    """Wall-clock seconds per step (for the benchmarks; never written into a run)."""
+
+    def __init__(self) -> None:
+        self.seconds: dict[str, float] = {}
+        self._last = time.perf_counter()
+
+    def lap(self, step: str) -> None:
+        now = time.perf_counter()
+        self.seconds[step] = self.seconds.get(step, 0.0) + now - self._last
+        self._last = now
+
+
+def build_outputs(spec: Spec, version: int, progress: Progress = lambda _: None,
+                  timer: Timer | None = None) -> Built:
+    """Every output except record.json and report.pdf (which depend on the record)."""
+    clock = timer or Timer()
     dataset = load_dataset(spec)
     require_passed(dataset)
-    result = analyse(spec, dataset, progress)
+    clock.lap("data")
+    result = analyse(spec, dataset, progress, clock.lap)
     tables = canonical_bytes(build_tables(result))
     digest = results_digest(tables)
+    clock.lap("tables")
     progress("figures")
     from .figures import make_figures
 
     figures = make_figures(result)
+    clock.lap("figures")
     record_view = {
         "items": [
             ("spec sha256", spec.sha256),
@@ -63,16 +80,20 @@ def build_outputs(spec: Spec, version: int, source_spec: str,
             ("data bytes / rows", f"{dataset.n_bytes} / {dataset.rows_read}"),
             ("results sha256 (tables)", digest),
         ],
-        "commands": (f"reportgen run {source_spec}\n"
-                     f"reportgen verify {spec.report_id}/v{version:03d}"),
+        "commands": (f"reportgen run {spec.path.name} --out RUNS\n"
+                     f"reportgen verify RUNS/{spec.report_id}/v{version:03d}\n"
+                     "(RUNS: the folder that holds the runs; run from the spec's folder)"),
     }
     progress("html")
     html = render_html(result, version, record_view, figures)
+    clock.lap("html")
     files = dict(tables)
     files["report.html"] = html
     files["spec.yaml"] = spec.raw
     for name, (svg, _, _) in figures.items():
-        files[f"figures/{name}.svg"] = svg.encode("utf-8")
+        # The standalone file needs the namespace that the inline copy does without.
+        standalone = svg.replace("<svg ", '<svg xmlns="http://www.w3.org/2000/svg" ', 1)
+        files[f"figures/{name}.svg"] = standalone.encode("utf-8")
     return Built(files, digest, result)
 
 
@@ -99,9 +120,14 @@ def _write(path: Path, data: bytes) -> None:
         fh.write(data)
 
 
-def run_spec(spec_path: str | Path, out: str | Path, progress: Progress = lambda _: None
-             ) -> Path:
-    """Run a spec; returns the new run directory ``out/<id>/vNNN``."""
+def run_spec(spec_path: str | Path, out: str | Path, progress: Progress = lambda _: None,
+             timer: Timer | None = None) -> Path:
+    """Run a spec; returns the new run directory ``out/<id>/vNNN``.
+
+    record.json lists the hash of every file except itself and report.pdf: the PDF carries
+    record.json inside it, so its own hash cannot be in the record. ``verify`` checks the
+    PDF by re-rendering it from the verified HTML, spec and record.
+    """
     spec = load_spec(spec_path)
     folder = Path(out) / spec.report_id
     try:
@@ -113,13 +139,19 @@ def run_spec(spec_path: str | Path, out: str | Path, progress: Progress = lambda
         final = folder / f"v{version:03d}"
         source = os.path.relpath(spec.path, final.resolve())
         started = _timestamp()
-        built = build_outputs(spec, version, source, progress)
+        built = build_outputs(spec, version, progress, timer)
         for name, data in built.files.items():
             _write(building / name, data)
         outputs = {name: sha256_bytes(data) for name, data in built.files.items()}
-        record = build_record(built.result, version, started, _timestamp(), source,
-                              built.results_sha256, outputs)
-        _write(building / "record.json", dump_record(record))
+        finished = _timestamp()
+        record = dump_record(build_record(built.result, version, started, finished, source,
+                                          built.results_sha256, outputs))
+        progress("pdf")
+        pdf = render_pdf(built.files["report.html"], spec.raw, record, finished)
+        if timer is not None:
+            timer.lap("pdf")
+        _write(building / "report.pdf", pdf)
+        _write(building / "record.json", record)
         os.rename(building, final)
         return final
     except OSError as e:
@@ -148,12 +180,13 @@ def verify_run(run_dir: str | Path, progress: Progress = lambda _: None) -> list
     record = load_record(run)
     rows: list[VerifyRow] = []
     present = sorted(str(p.relative_to(run)) for p in run.rglob("*")
-                     if p.is_file() and p.name != "record.json")
+                     if p.is_file() and p.name not in ("record.json", "report.pdf"))
     for name in sorted(set(present) | set(record["outputs"])):
         rec = record["outputs"].get(name, "absent")
         now = sha256_file(run / name) if (run / name).is_file() else "absent"
         rows.append(VerifyRow(f"file {name}", rec, now))
     spec_bytes = (run / "spec.yaml").read_bytes() if (run / "spec.yaml").is_file() else b""
+    rows.append(_pdf_row(run, spec_bytes, record))
     rows.append(VerifyRow("spec sha256", record["spec"]["sha256"], sha256_bytes(spec_bytes)))
     source = (run / record["spec"]["source"]).resolve()
     spec = spec_from_bytes(spec_bytes, source)
@@ -162,8 +195,7 @@ def verify_run(run_dir: str | Path, progress: Progress = lambda _: None) -> list
         now = sha256_file(path) if path.is_file() else "absent"
         rows.append(VerifyRow(f"input {entry['path']}", entry["sha256"], now))
     progress("re-running the recorded spec")
-    built = build_outputs(spec, int(record["run"]["version"]), record["spec"]["source"],
-                          progress)
+    built = build_outputs(spec, int(record["run"]["version"]), progress)
     rows.append(VerifyRow("results sha256", record["results_sha256"], built.results_sha256))
     from .record import settings
 
@@ -179,5 +211,11 @@ def verify_run(run_dir: str | Path, progress: Progress = lambda _: None) -> list
     return rows
 
 
-def scratch_dir() -> Path:
-    return Path(tempfile.mkdtemp(prefix="reportgen-"))
+def _pdf_row(run: Path, spec_bytes: bytes, record: dict) -> VerifyRow:
+    """The stored PDF against a re-render from the stored HTML, spec and record."""
+    pdf, html = run / "report.pdf", run / "report.html"
+    if not pdf.is_file() or not html.is_file():
+        return VerifyRow("file report.pdf", "present", "absent")
+    expected = render_pdf(html.read_bytes(), spec_bytes, (run / "record.json").read_bytes(),
+                          str(record["run"]["finished"]))
+    return VerifyRow("file report.pdf", sha256_bytes(expected), sha256_file(pdf))
