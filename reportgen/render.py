@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import gc
+import warnings
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -211,6 +213,12 @@ def render_pdf(html: bytes, spec_bytes: bytes, record_bytes: bytes, stamp: str) 
                               created=when, modified=when),
     ]
     document = weasyprint.HTML(string=html.decode("utf-8"), base_url=None, url_fetcher=fetcher)
-    pdf = document.write_pdf(pdf_variant="pdf/a-3b", attachments=attachments,
-                             pdf_identifier=b"reportgen", uncompressed_pdf=False)
+    with warnings.catch_warnings():
+        # weasyprint 70 leaves its bundled sRGB profile file open (PDF/A output intent);
+        # collect it here so that the warning cannot surface later in unrelated code.
+        warnings.filterwarnings("ignore", message=r"unclosed file .*sRGB2014\.icc",
+                                category=ResourceWarning)
+        pdf = document.write_pdf(pdf_variant="pdf/a-3b", attachments=attachments,
+                                 pdf_identifier=b"reportgen", uncompressed_pdf=False)
+        gc.collect()
     return bytes(pdf)

@@ -1,0 +1,93 @@
+"""The report: sections, figures, alt text, escaping, no network references, PDF/A."""
+
+from __future__ import annotations
+
+import io
+import re
+from html.parser import HTMLParser
+from pathlib import Path
+
+import pypdf
+import pytest
+
+from reportgen.runner import build_outputs
+from reportgen.spec import load_spec
+
+from .conftest import ROOT
+
+SECTIONS = ["summary", "checks", "mean", "covariance", "components", "scores", "trajectories",
+            "residuals", "sensitivity", "caveats", "reproducibility"]
+FIGURES = 10
+
+
+class _Collector(HTMLParser):
+    def __init__(self) -> None:
+        super().__init__()
+        self.sections: list[str] = []
+        self.figures = 0
+        self.images: list[str | None] = []
+        self.th = 0
+        self.captions = 0
+
+    def handle_starttag(self, tag: str, attrs: list[tuple[str, str | None]]) -> None:
+        a = dict(attrs)
+        if tag == "section":
+            self.sections.append(a.get("id") or "")
+        elif tag == "figure":
+            self.figures += 1
+        elif a.get("role") == "img":
+            self.images.append(a.get("aria-label"))
+        elif tag == "th":
+            self.th += 1
+        elif tag in ("caption", "figcaption"):
+            self.captions += 1
+
+
+@pytest.mark.parametrize("example", ["clinic_visits", "pump_service"])
+def test_sections_figures_alt_text(regenerated: dict[str, Path], example: str) -> None:
+    html = (regenerated[example] / "report.html").read_text("utf-8")
+    c = _Collector()
+    c.feed(html)
+    assert c.sections == SECTIONS  # all present, in the order of the brief
+    assert c.figures == FIGURES and len(c.images) == FIGURES
+    assert all(label and len(label) > 20 for label in c.images)  # alt text on every figure
+    assert c.th > 20 and c.captions >= FIGURES + 6
+    for n in range(1, FIGURES + 1):
+        assert f"Figure {n}." in html
+    assert re.search(r"https?:", html) is None  # no network reference at all
+    for caution in ("not for decisions about an individual",
+                    "statistical analysis plan take precedence",
+                    "under the model&#39;s assumptions"):
+        assert caution in html
+    assert "<script" not in html
+
+
+def test_text_from_the_spec_is_escaped(tmp_path: Path) -> None:
+    spec_text = (ROOT / "specs" / "clinic_visits.yaml").read_text()
+    spec_text = spec_text.replace(
+        'title: "Marker trajectories after enrolment (fictional cohort)"',
+        'title: "<script>alert(1)</script> & <b>bold</b>"',
+    ).replace('authors: ["Example Analyst"]', 'authors: ["<img src=x onerror=alert(2)>"]')
+    (tmp_path / "s.yaml").write_text(spec_text)
+    (tmp_path / "clinic_visits.csv").write_bytes((ROOT / "specs" / "clinic_visits.csv")
+                                                 .read_bytes())
+    html = build_outputs(load_spec(tmp_path / "s.yaml"), 1).files["report.html"].decode()
+    assert "<script" not in html and "<img" not in html
+    assert "&lt;script&gt;alert(1)&lt;/script&gt; &amp; &lt;b&gt;bold&lt;/b&gt;" in html
+
+
+@pytest.mark.parametrize("example", ["clinic_visits", "pump_service"])
+def test_pdf_is_pdfa_with_attachments(regenerated: dict[str, Path], example: str) -> None:
+    run = regenerated[example]
+    reader = pypdf.PdfReader(io.BytesIO((run / "report.pdf").read_bytes()))
+    # Reference: pypdf, a general-purpose PDF reader. PDF/A declares itself in the XMP
+    # metadata with pdfaid:part and pdfaid:conformance (ISO 19005; from memory).
+    xmp = reader.trailer["/Root"]["/Metadata"].get_object().get_data().decode()
+    assert re.search(r'pdfaid:part(="|>)3', xmp), xmp[:500]
+    assert re.search(r'pdfaid:conformance(="|>)B', xmp)
+    attached = {name: data[0] for name, data in reader.attachments.items()}
+    assert attached["spec.yaml"] == (run / "spec.yaml").read_bytes()
+    assert attached["record.json"] == (run / "record.json").read_bytes()
+    assert 6 <= len(reader.pages) <= 20
+    first = reader.pages[0].extract_text()
+    assert "Summary" in first and "Contents" in first
