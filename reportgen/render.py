@@ -102,6 +102,12 @@ def build_sections(result: AnalysisResult, record_view: dict[str, Any],
             ["component", "eigenvalue", "FVE", "cumulative FVE"],
             [[k + 1, fit.all_eigenvalues[k], fit.fve[k], fit.cumulative_fve[k]]
              for k in range(min(fit.all_eigenvalues.size, 10))])
+    s.blocks.append({"kind": "text", "text": (
+        f"{fit.all_eigenvalues.size} eigenvalues of the smoothed surface are positive; "
+        f"{fit.dropped_eigenvalues} negative or numerically zero ones were dropped (the "
+        f"negative ones sum to {fit.dropped_negative_sum:.3g}, "
+        f"{fit.dropped_negative_sum / fit.all_eigenvalues.sum():.1%} of the positive total). "
+        "FVE is relative to the positive total.")})
     sel = fit.selection
     b.table(s, f"Component selection: every criterion; the rule used was {sel.rule}. AIC, BIC "
             f"and cv were computed over {sel.n_subjects_used} subjects.",

@@ -6,7 +6,8 @@ clinic_visits.csv  A fictional cohort: a blood marker (arbitrary units) read at 
                    clinic visits over the 104 weeks after enrolment; 160 patients, 1 to 9
                    visits each, visits more frequent early on.
 pump_service.csv   Fictional equipment: vibration level (mm/s) of water pumps read at
-                   unscheduled service calls over 36 months; 120 pumps, 2 to 7 calls each.
+                   unscheduled service calls over 36 months; 200 pumps, 2 to 7 calls each,
+                   with multiplicative reading error (15% on the log scale).
 """
 
 from __future__ import annotations
@@ -41,7 +42,7 @@ def clinic_visits(seed: int = 20261201) -> pd.DataFrame:
 
 def pump_service(seed: int = 4242) -> pd.DataFrame:
     rng = np.random.default_rng(seed)
-    n = 120
+    n = 200
     rows = []
     for i in range(n):
         m = rng.integers(2, 8)
@@ -49,7 +50,7 @@ def pump_service(seed: int = 4242) -> pd.DataFrame:
         wear = rng.lognormal(0, 0.35)
         shift = rng.normal(0, 0.6)
         level = 2.0 + 0.08 * wear * times + shift + 0.4 * np.cos(2 * np.pi * times / 12)
-        for t, v in zip(times, level + rng.normal(0, 0.25, m), strict=True):
+        for t, v in zip(times, level * np.exp(rng.normal(0, 0.15, m)), strict=True):
             rows.append((f"pump-{i + 1:03d}", float(t), round(float(v), 3)))
     return pd.DataFrame(rows, columns=["pump", "month", "vibration"])
 

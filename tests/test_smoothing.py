@@ -85,9 +85,10 @@ def test_local_polynomials_reproduce_their_degree() -> None:
         local_linear_binned_2d(ev, c, counts, plane, 0.4),
         1.0 + 2.0 * ev[:, None] - 0.5 * ev[None, :], atol=1e-10,
     )
-    quad = 1.0 + s * t - 0.3 * s**2 + 0.7 * t**2
+    # The rotated fit is linear along the diagonal and quadratic across it.
+    ridge = 1.0 + (s + t) - 0.4 * (s - t) ** 2
     np.testing.assert_allclose(
-        local_quadratic_diagonal_2d(ev, c, counts, quad, 0.5), 1.0 + 1.4 * ev**2, atol=1e-9
+        local_quadratic_diagonal_2d(ev, c, counts, ridge, 0.5), 1.0 + 2.0 * ev, atol=1e-9
     )
     np.testing.assert_allclose(
         local_linear_binned_1d(ev, c, np.ones(41), 3.0 - c, 0.3), 3.0 - ev, atol=1e-12

@@ -125,6 +125,9 @@ class FPCAFit:
     pair_grid : ndarray of shape (n_bins,)
     n_readings : int
     dropped_eigenvalues : int
+        Eigenvalues of the surface that were negative or numerically zero.
+    dropped_negative_sum : float
+        Sum of the absolute values of the negative ones (a warning above 1% of the total).
     warnings : tuple of str
         Floors, dropped eigenvalues and bandwidths at the end of their range.
     options : FPCAOptions
@@ -152,6 +155,7 @@ class FPCAFit:
     pair_grid: FloatArray
     n_readings: int
     dropped_eigenvalues: int
+    dropped_negative_sum: float
     warnings: tuple[str, ...]
     options: FPCAOptions
     _mean_fine: tuple[FloatArray, FloatArray] = field(repr=False)
@@ -430,7 +434,8 @@ def fit_arrays(
     # 3.-4. eigen-decomposition, error variance
     eig = eigen_decompose(grid, cov)
     messages += _edge_warning(mean_choice, "mean") + _edge_warning(cov_choice, "covariance")
-    if eig.dropped_sum > 0:
+    # Smoothing always leaves some small negative eigenvalues; warn when they are material.
+    if eig.dropped_sum > 0.01 * eig.values.sum():
         messages.append(
             f"{eig.n_dropped} non-positive eigenvalues of the covariance surface were dropped "
             f"(negative ones sum to {eig.dropped_sum:.3g}, "
@@ -460,6 +465,7 @@ def fit_arrays(
         score_values=_frozen(scores), score_cov=_frozen(score_cov),
         pair_counts=_frozen(pstats.offdiag.counts.sum(axis=0)), pair_grid=_frozen(cbins.centers),
         n_readings=int(sample.t.size), dropped_eigenvalues=eig.n_dropped,
+        dropped_negative_sum=eig.dropped_sum,
         warnings=tuple(messages), options=options,
         _mean_fine=(_frozen(mbins.centers), _frozen(fine)),
     )

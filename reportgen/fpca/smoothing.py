@@ -282,36 +282,54 @@ def equivalent_kernel_1d(
     return np.where(ok[:, None], weights, np.nan)
 
 
+def _poly_mul(f: dict[tuple[int, int], float], g: dict[tuple[int, int], float]
+              ) -> dict[tuple[int, int], float]:
+    out: dict[tuple[int, int], float] = {}
+    for (p1, q1), c1 in f.items():
+        for (p2, q2), c2 in g.items():
+            key = (p1 + p2, q1 + q2)
+            out[key] = out.get(key, 0.0) + c1 * c2
+    return out
+
+
+# Basis of the rotated local fit at a diagonal point x, in a = s - x and b = t - x:
+# 1, u = (a + b) / 2 (linear along the diagonal), w^2 = (a - b)^2 (quadratic across it).
+# The odd term w drops out: the binned raw covariances are symmetric in (s, t).
+_ROTATED_BASIS: tuple[dict[tuple[int, int], float], ...] = (
+    {(0, 0): 1.0},
+    {(1, 0): 0.5, (0, 1): 0.5},
+    {(2, 0): 1.0, (1, 1): -2.0, (0, 2): 1.0},
+)
+
+
 def local_quadratic_diagonal_2d(
     eval_x: FloatArray, centers: FloatArray, counts: FloatArray, sums: FloatArray, h: float,
     kernel: Kernel = epanechnikov,
 ) -> FloatArray:
-    """Local quadratic surface from binned data, evaluated on the diagonal only: G(x, x).
+    """Surface value on the diagonal, G(x, x), from a rotated local fit to binned data.
 
     A covariance surface has a ridge along its diagonal; a local plane through binned
     off-diagonal data underestimates it, which inflates the error variance obtained by
-    subtraction. A local quadratic removes that first-order bias (the reason for the
-    quadratic fit across the diagonal in Yao, Müller & Wang 2005, sec. 2.2). The six
-    coefficients need the moments S_pq, p + q <= 4, which are computed only at the
-    diagonal points ``(x, x)``: O(n_eval x n_bins^2).
+    subtraction. Following Yao, Müller & Wang (2005, sec. 2.2; from memory), the fit is
+    linear along the diagonal and quadratic across it (basis 1, u, w^2 with u the
+    diagonal and w the orthogonal direction): three coefficients, so it removes the ridge
+    bias without the variance of a full six-term quadratic. Moments S_pq (p + q <= 4) are
+    computed only at the diagonal points: O(n_eval x n_bins^2).
     """
-    w, wd, wdd = _weight_matrices(eval_x, centers, h, kernel)
-    powers = [w, wd, wdd, wdd * (centers[None, :] - np.asarray(eval_x)[:, None])]
-    powers.append(powers[3] * (centers[None, :] - np.asarray(eval_x)[:, None]))
-    left_c = [p @ counts for p in powers[:5]]  # (E, G) = A_p C
+    x = np.asarray(eval_x, dtype=np.float64)
+    w, wd, wdd = _weight_matrices(x, centers, h, kernel)
+    d = centers[None, :] - x[:, None]
+    powers = [w, wd, wdd, wdd * d, wdd * d * d]
+    left_c = [p @ counts for p in powers]  # (E, G): A_p C
     left_s = [p @ sums for p in powers[:3]]
 
-    def s(p: int, q: int) -> FloatArray:
-        return np.sum(left_c[p] * powers[q], axis=1)
+    def moment(poly: dict[tuple[int, int], float], left: list[FloatArray]) -> FloatArray:
+        return sum(c * np.sum(left[p] * powers[q], axis=1) for (p, q), c in poly.items())
 
-    def tt(p: int, q: int) -> FloatArray:
-        return np.sum(left_s[p] * powers[q], axis=1)
-
-    # basis 1, u, v, u^2, uv, v^2 with u = s - x, v = t - x: exponents (p, q)
-    basis = [(0, 0), (1, 0), (0, 1), (2, 0), (1, 1), (0, 2)]
-    m = np.stack([np.stack([s(a + c, b + d) for (c, d) in basis], axis=-1)
-                  for (a, b) in basis], axis=-2)
-    rhs = np.stack([tt(a, b) for (a, b) in basis], axis=-1)
+    basis = _ROTATED_BASIS
+    m = np.stack([np.stack([moment(_poly_mul(f, g), left_c) for g in basis], axis=-1)
+                  for f in basis], axis=-2)
+    rhs = np.stack([moment(f, left_s) for f in basis], axis=-1)
     scale = np.sqrt(np.abs(np.einsum("eii->ei", m)))
     scale[scale == 0] = 1.0
     ms = m / scale[:, :, None] / scale[:, None, :]
