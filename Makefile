@@ -23,7 +23,7 @@ demo: $(STAMP)
 	$(BIN)/reportgen demo
 
 bench: $(STAMP)
-	$(BIN)/python benchmarks/run.py
+	$(BIN)/python benchmarks/run.py --write
 
 clean:
 	rm -rf $(VENV) .pytest_cache .mypy_cache .ruff_cache

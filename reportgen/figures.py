@@ -24,7 +24,8 @@ STYLE = {
     "font.size": 9, "axes.titlesize": 10, "axes.labelsize": 9, "axes.grid": True,
     "grid.color": "#dde2ea", "grid.linewidth": 0.6, "axes.edgecolor": "#5b6578",
     "axes.prop_cycle": cycler(color=PALETTE), "svg.hashsalt": "reportgen",
-    "svg.fonttype": "path", "figure.dpi": 100, "lines.linewidth": 1.6,
+    "svg.fonttype": "none", "font.family": "DejaVu Sans", "figure.dpi": 100,
+    "lines.linewidth": 1.6,
 }
 MAX_POINTS = 4000  # above this, scatter plots become densities
 
@@ -46,7 +47,8 @@ def inline_svg(text: str, prefix: str) -> str:
 def _svg(fig: plt.Figure, name: str) -> str:
     buf = io.StringIO()
     fig.tight_layout()
-    fig.savefig(buf, format="svg", metadata={"Date": None, "Creator": None}, bbox_inches="tight")
+    fig.savefig(buf, format="svg", metadata={"Date": None, "Creator": None}, bbox_inches="tight",
+                dpi=150)
     plt.close(fig)
     return inline_svg(buf.getvalue(), name)
 
@@ -88,7 +90,8 @@ def _make(r: AnalysisResult) -> dict[str, tuple[str, str, str]]:
                      "Heat map of the density of within-subject time pairs.")
 
     fig, ax = plt.subplots(figsize=(6, 3.2))
-    ax.hexbin(frame.time, frame.value, gridsize=40, cmap="Greys", mincnt=1, linewidths=0)
+    ax.hexbin(frame.time, frame.value, gridsize=40, cmap="Greys", mincnt=1, linewidths=0,
+              rasterized=True)
     z = fit.band_multiplier()
     ax.fill_between(g, fit.mean - z * fit.mean_se, fit.mean + z * fit.mean_se,
                     color=PALETTE[1], alpha=0.3, linewidth=0)
@@ -105,6 +108,7 @@ def _make(r: AnalysisResult) -> dict[str, tuple[str, str, str]]:
     for ax, surf, title in ((axes[0], cov, "covariance"),
                             (axes[1], np.clip(cov / np.outer(sd, sd), -1, 1), "correlation")):
         cs = ax.contourf(g, g, surf, levels=12, cmap="RdBu_r")
+        cs.set_rasterized(True)
         fig.colorbar(cs, ax=ax)
         ax.set_title(title)
         ax.set_xlabel(tl)
@@ -143,9 +147,10 @@ def _make(r: AnalysisResult) -> dict[str, tuple[str, str, str]]:
     sc = fit.score_values
     y2 = sc[:, 1] if fit.n_components > 1 else np.zeros(len(sc))
     if len(sc) > MAX_POINTS:
-        ax.hexbin(sc[:, 0], y2, gridsize=40, cmap="Greys", mincnt=1, linewidths=0)
+        ax.hexbin(sc[:, 0], y2, gridsize=40, cmap="Greys", mincnt=1, linewidths=0, rasterized=True)
     else:
-        ax.scatter(sc[:, 0], y2, s=8, color=PALETTE[0], alpha=0.6, linewidths=0)
+        ax.scatter(sc[:, 0], y2, s=8, color=PALETTE[0], alpha=0.6, linewidths=0,
+                   rasterized=True)
     flagged = r.outliers.flagged.to_numpy()
     ax.scatter(sc[flagged, 0], y2[flagged], s=18, facecolors="none", edgecolors=PALETTE[1],
                label="flagged")
@@ -184,7 +189,7 @@ def _make(r: AnalysisResult) -> dict[str, tuple[str, str, str]]:
                       linewidths=0)
         else:
             ax.scatter(res[xcol], res.standardized, s=5, color=PALETTE[0], alpha=0.5,
-                       linewidths=0)
+                       linewidths=0, rasterized=True)
         ax.axhline(0, color="#888", linewidth=0.8)
         ax.set_xlabel(xl)
         ax.set_ylabel("standardized residual")
@@ -192,7 +197,7 @@ def _make(r: AnalysisResult) -> dict[str, tuple[str, str, str]]:
     if q.size > MAX_POINTS:
         q = q[np.linspace(0, q.size - 1, MAX_POINTS).astype(int)]
     theo = sps.norm.ppf((np.arange(q.size) + 0.5) / q.size)
-    axes[2].plot(theo, q, ".", markersize=2, color=PALETTE[0])
+    axes[2].plot(theo, q, ".", markersize=2, color=PALETTE[0], rasterized=True)
     axes[2].plot(theo, theo, color="#888", linewidth=0.8)
     axes[2].set_xlabel("normal quantile")
     axes[2].set_ylabel("residual quantile")

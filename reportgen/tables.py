@@ -67,12 +67,11 @@ def build_tables(result: AnalysisResult) -> dict[str, pd.DataFrame]:
             row[f"similarity_{j + 1}"] = run.similarity[j] if run.similarity else np.nan
         rows.append(row)
     tables["sensitivity"] = pd.DataFrame(rows)
-    tables["residuals_by_subject"] = (
-        result.residuals.groupby("subject", sort=True)
-        .agg(n_obs=("residual", "size"), mean_residual=("residual", "mean"),
-             rms_standardized=("standardized", lambda s: float(np.sqrt(np.mean(s**2)))))
-        .reset_index()
-    )
+    res = result.residuals.assign(sq=result.residuals.standardized ** 2)
+    per = res.groupby("subject", sort=True).agg(
+        n_obs=("residual", "size"), mean_residual=("residual", "mean"), ms=("sq", "mean"))
+    per["rms_standardized"] = np.sqrt(per.pop("ms"))
+    tables["residuals_by_subject"] = per.reset_index()
     return tables
 
 

@@ -37,7 +37,18 @@ def trapezoid_weights(grid: FloatArray) -> FloatArray:
 
 
 def evaluate_at(t: FloatArray, grid: FloatArray, funcs: FloatArray) -> FloatArray:
-    """Columns of ``funcs`` (functions on ``grid``) at times ``t`` by linear interpolation."""
+    """Columns of ``funcs`` (functions on ``grid``) at times ``t`` by linear interpolation.
+
+    Times outside the grid take the end values (as ``np.interp``). On a regular grid the
+    bracketing index is computed directly, for all columns at once.
+    """
+    t = np.asarray(t, dtype=np.float64)
+    step = np.diff(grid)
+    if grid.size > 1 and np.allclose(step, step[0], rtol=1e-9, atol=0.0):
+        pos = np.clip((t - grid[0]) / step[0], 0.0, grid.size - 1.0)
+        left = np.minimum(pos.astype(np.intp), grid.size - 2)
+        frac = (pos - left)[:, None]
+        return funcs[left] * (1.0 - frac) + funcs[left + 1] * frac
     out = np.empty((t.size, funcs.shape[1]))
     for k in range(funcs.shape[1]):
         out[:, k] = np.interp(t, grid, funcs[:, k])

@@ -136,7 +136,6 @@ class PairStats:
 
 def pair_stats(
     sample: Sample, resid: FloatArray, grid: BinGrid, folds: IntArray, n_folds: int,
-    located: tuple[IntArray, FloatArray] | None = None,
 ) -> PairStats:
     """Bin all within-subject pairs of residuals without forming the pairs.
 
@@ -145,68 +144,80 @@ def pair_stats(
     ``sum_i u_i u_i^T - sum_ij r_ij^2 b b^T`` and the pair counts are
     ``sum_i v_i v_i^T - sum_ij b b^T``. The first terms are one matrix product per block
     of subjects and fold (rows of a block are ordered by fold, so each fold is a slice);
-    the second are bincounts over readings.
+    the second are bincounts over the block's readings.
+
+    Everything per reading is computed block by block (a few thousand subjects at a time):
+    the temporaries stay small and in cache, and no array of the size of the data is
+    allocated here.
     """
     g = grid.n_bins
-    left, frac = grid.locate(sample.t) if located is None else located
-    wl = 1.0 - frac
-    obs_fold = folds[sample.subject]
-    r2 = resid * resid
-
     sums = np.zeros((n_folds, g, g))
     counts = np.zeros((n_folds, g, g))
+    # b b^T terms per fold and left bin: weights wl^2, f^2 and wl f, unweighted and r^2-weighted
+    outer = np.zeros((6, n_folds * g))
+    dcounts = np.zeros(n_folds * g + 1)
+    dsums = np.zeros(n_folds * g + 1)
+    sumsq = np.zeros(n_folds)
+    r4 = np.zeros(n_folds)
+    n_read = np.zeros(n_folds)
     starts = np.append(sample.starts, sample.subject.size)
     for b0 in range(0, sample.n_subjects, _BLOCK):
         b1 = min(b0 + _BLOCK, sample.n_subjects)
         o0, o1 = starts[b0], starts[b1]
+        local_subject = sample.subject[o0:o1] - b0
+        left, frac = grid.locate(sample.t[o0:o1])
+        wl = 1.0 - frac
+        r = resid[o0:o1]
+        r2 = r * r
         block_folds = folds[b0:b1]
+        obs_fold = block_folds[local_subject]
+
         order = np.argsort(block_folds, kind="stable")
         rank = np.empty_like(order)
         rank[order] = np.arange(order.size)
         bounds = np.searchsorted(block_folds[order], np.arange(n_folds + 1))
-        row = rank[sample.subject[o0:o1] - b0] * g + left[o0:o1]
+        row = rank[local_subject] * g + left
         index = np.concatenate((row, row + 1))
+        w = np.concatenate((wl, frac))
         size = (b1 - b0) * g
-        w = np.concatenate((wl[o0:o1], frac[o0:o1]))
         v = np.bincount(index, w, size).reshape(-1, g)
-        u = np.bincount(index, w * np.tile(resid[o0:o1], 2), size).reshape(-1, g)
+        u = np.bincount(index, w * np.concatenate((r, r)), size).reshape(-1, g)
         for f in range(n_folds):
             uf, vf = u[bounds[f]:bounds[f + 1]], v[bounds[f]:bounds[f + 1]]
             sums[f] += uf.T @ uf
             counts[f] += vf.T @ vf
+
+        cell = obs_fold * g + left
+        for k, weight in enumerate((wl * wl, frac * frac, wl * frac)):
+            outer[k] += np.bincount(cell, weight, n_folds * g)
+            outer[3 + k] += np.bincount(cell, weight * r2, n_folds * g)
+        dcounts += np.bincount(cell, wl, n_folds * g + 1)
+        dcounts[1:] += np.bincount(cell, frac, n_folds * g)
+        dsums += np.bincount(cell, wl * r2, n_folds * g + 1)
+        dsums[1:] += np.bincount(cell, frac * r2, n_folds * g)
+        # (sum_j r^2)^2 - sum_j r^4 per subject: the squared raw covariances of its pairs
+        subj_r2 = np.bincount(local_subject, r2, b1 - b0)
+        sumsq += np.bincount(block_folds, subj_r2 * subj_r2, n_folds)
+        r4 += np.bincount(obs_fold, r2 * r2, n_folds)
+        n_read += np.bincount(obs_fold, minlength=n_folds)
     cross = sums.sum(axis=0)  # u_i u_i^T summed, diagonal terms included
 
-    # Diagonal terms b b^T of each reading: (i,i) wl^2, (i+1,i+1) f^2, (i,i+1) and (i+1,i) wl f.
-    index = obs_fold * g + left
-    size = n_folds * g
-    a, b, c = wl * wl, frac * frac, wl * frac
     rows, cols = np.arange(g - 1), np.arange(1, g)
 
-    def outer_terms(weight: FloatArray | None) -> FloatArray:
+    def outer_terms(k0: int) -> FloatArray:
+        ta, tb, tc = (outer[k0 + k].reshape(n_folds, g)[:, :-1] for k in range(3))
         out = np.zeros((n_folds, g, g))
-        ta, tb, tc = ((np.bincount(index, x if weight is None else weight * x, size)
-                       .reshape(n_folds, g)) for x in (a, b, c))
-        out[:, rows, rows] += ta[:, :-1]
-        out[:, cols, cols] += tb[:, :-1]
-        out[:, rows, cols] += tc[:, :-1]
-        out[:, cols, rows] += tc[:, :-1]
+        out[:, rows, rows] += ta
+        out[:, cols, cols] += tb
+        out[:, rows, cols] += tc
+        out[:, cols, rows] += tc
         return out
 
-    sums -= outer_terms(r2)
-    counts -= outer_terms(None)
-
-    # Sum of squared raw covariances over pairs j != l: (sum_j r^2)^2 - sum_j r^4 per subject.
-    per_subject_r2 = np.add.reduceat(r2, sample.starts)
-    per_subject_r4 = np.add.reduceat(r2 * r2, sample.starts)
-    sumsq = np.bincount(folds, per_subject_r2**2 - per_subject_r4, n_folds)
+    counts -= outer_terms(0)
+    sums -= outer_terms(3)
     n_pairs = np.bincount(folds, (sample.n_obs * (sample.n_obs - 1)).astype(np.float64), n_folds)
-    offdiag = BinnedStats(counts, sums, sumsq, n_pairs)
-
-    dcounts = (np.bincount(index, wl, size) + np.bincount(index + 1, frac, size))
-    dsums = (np.bincount(index, wl * r2, size) + np.bincount(index + 1, frac * r2, size))
-    diag = BinnedStats(
-        dcounts.reshape(n_folds, g), dsums.reshape(n_folds, g),
-        np.bincount(obs_fold, r2 * r2, n_folds),
-        np.bincount(obs_fold, minlength=n_folds).astype(np.float64),
-    )
+    offdiag = BinnedStats(counts, sums, sumsq - r4, n_pairs)
+    # A left bin never is the last one, so the shifted sums stay inside each fold's row.
+    diag = BinnedStats(dcounts[:-1].reshape(n_folds, g), dsums[:-1].reshape(n_folds, g), r4,
+                       n_read)
     return PairStats(offdiag, diag, cross)

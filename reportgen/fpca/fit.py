@@ -72,7 +72,7 @@ class FPCAOptions:
     fve_threshold: float = 0.95
     n_components: int | None = None
     max_components: int = 8
-    criteria_max_subjects: int = 10000
+    criteria_max_subjects: int = 5000
     error_variance_floor: float = 1e-3
     band_level: float = 0.95
     seed: int = 0
@@ -302,10 +302,10 @@ def _choose_bandwidth(
     else:
         def smooth(ev: FloatArray | None, c: FloatArray, s: FloatArray, h: float) -> FloatArray:
             return local_linear_binned_2d(
-                bins.centers if ev is None else ev, bins.centers, c, s, h, kernel)
+                bins.centers if ev is None else ev, bins.centers, c, s, h, kernel, True)
 
         def hat(c: FloatArray, h: float) -> FloatArray:
-            return hat_diagonal_2d(bins.centers, c, h, kernel)
+            return hat_diagonal_2d(bins.centers, c, h, kernel, True)
 
     if setting != "auto":
         h = float(setting)
@@ -476,7 +476,8 @@ def _surfaces(
 ) -> tuple[FloatArray, FloatArray, FloatArray]:
     """Covariance surface, variance of single readings, and the surface's diagonal (ridge)."""
     off, dg = pstats.offdiag.total(), pstats.diag.total()
-    cov = local_linear_binned_2d(grid, cbins.centers, off.counts[0], off.sums[0], h, kernel)
+    cov = local_linear_binned_2d(grid, cbins.centers, off.counts[0], off.sums[0], h, kernel,
+                                 symmetric=True)
     cov = 0.5 * (cov + cov.T)
     diag_var = local_linear_binned_1d(grid, cbins.centers, dg.counts[0], dg.sums[0], h, kernel)
     if not np.all(np.isfinite(diag_var)):

@@ -24,9 +24,6 @@ from .components import evaluate_at
 from .design import IntArray, Sample
 from .smoothing import FloatArray
 
-# Readings per chunk when summing outer products (bounds memory at chunk x K x K doubles).
-_CHUNK = 1 << 18
-
 
 def conditional_scores(
     starts: IntArray, resid: FloatArray, phi_obs: FloatArray, eigenvalues: FloatArray,
@@ -51,7 +48,9 @@ def conditional_scores(
     scores : ndarray of shape (n_subjects, K)
     error_cov : ndarray of shape (n_subjects, K, K)
     """
-    gram, cross = _subject_sums(starts, resid, phi_obs)
+    n_subj = starts.size
+    owner = np.repeat(np.arange(n_subj), np.diff(np.append(starts, resid.size)))
+    gram, cross = _subject_sums(owner, n_subj, resid, phi_obs)
     precision = gram / sigma2 + np.diag(1.0 / eigenvalues)
     error_cov = np.linalg.inv(precision)
     scores = np.einsum("ijk,ik->ij", error_cov, cross / sigma2)
@@ -59,28 +58,23 @@ def conditional_scores(
 
 
 def _subject_sums(
-    starts: IntArray, resid: FloatArray, phi_obs: FloatArray
+    owner: IntArray, n_subjects: int, resid: FloatArray, phi_obs: FloatArray
 ) -> tuple[FloatArray, FloatArray]:
     """Per subject: Phi_i' Phi_i, shape (n, K, K), and Phi_i' r_i, shape (n, K).
 
-    Sums of per-reading outer products by subject (``np.add.reduceat``), in chunks of about
-    ``_CHUNK`` readings so that memory stays at chunk x K x K doubles.
+    ``owner`` gives the subject row of each reading. One weighted bincount per entry of the
+    upper triangle (K (K + 1) / 2 of them) and per column of Phi' r: no (n_obs, K, K)
+    temporary and no loop over subjects.
     """
-    n_subj, k = starts.size, phi_obs.shape[1]
-    n_obs = resid.size
-    gram = np.empty((n_subj, k, k))
-    cross = np.empty((n_subj, k))
-    ends = np.append(starts[1:], n_obs)
-    s0 = 0
-    while s0 < n_subj:
-        s1 = int(np.searchsorted(starts, starts[s0] + _CHUNK, side="right"))
-        s1 = min(max(s1, s0 + 1), n_subj)
-        o0, o1 = starts[s0], ends[s1 - 1]
-        p = phi_obs[o0:o1]
-        local = starts[s0:s1] - o0
-        gram[s0:s1] = np.add.reduceat(p[:, :, None] * p[:, None, :], local, axis=0)
-        cross[s0:s1] = np.add.reduceat(p * resid[o0:o1, None], local, axis=0)
-        s0 = s1
+    k = phi_obs.shape[1]
+    gram = np.empty((n_subjects, k, k))
+    for a in range(k):
+        for b in range(a, k):
+            gram[:, a, b] = np.bincount(owner, phi_obs[:, a] * phi_obs[:, b], n_subjects)
+            gram[:, b, a] = gram[:, a, b]
+    cross = np.column_stack(
+        [np.bincount(owner, phi_obs[:, a] * resid, n_subjects) for a in range(k)]
+    ) if k else np.zeros((n_subjects, 0))
     return gram, cross
 
 
@@ -112,8 +106,8 @@ def component_criteria(
     first = np.concatenate(([0], np.cumsum(n_i)[:-1])).astype(np.intp)
     idx = sample.starts[subjects][owner] + (np.arange(owner.size) - first[owner])
     r = resid[idx]
-    phi = evaluate_at(sample.t[idx], grid, eigenfunctions)
-    gram, cross = _subject_sums(first, r, phi)
+    phi = evaluate_at(sample.t[idx], grid, eigenfunctions)  # (readings used, K_max)
+    gram, cross = _subject_sums(owner, subjects.size, r, phi)
     rr = np.bincount(owner, r * r, subjects.size)
     multi = n_i[owner] >= 2
     loglik = np.zeros(k_max)
@@ -131,7 +125,9 @@ def component_criteria(
         if np.any(multi):
             pk, own = phi[multi, :k], owner[multi]
             sinv_r = r[multi] / s2 - np.sum(pk * a_c[own], axis=1) / s2**2
-            pa = np.matmul(pk[:, None, :], a_inv[own])[:, 0, :]
+            # owner is non-decreasing, so repeating each subject's matrix is a sequential copy
+            a_rows = np.repeat(a_inv[n_i >= 2], n_i[n_i >= 2], axis=0)
+            pa = np.matmul(pk[:, None, :], a_rows)[:, 0, :]
             sinv_diag = 1.0 / s2 - np.sum(pa * pk, axis=1) / s2**2
             loo[k - 1] = float(np.mean((sinv_r / sinv_diag) ** 2))
     return loglik, loo

@@ -1,0 +1,307 @@
+"""Speed and scale benchmarks of reportgen (not part of the test run).
+
+Run:  make bench            (or: .venv/bin/python benchmarks/run.py [--quick] [--write])
+
+Prints, for simulated data on [0, 1] with 1 to 15 readings per subject (8 on average):
+1. the full fit (mean, covariance, automatic bandwidths, components, scores) for 10^3 ..
+   10^6 subjects: median of 3 runs, the floor (one pandas groupby(subject) mean over the
+   same rows, same process), their ratio and the peak resident memory (each size runs in a
+   fresh process so that the peak is its own);
+2. binned against exact smoothing at the same bandwidth (1-D mean and 2-D covariance):
+   time ratio and the largest difference relative to the range, at the boundary (within
+   one bandwidth of an end) and inside;
+3. the scores step: batched against a plain loop over subjects;
+4. end-to-end `reportgen run` for the demo spec and for a 10^5-subject spec, split into
+   data, fit, sensitivity, tables, figures, HTML and PDF.
+With --write the tables also go to benchmarks/RESULTS.md, with the machine they came from.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import platform
+import resource
+import shutil
+import statistics
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+ROOT = Path(__file__).resolve().parents[1]
+sys.path.insert(0, str(ROOT))
+
+from reportgen.fpca import FPCAOptions, fit_arrays  # noqa: E402
+from reportgen.fpca.design import Sample, assign_folds, pair_stats  # noqa: E402
+from reportgen.fpca.scores import conditional_scores  # noqa: E402
+from reportgen.fpca.smoothing import (  # noqa: E402
+    BinGrid,
+    bin_1d,
+    local_linear_binned_1d,
+    local_linear_binned_2d,
+    local_linear_exact_1d,
+)
+
+
+def simulate(n: int, seed: int = 0) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    rng = np.random.default_rng(seed)
+    m = rng.integers(1, 16, n)
+    subj = np.repeat(np.arange(n), m)
+    t = rng.uniform(0, 1, subj.size)
+    xi = rng.normal(size=(n, 2)) * [1.0, 0.5]
+    phi1, phi2 = np.sqrt(2) * np.cos(np.pi * t), np.sqrt(2) * np.sin(np.pi * t)
+    y = np.sin(2 * np.pi * t) + xi[subj, 0] * phi1 + xi[subj, 1] * phi2
+    return subj, t, y + rng.normal(0, 0.3, t.size)
+
+
+def table(header: list[str], rows: list[list[str]]) -> str:
+    widths = [max(len(h), *(len(r[i]) for r in rows)) for i, h in enumerate(header)]
+    line = "| " + " | ".join(h.ljust(w) for h, w in zip(header, widths, strict=True)) + " |"
+    rule = "|" + "|".join("-" * (w + 2) for w in widths) + "|"
+    body = ["| " + " | ".join(c.ljust(w) for c, w in zip(r, widths, strict=True)) + " |"
+            for r in rows]
+    return "\n".join([line, rule, *body])
+
+
+# --- 1. fit scale (one size per process) ---------------------------------------------------
+
+
+def one_size(n: int, repeats: int) -> dict[str, float]:
+    subj, t, y = simulate(n)
+    labels = np.arange(n)
+    fits, floors = [], []
+    for _ in range(repeats):
+        t0 = time.perf_counter()
+        fit_arrays(subj, t, y, labels, FPCAOptions())
+        fits.append(time.perf_counter() - t0)
+        frame = pd.DataFrame({"s": subj, "y": y})
+        t0 = time.perf_counter()
+        frame.groupby("s")["y"].mean()
+        floors.append(time.perf_counter() - t0)
+        del frame
+    peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+    return {"n": n, "readings": int(t.size), "fit": statistics.median(fits),
+            "floor": statistics.median(floors), "peak_mb": peak}
+
+
+def fit_scale(sizes: list[int], repeats: int) -> tuple[str, list[dict[str, float]]]:
+    results = []
+    for n in sizes:
+        out = subprocess.run([sys.executable, __file__, "--one", str(n), "--repeats",
+                              str(repeats)], capture_output=True, text=True, check=True)
+        results.append(json.loads(out.stdout.strip().splitlines()[-1]))
+    rows = [[f"{r['n']:,}", f"{r['readings']:,}", f"{r['fit']:.3f}", f"{r['floor']:.3f}",
+             f"{r['fit'] / r['floor']:.1f}", f"{r['peak_mb']:.0f}"] for r in results]
+    text = table(["subjects", "readings", "fit s (median)", "floor s", "fit / floor",
+                  "peak MB"], rows)
+    if len(results) >= 2 and results[-2]["n"] * 10 == results[-1]["n"]:
+        text += (f"\n\ngrowth {results[-1]['n']:,} / {results[-2]['n']:,}: "
+                 f"{results[-1]['fit'] / results[-2]['fit']:.1f}x")
+    return text, results
+
+
+# --- 2. binned against exact ---------------------------------------------------------------
+
+
+def _rel_diff(binned: np.ndarray, exact: np.ndarray, boundary: np.ndarray) -> tuple[float, float]:
+    span = float(np.nanmax(exact) - np.nanmin(exact))
+    diff = np.abs(binned - exact) / span
+    return float(np.nanmax(diff[boundary])), float(np.nanmax(diff[~boundary]))
+
+
+def binned_vs_exact(n: int) -> str:
+    subj, t, y = simulate(n)
+    rows = []
+    # 1-D mean at the demo grid (101 points), bandwidth of the order CV picks at this size
+    h = 0.05
+    ev = np.linspace(0, 1, 101)
+    t0 = time.perf_counter()
+    grid = BinGrid(0.0, 1.0, 401)
+    counts, sums = bin_1d(grid, t, y)
+    binned = local_linear_binned_1d(ev, grid.centers, counts[0], sums[0], h)
+    tb = time.perf_counter() - t0
+    t0 = time.perf_counter()
+    exact = np.concatenate([local_linear_exact_1d(ev[i:i + 10], t, y, h)
+                            for i in range(0, ev.size, 10)])
+    te = time.perf_counter() - t0
+    edge = (ev < h) | (ev > 1 - h)
+    b_edge, b_in = _rel_diff(binned, exact, edge)
+    rows.append(["mean (1-D), 401 bins", f"{h:g}", f"{te:.2f}", f"{tb:.4f}", f"{te / tb:.0f}x",
+                 f"{b_edge:.2e}", f"{b_in:.2e}"])
+
+    # 2-D covariance of the residuals about the true mean, on a 21 x 21 evaluation grid
+    resid = y - np.sin(2 * np.pi * t)
+    h2 = 0.08
+    ev2 = np.linspace(0, 1, 21)
+    t0 = time.perf_counter()
+    sample = Sample.from_arrays(subj, t, resid)
+    cgrid = BinGrid(0.0, 1.0, 101)
+    stats = pair_stats(sample, resid, cgrid, assign_folds(sample.n_subjects, 1, 0), 1)
+    binned2 = local_linear_binned_2d(ev2, cgrid.centers, stats.offdiag.counts[0],
+                                     stats.offdiag.sums[0], h2, symmetric=True)
+    tb2 = time.perf_counter() - t0
+    t0 = time.perf_counter()
+    # exact: every pair j != l of every subject, moments accumulated in chunks of pairs
+    pairs_a, pairs_b = _pairs(sample)
+    exact2 = _exact_2d_chunked(ev2, t, resid, pairs_a, pairs_b, h2)
+    te2 = time.perf_counter() - t0
+    edge2 = ((ev2 < h2) | (ev2 > 1 - h2))[:, None] | ((ev2 < h2) | (ev2 > 1 - h2))[None, :]
+    b_edge, b_in = _rel_diff(binned2, exact2, edge2)
+    rows.append([f"covariance (2-D), 101 bins, {pairs_a.size:,} pairs", f"{h2:g}", f"{te2:.2f}",
+                 f"{tb2:.4f}", f"{te2 / tb2:.0f}x", f"{b_edge:.2e}", f"{b_in:.2e}"])
+    return f"{n:,} subjects\n\n" + table(
+        ["smoother", "bandwidth", "exact s", "binned s", "speed-up", "max diff / range (edge)",
+         "max diff / range (inside)"], rows)
+
+
+def _pairs(sample: Sample) -> tuple[np.ndarray, np.ndarray]:
+    """Indices (a, b), a != b, of all within-subject pairs (benchmark reference only)."""
+    n = sample.n_obs
+    reps = np.repeat(n, n)  # each reading pairs with the n_i readings of its subject
+    a = np.repeat(np.arange(sample.t.size), reps)
+    first = np.repeat(np.repeat(sample.starts, n), reps)
+    offset = np.arange(a.size) - np.repeat(np.cumsum(reps) - reps, reps)
+    b = first + offset
+    keep = a != b
+    return a[keep], b[keep]
+
+
+def _exact_2d_chunked(ev: np.ndarray, t: np.ndarray, r: np.ndarray, pa: np.ndarray,
+                      pb: np.ndarray, h: float, chunk: int = 400_000) -> np.ndarray:
+    acc = None
+    for i in range(0, pa.size, chunk):
+        a, b = pa[i:i + chunk], pb[i:i + chunk]
+        part = local_linear_exact_2d_moments(ev, t[a], t[b], r[a] * r[b], h)
+        acc = part if acc is None else [x + y for x, y in zip(acc, part, strict=True)]
+    assert acc is not None
+    s00, s10, s01, s20, s11, s02, t00, t10, t01 = acc
+    c0 = s20 * s02 - s11 * s11
+    c1 = s11 * s01 - s10 * s02
+    c2 = s10 * s11 - s20 * s01
+    det = s00 * c0 + s10 * c1 + s01 * c2
+    return (c0 * t00 + c1 * t10 + c2 * t01) / det
+
+
+def local_linear_exact_2d_moments(ev: np.ndarray, x1: np.ndarray, x2: np.ndarray,
+                                  z: np.ndarray, h: float) -> list[np.ndarray]:
+    def weights(x: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        d = x[None, :] - ev[:, None]
+        u = d / h
+        w = np.where(np.abs(u) < 1, 0.75 * (1 - u * u), 0.0)
+        return w, w * d, w * d * d
+
+    w1, wd1, wdd1 = weights(x1)
+    w2, wd2, wdd2 = weights(x2)
+    return [w1 @ w2.T, wd1 @ w2.T, w1 @ wd2.T, wdd1 @ w2.T, wd1 @ wd2.T, w1 @ wdd2.T,
+            (w1 * z) @ w2.T, (wd1 * z) @ w2.T, (w1 * z) @ wd2.T]
+
+
+# --- 3. scores -----------------------------------------------------------------------------
+
+
+def scores_batched_vs_loop(n: int) -> str:
+    subj, t, y = simulate(n)
+    sample = Sample.from_arrays(subj, t, y)
+    lam = np.array([1.0, 0.25])
+    phi = np.sqrt(2) * np.column_stack([np.cos(np.pi * sample.t), np.sin(np.pi * sample.t)])
+    resid = sample.y - np.sin(2 * np.pi * sample.t)
+    t0 = time.perf_counter()
+    batched, _ = conditional_scores(sample.starts, resid, phi, lam, 0.09)
+    tb = time.perf_counter() - t0
+    t0 = time.perf_counter()
+    loop = np.empty_like(batched)
+    ends = np.append(sample.starts[1:], resid.size)
+    for i, (s0, s1) in enumerate(zip(sample.starts, ends, strict=True)):
+        p = phi[s0:s1]
+        sigma = (p * lam) @ p.T + 0.09 * np.eye(s1 - s0)
+        loop[i] = lam * (p.T @ np.linalg.solve(sigma, resid[s0:s1]))
+    tl = time.perf_counter() - t0
+    assert np.allclose(loop, batched, atol=1e-8)
+    return table(["subjects", "loop s", "batched s", "speed-up", "max |difference|"],
+                 [[f"{n:,}", f"{tl:.2f}", f"{tb:.3f}", f"{tl / tb:.0f}x",
+                   f"{np.max(np.abs(loop - batched)):.1e}"]])
+
+
+# --- 4. end to end -------------------------------------------------------------------------
+
+
+def end_to_end(big_n: int) -> str:
+    from reportgen.runner import Timer, run_spec
+
+    rows = []
+    with tempfile.TemporaryDirectory() as tmp:
+        work = Path(tmp)
+        for name in ("clinic_visits.yaml", "clinic_visits.csv"):
+            shutil.copy(ROOT / "specs" / name, work / name)
+        subj, t, y = simulate(big_n, seed=3)
+        pd.DataFrame({"unit": subj, "t": np.round(t, 6), "y": np.round(y, 6)}).to_csv(
+            work / "big.csv", index=False)
+        (work / "big.yaml").write_text(
+            "report: {id: big, title: 'Benchmark: simulated readings'}\n"
+            "data: {file: big.csv, subject: unit, time: t, value: y}\n")
+        for label, spec in (("demo spec", "clinic_visits.yaml"),
+                            (f"{big_n:,} subjects", "big.yaml")):
+            timer = Timer()
+            t0 = time.perf_counter()
+            run_spec(work / spec, work / "runs", timer=timer)
+            total = time.perf_counter() - t0
+            s = timer.seconds
+            rows.append([label] + [f"{s.get(k, 0.0):.2f}" for k in
+                                   ("data", "fit", "sensitivity", "tables", "figures", "html",
+                                    "pdf")] + [f"{total:.2f}"])
+    return table(["run", "data", "fit", "sensitivity", "tables", "figures", "html", "pdf",
+                  "total s"], rows)
+
+
+def machine() -> str:
+    cpu = "unknown"
+    try:
+        for line in Path("/proc/cpuinfo").read_text().splitlines():
+            if line.startswith("model name"):
+                cpu = line.split(":", 1)[1].strip()
+                break
+    except OSError:
+        pass
+    return (f"{os.cpu_count()} cores ({cpu}), "
+            f"{os.sysconf('SC_PAGE_SIZE') * os.sysconf('SC_PHYS_PAGES') / 2**30:.0f} GiB, "
+            f"Python {platform.python_version()}, numpy {np.__version__}, "
+            f"pandas {pd.__version__}, {platform.platform()}")
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser()
+    parser.add_argument("--one", type=int, help=argparse.SUPPRESS)
+    parser.add_argument("--repeats", type=int, default=3)
+    parser.add_argument("--quick", action="store_true", help="small sizes only")
+    parser.add_argument("--write", action="store_true", help="write benchmarks/RESULTS.md")
+    args = parser.parse_args()
+    if args.one:
+        print(json.dumps(one_size(args.one, args.repeats)))
+        return
+    sizes = [1_000, 10_000] if args.quick else [1_000, 10_000, 100_000, 1_000_000]
+    sections = [f"Machine: {machine()}", f"Date: {time.strftime('%Y-%m-%d')}"]
+    scale, _ = fit_scale(sizes, args.repeats)
+    sections.append("## 1. Full fit\n\n" + scale)
+    print(sections[-1], flush=True)
+    sections.append("## 2. Binned against exact smoothing\n\n"
+                    + binned_vs_exact(10_000 if args.quick else 100_000))
+    print(sections[-1], flush=True)
+    sections.append("## 3. Scores: batched against a loop over subjects\n\n"
+                    + scores_batched_vs_loop(10_000 if args.quick else 100_000))
+    print(sections[-1], flush=True)
+    sections.append("## 4. End to end (`reportgen run`), seconds per step\n\n"
+                    + end_to_end(10_000 if args.quick else 100_000))
+    print(sections[-1], flush=True)
+    if args.write:
+        text = "# Benchmark results\n\nProduced by `make bench` (`benchmarks/run.py --write`).\n\n"
+        (ROOT / "benchmarks" / "RESULTS.md").write_text(text + "\n\n".join(sections) + "\n")
+
+
+if __name__ == "__main__":
+    main()
