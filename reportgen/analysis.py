@@ -6,7 +6,7 @@ No files and no printing: the runner writes, the renderer reads.
 from __future__ import annotations
 
 from collections.abc import Callable
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 import pandas as pd
@@ -15,7 +15,7 @@ from scipy import stats as sps
 from .data import Dataset
 from .errors import EstimationError
 from .fpca import FPCAFit, fit_arrays, with_bandwidths
-from .fpca.components import trapezoid_weights
+from .fpca.components import choose, trapezoid_weights
 from .fpca.frame import arrays_from_frame
 from .spec import Spec
 
@@ -49,14 +49,30 @@ def _similarity(grid: np.ndarray, a: np.ndarray, b: np.ndarray) -> float:
     return float(abs(trapezoid_weights(grid) @ (a * b)))
 
 
+def rule_choice(fit: FPCAFit, rule: str, threshold: float) -> int:
+    """The number of components that ``rule`` picks from a fit's criteria table."""
+    sel = fit.selection
+    if rule == "fixed":
+        return fit.n_components
+    return choose(rule, int(sel.k.size), sel.cumulative_fve, sel.aic, sel.bic, sel.cv,
+                  threshold, None)
+
+
 def _sensitivity(spec: Spec, codes: np.ndarray, t: np.ndarray, y: np.ndarray,
                  labels: np.ndarray, fit: FPCAFit, progress: Progress) -> list[SensitivityRun]:
+    """Refit at each bandwidth factor, keeping the main fit's number of components so that
+    every component can be compared (the number the rule would pick is reported too)."""
     runs = []
     for factor in spec.sensitivity["factors"]:
         hm, hc = factor * fit.mean_bandwidth, factor * fit.covariance_bandwidth
         progress(f"sensitivity: bandwidths x {factor:g}")
+        options = replace(with_bandwidths(fit.options, hm, hc), component_rule="fixed",
+                          n_components=fit.n_components)
         try:
-            other = fit_arrays(codes, t, y, labels, with_bandwidths(fit.options, hm, hc))
+            try:
+                other = fit_arrays(codes, t, y, labels, options)
+            except EstimationError:  # fewer positive eigenvalues than the main fit's K
+                other = fit_arrays(codes, t, y, labels, replace(options, component_rule="fve"))
         except EstimationError as e:
             runs.append(SensitivityRun(factor, hm, hc, None, (), str(e)))
             continue

@@ -52,8 +52,9 @@ def read_file(spec: Spec) -> tuple[bytes, Path]:
         st = os.stat(path)
     except FileNotFoundError:
         raise DataError(f"data.file {shown!r} does not exist (looked for {str(path)!r})") from None
-    except OSError as e:
-        raise DataError(f"data.file {shown!r} cannot be read: {e.strerror}") from e
+    except (OSError, ValueError) as e:  # ValueError: an embedded NUL byte in the path
+        reason = getattr(e, "strerror", None) or str(e)
+        raise DataError(f"data.file {shown!r} cannot be read: {reason}") from e
     if stat.S_ISDIR(st.st_mode):
         raise DataError(f"data.file {shown!r} is a directory; give a .csv or .parquet file")
     if not stat.S_ISREG(st.st_mode):

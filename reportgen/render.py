@@ -10,7 +10,7 @@ from typing import Any
 import jinja2
 import numpy as np
 
-from .analysis import STANDARD_CAUTIONS, AnalysisResult
+from .analysis import STANDARD_CAUTIONS, AnalysisResult, rule_choice
 
 
 @dataclass
@@ -34,6 +34,8 @@ def _fmt(x: Any) -> str:
         return str(int(x))
     if isinstance(x, float | np.floating):
         return "—" if not np.isfinite(x) else f"{float(x):.4g}"
+    if x is None:
+        return "—"
     return str(x)
 
 
@@ -133,13 +135,15 @@ def build_sections(result: AnalysisResult, record_view: dict[str, Any],
                   "both bandwidths are multiplied by a factor.")
     thr = spec.sensitivity["similarity_threshold"]
     rows = []
+    rule, fve_threshold = fit.options.component_rule, fit.options.fve_threshold
     for run in result.sensitivity:
         rows.append([run.factor, run.mean_bandwidth, run.covariance_bandwidth,
-                     run.fit.n_components if run.fit else "failed",
+                     rule_choice(run.fit, rule, fve_threshold) if run.fit else "failed",
                      run.fit.error_variance if run.fit else float("nan"),
-                     ", ".join(f"{x:.3f}" for x in run.similarity) or run.error[:80]])
-    b.table(s, "Key estimates per bandwidth setting (similarity = |inner product| with the "
-            "main fit's eigenfunction).",
+                     ", ".join(_fmt(x) for x in run.similarity) or run.error[:80]])
+    b.table(s, "Key estimates per bandwidth setting: K is the number of components the rule "
+            f"({rule}) picks at that setting; similarity is |inner product| of each of the main "
+            "fit's eigenfunctions with the same component of that setting.",
             ["factor", "mean bw", "covariance bw", "K", "error variance", "similarity"], rows)
     b.table(s, f"Verdict per component (stable when every similarity is at least {thr:g}).",
             ["component", "verdict"],
@@ -171,27 +175,28 @@ def render_html(result: AnalysisResult, version: int, record_view: dict[str, Any
     return html.encode("utf-8")
 
 
-class _NoFetch:
-    """URL fetcher for weasyprint that refuses every URL except inline ``data:`` ones.
+def _offline_fetcher() -> Any:
+    """A weasyprint URL fetcher that refuses every URL except inline ``data:`` ones.
 
     The HTML is self-contained (inline CSS and SVG; raster parts of figures are ``data:``
     URIs that the renderer itself wrote); a spec or data value that looks like a URL or a
-    path must never make the renderer read a file or open a connection.
+    path must never make the renderer read a file or open a connection. Refused URLs are
+    kept in ``.refused``.
     """
+    import weasyprint
 
-    def __init__(self) -> None:
-        self.refused: list[str] = []
+    class OfflineFetcher(weasyprint.URLFetcher):
+        def __init__(self) -> None:
+            super().__init__(allowed_protocols={"data"}, fail_on_errors=False)
+            self.refused: list[str] = []
 
-    def fetch(self, url: str, headers: Any = None) -> Any:
-        if url.startswith("data:"):
-            import weasyprint
+        def fetch(self, url: str, headers: Any = None) -> Any:
+            if not url.startswith("data:"):
+                self.refused.append(url)
+                raise ValueError(f"reportgen renders offline; refused to fetch {url!r}")
+            return super().fetch(url, headers)
 
-            return weasyprint.URLFetcher(allowed_protocols={"data"}).fetch(url, headers)
-        self.refused.append(url)
-        raise ValueError(f"reportgen renders offline; refused to fetch {url!r}")
-
-    def __call__(self, url: str, *args: Any, **kwargs: Any) -> Any:
-        return self.fetch(url)
+    return OfflineFetcher()
 
 
 def render_pdf(html: bytes, spec_bytes: bytes, record_bytes: bytes, stamp: str) -> bytes:
@@ -208,7 +213,7 @@ def render_pdf(html: bytes, spec_bytes: bytes, record_bytes: bytes, stamp: str) 
     import weasyprint
 
     logging.getLogger("weasyprint").setLevel(logging.ERROR)
-    fetcher = _NoFetch()
+    fetcher = _offline_fetcher()
     when = datetime.strptime(stamp, "%Y-%m-%dT%H:%M:%SZ")
     attachments = [
         weasyprint.Attachment(string=spec_bytes, name="spec.yaml",

@@ -83,6 +83,8 @@ def parse_spec_bytes(raw: bytes, where: str = "spec") -> dict[str, Any]:
         raise SpecError(f"{where} is not UTF-8 text (byte {e.start})") from e
     try:
         content = yaml.load(text, Loader=_NoAliasLoader)
+    except RecursionError as e:
+        raise SpecError(f"{where} nests too deeply to be a spec") from e
     except yaml.YAMLError as e:
         mark = getattr(e, "problem_mark", None)
         at = f" at line {mark.line + 1}, column {mark.column + 1}" if mark else ""
@@ -97,6 +99,8 @@ def parse_spec_bytes(raw: bytes, where: str = "spec") -> dict[str, Any]:
 def load_spec(path: str | Path) -> Spec:
     """Read, parse and validate a spec file."""
     p = Path(path)
+    if "\x00" in str(p):
+        raise SpecError(f"spec path {str(p)!r} contains a NUL byte")
     if not p.exists():
         raise SpecError(f"spec file {str(p)!r} does not exist")
     if not p.is_file():

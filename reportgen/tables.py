@@ -11,7 +11,7 @@ import hashlib
 import numpy as np
 import pandas as pd
 
-from .analysis import AnalysisResult
+from .analysis import AnalysisResult, rule_choice
 
 FLOAT_FORMAT = "%.10g"
 
@@ -58,7 +58,9 @@ def build_tables(result: AnalysisResult) -> dict[str, pd.DataFrame]:
         if run.fit is None:
             row.update({"n_components": np.nan, "error_variance": np.nan, "note": run.error})
         else:
-            row.update({"n_components": run.fit.n_components,
+            rule = result.spec.options.component_rule
+            row.update({"n_components": rule_choice(run.fit, rule,
+                                                    result.spec.options.fve_threshold),
                         "error_variance": run.fit.error_variance, "note": ""})
         for j in range(k):
             ev = run.fit.all_eigenvalues[j] if run.fit is not None and \

@@ -8,6 +8,7 @@ total minus fold ``f``.
 
 from __future__ import annotations
 
+from collections.abc import Iterator
 from dataclasses import dataclass
 
 import numpy as np
@@ -20,6 +21,25 @@ IntArray = NDArray[np.intp]
 # Subjects per dense block when accumulating pair sums; a block of U is
 # _BLOCK x n_bins doubles (4096 x 101 x 8 B = 3.3 MB), small enough for cache-friendly BLAS.
 _BLOCK = 4096
+
+
+# Readings per chunk for per-reading work outside pair_stats: 2^18 doubles are 2 MB, so
+# temporaries stay in cache and are recycled by the allocator instead of being mapped
+# afresh (fresh pages of data-sized temporaries cost more than the arithmetic on them).
+CHUNK = 1 << 18
+
+
+def subject_chunks(starts: IntArray, n_total: int, size: int = CHUNK
+                   ) -> Iterator[tuple[int, int, int, int]]:
+    """Subject-aligned chunks: (first subject, end subject, first reading, end reading)."""
+    n_subj = starts.size
+    s0 = 0
+    while s0 < n_subj:
+        s1 = int(np.searchsorted(starts, starts[s0] + size, side="left"))
+        s1 = min(max(s1, s0 + 1), n_subj)
+        o1 = int(starts[s1]) if s1 < n_subj else n_total
+        yield s0, s1, int(starts[s0]), o1
+        s0 = s1
 
 
 @dataclass(frozen=True)
@@ -105,11 +125,20 @@ class BinnedStats:
 
 
 def mean_stats(sample: Sample, grid: BinGrid, folds: IntArray, n_folds: int) -> BinnedStats:
-    """Binned pooled readings per fold (input of the mean smoother)."""
-    obs_fold = folds[sample.subject]
-    counts, sums = bin_1d(grid, sample.t, sample.y, obs_fold, n_folds)
-    sumsq = np.bincount(obs_fold, sample.y * sample.y, n_folds)
-    n = np.bincount(obs_fold, minlength=n_folds).astype(np.float64)
+    """Binned pooled readings per fold (input of the mean smoother), chunk by chunk."""
+    counts = np.zeros((n_folds, grid.n_bins))
+    sums = np.zeros((n_folds, grid.n_bins))
+    sumsq = np.zeros(n_folds)
+    n = np.zeros(n_folds)
+    for o0 in range(0, sample.t.size, CHUNK):
+        o1 = min(o0 + CHUNK, sample.t.size)
+        obs_fold = folds[sample.subject[o0:o1]]
+        y = sample.y[o0:o1]
+        c, sm = bin_1d(grid, sample.t[o0:o1], y, obs_fold, n_folds)
+        counts += c
+        sums += sm
+        sumsq += np.bincount(obs_fold, y * y, n_folds)
+        n += np.bincount(obs_fold, minlength=n_folds)
     return BinnedStats(counts, sums, sumsq, n)
 
 

@@ -15,6 +15,7 @@ Steps (Yao, Müller & Wang 2005, JASA 100:577-590, doi:10.1198/01621450400000174
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass, field, replace
 from typing import Any
 
@@ -32,7 +33,16 @@ from .components import (
     evaluate_at,
     trapezoid_weights,
 )
-from .design import BinnedStats, IntArray, PairStats, Sample, assign_folds, mean_stats, pair_stats
+from .design import (
+    CHUNK,
+    BinnedStats,
+    IntArray,
+    PairStats,
+    Sample,
+    assign_folds,
+    mean_stats,
+    pair_stats,
+)
 from .frame import arrays_from_frame
 from .scores import component_criteria, conditional_scores
 from .smoothing import (
@@ -419,7 +429,8 @@ def fit_arrays(
         mbins.centers, mbins.centers, total.counts[0], total.sums[0], mean_choice.value, kernel
     )
     mean = np.interp(grid, mbins.centers, fine)
-    resid = sample.y - mbins.interpolate(fine, mbins.locate(sample.t))
+    resid = _chunked(sample.t, lambda lo_, hi_: sample.y[lo_:hi_] - mbins.interpolate(
+        fine, mbins.locate(sample.t[lo_:hi_])))
 
     # 2. covariance
     cbins = BinGrid(lo, hi, options.covariance_bins)
@@ -451,7 +462,8 @@ def fit_arrays(
 
     # 6. scores
     out_grid = BinGrid(lo, hi, options.n_grid)  # the output grid is regular too
-    phi_obs = out_grid.interpolate(funcs, out_grid.locate(sample.t))
+    phi_obs = _chunked(sample.t, lambda lo_, hi_: out_grid.interpolate(
+        funcs, out_grid.locate(sample.t[lo_:hi_])), width=k)
     scores, score_cov = conditional_scores(sample.starts, resid, phi_obs, values, sigma2)
     fve = eig.values / eig.values.sum()
     return FPCAFit(
@@ -469,6 +481,16 @@ def fit_arrays(
         warnings=tuple(messages), options=options,
         _mean_fine=(_frozen(mbins.centers), _frozen(fine)),
     )
+
+
+def _chunked(t: FloatArray, compute: Callable[[int, int], FloatArray], width: int = 0
+             ) -> FloatArray:
+    """Fill a per-reading array chunk by chunk (see ``design.CHUNK``)."""
+    out = np.empty((t.size, width) if width else t.size)
+    for lo in range(0, t.size, CHUNK):
+        hi = min(lo + CHUNK, t.size)
+        out[lo:hi] = compute(lo, hi)
+    return out
 
 
 def _surfaces(

@@ -21,7 +21,7 @@ from __future__ import annotations
 import numpy as np
 
 from .components import evaluate_at
-from .design import IntArray, Sample
+from .design import IntArray, Sample, subject_chunks
 from .smoothing import FloatArray
 
 
@@ -48,9 +48,12 @@ def conditional_scores(
     scores : ndarray of shape (n_subjects, K)
     error_cov : ndarray of shape (n_subjects, K, K)
     """
-    n_subj = starts.size
-    owner = np.repeat(np.arange(n_subj), np.diff(np.append(starts, resid.size)))
-    gram, cross = _subject_sums(owner, n_subj, resid, phi_obs)
+    n_subj, k = starts.size, eigenvalues.size
+    gram = np.empty((n_subj, k, k))
+    cross = np.empty((n_subj, k))
+    for s0, s1, o0, o1 in subject_chunks(starts, resid.size):
+        owner = np.repeat(np.arange(s1 - s0), np.diff(np.append(starts[s0:s1], o1)))
+        gram[s0:s1], cross[s0:s1] = _subject_sums(owner, s1 - s0, resid[o0:o1], phi_obs[o0:o1])
     precision = gram / sigma2 + np.diag(1.0 / eigenvalues)
     error_cov = np.linalg.inv(precision)
     scores = np.einsum("ijk,ik->ij", error_cov, cross / sigma2)
