@@ -378,6 +378,22 @@ def _error_variance(
     ]
 
 
+def _check_variation(y: FloatArray, resid: FloatArray) -> None:
+    """Readings that do not vary around the mean leave nothing to decompose.
+
+    "Do not vary" is relative to the size of the values (1e-10 of the largest absolute
+    value): constant data give residuals at rounding level, whose covariance would otherwise
+    yield components made of rounding noise.
+    """
+    size = float(np.max(np.abs(y)))
+    rms = float(np.sqrt(np.mean(resid * resid)))
+    if not rms > 1e-10 * size:
+        raise EstimationError(
+            f"the readings show no variation between subjects: the root mean square "
+            f"deviation from the mean is {rms:.3g} for values of size up to {size:.3g}"
+        )
+
+
 def _check_design(sample: Sample, lo: float, hi: float) -> None:
     n_multi = int(np.count_nonzero(sample.n_obs >= 2))
     if n_multi < 2:
@@ -431,6 +447,8 @@ def fit_arrays(
     mean = np.interp(grid, mbins.centers, fine)
     resid = _chunked(sample.t, lambda lo_, hi_: sample.y[lo_:hi_] - mbins.interpolate(
         fine, mbins.locate(sample.t[lo_:hi_])))
+
+    _check_variation(sample.y, resid)
 
     # 2. covariance
     cbins = BinGrid(lo, hi, options.covariance_bins)

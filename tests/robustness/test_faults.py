@@ -1,0 +1,116 @@
+"""Faults: killed runs, full or read-only disks, concurrent runs, untouched inputs."""
+
+from __future__ import annotations
+
+import errno
+import hashlib
+import os
+import shutil
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import pytest
+
+from reportgen import runner
+from reportgen.cli import main
+
+ROOT = Path(__file__).resolve().parents[2]
+
+
+@pytest.fixture
+def study(tmp_path: Path) -> Path:
+    for name in ("clinic_visits.yaml", "clinic_visits.csv"):
+        shutil.copy(ROOT / "specs" / name, tmp_path / name)
+    return tmp_path / "clinic_visits.yaml"
+
+
+def _visible_versions(out: Path) -> list[Path]:
+    return sorted(p for p in out.glob("*/v*") if p.is_dir())
+
+
+def _start(study: Path, out: Path) -> subprocess.Popen[str]:
+    return subprocess.Popen([sys.executable, "-m", "reportgen.cli", "run", str(study), "--out",
+                             str(out)], stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+
+
+def test_sigkill_leaves_no_visible_version_and_a_later_run_succeeds(study: Path,
+                                                                    tmp_path: Path) -> None:
+    out = tmp_path / "runs"
+    killed = 0
+    for delay in (0.5, 1.5, 2.5, 3.5):
+        proc = _start(study, out)
+        time.sleep(delay)
+        if proc.poll() is None:
+            proc.send_signal(signal.SIGKILL)
+            killed += 1
+        proc.communicate(timeout=120)
+        for version in _visible_versions(out):  # only complete runs may be visible
+            assert (version / "record.json").is_file(), version
+    assert killed >= 2, "the runs finished before they could be killed"
+    finished_before = len(_visible_versions(out))
+    proc = _start(study, out)
+    _, stderr = proc.communicate(timeout=300)
+    assert proc.returncode == 0, stderr
+    assert len(_visible_versions(out)) == finished_before + 1
+
+
+def test_disk_full_gives_a_clear_error_and_nothing_visible(
+        study: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch,
+        capsys: pytest.CaptureFixture[str]) -> None:
+    calls = {"n": 0}
+    real_write = runner._write
+
+    def failing_write(path: Path, data: bytes) -> None:
+        calls["n"] += 1
+        if calls["n"] > 3:
+            raise OSError(errno.ENOSPC, "No space left on device")
+        real_write(path, data)
+
+    monkeypatch.setattr(runner, "_write", failing_write)
+    out = tmp_path / "runs"
+    assert main(["run", str(study), "--out", str(out)]) == 2
+    err = capsys.readouterr().err
+    assert "the disk is full" in err and "Traceback" not in err
+    assert _visible_versions(out) == [] and list(out.glob("*/.v*")) == []
+
+
+def test_read_only_output_gives_a_clear_error(study: Path, tmp_path: Path,
+                                              monkeypatch: pytest.MonkeyPatch,
+                                              capsys: pytest.CaptureFixture[str]) -> None:
+    blocker = tmp_path / "not-a-folder"
+    blocker.write_text("a file where the output folder should be")
+    assert main(["run", str(study), "--out", str(blocker / "runs")]) == 2
+    assert "cannot create the run folder" in capsys.readouterr().err
+
+    def read_only(path: Path, data: bytes) -> None:
+        raise OSError(errno.EROFS, "Read-only file system")
+
+    monkeypatch.setattr(runner, "_write", read_only)
+    out = tmp_path / "runs"
+    assert main(["run", str(study), "--out", str(out)]) == 2
+    assert "Read-only file system" in capsys.readouterr().err
+    assert _visible_versions(out) == []
+
+
+def test_two_concurrent_runs_get_distinct_versions(study: Path, tmp_path: Path) -> None:
+    out = tmp_path / "runs"
+    procs = [_start(study, out) for _ in range(2)]
+    results = [p.communicate(timeout=300) for p in procs]
+    assert [p.returncode for p in procs] == [0, 0], results
+    assert [v.name for v in _visible_versions(out)] == ["v001", "v002"]
+
+
+def test_inputs_are_read_only_and_unchanged(study: Path, tmp_path: Path,
+                                            capsys: pytest.CaptureFixture[str]) -> None:
+    data = study.parent / "clinic_visits.csv"
+    before = {p: (hashlib.sha256(p.read_bytes()).hexdigest(), p.stat().st_mtime_ns)
+              for p in (study, data)}
+    for p in before:
+        os.chmod(p, 0o444)
+    assert main(["run", str(study), "--out", str(tmp_path / "runs")]) == 0
+    after = {p: (hashlib.sha256(p.read_bytes()).hexdigest(), p.stat().st_mtime_ns)
+             for p in before}
+    assert after == before
