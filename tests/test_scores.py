@@ -81,3 +81,14 @@ def test_criteria_equal_direct_gaussian_likelihood_and_loo() -> None:
                 errs.append((r[sel][j] - pred) ** 2)
         assert loglik[k - 1] == pytest.approx(ref_ll, rel=1e-9)
         assert loo[k - 1] == pytest.approx(np.mean(errs), rel=1e-9)
+
+
+def test_small_inverses_match_numpy() -> None:
+    # Reference: numpy.linalg.inv (general-purpose library) on random SPD stacks, K = 1..3.
+    from reportgen.fpca.scores import _inverse_spd
+
+    rng = np.random.default_rng(4)
+    for k in (1, 2, 3):
+        x = rng.normal(size=(50, k, k))
+        spd = x @ np.swapaxes(x, 1, 2) + 0.1 * np.eye(k)
+        np.testing.assert_allclose(_inverse_spd(spd), np.linalg.inv(spd), rtol=1e-10)

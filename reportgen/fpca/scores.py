@@ -55,9 +55,29 @@ def conditional_scores(
         owner = np.repeat(np.arange(s1 - s0), np.diff(np.append(starts[s0:s1], o1)))
         gram[s0:s1], cross[s0:s1] = _subject_sums(owner, s1 - s0, resid[o0:o1], phi_obs[o0:o1])
     precision = gram / sigma2 + np.diag(1.0 / eigenvalues)
-    error_cov = np.linalg.inv(precision)
+    error_cov = _inverse_spd(precision)
     scores = np.einsum("ijk,ik->ij", error_cov, cross / sigma2)
     return scores, error_cov
+
+
+def _inverse_spd(a: FloatArray) -> FloatArray:
+    """Inverses of a stack of small symmetric positive-definite matrices, shape (n, K, K).
+
+    K = 1 and 2 in closed form (LAPACK's per-matrix overhead dominates at that size);
+    larger K through ``np.linalg.inv``. The matrices here are Lambda^-1 + Phi'Phi / s2,
+    positive definite by construction.
+    """
+    k = a.shape[-1]
+    if k == 1:
+        return 1.0 / a
+    if k == 2:
+        p, q, r = a[:, 0, 0], a[:, 0, 1], a[:, 1, 1]
+        det = p * r - q * q
+        out = np.empty_like(a)
+        out[:, 0, 0], out[:, 1, 1] = r / det, p / det
+        out[:, 0, 1] = out[:, 1, 0] = -q / det
+        return out
+    return np.linalg.inv(a)
 
 
 def _subject_sums(
