@@ -115,7 +115,7 @@ def _rel_diff(binned: np.ndarray, exact: np.ndarray, boundary: np.ndarray) -> tu
     return float(np.nanmax(diff[boundary])), float(np.nanmax(diff[~boundary]))
 
 
-def binned_vs_exact(n: int) -> str:
+def binned_vs_exact(n: int) -> tuple[str, list[float]]:
     subj, t, y = simulate(n)
     rows = []
     # 1-D mean at the demo grid (101 points), bandwidth of the order CV picks at this size
@@ -157,9 +157,10 @@ def binned_vs_exact(n: int) -> str:
     b_edge, b_in = _rel_diff(binned2, exact2, edge2)
     rows.append([f"covariance (2-D), 101 bins, {pairs_a.size:,} pairs", f"{h2:g}", f"{te2:.2f}",
                  f"{tb2:.4f}", f"{te2 / tb2:.0f}x", f"{b_edge:.2e}", f"{b_in:.2e}"])
-    return f"{n:,} subjects\n\n" + table(
+    text = f"{n:,} subjects\n\n" + table(
         ["smoother", "bandwidth", "exact s", "binned s", "speed-up", "max diff / range (edge)",
          "max diff / range (inside)"], rows)
+    return text, [te / tb, te2 / tb2]
 
 
 def _pairs(sample: Sample) -> tuple[np.ndarray, np.ndarray]:
@@ -207,7 +208,7 @@ def local_linear_exact_2d_moments(ev: np.ndarray, x1: np.ndarray, x2: np.ndarray
 # --- 3. scores -----------------------------------------------------------------------------
 
 
-def scores_batched_vs_loop(n: int) -> str:
+def scores_batched_vs_loop(n: int) -> tuple[str, float]:
     subj, t, y = simulate(n)
     sample = Sample.from_arrays(subj, t, y)
     lam = np.array([1.0, 0.25])
@@ -225,15 +226,16 @@ def scores_batched_vs_loop(n: int) -> str:
         loop[i] = lam * (p.T @ np.linalg.solve(sigma, resid[s0:s1]))
     tl = time.perf_counter() - t0
     assert np.allclose(loop, batched, atol=1e-8)
-    return table(["subjects", "loop s", "batched s", "speed-up", "max |difference|"],
+    text = table(["subjects", "loop s", "batched s", "speed-up", "max |difference|"],
                  [[f"{n:,}", f"{tl:.2f}", f"{tb:.3f}", f"{tl / tb:.0f}x",
                    f"{np.max(np.abs(loop - batched)):.1e}"]])
+    return text, tl / tb
 
 
 # --- 4. end to end -------------------------------------------------------------------------
 
 
-def end_to_end(big_n: int) -> str:
+def end_to_end(big_n: int) -> tuple[str, list[float]]:
     from reportgen.runner import Timer, run_spec
 
     rows = []
@@ -257,8 +259,60 @@ def end_to_end(big_n: int) -> str:
             rows.append([label] + [f"{s.get(k, 0.0):.2f}" for k in
                                    ("data", "fit", "sensitivity", "tables", "figures", "html",
                                     "pdf")] + [f"{total:.2f}"])
-    return table(["run", "data", "fit", "sensitivity", "tables", "figures", "html", "pdf",
+    text = table(["run", "data", "fit", "sensitivity", "tables", "figures", "html", "pdf",
                   "total s"], rows)
+    return text, [float(r[-1]) for r in rows]
+
+
+def targets(fits: list[dict[str, float]], speed: list[float], scores: float,
+            e2e: list[float]) -> str:
+    """The issue's targets against what this run measured."""
+    by_n = {int(r["n"]): r for r in fits}
+    rows: list[list[str]] = []
+
+    def add(what: str, target: str, value: float | None, ok: bool | None) -> None:
+        shown = "not measured" if value is None else f"{value:.3g}"
+        rows.append([what, target, shown, "—" if ok is None else ("met" if ok else "NOT met")])
+
+    def measured(n: int, key: str) -> float | None:
+        return by_n[n][key] if n in by_n else None
+
+    def check(value: float | None, ok: bool) -> bool | None:
+        return None if value is None else ok
+
+    fit5, fit6 = measured(100_000, "fit"), measured(1_000_000, "fit")
+    peak6, floor6 = measured(1_000_000, "peak_mb"), measured(1_000_000, "floor")
+    add("fit 10^5 subjects (s)", "<= 0.5", fit5, check(fit5, (fit5 or 0) <= 0.5))
+    add("fit 10^6 subjects (s)", "<= 4", fit6, check(fit6, (fit6 or 0) <= 4))
+    add("peak memory 10^6 (MB)", "< 1536", peak6, check(peak6, (peak6 or 0) < 1536))
+    growth = fit6 / fit5 if fit5 and fit6 else None
+    add("growth 10^6 / 10^5", "<= 12", growth, check(growth, (growth or 0) <= 12))
+    ratio = fit6 / floor6 if fit6 and floor6 else None
+    add("fit / floor at 10^6", "<= 10", ratio, check(ratio, (ratio or 0) <= 10))
+    add("binned / exact speed-up, mean", ">= 50x", speed[0], speed[0] >= 50)
+    add("binned / exact speed-up, covariance", ">= 100x", speed[1], speed[1] >= 100)
+    add("batched / loop scores", ">= 25x", scores, scores >= 25)
+    add("end to end, demo (s)", "< 15", e2e[0], e2e[0] < 15)
+    add("end to end, 10^5 subjects (s)", "< 30", e2e[1], e2e[1] < 30)
+    return table(["target", "goal", "measured", "verdict"], rows)
+
+
+NOTES = """## Notes on the targets
+
+- Times are wall-clock on a shared machine; repeated runs vary by about 10%. The fit of
+  10^5 subjects sits close to its 0.5 s bound.
+- **fit / floor at 10^6 is not met** (about 18 against 10). The floor is one hashed pass
+  over the 8 million readings. The fit's largest step, the binned pair sums of the
+  covariance, is bounded below by 2 x 10^6 x 101^2 multiply-adds in BLAS (about 0.55 s on
+  these two cores, measured) plus scattering each subject's readings into dense bin vectors
+  (about 0.4 s): that step alone is about 7 floors. Mean binning, residuals, scores and the
+  bandwidth search add the rest. Closing the gap would take a compiled kernel that
+  accumulates only the bins each subject touches (n_i^2 work per subject instead of
+  bins^2); numba would do it but adds a compile step to every command-line run, so it was
+  left out.
+- Binned against exact: the exact 2-D smoother is evaluated on a 51 x 51 grid (its cost
+  grows with the square of the grid); the report itself uses 101 x 101, where the binned
+  smoother costs the same and the exact one four times more."""
 
 
 def machine() -> str:
@@ -288,18 +342,22 @@ def main() -> None:
         return
     sizes = [1_000, 10_000] if args.quick else [1_000, 10_000, 100_000, 1_000_000]
     sections = [f"Machine: {machine()}", f"Date: {time.strftime('%Y-%m-%d')}"]
-    scale, _ = fit_scale(sizes, args.repeats)
+    mid = 10_000 if args.quick else 100_000
+    scale, fits = fit_scale(sizes, args.repeats)
     sections.append("## 1. Full fit\n\n" + scale)
     print(sections[-1], flush=True)
-    sections.append("## 2. Binned against exact smoothing\n\n"
-                    + binned_vs_exact(10_000 if args.quick else 100_000))
+    text, speed = binned_vs_exact(mid)
+    sections.append("## 2. Binned against exact smoothing\n\n" + text)
     print(sections[-1], flush=True)
-    sections.append("## 3. Scores: batched against a loop over subjects\n\n"
-                    + scores_batched_vs_loop(10_000 if args.quick else 100_000))
+    text, score_speed = scores_batched_vs_loop(mid)
+    sections.append("## 3. Scores: batched against a loop over subjects\n\n" + text)
     print(sections[-1], flush=True)
-    sections.append("## 4. End to end (`reportgen run`), seconds per step\n\n"
-                    + end_to_end(10_000 if args.quick else 100_000))
+    text, e2e = end_to_end(mid)
+    sections.append("## 4. End to end (`reportgen run`), seconds per step\n\n" + text)
     print(sections[-1], flush=True)
+    sections.append("## Targets\n\n" + targets(fits, speed, score_speed, e2e))
+    print(sections[-1], flush=True)
+    sections.append(NOTES)
     if args.write:
         text = "# Benchmark results\n\nProduced by `make bench` (`benchmarks/run.py --write`).\n\n"
         (ROOT / "benchmarks" / "RESULTS.md").write_text(text + "\n\n".join(sections) + "\n")

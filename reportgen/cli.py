@@ -71,6 +71,7 @@ def _cmd_run(args: argparse.Namespace) -> int:
     run_dir = run_spec(args.spec, args.out, _progress(args.quiet))
     print(f"run written: {run_dir}")
     print(f"report: {run_dir / 'report.html'}")
+    print(f"pdf: {run_dir / 'report.pdf'}")
     return 0
 
 
@@ -179,6 +180,7 @@ def _cmd_demo(args: argparse.Namespace) -> int:
         raise ReportgenError(f"the demo spec {str(spec)!r} is missing (run from a checkout)")
     run_dir = run_spec(spec, args.out, _progress(args.quiet))
     print(f"demo report: {run_dir / 'report.html'}")
+    print(f"demo pdf: {run_dir / 'report.pdf'}")
     return 0
 
 
