@@ -54,6 +54,13 @@ class _Builder:
         s.blocks.append({"kind": "table", "number": self.n.table, "caption": caption,
                          "header": header, "rows": [[_fmt(c) for c in r] for r in rows]})
 
+    def text(self, s: Section, text: str, kind: str = "text") -> None:
+        """A paragraph (``kind="text"``) or preformatted text (``kind="pre"``)."""
+        s.blocks.append({"kind": kind, "text": text})
+
+    def items(self, s: Section, items: list[str]) -> None:
+        s.blocks.append({"kind": "list", "items": items})
+
     def figure(self, s: Section, svg: str, caption: str, alt: str) -> None:
         self.n.figure += 1
         s.blocks.append({"kind": "figure", "number": self.n.figure, "svg": svg,
@@ -104,12 +111,11 @@ def build_sections(result: AnalysisResult, record_view: dict[str, Any],
             ["component", "eigenvalue", "FVE", "cumulative FVE"],
             [[k + 1, fit.all_eigenvalues[k], fit.fve[k], fit.cumulative_fve[k]]
              for k in range(min(fit.all_eigenvalues.size, 10))])
-    s.blocks.append({"kind": "text", "text": (
-        f"{fit.all_eigenvalues.size} eigenvalues of the smoothed surface are positive; "
-        f"{fit.dropped_eigenvalues} negative or numerically zero ones were dropped (the "
-        f"negative ones sum to {fit.dropped_negative_sum:.3g}, "
-        f"{fit.dropped_negative_sum / fit.all_eigenvalues.sum():.1%} of the positive total). "
-        "FVE is relative to the positive total.")})
+    b.text(s, f"{fit.all_eigenvalues.size} eigenvalues of the smoothed surface are positive; "
+           f"{fit.dropped_eigenvalues} negative or numerically zero ones were dropped (the "
+           f"negative ones sum to {fit.dropped_negative_sum:.3g}, "
+           f"{fit.dropped_negative_sum / fit.all_eigenvalues.sum():.1%} of the positive "
+           "total). FVE is relative to the positive total.")
     sel = fit.selection
     b.table(s, f"Component selection: every criterion; the rule used was {sel.rule}. AIC, BIC "
             f"and cv were computed over {sel.n_subjects_used} subjects.",
@@ -120,10 +126,9 @@ def build_sections(result: AnalysisResult, record_view: dict[str, Any],
     fig(s, "effects")
     s = b.section("scores", "Scores", "Where each subject sits on the components.")
     flagged = result.outliers[result.outliers.flagged]
-    s.blocks.append({"kind": "text", "text": (
-        f"Rule: a subject is flagged when its squared Mahalanobis distance of the scores "
-        f"exceeds the chi-square({fit.n_components}) quantile "
-        f"{spec.subjects['outlier_quantile']:g}; {len(flagged)} subject(s) flagged.")})
+    b.text(s, f"Rule: a subject is flagged when its squared Mahalanobis distance of the scores "
+           f"exceeds the chi-square({fit.n_components}) quantile "
+           f"{spec.subjects['outlier_quantile']:g}; {len(flagged)} subject(s) flagged.")
     fig(s, "scores")
     s = b.section("trajectories", "Trajectories", "Recovered curves of selected subjects with "
                   "their readings and pointwise bands.")
@@ -151,12 +156,12 @@ def build_sections(result: AnalysisResult, record_view: dict[str, Any],
     fig(s, "sensitivity")
     s = b.section("caveats", "Caveats", "What could be wrong with these results, and how to "
                   "use them.")
-    s.blocks.append({"kind": "list", "items": list(result.caveats) + list(STANDARD_CAUTIONS)})
+    b.items(s, list(result.caveats) + list(STANDARD_CAUTIONS))
     s = b.section("reproducibility", "Reproducibility", "How to re-run this analysis and "
                   "confirm by hash that nothing changed.")
     b.table(s, "Record.", ["item", "value"], [[k, v] for k, v in record_view["items"]])
-    s.blocks.append({"kind": "pre", "text": record_view["commands"]})
-    s.blocks.append({"kind": "pre", "text": spec.raw.decode("utf-8")})
+    b.text(s, record_view["commands"], kind="pre")
+    b.text(s, spec.raw.decode("utf-8"), kind="pre")
     return b.sections
 
 
