@@ -121,7 +121,7 @@ def _shown(fit: FPCAFit, spec: Spec) -> tuple[str, ...]:
 
 def _caveats(spec: Spec, ds: Dataset, fit: FPCAFit, runs: list[SensitivityRun],
              stable: list[bool]) -> list[str]:
-    out = list(fit.warnings)
+    out = [w[:1].upper() + w[1:] + ("" if w.endswith(".") else ".") for w in fit.warnings]
     for c in ds.checks:
         if c.name == "time-pair coverage" and c.status == "warn":
             out.append("Parts of the time-pair square have no pairs of readings: the covariance "

@@ -62,7 +62,7 @@ def make_figures(result: AnalysisResult) -> dict[str, tuple[str, str, str]]:
 def _make(r: AnalysisResult) -> dict[str, tuple[str, str, str]]:
     fit, spec = r.fit, r.spec
     tl = "time" + (f" ({spec.data['time_unit']})" if spec.data["time_unit"] else "")
-    vl = "value" + (f" ({spec.data['value_unit']})" if spec.data["value_unit"] else "")
+    vl = "value" + (f" ({spec.value_unit})" if spec.value_unit else "")
     g = fit.grid
     out: dict[str, tuple[str, str, str]] = {}
     frame = r.dataset.frame

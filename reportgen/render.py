@@ -11,6 +11,7 @@ import jinja2
 import numpy as np
 
 from .analysis import STANDARD_CAUTIONS, AnalysisResult, rule_choice
+from .fpca import BandwidthChoice
 
 
 @dataclass
@@ -37,6 +38,13 @@ def _fmt(x: Any) -> str:
     if x is None:
         return "—"
     return str(x)
+
+
+def _how(choice: BandwidthChoice) -> str:
+    method = {"cv": "chosen by K-fold cross-validation over subjects",
+              "gcv": "chosen by generalized cross-validation (GCV)",
+              "fixed": "fixed in the spec"}[choice.method]
+    return f"{choice.value:.4g}, {method}"
 
 
 class _Builder:
@@ -73,13 +81,22 @@ def build_sections(result: AnalysisResult, record_view: dict[str, Any],
     fit, spec, ds = result.fit, result.spec, result.dataset
     b = _Builder()
     tu = f" ({spec.data['time_unit']})" if spec.data["time_unit"] else ""
-    vu = f" ({spec.data['value_unit']})" if spec.data["value_unit"] else ""
+    vu = f" ({spec.value_unit})" if spec.value_unit else ""
 
     def fig(s: Section, name: str) -> None:
         if name in figures:
             b.figure(s, *figures[name])
 
     s = b.section("summary", "Summary", "The key numbers of this analysis at a glance.")
+    b.text(s, "Method: functional principal component analysis of sparse longitudinal data by "
+           "conditional expectation (Yao, Müller and Wang 2005, Journal of the American "
+           "Statistical Association 100, 577-590). The mean is a local linear smooth of all "
+           "readings; the covariance is a two-dimensional local linear smooth of the products "
+           "of residuals at two different readings of a subject, with the readings' own "
+           "squares smoothed separately to estimate the measurement-error variance; "
+           "each subject's scores and trajectory follow by conditional expectation, which "
+           f"works with a single reading. Bandwidths: mean {_how(fit.mean_bandwidth_choice)}, "
+           f"covariance {_how(fit.covariance_bandwidth_choice)} ({fit.options.kernel} kernel).")
     per = fit.n_obs
     b.table(s, "Key estimates.", ["quantity", "value"], [
         ["subjects", fit.n_subjects], ["readings", fit.n_readings],

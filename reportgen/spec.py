@@ -72,6 +72,15 @@ class Spec:
     def report_id(self) -> str:
         return str(self.report["id"])
 
+    @property
+    def value_unit(self) -> str:
+        """The unit of the analysed values: the data's unit under the spec's transform."""
+        unit = self.data["value_unit"]
+        transform = self.data["transform"]
+        if transform == "none":
+            return unit
+        return f"{transform}({unit})" if unit else transform
+
 
 def parse_spec_bytes(raw: bytes, where: str = "spec") -> dict[str, Any]:
     """Parse YAML bytes with the safe, alias-free loader; the result must be a mapping."""
