@@ -20,8 +20,9 @@ from __future__ import annotations
 
 import numpy as np
 
+from ._kernels import subject_sums
 from .components import evaluate_at
-from .design import IntArray, Sample, subject_chunks
+from .design import IntArray, Sample
 from .smoothing import FloatArray
 
 
@@ -48,12 +49,7 @@ def conditional_scores(
     scores : ndarray of shape (n_subjects, K)
     error_cov : ndarray of shape (n_subjects, K, K)
     """
-    n_subj, k = starts.size, eigenvalues.size
-    gram = np.empty((n_subj, k, k))
-    cross = np.empty((n_subj, k))
-    for s0, s1, o0, o1 in subject_chunks(starts, resid.size):
-        owner = np.repeat(np.arange(s1 - s0), np.diff(np.append(starts[s0:s1], o1)))
-        gram[s0:s1], cross[s0:s1] = _subject_sums(owner, s1 - s0, resid[o0:o1], phi_obs[o0:o1])
+    gram, cross = subject_sums(starts, resid, np.ascontiguousarray(phi_obs))
     precision = gram / sigma2 + np.diag(1.0 / eigenvalues)
     error_cov = _inverse_spd(precision)
     scores = np.einsum("ijk,ik->ij", error_cov, cross / sigma2)
@@ -78,27 +74,6 @@ def _inverse_spd(a: FloatArray) -> FloatArray:
         out[:, 0, 1] = out[:, 1, 0] = -q / det
         return out
     return np.linalg.inv(a)
-
-
-def _subject_sums(
-    owner: IntArray, n_subjects: int, resid: FloatArray, phi_obs: FloatArray
-) -> tuple[FloatArray, FloatArray]:
-    """Per subject: Phi_i' Phi_i, shape (n, K, K), and Phi_i' r_i, shape (n, K).
-
-    ``owner`` gives the subject row of each reading. One weighted bincount per entry of the
-    upper triangle (K (K + 1) / 2 of them) and per column of Phi' r: no (n_obs, K, K)
-    temporary and no loop over subjects.
-    """
-    k = phi_obs.shape[1]
-    gram = np.empty((n_subjects, k, k))
-    for a in range(k):
-        for b in range(a, k):
-            gram[:, a, b] = np.bincount(owner, phi_obs[:, a] * phi_obs[:, b], n_subjects)
-            gram[:, b, a] = gram[:, a, b]
-    cross = np.column_stack(
-        [np.bincount(owner, phi_obs[:, a] * resid, n_subjects) for a in range(k)]
-    ) if k else np.zeros((n_subjects, 0))
-    return gram, cross
 
 
 def component_criteria(
@@ -130,7 +105,7 @@ def component_criteria(
     idx = sample.starts[subjects][owner] + (np.arange(owner.size) - first[owner])
     r = resid[idx]
     phi = evaluate_at(sample.t[idx], grid, eigenfunctions)  # (readings used, K_max)
-    gram, cross = _subject_sums(owner, subjects.size, r, phi)
+    gram, cross = subject_sums(first, r, np.ascontiguousarray(phi))
     rr = np.bincount(owner, r * r, subjects.size)
     multi = n_i[owner] >= 2
     loglik = np.zeros(k_max)
