@@ -136,3 +136,17 @@ def subject_sums(starts: np.ndarray, resid: FloatArray, phi: FloatArray
             for b in range(a + 1, k):
                 gram[s, b, a] = gram[s, a, b]
     return gram, cross
+
+
+@njit(cache=True, nogil=True)
+def interpolate_columns(t: FloatArray, values: FloatArray, lower: float, width: float
+                        ) -> FloatArray:
+    """Columns of ``values`` (on a regular grid from ``lower`` with step ``width``) at ``t``,
+    by linear interpolation; times beyond the ends take the end values. Shape (n, K)."""
+    n_bins, k = values.shape
+    out = np.empty((t.size, k))
+    for j in range(t.size):
+        i, fr = _locate(t[j], lower, width, n_bins)
+        for c in range(k):
+            out[j, c] = (1.0 - fr) * values[i, c] + fr * values[i + 1, c]
+    return out

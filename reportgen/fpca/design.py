@@ -20,12 +20,6 @@ IntArray = NDArray[np.intp]
 
 
 
-# Readings per chunk for per-reading numpy work: 2^18 doubles are 2 MB, so temporaries
-# stay in cache and are recycled by the allocator instead of being mapped afresh (fresh
-# pages of data-sized temporaries cost more than the arithmetic on them).
-CHUNK = 1 << 18
-
-
 @dataclass(frozen=True)
 class Sample:
     """Readings sorted by subject.

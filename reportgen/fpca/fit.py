@@ -15,7 +15,6 @@ Steps (Yao, Müller & Wang 2005, JASA 100:577-590, doi:10.1198/01621450400000174
 
 from __future__ import annotations
 
-from collections.abc import Callable
 from dataclasses import dataclass, field, replace
 from typing import Any
 
@@ -24,6 +23,7 @@ import pandas as pd
 from scipy import stats as sps
 
 from ..errors import EstimationError
+from ._kernels import interpolate_columns
 from .bandwidth import BandwidthChoice, candidate_bandwidths, select_bandwidth
 from .components import (
     ComponentSelection,
@@ -34,7 +34,6 @@ from .components import (
     trapezoid_weights,
 )
 from .design import (
-    CHUNK,
     BinnedStats,
     IntArray,
     PairStats,
@@ -445,8 +444,7 @@ def fit_arrays(
         mbins.centers, mbins.centers, total.counts[0], total.sums[0], mean_choice.value, kernel
     )
     mean = np.interp(grid, mbins.centers, fine)
-    resid = _chunked(sample.t, lambda lo_, hi_: sample.y[lo_:hi_] - mbins.interpolate(
-        fine, mbins.locate(sample.t[lo_:hi_])))
+    resid = sample.y - interpolate_columns(sample.t, fine[:, None], lo, mbins.width)[:, 0]
 
     _check_variation(sample.y, resid)
 
@@ -480,8 +478,7 @@ def fit_arrays(
 
     # 6. scores
     out_grid = BinGrid(lo, hi, options.n_grid)  # the output grid is regular too
-    phi_obs = _chunked(sample.t, lambda lo_, hi_: out_grid.interpolate(
-        funcs, out_grid.locate(sample.t[lo_:hi_])), width=k)
+    phi_obs = interpolate_columns(sample.t, np.ascontiguousarray(funcs), lo, out_grid.width)
     scores, score_cov = conditional_scores(sample.starts, resid, phi_obs, values, sigma2)
     fve = eig.values / eig.values.sum()
     return FPCAFit(
@@ -499,16 +496,6 @@ def fit_arrays(
         warnings=tuple(messages), options=options,
         _mean_fine=(_frozen(mbins.centers), _frozen(fine)),
     )
-
-
-def _chunked(t: FloatArray, compute: Callable[[int, int], FloatArray], width: int = 0
-             ) -> FloatArray:
-    """Fill a per-reading array chunk by chunk (see ``design.CHUNK``)."""
-    out = np.empty((t.size, width) if width else t.size)
-    for lo in range(0, t.size, CHUNK):
-        hi = min(lo + CHUNK, t.size)
-        out[lo:hi] = compute(lo, hi)
-    return out
 
 
 def _surfaces(

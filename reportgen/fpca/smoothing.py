@@ -86,19 +86,6 @@ class BinGrid:
         left = np.minimum(pos.astype(np.intp), self.n_bins - 2)
         return left, pos - left
 
-    def interpolate(
-        self, values: FloatArray, located: tuple[NDArray[np.intp], FloatArray]
-    ) -> FloatArray:
-        """Linear interpolation of ``values`` (first axis on the centres) at located points.
-
-        ``located`` is the output of :meth:`locate`; reusing it avoids the binary search of
-        ``np.interp`` on every call (the grid is regular).
-        """
-        left, frac = located
-        if values.ndim == 1:
-            return values[left] * (1.0 - frac) + values[left + 1] * frac
-        return values[left] * (1.0 - frac)[:, None] + values[left + 1] * frac[:, None]
-
 
 def bin_1d(
     grid: BinGrid,
