@@ -299,17 +299,17 @@ def targets(fits: list[dict[str, float]], speed: list[float], scores: float,
 
 NOTES = """## Notes on the targets
 
-- Times are wall-clock on a shared machine; repeated runs vary by about 10%. The fit of
-  10^5 subjects sits close to its 0.5 s bound.
-- **fit / floor at 10^6 is not met** (about 18 against 10). The floor is one hashed pass
-  over the 8 million readings. The fit's largest step, the binned pair sums of the
-  covariance, is bounded below by 2 x 10^6 x 101^2 multiply-adds in BLAS (about 0.55 s on
-  these two cores, measured) plus scattering each subject's readings into dense bin vectors
-  (about 0.4 s): that step alone is about 7 floors. Mean binning, residuals, scores and the
-  bandwidth search add the rest. Closing the gap would take a compiled kernel that
-  accumulates only the bins each subject touches (n_i^2 work per subject instead of
-  bins^2); numba would do it but adds a compile step to every command-line run, so it was
-  left out.
+- Times are wall-clock on a shared machine; repeated runs vary by about 10%, and the pandas
+  floor at 10^6 varied between 0.13 s and 0.25 s across runs of this script (its own
+  allocations), so fit / floor at 10^6 has been between 4 and 8.
+- The per-reading sums (binned readings, within-subject pairs, per-subject K x K sums and
+  interpolation at the reading times) are compiled single passes (numba,
+  `reportgen/fpca/_kernels.py`). With dense per-subject bin vectors and BLAS products
+  instead, the 10^6 fit took 2.3 s (fit / floor about 18): that step alone was bound by
+  2 x 10^6 x 101^2 multiply-adds.
+- The fit times are steady-state: the first fit in a process also loads the compiled
+  kernels from the on-disk cache (about half a second; a few seconds to compile them in a
+  fresh checkout).
 - Binned against exact: the exact 2-D smoother is evaluated on a 51 x 51 grid (its cost
   grows with the square of the grid); the report itself uses 101 x 101, where the binned
   smoother costs the same and the exact one four times more."""
