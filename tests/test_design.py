@@ -47,3 +47,27 @@ def test_folds_never_split_a_subject_and_are_balanced() -> None:
     assert folds.shape == (103,)
     sizes = np.bincount(folds)
     assert sizes.max() - sizes.min() <= 1 and sizes.sum() == 103
+
+
+def test_one_pass_binning_and_interpolation_match_numpy() -> None:
+    # Reference: the vectorized numpy binning (bin_1d, two bincounts per weight) and
+    # numpy.interp (general-purpose library) on the same readings.
+    from reportgen.fpca._kernels import interpolate_columns
+    from reportgen.fpca.design import mean_stats
+
+    rng = np.random.default_rng(6)
+    subj = np.repeat(np.arange(40), rng.integers(1, 6, 40))
+    t = rng.uniform(-0.1, 1.1, subj.size)  # some readings beyond the ends: clipped
+    y = rng.normal(size=subj.size)
+    grid = BinGrid(0.0, 1.0, 21)
+    folds = assign_folds(40, 4, seed=1)
+    stats = mean_stats(Sample.from_arrays(subj, t, y), grid, folds, 4)
+    counts, sums = bin_1d(grid, t, y, folds[subj], 4)
+    np.testing.assert_allclose(stats.counts, counts, atol=1e-12)
+    np.testing.assert_allclose(stats.sums, sums, atol=1e-12)
+    np.testing.assert_allclose(stats.sumsq, np.bincount(folds[subj], y * y, 4))
+    values = np.column_stack([np.sin(grid.centers), grid.centers**2])
+    ours = interpolate_columns(t, values, grid.lower, grid.width)
+    for k in range(2):
+        np.testing.assert_allclose(ours[:, k], np.interp(t, grid.centers, values[:, k]),
+                                   atol=1e-12)

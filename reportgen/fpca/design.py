@@ -19,7 +19,6 @@ from .smoothing import BinGrid, FloatArray
 IntArray = NDArray[np.intp]
 
 
-
 @dataclass(frozen=True)
 class Sample:
     """Readings sorted by subject.
