@@ -39,6 +39,7 @@ class AnalysisResult:
     fit: FPCAFit
     sensitivity: tuple[SensitivityRun, ...]
     residuals: pd.DataFrame  # subject, time, value, fitted, residual, standardized
+    residual_summary: pd.DataFrame  # per subject: n_obs, mean_residual, rms_standardized
     outliers: pd.DataFrame  # subject, distance, flagged
     shown_subjects: tuple[str, ...]
     caveats: tuple[str, ...]
@@ -94,6 +95,14 @@ def _residuals(fit: FPCAFit, frame: pd.DataFrame) -> pd.DataFrame:
     return pd.DataFrame({"subject": frame.subject.to_numpy(), "time": t,
                          "value": frame.value.to_numpy(), "fitted": fitted, "residual": resid,
                          "standardized": resid / np.sqrt(fit.error_variance)})
+
+
+def _residual_summary(residuals: pd.DataFrame) -> pd.DataFrame:
+    res = residuals.assign(sq=residuals.standardized ** 2)
+    per = res.groupby("subject", sort=True).agg(
+        n_obs=("residual", "size"), mean_residual=("residual", "mean"), ms=("sq", "mean"))
+    per["rms_standardized"] = np.sqrt(per.pop("ms"))
+    return per.reset_index()
 
 
 def _outliers(fit: FPCAFit, quantile: float) -> pd.DataFrame:
@@ -168,9 +177,10 @@ def analyse(spec: Spec, ds: Dataset, progress: Progress = lambda _: None,
     threshold = spec.sensitivity["similarity_threshold"]
     stable = [all(r.fit is not None and np.nan_to_num(r.similarity[k]) >= threshold
                   for r in runs) for k in range(fit.n_components)]
+    residuals = _residuals(fit, ds.frame)
     return AnalysisResult(
         spec=spec, dataset=ds, fit=fit, sensitivity=tuple(runs),
-        residuals=_residuals(fit, ds.frame),
+        residuals=residuals, residual_summary=_residual_summary(residuals),
         outliers=_outliers(fit, spec.subjects["outlier_quantile"]),
         shown_subjects=_shown(fit, spec),
         caveats=tuple(_caveats(spec, ds, fit, runs, stable)), stable=tuple(stable),

@@ -116,6 +116,25 @@ def _make(r: AnalysisResult) -> dict[str, tuple[str, str, str]]:
     put("covariance", fig, "Smoothed covariance and correlation surfaces.",
                          "Two filled contour maps of the covariance and correlation surfaces.")
 
+    fig, ax = plt.subplots(figsize=(6, 2.8))
+    n_show = min(fit.all_eigenvalues.size, 10)
+    ks = np.arange(1, n_show + 1)
+    ax.bar(ks, fit.fve[:n_show], color=[PALETTE[0] if k <= fit.n_components else "#b8c2d1"
+                                         for k in ks], label="FVE of the component")
+    ax.plot(ks, fit.cumulative_fve[:n_show], "o-", color=PALETTE[1], label="cumulative FVE")
+    if fit.selection.rule == "fve":
+        ax.axhline(fit.options.fve_threshold, color="#888", linestyle="--", linewidth=0.8,
+                   label=f"threshold {fit.options.fve_threshold:g}")
+    ax.set_xticks(ks)
+    ax.set_ylim(0, 1.05)
+    ax.set_xlabel("component")
+    ax.set_ylabel("fraction of variance")
+    ax.legend(fontsize=7, loc="center right")
+    put("eigenvalues", fig, "Fraction of variance explained by each component (bars; the "
+        "retained ones dark) and cumulatively (line).",
+        "Bar chart of each component's fraction of variance explained with a line of the "
+        "cumulative fraction.")
+
     fig, ax = plt.subplots(figsize=(6, 3))
     for k in range(fit.n_components):
         ax.plot(g, fit.eigenfunctions[:, k], label=f"phi_{k + 1} (FVE {fit.fve[k]:.2f})")

@@ -139,6 +139,7 @@ def build_sections(result: AnalysisResult, record_view: dict[str, Any],
             ["K", "cumulative FVE", "AIC", "BIC", "cv error", "chosen"],
             [[int(k), sel.cumulative_fve[i], sel.aic[i], sel.bic[i], sel.cv[i],
               "chosen" if k == sel.chosen else ""] for i, k in enumerate(sel.k)])
+    fig(s, "eigenvalues")
     fig(s, "eigenfunctions")
     fig(s, "effects")
     s = b.section("scores", "Scores", "Where each subject sits on the components.")
@@ -153,6 +154,17 @@ def build_sections(result: AnalysisResult, record_view: dict[str, Any],
     s = b.section("residuals", "Residual diagnostics", "Whether the readings scatter around the "
                   "fitted curves as the model assumes.")
     fig(s, "residuals")
+    summary = result.residual_summary
+    worst = summary.sort_values(["rms_standardized", "subject"], ascending=[False, True]).head(10)
+    rms = summary.rms_standardized
+    b.text(s, f"Per subject, the root mean square of the standardized residuals has median "
+           f"{rms.median():.3g} and 90th percentile {rms.quantile(0.9):.3g} (about 1 is "
+           "expected when the error variance fits); the full list is tables/"
+           "residuals_by_subject.csv.")
+    b.table(s, f"The {len(worst)} subjects with the largest RMS standardized residual.",
+            ["subject", "readings", "mean residual", "RMS standardized"],
+            [[r.subject, r.n_obs, r.mean_residual, r.rms_standardized]
+             for r in worst.itertuples()])
     s = b.section("sensitivity", "Sensitivity to the bandwidths", "How the estimates move when "
                   "both bandwidths are multiplied by a factor.")
     thr = spec.sensitivity["similarity_threshold"]

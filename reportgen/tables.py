@@ -69,11 +69,7 @@ def build_tables(result: AnalysisResult) -> dict[str, pd.DataFrame]:
             row[f"similarity_{j + 1}"] = run.similarity[j] if run.similarity else np.nan
         rows.append(row)
     tables["sensitivity"] = pd.DataFrame(rows)
-    res = result.residuals.assign(sq=result.residuals.standardized ** 2)
-    per = res.groupby("subject", sort=True).agg(
-        n_obs=("residual", "size"), mean_residual=("residual", "mean"), ms=("sq", "mean"))
-    per["rms_standardized"] = np.sqrt(per.pop("ms"))
-    tables["residuals_by_subject"] = per.reset_index()
+    tables["residuals_by_subject"] = result.residual_summary
     return tables
 
 

@@ -17,7 +17,7 @@ from .conftest import ROOT
 
 SECTIONS = ["summary", "checks", "mean", "covariance", "components", "scores", "trajectories",
             "residuals", "sensitivity", "caveats", "reproducibility"]
-FIGURES = 10
+FIGURES = 11
 
 
 class _Collector(HTMLParser):
@@ -51,7 +51,7 @@ def test_sections_figures_alt_text(regenerated: dict[str, Path], example: str) -
     assert c.sections == SECTIONS  # all present, in the order of the brief
     assert c.figures == FIGURES and len(c.images) == FIGURES
     assert all(label and len(label) > 20 for label in c.images)  # alt text on every figure
-    assert c.th > 20 and c.captions >= FIGURES + 6
+    assert c.th > 20 and c.captions >= FIGURES + 7
     for n in range(1, FIGURES + 1):
         assert f"Figure {n}." in html
     assert re.search(r"https?:", html) is None  # no network reference at all
