@@ -104,3 +104,25 @@ def test_check_init_and_schema(study: Path, tmp_path: Path) -> None:
     for spec in sorted((ROOT / "specs").glob("*.yaml")):
         jsonschema.Draft202012Validator(schema).validate(yaml.safe_load(spec.read_text()))
     jsonschema.Draft202012Validator(schema).validate(yaml.safe_load(starter.read_text()))
+
+
+def test_demo_prints_where_the_report_is(tmp_path: Path) -> None:
+    res = cli("demo", "--out", str(tmp_path / "runs"))
+    assert res.returncode == 0, res.stderr
+    html = res.stdout.splitlines()[0].removeprefix("demo report: ")
+    pdf = res.stdout.splitlines()[1].removeprefix("demo pdf: ")
+    assert Path(html).is_file() and Path(pdf).is_file()
+    assert html.endswith("clinic-visits/v001/report.html")
+
+
+def test_parquet_data_file(study: Path) -> None:
+    import pandas as pd
+
+    frame = pd.read_csv(study.parent / "clinic_visits.csv")
+    frame.to_parquet(study.parent / "clinic_visits.parquet")
+    parquet_spec = study.parent / "parquet.yaml"
+    parquet_spec.write_text(study.read_text().replace("file: clinic_visits.csv",
+                                                      "file: clinic_visits.parquet"))
+    res = cli("check", str(parquet_spec))
+    assert res.returncode == 0, res.stderr
+    assert "160 subjects, 742 readings" in res.stdout
