@@ -135,6 +135,12 @@ def _caveats(spec: Spec, ds: Dataset, fit: FPCAFit, runs: list[SensitivityRun],
         if c.name == "time-pair coverage" and c.status == "warn":
             out.append("Parts of the time-pair square have no pairs of readings: the covariance "
                        f"there is an extrapolation of the smoother ({c.detail}).")
+    share = fit.error_variance / float(np.mean(fit.diagonal_variance))
+    if share < 0.1:
+        out.append(f"The error variance is {share:.1%} of the variance of single readings. It is "
+                   "estimated as the difference of two smoothed variances, which is imprecise "
+                   "when differences between subjects dominate: read it, and the width of the "
+                   "bands, with the sensitivity table.")
     single = int(np.sum(fit.n_obs == 1))
     if single > 0.2 * fit.n_subjects:
         out.append(f"{single} of {fit.n_subjects} subjects have one reading: their trajectories "
