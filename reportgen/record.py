@@ -17,6 +17,7 @@ import pandas as pd
 from . import __version__
 from .analysis import AnalysisResult
 from .errors import RecordError
+from .fpca.components import trapezoid_weights
 
 RECORD_KEYS = ("tool", "run", "spec", "inputs", "environment", "results_sha256", "outputs")
 DEPENDENCIES = ("numpy", "scipy", "pandas", "pyarrow", "matplotlib", "jinja2", "weasyprint",
@@ -171,8 +172,7 @@ def compare_runs(a: Path, b: Path, gates: dict[str, Any]) -> list[Finding]:
     out.append(Finding("largest mean change", "", f"{change:.4g} ({change / span:.1%} of range)",
                        change / span > gates["max_mean_change"]))
     ea, eb = _table(a, "eigenfunctions"), _table(b, "eigenfunctions")
-    w = np.gradient(grid)
-    w[[0, -1]] = np.diff(grid)[[0, -1]] / 2
+    w = trapezoid_weights(grid)
     for k in range(min(ka, kb)):
         fb = np.interp(grid, eb.time.to_numpy(), eb[f"phi_{k + 1}"].to_numpy())
         sim = float(abs(np.sum(w * ea[f"phi_{k + 1}"].to_numpy() * fb)))

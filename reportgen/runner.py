@@ -20,7 +20,14 @@ from pathlib import Path
 from .analysis import AnalysisResult, analyse
 from .data import load_dataset, require_passed
 from .errors import OutputError
-from .record import build_record, dump_record, load_record, sha256_bytes, sha256_file
+from .record import (
+    build_record,
+    dump_record,
+    load_record,
+    settings,
+    sha256_bytes,
+    sha256_file,
+)
 from .render import render_html, render_pdf
 from .spec import Spec, load_spec, spec_from_bytes
 from .tables import build_tables, canonical_bytes, results_digest
@@ -197,8 +204,6 @@ def verify_run(run_dir: str | Path, progress: Progress = lambda _: None) -> list
     progress("re-running the recorded spec")
     built = build_outputs(spec, int(record["run"]["version"]), progress)
     rows.append(VerifyRow("results sha256", record["results_sha256"], built.results_sha256))
-    from .record import settings
-
     rec_settings = record["spec"].get("settings", {})
     now_settings = settings(built.result)
     for key in ("mean_bandwidth", "covariance_bandwidth", "n_components", "component_rule",

@@ -19,6 +19,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from ..errors import EstimationError
+from ._kernels import interpolate_columns
 from .smoothing import FloatArray
 
 # Eigenvalues below this fraction of the largest are numerically zero (common practice,
@@ -40,15 +41,13 @@ def evaluate_at(t: FloatArray, grid: FloatArray, funcs: FloatArray) -> FloatArra
     """Columns of ``funcs`` (functions on ``grid``) at times ``t`` by linear interpolation.
 
     Times outside the grid take the end values (as ``np.interp``). On a regular grid the
-    bracketing index is computed directly, for all columns at once.
+    bracketing index is computed directly (``_kernels.interpolate_columns``).
     """
     t = np.asarray(t, dtype=np.float64)
     step = np.diff(grid)
     if grid.size > 1 and np.allclose(step, step[0], rtol=1e-9, atol=0.0):
-        pos = np.clip((t - grid[0]) / step[0], 0.0, grid.size - 1.0)
-        left = np.minimum(pos.astype(np.intp), grid.size - 2)
-        frac = (pos - left)[:, None]
-        return funcs[left] * (1.0 - frac) + funcs[left + 1] * frac
+        return interpolate_columns(t, np.ascontiguousarray(funcs), float(grid[0]),
+                                   float(step[0]))
     out = np.empty((t.size, funcs.shape[1]))
     for k in range(funcs.shape[1]):
         out[:, k] = np.interp(t, grid, funcs[:, k])

@@ -477,8 +477,7 @@ def fit_arrays(
     values, funcs = eig.values[:k], eig.functions[:, :k]
 
     # 6. scores
-    out_grid = BinGrid(lo, hi, options.n_grid)  # the output grid is regular too
-    phi_obs = interpolate_columns(sample.t, np.ascontiguousarray(funcs), lo, out_grid.width)
+    phi_obs = evaluate_at(sample.t, grid, funcs)
     scores, score_cov = conditional_scores(sample.starts, resid, phi_obs, values, sigma2)
     fve = eig.values / eig.values.sum()
     return FPCAFit(
