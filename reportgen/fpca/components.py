@@ -29,7 +29,8 @@ COMPONENT_RULES = ("fve", "aic", "bic", "cv", "fixed")
 
 
 def trapezoid_weights(grid: FloatArray) -> FloatArray:
-    """Trapezoid quadrature weights for an increasing grid."""
+    """Trapezoid quadrature weights for an increasing grid (of any numeric dtype)."""
+    grid = np.asarray(grid, dtype=np.float64)
     d = np.diff(grid)
     w = np.zeros_like(grid)
     w[:-1] += d / 2.0
