@@ -2,9 +2,13 @@
 
 from __future__ import annotations
 
+import contextlib
 import gc
+import os
 import warnings
+from collections.abc import Iterator
 from dataclasses import dataclass, field
+from datetime import datetime, timezone
 from typing import Any
 
 import jinja2
@@ -233,6 +237,26 @@ def _offline_fetcher() -> Any:
     return OfflineFetcher()
 
 
+@contextlib.contextmanager
+def _source_date(when: datetime) -> Iterator[None]:
+    """Set SOURCE_DATE_EPOCH to ``when`` while the PDF is written, then restore it.
+
+    Without the HarfBuzz-subset library weasyprint subsets fonts with fontTools, which
+    stamps each subset font with the current time unless SOURCE_DATE_EPOCH is set
+    (reproducible-builds.org convention). The run's one clock is the recorded finish time.
+    """
+    key = "SOURCE_DATE_EPOCH"
+    before = os.environ.get(key)
+    os.environ[key] = str(int(when.replace(tzinfo=timezone.utc).timestamp()))
+    try:
+        yield
+    finally:
+        if before is None:
+            del os.environ[key]
+        else:
+            os.environ[key] = before
+
+
 def render_pdf(html: bytes, spec_bytes: bytes, record_bytes: bytes, stamp: str) -> bytes:
     """PDF/A-3b from the report HTML with spec.yaml and record.json attached.
 
@@ -242,7 +266,6 @@ def render_pdf(html: bytes, spec_bytes: bytes, record_bytes: bytes, stamp: str) 
     compare bytes.
     """
     import logging
-    from datetime import datetime
 
     import weasyprint
 
@@ -258,7 +281,7 @@ def render_pdf(html: bytes, spec_bytes: bytes, record_bytes: bytes, stamp: str) 
                               created=when, modified=when),
     ]
     document = weasyprint.HTML(string=html.decode("utf-8"), base_url=None, url_fetcher=fetcher)
-    with warnings.catch_warnings():
+    with warnings.catch_warnings(), _source_date(when):
         # weasyprint 70 leaves its bundled sRGB profile file open (PDF/A output intent);
         # collect it here so that the warning cannot surface later in unrelated code.
         warnings.filterwarnings("ignore", message=r"unclosed file .*sRGB2014\.icc",
