@@ -27,6 +27,7 @@ class SensitivityRun:
     factor: float
     mean_bandwidth: float
     covariance_bandwidth: float
+    diagonal_bandwidth: float
     fit: FPCAFit | None
     similarity: tuple[float, ...]  # |<phi_k main, phi_k run>| for k = 1..K of the main fit
     error: str = ""
@@ -66,8 +67,9 @@ def _sensitivity(spec: Spec, codes: np.ndarray, t: np.ndarray, y: np.ndarray,
     runs = []
     for factor in spec.sensitivity["factors"]:
         hm, hc = factor * fit.mean_bandwidth, factor * fit.covariance_bandwidth
+        hd = factor * fit.diagonal_bandwidth
         progress(f"sensitivity: bandwidths x {factor:g}")
-        options = replace(with_bandwidths(fit.options, hm, hc), component_rule="fixed",
+        options = replace(with_bandwidths(fit.options, hm, hc, hd), component_rule="fixed",
                           n_components=fit.n_components)
         try:
             try:
@@ -75,14 +77,14 @@ def _sensitivity(spec: Spec, codes: np.ndarray, t: np.ndarray, y: np.ndarray,
             except EstimationError:  # fewer positive eigenvalues than the main fit's K
                 other = fit_arrays(codes, t, y, labels, replace(options, component_rule="fve"))
         except EstimationError as e:
-            runs.append(SensitivityRun(factor, hm, hc, None, (), str(e)))
+            runs.append(SensitivityRun(factor, hm, hc, hd, None, (), str(e)))
             continue
         sims = tuple(
             _similarity(fit.grid, fit.eigenfunctions[:, k], other.eigenfunctions[:, k])
             if k < other.n_components else float("nan")
             for k in range(fit.n_components)
         )
-        runs.append(SensitivityRun(factor, hm, hc, other, sims))
+        runs.append(SensitivityRun(factor, hm, hc, hd, other, sims))
     return runs
 
 
@@ -135,6 +137,7 @@ def _caveats(spec: Spec, ds: Dataset, fit: FPCAFit, runs: list[SensitivityRun],
         if c.name == "time-pair coverage" and c.status == "warn":
             out.append("Parts of the time-pair square have no pairs of readings: the covariance "
                        f"there is an extrapolation of the smoother ({c.detail}).")
+    out += _selection_caveats(fit)
     share = fit.error_variance / float(np.mean(fit.diagonal_variance))
     if share < 0.1:
         out.append(f"The error variance is {share:.1%} of the variance of single readings. It is "
@@ -156,6 +159,29 @@ def _caveats(spec: Spec, ds: Dataset, fit: FPCAFit, runs: list[SensitivityRun],
     out.append("Visit times are assumed unrelated to the subject's state; where readings are "
                "taken because a subject is unwell (or drop out because of it), the mean and the "
                "trajectories can be biased.")
+    return out
+
+
+def _selection_caveats(fit: FPCAFit) -> list[str]:
+    """Say when the component rules disagree or the FVE sits at its threshold."""
+    out = []
+    sel = fit.selection
+    picks = {rule: rule_choice(fit, rule, fit.options.fve_threshold)
+             for rule in ("fve", "aic", "bic", "cv") if rule == "fve" or
+             np.any(np.isfinite(getattr(sel, rule)))}
+    if len(set(picks.values())) > 1:
+        listed = ", ".join(f"{r.upper() if r != 'cv' else 'cv'} {k}" for r, k in picks.items())
+        out.append(f"The rules for the number of components disagree ({listed}); the report "
+                   f"uses {fit.n_components} by the {sel.rule} rule. AIC and cv tend to pick "
+                   "more components than the data support when the eigenfunctions are "
+                   "estimated from the same data (measured in benchmarks/ACCURACY.md).")
+    k = fit.n_components
+    if sel.rule == "fve" and abs(float(fit.cumulative_fve[k - 1]) - fit.options.fve_threshold) \
+            < 0.01:
+        out.append(f"The cumulative FVE of the chosen {k} components, "
+                   f"{fit.cumulative_fve[k - 1]:.3f}, is within 0.01 of the threshold "
+                   f"{fit.options.fve_threshold:g}: a slightly different sample could change "
+                   "the number of components.")
     return out
 
 

@@ -73,7 +73,7 @@ def fit_sparse_fpca(
     >>> fit = fit_sparse_fpca(pd.DataFrame({"id": subj, "t": t, "y": y}),
     ...                       subject="id", time="t", value="y")
     >>> round(float(fit.eigenvalues[0]), 1)  # true value 1, with phi = sqrt(2) cos(pi t)
-    0.9
+    1.0
     """
     opts = make_options(options)
     codes, t, y, labels = arrays_from_frame(frame, subject, time, value)

@@ -10,6 +10,7 @@ import re
 from typing import Any, cast
 
 import matplotlib
+import matplotlib.ticker
 
 matplotlib.use("Agg")
 import matplotlib.pyplot as plt
@@ -92,29 +93,65 @@ def _make(r: AnalysisResult) -> dict[str, tuple[str, str, str]]:
     fig, ax = plt.subplots(figsize=(6, 3.2))
     ax.hexbin(frame.time, frame.value, gridsize=40, cmap="Greys", mincnt=1, linewidths=0,
               rasterized=True)
-    z = fit.band_multiplier()
+    z, zs = fit.band_multiplier(), fit.mean_simultaneous_multiplier
+    level = f"{fit.options.band_level:.0%}"
+    ax.fill_between(g, fit.mean - zs * fit.mean_se, fit.mean + zs * fit.mean_se,
+                    color=PALETTE[1], alpha=0.15, linewidth=0, label=f"simultaneous {level}")
     ax.fill_between(g, fit.mean - z * fit.mean_se, fit.mean + z * fit.mean_se,
-                    color=PALETTE[1], alpha=0.3, linewidth=0)
-    ax.plot(g, fit.mean, color=PALETTE[1])
+                    color=PALETTE[1], alpha=0.3, linewidth=0, label=f"pointwise {level}")
+    ax.plot(g, fit.mean, color=PALETTE[1], label="mean")
     ax.set_xlabel(tl)
     ax.set_ylabel(vl)
-    put("mean", fig, f"Mean curve with a pointwise {fit.options.band_level:.0%} band "
-                   "(cluster-robust over subjects) over the density of all readings.",
-                   "Grey density of readings against time with the mean curve and its band.")
+    ax.legend(fontsize=7)
+    put("mean", fig, f"Mean curve with a pointwise {level} band (inner) and a simultaneous "
+                   f"{level} band (outer; holds at every time at once), both cluster-robust "
+                   "over subjects and without smoothing bias, over the density of all readings.",
+                   "Grey density of readings against time with the mean curve and its two "
+                   "bands.")
 
-    fig, axes = plt.subplots(1, 2, figsize=(6.6, 3.0))
-    cov = fit.covariance
-    sd = np.sqrt(np.maximum(np.diag(cov), 1e-300))
-    for ax, surf, title in ((axes[0], cov, "covariance"),
-                            (axes[1], np.clip(cov / np.outer(sd, sd), -1, 1), "correlation")):
-        cs = ax.contourf(g, g, surf, levels=12, cmap="RdBu_r")
+    fig, axes = plt.subplots(1, 3, figsize=(7.4, 2.6))
+    cov = fit.retained_covariance
+    sd = np.sqrt(np.diag(cov))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        corr = np.where(np.outer(sd, sd) > 0, cov / np.outer(sd, sd), np.nan)
+    for ax, surf, title, levels in (
+            (axes[0], cov, "covariance (retained)", 12),
+            (axes[1], np.clip(corr, -1, 1), "correlation (retained)", np.linspace(-1, 1, 21)),
+            (axes[2], fit.covariance, "raw smooth (diagnostic)", 12)):
+        cs = ax.contourf(g, g, surf, levels=levels, cmap="RdBu_r")
         cs.set_rasterized(True)
         fig.colorbar(cs, ax=ax)
-        ax.set_title(title)
+        ax.set_title(title, fontsize=8)
         ax.set_xlabel(tl)
-        ax.set_ylabel(tl)
-    put("covariance", fig, "Smoothed covariance and correlation surfaces.",
-                         "Two filled contour maps of the covariance and correlation surfaces.")
+    axes[0].set_ylabel(tl)
+    dropped = 1.0 - float(fit.cumulative_fve[fit.n_components - 1])
+    put("covariance", fig, f"Covariance and correlation rebuilt from the {fit.n_components} "
+        f"retained components (positive semi-definite; they leave out {dropped:.1%} of the "
+        "variance), and the raw smoothed covariance surface, which need not be positive "
+        "semi-definite, as a diagnostic.",
+        "Three filled contour maps: the covariance and correlation from the retained "
+        "components, and the raw smoothed covariance.")
+
+    fig, axes = plt.subplots(1, 3, figsize=(7.4, 2.3))
+    for ax, (what, choice) in zip(axes, (("mean", fit.mean_bandwidth_choice),
+                                         ("covariance", fit.covariance_bandwidth_choice),
+                                         ("diagonal", fit.diagonal_bandwidth_choice)),
+                                  strict=True):
+        if choice.candidates:
+            ax.plot(choice.candidates, choice.criterion, "o-", markersize=3, color=PALETTE[0])
+            ax.set_xscale("log")
+            ax.xaxis.set_minor_formatter(matplotlib.ticker.NullFormatter())
+            ax.xaxis.set_major_locator(matplotlib.ticker.LogLocator(subs=(1.0, 2.0, 5.0)))
+            ax.xaxis.set_major_formatter(matplotlib.ticker.FormatStrFormatter("%g"))
+        ax.axvline(choice.value, color=PALETTE[1], linestyle="--", linewidth=1)
+        ax.set_title(f"{what}: {choice.value:.3g} ({choice.method})", fontsize=8)
+        ax.set_xlabel("bandwidth" + (f" ({spec.data['time_unit']})"
+                                     if spec.data["time_unit"] else ""))
+    axes[0].set_ylabel("criterion")
+    put("bandwidths", fig, "Bandwidth choice: the criterion at each candidate bandwidth "
+        "(lower is better), the chosen one dashed; a fixed bandwidth shows no curve.",
+        "Three line plots of the bandwidth criterion against the candidate bandwidths for "
+        "the mean, the covariance surface and the variance of single readings.")
 
     fig, ax = plt.subplots(figsize=(6, 2.8))
     n_show = min(fit.all_eigenvalues.size, 10)
@@ -189,14 +226,16 @@ def _make(r: AnalysisResult) -> dict[str, tuple[str, str, str]]:
         ax = axes[i // cols, i % cols]
         tr = traj[traj.subject.astype(str) == sid]
         obs = frame[frame.subject.astype(str) == sid]
-        ax.fill_between(tr.time, tr.lower, tr.upper, color=PALETTE[0], alpha=0.2, linewidth=0)
+        ax.fill_between(tr.time, tr.lower_simultaneous, tr.upper_simultaneous,
+                        color=PALETTE[0], alpha=0.12, linewidth=0)
+        ax.fill_between(tr.time, tr.lower, tr.upper, color=PALETTE[0], alpha=0.25, linewidth=0)
         ax.plot(tr.time, tr.fitted, color=PALETTE[0])
         ax.plot(obs.time, obs.value, "o", color=PALETTE[1], markersize=3)
         ax.set_title(f"subject {sid}", fontsize=8)
     for j in range(len(shown), rows * cols):
         axes[j // cols, j % cols].set_visible(False)
-    put("trajectories", fig, f"Recovered trajectories with pointwise "
-                           f"{fit.options.band_level:.0%} bands and the subjects' readings.",
+    put("trajectories", fig, f"Recovered trajectories with pointwise {level} bands (inner) "
+                           f"and simultaneous {level} bands (outer), and the subjects' readings.",
                            "Small multiples: each selected subject's fitted curve, band and "
                            "readings.")
 

@@ -8,7 +8,7 @@ import os
 import warnings
 from collections.abc import Iterator
 from dataclasses import dataclass, field
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 from typing import Any
 
 import jinja2
@@ -98,9 +98,15 @@ def build_sections(result: AnalysisResult, record_view: dict[str, Any],
            "readings; the covariance is a two-dimensional local linear smooth of the products "
            "of residuals at two different readings of a subject, with the readings' own "
            "squares smoothed separately to estimate the measurement-error variance; "
-           "each subject's scores and trajectory follow by conditional expectation, which "
-           f"works with a single reading. Bandwidths: mean {_how(fit.mean_bandwidth_choice)}, "
-           f"covariance {_how(fit.covariance_bandwidth_choice)} ({fit.options.kernel} kernel).")
+           "the eigenvalues and the error variance are then refined by maximising the "
+           "marginal Gaussian likelihood of the readings with the eigenfunctions held fixed "
+           f"(over {fit.likelihood.n_subjects} subjects and {fit.likelihood.eigenvalues.size} "
+           "components); each subject's scores and trajectory follow by conditional "
+           "expectation, which works with a single reading. Bands for trajectories add the "
+           "variance of the components left out. Bandwidths: mean "
+           f"{_how(fit.mean_bandwidth_choice)}, covariance "
+           f"{_how(fit.covariance_bandwidth_choice)}, variance of single readings "
+           f"{_how(fit.diagonal_bandwidth_choice)} ({fit.options.kernel} kernel).")
     per = fit.n_obs
     b.table(s, "Key estimates.", ["quantity", "value"], [
         ["subjects", fit.n_subjects], ["readings", fit.n_readings],
@@ -108,7 +114,9 @@ def build_sections(result: AnalysisResult, record_view: dict[str, Any],
          f"{per.min()} / {np.median(per):g} / {per.max()}"],
         ["components chosen", f"{fit.n_components} (rule: {fit.selection.rule})"],
         ["FVE of the chosen components", f"{fit.cumulative_fve[fit.n_components - 1]:.3f}"],
-        ["error variance" + vu, fit.error_variance],
+        ["error variance, maximum likelihood" + vu, fit.error_variance],
+        ["error variance, smoothing estimate (starting point)" + vu,
+         fit.smoothing_error_variance],
         ["mean bandwidth" + tu, f"{fit.mean_bandwidth:.4g} ({fit.mean_bandwidth_choice.method})"],
         ["covariance bandwidth" + tu,
          f"{fit.covariance_bandwidth:.4g} ({fit.covariance_bandwidth_choice.method})"],
@@ -120,18 +128,21 @@ def build_sections(result: AnalysisResult, record_view: dict[str, Any],
     fig(s, "readings_per_subject")
     fig(s, "design")
 
-    s = b.section("mean", "Mean curve", "The average curve over all subjects, with a pointwise "
-                  f"{fit.options.band_level:.0%} band.")
+    s = b.section("mean", "Mean curve", "The average curve over all subjects, with pointwise "
+                  f"and simultaneous {fit.options.band_level:.0%} bands.")
     fig(s, "mean")
     s = b.section("covariance", "Covariance and correlation", "How readings at two times vary "
                   "together across subjects.")
     fig(s, "covariance")
     s = b.section("components", "Components", "The main modes of variation and how many were "
                   "kept.")
-    b.table(s, "Eigenvalues and fraction of variance explained (FVE).",
-            ["component", "eigenvalue", "FVE", "cumulative FVE"],
-            [[k + 1, fit.all_eigenvalues[k], fit.fve[k], fit.cumulative_fve[k]]
-             for k in range(min(fit.all_eigenvalues.size, 10))])
+    n_ref = fit.likelihood.eigenvalues.size
+    b.table(s, f"Eigenvalues and fraction of variance explained (FVE). The first {n_ref} are "
+            "maximum likelihood estimates (the surface's values beside them); the rest are "
+            "the surface's.",
+            ["component", "eigenvalue", "surface eigenvalue", "FVE", "cumulative FVE"],
+            [[k + 1, fit.all_eigenvalues[k], fit.surface_eigenvalues[k], fit.fve[k],
+              fit.cumulative_fve[k]] for k in range(min(fit.all_eigenvalues.size, 10))])
     b.text(s, f"{fit.all_eigenvalues.size} eigenvalues of the smoothed surface are positive; "
            f"{fit.dropped_eigenvalues} negative or numerically zero ones were dropped (the "
            f"negative ones sum to {fit.dropped_negative_sum:.3g}, "
@@ -139,7 +150,8 @@ def build_sections(result: AnalysisResult, record_view: dict[str, Any],
            "total). FVE is relative to the positive total.")
     sel = fit.selection
     b.table(s, f"Component selection: every criterion; the rule used was {sel.rule}. AIC, BIC "
-            f"and cv were computed over {sel.n_subjects_used} subjects.",
+            f"and cv were computed over {sel.n_subjects_used} subjects, each K with its own "
+            "likelihood maximum (K eigenvalues and the error variance counted as parameters).",
             ["K", "cumulative FVE", "AIC", "BIC", "cv error", "chosen"],
             [[int(k), sel.cumulative_fve[i], sel.aic[i], sel.bic[i], sel.cv[i],
               "chosen" if k == sel.chosen else ""] for i, k in enumerate(sel.k)])
@@ -176,17 +188,20 @@ def build_sections(result: AnalysisResult, record_view: dict[str, Any],
     rule, fve_threshold = fit.options.component_rule, fit.options.fve_threshold
     for run in result.sensitivity:
         rows.append([run.factor, run.mean_bandwidth, run.covariance_bandwidth,
+                     run.diagonal_bandwidth,
                      rule_choice(run.fit, rule, fve_threshold) if run.fit else "failed",
                      run.fit.error_variance if run.fit else float("nan"),
                      ", ".join(_fmt(x) for x in run.similarity) or run.error[:80]])
     b.table(s, "Key estimates per bandwidth setting: K is the number of components the rule "
             f"({rule}) picks at that setting; similarity is |inner product| of each of the main "
             "fit's eigenfunctions with the same component of that setting.",
-            ["factor", "mean bw", "covariance bw", "K", "error variance", "similarity"], rows)
+            ["factor", "mean bw", "covariance bw", "diagonal bw", "K", "error variance",
+             "similarity"], rows)
     b.table(s, f"Verdict per component (stable when every similarity is at least {thr:g}).",
             ["component", "verdict"],
             [[k + 1, "stable" if ok else "not stable"] for k, ok in enumerate(result.stable)])
     fig(s, "sensitivity")
+    fig(s, "bandwidths")
     s = b.section("caveats", "Caveats", "What could be wrong with these results, and how to "
                   "use them.")
     b.items(s, list(result.caveats) + list(STANDARD_CAUTIONS))
@@ -247,7 +262,7 @@ def _source_date(when: datetime) -> Iterator[None]:
     """
     key = "SOURCE_DATE_EPOCH"
     before = os.environ.get(key)
-    os.environ[key] = str(int(when.replace(tzinfo=timezone.utc).timestamp()))
+    os.environ[key] = str(int(when.replace(tzinfo=UTC).timestamp()))
     try:
         yield
     finally:

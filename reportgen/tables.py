@@ -25,12 +25,20 @@ def build_tables(result: AnalysisResult) -> dict[str, pd.DataFrame]:
     fit = result.fit
     k = fit.n_components
     tables: dict[str, pd.DataFrame] = {}
-    tables["mean"] = pd.DataFrame({"time": fit.grid, "mean": fit.mean,
-                                   "standard_error": fit.mean_se})
+    z, zs = fit.band_multiplier(), fit.mean_simultaneous_multiplier
+    tables["mean"] = pd.DataFrame({
+        "time": fit.grid, "mean": fit.mean, "standard_error": fit.mean_se,
+        "lower": fit.mean - z * fit.mean_se, "upper": fit.mean + z * fit.mean_se,
+        "lower_simultaneous": fit.mean - zs * fit.mean_se,
+        "upper_simultaneous": fit.mean + zs * fit.mean_se,
+    })
+    n_all = fit.all_eigenvalues.size
     tables["components"] = pd.DataFrame({
-        "component": np.arange(1, fit.all_eigenvalues.size + 1),
+        "component": np.arange(1, n_all + 1),
         "eigenvalue": fit.all_eigenvalues, "fve": fit.fve, "cumulative_fve": fit.cumulative_fve,
-        "retained": np.arange(fit.all_eigenvalues.size) < k,
+        "retained": np.arange(n_all) < k,
+        "refined": np.arange(n_all) < fit.likelihood.eigenvalues.size,
+        "surface_eigenvalue": fit.surface_eigenvalues,
     })
     ef = pd.DataFrame({"time": fit.grid})
     for j in range(k):
@@ -47,6 +55,13 @@ def build_tables(result: AnalysisResult) -> dict[str, pd.DataFrame]:
         columns=["check", "status", "detail"],
     )
     sel = fit.selection
+    tables["bandwidths"] = pd.DataFrame(
+        [(what, h, c, h == choice.value) for what, choice in (
+            ("mean", fit.mean_bandwidth_choice), ("covariance", fit.covariance_bandwidth_choice),
+            ("diagonal", fit.diagonal_bandwidth_choice))
+         for h, c in zip(choice.candidates or (choice.value,),
+                         choice.criterion or (np.nan,), strict=True)],
+        columns=["smoother", "bandwidth", "criterion", "chosen"])
     tables["selection"] = pd.DataFrame({
         "components": sel.k, "cumulative_fve": sel.cumulative_fve, "aic": sel.aic,
         "bic": sel.bic, "cv_error": sel.cv, "chosen": sel.k == sel.chosen,
@@ -54,7 +69,8 @@ def build_tables(result: AnalysisResult) -> dict[str, pd.DataFrame]:
     rows = []
     for run in result.sensitivity:
         row: dict[str, object] = {"factor": run.factor, "mean_bandwidth": run.mean_bandwidth,
-                                  "covariance_bandwidth": run.covariance_bandwidth}
+                                  "covariance_bandwidth": run.covariance_bandwidth,
+                                  "diagonal_bandwidth": run.diagonal_bandwidth}
         if run.fit is None:
             row.update({"n_components": np.nan, "error_variance": np.nan, "note": run.error})
         else:

@@ -56,7 +56,8 @@ def test_criteria_equal_direct_gaussian_likelihood_and_loo() -> None:
     from scipy.stats import multivariate_normal
 
     from reportgen.fpca.design import Sample
-    from reportgen.fpca.scores import component_criteria
+    from reportgen.fpca.likelihood import evaluate
+    from reportgen.fpca.scores import loo_errors, sample_terms
 
     rng = np.random.default_rng(2)
     sizes = np.array([1, 3, 4, 2, 6])
@@ -67,7 +68,10 @@ def test_criteria_equal_direct_gaussian_likelihood_and_loo() -> None:
     lam, s2 = np.array([2.0, 0.5]), 0.4
     r = rng.normal(size=subject.size)
     sample = Sample.from_arrays(subject, t, r)
-    loglik, loo = component_criteria(sample, np.arange(sizes.size), r, grid, funcs, lam, s2)
+    terms = sample_terms(sample, np.arange(sizes.size), r, grid, funcs)
+    loo = loo_errors(terms, [(lam[:1], s2), (lam[:2], s2)])
+    loglik = [evaluate(terms.sums.leading(k), np.log(lam[:k]), np.log(s2), False)[0]
+              for k in (1, 2)]
     for k in (1, 2):
         phi = np.column_stack([np.ones_like(t), np.sqrt(3) * (2 * t - 1)])[:, :k]
         ref_ll, errs = 0.0, []

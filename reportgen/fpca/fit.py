@@ -20,7 +20,7 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
-from scipy import stats as sps
+from scipy.special import chdtri, ndtri
 
 from ..errors import EstimationError
 from ._kernels import interpolate_columns
@@ -43,7 +43,8 @@ from .design import (
     pair_stats,
 )
 from .frame import arrays_from_frame
-from .scores import component_criteria, conditional_scores
+from .likelihood import LikelihoodFit, maximise, starting_error_variance
+from .scores import SampleTerms, conditional_scores, loo_errors, sample_terms
 from .smoothing import (
     BinGrid,
     FloatArray,
@@ -63,9 +64,13 @@ class FPCAOptions:
     """Settings of a fit; the names are the spec's ``model`` section (see the README).
 
     A bandwidth is a number (used as given) or ``"auto"`` (chosen by ``bandwidth_method``:
-    ``"cv"``, K-fold cross-validation over subjects, or ``"gcv"``). ``component_rule`` is one
-    of ``"fve"`` (smallest K reaching ``fve_threshold``), ``"aic"``, ``"bic"``, ``"cv"``
-    (leave-one-reading-out prediction error) or ``"fixed"`` (``n_components``).
+    ``"cv"``, K-fold cross-validation over subjects, or ``"gcv"``). ``diagonal_bandwidth``
+    smooths the squared residuals of single readings (the variance of a reading), on its
+    own as in Yao, Müller & Wang (2005). ``criteria_max_subjects`` caps the seeded sample of
+    subjects over which the likelihood refinement and the criteria are computed.
+    ``component_rule`` is one of ``"fve"`` (smallest K reaching ``fve_threshold``),
+    ``"aic"``, ``"bic"``, ``"cv"`` (leave-one-reading-out prediction error) or ``"fixed"``
+    (``n_components``).
     """
 
     n_grid: int = 101
@@ -73,6 +78,7 @@ class FPCAOptions:
     kernel: str = "epanechnikov"
     mean_bandwidth: float | str = "auto"
     covariance_bandwidth: float | str = "auto"
+    diagonal_bandwidth: float | str = "auto"
     bandwidth_method: str = "cv"
     cv_folds: int = 5
     mean_bins: int = 401
@@ -81,8 +87,7 @@ class FPCAOptions:
     fve_threshold: float = 0.95
     n_components: int | None = None
     max_components: int = 8
-    criteria_max_subjects: int = 5000
-    error_variance_floor: float = 1e-3
+    criteria_max_subjects: int = 20000
     band_level: float = 0.95
     seed: int = 0
 
@@ -110,19 +115,36 @@ class FPCAFit:
     mean_se : ndarray of shape (n_grid,)
         Pointwise standard error of the mean, cluster-robust over subjects.
     covariance : ndarray of shape (n_grid, n_grid)
-        Smoothed covariance surface (off-diagonal raw covariances only).
+        Smoothed covariance surface (off-diagonal raw covariances only); not positive
+        semi-definite in general. ``retained_covariance`` is the display version.
     diagonal_variance : ndarray of shape (n_grid,)
         Smoothed variance of single readings: surface diagonal plus error variance.
     eigenvalues : ndarray of shape (n_components,)
+        Maximum likelihood eigenvalues of the retained components (``fpca.likelihood``).
     eigenfunctions : ndarray of shape (n_grid, n_components)
         Unit L2 norm on the domain; sign convention in ``fpca.components``.
     all_eigenvalues : ndarray of shape (n_positive,)
-        Every positive eigenvalue of the surface; FVE is relative to their sum.
+        The first ``likelihood.eigenvalues.size`` refined by likelihood (sorted), then the
+        remaining positive eigenvalues of the surface; FVE is relative to their sum.
+    surface_eigenvalues : ndarray of shape (n_positive,)
+        Every positive eigenvalue of the smoothed surface, before the refinement.
     fve : ndarray of shape (n_positive,)
     error_variance : float
+        Maximum likelihood measurement-error variance (the estimate used everywhere).
+    smoothing_error_variance : float
+        The smoothing estimate (mean of V(t) - G(t, t) over the middle half); may be zero
+        or negative, in which case it served only as a failed starting point.
+    likelihood : LikelihoodFit
+        The refinement: eigenvalues of the K' components, error variance, log-likelihood.
+    truncation_variance : ndarray of shape (n_grid,)
+        sum over the refined components beyond K of lambda_k phi_k(t)^2: the variance of
+        the part of a trajectory that K components leave out (added to the bands).
+    mean_simultaneous_multiplier : float
+        Multiplier of ``mean_se`` for a simultaneous band over the grid at ``band_level``.
     n_components : int
-    mean_bandwidth, covariance_bandwidth : float
-    mean_bandwidth_choice, covariance_bandwidth_choice : BandwidthChoice
+    mean_bandwidth, covariance_bandwidth, diagonal_bandwidth : float
+    mean_bandwidth_choice, covariance_bandwidth_choice, diagonal_bandwidth_choice
+        BandwidthChoice
     selection : ComponentSelection
     subjects : ndarray of shape (n_subjects,)
         Subject labels, in the order of the score rows.
@@ -138,7 +160,7 @@ class FPCAFit:
     dropped_negative_sum : float
         Sum of the absolute values of the negative ones (a warning above 1% of the total).
     warnings : tuple of str
-        Floors, dropped eigenvalues and bandwidths at the end of their range.
+        Starting-point problems, dropped eigenvalues, bandwidths at the end of their range.
     options : FPCAOptions
     """
 
@@ -150,11 +172,17 @@ class FPCAFit:
     eigenvalues: FloatArray
     eigenfunctions: FloatArray
     all_eigenvalues: FloatArray
+    surface_eigenvalues: FloatArray
     fve: FloatArray
     error_variance: float
+    smoothing_error_variance: float
+    likelihood: LikelihoodFit
+    truncation_variance: FloatArray
+    mean_simultaneous_multiplier: float
     n_components: int
     mean_bandwidth_choice: BandwidthChoice
     covariance_bandwidth_choice: BandwidthChoice
+    diagonal_bandwidth_choice: BandwidthChoice
     selection: ComponentSelection
     subjects: np.ndarray
     n_obs: IntArray
@@ -177,6 +205,16 @@ class FPCAFit:
     @property
     def covariance_bandwidth(self) -> float:
         return self.covariance_bandwidth_choice.value
+
+    @property
+    def diagonal_bandwidth(self) -> float:
+        return self.diagonal_bandwidth_choice.value
+
+    @property
+    def retained_covariance(self) -> FloatArray:
+        """Covariance rebuilt from the retained components (positive semi-definite)."""
+        phi = self.eigenfunctions
+        return np.asarray((phi * self.eigenvalues) @ phi.T)
 
     @property
     def n_subjects(self) -> int:
@@ -206,24 +244,43 @@ class FPCAFit:
         """Eigenfunctions at arbitrary times (linear interpolation), shape (n, K)."""
         return evaluate_at(np.asarray(t, dtype=np.float64), self.grid, self.eigenfunctions)
 
-    def band_multiplier(self, level: float | None = None) -> float:
-        """Normal quantile for a two-sided pointwise band at ``level``."""
+    def band_multiplier(self, level: float | None = None, kind: str = "pointwise") -> float:
+        """Multiplier of the standard error for a two-sided band at ``level``.
+
+        ``"pointwise"``: the normal quantile. ``"simultaneous"``: sqrt of the chi-square
+        quantile with as many degrees of freedom as components enter the band's variance
+        (the retained ones, plus the left-out refined ones when they carry variance). The
+        trajectory's error then lies in their span, and the Cauchy-Schwarz inequality
+        turns the chi-square region of the scores into a band that holds at every time at
+        once (Yao, Müller & Wang 2005, sec. 3; Scheffé's method).
+        """
         lvl = self.options.band_level if level is None else level
-        return float(sps.norm.ppf(0.5 + lvl / 2.0))
+        if kind == "pointwise":
+            return float(ndtri(0.5 + lvl / 2.0))
+        dof = self.likelihood.eigenvalues.size if np.any(self.truncation_variance > 0) \
+            else self.n_components
+        return float(np.sqrt(chdtri(dof, 1.0 - lvl)))
 
     def curves(
-        self, scores: FloatArray, score_cov: FloatArray, level: float | None = None
+        self, scores: FloatArray, score_cov: FloatArray, level: float | None = None,
+        kind: str = "pointwise",
     ) -> tuple[FloatArray, FloatArray, FloatArray]:
-        """Fitted curves on the grid and pointwise band for given scores, each (n, n_grid)."""
+        """Fitted curves on the grid and a band for given scores, each (n, n_grid).
+
+        The band's variance is that of the scores' prediction error along the retained
+        eigenfunctions plus ``truncation_variance`` (what K components leave out).
+        """
         fitted = self.mean[None, :] + scores @ self.eigenfunctions.T
         var = np.einsum("gk,nkl,gl->ng", self.eigenfunctions, score_cov, self.eigenfunctions)
-        half = self.band_multiplier(level) * np.sqrt(np.maximum(var, 0.0))
+        var = var + self.truncation_variance[None, :]
+        half = self.band_multiplier(level, kind) * np.sqrt(np.maximum(var, 0.0))
         return fitted, fitted - half, fitted + half
 
     def trajectories(
         self, subjects: list[Any] | None = None, level: float | None = None
     ) -> pd.DataFrame:
-        """Recovered trajectories on the grid: subject, time, fitted, lower, upper."""
+        """Recovered trajectories on the grid: subject, time, fitted, the pointwise band
+        (lower, upper) and the simultaneous band (lower_simultaneous, upper_simultaneous)."""
         if subjects is None:
             rows = np.arange(self.n_subjects)
         else:
@@ -232,11 +289,18 @@ class FPCAFit:
             missing = [s for s, r in zip(subjects, rows, strict=True) if r < 0]
             if missing:
                 raise EstimationError(f"subjects not in the fit: {missing[:5]!r}")
-        fitted, lower, upper = self.curves(self.score_values[rows], self.score_cov[rows], level)
+        return self._curve_frame(self.subjects[rows], self.score_values[rows],
+                                 self.score_cov[rows], level)
+
+    def _curve_frame(self, labels: np.ndarray, scores: FloatArray, cov: FloatArray,
+                     level: float | None) -> pd.DataFrame:
+        fitted, lower, upper = self.curves(scores, cov, level)
+        _, lower_s, upper_s = self.curves(scores, cov, level, "simultaneous")
         return pd.DataFrame({
-            "subject": np.repeat(self.subjects[rows], self.grid.size),
-            "time": np.tile(self.grid, rows.size),
+            "subject": np.repeat(labels, self.grid.size),
+            "time": np.tile(self.grid, labels.size),
             "fitted": fitted.ravel(), "lower": lower.ravel(), "upper": upper.ravel(),
+            "lower_simultaneous": lower_s.ravel(), "upper_simultaneous": upper_s.ravel(),
         })
 
     def conditional_scores(self, sample: Sample) -> tuple[FloatArray, FloatArray]:
@@ -257,15 +321,11 @@ class FPCAFit:
 
         The fitted mean, eigenfunctions, eigenvalues and error variance are kept; each
         subject's scores come from its own readings in ``frame`` by conditional expectation.
-        Returns a frame with columns subject, time, fitted, lower, upper.
+        Returns a frame with columns subject, time, fitted, lower, upper,
+        lower_simultaneous, upper_simultaneous.
         """
         labels, scores, cov = self._new_subjects(frame)
-        fitted, lower, upper = self.curves(scores, cov, level)
-        return pd.DataFrame({
-            "subject": np.repeat(labels, self.grid.size),
-            "time": np.tile(self.grid, labels.size),
-            "fitted": fitted.ravel(), "lower": lower.ravel(), "upper": upper.ravel(),
-        })
+        return self._curve_frame(labels, scores, cov, level)
 
     def predict_at(
         self, frame: pd.DataFrame, targets: pd.DataFrame, level: float | None = None,
@@ -285,6 +345,7 @@ class FPCAFit:
         phi = self.eigenfunctions_at(t)
         fitted = self.mean_at(t) + np.einsum("nk,nk->n", phi, scores[rows])
         var = np.einsum("nk,nkl,nl->n", phi, cov[rows], phi)
+        var = var + np.interp(t, self.grid, self.truncation_variance)
         if new_reading:
             var = var + self.error_variance
         half = self.band_multiplier(level) * np.sqrt(var)
@@ -347,15 +408,15 @@ def _edge_warning(choice: BandwidthChoice, what: str) -> list[str]:
 
 
 def _error_variance(
-    grid: FloatArray, diag_var: FloatArray, ridge: FloatArray, floor_rel: float
-) -> tuple[float, list[str]]:
-    """sigma^2 as the average of V(t) - G(t, t) over the middle half of the domain.
+    grid: FloatArray, diag_var: FloatArray, ridge: FloatArray
+) -> tuple[float, float]:
+    """Smoothing estimate of sigma^2 and the average reading variance, over the middle half.
 
-    ``ridge`` is G(t, t) from a local quadratic fit (``local_quadratic_diagonal_2d``).
-
-    Yao, Müller & Wang (2005, eq. 2) integrate over the middle half to avoid boundary
-    effects of the smoothers. A non-positive estimate is replaced by ``floor_rel`` times
-    the average reading variance over the same interval, with a warning.
+    sigma^2 is the average of V(t) - G(t, t) over the middle half of the domain (Yao, Müller
+    & Wang 2005, eq. 2, which integrates over the middle half to avoid boundary effects of
+    the smoothers); ``ridge`` is G(t, t) from ``local_quadratic_diagonal_2d``. It is a small
+    difference of two smoothed curves and may be zero or negative; it only starts the
+    likelihood refinement.
     """
     lo, hi = grid[0], grid[-1]
     span = hi - lo
@@ -363,18 +424,12 @@ def _error_variance(
     w = trapezoid_weights(grid[mid])
     raw = float(w @ (diag_var[mid] - ridge[mid]) / w.sum())
     level = float(w @ diag_var[mid] / w.sum())
-    if raw > 0:
-        return raw, []
-    floor = floor_rel * level
-    if not floor > 0:
+    if not level > 0:
         raise EstimationError(
             f"the readings have no variance around the mean (average {level:.3g} over the "
             "middle half of the domain): there is nothing to decompose"
         )
-    return floor, [
-        f"the error variance estimate was {raw:.3g} (not positive); it was replaced by the "
-        f"floor {floor:.3g} ({floor_rel:g} x the average reading variance {level:.3g})"
-    ]
+    return raw, level
 
 
 def _check_variation(y: FloatArray, resid: FloatArray) -> None:
@@ -426,7 +481,8 @@ def fit_arrays(
     _check_design(sample, lo, hi)
     kernel = get_kernel(options.kernel)
     grid = np.linspace(lo, hi, options.n_grid)
-    auto = "auto" in (options.mean_bandwidth, options.covariance_bandwidth)
+    auto = "auto" in (options.mean_bandwidth, options.covariance_bandwidth,
+                      options.diagonal_bandwidth)
     n_folds = min(options.cv_folds, sample.n_subjects) if auto else 1
     method = options.bandwidth_method
     folds = assign_folds(sample.n_subjects, n_folds, options.seed)
@@ -448,19 +504,26 @@ def fit_arrays(
 
     _check_variation(sample.y, resid)
 
-    # 2. covariance
+    # 2. covariance surface, and the variance of single readings on its own bandwidth
     cbins = BinGrid(lo, hi, options.covariance_bins)
     pstats = pair_stats(sample, resid, cbins, folds, n_folds)
     cov_choice = _choose_bandwidth(
         options.covariance_bandwidth, pstats.offdiag, cbins, sample.n_subjects, 2, method,
         kernel, grid, "covariance",
     )
-    cov, diag_var, ridge = _surfaces(pstats, cbins, grid, cov_choice.value, kernel)
-    mean_se = _mean_standard_error(pstats, cbins, grid, mean_choice.value, kernel)
+    diag_choice = _choose_bandwidth(
+        options.diagonal_bandwidth, pstats.diag, cbins, sample.n_subjects, 1, method,
+        kernel, grid, "diagonal",
+    )
+    cov, diag_var, ridge = _surfaces(pstats, cbins, grid, cov_choice.value, diag_choice.value,
+                                     kernel)
+    mean_cov = _mean_covariance(pstats, cbins, grid, mean_choice.value, kernel)
+    mean_se = np.sqrt(np.maximum(np.diag(mean_cov), 0.0))
 
-    # 3.-4. eigen-decomposition, error variance
+    # 3. eigen-decomposition; smoothing estimate of the error variance (a starting point)
     eig = eigen_decompose(grid, cov)
-    messages += _edge_warning(mean_choice, "mean") + _edge_warning(cov_choice, "covariance")
+    messages += (_edge_warning(mean_choice, "mean") + _edge_warning(cov_choice, "covariance")
+                 + _edge_warning(diag_choice, "diagonal"))
     # Smoothing always leaves some small negative eigenvalues; warn when they are material.
     if eig.dropped_sum > 0.01 * eig.values.sum():
         messages.append(
@@ -468,25 +531,54 @@ def fit_arrays(
             f"(negative ones sum to {eig.dropped_sum:.3g}, "
             f"{eig.dropped_sum / eig.values.sum():.1%} of the positive total)"
         )
-    sigma2, notes = _error_variance(grid, diag_var, ridge, options.error_variance_floor)
-    messages += notes
+    sigma2_smooth, level = _error_variance(grid, diag_var, ridge)
+
+    # 4. likelihood refinement of (lambda_1..K', sigma^2) with the eigenfunctions fixed
+    k_ref = _refined_count(eig, options)
+    used = _likelihood_sample(sample.n_subjects, options)
+    terms = sample_terms(sample, used, resid, grid, eig.functions[:, :k_ref])
+    start = starting_error_variance(sigma2_smooth, level)
+    if start != sigma2_smooth:
+        messages.append(
+            f"the smoothing estimate of the error variance was {sigma2_smooth:.3g} (not "
+            f"positive); the likelihood started from {start:.3g} (a tenth of the average "
+            f"reading variance {level:.3g}) and its maximum is the estimate"
+        )
+    lik = maximise(terms.sums, eig.values[:k_ref], start)
+    _check_refined(lik, level)
+    if not lik.converged:
+        messages.append(f"the likelihood refinement stopped after {lik.iterations} "
+                        "iterations without meeting its convergence tolerance")
+    order = np.argsort(-lik.eigenvalues, kind="stable")
+    lik = replace(lik, eigenvalues=lik.eigenvalues[order])
+    terms = terms.reorder(order)
+    funcs_ref = eig.functions[:, :k_ref][:, order]
+    all_values = np.concatenate([lik.eigenvalues, eig.values[k_ref:]])
+    fve = all_values / all_values.sum()
 
     # 5. number of components
-    selection = _select_components(sample, resid, grid, eig, sigma2, options)
+    selection = _select_components(terms, lik, fve, hi - lo, options)
     k = selection.chosen
-    values, funcs = eig.values[:k], eig.functions[:, :k]
+    values, funcs = lik.eigenvalues[:k], funcs_ref[:, :k]
+    truncation = np.sum(lik.eigenvalues[k:] * funcs_ref[:, k:] ** 2, axis=1)
 
     # 6. scores
     phi_obs = evaluate_at(sample.t, grid, funcs)
-    scores, score_cov = conditional_scores(sample.starts, resid, phi_obs, values, sigma2)
-    fve = eig.values / eig.values.sum()
+    scores, score_cov = conditional_scores(sample.starts, resid, phi_obs, values,
+                                           lik.error_variance)
     return FPCAFit(
         grid=_frozen(grid), mean=_frozen(mean), mean_se=_frozen(mean_se),
         covariance=_frozen(cov), diagonal_variance=_frozen(diag_var),
         eigenvalues=_frozen(values), eigenfunctions=_frozen(funcs),
-        all_eigenvalues=_frozen(eig.values), fve=_frozen(fve), error_variance=sigma2,
+        all_eigenvalues=_frozen(all_values), surface_eigenvalues=_frozen(eig.values),
+        fve=_frozen(fve), error_variance=lik.error_variance,
+        smoothing_error_variance=sigma2_smooth, likelihood=lik,
+        truncation_variance=_frozen(truncation),
+        mean_simultaneous_multiplier=_sup_multiplier(mean_cov, options.band_level,
+                                                     options.seed),
         n_components=k, mean_bandwidth_choice=mean_choice,
-        covariance_bandwidth_choice=cov_choice, selection=selection,
+        covariance_bandwidth_choice=cov_choice, diagonal_bandwidth_choice=diag_choice,
+        selection=selection,
         subjects=_frozen(np.asarray(labels)), n_obs=_frozen(sample.n_obs),
         score_values=_frozen(scores), score_cov=_frozen(score_cov),
         pair_counts=_frozen(pstats.offdiag.counts.sum(axis=0)), pair_grid=_frozen(cbins.centers),
@@ -497,18 +589,81 @@ def fit_arrays(
     )
 
 
+# Components refined by likelihood: those reaching this share of the surface's positive
+# variance (capped at max_components); the ones beyond the chosen K absorb variance outside
+# the retained span, so that it does not land in sigma^2. Measured over seeds
+# (tests/reference/accuracy.py): 0.99 left sigma^2 at 1.6x the truth in the sparsest design
+# (an oversmoothed surface misses a component, whose variance then goes to sigma^2); all
+# positive components pulled sigma^2 down to 0.5x in some fits of another; 0.999 did neither.
+REFINED_FVE = 0.999
+
+
+def _refined_count(eig: Eigen, options: FPCAOptions) -> int:
+    cum = np.cumsum(eig.values) / eig.values.sum()
+    k = int(np.searchsorted(cum, REFINED_FVE - 1e-12) + 1)
+    k = min(k, options.max_components, eig.values.size)
+    if options.component_rule == "fixed" and options.n_components is not None:
+        if options.n_components > eig.values.size:
+            raise EstimationError(
+                f"n_components={options.n_components} is more than the {eig.values.size} "
+                "positive eigenvalues that the estimated covariance allows"
+            )
+        k = max(k, options.n_components)
+    return k
+
+
+def _likelihood_sample(n_subjects: int, options: FPCAOptions) -> IntArray:
+    """All subjects, or a seeded sample of ``criteria_max_subjects`` of them."""
+    cap = options.criteria_max_subjects
+    if n_subjects <= cap:
+        return np.arange(n_subjects, dtype=np.intp)
+    rng = np.random.default_rng(options.seed)
+    return np.sort(rng.choice(n_subjects, cap, replace=False)).astype(np.intp)
+
+
+def _check_refined(lik: LikelihoodFit, level: float) -> None:
+    """A likelihood maximum at sigma^2 = 0 is no estimate of the measurement error."""
+    if not lik.error_variance > 1e-8 * level:
+        raise EstimationError(
+            f"the likelihood puts the error variance at {lik.error_variance:.3g}, i.e. zero "
+            f"against an average reading variance of {level:.3g}: the components reproduce "
+            "every reading exactly, so measurement error and scores cannot be told apart; "
+            "lower max_components or fix n_components"
+        )
+
+
+def _sup_multiplier(cov: FloatArray, level: float, seed: int, draws: int = 20000) -> float:
+    """Quantile of max_t |Z(t)| / sd(t) for Z ~ N(0, cov): a simultaneous band multiplier.
+
+    Monte Carlo from the estimated covariance of the estimator on the grid (seeded; the
+    "sup-t" construction, e.g. Ruppert, Wand & Carroll 2003, Semiparametric Regression,
+    sec. 6.5; from memory). Points with zero variance are left out.
+    """
+    sd = np.sqrt(np.maximum(np.diag(cov), 0.0))
+    keep = sd > 1e-12 * max(float(sd.max()), 1e-300)
+    if not np.any(keep):
+        return float(ndtri(0.5 + level / 2.0))
+    corr = cov[np.ix_(keep, keep)] / np.outer(sd[keep], sd[keep])
+    values, vectors = np.linalg.eigh(0.5 * (corr + corr.T))
+    root = vectors * np.sqrt(np.maximum(values, 0.0))
+    z = np.random.default_rng(seed).standard_normal((draws, values.size)) @ root.T
+    return float(np.quantile(np.max(np.abs(z), axis=1), level))
+
+
 def _surfaces(
-    pstats: PairStats, cbins: BinGrid, grid: FloatArray, h: float, kernel: Kernel
+    pstats: PairStats, cbins: BinGrid, grid: FloatArray, h: float, h_diag: float,
+    kernel: Kernel,
 ) -> tuple[FloatArray, FloatArray, FloatArray]:
     """Covariance surface, variance of single readings, and the surface's diagonal (ridge)."""
     off, dg = pstats.offdiag.total(), pstats.diag.total()
     cov = local_linear_binned_2d(grid, cbins.centers, off.counts[0], off.sums[0], h, kernel,
                                  symmetric=True)
     cov = 0.5 * (cov + cov.T)
-    diag_var = local_linear_binned_1d(grid, cbins.centers, dg.counts[0], dg.sums[0], h, kernel)
+    diag_var = local_linear_binned_1d(grid, cbins.centers, dg.counts[0], dg.sums[0], h_diag,
+                                      kernel)
     if not np.all(np.isfinite(diag_var)):
         raise EstimationError(
-            f"the variance of single readings cannot be smoothed at bandwidth {h:.4g}: "
+            f"the variance of single readings cannot be smoothed at bandwidth {h_diag:.4g}: "
             "some grid points have too few readings nearby"
         )
     ridge = local_quadratic_diagonal_2d(
@@ -519,49 +674,62 @@ def _surfaces(
     return cov, diag_var, ridge
 
 
-def _mean_standard_error(
+def _mean_covariance(
     pstats: PairStats, cbins: BinGrid, grid: FloatArray, h: float, kernel: Kernel
 ) -> FloatArray:
-    """Cluster-robust pointwise standard error of the mean smoother.
+    """Cluster-robust covariance of the mean smoother on the grid, (n_grid, n_grid).
 
     With equivalent-kernel weights l(x) on the covariance bins, the estimate's deviation is
-    sum_i l(x)' u_i over subjects (u_i: the subject's binned residuals), so its variance is
-    estimated by l(x)' (sum_i u_i u_i') l(x): the sandwich estimator with subjects as
+    sum_i l(x)' u_i over subjects (u_i: the subject's binned residuals), so its covariance
+    is estimated by L (sum_i u_i u_i') L': the sandwich estimator with subjects as
     clusters (Liang & Zeger 1986, Biometrika 73:13-22; applied to a linear smoother).
+    Smoothing bias is not included.
     """
     counts = pstats.diag.counts.sum(axis=0)
     weights = equivalent_kernel_1d(grid, cbins.centers, counts, h, kernel)
-    var = np.einsum("eg,gh,eh->e", weights, pstats.cross, weights)
-    return np.sqrt(np.maximum(var, 0.0))
+    out: FloatArray = weights @ pstats.cross @ weights.T
+    return 0.5 * (out + out.T)
 
 
 def _select_components(
-    sample: Sample, resid: FloatArray, grid: FloatArray, eig: Eigen, sigma2: float,
+    terms: SampleTerms, lik: LikelihoodFit, fve: FloatArray, span: float,
     options: FPCAOptions,
 ) -> ComponentSelection:
-    k_max = int(min(options.max_components, eig.values.size))
-    cum = np.cumsum(eig.values / eig.values.sum())[:k_max]
-    cap = options.criteria_max_subjects
-    if sample.n_subjects > cap:
-        rng = np.random.default_rng(options.seed)
-        used = np.sort(rng.choice(sample.n_subjects, cap, replace=False)).astype(np.intp)
-    else:
-        used = np.arange(sample.n_subjects, dtype=np.intp)
-    loglik, loo = component_criteria(
-        sample, used, resid, grid, eig.functions[:, :k_max], eig.values[:k_max], sigma2
-    )
+    """Every criterion for K = 1 .. K', each K with its own likelihood maximum.
+
+    For K < K' the likelihood is maximised again over (lambda_1..K, sigma^2) with the first
+    K eigenfunctions, so that AIC and BIC compare maxima (the error variance of a smaller
+    model absorbs the components it leaves out). Parameters counted: K eigenvalues and
+    sigma^2. BIC's sample size is the number of subjects (the independent units).
+    """
+    k_max = lik.eigenvalues.size
+    cum = np.cumsum(fve)[:k_max]
+    params: list[tuple[FloatArray, float]] = []
+    loglik = np.empty(k_max)
+    for k in range(1, k_max + 1):
+        if k == k_max:
+            fit_k = lik
+        else:
+            left_out = float(np.sum(lik.eigenvalues[k:])) / span  # average of sum phi^2
+            fit_k = maximise(terms.sums.leading(k), lik.eigenvalues[:k],
+                             lik.error_variance + left_out)
+        params.append((fit_k.eigenvalues, fit_k.error_variance))
+        loglik[k - 1] = fit_k.loglik
+    loo = loo_errors(terms, params)
     ks = np.arange(1, k_max + 1)
-    aic = -2.0 * loglik + 2.0 * ks
-    bic = -2.0 * loglik + ks * np.log(used.size)
+    aic = -2.0 * loglik + 2.0 * (ks + 1)
+    bic = -2.0 * loglik + (ks + 1) * np.log(lik.n_subjects)
     chosen = choose(
         options.component_rule, k_max, cum, aic, bic, loo, options.fve_threshold,
         options.n_components,
     )
     return ComponentSelection(
-        options.component_rule, chosen, ks, cum, aic, bic, loo, int(used.size)
+        options.component_rule, chosen, ks, cum, aic, bic, loo, lik.n_subjects
     )
 
 
-def with_bandwidths(options: FPCAOptions, mean_h: float, cov_h: float) -> FPCAOptions:
-    """The same options with both bandwidths fixed (used by the sensitivity runs)."""
-    return replace(options, mean_bandwidth=mean_h, covariance_bandwidth=cov_h)
+def with_bandwidths(options: FPCAOptions, mean_h: float, cov_h: float, diag_h: float
+                    ) -> FPCAOptions:
+    """The same options with the three bandwidths fixed (used by the sensitivity runs)."""
+    return replace(options, mean_bandwidth=mean_h, covariance_bandwidth=cov_h,
+                   diagonal_bandwidth=diag_h)

@@ -1,5 +1,5 @@
-"""Scores by conditional expectation (the BLUP), their error covariance, and the
-likelihood-based and predictive criteria for the number of components.
+"""Scores by conditional expectation (the BLUP), their error covariance, the per-subject
+sums of the marginal likelihood, and the predictive criterion for the number of components.
 
 Model for subject i with readings Y_i at times T_i (Yao, Müller & Wang 2005, sec. 2.3)::
 
@@ -18,11 +18,14 @@ outer products summed by subject. It needs no more than one reading per subject.
 
 from __future__ import annotations
 
+from dataclasses import dataclass
+
 import numpy as np
 
 from ._kernels import subject_sums
 from .components import evaluate_at
 from .design import IntArray, Sample
+from .likelihood import SubjectSums
 from .smoothing import FloatArray
 
 
@@ -76,56 +79,68 @@ def _inverse_spd(a: FloatArray) -> FloatArray:
     return np.linalg.inv(a)
 
 
-def component_criteria(
-    sample: Sample, subjects: IntArray, resid: FloatArray, grid: FloatArray,
-    eigenfunctions: FloatArray, eigenvalues: FloatArray, sigma2: float,
-) -> tuple[FloatArray, FloatArray]:
-    """Marginal Gaussian log-likelihood and leave-one-reading-out error for K = 1 .. K_max.
+@dataclass(frozen=True)
+class SampleTerms:
+    """What the likelihood and the leave-one-out criterion need of a set of subjects.
 
-    For each K the readings of subject i are N(mu_i, Sigma_i(K)) with
-    ``Sigma_i = Phi_i Lambda Phi_i' + sigma^2 I``. By the Woodbury identity and the matrix
-    determinant lemma, with ``A = Lambda^-1 + Phi_i' Phi_i / sigma^2`` (K x K)::
-
-        Sigma^-1 = I / s2 - Phi A^-1 Phi' / s2^2
-        log det Sigma = n log s2 + log det Lambda + log det A
-
-    so every K needs only the leading K x K blocks of the per-subject sums that the
-    scores use. The predictive criterion is the mean over readings (of subjects with two
-    or more) of ``(y_ij - E[y_ij | y_i,-j])^2 = ((Sigma^-1 r)_j / (Sigma^-1)_jj)^2``
-    (leave-one-out identity for a Gaussian vector; common practice, no source).
-
-    Returns
-    -------
-    loglik, loo_mse : ndarray of shape (K_max,)
+    ``sums`` are the per-subject sums; ``phi`` (n_readings, K) and ``resid`` are per reading,
+    ``owner`` the subject row of each reading (non-decreasing).
     """
-    k_max = eigenvalues.size
+
+    sums: SubjectSums
+    phi: FloatArray
+    resid: FloatArray
+    owner: IntArray
+
+    def reorder(self, order: IntArray) -> SampleTerms:
+        """The same terms with the components taken in ``order``."""
+        s = self.sums
+        return SampleTerms(SubjectSums(s.gram[:, order][:, :, order], s.cross[:, order], s.rr,
+                                       s.n_obs), self.phi[:, order], self.resid, self.owner)
+
+
+def sample_terms(sample: Sample, subjects: IntArray, resid: FloatArray, grid: FloatArray,
+                 eigenfunctions: FloatArray) -> SampleTerms:
+    """Per-subject sums Phi'Phi, Phi'r, r'r and n of ``subjects``, and the per-reading terms."""
     n_i = sample.n_obs[subjects]
-    owner = np.repeat(np.arange(subjects.size), n_i)  # subject row of each used reading
+    owner = np.repeat(np.arange(subjects.size), n_i)
     first = np.concatenate(([0], np.cumsum(n_i)[:-1])).astype(np.intp)
     idx = sample.starts[subjects][owner] + (np.arange(owner.size) - first[owner])
     r = resid[idx]
-    phi = evaluate_at(sample.t[idx], grid, eigenfunctions)  # (readings used, K_max)
-    gram, cross = subject_sums(first, r, np.ascontiguousarray(phi))
+    phi = np.ascontiguousarray(evaluate_at(sample.t[idx], grid, eigenfunctions))
+    gram, cross = subject_sums(first, r, phi)
     rr = np.bincount(owner, r * r, subjects.size)
+    return SampleTerms(SubjectSums(gram, cross, rr, n_i.astype(np.float64)), phi, r, owner)
+
+
+def loo_errors(terms: SampleTerms, params: list[tuple[FloatArray, float]]) -> FloatArray:
+    """Leave-one-reading-out prediction error for K = 1 .. len(params).
+
+    ``params[K - 1]`` holds (lambda_1..K, sigma^2) of the model with K components. The
+    criterion is the mean over readings (of subjects with two or more) of
+    ``(y_ij - E[y_ij | y_i,-j])^2 = ((Sigma^-1 r)_j / (Sigma^-1)_jj)^2`` (leave-one-out
+    identity for a Gaussian vector; common practice, no source), with
+    ``Sigma^-1 = I / s2 - Phi A^-1 Phi' / s2^2`` and ``A = Lambda^-1 + Phi' Phi / s2``.
+
+    Returns
+    -------
+    ndarray of shape (len(params),); ``nan`` when no subject has two readings.
+    """
+    n_i = terms.sums.n_obs.astype(np.intp)
+    owner, r, phi = terms.owner, terms.resid, terms.phi
     multi = n_i[owner] >= 2
-    loglik = np.zeros(k_max)
-    loo = np.full(k_max, np.nan)
-    s2 = sigma2
-    for k in range(1, k_max + 1):
-        lam = eigenvalues[:k]
-        a_inv = np.linalg.inv(gram[:, :k, :k] / s2 + np.diag(1.0 / lam))
-        _, logdet_a_inv = np.linalg.slogdet(a_inv)
-        c = cross[:, :k]
-        a_c = np.einsum("nij,nj->ni", a_inv, c)  # A^-1 Phi' r per subject
-        quad = rr / s2 - np.sum(c * a_c, axis=1) / s2**2
-        logdet = n_i * np.log(s2) + np.sum(np.log(lam)) - logdet_a_inv
-        loglik[k - 1] = -0.5 * float(np.sum(n_i * np.log(2 * np.pi) + logdet + quad))
-        if np.any(multi):
-            pk, own = phi[multi, :k], owner[multi]
-            sinv_r = r[multi] / s2 - np.sum(pk * a_c[own], axis=1) / s2**2
-            # owner is non-decreasing, so repeating each subject's matrix is a sequential copy
-            a_rows = np.repeat(a_inv[n_i >= 2], n_i[n_i >= 2], axis=0)
-            pa = np.matmul(pk[:, None, :], a_rows)[:, 0, :]
-            sinv_diag = 1.0 / s2 - np.sum(pa * pk, axis=1) / s2**2
-            loo[k - 1] = float(np.mean((sinv_r / sinv_diag) ** 2))
-    return loglik, loo
+    loo = np.full(len(params), np.nan)
+    if not np.any(multi):
+        return loo
+    for k0, (lam, s2) in enumerate(params):
+        k = k0 + 1
+        a_inv = np.linalg.inv(terms.sums.gram[:, :k, :k] / s2 + np.diag(1.0 / lam))
+        a_c = np.einsum("nij,nj->ni", a_inv, terms.sums.cross[:, :k])  # A^-1 Phi' r
+        pk, own = phi[multi, :k], owner[multi]
+        sinv_r = r[multi] / s2 - np.sum(pk * a_c[own], axis=1) / s2**2
+        # owner is non-decreasing, so repeating each subject's matrix is a sequential copy
+        a_rows = np.repeat(a_inv[n_i >= 2], n_i[n_i >= 2], axis=0)
+        pa = np.matmul(pk[:, None, :], a_rows)[:, 0, :]
+        sinv_diag = 1.0 / s2 - np.sum(pa * pk, axis=1) / s2**2
+        loo[k0] = float(np.mean((sinv_r / sinv_diag) ** 2))
+    return loo

@@ -17,7 +17,7 @@ from .conftest import ROOT
 
 SECTIONS = ["summary", "checks", "mean", "covariance", "components", "scores", "trajectories",
             "residuals", "sensitivity", "caveats", "reproducibility"]
-FIGURES = 11
+FIGURES = 12
 
 
 class _Collector(HTMLParser):
