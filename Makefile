@@ -5,21 +5,24 @@ VENV   ?= .venv
 BIN    := $(VENV)/bin
 STAMP  := $(VENV)/.installed
 
-.PHONY: test demo lint bench clean
+.PHONY: test demo lint bench clean syscheck
 
 $(STAMP): pyproject.toml constraints.txt
 	test -x $(BIN)/python || $(PYTHON) -m venv $(VENV)
 	$(BIN)/python -m pip install -q --disable-pip-version-check -c constraints.txt -e '.[test]'
 	touch $(STAMP)
 
-lint: $(STAMP)
+syscheck: $(STAMP)
+	@$(BIN)/python -m reportgen.syscheck
+
+lint: syscheck
 	$(BIN)/ruff check reportgen tests benchmarks
 	$(BIN)/mypy
 
 test: lint
 	$(BIN)/python -m pytest -q
 
-demo: $(STAMP)
+demo: syscheck
 	$(BIN)/reportgen demo
 
 bench: $(STAMP)

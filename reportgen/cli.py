@@ -72,7 +72,15 @@ def _cmd_run(args: argparse.Namespace) -> int:
     print(f"run written: {run_dir}")
     print(f"report: {run_dir / 'report.html'}")
     print(f"pdf: {run_dir / 'report.pdf'}")
-    return 0
+    if not args.against_previous:
+        return 0
+    version = int(run_dir.name.removeprefix("v"))
+    previous = run_dir.parent / f"v{version - 1:03d}"
+    if version == 1 or not previous.is_dir():
+        print("against previous: this is the first version; nothing to compare")
+        return 0
+    print(f"against previous: {previous.name} -> {run_dir.name}")
+    return _compare(previous, run_dir)
 
 
 def _cmd_check(args: argparse.Namespace) -> int:
@@ -97,43 +105,50 @@ def _print_rows(header: tuple[str, ...], rows: list[tuple[str, ...]]) -> None:
         print("  ".join(c.ljust(w) for c, w in zip(row, widths, strict=True)).rstrip())
 
 
-def _report(command: str, header: tuple[str, ...], rows: list[tuple[str, ...]],
-            failures: list[str], fail_text: str, ok_text: str) -> int:
-    """Print the table of a verify/compare, then one summary line; 1 when anything failed."""
-    _print_rows(header, rows)
-    if failures:
-        print(f"{command}: {fail_text}: {', '.join(failures[:10])}")
-        return 1
-    print(f"{command}: {ok_text}")
-    return 0
+def _summary(command: str, problems: list[str], ok_text: str) -> int:
+    """One closing line naming every problem (or the first 10 and how many more)."""
+    if not problems:
+        print(f"{command}: {ok_text}")
+        return 0
+    shown = ", ".join(problems[:10])
+    more = f" and {len(problems) - 10} more" if len(problems) > 10 else ""
+    print(f"{command}: {len(problems)} problem(s): {shown}{more}")
+    return 1
 
 
 def _cmd_verify(args: argparse.Namespace) -> int:
-    from .runner import verify_run
+    from .verify import verify_run
 
-    rows = verify_run(args.run_dir, _progress(args.quiet))
-    return _report(
-        "verify", ("item", "recorded", "now", "match"),
-        [(r.item, r.recorded[:16], r.now[:16], "yes" if r.match else "NO") for r in rows],
-        [r.item for r in rows if not r.match],
-        f"{sum(not r.match for r in rows)} item(s) do not match", "everything matches",
-    )
+    result = verify_run(args.run_dir, args.inputs, args.render, args.strict,
+                        _progress(args.quiet))
+    _print_rows(("part", "item", "recorded", "now", "match"),
+                [(r.part, r.item, r.recorded, r.now, "yes" if r.ok else "NO")
+                 for r in result.rows])
+    print()
+    for part in ("integrity", "inputs", "numbers", "rendering"):
+        print(f"{part}: {result.verdicts.get(part, 'not checked')}")
+    for note in result.notes:
+        print(f"note: {note}")
+    return _summary("verify", result.problems, "everything matches")
 
 
-def _cmd_compare(args: argparse.Namespace) -> int:
+def _compare(run_a: Path, run_b: Path) -> int:
+    """Print what changed from run A to run B under B's gates; 1 when a gate is crossed."""
     from .record import compare_runs
     from .spec import DEFAULT_GATES, spec_from_bytes
 
-    b = Path(args.run_b)
-    spec_file = b / "spec.yaml"
+    spec_file = run_b / "spec.yaml"
     gates = (spec_from_bytes(spec_file.read_bytes(), spec_file).gates if spec_file.is_file()
              else DEFAULT_GATES)
-    findings = compare_runs(Path(args.run_a), b, gates)
-    return _report(
-        "compare", ("item", "A", "B", "gate"),
-        [(f.item, f.a, f.b, "CROSSED" if f.crossed else "") for f in findings],
-        [f.item for f in findings if f.crossed], "gate(s) crossed", "within the gates",
-    )
+    findings = compare_runs(run_a, run_b, gates)
+    _print_rows(("item", "A", "B", "gate"),
+                [(f.item, f.a, f.b, "CROSSED" if f.crossed else "") for f in findings])
+    crossed = [f.item for f in findings if f.crossed]
+    return _summary("compare", [f"gate crossed: {c}" for c in crossed], "within the gates")
+
+
+def _cmd_compare(args: argparse.Namespace) -> int:
+    return _compare(Path(args.run_a), Path(args.run_b))
 
 
 def _cmd_init(args: argparse.Namespace) -> int:
@@ -198,12 +213,22 @@ def build_parser() -> argparse.ArgumentParser:
     sp = add("run", "fit, render and write a new run directory OUT/<report id>/vNNN")
     sp.add_argument("spec")
     sp.add_argument("--out", default="runs", help="folder of the runs (default: runs)")
+    sp.add_argument("--against-previous", action="store_true", help="after writing the run, "
+                    "compare it with the previous version under the spec's gates; exit 1 "
+                    "when a gate is crossed (for CI on a data refresh)")
     sp.set_defaults(func=_cmd_run)
     sp = add("check", "validate the spec and the data; fit nothing")
     sp.add_argument("spec")
     sp.set_defaults(func=_cmd_check)
-    sp = add("verify", "re-hash and re-run a run directory; exit 1 on any mismatch")
+    sp = add("verify", "check a run's files against SHA256SUMS, its inputs against the "
+             "record, and re-run it; exit 1 on any mismatch")
     sp.add_argument("run_dir")
+    sp.add_argument("--inputs", metavar="DIR", help="folder holding the run's input files "
+                    "(found by name); default: beside the recorded spec")
+    sp.add_argument("--render", action="store_true", help="also rebuild the HTML, figures and "
+                    "PDF and compare their bytes")
+    sp.add_argument("--strict", action="store_true", help="with --render: a rendering "
+                    "difference explained by another environment is a finding too")
     sp.set_defaults(func=_cmd_verify)
     sp = add("compare", "what changed from RUN_A to RUN_B; exit 1 when a gate is crossed")
     sp.add_argument("run_a")

@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import hashlib
 import json
 import platform
 import sys
@@ -22,18 +21,6 @@ from .fpca.components import trapezoid_weights
 RECORD_KEYS = ("tool", "run", "spec", "inputs", "environment", "results_sha256", "outputs")
 DEPENDENCIES = ("numpy", "scipy", "pandas", "pyarrow", "matplotlib", "jinja2", "weasyprint",
                 "pyyaml", "jsonschema", "pydyf", "fonttools")
-
-
-def sha256_bytes(data: bytes) -> str:
-    return hashlib.sha256(data).hexdigest()
-
-
-def sha256_file(path: Path) -> str:
-    h = hashlib.sha256()
-    with open(path, "rb") as fh:
-        for chunk in iter(lambda: fh.read(1 << 20), b""):
-            h.update(chunk)
-    return h.hexdigest()
 
 
 def environment() -> dict[str, Any]:
@@ -140,9 +127,41 @@ def _table(run_dir: Path, name: str) -> pd.DataFrame:
     return pd.read_csv(path, dtype={"subject": str})
 
 
+def _units(run_dir: Path) -> tuple[str, str]:
+    """(time unit, value unit) from a run's spec.yaml; empty when not stated."""
+    from .spec import parse_spec_bytes
+
+    path = run_dir / "spec.yaml"
+    if not path.is_file():
+        raise RecordError(f"{str(run_dir)!r} has no spec.yaml")
+    data = parse_spec_bytes(path.read_bytes(), f"{run_dir}/spec.yaml").get("data", {})
+    data = data if isinstance(data, dict) else {}
+    transform = data.get("transform", "none")
+    value = str(data.get("value_unit", ""))
+    return str(data.get("time_unit", "")), value if transform == "none" else \
+        f"{transform}({value})"
+
+
+def _same_report(a: Path, b: Path, ra: dict[str, Any], rb: dict[str, Any]) -> None:
+    """Refuse to compare runs of different reports, time units or value units."""
+    problems = []
+    ida, idb = ra["run"].get("report_id"), rb["run"].get("report_id")
+    if ida != idb:
+        problems.append(f"report ids {ida!r} and {idb!r}")
+    (ta, va), (tb, vb) = _units(a), _units(b)
+    if ta != tb:
+        problems.append(f"time units {ta!r} and {tb!r}")
+    if va != vb:
+        problems.append(f"value units {va!r} and {vb!r}")
+    if problems:
+        raise RecordError("these runs belong to different reports and cannot be compared: "
+                          + "; ".join(problems) + ". Compare versions of one report.")
+
+
 def compare_runs(a: Path, b: Path, gates: dict[str, Any]) -> list[Finding]:
     """What changed from run ``a`` to run ``b``; ``crossed`` marks a gate that fails."""
     ra, rb = load_record(a), load_record(b)
+    _same_report(a, b, ra, rb)
     out: list[Finding] = []
     ia = {i["path"]: i["sha256"] for i in ra["inputs"]}
     ib = {i["path"]: i["sha256"] for i in rb["inputs"]}

@@ -1,9 +1,10 @@
-"""Run a spec into a new, atomically written run directory; verify a run by re-running it.
+"""Run a spec into a new, atomically written run directory.
 
 Layout: ``OUT/<report id>/vNNN/``. A version number is reserved by creating the hidden
 folder ``.vNNN.building`` (``mkdir`` is atomic, so two runs never get the same number);
-all files are written there and the folder is renamed to ``vNNN`` at the end. A run that
-is interrupted leaves only the hidden folder, never a visible half-written version.
+all files are written there, SHA256SUMS last, and the folder is renamed to ``vNNN`` at the
+end. A run that is interrupted leaves only the hidden folder, never a visible half-written
+version.
 """
 
 from __future__ import annotations
@@ -20,16 +21,10 @@ from pathlib import Path
 from .analysis import AnalysisResult, analyse
 from .data import load_dataset, require_passed
 from .errors import OutputError
-from .record import (
-    build_record,
-    dump_record,
-    load_record,
-    settings,
-    sha256_bytes,
-    sha256_file,
-)
+from .integrity import SUMS, checksum_list, sha256_bytes
+from .record import build_record, dump_record
 from .render import render_html, render_pdf
-from .spec import Spec, load_spec, spec_from_bytes
+from .spec import Spec, load_spec
 from .tables import build_tables, canonical_bytes, results_digest
 
 Progress = Callable[[str], None]
@@ -65,8 +60,12 @@ class Timer:
 
 
 def build_outputs(spec: Spec, version: int, progress: Progress = lambda _: None,
-                  timer: Timer | None = None) -> Built:
-    """Every output except record.json and report.pdf (which depend on the record)."""
+                  timer: Timer | None = None, render: bool = True) -> Built:
+    """Every output except record.json and report.pdf (which depend on the record).
+
+    With ``render=False`` only the tables (and spec.yaml) are built: what ``verify``
+    compares as numbers.
+    """
     clock = timer or Timer()
     dataset = load_dataset(spec)
     require_passed(dataset)
@@ -75,6 +74,8 @@ def build_outputs(spec: Spec, version: int, progress: Progress = lambda _: None,
     tables = canonical_bytes(build_tables(result))
     digest = results_digest(tables)
     clock.lap("tables")
+    if not render:
+        return Built({**tables, "spec.yaml": spec.raw}, digest, result)
     progress("figures")
     from .figures import make_figures
 
@@ -131,9 +132,8 @@ def run_spec(spec_path: str | Path, out: str | Path, progress: Progress = lambda
              timer: Timer | None = None) -> Path:
     """Run a spec; returns the new run directory ``out/<id>/vNNN``.
 
-    record.json lists the hash of every file except itself and report.pdf: the PDF carries
-    record.json inside it, so its own hash cannot be in the record. ``verify`` checks the
-    PDF by re-rendering it from the verified HTML, spec and record.
+    record.json lists the hash of every file except itself and report.pdf (the PDF carries
+    record.json inside it); SHA256SUMS, written last, lists every other file of the run.
     """
     spec = load_spec(spec_path)
     folder = Path(out) / spec.report_id
@@ -159,6 +159,8 @@ def run_spec(spec_path: str | Path, out: str | Path, progress: Progress = lambda
             timer.lap("pdf")
         _write(building / "report.pdf", pdf)
         _write(building / "record.json", record)
+        listed = {**outputs, "report.pdf": sha256_bytes(pdf), "record.json": sha256_bytes(record)}
+        _write(building / SUMS, checksum_list(listed))
         os.rename(building, final)
         return final
     except OSError as e:
@@ -168,59 +170,3 @@ def run_spec(spec_path: str | Path, out: str | Path, progress: Progress = lambda
     except BaseException:
         shutil.rmtree(building, ignore_errors=True)
         raise
-
-
-@dataclass(frozen=True)
-class VerifyRow:
-    item: str
-    recorded: str
-    now: str
-
-    @property
-    def match(self) -> bool:
-        return self.recorded == self.now
-
-
-def verify_run(run_dir: str | Path, progress: Progress = lambda _: None) -> list[VerifyRow]:
-    """Re-hash and re-run a run directory; one row per item compared."""
-    run = Path(run_dir)
-    record = load_record(run)
-    rows: list[VerifyRow] = []
-    present = sorted(str(p.relative_to(run)) for p in run.rglob("*")
-                     if p.is_file() and p.name not in ("record.json", "report.pdf"))
-    for name in sorted(set(present) | set(record["outputs"])):
-        rec = record["outputs"].get(name, "absent")
-        now = sha256_file(run / name) if (run / name).is_file() else "absent"
-        rows.append(VerifyRow(f"file {name}", rec, now))
-    spec_bytes = (run / "spec.yaml").read_bytes() if (run / "spec.yaml").is_file() else b""
-    rows.append(_pdf_row(run, spec_bytes, record))
-    rows.append(VerifyRow("spec sha256", record["spec"]["sha256"], sha256_bytes(spec_bytes)))
-    source = (run / record["spec"]["source"]).resolve()
-    spec = spec_from_bytes(spec_bytes, source)
-    for entry in record["inputs"]:
-        path = (source.parent / entry["path"]).resolve()
-        now = sha256_file(path) if path.is_file() else "absent"
-        rows.append(VerifyRow(f"input {entry['path']}", entry["sha256"], now))
-    progress("re-running the recorded spec")
-    built = build_outputs(spec, int(record["run"]["version"]), progress)
-    rows.append(VerifyRow("results sha256", record["results_sha256"], built.results_sha256))
-    rec_settings = record["spec"].get("settings", {})
-    now_settings = settings(built.result)
-    for key in ("mean_bandwidth", "covariance_bandwidth", "n_components", "component_rule",
-                "error_variance"):
-        rows.append(VerifyRow(f"setting {key}", str(rec_settings.get(key)),
-                              str(now_settings[key])))
-    for name, data in sorted(built.files.items()):
-        rows.append(VerifyRow(f"re-run {name}", record["outputs"].get(name, "absent"),
-                              sha256_bytes(data)))
-    return rows
-
-
-def _pdf_row(run: Path, spec_bytes: bytes, record: dict) -> VerifyRow:
-    """The stored PDF against a re-render from the stored HTML, spec and record."""
-    pdf, html = run / "report.pdf", run / "report.html"
-    if not pdf.is_file() or not html.is_file():
-        return VerifyRow("file report.pdf", "present", "absent")
-    expected = render_pdf(html.read_bytes(), spec_bytes, (run / "record.json").read_bytes(),
-                          str(record["run"]["finished"]))
-    return VerifyRow("file report.pdf", sha256_bytes(expected), sha256_file(pdf))

@@ -63,9 +63,14 @@ class Spec:
     subjects: dict[str, Any]
     gates: dict[str, Any]
     options: FPCAOptions
+    data_location: Path | None = None
 
     @property
     def data_path(self) -> Path:
+        """The data file: ``data.file`` relative to the spec, unless found elsewhere
+        (``verify --inputs``: ``data_location``)."""
+        if self.data_location is not None:
+            return self.data_location
         return (self.path.parent / self.data["file"]).resolve()
 
     @property

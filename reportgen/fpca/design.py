@@ -45,6 +45,14 @@ class Sample:
     def n_subjects(self) -> int:
         return int(self.starts.size)
 
+    def subset(self, rows: IntArray) -> Sample:
+        """The readings of the subjects at ``rows`` (in that order), recoded 0 .. len - 1."""
+        sizes = self.n_obs[rows]
+        offsets = np.concatenate(([0], np.cumsum(sizes)[:-1])).astype(np.intp)
+        index = np.repeat(self.starts[rows] - offsets, sizes) + np.arange(int(sizes.sum()))
+        codes = np.repeat(np.arange(rows.size), sizes)
+        return Sample(codes, self.t[index], self.y[index], offsets, sizes.astype(np.intp))
+
     @classmethod
     def from_arrays(cls, subject: IntArray, t: FloatArray, y: FloatArray) -> Sample:
         """Sort by subject index (stable; skipped when already sorted) and index the subjects.

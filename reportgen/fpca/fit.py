@@ -25,6 +25,7 @@ from scipy.special import chdtri, ndtri
 from ..errors import EstimationError
 from ._kernels import interpolate_columns
 from .bandwidth import BandwidthChoice, candidate_bandwidths, select_bandwidth
+from .bootstrap import Replicate, resample, total_variance
 from .components import (
     ComponentSelection,
     Eigen,
@@ -70,7 +71,9 @@ class FPCAOptions:
     subjects over which the likelihood refinement and the criteria are computed.
     ``component_rule`` is one of ``"fve"`` (smallest K reaching ``fve_threshold``),
     ``"aic"``, ``"bic"``, ``"cv"`` (leave-one-reading-out prediction error) or ``"fixed"``
-    (``n_components``).
+    (``n_components``). ``band`` is ``"plugin"`` (the population quantities taken as
+    known) or ``"corrected"`` (``bootstrap_replicates`` refits on subjects resampled with
+    replacement add the uncertainty of the population quantities; ``fpca.bootstrap``).
     """
 
     n_grid: int = 101
@@ -89,6 +92,8 @@ class FPCAOptions:
     max_components: int = 8
     criteria_max_subjects: int = 20000
     band_level: float = 0.95
+    band: str = "plugin"
+    bootstrap_replicates: int = 50
     seed: int = 0
 
     def as_dict(self) -> dict[str, Any]:
@@ -161,6 +166,8 @@ class FPCAFit:
         Sum of the absolute values of the negative ones (a warning above 1% of the total).
     warnings : tuple of str
         Starting-point problems, dropped eigenvalues, bandwidths at the end of their range.
+    replicates : tuple of Replicate
+        Population quantities refitted on resampled subjects (empty for plug-in bands).
     options : FPCAOptions
     """
 
@@ -196,6 +203,8 @@ class FPCAFit:
     warnings: tuple[str, ...]
     options: FPCAOptions
     _mean_fine: tuple[FloatArray, FloatArray] = field(repr=False)
+    _sample: Sample = field(repr=False)
+    replicates: tuple[Replicate, ...] = ()
     columns: tuple[str, str, str] = ("subject", "time", "value")
 
     @property
@@ -263,16 +272,19 @@ class FPCAFit:
 
     def curves(
         self, scores: FloatArray, score_cov: FloatArray, level: float | None = None,
-        kind: str = "pointwise",
+        kind: str = "pointwise", variance: FloatArray | None = None,
     ) -> tuple[FloatArray, FloatArray, FloatArray]:
         """Fitted curves on the grid and a band for given scores, each (n, n_grid).
 
-        The band's variance is that of the scores' prediction error along the retained
-        eigenfunctions plus ``truncation_variance`` (what K components leave out).
+        The band's variance is ``variance`` when given (a corrected one), otherwise that of
+        the scores' prediction error along the retained eigenfunctions plus
+        ``truncation_variance`` (what K components leave out).
         """
         fitted = self.mean[None, :] + scores @ self.eigenfunctions.T
-        var = np.einsum("gk,nkl,gl->ng", self.eigenfunctions, score_cov, self.eigenfunctions)
-        var = var + self.truncation_variance[None, :]
+        var = variance
+        if var is None:
+            var = np.einsum("gk,nkl,gl->ng", self.eigenfunctions, score_cov,
+                            self.eigenfunctions) + self.truncation_variance[None, :]
         half = self.band_multiplier(level, kind) * np.sqrt(np.maximum(var, 0.0))
         return fitted, fitted - half, fitted + half
 
@@ -290,12 +302,17 @@ class FPCAFit:
             if missing:
                 raise EstimationError(f"subjects not in the fit: {missing[:5]!r}")
         return self._curve_frame(self.subjects[rows], self.score_values[rows],
-                                 self.score_cov[rows], level)
+                                 self.score_cov[rows], level, self._sample.subset(rows))
+
+    def band_kind(self) -> str:
+        """``"corrected"`` when replicates carry the estimation uncertainty, else ``"plugin"``."""
+        return "corrected" if self.replicates else "plugin"
 
     def _curve_frame(self, labels: np.ndarray, scores: FloatArray, cov: FloatArray,
-                     level: float | None) -> pd.DataFrame:
-        fitted, lower, upper = self.curves(scores, cov, level)
-        _, lower_s, upper_s = self.curves(scores, cov, level, "simultaneous")
+                     level: float | None, sample: Sample) -> pd.DataFrame:
+        var = total_variance(self.replicates, self.grid, sample) if self.replicates else None
+        fitted, lower, upper = self.curves(scores, cov, level, variance=var)
+        _, lower_s, upper_s = self.curves(scores, cov, level, "simultaneous", var)
         return pd.DataFrame({
             "subject": np.repeat(labels, self.grid.size),
             "time": np.tile(self.grid, labels.size),
@@ -311,10 +328,12 @@ class FPCAFit:
             self.error_variance,
         )
 
-    def _new_subjects(self, frame: pd.DataFrame) -> tuple[np.ndarray, FloatArray, FloatArray]:
+    def _new_subjects(self, frame: pd.DataFrame
+                      ) -> tuple[np.ndarray, FloatArray, FloatArray, Sample]:
         codes, t, y, labels = arrays_from_frame(frame, *self.columns)
-        scores, cov = self.conditional_scores(Sample.from_arrays(codes, t, y))
-        return labels, scores, cov
+        sample = Sample.from_arrays(codes, t, y)
+        scores, cov = self.conditional_scores(sample)
+        return labels, scores, cov, sample
 
     def predict(self, frame: pd.DataFrame, level: float | None = None) -> pd.DataFrame:
         """Trajectories on the grid for the subjects in ``frame`` (new or not).
@@ -324,8 +343,8 @@ class FPCAFit:
         Returns a frame with columns subject, time, fitted, lower, upper,
         lower_simultaneous, upper_simultaneous.
         """
-        labels, scores, cov = self._new_subjects(frame)
-        return self._curve_frame(labels, scores, cov, level)
+        labels, scores, cov, sample = self._new_subjects(frame)
+        return self._curve_frame(labels, scores, cov, level, sample)
 
     def predict_at(
         self, frame: pd.DataFrame, targets: pd.DataFrame, level: float | None = None,
@@ -337,7 +356,7 @@ class FPCAFit:
         variance plus the error variance); otherwise for the trajectory itself.
         """
         subj_col, time_col, _ = self.columns
-        labels, scores, cov = self._new_subjects(frame)
+        labels, scores, cov, _ = self._new_subjects(frame)
         rows = pd.Index(labels).get_indexer(targets[subj_col])
         if np.any(rows < 0):
             raise EstimationError("every target subject needs at least one reading in frame")
@@ -463,9 +482,13 @@ def _check_design(sample: Sample, lo: float, hi: float) -> None:
 
 def fit_arrays(
     subject: IntArray, t: FloatArray, y: FloatArray, labels: np.ndarray,
-    options: FPCAOptions = FPCAOptions(),
+    options: FPCAOptions = FPCAOptions(), *, population_only: bool = False,
 ) -> FPCAFit:
     """Fit sparse FPCA to readings given as arrays.
+
+    With ``population_only`` (used for the resamples of the corrected bands) the criteria
+    for the number of components, the mean's simultaneous multiplier and the corrected
+    bands are skipped (``nan`` / empty); ``component_rule`` must then be ``"fixed"``.
 
     Parameters
     ----------
@@ -557,7 +580,10 @@ def fit_arrays(
     fve = all_values / all_values.sum()
 
     # 5. number of components
-    selection = _select_components(terms, lik, fve, hi - lo, options)
+    if population_only:
+        selection = _fixed_selection(lik.eigenvalues.size, fve, options)
+    else:
+        selection = _select_components(terms, lik, fve, hi - lo, options)
     k = selection.chosen
     values, funcs = lik.eigenvalues[:k], funcs_ref[:, :k]
     truncation = np.sum(lik.eigenvalues[k:] * funcs_ref[:, k:] ** 2, axis=1)
@@ -566,7 +592,7 @@ def fit_arrays(
     phi_obs = evaluate_at(sample.t, grid, funcs)
     scores, score_cov = conditional_scores(sample.starts, resid, phi_obs, values,
                                            lik.error_variance)
-    return FPCAFit(
+    fit = FPCAFit(
         grid=_frozen(grid), mean=_frozen(mean), mean_se=_frozen(mean_se),
         covariance=_frozen(cov), diagonal_variance=_frozen(diag_var),
         eigenvalues=_frozen(values), eigenfunctions=_frozen(funcs),
@@ -574,8 +600,8 @@ def fit_arrays(
         fve=_frozen(fve), error_variance=lik.error_variance,
         smoothing_error_variance=sigma2_smooth, likelihood=lik,
         truncation_variance=_frozen(truncation),
-        mean_simultaneous_multiplier=_sup_multiplier(mean_cov, options.band_level,
-                                                     options.seed),
+        mean_simultaneous_multiplier=np.nan if population_only else _sup_multiplier(
+            mean_cov, options.band_level, options.seed),
         n_components=k, mean_bandwidth_choice=mean_choice,
         covariance_bandwidth_choice=cov_choice, diagonal_bandwidth_choice=diag_choice,
         selection=selection,
@@ -585,8 +611,48 @@ def fit_arrays(
         n_readings=int(sample.t.size), dropped_eigenvalues=eig.n_dropped,
         dropped_negative_sum=eig.dropped_sum,
         warnings=tuple(messages), options=options,
-        _mean_fine=(_frozen(mbins.centers), _frozen(fine)),
+        _mean_fine=(_frozen(mbins.centers), _frozen(fine)), _sample=sample,
     )
+    if options.band == "corrected" and not population_only:
+        fit = _with_replicates(fit, sample)
+    return fit
+
+
+def _with_replicates(fit: FPCAFit, sample: Sample) -> FPCAFit:
+    """Refit the population quantities on resampled subjects (``fpca.bootstrap``).
+
+    Each replicate keeps the main fit's three bandwidths, domain and number of components;
+    a resample on which that fit is impossible (too few positive eigenvalues) is skipped
+    and counted in a warning.
+    """
+    opts = replace(
+        with_bandwidths(fit.options, fit.mean_bandwidth, fit.covariance_bandwidth,
+                        fit.diagonal_bandwidth),
+        domain=(float(fit.grid[0]), float(fit.grid[-1])), component_rule="fixed",
+        n_components=fit.n_components, band="plugin",
+    )
+    rng = np.random.default_rng([fit.options.seed, 1])
+    labels = np.arange(sample.n_subjects)
+    reps: list[Replicate] = []
+    skipped = 0
+    for _ in range(fit.options.bootstrap_replicates):
+        drawn = resample(sample, rng)
+        try:
+            rf = fit_arrays(drawn.subject, drawn.t, drawn.y, labels, opts,
+                            population_only=True)
+        except EstimationError:
+            skipped += 1
+            continue
+        reps.append(Replicate(rf.mean, rf.eigenfunctions, rf.eigenvalues, rf.error_variance,
+                              rf.truncation_variance))
+    notes = list(fit.warnings)
+    if skipped:
+        notes.append(f"{skipped} of {fit.options.bootstrap_replicates} resamples for the "
+                     "corrected bands could not be fitted and were skipped")
+    if len(reps) < 2:
+        raise EstimationError("the corrected bands need at least two resamples that can be "
+                              f"fitted; {len(reps)} could")
+    return replace(fit, replicates=tuple(reps), warnings=tuple(notes))
 
 
 # Components refined by likelihood: those reaching this share of the surface's positive
@@ -726,6 +792,15 @@ def _select_components(
     return ComponentSelection(
         options.component_rule, chosen, ks, cum, aic, bic, loo, lik.n_subjects
     )
+
+
+def _fixed_selection(k_max: int, fve: FloatArray, options: FPCAOptions) -> ComponentSelection:
+    """The selection record of a fit whose K is fixed and whose criteria were skipped."""
+    if options.component_rule != "fixed" or options.n_components is None:
+        raise EstimationError("population_only fits need a fixed number of components")
+    none = np.full(k_max, np.nan)
+    return ComponentSelection("fixed", options.n_components, np.arange(1, k_max + 1),
+                              np.cumsum(fve)[:k_max], none, none, none, 0)
 
 
 def with_bandwidths(options: FPCAOptions, mean_h: float, cov_h: float, diag_h: float

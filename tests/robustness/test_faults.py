@@ -114,3 +114,26 @@ def test_inputs_are_read_only_and_unchanged(study: Path, tmp_path: Path,
     after = {p: (hashlib.sha256(p.read_bytes()).hexdigest(), p.stat().st_mtime_ns)
              for p in before}
     assert after == before
+
+
+def test_missing_system_library_is_one_clear_line(monkeypatch: pytest.MonkeyPatch,
+                                                  capsys: pytest.CaptureFixture[str]) -> None:
+    # cffi's dlopen failure as weasyprint raises it when Pango is absent (message shape from
+    # weasyprint's text/ffi.py); the check names the library and the packages, no traceback.
+    import builtins
+
+    from reportgen import syscheck
+
+    real = builtins.__import__
+
+    def fake(name: str, *args: object, **kwargs: object) -> object:
+        if name == "weasyprint":
+            raise OSError("cannot load library 'libpango-1.0-0': libpango-1.0-0: cannot open "
+                          "shared object file: No such file or directory")
+        return real(name, *args, **kwargs)  # type: ignore[arg-type]
+
+    monkeypatch.setattr(builtins, "__import__", fake)
+    assert syscheck.main() == 1
+    err = capsys.readouterr().err.strip()
+    assert len(err.splitlines()) == 1
+    assert "libpango-1.0-0 is missing" in err and "apt-get install" in err

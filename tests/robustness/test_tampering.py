@@ -1,15 +1,18 @@
-"""verify catches every kind of tampering and names it; a damaged record is reported."""
+"""verify: integrity, inputs, numbers and rendering each get a verdict; every kind of
+tampering is found and named; an untouched run made without SOURCE_DATE_EPOCH verifies."""
 
 from __future__ import annotations
 
 import json
 import shutil
+import subprocess
 from collections.abc import Callable
 from pathlib import Path
 
 import pytest
 
 from reportgen.cli import main
+from reportgen.integrity import checksum_list, parse_checksum_list, sha256_file
 from reportgen.runner import run_spec
 
 ROOT = Path(__file__).resolve().parents[2]
@@ -17,10 +20,16 @@ ROOT = Path(__file__).resolve().parents[2]
 
 @pytest.fixture(scope="module")
 def pristine(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    # Made WITHOUT SOURCE_DATE_EPOCH: the path a user takes with defaults.
+    mp = pytest.MonkeyPatch()
+    mp.delenv("SOURCE_DATE_EPOCH", raising=False)
     base = tmp_path_factory.mktemp("tamper")
     for name in ("clinic_visits.yaml", "clinic_visits.csv"):
         shutil.copy(ROOT / "specs" / name, base / name)
-    return run_spec(base / "clinic_visits.yaml", base / "runs")
+    try:
+        return run_spec(base / "clinic_visits.yaml", base / "runs")
+    finally:
+        mp.undo()
 
 
 def _copy(pristine: Path, name: str) -> Path:
@@ -29,63 +38,129 @@ def _copy(pristine: Path, name: str) -> Path:
     return target
 
 
-def _edit_bytes(path: Path, old: bytes, new: bytes) -> None:
-    data = path.read_bytes()
-    assert old in data
-    path.write_bytes(data.replace(old, new, 1))
+def _flip(path: Path, at: float = 0.5) -> None:
+    data = bytearray(path.read_bytes())
+    i = int(len(data) * at)
+    data[i] = ord("0") if data[i] != ord("0") else ord("1")
+    path.write_bytes(bytes(data))
 
 
-def _figure(run: Path) -> None:
-    _edit_bytes(run / "figures" / "mean.svg", b"<g ", b"<g data-x='1' ")
+def _verify(capsys: pytest.CaptureFixture[str], *args: str) -> tuple[int, str]:
+    code = main(["verify", *args])
+    return code, capsys.readouterr().out
 
 
-def _pdf(run: Path) -> None:
-    data = bytearray((run / "report.pdf").read_bytes())
-    data[len(data) // 2] ^= 0xFF
-    (run / "report.pdf").write_bytes(bytes(data))
+def test_untouched_run_verifies_with_and_without_render(pristine: Path,
+                                                       capsys: pytest.CaptureFixture[str],
+                                                       monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.delenv("SOURCE_DATE_EPOCH", raising=False)
+    code, out = _verify(capsys, str(pristine))
+    assert code == 0, out[-1500:]
+    assert "integrity: ok: all" in out and "inputs: ok" in out
+    assert "numbers: ok: re-run gives byte-identical tables" in out
+    assert out.rstrip().endswith("verify: everything matches")
+    code, out = _verify(capsys, str(pristine), "--render")
+    assert code == 0, out[-1500:]
+    assert "rendering: ok: HTML, figures and PDF re-render byte-identical" in out
 
 
-def _record_value(run: Path) -> None:
-    record = json.loads((run / "record.json").read_text())
-    record["results_sha256"] = "0" * 64
-    (run / "record.json").write_text(json.dumps(record, indent=2))
+@pytest.mark.skipif(shutil.which("sha256sum") is None, reason="GNU coreutils sha256sum absent")
+def test_sha256sum_checks_every_run_without_reportgen(pristine: Path) -> None:
+    # Reference: GNU coreutils manual, "md5sum invocation" (sha256sum shares it): with -c the
+    # list's "<hex>  <name>" lines are read and each file is checked; exit 0 when all match.
+    for run in [pristine, *sorted((ROOT / "sample_runs").glob("*/v*"))]:
+        res = subprocess.run(["sha256sum", "--strict", "-c", "SHA256SUMS"], cwd=run,
+                             capture_output=True, text=True)
+        assert res.returncode == 0, (run, res.stdout[-500:], res.stderr[-500:])
+        listed, bad = parse_checksum_list((run / "SHA256SUMS").read_bytes())
+        assert not bad and "report.pdf" in listed and "record.json" in listed
+        files = {p.relative_to(run).as_posix() for p in run.rglob("*") if p.is_file()}
+        assert set(listed) == files - {"SHA256SUMS"}
 
 
-@pytest.mark.parametrize(("name", "tamper", "named"), [
-    ("figure", _figure, "file figures/mean.svg"),
-    ("pdf", _pdf, "file report.pdf"),
-    ("record value", _record_value, "results sha256"),
+def _input(run: Path) -> None:
+    _flip(run.parent.parent.parent / "clinic_visits.csv", 0.7)
+
+
+def _sums(run: Path) -> None:
+    text = (run / "SHA256SUMS").read_text()
+    line = next(x for x in text.splitlines() if x.endswith("tables/mean.csv"))
+    (run / "SHA256SUMS").write_text(text.replace(line, ("0" if line[0] != "0" else "1")
+                                                 + line[1:]))
+
+
+@pytest.mark.parametrize(("kind", "tamper", "named"), [
+    ("table", lambda r: _flip(r / "tables" / "components.csv"), "file tables/components.csv"),
+    ("figure", lambda r: _flip(r / "figures" / "mean.svg"), "file figures/mean.svg"),
+    ("html", lambda r: _flip(r / "report.html"), "file report.html"),
+    ("pdf", lambda r: _flip(r / "report.pdf"), "file report.pdf"),
+    ("record", lambda r: _flip(r / "record.json", 0.3), "file record.json"),
+    ("spec", lambda r: (r / "spec.yaml").write_bytes((r / "spec.yaml").read_bytes() + b"#\n"),
+     "file spec.yaml"),
+    ("sums", _sums, "file SHA256SUMS"),
+    ("extra", lambda r: (r / "notes.txt").write_text("x"), "file notes.txt"),
 ])
-def test_verify_names_the_tampered_item(pristine: Path, capsys: pytest.CaptureFixture[str],
-                                        name: str, tamper: Callable[[Path], None],
-                                        named: str) -> None:
-    run = _copy(pristine, f"v9{len(name)}")
+def test_each_kind_of_tampering_is_named(pristine: Path, capsys: pytest.CaptureFixture[str],
+                                         kind: str, tamper: Callable[[Path], None],
+                                         named: str) -> None:
+    run = _copy(pristine, f"t-{kind}")
     tamper(run)
-    assert main(["verify", str(run)]) == 1
-    out = capsys.readouterr().out
-    assert named in out.split("verify:")[-1], out[-600:]
+    code, out = _verify(capsys, str(run))
+    assert code == 1, out[-1500:]
+    summary = out.split("verify:")[-1]
+    assert named in summary, out[-1500:]
+    assert "integrity: FAILED" in out
 
 
-@pytest.mark.parametrize(("damage", "message"), [
-    (lambda r: r.pop("outputs"), "missing key(s) outputs"),
-    (lambda r: r.update(outputs=["a"]), "wrong structure"),
-    (lambda r: r["run"].pop("version"), "wrong structure"),
-    (lambda r: r.update(inputs=[{"path": 3}]), "wrong structure"),
-])
-def test_damaged_record_structure_is_reported(pristine: Path,
-                                              capsys: pytest.CaptureFixture[str],
-                                              damage: Callable[[dict], object],
-                                              message: str) -> None:
-    run = _copy(pristine, f"damaged-{abs(hash(message)) % 10**6}-{id(damage) % 10**6}")
+def test_changed_input_is_said_in_words(tmp_path: Path, capsys: pytest.CaptureFixture[str]
+                                        ) -> None:
+    for name in ("clinic_visits.yaml", "clinic_visits.csv"):
+        shutil.copy(ROOT / "specs" / name, tmp_path / name)
+    run = run_spec(tmp_path / "clinic_visits.yaml", tmp_path / "runs")
+    _input(run)
+    code, out = _verify(capsys, str(run))
+    assert code == 1
+    assert "inputs: CHANGED: the input data differ from those the run used" in out
+    assert "numbers: not checked" in out and "input clinic_visits.csv" in out.split("verify:")[-1]
+
+
+def test_run_copied_elsewhere_verifies_with_inputs(pristine: Path, tmp_path: Path,
+                                                   capsys: pytest.CaptureFixture[str]) -> None:
+    moved = tmp_path / "audit" / "run"
+    shutil.copytree(pristine, moved)
+    data = tmp_path / "handed-over"
+    data.mkdir()
+    shutil.copy(ROOT / "specs" / "clinic_visits.csv", data / "clinic_visits.csv")
+    code, out = _verify(capsys, str(moved))
+    assert code == 1 and "give --inputs DIR" in out
+    code, out = _verify(capsys, str(moved), "--inputs", str(data))
+    assert code == 0, out[-1500:]
+
+
+def test_other_environment_explains_rendering_difference(pristine: Path,
+                                                         capsys: pytest.CaptureFixture[str]
+                                                         ) -> None:
+    run = _copy(pristine, "other-env")
     record = json.loads((run / "record.json").read_text())
-    damage(record)
-    (run / "record.json").write_text(json.dumps(record))
+    record["environment"]["packages"]["weasyprint"] = "0.0-recorded-elsewhere"
+    (run / "record.json").write_text(json.dumps(record, indent=2) + "\n")
+    listed, _ = parse_checksum_list((run / "SHA256SUMS").read_bytes())
+    listed["record.json"] = sha256_file(run / "record.json")  # a consistent record
+    (run / "SHA256SUMS").write_bytes(checksum_list(listed))
+    code, out = _verify(capsys, str(run), "--render")
+    # The PDF carries the (edited) record, so it re-renders differently; the numbers match.
+    assert code == 0, out[-1500:]
+    assert "differs only in rendering" in out and "weasyprint 0.0-recorded-elsewhere ->" in out
+    code, out = _verify(capsys, str(run), "--render", "--strict")
+    assert code == 1 and "re-rendered report.pdf" in out.split("verify:")[-1]
+
+
+def test_damaged_record_is_reported(pristine: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    run = _copy(pristine, "damaged")
+    (run / "record.json").write_text("{not json")
+    code, out = _verify(capsys, str(run))
+    assert code == 1 and "file record.json" in out
+    (run / "SHA256SUMS").unlink()
     assert main(["verify", str(run)]) == 2
     err = capsys.readouterr().err
-    assert "record.json is damaged" in err and message in err and "Traceback" not in err
-
-
-def test_verify_passes_on_the_untouched_run(pristine: Path,
-                                            capsys: pytest.CaptureFixture[str]) -> None:
-    assert main(["verify", str(pristine)]) == 0
-    assert "verify: everything matches" in capsys.readouterr().out
+    assert "record.json" in err and "damaged" in err and "Traceback" not in err

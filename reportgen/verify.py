@@ -1,0 +1,239 @@
+"""Verify a run: integrity (no re-run), inputs, numbers (re-run), rendering (optional).
+
+Each part has its own verdict, so that an auditor can tell a changed file from a changed
+input, a changed result, or only a different rendering environment:
+
+- integrity: every file of the run against SHA256SUMS (``integrity.check_integrity``);
+- inputs: the spec and each recorded input file against the record's hashes; an input is
+  found beside the recorded spec, or by name in ``--inputs DIR``;
+- numbers: the recorded spec re-run on the inputs; the results digest compared exactly and
+  every table compared as numbers within ``RTOL`` (a different BLAS or CPU moves the last
+  digits, which is not a change of the analysis);
+- rendering (``render=True``): HTML, figures and PDF rebuilt and compared byte for byte;
+  where they differ while the numbers match and the recorded environment differs from the
+  current one, that is said, and it is not a finding unless ``strict``.
+"""
+
+from __future__ import annotations
+
+import io
+from collections.abc import Callable
+from dataclasses import dataclass, field, replace
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from .errors import ReportgenError
+from .integrity import check_integrity, sha256_bytes, sha256_file
+from .record import environment, load_record
+from .render import render_pdf
+from .runner import Built, build_outputs
+from .spec import spec_from_bytes
+
+Progress = Callable[[str], None]
+RTOL = 1e-6  # relative tolerance for numbers re-computed on another machine
+RENDERED = ("report.html", "report.pdf")
+
+
+@dataclass(frozen=True)
+class Row:
+    part: str
+    item: str
+    recorded: str
+    now: str
+    ok: bool
+
+
+@dataclass
+class Verification:
+    rows: list[Row] = field(default_factory=list)
+    verdicts: dict[str, str] = field(default_factory=dict)
+    problems: list[str] = field(default_factory=list)
+    notes: list[str] = field(default_factory=list)
+    rebuilt: Built | None = None
+
+    def add(self, part: str, item: str, recorded: str, now: str, ok: bool) -> None:
+        self.rows.append(Row(part, item, recorded, now, ok))
+        if not ok:
+            self.problems.append(item)
+
+
+def _locate_input(entry: dict[str, Any], source: Path, inputs: Path | None) -> Path:
+    if inputs is not None:
+        return inputs / Path(str(entry["path"])).name
+    return (source.parent / str(entry["path"])).resolve()
+
+
+def _compare_table(a: bytes, b: bytes) -> tuple[bool, str]:
+    """Tables equal as numbers within RTOL (text cells exactly); and what differs."""
+    if a == b:
+        return True, "identical"
+    try:
+        fa = pd.read_csv(io.BytesIO(a), dtype=str, keep_default_na=False)
+        fb = pd.read_csv(io.BytesIO(b), dtype=str, keep_default_na=False)
+    except (ValueError, pd.errors.ParserError):
+        return False, "not a readable table"
+    if list(fa.columns) != list(fb.columns) or fa.shape != fb.shape:
+        return False, f"shape {fa.shape} vs {fb.shape}"
+    worst, cells = 0.0, 0
+    for col in fa.columns:
+        xa = pd.to_numeric(fa[col], errors="coerce").to_numpy(dtype=float)
+        xb = pd.to_numeric(fb[col], errors="coerce").to_numpy(dtype=float)
+        numeric = ~np.isnan(xa) & ~np.isnan(xb)
+        text_diff = ~numeric & (fa[col].to_numpy() != fb[col].to_numpy())
+        scale = max(float(np.max(np.abs(xa[numeric]), initial=0.0)), 1e-300)
+        rel = np.abs(xa[numeric] - xb[numeric]) / np.maximum(np.abs(xa[numeric]), 1e-9 * scale)
+        cells += int(np.sum(rel > RTOL)) + int(np.sum(text_diff))
+        worst = max(worst, float(np.max(rel, initial=0.0)))
+    if cells:
+        return False, f"{cells} cell(s) differ (largest relative difference {worst:.2g})"
+    return True, f"equal within {RTOL:g} (largest relative difference {worst:.2g})"
+
+
+def _environment_diff(recorded: dict[str, Any]) -> list[str]:
+    now = environment()
+    out = []
+    for key in ("python", "platform"):
+        if recorded.get(key) != now[key]:
+            out.append(f"{key} {recorded.get(key)} -> {now[key]}")
+    rec_p, now_p = recorded.get("packages", {}), now["packages"]
+    for name in sorted(set(rec_p) | set(now_p)):
+        if rec_p.get(name) != now_p.get(name):
+            out.append(f"{name} {rec_p.get(name, 'absent')} -> {now_p.get(name, 'absent')}")
+    return out
+
+
+def verify_run(run_dir: str | Path, inputs: str | Path | None = None, render: bool = False,
+               strict: bool = False, progress: Progress = lambda _: None) -> Verification:
+    """Check a run directory; see the module docstring. Raises RecordError (exit 2) when
+    the run has no usable record and nothing else shows tampering."""
+    run = Path(run_dir)
+    out = Verification()
+    damage = ""
+    try:
+        record: dict[str, Any] | None = load_record(run)
+    except ReportgenError as e:
+        if not (run / "SHA256SUMS").is_file() or not run.is_dir():
+            raise
+        record, damage = None, str(e)
+    checked, findings = check_integrity(run, record["outputs"] if record else None)
+    for f in findings:
+        out.add("integrity", f"file {f.name}", "listed" if f.kind != "extra" else "-",
+                f"{f.kind}: {f.detail}", False)
+    out.verdicts["integrity"] = (f"ok: all {checked} files match SHA256SUMS" if not findings
+                                 else f"FAILED: {len(findings)} file problem(s)")
+    if record is None:
+        if not findings:  # the checksum list vouches for an unreadable record: exit 2
+            raise ReportgenError(damage)
+        for part in ("inputs", "numbers"):
+            out.verdicts[part] = f"not checked: {damage}"
+        return out
+    _inputs_and_numbers(run, record, out, None if inputs is None else Path(inputs), render,
+                        progress)
+    _rendering(run, record, out, render, strict)
+    return out
+
+
+def _inputs_and_numbers(run: Path, record: dict[str, Any], out: Verification,
+                        inputs: Path | None, render: bool, progress: Progress) -> None:
+    spec_file = run / "spec.yaml"
+    spec_bytes = spec_file.read_bytes() if spec_file.is_file() else b""
+    spec_ok = record["spec"]["sha256"] == sha256_bytes(spec_bytes)
+    out.add("inputs", "spec sha256", record["spec"]["sha256"][:16], sha256_bytes(spec_bytes)[:16],
+            spec_ok)
+    source = (run / str(record["spec"]["source"])).resolve()
+    located: list[tuple[str, Path]] = []
+    changed: list[tuple[str, Path]] = []
+    missing: list[tuple[str, Path]] = []
+    for entry in record["inputs"]:
+        path = _locate_input(entry, source, inputs)
+        now = sha256_file(path) if path.is_file() else "absent"
+        out.add("inputs", f"input {entry['path']}", entry["sha256"][:16], now[:16],
+                now == entry["sha256"])
+        (missing if now == "absent" else changed if now != entry["sha256"] else located).append(
+            (str(entry["path"]), path))
+    if missing:
+        where = "in --inputs" if inputs is not None else "beside the recorded spec"
+        out.verdicts["inputs"] = (f"MISSING: {', '.join(str(m[0]) for m in missing)} not found "
+                                  f"{where} ({missing[0][1]}); give --inputs DIR")
+    elif changed:
+        out.verdicts["inputs"] = (f"CHANGED: the input data differ from those the run used "
+                                  f"({', '.join(str(c[0]) for c in changed)}): the data were "
+                                  "refreshed or edited since the run")
+    elif spec_ok:
+        out.verdicts["inputs"] = "ok: the spec and every input file match the record"
+    else:
+        out.verdicts["inputs"] = "CHANGED: spec.yaml differs from the recorded spec"
+    if missing or changed or not spec_ok:
+        out.verdicts["numbers"] = "not checked: the inputs are not those of the run"
+        return
+    try:
+        spec = spec_from_bytes(spec_bytes, source)
+    except ReportgenError as e:
+        out.add("numbers", "recorded spec", "valid", f"invalid: {e}", False)
+        out.verdicts["numbers"] = "FAILED: the recorded spec no longer validates"
+        return
+    if inputs is not None:
+        spec = replace(spec, data_location=located[0][1])
+    progress("re-running the recorded spec")
+    built = build_outputs(spec, int(record["run"]["version"]), progress, render=render)
+    out.rebuilt = built
+    same_digest = built.results_sha256 == record["results_sha256"]
+    out.add("numbers", "results sha256 (exact)", record["results_sha256"][:16],
+            built.results_sha256[:16], True)
+    bad = 0
+    for name in sorted(n for n in built.files if n.startswith("tables/")):
+        stored = run / name
+        ok, detail = _compare_table(stored.read_bytes() if stored.is_file() else b"",
+                                    built.files[name])
+        bad += not ok
+        out.add("numbers", f"table {name.removeprefix('tables/')}", "recorded", detail, ok)
+    if bad:
+        out.verdicts["numbers"] = f"CHANGED: {bad} table(s) differ beyond {RTOL:g}"
+    elif same_digest:
+        out.verdicts["numbers"] = "ok: re-run gives byte-identical tables (same results digest)"
+    else:
+        out.verdicts["numbers"] = (f"ok: re-run tables equal within relative {RTOL:g}; the "
+                                   "digest differs in the last digits (another machine or "
+                                   "library)")
+
+
+def _rendering(run: Path, record: dict[str, Any], out: Verification, render: bool,
+               strict: bool) -> None:
+    built = out.rebuilt
+    if not render or built is None:
+        out.verdicts["rendering"] = ("not checked (add --render to rebuild the HTML, figures "
+                                     "and PDF)" if not render else "not checked")
+        return
+    pdf = render_pdf(built.files["report.html"], (run / "spec.yaml").read_bytes(),
+                     (run / "record.json").read_bytes(), str(record["run"]["finished"]))
+    rebuilt = {**{n: d for n, d in built.files.items() if not n.startswith("tables/")},
+               "report.pdf": pdf}
+    differing = []
+    for name in sorted(rebuilt):
+        stored = run / name
+        now = sha256_bytes(rebuilt[name])
+        before = sha256_file(stored) if stored.is_file() else "absent"
+        if now != before:
+            differing.append(name)
+        out.rows.append(Row("rendering", f"re-rendered {name}", before[:16], now[:16],
+                            now == before))
+    if not differing:
+        out.verdicts["rendering"] = "ok: HTML, figures and PDF re-render byte-identical"
+        return
+    env = _environment_diff(record.get("environment", {}))
+    numbers_ok = out.verdicts.get("numbers", "").startswith("ok")
+    if env and numbers_ok:
+        out.verdicts["rendering"] = (f"differs only in rendering ({len(differing)} file(s)); "
+                                     "the environment differs from the recorded one: "
+                                     + "; ".join(env))
+        out.notes.append("rendered bytes depend on the fonts and library versions; the numbers "
+                         "match" + ("" if not strict else " (--strict: counted as a finding)"))
+        if strict:
+            out.problems.extend(f"re-rendered {n}" for n in differing)
+    else:
+        out.verdicts["rendering"] = (f"CHANGED: {len(differing)} file(s) re-render differently "
+                                     "in the recorded environment")
+        out.problems.extend(f"re-rendered {n}" for n in differing)
