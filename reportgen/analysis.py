@@ -5,6 +5,7 @@ No files and no printing: the runner writes, the renderer reads.
 
 from __future__ import annotations
 
+import math
 from collections.abc import Callable
 from dataclasses import dataclass, replace
 
@@ -44,7 +45,8 @@ class AnalysisResult:
     outliers: pd.DataFrame  # subject, distance, flagged
     shown_subjects: tuple[str, ...]
     caveats: tuple[str, ...]
-    stable: tuple[bool, ...]  # per component, by the sensitivity threshold
+    stable: tuple[bool | None, ...]  # per component; None: no setting could be computed
+    factors_note: str  # how the sensitivity factors were chosen
 
 
 def _similarity(grid: np.ndarray, a: np.ndarray, b: np.ndarray) -> float:
@@ -60,12 +62,45 @@ def rule_choice(fit: FPCAFit, rule: str, threshold: float) -> int:
                   threshold, None)
 
 
+def _smallest_feasible_factor(fit: FPCAFit) -> float:
+    """The smallest factor at which every automatically chosen bandwidth stays feasible:
+    the largest ratio of a smoother's smallest feasible candidate to its chosen bandwidth."""
+    ratios = [min(h for h, c in zip(ch.candidates, ch.criterion, strict=True)
+                  if np.isfinite(c)) / ch.value
+              for ch in (fit.mean_bandwidth_choice, fit.covariance_bandwidth_choice,
+                         fit.diagonal_bandwidth_choice) if ch.candidates]
+    return max(ratios, default=0.0)
+
+
+def sensitivity_factors(spec: Spec, fit: FPCAFit) -> tuple[list[float], str]:
+    """The factors to run and a sentence on how they were chosen.
+
+    Factors given in the spec are used as given. The default ones (0.5, 0.75, 1.5, 2) below 1
+    are raised to the smallest factor at which every smoother is still defined, so that the
+    default settings can be computed for the data at hand.
+    """
+    given = spec.content.get("sensitivity", {}).get("factors")
+    if given is not None:
+        return [float(f) for f in given], "Factors as given in the spec."
+    floor = _smallest_feasible_factor(fit)
+    factors = sorted({math.ceil(max(f, floor) * 100) / 100 if f < 1 else f
+                      for f in spec.sensitivity["factors"]})
+    factors = [f for f in factors if f != 1.0]
+    raised = [f for f in spec.sensitivity["factors"] if f < floor]
+    note = ("Default factors 0.5, 0.75, 1.5 and 2" + (
+        f"; {', '.join(f'{f:g}' for f in raised)} raised to {floor:.2f}, the smallest factor "
+        "at which every automatically chosen bandwidth stays at or above its smallest "
+        "feasible candidate" if raised else "") + ".")
+    return factors, note
+
+
 def _sensitivity(spec: Spec, codes: np.ndarray, t: np.ndarray, y: np.ndarray,
-                 labels: np.ndarray, fit: FPCAFit, progress: Progress) -> list[SensitivityRun]:
+                 labels: np.ndarray, fit: FPCAFit, factors: list[float], progress: Progress
+                 ) -> list[SensitivityRun]:
     """Refit at each bandwidth factor, keeping the main fit's number of components so that
     every component can be compared (the number the rule would pick is reported too)."""
     runs = []
-    for factor in spec.sensitivity["factors"]:
+    for factor in factors:
         hm, hc = factor * fit.mean_bandwidth, factor * fit.covariance_bandwidth
         hd = factor * fit.diagonal_bandwidth
         progress(f"sensitivity: bandwidths x {factor:g}")
@@ -89,14 +124,30 @@ def _sensitivity(spec: Spec, codes: np.ndarray, t: np.ndarray, y: np.ndarray,
 
 
 def _residuals(fit: FPCAFit, frame: pd.DataFrame) -> pd.DataFrame:
+    """Readings minus fitted trajectories, each standardized by its own model variance.
+
+    Under the model, y - E[X(t) | y] at a reading has variance sigma^2 - phi(t)' Omega phi(t)
+    (Omega: the subject's score prediction-error covariance; from Var(e) = sigma^4 Sigma^-1
+    for e = sigma^2 Sigma^-1 r, standard Gaussian conditioning), plus the variance of the
+    components K leaves out. Dividing by its square root makes 1 the expected spread: the
+    in-sample residuals are shrunk by design, so sigma alone would understate them.
+    """
     rows = pd.Index(fit.subjects).get_indexer(frame.subject)
     t = frame.time.to_numpy()
     phi = fit.eigenfunctions_at(t)
     fitted = fit.mean_at(t) + np.einsum("nk,nk->n", phi, fit.score_values[rows])
     resid = frame.value.to_numpy() - fitted
+    var = (fit.error_variance - np.einsum("nk,nkl,nl->n", phi, fit.score_cov[rows], phi)
+           + np.interp(t, fit.grid, fit.truncation_variance))
+    sd = np.sqrt(np.maximum(var, 1e-12 * fit.error_variance))
     return pd.DataFrame({"subject": frame.subject.to_numpy(), "time": t,
                          "value": frame.value.to_numpy(), "fitted": fitted, "residual": resid,
-                         "standardized": resid / np.sqrt(fit.error_variance)})
+                         "standardized": resid / sd})
+
+
+def spread_trend(residuals: pd.DataFrame) -> float:
+    """Spearman correlation of |standardized residual| with the fitted value (pandas ranks)."""
+    return float(residuals.standardized.abs().corr(residuals.fitted, method="spearman"))
 
 
 def _residual_summary(residuals: pd.DataFrame) -> pd.DataFrame:
@@ -131,7 +182,7 @@ def _shown(fit: FPCAFit, spec: Spec) -> tuple[str, ...]:
 
 
 def _caveats(spec: Spec, ds: Dataset, fit: FPCAFit, runs: list[SensitivityRun],
-             stable: list[bool]) -> list[str]:
+             stable: list[bool | None], residuals: pd.DataFrame) -> list[str]:
     out = [w[:1].upper() + w[1:] + ("" if w.endswith(".") else ".") for w in fit.warnings]
     for c in ds.checks:
         if c.name == "time-pair coverage" and c.status == "warn":
@@ -144,15 +195,27 @@ def _caveats(spec: Spec, ds: Dataset, fit: FPCAFit, runs: list[SensitivityRun],
                    "estimated as the difference of two smoothed variances, which is imprecise "
                    "when differences between subjects dominate: read it, and the width of the "
                    "bands, with the sensitivity table.")
+    rho = spread_trend(residuals)
+    if rho > max(0.2, 3.0 / np.sqrt(len(residuals))):
+        out.append(f"The spread of the residuals grows with the fitted value (Spearman "
+                   f"correlation of |standardized residual| with the fitted value {rho:.2f}): "
+                   "the error is not of constant size. A log transform of the values "
+                   "(data.transform: log) often makes it so; read the bands with care.")
     single = int(np.sum(fit.n_obs == 1))
     if single > 0.2 * fit.n_subjects:
         out.append(f"{single} of {fit.n_subjects} subjects have one reading: their trajectories "
                    "lean on the mean and the components, and their bands are wide.")
+    thr = spec.sensitivity["similarity_threshold"]
     for k, ok in enumerate(stable):
-        if not ok:
-            out.append(f"Component {k + 1} changes when the bandwidths change (similarity below "
-                       f"{spec.sensitivity['similarity_threshold']:g} in a sensitivity run): "
-                       "interpret its shape with care.")
+        if ok is False:
+            low = [f"x{r.factor:g}: {r.similarity[k]:.3f}" for r in runs
+                   if r.fit is not None and np.nan_to_num(r.similarity[k]) < thr]
+            out.append(f"Component {k + 1} changes when the bandwidths change (similarity "
+                       f"below {thr:g} at {', '.join(low)}): interpret its shape with care.")
+    failed = [r for r in runs if r.fit is None]
+    if failed:
+        out.append("Sensitivity settings not computed (not evidence either way): "
+                   + "; ".join(f"x{r.factor:g}: {r.error}" for r in failed) + ".")
     out.append("Scores and bands come from conditional expectation under joint Gaussianity of "
                "scores and errors; with skewed or heavy-tailed data they are best linear "
                "predictions and the bands' coverage is approximate.")
@@ -204,16 +267,20 @@ def analyse(spec: Spec, ds: Dataset, progress: Progress = lambda _: None,
     progress("fit")
     fit = fit_arrays(codes, t, y, labels, spec.options)
     lap("fit")
-    runs = _sensitivity(spec, codes, t, y, labels, fit, progress)
+    factors, factors_note = sensitivity_factors(spec, fit)
+    runs = _sensitivity(spec, codes, t, y, labels, fit, factors, progress)
     lap("sensitivity")
     threshold = spec.sensitivity["similarity_threshold"]
-    stable = [all(r.fit is not None and np.nan_to_num(r.similarity[k]) >= threshold
-                  for r in runs) for k in range(fit.n_components)]
+    computed = [r for r in runs if r.fit is not None]
+    stable: list[bool | None] = [
+        all(np.nan_to_num(r.similarity[k]) >= threshold for r in computed) if computed else None
+        for k in range(fit.n_components)]
     residuals = _residuals(fit, ds.frame)
     return AnalysisResult(
         spec=spec, dataset=ds, fit=fit, sensitivity=tuple(runs),
         residuals=residuals, residual_summary=_residual_summary(residuals),
         outliers=_outliers(fit, spec.subjects["outlier_quantile"]),
         shown_subjects=_shown(fit, spec),
-        caveats=tuple(_caveats(spec, ds, fit, runs, stable)), stable=tuple(stable),
+        caveats=tuple(_caveats(spec, ds, fit, runs, stable, residuals)), stable=tuple(stable),
+        factors_note=factors_note,
     )

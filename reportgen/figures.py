@@ -91,8 +91,15 @@ def _make(r: AnalysisResult) -> dict[str, tuple[str, str, str]]:
                      "Heat map of the density of within-subject time pairs.")
 
     fig, ax = plt.subplots(figsize=(6, 3.2))
-    ax.hexbin(frame.time, frame.value, gridsize=40, cmap="Greys", mincnt=1, linewidths=0,
-              rasterized=True)
+    if len(frame) > MAX_POINTS:
+        ax.hexbin(frame.time, frame.value, gridsize=40, cmap="Greys", mincnt=1, linewidths=0,
+                  rasterized=True)
+        ax.plot([], [], "s", color="#888", label=f"readings (density of {len(frame):,})")
+        drawn = "the density of all readings (grey hexagons)"
+    else:
+        ax.scatter(frame.time, frame.value, s=5, color="#777", alpha=0.5, linewidths=0,
+                   rasterized=True, label=f"readings ({len(frame):,})")
+        drawn = "every reading (grey points)"
     z, zs = fit.band_multiplier(), fit.mean_simultaneous_multiplier
     level = f"{fit.options.band_level:.0%}"
     ax.fill_between(g, fit.mean - zs * fit.mean_se, fit.mean + zs * fit.mean_se,
@@ -105,7 +112,7 @@ def _make(r: AnalysisResult) -> dict[str, tuple[str, str, str]]:
     ax.legend(fontsize=7)
     put("mean", fig, f"Mean curve with a pointwise {level} band (inner) and a simultaneous "
                    f"{level} band (outer; holds at every time at once), both cluster-robust "
-                   "over subjects and without smoothing bias, over the density of all readings.",
+                   f"over subjects and without smoothing bias, over {drawn}.",
                    "Grey density of readings against time with the mean curve and its two "
                    "bands.")
 
@@ -177,7 +184,8 @@ def _make(r: AnalysisResult) -> dict[str, tuple[str, str, str]]:
         ax.plot(g, fit.eigenfunctions[:, k], label=f"phi_{k + 1} (FVE {fit.fve[k]:.2f})")
     ax.axhline(0, color="#888", linewidth=0.8)
     ax.set_xlabel(tl)
-    ax.set_ylabel("eigenfunction")
+    ef_unit = spec.units()["eigenfunction"]
+    ax.set_ylabel("eigenfunction" + (f" ({ef_unit})" if ef_unit else ""))
     ax.legend(fontsize=8)
     put("eigenfunctions", fig, "Eigenfunctions of the retained components.",
                              "Line plot of each retained eigenfunction against time.")
@@ -199,21 +207,7 @@ def _make(r: AnalysisResult) -> dict[str, tuple[str, str, str]]:
                       "Mean curve with curves two standard deviations above and below along "
                       "each component.")
 
-    fig, ax = plt.subplots(figsize=(4.4, 3.8))
-    sc = fit.score_values
-    y2 = sc[:, 1] if fit.n_components > 1 else np.zeros(len(sc))
-    if len(sc) > MAX_POINTS:
-        ax.hexbin(sc[:, 0], y2, gridsize=40, cmap="Greys", mincnt=1, linewidths=0, rasterized=True)
-    else:
-        ax.scatter(sc[:, 0], y2, s=8, color=PALETTE[0], alpha=0.6, linewidths=0,
-                   rasterized=True)
-    flagged = r.outliers.flagged.to_numpy()
-    ax.scatter(sc[flagged, 0], y2[flagged], s=18, facecolors="none", edgecolors=PALETTE[1],
-               label="flagged")
-    ax.set_xlabel("score 1")
-    ax.set_ylabel("score 2" if fit.n_components > 1 else "")
-    put("scores", fig, "Scores of the first two components; flagged subjects circled.",
-                     "Scatter of subjects' first two scores with outlying subjects circled.")
+    put("scores", *_scores_figure(r))
 
     shown = list(r.shown_subjects)
     traj = fit.trajectories([s for s in fit.subjects if str(s) in set(shown)])
@@ -224,6 +218,10 @@ def _make(r: AnalysisResult) -> dict[str, tuple[str, str, str]]:
                              squeeze=False, sharex=True)
     for i, sid in enumerate(shown):
         ax = axes[i // cols, i % cols]
+        if i % cols == 0:
+            ax.set_ylabel(vl, fontsize=7)
+        if i // cols == rows - 1 or i + cols >= len(shown):
+            ax.set_xlabel(tl, fontsize=7)
         tr = traj[traj.subject.astype(str) == sid]
         obs = frame[frame.subject.astype(str) == sid]
         ax.fill_between(tr.time, tr.lower_simultaneous, tr.upper_simultaneous,
@@ -259,9 +257,9 @@ def _make(r: AnalysisResult) -> dict[str, tuple[str, str, str]]:
     axes[2].plot(theo, theo, color="#888", linewidth=0.8)
     axes[2].set_xlabel("normal quantile")
     axes[2].set_ylabel("residual quantile")
-    put("residuals", fig, "Standardized residuals (reading minus fitted trajectory, "
-                        "over the error standard deviation) against time and fitted value, and "
-                        "a normal quantile plot.",
+    put("residuals", fig, "Standardized residuals (reading minus fitted trajectory, over its "
+                        "own standard deviation under the fitted model) against time and fitted "
+                        "value, and a normal quantile plot.",
                         "Three panels: residuals against time, against fitted values, and a "
                         "normal quantile plot.")
 
@@ -286,3 +284,48 @@ def _make(r: AnalysisResult) -> dict[str, tuple[str, str, str]]:
                           "main fit).", "Overlaid curves of the mean and eigenfunctions under "
                           "each bandwidth setting.")
     return out
+
+
+def _scores_figure(r: AnalysisResult) -> tuple[plt.Figure, str, str]:
+    """Scores of the first two components (a histogram of the first when K = 1), with the
+    flagged subjects marked and labelled by id (the ten farthest)."""
+    fit = r.fit
+    su = r.spec.units()["score"]
+    unit = f" ({su})" if su else ""
+    sc = fit.score_values
+    flagged = r.outliers.flagged.to_numpy()
+    order = np.argsort(-r.outliers.distance2.to_numpy())
+    labelled = [i for i in order if flagged[i]][:10]
+    fig, ax = plt.subplots(figsize=(4.6, 3.6))
+    if fit.n_components == 1:
+        ax.hist(sc[:, 0], bins=min(40, max(10, len(sc) // 10)), color=PALETTE[0])
+        ax.plot(sc[flagged, 0], np.zeros(int(flagged.sum())), "o", markersize=6,
+                markerfacecolor="none", color=PALETTE[1], label="flagged")
+        for i in labelled:
+            ax.annotate(str(fit.subjects[i]), (sc[i, 0], 0), textcoords="offset points",
+                        xytext=(0, 6), fontsize=6, rotation=90, ha="center")
+        ax.set_xlabel("score 1" + unit)
+        ax.set_ylabel("subjects")
+        caption = ("Distribution of the scores of the single retained component; flagged "
+                   "subjects circled on the axis and labelled by id.")
+        alt = "Histogram of the subjects' scores with flagged subjects marked."
+    else:
+        if len(sc) > MAX_POINTS:
+            ax.hexbin(sc[:, 0], sc[:, 1], gridsize=40, cmap="Greys", mincnt=1, linewidths=0,
+                      rasterized=True)
+        else:
+            ax.scatter(sc[:, 0], sc[:, 1], s=8, color=PALETTE[0], alpha=0.6, linewidths=0,
+                       rasterized=True)
+        ax.scatter(sc[flagged, 0], sc[flagged, 1], s=18, facecolors="none",
+                   edgecolors=PALETTE[1], label="flagged")
+        for i in labelled:
+            ax.annotate(str(fit.subjects[i]), (sc[i, 0], sc[i, 1]), textcoords="offset points",
+                        xytext=(3, 3), fontsize=6)
+        ax.set_xlabel("score 1" + unit)
+        ax.set_ylabel("score 2" + unit)
+        caption = ("Scores of the first two components; flagged subjects circled and labelled "
+                   "by id.")
+        alt = "Scatter of subjects' first two scores with flagged subjects circled."
+    if flagged.any():
+        ax.legend(fontsize=7)
+    return fig, caption, alt

@@ -14,7 +14,7 @@ from typing import Any
 import jinja2
 import numpy as np
 
-from .analysis import STANDARD_CAUTIONS, AnalysisResult, rule_choice
+from .analysis import STANDARD_CAUTIONS, AnalysisResult, rule_choice, spread_trend
 from .fpca import BandwidthChoice
 
 
@@ -84,8 +84,12 @@ def build_sections(result: AnalysisResult, record_view: dict[str, Any],
     """Sections in report order. ``figures`` maps a name to (svg, caption, alt)."""
     fit, spec, ds = result.fit, result.spec, result.dataset
     b = _Builder()
-    tu = f" ({spec.data['time_unit']})" if spec.data["time_unit"] else ""
-    vu = f" ({spec.value_unit})" if spec.value_unit else ""
+    units = spec.units()
+
+    def unit(quantity: str) -> str:
+        return f" ({units[quantity]})" if units[quantity] else ""
+
+    tu = unit("time")
 
     def fig(s: Section, name: str) -> None:
         if name in figures:
@@ -114,8 +118,8 @@ def build_sections(result: AnalysisResult, record_view: dict[str, Any],
          f"{per.min()} / {np.median(per):g} / {per.max()}"],
         ["components chosen", f"{fit.n_components} (rule: {fit.selection.rule})"],
         ["FVE of the chosen components", f"{fit.cumulative_fve[fit.n_components - 1]:.3f}"],
-        ["error variance, maximum likelihood" + vu, fit.error_variance],
-        ["error variance, smoothing estimate (starting point)" + vu,
+        ["error variance, maximum likelihood" + unit("error variance"), fit.error_variance],
+        ["error variance, smoothing estimate (starting point)" + unit("error variance"),
          fit.smoothing_error_variance],
         ["mean bandwidth" + tu, f"{fit.mean_bandwidth:.4g} ({fit.mean_bandwidth_choice.method})"],
         ["covariance bandwidth" + tu,
@@ -140,9 +144,18 @@ def build_sections(result: AnalysisResult, record_view: dict[str, Any],
     b.table(s, f"Eigenvalues and fraction of variance explained (FVE). The first {n_ref} are "
             "maximum likelihood estimates (the surface's values beside them); the rest are "
             "the surface's.",
-            ["component", "eigenvalue", "surface eigenvalue", "FVE", "cumulative FVE"],
+            ["component", "eigenvalue" + unit("eigenvalue"),
+             "surface eigenvalue" + unit("eigenvalue"), "FVE", "cumulative FVE"],
             [[k + 1, fit.all_eigenvalues[k], fit.surface_eigenvalues[k], fit.fve[k],
               fit.cumulative_fve[k]] for k in range(min(fit.all_eigenvalues.size, 10))])
+    span = float(fit.grid[-1] - fit.grid[0])
+    b.text(s, "An eigenvalue is the variance of a component's score. The eigenfunctions have "
+           "unit norm over the whole time domain, so eigenvalues scale with its length "
+           f"({span:.4g}{' ' + units['time'] if units['time'] else ''}): eigenvalue / "
+           "domain length is the average variance the component adds to a single reading"
+           f"{unit('error variance')}; for the first component here "
+           f"{fit.eigenvalues[0] / span:.4g}, beside an error variance of "
+           f"{fit.error_variance:.4g}.")
     b.text(s, f"{fit.all_eigenvalues.size} eigenvalues of the smoothed surface are positive; "
            f"{fit.dropped_eigenvalues} negative or numerically zero ones were dropped (the "
            f"negative ones sum to {fit.dropped_negative_sum:.3g}, "
@@ -159,13 +172,30 @@ def build_sections(result: AnalysisResult, record_view: dict[str, Any],
     fig(s, "eigenfunctions")
     fig(s, "effects")
     s = b.section("scores", "Scores", "Where each subject sits on the components.")
-    flagged = result.outliers[result.outliers.flagged]
+    flagged = result.outliers[result.outliers.flagged].sort_values("distance2",
+                                                                  ascending=False)
+    named = ", ".join(f"{sid} ({d2:.3g})" for sid, d2 in
+                      zip(flagged.subject.astype(str), flagged.distance2, strict=True))
     b.text(s, f"Rule: a subject is flagged when its squared Mahalanobis distance of the scores "
-           f"exceeds the chi-square({fit.n_components}) quantile "
-           f"{spec.subjects['outlier_quantile']:g}; {len(flagged)} subject(s) flagged.")
+           f"exceeds the {spec.subjects['outlier_quantile']:g} quantile of the "
+           f"chi-square({fit.n_components}) distribution; {len(flagged)} subject(s) flagged"
+           + (f": {named} (squared distance in brackets)" if named else "")
+           + ". Distances and flags of every subject: tables/scores.csv.")
     fig(s, "scores")
     s = b.section("trajectories", "Trajectories", "Recovered curves of selected subjects with "
-                  "their readings and pointwise bands.")
+                  "their readings and bands.")
+    chosen = list(map(str, spec.subjects["show"]))
+    b.text(s, "Subjects shown: " + (f"{', '.join(chosen)} as listed in subjects.show; then "
+                                    if chosen else "")
+           + "the rest of the "
+           f"{spec.subjects['count']} at even steps through all subjects ordered by number of "
+           "readings, then id (from the fewest readings to the most), so that sparse and dense "
+           f"subjects both appear: {', '.join(result.shown_subjects)}. Inner band: pointwise "
+           f"{fit.options.band_level:.0%} ("
+           + ("corrected for the estimation of the population quantities by "
+              f"{len(fit.replicates)} resamples of subjects" if fit.replicates else
+              "plug-in: mean, eigenfunctions and variances taken as known")
+           + "); outer band: simultaneous over the whole curve.")
     fig(s, "trajectories")
     s = b.section("residuals", "Residual diagnostics", "Whether the readings scatter around the "
                   "fitted curves as the model assumes.")
@@ -173,10 +203,14 @@ def build_sections(result: AnalysisResult, record_view: dict[str, Any],
     summary = result.residual_summary
     worst = summary.sort_values(["rms_standardized", "subject"], ascending=[False, True]).head(10)
     rms = summary.rms_standardized
-    b.text(s, f"Per subject, the root mean square of the standardized residuals has median "
-           f"{rms.median():.3g} and 90th percentile {rms.quantile(0.9):.3g} (about 1 is "
-           "expected when the error variance fits); the full list is tables/"
-           "residuals_by_subject.csv.")
+    b.text(s, "Each residual (reading minus fitted trajectory) is divided by its own standard "
+           "deviation under the fitted model, which is smaller than the error standard "
+           "deviation because the trajectory was fitted to the same readings; so about 1 is "
+           "expected when the model fits. Per subject, the root mean square of the "
+           f"standardized residuals has median {rms.median():.3g} and 90th percentile "
+           f"{rms.quantile(0.9):.3g}; the Spearman correlation of their size with the fitted "
+           f"value is {spread_trend(result.residuals):.2f} (near 0 expected). The full list is "
+           "tables/residuals_by_subject.csv.")
     b.table(s, f"The {len(worst)} subjects with the largest RMS standardized residual.",
             ["subject", "readings", "mean residual", "RMS standardized"],
             [[r.subject, r.n_obs, r.mean_residual, r.rms_standardized]
@@ -189,17 +223,21 @@ def build_sections(result: AnalysisResult, record_view: dict[str, Any],
     for run in result.sensitivity:
         rows.append([run.factor, run.mean_bandwidth, run.covariance_bandwidth,
                      run.diagonal_bandwidth,
-                     rule_choice(run.fit, rule, fve_threshold) if run.fit else "failed",
+                     rule_choice(run.fit, rule, fve_threshold) if run.fit else "—",
                      run.fit.error_variance if run.fit else float("nan"),
-                     ", ".join(_fmt(x) for x in run.similarity) or run.error[:80]])
+                     ", ".join(_fmt(x) for x in run.similarity)
+                     or f"not computed: {run.error}"])
     b.table(s, "Key estimates per bandwidth setting: K is the number of components the rule "
             f"({rule}) picks at that setting; similarity is |inner product| of each of the main "
             "fit's eigenfunctions with the same component of that setting.",
             ["factor", "mean bw", "covariance bw", "diagonal bw", "K", "error variance",
              "similarity"], rows)
-    b.table(s, f"Verdict per component (stable when every similarity is at least {thr:g}).",
-            ["component", "verdict"],
-            [[k + 1, "stable" if ok else "not stable"] for k, ok in enumerate(result.stable)])
+    b.text(s, result.factors_note + " A setting that could not be computed is shown as not "
+           "computed with its reason and does not enter the verdict.")
+    b.table(s, f"Verdict per component (stable when every similarity of the computed settings "
+            f"is at least {thr:g}).", ["component", "verdict"],
+            [[k + 1, {True: "stable", False: "not stable", None: "not assessed (no setting "
+                      "could be computed)"}[ok]] for k, ok in enumerate(result.stable)])
     fig(s, "sensitivity")
     fig(s, "bandwidths")
     s = b.section("caveats", "Caveats", "What could be wrong with these results, and how to "
@@ -208,6 +246,9 @@ def build_sections(result: AnalysisResult, record_view: dict[str, Any],
     s = b.section("reproducibility", "Reproducibility", "How to re-run this analysis and "
                   "confirm by hash that nothing changed.")
     b.table(s, "Record.", ["item", "value"], [[k, v] for k, v in record_view["items"]])
+    b.text(s, "Across machines the numbers reproduce (verify compares every table within a "
+           "relative 1e-6); the rendered HTML, figures and PDF reproduce byte for byte only "
+           "with the same fonts and library versions (the environment above).")
     b.text(s, record_view["commands"], kind="pre")
     b.text(s, spec.raw.decode("utf-8"), kind="pre")
     return b.sections

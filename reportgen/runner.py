@@ -18,11 +18,12 @@ from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
 
+from . import __version__
 from .analysis import AnalysisResult, analyse
 from .data import load_dataset, require_passed
 from .errors import OutputError
 from .integrity import SUMS, checksum_list, sha256_bytes
-from .record import build_record, dump_record
+from .record import build_record, dump_record, environment
 from .render import render_html, render_pdf
 from .spec import Spec, load_spec
 from .tables import build_tables, canonical_bytes, results_digest
@@ -59,8 +60,9 @@ class Timer:
         self._last = now
 
 
-def build_outputs(spec: Spec, version: int, progress: Progress = lambda _: None,
-                  timer: Timer | None = None, render: bool = True) -> Built:
+def build_outputs(spec: Spec, version: int, started: str,
+                  progress: Progress = lambda _: None, timer: Timer | None = None,
+                  render: bool = True) -> Built:
     """Every output except record.json and report.pdf (which depend on the record).
 
     With ``render=False`` only the tables (and spec.yaml) are built: what ``verify``
@@ -81,8 +83,14 @@ def build_outputs(spec: Spec, version: int, progress: Progress = lambda _: None,
 
     figures = make_figures(result)
     clock.lap("figures")
+    env = environment()
+    packages = ", ".join(f"{name} {env['packages'][name]}" for name in
+                         ("numpy", "scipy", "pandas", "matplotlib", "weasyprint"))
     record_view = {
         "items": [
+            ("tool", f"reportgen {__version__}"),
+            ("run started (UTC)", started),
+            ("environment", f"Python {env['python']} on {env['platform']}; {packages}"),
             ("spec sha256", spec.sha256),
             (f"data sha256 ({dataset.relpath})", dataset.sha256),
             ("data bytes / rows", f"{dataset.n_bytes} / {dataset.rows_read}"),
@@ -146,7 +154,7 @@ def run_spec(spec_path: str | Path, out: str | Path, progress: Progress = lambda
         final = folder / f"v{version:03d}"
         source = os.path.relpath(spec.path, final.resolve())
         started = _timestamp()
-        built = build_outputs(spec, version, progress, timer)
+        built = build_outputs(spec, version, started, progress, timer)
         for name, data in built.files.items():
             _write(building / name, data)
         outputs = {name: sha256_bytes(data) for name, data in built.files.items()}

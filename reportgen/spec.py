@@ -77,6 +77,24 @@ class Spec:
     def report_id(self) -> str:
         return str(self.report["id"])
 
+    def units(self) -> dict[str, str]:
+        """The unit of each reported quantity, from the value unit u and time unit T.
+
+        With eigenfunctions of unit L2 norm over the time domain (unit 1/sqrt(T)), a score
+        carries u sqrt(T) and an eigenvalue (a score variance) u^2 T. Empty where the spec
+        gives no unit.
+        """
+        u, t = self.value_unit, self.data["time_unit"]
+        uu = f"({u})^2" if u and not u.isalnum() else (f"{u}^2" if u else "")
+        root_t = f"sqrt({t})" if t else ""
+        return {
+            "time": t, "value": u, "mean": u, "error variance": uu, "bandwidth": t,
+            "eigenvalue": " x ".join(x for x in (uu, t) if x),
+            "eigenfunction": f"1/{root_t}" if t else "",
+            "score": " x ".join(x for x in (u, root_t) if x),
+            "covariance": uu, "residual": u, "standardized residual": "none (ratio)",
+        }
+
     @property
     def value_unit(self) -> str:
         """The unit of the analysed values: the data's unit under the spec's transform."""

@@ -46,6 +46,8 @@ def build_tables(result: AnalysisResult) -> dict[str, pd.DataFrame]:
     tables["eigenfunctions"] = ef
     scores = fit.scores.reset_index()
     scores["subject"] = scores["subject"].astype(str)
+    scores["distance2"] = result.outliers.distance2.to_numpy()
+    scores["flagged"] = result.outliers.flagged.to_numpy()
     tables["scores"] = scores
     tables["trajectories"] = fit.trajectories(
         [s for s in fit.subjects if str(s) in set(result.shown_subjects)]
@@ -86,6 +88,8 @@ def build_tables(result: AnalysisResult) -> dict[str, pd.DataFrame]:
         rows.append(row)
     tables["sensitivity"] = pd.DataFrame(rows)
     tables["residuals_by_subject"] = result.residual_summary
+    tables["units"] = pd.DataFrame(sorted(result.spec.units().items()),
+                                   columns=["quantity", "unit"])
     return tables
 
 

@@ -178,7 +178,8 @@ def _inputs_and_numbers(run: Path, record: dict[str, Any], out: Verification,
     if inputs is not None:
         spec = replace(spec, data_location=located[0][1])
     progress("re-running the recorded spec")
-    built = build_outputs(spec, int(record["run"]["version"]), progress, render=render)
+    built = build_outputs(spec, int(record["run"]["version"]), str(record["run"]["started"]),
+                          progress, render=render)
     out.rebuilt = built
     same_digest = built.results_sha256 == record["results_sha256"]
     out.add("numbers", "results sha256 (exact)", record["results_sha256"][:16],

@@ -71,7 +71,8 @@ def test_text_from_the_spec_is_escaped(tmp_path: Path) -> None:
     (tmp_path / "s.yaml").write_text(spec_text)
     (tmp_path / "clinic_visits.csv").write_bytes((ROOT / "specs" / "clinic_visits.csv")
                                                  .read_bytes())
-    html = build_outputs(load_spec(tmp_path / "s.yaml"), 1).files["report.html"].decode()
+    built = build_outputs(load_spec(tmp_path / "s.yaml"), 1, "2026-01-01T00:00:00Z")
+    html = built.files["report.html"].decode()
     assert "<script" not in html and "<img" not in html
     assert "&lt;script&gt;alert(1)&lt;/script&gt; &amp; &lt;b&gt;bold&lt;/b&gt;" in html
 

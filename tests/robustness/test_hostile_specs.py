@@ -84,7 +84,8 @@ def test_markup_in_every_free_text_field_is_inert(workdir: Path) -> None:
     data = data.replace("patient,", "<i>patient</i>,", 1).replace("P004,", "<script>P4,")
     (workdir / "clinic_visits.csv").write_text(data)
     (workdir / "s.yaml").write_text(text)
-    html = build_outputs(load_spec(workdir / "s.yaml"), 1).files["report.html"].decode()
+    built = build_outputs(load_spec(workdir / "s.yaml"), 1, "2026-01-01T00:00:00Z")
+    html = built.files["report.html"].decode()
     for raw in ("<script", "<img", "<i>", "<b>u", "onerror=alert(2)>"):
         assert raw not in html, raw
     assert "&lt;script&gt;alert(1)&lt;/script&gt;" in html
