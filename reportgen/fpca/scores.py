@@ -92,6 +92,14 @@ class SampleTerms:
     resid: FloatArray
     owner: IntArray
 
+    def subjects(self, rows: IntArray) -> SampleTerms:
+        """The terms of the subjects at ``rows`` (increasing) only."""
+        s = self.sums
+        keep = np.isin(self.owner, rows)
+        owner = np.searchsorted(rows, self.owner[keep])
+        return SampleTerms(SubjectSums(s.gram[rows], s.cross[rows], s.rr[rows], s.n_obs[rows]),
+                           self.phi[keep], self.resid[keep], owner)
+
     def reorder(self, order: IntArray) -> SampleTerms:
         """The same terms with the components taken in ``order``."""
         s = self.sums
@@ -134,7 +142,10 @@ def loo_errors(terms: SampleTerms, params: list[tuple[FloatArray, float]]) -> Fl
         return loo
     for k0, (lam, s2) in enumerate(params):
         k = k0 + 1
-        a_inv = np.linalg.inv(terms.sums.gram[:, :k, :k] / s2 + np.diag(1.0 / lam))
+        # A^-1 = D (I + D G D / s2)^-1 D with D = diag(sqrt lambda): valid at lambda_k = 0
+        root = np.sqrt(lam)
+        h = np.eye(k) + root[:, None] * terms.sums.gram[:, :k, :k] * root[None, :] / s2
+        a_inv = root[:, None] * np.linalg.inv(h) * root[None, :]
         a_c = np.einsum("nij,nj->ni", a_inv, terms.sums.cross[:, :k])  # A^-1 Phi' r
         pk, own = phi[multi, :k], owner[multi]
         sinv_r = r[multi] / s2 - np.sum(pk * a_c[own], axis=1) / s2**2
