@@ -172,6 +172,32 @@ def clinic() -> tuple[float, float]:
     return fit.error_variance, fit.smoothing_error_variance
 
 
+NOTES = [
+    "How to read it:",
+    "",
+    "- The smoothing estimate of sigma^2 (a difference of two smoothed curves) is only the "
+    "starting point of the likelihood refinement; 'not positive' counts fits where it was 0 "
+    "or below. No fit is floored.",
+    "- 'K by ...' lists K:count over the seeds. AIC and cv pick more components than the "
+    "designs have, BIC less so: the eigenfunctions are estimated from the same data, and "
+    "extra ones absorb real variance their estimated shapes miss (cf. Li, Wang & Carroll "
+    "2013, JASA 108:1284-1294, on criteria for the number of components; from memory). FVE "
+    "stays the default rule; the report says when the rules disagree.",
+    "- Plug-in bands take the population quantities as known; corrected bands add their "
+    "estimation by refits on resampled subjects (Goldsmith, Greven & Crainiceanu 2013). "
+    "Simultaneous bands use the chi-square quantile over the components; the share of whole "
+    "curves inside them is their coverage. The default band is the plug-in one: it reaches "
+    "nominal pointwise coverage in B, C and D and 0.91 in the sparsest design A, at no cost; "
+    "the corrected band reaches 0.95 there for 50 refits.",
+    "- The mean's bands are cluster-robust but leave out smoothing bias, which shows in A "
+    "(a sin 2 pi t mean seen through 600 readings).",
+    "- 'cov. bandwidth at top' counts fits whose covariance bandwidth is the largest "
+    "candidate (half the domain). In D the true covariance is bilinear in (s, t), which a "
+    "wide local linear fit reproduces; in C the surface is nearly flat. The refined sigma^2 "
+    "no longer depends on that bandwidth (see the factors table).",
+]
+
+
 def main(seeds: int = 20, write: bool = False) -> str:
     start = time.perf_counter()
     lines = ["# Accuracy against known truth", "",
@@ -209,7 +235,7 @@ def main(seeds: int = 20, write: bool = False) -> str:
     est, smooth = clinic()
     lines += ["", f"Clinic example (specs/clinic_visits.yaml; generating sigma^2 2.25): refined "
               f"{est:.3f}, smoothing estimate {smooth:.3f}.", "",
-              f"Wall time {time.perf_counter() - start:.0f} s."]
+              f"Wall time {time.perf_counter() - start:.0f} s.", "", *NOTES]
     text = "\n".join(lines) + "\n"
     if write:
         (ROOT / "benchmarks" / "ACCURACY.md").write_text(text, encoding="utf-8")
