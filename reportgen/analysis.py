@@ -104,7 +104,9 @@ def _sensitivity(spec: Spec, codes: np.ndarray, t: np.ndarray, y: np.ndarray,
         hm, hc = factor * fit.mean_bandwidth, factor * fit.covariance_bandwidth
         hd = factor * fit.diagonal_bandwidth
         progress(f"sensitivity: bandwidths x {factor:g}")
-        options = replace(with_bandwidths(fit.options, hm, hc, hd), component_rule="fixed",
+        # Plug-in bands: the sensitivity fits are compared by their estimates, not bands.
+        options = replace(with_bandwidths(fit.options, hm, hc, hd), band="plugin",
+                          component_rule="fixed",
                           n_components=fit.n_components)
         try:
             try:

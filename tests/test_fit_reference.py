@@ -245,3 +245,21 @@ def test_retained_covariance_is_psd_and_bands_nest(yao_fit) -> None:  # type: ig
         np.sqrt(stats.chi2.ppf(0.95, dof)), rel=1e-10)
     assert fit.band_multiplier(0.95) == pytest.approx(stats.norm.ppf(0.975), rel=1e-12)
     assert stats.norm.ppf(0.975) < fit.mean_simultaneous_multiplier < 4.0
+
+
+def test_corrected_band_adds_the_estimation_uncertainty() -> None:
+    # Goldsmith, Greven & Crainiceanu (2013, Biometrics 69:41-51): the corrected variance is
+    # the mean over resamples of the conditional variance plus the variance over resamples of
+    # the conditional mean, so on a small sparse design the band is wider on average than the
+    # plug-in band, and each replicate keeps the main fit's K and bandwidths.
+    frame = yao_design(150, seed=4)
+    plug = fit_sparse_fpca(frame, subject="id", time="t", value="y")
+    corr = fit_sparse_fpca(frame, subject="id", time="t", value="y", band="corrected",
+                           bootstrap_replicates=12)
+    assert plug.band_kind() == "plugin" and corr.band_kind() == "corrected"
+    assert 10 <= len(corr.replicates) <= 12  # a resample that cannot be fitted is skipped
+    assert all(r.eigenfunctions.shape[1] == corr.n_components for r in corr.replicates)
+    ids = list(plug.subjects[:20])
+    wp, wc = plug.trajectories(ids), corr.trajectories(ids)
+    np.testing.assert_allclose(wp.fitted, wc.fitted)  # same centre
+    assert float(np.mean(wc.upper - wc.lower)) > float(np.mean(wp.upper - wp.lower))

@@ -135,7 +135,7 @@ class FPCAFit:
         Components that the likelihood gives no variance are left out.
     surface_eigenvalues : ndarray of shape (n_all,)
         The smoothed surface's eigenvalue of each component of ``all_eigenvalues``.
-    fve : ndarray of shape (n_positive,)
+    fve : ndarray of shape (n_all,)
     error_variance : float
         Maximum likelihood measurement-error variance (the estimate used everywhere).
     smoothing_error_variance : float
