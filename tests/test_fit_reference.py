@@ -263,3 +263,29 @@ def test_corrected_band_adds_the_estimation_uncertainty() -> None:
     wp, wc = plug.trajectories(ids), corr.trajectories(ids)
     np.testing.assert_allclose(wp.fitted, wc.fitted)  # same centre
     assert float(np.mean(wc.upper - wc.lower)) > float(np.mean(wp.upper - wp.lower))
+
+
+def test_selection_sentences_appear_exactly_when_true(yao_fit) -> None:  # type: ignore[no-untyped-def]
+    # The disagreement sentence quotes each rule's pick; each must equal the argmin of its
+    # criterion in the selection table (or the FVE rule's pick), and the sentence must be
+    # absent when all picks agree. The threshold sentence appears only within 0.01.
+    from reportgen.analysis import _selection_caveats
+
+    fit = yao_fit
+    sel = fit.selection
+    picks = {"FVE": fit.n_components, "AIC": int(sel.k[np.nanargmin(sel.aic)]),
+             "BIC": int(sel.k[np.nanargmin(sel.bic)]), "cv": int(sel.k[np.nanargmin(sel.cv)])}
+    text = " ".join(_selection_caveats(fit))
+    if len(set(picks.values())) > 1:
+        assert ", ".join(f"{r} {k}" for r, k in picks.items()) in text
+    else:
+        assert "disagree" not in text
+    near = abs(fit.cumulative_fve[fit.n_components - 1] - 0.95) < 0.01
+    assert ("within 0.01 of the threshold" in text) == near
+
+    frame = yao_design(2000, seed=0)
+    threshold = float(round(fit.cumulative_fve[1] - 0.004, 4))
+    close = fit_sparse_fpca(frame, subject="id", time="t", value="y", fve_threshold=threshold)
+    text = " ".join(_selection_caveats(close))
+    assert close.n_components == 2
+    assert f"{close.cumulative_fve[1]:.3f}, is within 0.01 of the threshold {threshold:g}" in text
