@@ -50,6 +50,7 @@ from .smoothing import (
     BinGrid,
     FloatArray,
     Kernel,
+    design_conditioning_2d,
     equivalent_kernel_1d,
     get_kernel,
     hat_diagonal_1d,
@@ -148,6 +149,9 @@ class FPCAFit:
         the part of a trajectory that K components leave out (added to the bands).
     mean_simultaneous_multiplier : float
         Multiplier of ``mean_se`` for a simultaneous band over the grid at ``band_level``.
+    diagonal_support : ndarray of shape (n_grid,)
+        ``smoothing.design_conditioning_2d`` of the covariance smoother on the diagonal:
+        near 0 where few, lopsided pairs of readings carry the surface.
     n_components : int
     mean_bandwidth, covariance_bandwidth, diagonal_bandwidth : float
     mean_bandwidth_choice, covariance_bandwidth_choice, diagonal_bandwidth_choice
@@ -188,6 +192,7 @@ class FPCAFit:
     likelihood: LikelihoodFit
     truncation_variance: FloatArray
     mean_simultaneous_multiplier: float
+    diagonal_support: FloatArray
     n_components: int
     mean_bandwidth_choice: BandwidthChoice
     covariance_bandwidth_choice: BandwidthChoice
@@ -612,6 +617,8 @@ def fit_arrays(
         truncation_variance=_frozen(truncation),
         mean_simultaneous_multiplier=np.nan if population_only else _sup_multiplier(
             mean_cov, options.band_level, options.seed),
+        diagonal_support=_frozen(design_conditioning_2d(
+            grid, cbins.centers, pstats.offdiag.total().counts[0], cov_choice.value, kernel)),
         n_components=k, mean_bandwidth_choice=mean_choice,
         covariance_bandwidth_choice=cov_choice, diagonal_bandwidth_choice=diag_choice,
         selection=selection,

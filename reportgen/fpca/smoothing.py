@@ -232,6 +232,26 @@ def hat_diagonal_2d(
         return k0 * k0 * c0 / det
 
 
+def design_conditioning_2d(
+    eval_x: FloatArray, centers: FloatArray, counts: FloatArray, h: float,
+    kernel: Kernel = epanechnikov,
+) -> FloatArray:
+    """How far from singular the 2-D local linear design is at each diagonal point (x, x).
+
+    The determinant of the 3 x 3 local design matrix over the product of its diagonal
+    moments (scale-free; 1 for a design balanced around the point, 0 for a singular one),
+    on the diagonal of ``eval_x x eval_x``, shape (n_eval,). Near 0 the local fit rests on
+    few, lopsided pairs and its estimate is unstable.
+    """
+    zeros = np.zeros_like(counts)
+    s00, s10, s01, s20, s11, s02, *_ = _moments_2d(eval_x, centers, counts, zeros, h, kernel,
+                                                    True)
+    *_, det = _cofactors(s00, s10, s01, s20, s11, s02)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        ratio = np.diagonal(det / (s00 * s20 * s02))
+    return np.where(np.isfinite(ratio), ratio, 0.0)
+
+
 def local_linear_exact_1d(
     eval_x: FloatArray, x: FloatArray, y: FloatArray, h: float,
     kernel: Kernel = epanechnikov, weights: FloatArray | None = None,
