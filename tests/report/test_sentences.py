@@ -1,0 +1,93 @@
+"""Generated sentences appear exactly when they are true, and quote the tables' numbers.
+
+Cases are built from the invented clinic example (specs/clinic_visits.yaml) by editing its
+spec or its data; the analysis runs in-process (no rendering).
+"""
+
+from __future__ import annotations
+
+import re
+import shutil
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from reportgen.analysis import AnalysisResult, analyse
+from reportgen.data import load_dataset
+from reportgen.spec import load_spec
+
+ROOT = Path(__file__).resolve().parents[2]
+
+
+def _analyse(tmp_path: Path, name: str, spec_edit: tuple[str, str] = ("", ""),
+             data: pd.DataFrame | None = None) -> AnalysisResult:
+    folder = tmp_path / name
+    folder.mkdir()
+    text = (ROOT / "specs" / "clinic_visits.yaml").read_text()
+    if spec_edit[0]:
+        assert spec_edit[0] in text
+        text = text.replace(*spec_edit)
+    (folder / "s.yaml").write_text(text)
+    if data is None:
+        shutil.copy(ROOT / "specs" / "clinic_visits.csv", folder / "clinic_visits.csv")
+    else:
+        data.to_csv(folder / "clinic_visits.csv", index=False)
+    spec = load_spec(folder / "s.yaml")
+    return analyse(spec, load_dataset(spec))
+
+
+@pytest.fixture(scope="module")
+def base(tmp_path_factory: pytest.TempPathFactory) -> AnalysisResult:
+    return _analyse(tmp_path_factory.mktemp("base"), "base")
+
+
+def test_setting_not_computed_is_said_with_its_reason(tmp_path: Path) -> None:
+    res = _analyse(tmp_path, "infeasible",
+                   ("factors: [0.5, 0.75, 1.5, 2.0]", "factors: [0.02, 1.5]"))
+    failed = [r for r in res.sensitivity if r.fit is None]
+    assert [r.factor for r in failed] == [0.02]
+    caveat = next(c for c in res.caveats if c.startswith("Sensitivity settings not computed"))
+    assert failed[0].error in caveat and caveat.endswith(".")  # the full reason, not cut
+    assert "Factors as given in the spec." == res.factors_note
+    ran = [r for r in res.sensitivity if r.fit is not None]
+    for k, verdict in enumerate(res.stable):
+        assert verdict == all(r.similarity[k] >= 0.9 for r in ran)
+
+
+def test_all_settings_computed_no_not_computed_sentence(base: AnalysisResult) -> None:
+    assert all(r.fit is not None for r in base.sensitivity)
+    assert not any("not computed" in c for c in base.caveats)
+
+
+def test_error_variance_share_sentence(base: AnalysisResult) -> None:
+    share = base.fit.error_variance / float(np.mean(base.fit.diagonal_variance))
+    sentence = [c for c in base.caveats if c.startswith("The error variance is")]
+    assert bool(sentence) == (share < 0.1)
+    if sentence:
+        assert f"{share:.1%} of the variance of single readings" in sentence[0]
+
+
+def test_single_reading_sentence(base: AnalysisResult, tmp_path: Path) -> None:
+    claim = "subjects have one reading"
+    single = int(np.sum(base.fit.n_obs == 1))
+    assert (any(claim in c for c in base.caveats)) == (single > 0.2 * base.fit.n_subjects)
+    data = pd.read_csv(ROOT / "specs" / "clinic_visits.csv")
+    patients = sorted(data.patient.unique())
+    thin = set(patients[::2])  # every second patient keeps only the first visit
+    first = data.groupby("patient").head(1)
+    data = pd.concat([first[first.patient.isin(thin)], data[~data.patient.isin(thin)]])
+    res = _analyse(tmp_path, "singles", data=data)
+    n_single = int(np.sum(res.fit.n_obs == 1))
+    sentence = next(c for c in res.caveats if claim in c)
+    assert sentence.startswith(f"{n_single} of {res.fit.n_subjects} subjects have one reading")
+
+
+def test_stability_sentence_quotes_the_similarities(base: AnalysisResult) -> None:
+    for k, verdict in enumerate(base.stable):
+        sentence = [c for c in base.caveats if c.startswith(f"Component {k + 1} changes")]
+        assert bool(sentence) == (verdict is False)
+        for quoted in re.findall(r"x([0-9.]+): ([0-9.]+)", " ".join(sentence)):
+            run = next(r for r in base.sensitivity if f"{r.factor:g}" == quoted[0])
+            assert f"{run.similarity[k]:.3f}" == quoted[1]
