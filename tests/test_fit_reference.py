@@ -289,3 +289,26 @@ def test_selection_sentences_appear_exactly_when_true(yao_fit) -> None:  # type:
     text = " ".join(_selection_caveats(close))
     assert close.n_components == 2
     assert f"{close.cumulative_fve[1]:.3f}, is within 0.01 of the threshold {threshold:g}" in text
+
+
+def test_fit_warnings_appear_exactly_when_true(yao_fit) -> None:  # type: ignore[no-untyped-def]
+    # Each bandwidth sentence appears iff the chosen bandwidth is the smallest or largest
+    # feasible candidate of its criterion table; the dropped-eigenvalue sentence iff the
+    # negative ones exceed 1% of the positive total, quoting the fit's own numbers.
+    fit = yao_fit
+    text = " ".join(fit.warnings)
+    for what, choice in (("mean", fit.mean_bandwidth_choice),
+                         ("covariance", fit.covariance_bandwidth_choice),
+                         ("diagonal", fit.diagonal_bandwidth_choice)):
+        feasible = [h for h, c in zip(choice.candidates, choice.criterion, strict=True)
+                    if np.isfinite(c)]
+        low = choice.value == min(feasible)
+        high = choice.value == max(feasible)
+        assert (f"the {what} bandwidth {choice.value:.4g} is the smallest" in text) == low
+        assert (f"the {what} bandwidth {choice.value:.4g} is the largest" in text) == high
+    material = fit.dropped_negative_sum > 0.01 * fit.surface_eigenvalues.sum()
+    sentence = f"{fit.dropped_eigenvalues} non-positive eigenvalues of the covariance surface"
+    assert (sentence in text) == material
+    if material:
+        assert f"negative ones sum to {fit.dropped_negative_sum:.3g}" in text
+    assert "likelihood refinement stopped" not in text and fit.likelihood.converged
