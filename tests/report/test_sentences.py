@@ -91,3 +91,28 @@ def test_stability_sentence_quotes_the_similarities(base: AnalysisResult) -> Non
         for quoted in re.findall(r"x([0-9.]+): ([0-9.]+)", " ".join(sentence)):
             run = next(r for r in base.sensitivity if f"{r.factor:g}" == quoted[0])
             assert f"{run.similarity[k]:.3f}" == quoted[1]
+
+
+def test_error_variance_share_sentence_absent_when_noise_is_large(tmp_path: Path) -> None:
+    data = pd.read_csv(ROOT / "specs" / "clinic_visits.csv")
+    rng = np.random.default_rng(3)
+    data["marker"] = (data.marker + rng.normal(0, 4.0, len(data))).round(2)  # sd 4 noise
+    res = _analyse(tmp_path, "noisy", data=data)
+    share = res.fit.error_variance / float(np.mean(res.fit.diagonal_variance))
+    assert share >= 0.1
+    assert not any(c.startswith("The error variance is") for c in res.caveats)
+
+
+def test_time_pair_coverage_sentence(base: AnalysisResult, tmp_path: Path) -> None:
+    claim = "Parts of the time-pair square have no pairs of readings"
+    check = next(c for c in base.dataset.checks if c.name == "time-pair coverage")
+    assert (any(c.startswith(claim) for c in base.caveats)) == (check.status == "warn")
+    data = pd.read_csv(ROOT / "specs" / "clinic_visits.csv")
+    early = sorted(data.patient.unique())[::2]  # half the patients seen only early, half late
+    data = data[(data.patient.isin(early) & (data.week < 70))
+                | (~data.patient.isin(early) & (data.week > 30))]  # no (early, late) pairs
+    res = _analyse(tmp_path, "split", data=data)
+    check = next(c for c in res.dataset.checks if c.name == "time-pair coverage")
+    assert check.status == "warn"
+    sentence = next(c for c in res.caveats if c.startswith(claim))
+    assert check.detail in sentence
