@@ -222,6 +222,9 @@ def test_refined_estimates_on_the_yao_design(yao_fit) -> None:  # type: ignore[n
     assert np.all(np.diff(fit.likelihood.eigenvalues) <= 0)
     assert fit.likelihood.converged
     assert fit.all_eigenvalues[: fit.n_components] == pytest.approx(fit.eigenvalues)
+    # The starting-point sentence is absent when the smoothing estimate is positive.
+    assert fit.smoothing_error_variance > 0
+    assert not any("not positive" in w for w in fit.warnings)
     assert np.sum(fit.fve) == pytest.approx(1.0)
 
 
