@@ -315,3 +315,36 @@ def test_fit_warnings_appear_exactly_when_true(yao_fit) -> None:  # type: ignore
     if material:
         assert f"negative ones sum to {fit.dropped_negative_sum:.3g}" in text
     assert "likelihood refinement stopped" not in text and fit.likelihood.converged
+
+
+def test_rare_fit_sentences_appear_when_triggered(monkeypatch: pytest.MonkeyPatch) -> None:
+    # The non-convergence and skipped-resample sentences, forced: the likelihood given one
+    # iteration, and every third resample refused. Each quotes the counts it reports.
+    import reportgen.fpca.fit as fitmod
+
+    frame = yao_design(150, seed=6)
+    real_max = fitmod.maximise
+    monkeypatch.setattr(fitmod, "maximise",
+                        lambda sums, lam, s2, **kw: real_max(sums, lam, s2, max_iter=1))
+    fit = fit_sparse_fpca(frame, subject="id", time="t", value="y")
+    assert not fit.likelihood.converged
+    assert any(f"stopped after {fit.likelihood.iterations} iterations" in w
+               for w in fit.warnings)
+    monkeypatch.setattr(fitmod, "maximise", real_max)
+
+    real_fit = fitmod.fit_arrays
+    calls = {"n": 0}
+
+    def refuse_some(*args: object, **kwargs: object) -> object:
+        if kwargs.get("population_only"):
+            calls["n"] += 1
+            if calls["n"] % 3 == 0:
+                raise EstimationError("refused for the test")
+        return real_fit(*args, **kwargs)  # type: ignore[arg-type]
+
+    monkeypatch.setattr(fitmod, "fit_arrays", refuse_some)
+    fit = fit_sparse_fpca(frame, subject="id", time="t", value="y", band="corrected",
+                          bootstrap_replicates=12)
+    assert len(fit.replicates) == 8
+    assert any("4 of 12 resamples for the corrected bands could not be fitted" in w
+               for w in fit.warnings)
