@@ -34,7 +34,6 @@ from .spec import spec_from_bytes
 
 Progress = Callable[[str], None]
 RTOL = 1e-6  # relative tolerance for numbers re-computed on another machine
-RENDERED = ("report.html", "report.pdf")
 
 
 @dataclass(frozen=True)
@@ -111,25 +110,26 @@ def verify_run(run_dir: str | Path, inputs: str | Path | None = None, render: bo
     the run has no usable record and nothing else shows tampering."""
     run = Path(run_dir)
     out = Verification()
-    damage = ""
+    damage: ReportgenError | None = None
     try:
         record: dict[str, Any] | None = load_record(run)
     except ReportgenError as e:
         if not (run / "SHA256SUMS").is_file() or not run.is_dir():
             raise
-        record, damage = None, str(e)
+        record, damage = None, e
     checked, findings = check_integrity(run, record["outputs"] if record else None)
     for f in findings:
         out.add("integrity", f"file {f.name}", "listed" if f.kind != "extra" else "-",
                 f"{f.kind}: {f.detail}", False)
     out.verdicts["integrity"] = (f"ok: all {checked} files match SHA256SUMS" if not findings
                                  else f"FAILED: {len(findings)} file problem(s)")
-    if record is None:
+    if damage is not None:
         if not findings:  # the checksum list vouches for an unreadable record: exit 2
-            raise ReportgenError(damage)
+            raise damage
         for part in ("inputs", "numbers"):
             out.verdicts[part] = f"not checked: {damage}"
         return out
+    assert record is not None
     _inputs_and_numbers(run, record, out, None if inputs is None else Path(inputs), render,
                         progress)
     _rendering(run, record, out, render, strict)

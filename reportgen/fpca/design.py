@@ -45,13 +45,19 @@ class Sample:
     def n_subjects(self) -> int:
         return int(self.starts.size)
 
-    def subset(self, rows: IntArray) -> Sample:
-        """The readings of the subjects at ``rows`` (in that order), recoded 0 .. len - 1."""
-        sizes = self.n_obs[rows]
+    def reading_index(self, rows: IntArray) -> tuple[IntArray, IntArray, IntArray]:
+        """Indices of the readings of the subjects at ``rows`` (in that order), the offset of
+        each of those subjects in them, and their reading counts."""
+        sizes = self.n_obs[rows].astype(np.intp)
         offsets = np.concatenate(([0], np.cumsum(sizes)[:-1])).astype(np.intp)
         index = np.repeat(self.starts[rows] - offsets, sizes) + np.arange(int(sizes.sum()))
+        return index, offsets, sizes
+
+    def subset(self, rows: IntArray) -> Sample:
+        """The readings of the subjects at ``rows`` (in that order), recoded 0 .. len - 1."""
+        index, offsets, sizes = self.reading_index(rows)
         codes = np.repeat(np.arange(rows.size), sizes)
-        return Sample(codes, self.t[index], self.y[index], offsets, sizes.astype(np.intp))
+        return Sample(codes, self.t[index], self.y[index], offsets, sizes)
 
     @classmethod
     def from_arrays(cls, subject: IntArray, t: FloatArray, y: FloatArray) -> Sample:

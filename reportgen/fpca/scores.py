@@ -110,10 +110,8 @@ class SampleTerms:
 def sample_terms(sample: Sample, subjects: IntArray, resid: FloatArray, grid: FloatArray,
                  eigenfunctions: FloatArray) -> SampleTerms:
     """Per-subject sums Phi'Phi, Phi'r, r'r and n of ``subjects``, and the per-reading terms."""
-    n_i = sample.n_obs[subjects]
+    idx, first, n_i = sample.reading_index(subjects)
     owner = np.repeat(np.arange(subjects.size), n_i)
-    first = np.concatenate(([0], np.cumsum(n_i)[:-1])).astype(np.intp)
-    idx = sample.starts[subjects][owner] + (np.arange(owner.size) - first[owner])
     r = resid[idx]
     phi = np.ascontiguousarray(evaluate_at(sample.t[idx], grid, eigenfunctions))
     gram, cross = subject_sums(first, r, phi)
