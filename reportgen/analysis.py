@@ -211,7 +211,9 @@ def _caveats(spec: Spec, ds: Dataset, fit: FPCAFit, runs: list[SensitivityRun],
     thr = spec.sensitivity["similarity_threshold"]
     for k, ok in enumerate(stable):
         if ok is False:
-            low = [f"x{r.factor:g}: {r.similarity[k]:.3f}" for r in runs
+            low = [f"x{r.factor:g}: {r.similarity[k]:.3f}" if np.isfinite(r.similarity[k])
+                   else f"x{r.factor:g}: absent, that fit has {r.fit.n_components} components"
+                   for r in runs
                    if r.fit is not None and np.nan_to_num(r.similarity[k]) < thr]
             out.append(f"Component {k + 1} changes when the bandwidths change (similarity "
                        f"below {thr:g} at {', '.join(low)}): interpret its shape with care.")

@@ -225,11 +225,13 @@ def build_sections(result: AnalysisResult, record_view: dict[str, Any],
                      run.diagonal_bandwidth,
                      rule_choice(run.fit, rule, fve_threshold) if run.fit else "—",
                      run.fit.error_variance if run.fit else float("nan"),
-                     ", ".join(_fmt(x) for x in run.similarity)
+                     ", ".join(_fmt(x) if np.isfinite(x) else "absent"
+                               for x in run.similarity)
                      or f"not computed: {run.error}"])
     b.table(s, "Key estimates per bandwidth setting: K is the number of components the rule "
             f"({rule}) picks at that setting; similarity is |inner product| of each of the main "
-            "fit's eigenfunctions with the same component of that setting.",
+            "fit's eigenfunctions with the same component of that setting (absent: that "
+            "setting's fit gives the component no variance; counted as not stable).",
             ["factor", "mean bw", "covariance bw", "diagonal bw", "K", "error variance",
              "similarity"], rows)
     b.text(s, result.factors_note + " A setting that could not be computed is shown as not "

@@ -348,3 +348,35 @@ def test_rare_fit_sentences_appear_when_triggered(monkeypatch: pytest.MonkeyPatc
     assert len(fit.replicates) == 8
     assert any("4 of 12 resamples for the corrected bands could not be fitted" in w
                for w in fit.warnings)
+
+
+def test_bandwidth_search_goes_past_half_the_domain_when_the_criterion_still_falls() -> None:
+    # A straight-line mean with subject intercepts: local linear smoothing reproduces a line
+    # exactly at any bandwidth (Fan & Gijbels 1996, sec. 3.2), so the mean's criterion is
+    # flat up to noise and its minimum often lies at or above half the domain. Contract: a
+    # chosen bandwidth is the largest one tried only at the search's limit (twice the
+    # domain length), with the sentence that says so; otherwise the criterion was seen to
+    # rise beyond it. Over these seeds, some searches must have gone past half the domain.
+    beyond = 0
+    for seed in range(4):
+        rng = np.random.default_rng(seed)
+        n, m = 300, 6
+        subj = np.repeat(np.arange(n), m)
+        t = rng.uniform(0, 10, subj.size)
+        y = 3.0 + 0.5 * t + rng.normal(0, 1.0, n)[subj] + rng.normal(0, 0.5, subj.size)
+        fit = fit_sparse_fpca(pd.DataFrame({"id": subj, "t": t, "y": y}), subject="id",
+                              time="t", value="y")
+        span = float(fit.grid[-1] - fit.grid[0])
+        text = " ".join(fit.warnings)
+        for what, choice in (("mean", fit.mean_bandwidth_choice),
+                             ("covariance", fit.covariance_bandwidth_choice)):
+            beyond += max(choice.candidates) > 0.5 * span * (1 + 1e-9)
+            if choice.value == max(choice.candidates):
+                assert choice.value == pytest.approx(2.0 * span)
+                assert f"the {what} bandwidth {choice.value:.4g} is the largest candidate " \
+                       "(2 x the length of the domain)" in text
+            else:
+                above = [c for h, c in zip(choice.candidates, choice.criterion, strict=True)
+                         if h > choice.value]
+                assert min(above) > min(c for c in choice.criterion if np.isfinite(c))
+    assert beyond > 0

@@ -150,3 +150,185 @@ def interpolate_columns(t: FloatArray, values: FloatArray, lower: float, width: 
         for c in range(k):
             out[j, c] = (1.0 - fr) * values[i, c] + fr * values[i + 1, c]
     return out
+
+
+# Subjects per block of the likelihood kernel: its scratch arrays (K x K x block) stay in
+# the cache, and the innermost loops run over the subjects of a block, so that the compiler
+# can use vector instructions (no reduction is reordered: results do not depend on them).
+LIKELIHOOD_BLOCK = 64
+
+
+@njit(cache=True, nogil=True, error_model="numpy")
+def likelihood_sums(gram_t: FloatArray, cross_t: FloatArray, rr: FloatArray,
+                    n_obs: FloatArray, lam: FloatArray, s2: float, derivatives: bool
+                    ) -> tuple[float, FloatArray, FloatArray, bool]:
+    """Log-likelihood, score and Fisher information of the reduced-rank model, summed over
+    subjects (the formulas are in ``likelihood``'s module docstring).
+
+    ``gram_t`` is (K, K, n) and ``cross_t`` (K, n): subjects last. Per subject, ``H = I + D G
+    D / sigma^2`` is factored by Cholesky, and ``Omega = D H^-1 D``, ``xi = Omega c /
+    sigma^2``, ``Omega G`` and ``M = (G - G Omega G / sigma^2) / sigma^2`` are formed, a
+    block of subjects at a time. Sums over subjects go into one accumulator per position
+    in the block and are added up in a fixed order at the end. Returns ``ok = False`` when
+    some ``H`` is not positive definite.
+    """
+    k, n_subj = cross_t.shape
+    nb = LIKELIHOOD_BLOCK
+    root = np.sqrt(lam)
+    chol = np.zeros((k, k, nb))
+    linv = np.zeros((k, k, nb))
+    omega = np.zeros((k, k, nb))
+    og = np.zeros((k, k, nb))
+    m = np.zeros((k, k, nb))
+    xi = np.zeros((k, nb))
+    v = np.zeros(nb)
+    cxi = np.zeros(nb)
+    acc_logdet = np.zeros(nb)
+    acc_quad = np.zeros(nb)
+    acc_score = np.zeros((k, nb))
+    acc_info = np.zeros((k, k, nb))
+    acc_cross = np.zeros((k, nb))
+    acc_resid = np.zeros(nb)
+    acc_tr = np.zeros(nb)
+    acc_tr2 = np.zeros(nb)
+    acc_p2 = np.zeros((k, nb))
+    score = np.zeros(k + 1)
+    info = np.zeros((k + 1, k + 1))
+    g = np.zeros((k, k, nb))
+    c = np.zeros((k, nb))
+    for i0 in range(0, n_subj, nb):
+        w = min(nb, n_subj - i0)
+        # the block's sums, copied to scratch: the loops below then vectorise (measured 2.6x)
+        for a in range(k):
+            for i in range(w):
+                c[a, i] = cross_t[a, i0 + i]
+            for b in range(k):
+                for i in range(w):
+                    g[a, b, i] = gram_t[a, b, i0 + i]
+        # Cholesky factor of H
+        for a in range(k):
+            for b in range(a + 1):
+                f = root[a] * root[b] / s2
+                for i in range(w):
+                    v[i] = f * g[a, b, i]
+                for j in range(b):
+                    for i in range(w):
+                        v[i] -= chol[a, j, i] * chol[b, j, i]
+                if a == b:
+                    bad = 0
+                    for i in range(w):
+                        v[i] += 1.0
+                        bad += not v[i] > 0.0
+                    if bad:
+                        return np.nan, score, info, False
+                    for i in range(w):
+                        chol[a, a, i] = np.sqrt(v[i])
+                        acc_logdet[i] += np.log(v[i])
+                else:
+                    for i in range(w):
+                        chol[a, b, i] = v[i] / chol[b, b, i]
+        # L^-1, column by column
+        for b in range(k):
+            for i in range(w):
+                linv[b, b, i] = 1.0 / chol[b, b, i]
+            for a in range(b + 1, k):
+                for i in range(w):
+                    v[i] = 0.0
+                for j in range(b, a):
+                    for i in range(w):
+                        v[i] -= chol[a, j, i] * linv[j, b, i]
+                for i in range(w):
+                    linv[a, b, i] = v[i] / chol[a, a, i]
+        # Omega = D L^-T L^-1 D
+        for a in range(k):
+            for b in range(a + 1):
+                for i in range(w):
+                    v[i] = 0.0
+                for j in range(a, k):
+                    for i in range(w):
+                        v[i] += linv[j, a, i] * linv[j, b, i]
+                f = root[a] * root[b]
+                for i in range(w):
+                    omega[a, b, i] = f * v[i]
+                    omega[b, a, i] = f * v[i]
+        for i in range(w):
+            cxi[i] = 0.0
+        for a in range(k):
+            for i in range(w):
+                v[i] = 0.0
+            for b in range(k):
+                for i in range(w):
+                    v[i] += omega[a, b, i] * c[b, i]
+            for i in range(w):
+                xi[a, i] = v[i] / s2
+                cxi[i] += c[a, i] * xi[a, i]
+        for i in range(w):
+            acc_quad[i] += (rr[i0 + i] - cxi[i]) / s2
+        if not derivatives:
+            continue
+        for i in range(w):
+            acc_resid[i] += rr[i0 + i] - 2.0 * cxi[i]
+        for a in range(k):
+            for i in range(w):
+                v[i] = 0.0
+            for b in range(k):
+                for i in range(w):
+                    v[i] += g[a, b, i] * xi[b, i]
+            for i in range(w):
+                acc_resid[i] += xi[a, i] * v[i]
+                r = (c[a, i] - v[i]) / s2
+                acc_cross[a, i] += r * r  # w_a^2
+        for a in range(k):
+            for b in range(k):
+                for i in range(w):
+                    v[i] = 0.0
+                for j in range(k):
+                    for i in range(w):
+                        v[i] += omega[a, j, i] * g[j, b, i]
+                for i in range(w):
+                    og[a, b, i] = v[i]
+        for a in range(k):
+            for i in range(w):
+                acc_tr[i] += og[a, a, i]
+            for b in range(k):
+                for i in range(w):
+                    acc_tr2[i] += og[a, b, i] * og[b, a, i]
+        for a in range(k):
+            for b in range(a + 1):
+                for i in range(w):
+                    v[i] = 0.0
+                for j in range(k):
+                    for i in range(w):
+                        v[i] += g[a, j, i] * og[j, b, i]
+                for i in range(w):
+                    x = (g[a, b, i] - v[i] / s2) / s2
+                    m[a, b, i] = x
+                    m[b, a, i] = x
+                    acc_info[a, b, i] += 0.5 * x * x
+        for a in range(k):
+            # (Phi' S^-2 Phi)_aa = (M_aa - sum_j (Omega G)_ja M_ja / s2) / s2
+            for i in range(w):
+                v[i] = 0.0
+            for j in range(k):
+                for i in range(w):
+                    v[i] += og[j, a, i] * m[j, a, i]
+            for i in range(w):
+                acc_score[a, i] -= 0.5 * m[a, a, i]
+                acc_p2[a, i] += 0.5 * (m[a, a, i] - v[i] / s2) / s2
+    n_tot = 0.0
+    for i in range(n_subj):
+        n_tot += n_obs[i]
+    loglik = -0.5 * (n_tot * (np.log(2.0 * np.pi) + np.log(s2)) + np.sum(acc_logdet)
+                     + np.sum(acc_quad))
+    if derivatives:
+        for a in range(k):
+            score[a] = 0.5 * np.sum(acc_cross[a]) + np.sum(acc_score[a])
+            info[a, k] = np.sum(acc_p2[a])
+            info[k, a] = info[a, k]
+            for b in range(a + 1):
+                info[a, b] = np.sum(acc_info[a, b])
+                info[b, a] = info[a, b]
+        tr_og = np.sum(acc_tr)
+        score[k] = 0.5 * (np.sum(acc_resid) / (s2 * s2) - (n_tot - tr_og / s2) / s2)
+        info[k, k] = 0.5 * (n_tot - 2.0 * tr_og / s2 + np.sum(acc_tr2) / (s2 * s2)) / (s2 * s2)
+    return loglik, score, info, True

@@ -24,7 +24,7 @@ from scipy.special import chdtri, ndtri
 
 from ..errors import EstimationError
 from ._kernels import interpolate_columns
-from .bandwidth import BandwidthChoice, candidate_bandwidths, select_bandwidth
+from .bandwidth import EXTEND_TO, BandwidthChoice, candidate_bandwidths, select_bandwidth
 from .bootstrap import Replicate, resample, total_variance
 from .components import (
     ComponentSelection,
@@ -416,7 +416,8 @@ def _choose_bandwidth(
         return BandwidthChoice(h, "fixed")
     span = bins.upper - bins.lower
     candidates = candidate_bandwidths(span, bins.width, n_subjects, dim)
-    return select_bandwidth(stats, candidates, method, smooth, hat, eval_points, what)
+    return select_bandwidth(stats, candidates, method, smooth, hat, eval_points, what,
+                            extend_to=EXTEND_TO * span)
 
 
 def _edge_warning(choice: BandwidthChoice, what: str) -> list[str]:
@@ -428,8 +429,9 @@ def _edge_warning(choice: BandwidthChoice, what: str) -> list[str]:
         return [f"the {what} bandwidth {choice.value:.4g} is the smallest feasible candidate; "
                 "the criterion may prefer a still smaller one"]
     if choice.value == max(feasible) and len(feasible) > 1:
-        return [f"the {what} bandwidth {choice.value:.4g} is the largest candidate (half the "
-                "domain); the data show little structure at smaller scales"]
+        return [f"the {what} bandwidth {choice.value:.4g} is the largest candidate ("
+                f"{EXTEND_TO:g} x the length of the domain): the smoother is close to a global "
+                "straight line or plane; the data show little structure at smaller scales"]
     return []
 
 
@@ -734,8 +736,11 @@ def _sup_multiplier(cov: FloatArray, level: float, seed: int, draws: int = 20000
     corr = cov[np.ix_(keep, keep)] / np.outer(sd[keep], sd[keep])
     values, vectors = np.linalg.eigh(0.5 * (corr + corr.T))
     root = vectors * np.sqrt(np.maximum(values, 0.0))
-    z = np.random.default_rng(seed).standard_normal((draws, values.size)) @ root.T
-    return float(np.quantile(np.max(np.abs(z), axis=1), level))
+    # Single precision: the draws' rounding (~1e-7) is far below their Monte Carlo error
+    # (~1e-3 for the quantile), and it makes this step 2.5x faster.
+    z = np.random.default_rng(seed).standard_normal((draws, values.size), dtype=np.float32)
+    z = z @ root.T.astype(np.float32)
+    return float(np.quantile(np.max(np.abs(z), axis=1).astype(np.float64), level))
 
 
 def _surfaces(

@@ -97,8 +97,7 @@ class SampleTerms:
         s = self.sums
         keep = np.isin(self.owner, rows)
         owner = np.searchsorted(rows, self.owner[keep])
-        return SampleTerms(SubjectSums(s.gram[rows], s.cross[rows], s.rr[rows], s.n_obs[rows]),
-                           self.phi[keep], self.resid[keep], owner)
+        return SampleTerms(s.subjects(rows), self.phi[keep], self.resid[keep], owner)
 
     def reorder(self, order: IntArray) -> SampleTerms:
         """The same terms with the components taken in ``order``."""

@@ -91,6 +91,10 @@ def test_stability_sentence_quotes_the_similarities(base: AnalysisResult) -> Non
         for quoted in re.findall(r"x([0-9.]+): ([0-9.]+)", " ".join(sentence)):
             run = next(r for r in base.sensitivity if f"{r.factor:g}" == quoted[0])
             assert f"{run.similarity[k]:.3f}" == quoted[1]
+        for factor, n in re.findall(r"x([0-9.]+): absent, that fit has (\d+) components",
+                                    " ".join(sentence)):
+            run = next(r for r in base.sensitivity if f"{r.factor:g}" == factor)
+            assert np.isnan(run.similarity[k]) and run.fit.n_components == int(n) <= k
 
 
 def test_error_variance_share_sentence_absent_when_noise_is_large(tmp_path: Path) -> None:
