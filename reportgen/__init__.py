@@ -5,9 +5,13 @@ Public API (everything else is internal):
 - :func:`fit_sparse_fpca` and its result :class:`FPCAFit`
 - :class:`FPCAOptions`
 - the exception hierarchy of :mod:`reportgen.errors`
+
+The numerical names are imported on first use (PEP 562), so that commands which fit
+nothing (``check``, ``compare``, ``schema``, ``init``) do not pay for numba and scipy.
 """
 
-from .api import fit_sparse_fpca
+import typing as _typing
+
 from .errors import (
     DataError,
     DegenerateDataWarning,
@@ -17,7 +21,10 @@ from .errors import (
     ReportgenError,
     SpecError,
 )
-from .fpca import FPCAFit, FPCAOptions
+
+if _typing.TYPE_CHECKING:
+    from .api import fit_sparse_fpca
+    from .fpca import FPCAFit, FPCAOptions
 
 __version__ = "0.1.0"
 
@@ -34,3 +41,19 @@ __all__ = [
     "__version__",
     "fit_sparse_fpca",
 ]
+
+
+def __getattr__(name: str) -> _typing.Any:
+    if name == "fit_sparse_fpca":
+        from .api import fit_sparse_fpca
+
+        return fit_sparse_fpca
+    if name in ("FPCAFit", "FPCAOptions"):
+        from . import fpca
+
+        return getattr(fpca, name)
+    raise AttributeError(f"module 'reportgen' has no attribute {name!r}")
+
+
+def __dir__() -> list[str]:
+    return sorted(set(globals()) | set(__all__))

@@ -11,13 +11,14 @@ from dataclasses import dataclass, replace
 
 import numpy as np
 import pandas as pd
-from scipy import stats as sps
+from scipy.special import chdtri
 
 from .data import Dataset
 from .errors import EstimationError
 from .fpca import FPCAFit, fit_arrays, with_bandwidths
-from .fpca.components import choose, trapezoid_weights
+from .fpca.components import choose
 from .fpca.frame import arrays_from_frame
+from .fpca.smoothing import trapezoid_weights
 from .spec import Spec
 
 Progress = Callable[[str], None]
@@ -164,7 +165,7 @@ def _outliers(fit: FPCAFit, quantile: float) -> pd.DataFrame:
     """Squared Mahalanobis distance of the scores under N(0, Lambda), flagged above the
     chi-square(K) quantile (rule stated in the report)."""
     d2 = np.sum(fit.score_values**2 / fit.eigenvalues, axis=1)
-    cut = float(sps.chi2.ppf(quantile, fit.n_components))
+    cut = float(chdtri(fit.n_components, 1.0 - quantile))  # chi-square quantile
     return pd.DataFrame({"subject": fit.subjects, "distance2": d2, "flagged": d2 > cut})
 
 

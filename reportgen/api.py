@@ -8,30 +8,10 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from .errors import DataError, SpecError
-from .fpca import FPCAFit, FPCAOptions, fit_arrays
+from .errors import DataError
+from .fpca import FPCAFit, fit_arrays
 from .fpca.frame import arrays_from_frame
-from .validation import model_schema, validate
-
-
-def make_options(options: dict[str, Any], root: str = "") -> FPCAOptions:
-    """Validate ``options`` against the spec's model schema and build :class:`FPCAOptions`.
-
-    Raises :class:`SpecError` naming the option, what is allowed and the value given.
-    """
-    validate(options, model_schema(), root)
-    values = dict(options)
-    if "domain" in values:
-        lo, hi = (float(v) for v in values["domain"])
-        if not hi > lo:
-            where = f"{root}.domain" if root else "domain"
-            raise SpecError(f"{where} must be [start, end] with end > start; got {[lo, hi]!r}.")
-        values["domain"] = (lo, hi)
-    opts = FPCAOptions(**values)
-    if opts.component_rule == "fixed" and opts.n_components is None:
-        where = f"{root}.n_components" if root else "n_components"
-        raise SpecError(f'{where} is required when component_rule is "fixed".')
-    return opts
+from .validation import make_options
 
 
 def fit_sparse_fpca(

@@ -246,11 +246,21 @@ def build_parser() -> argparse.ArgumentParser:
     return p
 
 
+# Commands that compute numbers; they run on one BLAS thread (see ``threads``).
+NUMERIC_COMMANDS = ("run", "verify", "demo")
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
     try:
-        code = int(args.func(args))
+        if args.command in NUMERIC_COMMANDS:
+            from .threads import one_blas_thread
+
+            with one_blas_thread():
+                code = int(args.func(args))
+        else:
+            code = int(args.func(args))
     except ReportgenError as e:
         print(f"reportgen {args.command}: error: {e}", file=sys.stderr)
         code = 2

@@ -8,15 +8,17 @@ import sys
 from dataclasses import dataclass
 from importlib import metadata
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import pandas as pd
 
 from . import __version__
-from .analysis import AnalysisResult
 from .errors import RecordError
-from .fpca.components import trapezoid_weights
+from .fpca.smoothing import trapezoid_weights
+
+if TYPE_CHECKING:
+    from .analysis import AnalysisResult
 
 RECORD_KEYS = ("tool", "run", "spec", "inputs", "environment", "results_sha256", "outputs")
 DEPENDENCIES = ("numpy", "scipy", "pandas", "pyarrow", "matplotlib", "jinja2", "weasyprint",

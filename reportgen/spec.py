@@ -9,10 +9,9 @@ from typing import Any
 
 import yaml
 
-from .api import make_options
 from .errors import SpecError
-from .fpca import FPCAOptions
-from .validation import spec_schema, validate
+from .fpca.options import FPCAOptions
+from .validation import make_options, spec_schema, validate
 
 MAX_SPEC_BYTES = 1_000_000
 

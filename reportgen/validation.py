@@ -17,6 +17,7 @@ from typing import Any
 import jsonschema
 
 from .errors import SpecError
+from .fpca.options import FPCAOptions
 
 
 @cache
@@ -91,3 +92,23 @@ def model_schema() -> dict[str, Any]:
     """The schema of the ``model`` section (the fit options), standalone."""
     root = spec_schema()
     return {**root["$defs"]["model"], "$defs": root["$defs"]}
+
+
+def make_options(options: dict[str, Any], root: str = "") -> FPCAOptions:
+    """Validate ``options`` against the spec's model schema and build :class:`FPCAOptions`.
+
+    Raises :class:`SpecError` naming the option, what is allowed and the value given.
+    """
+    validate(options, model_schema(), root)
+    values = dict(options)
+    if "domain" in values:
+        lo, hi = (float(v) for v in values["domain"])
+        if not hi > lo:
+            where = f"{root}.domain" if root else "domain"
+            raise SpecError(f"{where} must be [start, end] with end > start; got {[lo, hi]!r}.")
+        values["domain"] = (lo, hi)
+    opts = FPCAOptions(**values)
+    if opts.component_rule == "fixed" and opts.n_components is None:
+        where = f"{root}.n_components" if root else "n_components"
+        raise SpecError(f'{where} is required when component_rule is "fixed".')
+    return opts

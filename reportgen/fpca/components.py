@@ -20,22 +20,12 @@ from numpy.typing import NDArray
 
 from ..errors import EstimationError
 from ._kernels import interpolate_columns
-from .smoothing import FloatArray
+from .smoothing import FloatArray, trapezoid_weights
 
 # Eigenvalues below this fraction of the largest are numerically zero (common practice,
 # no source): they are dropped with the negative ones.
 _ZERO_RTOL = 1e-10
 COMPONENT_RULES = ("fve", "aic", "bic", "cv", "fixed")
-
-
-def trapezoid_weights(grid: FloatArray) -> FloatArray:
-    """Trapezoid quadrature weights for an increasing grid (of any numeric dtype)."""
-    grid = np.asarray(grid, dtype=np.float64)
-    d = np.diff(grid)
-    w = np.zeros_like(grid)
-    w[:-1] += d / 2.0
-    w[1:] += d / 2.0
-    return w
 
 
 def evaluate_at(t: FloatArray, grid: FloatArray, funcs: FloatArray) -> FloatArray:

@@ -21,6 +21,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 from scipy.special import chdtri, ndtri
+from threadpoolctl import threadpool_limits
 
 from ..errors import EstimationError
 from ._kernels import interpolate_columns
@@ -45,6 +46,7 @@ from .design import (
 )
 from .frame import arrays_from_frame
 from .likelihood import LikelihoodFit, maximise, starting_error_variance
+from .options import FPCAOptions
 from .scores import SampleTerms, conditional_scores, loo_errors, sample_terms
 from .smoothing import (
     BinGrid,
@@ -59,50 +61,6 @@ from .smoothing import (
     local_linear_binned_2d,
     local_quadratic_diagonal_2d,
 )
-
-
-@dataclass(frozen=True)
-class FPCAOptions:
-    """Settings of a fit; the names are the spec's ``model`` section (see the README).
-
-    A bandwidth is a number (used as given) or ``"auto"`` (chosen by ``bandwidth_method``:
-    ``"cv"``, K-fold cross-validation over subjects, or ``"gcv"``). ``diagonal_bandwidth``
-    smooths the squared residuals of single readings (the variance of a reading), on its
-    own as in Yao, Müller & Wang (2005). ``criteria_max_subjects`` caps the seeded sample of
-    subjects over which AIC, BIC and cv are computed (the likelihood refinement itself uses
-    up to ``REFINE_MAX_SUBJECTS``).
-    ``component_rule`` is one of ``"fve"`` (smallest K reaching ``fve_threshold``),
-    ``"aic"``, ``"bic"``, ``"cv"`` (leave-one-reading-out prediction error) or ``"fixed"``
-    (``n_components``). ``band`` is ``"plugin"`` (the population quantities taken as
-    known) or ``"corrected"`` (``bootstrap_replicates`` refits on subjects resampled with
-    replacement add the uncertainty of the population quantities; ``fpca.bootstrap``).
-    """
-
-    n_grid: int = 101
-    domain: tuple[float, float] | None = None
-    kernel: str = "epanechnikov"
-    mean_bandwidth: float | str = "auto"
-    covariance_bandwidth: float | str = "auto"
-    diagonal_bandwidth: float | str = "auto"
-    bandwidth_method: str = "cv"
-    cv_folds: int = 5
-    mean_bins: int = 401
-    covariance_bins: int = 101
-    component_rule: str = "fve"
-    fve_threshold: float = 0.95
-    n_components: int | None = None
-    max_components: int = 8
-    criteria_max_subjects: int = 5000
-    band_level: float = 0.95
-    band: str = "plugin"
-    bootstrap_replicates: int = 50
-    seed: int = 0
-
-    def as_dict(self) -> dict[str, Any]:
-        out = {name: getattr(self, name) for name in self.__dataclass_fields__}
-        if self.domain is not None:
-            out["domain"] = list(self.domain)
-        return out
 
 
 def _frozen(a: np.ndarray) -> np.ndarray:
@@ -507,7 +465,16 @@ def fit_arrays(
         Finite reading times and values.
     labels : ndarray of shape (n_subjects,)
     options : FPCAOptions
+
+    The dense linear algebra runs on one BLAS thread (``threadpoolctl``), so that the
+    results do not depend on the machine's core count or load.
     """
+    with threadpool_limits(limits=1, user_api="blas"):
+        return _fit(subject, t, y, labels, options, population_only)
+
+
+def _fit(subject: IntArray, t: FloatArray, y: FloatArray, labels: np.ndarray,
+         options: FPCAOptions, population_only: bool) -> FPCAFit:
     sample = Sample.from_arrays(subject, t, y)
     lo, hi = options.domain if options.domain is not None else (float(t.min()), float(t.max()))
     _check_design(sample, lo, hi)
@@ -657,8 +624,7 @@ def _with_replicates(fit: FPCAFit, sample: Sample) -> FPCAFit:
     for _ in range(fit.options.bootstrap_replicates):
         drawn = resample(sample, rng)
         try:
-            rf = fit_arrays(drawn.subject, drawn.t, drawn.y, labels, opts,
-                            population_only=True)
+            rf = _fit(drawn.subject, drawn.t, drawn.y, labels, opts, population_only=True)
         except EstimationError:
             skipped += 1
             continue

@@ -361,3 +361,13 @@ def local_quadratic_diagonal_2d(
         sol = np.linalg.solve(ms[ok], (rhs[ok] / scale[ok])[..., None])[..., 0]
         out[ok] = sol[:, 0] / scale[ok, 0]
     return out
+
+
+def trapezoid_weights(grid: FloatArray) -> FloatArray:
+    """Trapezoid quadrature weights for an increasing grid (of any numeric dtype)."""
+    grid = np.asarray(grid, dtype=np.float64)
+    d = np.diff(grid)
+    w = np.zeros_like(grid)
+    w[:-1] += d / 2.0
+    w[1:] += d / 2.0
+    return w
