@@ -13,6 +13,8 @@ Linear binning as in ``smoothing.BinGrid.locate``: a reading at ``x`` gives weig
 
 from __future__ import annotations
 
+from typing import Any
+
 import numpy as np
 from numba import njit
 
@@ -332,3 +334,23 @@ def likelihood_sums(gram_t: FloatArray, cross_t: FloatArray, rr: FloatArray,
         score[k] = 0.5 * (np.sum(acc_resid) / (s2 * s2) - (n_tot - tr_og / s2) / s2)
         info[k, k] = 0.5 * (n_tot - 2.0 * tr_og / s2 + np.sum(acc_tr2) / (s2 * s2)) / (s2 * s2)
     return loglik, score, info, True
+
+
+KERNELS: tuple[Any, ...] = (bin_readings, bin_pairs, subject_sums, interpolate_columns,
+                            likelihood_sums)
+
+
+def compiled_on_disk() -> bool:
+    """Whether numba's on-disk cache holds every kernel (its index files exist).
+
+    In a fresh checkout the first fit compiles them (several seconds, once); the command
+    line says so before it happens. Reads numba's cache locator (a private attribute);
+    when that is unavailable the answer is True, i.e. nothing is said.
+    """
+    import os
+
+    try:
+        paths = [k._cache._cache_file._index_path for k in KERNELS]
+    except AttributeError:
+        return True
+    return all(os.path.exists(p) for p in paths)

@@ -16,8 +16,8 @@ PROBE = """
 import json, sys
 from reportgen.cli import main
 code = main(sys.argv[1:])
-print(json.dumps({"code": code, "loaded": sorted(m for m in %r if m in sys.modules)}))
-""" % (HEAVY,)
+print(json.dumps({"code": code, "loaded": sorted(m for m in HEAVY if m in sys.modules)}))
+""".replace("HEAVY", repr(HEAVY))
 
 
 def _loaded(*args: str, cwd: Path) -> dict[str, object]:

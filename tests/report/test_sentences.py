@@ -120,3 +120,17 @@ def test_time_pair_coverage_sentence(base: AnalysisResult, tmp_path: Path) -> No
     assert check.status == "warn"
     sentence = next(c for c in res.caveats if c.startswith(claim))
     assert check.detail in sentence
+
+
+def test_spread_trend_is_spearmans_rho() -> None:
+    # Reference: scipy.stats.spearmanr (general-purpose library), on values with ties.
+    from scipy.stats import spearmanr
+
+    from reportgen.analysis import spread_trend
+
+    rng = np.random.default_rng(9)
+    fitted = rng.integers(0, 20, 300).astype(float)
+    standardized = rng.normal(size=300) * (1 + fitted / 10)
+    frame = pd.DataFrame({"fitted": fitted, "standardized": standardized.round(1)})
+    expected = spearmanr(np.abs(frame.standardized), frame.fitted).statistic
+    assert spread_trend(frame) == pytest.approx(expected, rel=1e-12)
