@@ -155,19 +155,9 @@ class RenderWorker:
         return pdf if pdf is not None else _pdf(html, spec_bytes, record_bytes, stamp)
 
     def close(self) -> None:
-        proc, self._proc = self._proc, None
-        if proc is None:
-            return
-        try:
-            if proc.stdin is not None:
-                proc.stdin.close()
-            proc.wait(timeout=10)
-        except (OSError, subprocess.TimeoutExpired):
-            proc.kill()
-            proc.wait()
-        finally:
-            if proc.stdout is not None:
-                proc.stdout.close()
+        """End the worker. It holds nothing but loaded libraries, so it is killed rather
+        than asked to exit (its interpreter teardown took 0.9 s of the run)."""
+        self._kill()
 
     def _submit(self, task: str, *args: Any) -> _Pending | None:
         return _Pending(self, task, args) if self._proc is not None else None

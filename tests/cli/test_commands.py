@@ -113,3 +113,20 @@ def test_parquet_data_file(study: Path) -> None:
     res = cli("check", str(parquet_spec))
     assert res.returncode == 0, res.stderr
     assert "160 subjects, 742 readings" in res.stdout
+
+
+def test_installed_entry_point_keeps_exit_codes_and_output(study: Path) -> None:
+    # The console script ends with os._exit after flushing (cli.entry): the exit code and
+    # everything printed must survive that.
+    import shutil
+    import subprocess
+    import sys
+
+    exe = shutil.which("reportgen", path=str(Path(sys.executable).parent))
+    assert exe is not None
+    ok = subprocess.run([exe, "check", study.name], cwd=study.parent, capture_output=True,
+                        text=True, timeout=300)
+    assert ok.returncode == 0 and ok.stdout.rstrip().endswith("spec and data are usable")
+    bad = subprocess.run([exe, "check", "missing.yaml"], cwd=study.parent,
+                         capture_output=True, text=True, timeout=300)
+    assert bad.returncode == 2 and "reportgen check: error:" in bad.stderr
