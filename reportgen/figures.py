@@ -31,6 +31,7 @@ STYLE = {
     "lines.linewidth": 1.6,
 }
 MAX_POINTS = 4000  # above this, scatter plots become densities
+MAX_MARKS = 200  # above this many, marked points (flagged subjects) are drawn as an image
 
 
 def inline_svg(text: str, prefix: str) -> str:
@@ -311,7 +312,7 @@ def _residuals(r: AnalysisResult) -> Figure:
     for ax, xcol, xl in ((axes[0], "time", tl), (axes[1], "fitted", "fitted " + vl)):
         if len(res) > MAX_POINTS:
             ax.hexbin(res[xcol], res.standardized, gridsize=35, cmap="Greys", mincnt=1,
-                      linewidths=0)
+                      linewidths=0, rasterized=True)
         else:
             ax.scatter(res[xcol], res.standardized, s=5, color=PALETTE[0], alpha=0.5,
                        linewidths=0, rasterized=True)
@@ -370,7 +371,8 @@ def _scores_figure(r: AnalysisResult) -> Figure:
     if fit.n_components == 1:
         ax.hist(sc[:, 0], bins=min(40, max(10, len(sc) // 10)), color=PALETTE[0])
         ax.plot(sc[flagged, 0], np.zeros(int(flagged.sum())), "o", markersize=6,
-                markerfacecolor="none", color=PALETTE[1], label="flagged")
+                markerfacecolor="none", color=PALETTE[1], label="flagged",
+                rasterized=bool(flagged.sum() > MAX_MARKS))
         for i in labelled:
             ax.annotate(str(fit.subjects[i]), (sc[i, 0], 0), textcoords="offset points",
                         xytext=(0, 6), fontsize=6, rotation=90, ha="center")
@@ -386,8 +388,11 @@ def _scores_figure(r: AnalysisResult) -> Figure:
         else:
             ax.scatter(sc[:, 0], sc[:, 1], s=8, color=PALETTE[0], alpha=0.6, linewidths=0,
                        rasterized=True)
+        # Many flagged subjects (large studies) are drawn as one image, like the density:
+        # the figure's size must not grow with the number of subjects.
         ax.scatter(sc[flagged, 0], sc[flagged, 1], s=18, facecolors="none",
-                   edgecolors=PALETTE[1], label="flagged")
+                   edgecolors=PALETTE[1], label="flagged",
+                   rasterized=bool(flagged.sum() > MAX_MARKS))
         for i in labelled:
             ax.annotate(str(fit.subjects[i]), (sc[i, 0], sc[i, 1]), textcoords="offset points",
                         xytext=(3, 3), fontsize=6)
