@@ -141,7 +141,8 @@ class RenderWorker:
         process draws the rest."""
         from .figures import FIGURES, make_figures
 
-        pending = self._submit("draw", summary_view(result), SUMMARY_FIGURES)
+        pending = (self._submit("draw", summary_view(result), SUMMARY_FIGURES)
+                   if self._proc is not None else None)
         local = make_figures(result, [n for n in FIGURES if n not in SUMMARY_FIGURES])
         remote = pending.result() if pending is not None else None
         if remote is None:
