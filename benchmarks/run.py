@@ -272,21 +272,29 @@ def end_to_end(big_n: int) -> tuple[str, list[float]]:
 # --- 5. as the user waits -------------------------------------------------------------------
 
 
+# A small launcher process runs each command: Linux keeps a process's peak-memory mark
+# across fork and exec, so a command started straight from this (large) benchmark process
+# would report at least the benchmark's own size.
+LAUNCHER = """
+import json, resource, subprocess, sys, time
+t0 = time.perf_counter()
+done = subprocess.run(sys.argv[1:], stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
+wall = time.perf_counter() - t0
+peak = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024
+print(json.dumps({"code": done.returncode, "wall": wall, "peak": peak,
+                  "err": done.stderr.decode(errors="replace")[-2000:]}))
+"""
+
+
 def _wall(cmd: list[str], cwd: Path) -> tuple[float, float]:
-    """Wall seconds of a fresh process and its peak resident MB (os.wait4: the command's
-    own usage; its rendering worker, a separate process, is smaller). Linux keeps the
-    high-water mark across fork and exec, so a small command shows at least the size of
-    this benchmark process itself (about 170 MB)."""
-    t0 = time.perf_counter()
-    proc = subprocess.Popen(cmd, cwd=cwd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
-    assert proc.stderr is not None
-    err = proc.stderr.read()
-    _, status, usage = os.wait4(proc.pid, 0)
-    proc.returncode = os.waitstatus_to_exitcode(status)
-    wall = time.perf_counter() - t0
-    if proc.returncode != 0:
-        raise RuntimeError(f"{' '.join(cmd)} failed: {err.decode(errors='replace')}")
-    return wall, usage.ru_maxrss / 1024
+    """Wall seconds of the command in a fresh process and its peak resident MB (the largest
+    of the command and its rendering worker)."""
+    out = subprocess.run([sys.executable, "-c", LAUNCHER, *cmd], cwd=cwd, check=True,
+                         capture_output=True, text=True)
+    result = json.loads(out.stdout)
+    if result["code"] != 0:
+        raise RuntimeError(f"{' '.join(cmd)} failed: {result['err']}")
+    return float(result["wall"]), float(result["peak"])
 
 
 def as_the_user_waits(repeats: int, big: int | None) -> tuple[str, dict[str, float]]:

@@ -153,7 +153,11 @@ def spread_trend(residuals: pd.DataFrame) -> float:
     """Spearman correlation of |standardized residual| with the fitted value: the Pearson
     correlation of their average ranks (its definition; pandas' own method="spearman"
     imports scipy.stats, a second of start-up for one number)."""
-    return float(residuals.standardized.abs().rank().corr(residuals.fitted.rank()))
+    # numpy-backed copies: on Arrow-backed columns (Parquet input) pandas ranks through a
+    # slow path (8.6 s for 4.5 million readings, against 1 s)
+    size = pd.Series(np.abs(residuals.standardized.to_numpy(dtype=np.float64))).rank()
+    fitted = pd.Series(residuals.fitted.to_numpy(dtype=np.float64)).rank()
+    return float(size.corr(fitted))
 
 
 def _residual_summary(residuals: pd.DataFrame) -> pd.DataFrame:

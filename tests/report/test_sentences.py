@@ -134,3 +134,5 @@ def test_spread_trend_is_spearmans_rho() -> None:
     frame = pd.DataFrame({"fitted": fitted, "standardized": standardized.round(1)})
     expected = spearmanr(np.abs(frame.standardized), frame.fitted).statistic
     assert spread_trend(frame) == pytest.approx(expected, rel=1e-12)
+    # Parquet input gives Arrow-backed columns: the same number
+    assert spread_trend(frame.astype("float64[pyarrow]")) == pytest.approx(expected, rel=1e-12)
