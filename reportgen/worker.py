@@ -24,6 +24,8 @@ from dataclasses import replace
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, BinaryIO, cast
 
+from .threads import one_blas_thread
+
 if TYPE_CHECKING:
     from .analysis import AnalysisResult
     from .fpca import FPCAFit
@@ -39,11 +41,9 @@ def _warm_up() -> None:
     """Load what the tasks need; runs once, at the worker's start, while the main process
     reads the data and fits. (Loading weasyprint only after the figures were drawn was
     measured too: the figures came 0.5 s sooner, the PDF 1 s later.)"""
-    from threadpoolctl import threadpool_limits
+    import weasyprint  # noqa: F401
 
     from . import figures, render  # noqa: F401
-    threadpool_limits(limits=1, user_api="blas")
-    import weasyprint  # noqa: F401
 
 
 def _draw(result: AnalysisResult, names: tuple[str, ...]) -> dict[str, tuple[str, str, str]]:
@@ -89,18 +89,19 @@ def serve(inbox: BinaryIO | None = None, outbox: BinaryIO | None = None) -> None
     inbox = inbox or sys.stdin.buffer
     outbox = outbox or sys.stdout.buffer
     sys.stdout = sys.stderr  # the pipe carries results only
-    _warm_up()
-    while True:
-        try:
-            task, args = pickle.load(inbox)
-        except EOFError:
-            return
-        try:
-            reply: tuple[str, Any] = ("ok", _TASKS[task](*args))
-        except Exception as e:  # reported to the caller, which then does the task itself
-            reply = ("error", f"{type(e).__name__}: {e}")
-        pickle.dump(reply, outbox, protocol=pickle.HIGHEST_PROTOCOL)
-        outbox.flush()
+    with one_blas_thread():  # as in the commands that compute numbers
+        _warm_up()
+        while True:
+            try:
+                task, args = pickle.load(inbox)
+            except EOFError:
+                return
+            try:
+                reply: tuple[str, Any] = ("ok", _TASKS[task](*args))
+            except Exception as e:  # reported to the caller, which then does the task itself
+                reply = ("error", f"{type(e).__name__}: {e}")
+            pickle.dump(reply, outbox, protocol=pickle.HIGHEST_PROTOCOL)
+            outbox.flush()
 
 
 class _Pending:
