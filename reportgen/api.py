@@ -8,14 +8,15 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from .errors import DataError
+from .errors import DataError, SpecError
 from .fpca import FPCAFit, fit_arrays
 from .fpca.frame import arrays_from_frame
 from .validation import make_options
 
 
 def fit_sparse_fpca(
-    frame: pd.DataFrame, *, subject: str, time: str, value: str, **options: Any
+    frame: pd.DataFrame, *, subject: str, time: str, value: str, out_of_domain: str = "fail",
+    **options: Any,
 ) -> FPCAFit:
     """Functional PCA of sparse, irregularly timed readings by conditional expectation.
 
@@ -25,6 +26,9 @@ def fit_sparse_fpca(
         Long format: one row per reading.
     subject, time, value : str
         Column names. Times and values must be finite numbers.
+    out_of_domain : {"fail", "drop"}
+        What to do with readings outside ``domain`` (when it is given): refuse them
+        (``DataError``) or leave them out, as the spec's ``checks.out_of_domain``.
     **options
         The spec's ``model`` options (see the README), e.g. ``mean_bandwidth="auto"``,
         ``component_rule="fve"``, ``fve_threshold=0.95``, ``band_level=0.95``.
@@ -55,14 +59,28 @@ def fit_sparse_fpca(
     >>> round(float(fit.eigenvalues[0]), 1)  # true value 1, with phi = sqrt(2) cos(pi t)
     1.0
     """
+    if out_of_domain not in ("fail", "drop"):
+        raise SpecError(f"out_of_domain must be one of fail, drop; got {out_of_domain!r}.")
     opts = make_options(options)
     codes, t, y, labels = arrays_from_frame(frame, subject, time, value)
     if opts.domain is not None:
-        outside = np.flatnonzero((t < opts.domain[0]) | (t > opts.domain[1]))
-        if outside.size:
+        lo, hi = opts.domain
+        outside = np.flatnonzero((t < lo) | (t > hi))
+        if outside.size and out_of_domain == "fail":
             raise DataError(
-                f"{outside.size} readings lie outside the domain {list(opts.domain)!r} "
-                f"(first at row {outside[0] + 1}, time {t[outside[0]]!r})"
+                f"{outside.size} readings lie outside the domain [{lo:g}, {hi:g}] (first at "
+                f"row {outside[0] + 1}, time {t[outside[0]]:g}); pass out_of_domain=\"drop\" "
+                "to leave them out"
             )
+        if outside.size:
+            inside = (t >= lo) & (t <= hi)
+            codes, labels = _recode(codes[inside], labels)
+            t, y = t[inside], y[inside]
     result = fit_arrays(codes, t, y, labels, opts)
     return replace(result, columns=(subject, time, value))
+
+
+def _recode(codes: np.ndarray, labels: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Codes 0 .. m - 1 for the subjects that still have readings, and their labels."""
+    present, new = np.unique(codes, return_inverse=True)
+    return new.astype(np.intp), labels[present]

@@ -1,12 +1,18 @@
-"""Reading the data file and the data checks (each reported as pass, warn or fail)."""
+"""Reading the data file and the data checks (each reported as pass, warn or fail).
+
+The order of the steps, each one a line of the checks table: the columns; the row
+selection (``data.keep_rows``); the types (dates need an origin); the time origin; the log
+transform; missing values; duplicates; the declared value range and time domain; the
+design (subjects, single readings, pairs). A failed step stops the later ones; the run
+refuses the data only after every step that could run has reported.
+"""
 
 from __future__ import annotations
 
 import hashlib
-import io
 import os
 import stat
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
@@ -14,10 +20,14 @@ import numpy as np
 import pandas as pd
 
 from .errors import DataError
+from .readers import Table, detect_format, is_date_column, looks_like_dates, parse_table, plain
 from .spec import Spec
 
 SCALE_DAYS = {"hours": 1 / 24, "days": 1.0, "weeks": 7.0, "months": 365.25 / 12,
               "years": 365.25}
+DATE_HINT = ("set data.time_origin to an ISO date (a calendar origin), to \"first\" (each "
+             "subject's first reading) or to {column: NAME} (each subject's baseline date in "
+             "that column), and data.time_scale to days, weeks, months, years or hours")
 
 
 @dataclass(frozen=True)
@@ -29,7 +39,8 @@ class Check:
 
 @dataclass(frozen=True)
 class Dataset:
-    """Cleaned long table (columns subject, time, value) and what the checks found."""
+    """Cleaned long table (columns subject, time, value, and group when the spec names
+    one) and what the checks found."""
 
     frame: pd.DataFrame
     checks: tuple[Check, ...]
@@ -38,16 +49,24 @@ class Dataset:
     n_bytes: int
     sha256: str
     rows_read: int
+    labels: dict[str, str] = field(default_factory=dict)  # role -> label stored in the file
 
     @property
     def failed(self) -> list[Check]:
         return [c for c in self.checks if c.status == "fail"]
 
 
+class _Stop(Exception):
+    """A failed step: the checks so far are the result."""
+
+
 def read_file(spec: Spec) -> tuple[bytes, Path]:
     """The data file's bytes, read once (read-only); refuses directories and devices."""
-    path = spec.data_path
-    shown = spec.data["file"]
+    return read_path(spec.data_path, spec.data["file"])
+
+
+def read_path(path: Path, shown: str) -> tuple[bytes, Path]:
+    """The bytes of ``path`` (``shown`` is how the user named it)."""
     try:
         st = os.stat(path)
     except FileNotFoundError:
@@ -56,7 +75,7 @@ def read_file(spec: Spec) -> tuple[bytes, Path]:
         reason = getattr(e, "strerror", None) or str(e)
         raise DataError(f"data.file {shown!r} cannot be read: {reason}") from e
     if stat.S_ISDIR(st.st_mode):
-        raise DataError(f"data.file {shown!r} is a directory; give a .csv or .parquet file")
+        raise DataError(f"data.file {shown!r} is a directory; give a data file")
     if not stat.S_ISREG(st.st_mode):
         raise DataError(f"data.file {shown!r} is not a regular file (device, pipe or socket)")
     try:
@@ -66,111 +85,346 @@ def read_file(spec: Spec) -> tuple[bytes, Path]:
         raise DataError(f"data.file {shown!r} cannot be read: {e.strerror}") from e
 
 
-def _parse(raw: bytes, spec: Spec, path: Path) -> pd.DataFrame:
-    fmt = spec.data["format"]
-    if fmt == "auto":
-        fmt = "parquet" if path.suffix.lower() in (".parquet", ".pq") else "csv"
-    shown = spec.data["file"]
-    if not raw.strip():
-        raise DataError(f"data.file {shown!r} is empty")
-    try:
-        if fmt == "parquet":
-            return pd.read_parquet(io.BytesIO(raw))
-        return pd.read_csv(io.BytesIO(raw), dtype={spec.data["subject"]: str},
-                           keep_default_na=True)
-    except Exception as e:  # pandas/pyarrow raise many types for malformed files
-        first = str(e).splitlines()[0] if str(e) else type(e).__name__
-        raise DataError(f"data.file {shown!r} cannot be parsed as {fmt}: {first}") from e
+def _columns_needed(d: dict[str, Any]) -> list[tuple[str, str]]:
+    """(field, column) for every column that the data section names."""
+    out = [("data.subject", d["subject"]), ("data.time", d["time"]), ("data.value", d["value"])]
+    if d.get("group"):
+        out.append(("data.group", d["group"]))
+    origin = d.get("time_origin")
+    if isinstance(origin, dict):
+        out.append(("data.time_origin.column", origin["column"]))
+    for i, cond in enumerate(d.get("keep_rows", [])):
+        out.append((f"data.keep_rows[{i}].column", cond["column"]))
+    return out
 
 
-def _times(series: pd.Series, spec: Spec) -> tuple[np.ndarray, list[int]]:
-    """Numeric times; dates converted with time_origin and time_scale. Returns bad rows too."""
-    if spec.data.get("time_origin"):
-        origin = pd.Timestamp(spec.data["time_origin"])
-        stamps = pd.to_datetime(series, errors="coerce")
-        bad = np.flatnonzero(stamps.isna().to_numpy() & series.notna().to_numpy()).tolist()
-        days = (stamps - origin) / pd.Timedelta(days=1)
-        scale = SCALE_DAYS[spec.data.get("time_scale", "days")]
-        return (days / scale).to_numpy(dtype=np.float64, na_value=np.nan), bad
+def _column_check(table: Table, d: dict[str, Any], shown: str) -> Check:
+    frame = table.frame
+    missing = [(f, c) for f, c in _columns_needed(d) if c not in frame.columns]
+    if missing:
+        have = ", ".join(map(str, frame.columns))
+        hint = ""
+        if len(frame.columns) == 1 and table.format == "csv":
+            hint = (" (the file has a single column: is it separated by something other than "
+                    "commas, semicolons, tabs or vertical bars?)")
+        cols = ", ".join(repr(c) for _, c in missing)
+        fields = ", ".join(f for f, _ in missing)
+        raise DataError(f"column(s) {cols} not found in {shown!r} (named by {fields}){hint}; "
+                        f"the file has {len(frame.columns)} column(s): {have}")
+    found = [d["subject"], d["time"], d["value"]] + ([d["group"]] if d.get("group") else [])
+    parts = []
+    for c in found:
+        label = table.labels.get(c)
+        fmt = table.formats.get(c)
+        extra = "; ".join(x for x in (f"label {label!r}" if label else "",
+                                      f"format {fmt}" if fmt else "") if x)
+        parts.append(f"{c} ({extra})" if extra else c)
+    sep = (f"; fields separated by {table.describe_delimiter()}"
+           if table.format == "csv" and table.delimiter != "," else "")
+    return Check("columns present", "pass", f"{', '.join(parts)} found ({table.format}{sep})")
+
+
+def _condition_text(cond: dict[str, Any]) -> str:
+    col = cond["column"]
+    if "equals" in cond:
+        return f"{col} equals {plain(cond['equals'])}"
+    if "in" in cond:
+        return f"{col} in [{', '.join(plain(v) for v in cond['in'])}]"
+    lo, hi = cond["between"]
+    return f"{col} between {plain(lo)} and {plain(hi)}"
+
+
+def _as_column_values(series: pd.Series, values: list[Any], where: str) -> pd.Series | list[Any]:
+    """The condition's values in the column's type (numbers, dates or text)."""
+    if is_date_column(series):
+        try:
+            return [pd.Timestamp(v) for v in values]
+        except (ValueError, TypeError):
+            raise DataError(f"{where}: column {series.name!r} holds dates; give ISO dates "
+                            f"such as 2024-01-31, not {', '.join(plain(v) for v in values)}"
+                            ) from None
+    if pd.api.types.is_bool_dtype(series):
+        return values
+    if pd.api.types.is_numeric_dtype(series):
+        bad = [v for v in values if isinstance(v, str) or isinstance(v, bool)]
+        if bad:
+            raise DataError(f"{where}: column {series.name!r} holds numbers; got "
+                            f"{plain(bad[0])}")
+        return values
+    return [v if isinstance(v, str) else plain(v) for v in values]
+
+
+def _mask(series: pd.Series, cond: dict[str, Any], where: str) -> np.ndarray:
+    if "between" in cond:
+        lo, hi = _as_column_values(series, list(cond["between"]), where)
+        if isinstance(lo, str) or isinstance(hi, str):
+            raise DataError(f"{where}: between needs a column of numbers or dates; "
+                            f"{series.name!r} holds text")
+        return np.asarray((series >= lo) & (series <= hi), dtype=bool)
+    values = [cond["equals"]] if "equals" in cond else list(cond["in"])
+    wanted = _as_column_values(series, values, where)
+    column = series if (pd.api.types.is_numeric_dtype(series) or is_date_column(series)) \
+        else series.astype("string")
+    return np.asarray(column.isin(wanted), dtype=bool)
+
+
+def _select_rows(table: Table, conditions: list[dict[str, Any]]) -> tuple[np.ndarray, Check]:
+    frame = table.frame
+    keep = np.ones(len(frame), dtype=bool)
+    parts = [f"{len(frame)} rows read"]
+    for i, cond in enumerate(conditions):
+        mask = _mask(frame[cond["column"]], cond, f"data.keep_rows[{i}]")
+        dropped = int(np.count_nonzero(keep & ~mask))
+        keep &= mask
+        parts.append(f"{_condition_text(cond)}: {dropped} dropped")
+    kept = int(keep.sum())
+    parts.append(f"{kept} kept")
+    status = "pass" if kept else "fail"
+    detail = "; ".join(parts) + ("" if kept else " (no row meets every condition)")
+    return keep, Check("row selection", status, detail)
+
+
+def _describe_row(table: Table, rows: np.ndarray, frame: pd.DataFrame, i: int,
+                  column: str) -> str:
+    """Where selected row ``i`` was in the file, and its value."""
+    return f"{table.where(int(rows[i]))} (column {column!r}, value {plain(frame[column].iloc[i])})"
+
+
+def _numbers_or_dates(series: pd.Series) -> tuple[str, np.ndarray, np.ndarray]:
+    """("dates", days since 1970, bad) or ("numbers", values, bad); bad: unparseable rows."""
+    if is_date_column(series) or looks_like_dates(series):
+        stamps = pd.to_datetime(series, errors="coerce", format="mixed") \
+            if not is_date_column(series) else series
+        bad = stamps.isna().to_numpy() & series.notna().to_numpy()
+        days = (stamps - pd.Timestamp("1970-01-01")) / pd.Timedelta(days=1)
+        return "dates", days.to_numpy(dtype=np.float64, na_value=np.nan), bad
     numeric = pd.to_numeric(series, errors="coerce")
-    bad = np.flatnonzero(numeric.isna().to_numpy() & series.notna().to_numpy()).tolist()
-    return numeric.to_numpy(dtype=np.float64, na_value=np.nan), bad
+    bad = numeric.isna().to_numpy() & series.notna().to_numpy()
+    return "numbers", numeric.to_numpy(dtype=np.float64, na_value=np.nan), bad
 
 
-def _describe_row(frame: pd.DataFrame, row: int, column: str) -> str:
-    return f"row {row + 2} of the file (column {column!r}, value {frame[column].iloc[row]!r})"
+def _times(frame: pd.DataFrame, d: dict[str, Any]) -> tuple[str, np.ndarray, np.ndarray, str]:
+    """(kind, absolute times, rows that are not times, problem); dates in days."""
+    kind, t, bad = _numbers_or_dates(frame[d["time"]])
+    origin = d.get("time_origin")
+    if kind == "dates" and origin is None:
+        return kind, t, bad, f"column {d['time']!r} holds dates; {DATE_HINT}"
+    if kind == "numbers" and isinstance(origin, str) and origin != "first":
+        if bad.any():
+            return kind, t, bad, (f"data.time_origin is a date but column {d['time']!r} "
+                                  "holds values that are neither numbers nor dates")
+        return kind, t, bad, (f"data.time_origin is a calendar date but column {d['time']!r} "
+                              "holds numbers; leave time_origin out (or use first, or "
+                              "{column: NAME}) for numeric times")
+    return kind, t, bad, ""
+
+
+def _origin(frame: pd.DataFrame, d: dict[str, Any], kind: str, t: np.ndarray,
+            codes: np.ndarray) -> tuple[np.ndarray, str]:
+    """Per-row origin in the time column's units (days for dates), and a problem."""
+    origin = d.get("time_origin")
+    if origin is None:
+        return np.zeros_like(t), ""
+    if origin == "first":
+        first = np.full(int(codes.max()) + 1, np.inf)
+        np.minimum.at(first, codes, np.where(np.isfinite(t), t, np.inf))
+        return first[codes], ""
+    if isinstance(origin, str):
+        day = (pd.Timestamp(origin) - pd.Timestamp("1970-01-01")) / pd.Timedelta(days=1)
+        return np.full_like(t, day), ""
+    column = origin["column"]
+    base_kind, base, bad = _numbers_or_dates(frame[column])
+    if base_kind != kind:
+        return base, (f"data.time_origin.column {column!r} holds {base_kind} but the time "
+                      f"column {d['time']!r} holds {kind}")
+    if bad.any():
+        i = int(np.flatnonzero(bad)[0])
+        return base, (f"data.time_origin.column {column!r}: value "
+                      f"{plain(frame[column].iloc[i])} is not one of the {kind}")
+    per = pd.DataFrame({"c": codes, "b": base}).dropna().groupby("c")["b"].nunique()
+    if (per > 1).any():
+        subject = frame[d["subject"]].iloc[int(np.flatnonzero(codes == per.index[
+            int(np.flatnonzero(per.to_numpy() > 1)[0])])[0])]
+        return base, (f"data.time_origin.column {column!r} holds more than one baseline for "
+                      f"subject {plain(subject)}; a baseline is one value per subject")
+    return base, ""
 
 
 def load_dataset(spec: Spec) -> Dataset:
     """Read the file and run every check. Fails (DataError) only after all checks ran."""
     raw, path = read_file(spec)
-    frame = _parse(raw, spec, path)
-    d, c = spec.data, spec.checks
-    checks: list[Check] = []
-    cols = [d["subject"], d["time"], d["value"]]
-    missing_cols = [x for x in cols if x not in frame.columns]
-    if missing_cols:
-        have = ", ".join(map(str, frame.columns[:20]))
-        raise DataError(f"data: column(s) {', '.join(map(repr, missing_cols))} not found in "
-                        f"{d['file']!r}; the file has: {have}")
-    checks.append(Check("columns present", "pass", f"{', '.join(cols)} found"))
-    if len(frame) == 0:
-        raise DataError(f"data.file {d['file']!r} has a header but no rows")
+    return dataset_from_bytes(raw, path, spec, design=True)
 
-    rows_read = len(frame)
-    t, bad_t = _times(frame[d["time"]], spec)
+
+def dataset_from_bytes(raw: bytes, path: Path, spec: Spec, design: bool = True,
+                       shown: str | None = None) -> Dataset:
+    """The checks on ``raw`` read as the spec's data section says.
+
+    ``design=False`` leaves out the checks on the design (subject counts, pairs): for
+    readings of new subjects scored with a stored fit.
+    """
+    d, c = spec.data, spec.checks
+    shown = shown or d["file"]
+    fmt = detect_format(shown, d["format"])
+    text = tuple(x for x in (d["subject"], d.get("group")) if x)
+    table = parse_table(raw, fmt, shown, text_columns=text)
+    checks: list[Check] = [_column_check(table, d, shown)]
+    labels = {role: table.labels[d[role]] for role in ("time", "value")
+              if table.labels.get(d[role])}
+
+    def finish(frame: pd.DataFrame) -> Dataset:
+        return Dataset(frame, tuple(checks), path, shown, len(raw),
+                       hashlib.sha256(raw).hexdigest(), rows_read, labels)
+
+    rows_read = len(table.frame)
+    if rows_read == 0:
+        raise DataError(f"data.file {shown!r} has a header but no rows")
+    frame, rows = table.frame, np.arange(rows_read)
+    if d.get("keep_rows"):
+        keep, check = _select_rows(table, d["keep_rows"])
+        rows = rows[keep]
+        frame = frame.loc[keep].reset_index(drop=True)
+        checks.append(check)
+        if check.status == "fail":
+            return finish(frame)
+    try:
+        long = _typed(frame, rows, table, spec, checks)
+        long = _cleaned(long, table, c, checks, spec)
+    except _Stop:
+        return finish(frame)
+    if design:
+        checks.extend(_design_checks(long, c))
+        if not any(x.status == "fail" for x in checks):
+            checks.append(_feasibility_check(long, spec))
+    return finish(long)
+
+
+def _feasibility_check(long: pd.DataFrame, spec: Spec) -> Check:
+    """What the fit would refuse (``fpca.feasibility``), so that "usable" means usable."""
+    from .fpca.feasibility import problems
+
+    codes = pd.factorize(long.subject)[0].astype(np.intp)
+    found = problems(codes, long.time.to_numpy(dtype=np.float64),
+                     long.value.to_numpy(dtype=np.float64), spec.options)
+    if found:
+        return Check("fit feasible", "fail", "; ".join(found))
+    return Check("fit feasible", "pass", "the mean, diagonal and covariance smoothers are "
+                 "defined on the whole grid at the largest bandwidth the fit may use")
+
+
+def _typed(frame: pd.DataFrame, rows: np.ndarray, table: Table, spec: Spec,
+           checks: list[Check]) -> pd.DataFrame:
+    """Times (after the origin) and values as numbers, log transform applied."""
+    d = spec.data
+    kind, t, bad_t, problem = _times(frame, d)
     y = pd.to_numeric(frame[d["value"]], errors="coerce").to_numpy(dtype=float, na_value=np.nan)
     bad_y = np.flatnonzero(np.isnan(y) & frame[d["value"]].notna().to_numpy())
-    if bad_t or bad_y.size:
-        parts = []
-        if bad_t:
-            parts.append(f"{len(bad_t)} time value(s) are not "
-                         f"{'dates' if d.get('time_origin') else 'numbers'}, first at "
-                         + _describe_row(frame, int(bad_t[0]), d["time"]))
-        if bad_y.size:
-            parts.append(f"{bad_y.size} value(s) are not numbers, first at "
-                         + _describe_row(frame, int(bad_y[0]), d["value"]))
+    parts = []
+    if problem:
+        parts.append(problem)
+    elif bad_t.any():
+        first = int(np.flatnonzero(bad_t)[0])
+        parts.append(f"{int(bad_t.sum())} time value(s) are not {kind}, first at "
+                     + _describe_row(table, rows, frame, first, d["time"])
+                     + ("" if kind == "dates" or not looks_like_dates(
+                         frame[d["time"]].iloc[[first]]) else f"; {DATE_HINT}"))
+    if bad_y.size:
+        parts.append(f"{bad_y.size} value(s) are not numbers, first at "
+                     + _describe_row(table, rows, frame, int(bad_y[0]), d["value"]))
+    if parts:
         checks.append(Check("columns typed", "fail", "; ".join(parts)))
-        return _finish(frame, checks, raw, path, spec, rows_read)
-    checks.append(Check("columns typed", "pass", "time and value are numeric"))
-
+        raise _Stop
     subj = frame[d["subject"]].astype("string")
+    codes = pd.factorize(subj)[0]
+    origin, problem = _origin(frame, d, kind, t, codes)
+    if problem:
+        checks.append(Check("columns typed", "fail", problem))
+        raise _Stop
+    t = t - origin
+    if kind == "dates":
+        t = t / SCALE_DAYS[d.get("time_scale", "days")]
+        checks.append(Check("columns typed", "pass", _date_detail(d)))
+    else:
+        checks.append(Check("columns typed", "pass", "time and value are numeric" + (
+            "; time counted from each subject's " + (
+                "first reading" if d["time_origin"] == "first" else
+                f"baseline in column {d['time_origin']['column']!r}")
+            if d.get("time_origin") else "")))
     with np.errstate(all="ignore"):
-        if d["transform"] == "log":
+        if d["transform"] in ("log", "log10"):
             bad_log = np.flatnonzero(y <= 0)
-            y = np.log(y)
-        elif d["transform"] == "log10":
-            bad_log = np.flatnonzero(y <= 0)
-            y = np.log10(y)
+            y = np.log(y) if d["transform"] == "log" else np.log10(y)
         else:
             bad_log = np.zeros(0, dtype=int)
     if bad_log.size:
         checks.append(Check("log transform", "fail",
                             f"{bad_log.size} value(s) are zero or negative, first at "
-                            + _describe_row(frame, int(bad_log[0]), d["value"])))
-        return _finish(frame, checks, raw, path, spec, rows_read)
+                            + _describe_row(table, rows, frame, int(bad_log[0]), d["value"])))
+        raise _Stop
+    long = pd.DataFrame({"subject": subj.to_numpy(), "time": t, "value": y})
+    if d.get("group"):
+        long["group"] = frame[d["group"]].astype("string").to_numpy()
+    long.attrs["rows"] = rows
+    return long
 
-    na = ~np.isfinite(t) | ~np.isfinite(y) | subj.isna().to_numpy()
+
+def _date_detail(d: dict[str, Any]) -> str:
+    origin = d["time_origin"]
+    scale = d.get("time_scale", "days")
+    if origin == "first":
+        since = "each subject's first reading"
+    elif isinstance(origin, dict):
+        since = f"each subject's baseline date in column {origin['column']!r}"
+    else:
+        since = f"{origin}"
+    return f"time is dates, counted in {scale} since {since}; value is numeric"
+
+
+def _cleaned(long: pd.DataFrame, table: Table, c: dict[str, Any], checks: list[Check],
+             spec: Spec) -> pd.DataFrame:
+    """Missing values, groups, duplicates, value range and domain, in that order."""
+    rows = long.attrs.pop("rows")
+    na = (~np.isfinite(long.time.to_numpy()) | ~np.isfinite(long.value.to_numpy())
+          | long.subject.isna().to_numpy())
+    if "group" in long:
+        na |= long.group.isna().to_numpy()
     n_na = int(na.sum())
+    what = "subject, time, value" + (" or group" if "group" in long else "")
     if n_na == 0:
         checks.append(Check("missing values", "pass", "no missing or non-finite values"))
-    elif c["missing"] == "fail" or n_na == len(frame):
-        first = int(np.flatnonzero(na)[0])
+    elif c["missing"] == "fail" or n_na == len(long):
+        first = int(rows[int(np.flatnonzero(na)[0])])
         checks.append(Check("missing values", "fail",
-                            f"{n_na} of {len(frame)} rows have a missing or non-finite subject, "
-                            f"time or value (first at row {first + 2} of the file)"))
-        return _finish(frame, checks, raw, path, spec, rows_read)
+                            f"{n_na} of {len(long)} rows have a missing or non-finite {what} "
+                            f"(first at {table.where(first)})"))
+        raise _Stop
     else:
         checks.append(Check("missing values", "warn",
-                            f"{n_na} of {len(frame)} rows dropped (missing or non-finite)"))
-    long = pd.DataFrame({"subject": subj.to_numpy()[~na], "time": t[~na], "value": y[~na]})
-
+                            f"{n_na} of {len(long)} rows dropped (missing or non-finite {what})"))
+    long = long.loc[~na].reset_index(drop=True)
+    if "group" in long:
+        checks.append(_group_check(long))
+        if checks[-1].status == "fail":
+            raise _Stop
     long, dup_check = _duplicates(long, c["duplicates"])
     checks.append(dup_check)
-    checks.extend(_range_checks(long, c, d))
-    long = _apply_out_of_range(long, c)
-    checks.extend(_design_checks(long, c))
-    return _finish(long, checks, raw, path, spec, rows_read)
+    checks.extend(_range_checks(long, c, spec))
+    return _apply_drops(long, c, spec)
+
+
+def _group_check(long: pd.DataFrame) -> Check:
+    per = long.groupby("subject", sort=False)["group"].nunique()
+    if (per > 1).any():
+        subject = per.index[int(np.flatnonzero(per.to_numpy() > 1)[0])]
+        return Check("groups", "fail", f"subject {plain(subject)} is in more than one group; "
+                     "a group (arm, cohort, site) is one value per subject")
+    sizes = long.drop_duplicates("subject").groupby("group").size()
+    if sizes.size < 2:
+        return Check("groups", "fail", f"one group only ({plain(sizes.index[0])}); a group "
+                     "comparison needs two or more")
+    listed = ", ".join(f"{g} ({n} subjects)" for g, n in sizes.items())
+    status = "pass" if sizes.min() >= 2 else "warn"
+    return Check("groups", status, f"{sizes.size} groups: {listed}")
 
 
 def _duplicates(long: pd.DataFrame, rule: str) -> tuple[pd.DataFrame, Check]:
@@ -182,9 +436,10 @@ def _duplicates(long: pd.DataFrame, rule: str) -> tuple[pd.DataFrame, Check]:
         row = long[dup].iloc[0]
         return long, Check("duplicate readings", "fail",
                            f"{n_dup} readings share a (subject, time) with another, e.g. "
-                           f"subject {row.subject!r} at time {row.time:g}")
+                           f"subject {plain(row.subject)} at time {row.time:g}")
     if rule == "average":
-        merged = long.groupby(["subject", "time"], sort=False)["value"].mean().reset_index()
+        keys = ["subject", "time"] + (["group"] if "group" in long else [])
+        merged = long.groupby(keys, sort=False)["value"].mean().reset_index()
         return merged, Check("duplicate readings", "warn",
                              f"{n_dup} readings at a shared (subject, time) were averaged into "
                              f"{n_dup - (len(long) - len(merged))}")
@@ -192,7 +447,12 @@ def _duplicates(long: pd.DataFrame, rule: str) -> tuple[pd.DataFrame, Check]:
                        f"{n_dup} readings share a (subject, time); kept as they are")
 
 
-def _range_checks(long: pd.DataFrame, c: dict[str, Any], d: dict[str, Any]) -> list[Check]:
+def data_domain(spec: Spec) -> tuple[float, float] | None:
+    """The time domain the readings must lie in: ``checks.domain`` or ``model.domain``."""
+    return spec.options.domain
+
+
+def _range_checks(long: pd.DataFrame, c: dict[str, Any], spec: Spec) -> list[Check]:
     out = []
     if c.get("value_range") is not None:
         lo, hi = c["value_range"]
@@ -203,20 +463,32 @@ def _range_checks(long: pd.DataFrame, c: dict[str, Any], d: dict[str, Any]) -> l
         out.append(Check("values in declared range", status,
                          f"all values within [{lo:g}, {hi:g}]" if n == 0 else
                          f"{n} values outside [{lo:g}, {hi:g}] ({action})"))
-    if c.get("domain") is not None:
-        lo, hi = c["domain"]
+    domain = data_domain(spec)
+    if domain is not None:
+        lo, hi = domain
         n = int(((long.time < lo) | (long.time > hi)).sum())
-        out.append(Check("times in declared domain", "pass" if n == 0 else "fail",
-                         f"all times within [{lo:g}, {hi:g}]" if n == 0 else
-                         f"{n} readings at times outside [{lo:g}, {hi:g}]"))
+        if n == 0:
+            out.append(Check("times in declared domain", "pass",
+                             f"all times within [{lo:g}, {hi:g}]"))
+        elif c["out_of_domain"] == "drop":
+            out.append(Check("times in declared domain", "warn",
+                             f"{n} readings at times outside [{lo:g}, {hi:g}] (dropped)"))
+        else:
+            out.append(Check("times in declared domain", "fail",
+                             f"{n} readings at times outside [{lo:g}, {hi:g}] (refused; set "
+                             "checks.out_of_domain: drop to leave them out)"))
     return out
 
 
-def _apply_out_of_range(long: pd.DataFrame, c: dict[str, Any]) -> pd.DataFrame:
+def _apply_drops(long: pd.DataFrame, c: dict[str, Any], spec: Spec) -> pd.DataFrame:
+    keep = np.ones(len(long), dtype=bool)
     if c.get("value_range") is not None and c["out_of_range"] == "drop":
         lo, hi = c["value_range"]
-        return long[(long.value >= lo) & (long.value <= hi)].reset_index(drop=True)
-    return long
+        keep &= ((long.value >= lo) & (long.value <= hi)).to_numpy()
+    domain = data_domain(spec)
+    if domain is not None and c["out_of_domain"] == "drop":
+        keep &= ((long.time >= domain[0]) & (long.time <= domain[1])).to_numpy()
+    return long if keep.all() else long.loc[keep].reset_index(drop=True)
 
 
 def pair_coverage(long: pd.DataFrame, cells: int = 10) -> float:
@@ -259,12 +531,6 @@ def _design_checks(long: pd.DataFrame, c: dict[str, Any]) -> list[Check]:
                          f"{cover:.0%} of the 10 x 10 cells of the time-pair square hold pairs"
                          + ("" if ok else "; the covariance elsewhere is extrapolated")))
     return out
-
-
-def _finish(frame: pd.DataFrame, checks: list[Check], raw: bytes, path: Path, spec: Spec,
-            rows_read: int) -> Dataset:
-    return Dataset(frame, tuple(checks), path, spec.data["file"], len(raw),
-                   hashlib.sha256(raw).hexdigest(), rows_read)
 
 
 def require_passed(dataset: Dataset) -> None:

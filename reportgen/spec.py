@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import hashlib
 from dataclasses import dataclass
+from datetime import datetime
 from pathlib import Path
 from typing import Any
 
@@ -16,7 +17,7 @@ from .validation import make_options, spec_schema, validate
 MAX_SPEC_BYTES = 1_000_000
 
 DEFAULT_CHECKS: dict[str, Any] = {
-    "missing": "drop", "duplicates": "average", "out_of_range": "warn",
+    "missing": "drop", "duplicates": "average", "out_of_range": "warn", "out_of_domain": "fail",
     "min_subjects": 10, "min_pair_coverage": 0.9,
 }
 DEFAULT_SENSITIVITY: dict[str, Any] = {"factors": [0.5, 0.75, 1.5, 2.0],
@@ -159,6 +160,17 @@ def _json_safe(value: Any, path: str) -> None:
         raise SpecError(f"{path} must be a number; got nan.")
 
 
+def _check_time_origin(data: dict[str, Any]) -> None:
+    origin = data.get("time_origin")
+    if not isinstance(origin, str) or origin == "first":
+        return
+    try:
+        datetime.fromisoformat(origin)
+    except ValueError:
+        raise SpecError(f"data.time_origin must be an ISO date such as 2024-01-31, first, or "
+                        f"{{column: NAME}}; got {origin!r}.") from None
+
+
 def spec_from_bytes(raw: bytes, path: Path) -> Spec:
     content = parse_spec_bytes(raw, f"spec {str(path)!r}")
     _json_safe(content, "")
@@ -171,7 +183,12 @@ def spec_from_bytes(raw: bytes, path: Path) -> Spec:
         pair = checks.get(name)
         if pair is not None and not pair[1] > pair[0]:
             raise SpecError(f"checks.{name} must be [low, high] with high > low; got {pair!r}.")
+    _check_time_origin(data)
     model = dict(content.get("model", {}))
+    if "domain" in model and "domain" in checks and \
+            [float(v) for v in model["domain"]] != [float(v) for v in checks["domain"]]:
+        raise SpecError(f"checks.domain {checks['domain']!r} and model.domain "
+                        f"{model['domain']!r} differ; give the time domain once (in checks)")
     if "domain" not in model and "domain" in checks:
         model["domain"] = checks["domain"]
     model["band_level"] = report["band_level"]

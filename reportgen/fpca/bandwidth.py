@@ -23,12 +23,15 @@ from __future__ import annotations
 
 from collections.abc import Callable
 from dataclasses import dataclass
+from typing import TYPE_CHECKING
 
 import numpy as np
 
 from ..errors import EstimationError
-from .design import BinnedStats
 from .smoothing import FloatArray
+
+if TYPE_CHECKING:  # the binning (compiled kernels) is not needed to choose candidates
+    from .design import BinnedStats
 
 # smooth(eval_points or None for the bin centres, counts, sums, h) -> estimate
 Smoother = Callable[[FloatArray | None, FloatArray, FloatArray, float], FloatArray]

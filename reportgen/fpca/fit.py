@@ -435,6 +435,12 @@ def _check_variation(y: FloatArray, resid: FloatArray) -> None:
 
 
 def _check_design(sample: Sample, lo: float, hi: float) -> None:
+    outside = int(np.count_nonzero((sample.t < lo) | (sample.t > hi)))
+    if outside:
+        raise EstimationError(
+            f"{outside} readings lie outside the domain [{lo:.6g}, {hi:.6g}]; leave them out "
+            "or widen the domain (they would otherwise be counted at its ends)"
+        )
     n_multi = int(np.count_nonzero(sample.n_obs >= 2))
     if n_multi < 2:
         raise EstimationError(

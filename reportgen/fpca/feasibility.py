@@ -1,0 +1,147 @@
+"""What a fit would refuse, found from the design alone (no fit, no compiled kernels).
+
+``reportgen check`` calls this so that "usable" means that ``run`` will get past its
+feasibility tests: readings inside the domain, two subjects with two or more readings,
+readings that vary, and smoothers that are defined everywhere on the grid at the largest
+bandwidth the fit would try (a local linear fit is defined where its window holds enough
+distinct binned points; a larger window holds more, so when the largest candidate leaves a
+grid point undefined, every candidate does). It uses the fit's own binning (linear) and
+smoothers on counts only.
+
+Not covered: the cross-validation folds (a fold whose training part leaves a bin with data
+undefined makes a candidate fail; when all fail the run says so).
+"""
+
+from __future__ import annotations
+
+from itertools import pairwise
+
+import numpy as np
+from numpy.typing import NDArray
+
+from .bandwidth import candidate_bandwidths
+from .options import FPCAOptions
+from .smoothing import (
+    BinGrid,
+    FloatArray,
+    get_kernel,
+    local_linear_binned_1d,
+    local_linear_binned_2d,
+)
+
+IntArray = NDArray[np.intp]
+_CHUNK = 20_000  # subjects per block of the pair counts (memory ~ chunk x bins x 8 bytes)
+
+
+def _reading_counts(t: FloatArray, bins: BinGrid) -> FloatArray:
+    left, f = bins.locate(t)
+    return (np.bincount(left, 1.0 - f, bins.n_bins)
+            + np.bincount(left + 1, f, bins.n_bins))
+
+
+def pair_counts(subject: IntArray, t: FloatArray, bins: BinGrid) -> FloatArray:
+    """Linearly binned counts of the pairs (t_ij, t_il), j != l, shape (n_bins, n_bins).
+
+    Per subject, the pairs' weights are the outer product of the readings' bin weights
+    minus each reading's product with itself.
+    """
+    b = bins.n_bins
+    left, f = bins.locate(t)
+    order = np.argsort(subject, kind="stable")
+    subject, left, f = subject[order], left[order], f[order]
+    out = np.zeros((b, b))
+    n_subjects = int(subject.max()) + 1 if subject.size else 0
+    edges = np.searchsorted(subject, np.arange(0, n_subjects + _CHUNK, _CHUNK))
+    for lo, hi in pairwise(edges.tolist()):
+        if hi <= lo:
+            continue
+        s = subject[lo:hi] - subject[lo]
+        m = int(s[-1]) + 1
+        w = (np.bincount(s * b + left[lo:hi], 1.0 - f[lo:hi], m * b)
+             + np.bincount(s * b + left[lo:hi] + 1, f[lo:hi], m * b)).reshape(m, b)
+        out += w.T @ w
+    own = np.zeros(b * b)
+    for da, wa in ((0, 1.0 - f), (1, f)):
+        for db, wb in ((0, 1.0 - f), (1, f)):
+            own += np.bincount((left + da) * b + left + db, wa * wb, b * b)
+    return np.maximum(out - own.reshape(b, b), 0.0)
+
+
+def _largest(setting: float | str, span: float, bins: BinGrid, n_subjects: int,
+             dim: int) -> float:
+    if setting != "auto":
+        return float(setting)
+    return float(candidate_bandwidths(span, bins.width, n_subjects, dim)[-1])
+
+
+def problems(subject: IntArray, t: FloatArray, y: FloatArray,
+             options: FPCAOptions = FPCAOptions()) -> list[str]:
+    """Every reason the fit of these readings would stop, in the fit's words; [] if none.
+
+    ``subject`` holds codes 0 .. n_subjects - 1.
+    """
+    if t.size == 0:
+        return ["no readings"]
+    lo, hi = options.domain if options.domain is not None else (float(t.min()), float(t.max()))
+    out: list[str] = []
+    outside = int(np.count_nonzero((t < lo) | (t > hi)))
+    if outside:
+        out.append(f"{outside} readings lie outside the domain [{lo:.6g}, {hi:.6g}]")
+    n_obs = np.bincount(subject)
+    n_multi = int(np.count_nonzero(n_obs >= 2))
+    if n_multi < 2:
+        out.append("the covariance needs at least two subjects with two or more readings; "
+                   f"found {n_multi} among {n_obs.size} subjects")
+    if not hi > lo:
+        out.append(f"all readings are at one time ({lo:.6g}): a curve cannot be estimated")
+        return out
+    if float(np.ptp(y)) == 0.0:
+        out.append("every reading has the same value: there is nothing to decompose")
+    inside = (t >= lo) & (t <= hi)
+    subject, t = subject[inside], t[inside]
+    kernel = get_kernel(options.kernel)
+    grid = np.linspace(lo, hi, options.n_grid)
+    span, n = hi - lo, int(n_obs.size)
+    mbins = BinGrid(lo, hi, options.mean_bins)
+    cbins = BinGrid(lo, hi, options.covariance_bins)
+    counts = _reading_counts(t, mbins)
+    h = _largest(options.mean_bandwidth, span, mbins, n, 1)
+    evals = np.concatenate([grid, mbins.centers])
+    if not np.all(np.isfinite(local_linear_binned_1d(evals, mbins.centers, counts,
+                                                     np.zeros_like(counts), h, kernel))):
+        out.append(_gap("mean", h, options.mean_bandwidth, evals, mbins, counts, kernel))
+    dcounts = _reading_counts(t, cbins)
+    h = _largest(options.diagonal_bandwidth, span, cbins, n, 1)
+    if not np.all(np.isfinite(local_linear_binned_1d(grid, cbins.centers, dcounts,
+                                                     np.zeros_like(dcounts), h, kernel))):
+        out.append(_gap("diagonal", h, options.diagonal_bandwidth, grid, cbins, dcounts,
+                        kernel))
+    if n_multi >= 2:
+        pairs = pair_counts(subject, t, cbins)
+        h = _largest(options.covariance_bandwidth, span, cbins, n, 2)
+        surface = local_linear_binned_2d(grid, cbins.centers, pairs, np.zeros_like(pairs), h,
+                                         kernel, symmetric=True)
+        if not np.all(np.isfinite(surface)):
+            bad = np.flatnonzero(~np.all(np.isfinite(surface), axis=1))
+            out.append(_message("covariance", h, options.covariance_bandwidth, grid[bad],
+                                grid.size))
+    return out
+
+
+def _gap(what: str, h: float, setting: float | str, evals: FloatArray, bins: BinGrid,
+         counts: FloatArray, kernel: object) -> str:
+    est = local_linear_binned_1d(evals, bins.centers, counts, np.zeros_like(counts), h,
+                                 kernel)  # type: ignore[arg-type]
+    return _message(what, h, setting, np.sort(evals[~np.isfinite(est)]), evals.size)
+
+
+def _message(what: str, h: float, setting: float | str, bad: FloatArray, n: int) -> str:
+    where = (f"at {bad.size} of {n} points" if bad.size > 1 else "at 1 point") + (
+        f" between times {bad[0]:.4g} and {bad[-1]:.4g}" if bad.size > 1 else
+        f", time {bad[0]:.4g}")
+    if setting != "auto":
+        return (f"the fixed {what} bandwidth {h:.4g} is too small for this design: the "
+                f"{what} smoother is undefined {where} (too few readings nearby)")
+    return (f"no bandwidth up to {h:.4g} gives a defined {what}: the smoother is undefined "
+            f"{where} (too few readings nearby); narrow the domain or give a larger fixed "
+            "bandwidth")
