@@ -19,6 +19,7 @@ from .fpca import FPCAFit, fit_arrays, with_bandwidths
 from .fpca._kernels import compiled_on_disk
 from .fpca.components import choose
 from .fpca.frame import arrays_from_frame
+from .fpca.groups import GroupComparison, compare_groups
 from .fpca.smoothing import trapezoid_weights
 from .spec import Spec
 
@@ -49,6 +50,20 @@ class AnalysisResult:
     caveats: tuple[str, ...]
     stable: tuple[bool | None, ...]  # per component; None: no setting could be computed
     factors_note: str  # how the sensitivity factors were chosen
+    groups: GroupComparison | None = None  # when the spec names a group column
+    subject_groups: tuple[str, ...] = ()  # the group of each of fit.subjects
+
+    @property
+    def time_label(self) -> str:
+        """The time axis's name: the spec's time_label, the file's label, the column."""
+        d = self.spec.data
+        return str(d.get("time_label") or self.dataset.labels.get("time") or d["time"])
+
+    @property
+    def value_label(self) -> str:
+        """The measured value's name: the spec's value_label, the file's label, the column."""
+        d = self.spec.data
+        return str(d.get("value_label") or self.dataset.labels.get("value") or d["value"])
 
 
 def _similarity(grid: np.ndarray, a: np.ndarray, b: np.ndarray) -> float:
@@ -238,6 +253,30 @@ def _caveats(spec: Spec, ds: Dataset, fit: FPCAFit, runs: list[SensitivityRun],
     return out
 
 
+def _group_caveats(groups: GroupComparison | None, fit: FPCAFit) -> list[str]:
+    if groups is None:
+        return []
+    out = [
+        f"The groups ({', '.join(groups.labels)}) share one fitted model: one mean for the "
+        "scores, one set of eigenfunctions and eigenvalues, one error variance. Differences "
+        "in how subjects vary within each group are not modelled, and each subject's scores "
+        "are pulled towards the common mean, the more so the fewer readings the subject has: "
+        "groups with fewer readings per subject look closer to the common mean than they are.",
+        f"The group test is one test of all {fit.n_components} retained component(s) "
+        "together. The per-component averages and the group mean curves are descriptive: "
+        "they are not adjusted for multiple comparisons, and a difference read off them after "
+        "looking at the data is not a tested finding. A comparison planned in the protocol "
+        "takes precedence.",
+    ]
+    gaps = [lab for lab, m in zip(groups.labels, groups.means, strict=True)
+            if not np.all(np.isfinite(m))]
+    if gaps:
+        out.append(f"The mean curve of group(s) {', '.join(gaps)} is undefined over part of the "
+                   "time domain at the common mean bandwidth (too few readings there); the "
+                   "figure leaves those parts out.")
+    return out
+
+
 # Below this the covariance smoother's local design is called nearly singular. Measured: at
 # the domain ends of well-covered designs the value falls to 0.06-0.09 (one-sided windows);
 # where eigenfunctions showed kinks (a thin band of pairs in two open datasets) it was
@@ -316,11 +355,20 @@ def analyse(spec: Spec, ds: Dataset, progress: Progress = lambda _: None,
         all(np.nan_to_num(r.similarity[k]) >= threshold for r in computed) if computed else None
         for k in range(fit.n_components)]
     residuals = _residuals(fit, ds.frame)
+    groups: GroupComparison | None = None
+    subject_groups: tuple[str, ...] = ()
+    if "group" in ds.frame:
+        progress("groups")
+        per = ds.frame.drop_duplicates("subject").set_index("subject")["group"]
+        subject_groups = tuple(str(g) for g in per.reindex(fit.subjects).to_numpy())
+        groups = compare_groups(fit, codes, t, y, np.asarray(subject_groups))
+        lap("groups")
+    caveats = _caveats(spec, ds, fit, runs, stable, residuals) + _group_caveats(groups, fit)
     return AnalysisResult(
         spec=spec, dataset=ds, fit=fit, sensitivity=tuple(runs),
         residuals=residuals, residual_summary=_residual_summary(residuals),
         outliers=_outliers(fit, spec.subjects["outlier_quantile"]),
         shown_subjects=_shown(fit, spec),
-        caveats=tuple(_caveats(spec, ds, fit, runs, stable, residuals)), stable=tuple(stable),
-        factors_note=factors_note,
+        caveats=tuple(caveats), stable=tuple(stable), factors_note=factors_note,
+        groups=groups, subject_groups=subject_groups,
     )

@@ -18,16 +18,22 @@ from .errors import ReportgenError
 
 STARTER = """\
 # reportgen spec: edit the values, then run `reportgen check {name}` and `reportgen run {name}`.
+# The columns of {data_name} (type, stored label, and the role guessed for it):
+{listing}
 report:
   id: {rid}                 # folder name of the runs: letters, digits, . _ -
   title: "{title}"
   authors: []
   band_level: 0.95          # level of the pointwise bands
 data:
-  file: {file}              # relative to this spec; .csv or .parquet
+  file: {file}              # relative to this spec: .csv .parquet .xpt .sas7bdat .dta .sav
   subject: {subject}        # column that identifies the subject
-  time: {time}              # numeric time of the reading
-  value: {value}            # the measurement
+  time: {time}              # time of the reading: numbers, or dates with time_origin
+{time_lines}  value: {value}            # the measurement
+  # group: ARM              # optional: arm, cohort or site (one value per subject)
+  # keep_rows:              # optional: keep only rows that meet every condition
+  #   - {{column: PARAMCD, equals: ALB}}
+  #   - {{column: ANL01FL, in: ["Y"]}}
   time_unit: ""
   value_unit: ""
   transform: none           # none, log or log10
@@ -151,32 +157,56 @@ def _cmd_compare(args: argparse.Namespace) -> int:
     return _compare(Path(args.run_a), Path(args.run_b))
 
 
-def _cmd_init(args: argparse.Namespace) -> int:
-    import pandas as pd
+DATE_LINES = """\
+  time_origin: first        # dates: first (each subject's first reading), an ISO date, or
+                            # {column: NAME} (each subject's baseline date in that column)
+  time_scale: days          # days, weeks, months, years or hours
+"""
+NUMBER_LINES = """\
+  # time_origin: first      # optional: count time from each subject's first reading
+"""
 
+
+def _cmd_init(args: argparse.Namespace) -> int:
     from .errors import DataError
+    from .readers import detect_format, parse_table
+    from .starter import column_listing, guess_columns
 
     data = Path(args.data)
     if not data.is_file():
         raise DataError(f"data file {str(data)!r} does not exist or is not a file")
-    try:
-        head = (pd.read_parquet(data) if data.suffix.lower() in (".parquet", ".pq")
-                else pd.read_csv(data, nrows=50))
-    except Exception as e:
-        raise DataError(f"cannot read {str(data)!r}: {str(e).splitlines()[0]}") from e
-    cols = [str(c) for c in head.columns]
-    if len(cols) < 3:
-        raise DataError(f"{str(data)!r} has {len(cols)} column(s); a subject, a time and a "
-                        "value column are needed")
     target = Path(args.spec)
     if target.exists():
         raise DataError(f"{str(target)!r} exists already; choose another name")
+    try:
+        raw = data.read_bytes()
+    except OSError as e:
+        raise DataError(f"cannot read {str(data)!r}: {e.strerror}") from e
+    fmt = detect_format(data.name)
+    table = parse_table(raw, fmt, str(data), nrows=500)
+    cols = [str(c) for c in table.frame.columns]
+    if len(cols) < 3:
+        sep = (" (CSV fields are read as separated by "
+               f"{table.describe_delimiter()}; is another separator used?)"
+               if fmt == "csv" else "")
+        raise DataError(f"{str(data)!r} has {len(cols)} column(s){sep}; a subject, a time and "
+                        "a value column are needed")
+    try:
+        guess = guess_columns(table)
+    except ValueError as e:
+        raise DataError(f"{str(data)!r}: {e}; the columns are {', '.join(cols)}") from e
     rel = os.path.relpath(data.resolve(), target.resolve().parent)
     rid = "".join(ch if ch.isalnum() or ch in "._-" else "-" for ch in data.stem)[:60] or "study"
     text = STARTER.format(name=target.name, rid=rid, title=f"Appendix: {data.stem}", file=rel,
-                          subject=cols[0], time=cols[1], value=cols[2])
+                          subject=guess.subject, time=guess.time, value=guess.value,
+                          data_name=data.name, listing=column_listing(guess),
+                          time_lines=DATE_LINES if guess.time_is_date else NUMBER_LINES)
     target.write_text(text, encoding="utf-8")
-    print(f"starter spec written: {target} (check the column names: {', '.join(cols[:6])})")
+    print(f"starter spec written: {target}")
+    print(f"guessed: subject {guess.subject!r}, time {guess.time!r}"
+          + (" (dates: time_origin first, in days)" if guess.time_is_date else "")
+          + f", value {guess.value!r}")
+    print(f"columns: {', '.join(cols)}")
     return 0
 
 

@@ -447,9 +447,18 @@ def _duplicates(long: pd.DataFrame, rule: str) -> tuple[pd.DataFrame, Check]:
                        f"{n_dup} readings share a (subject, time); kept as they are")
 
 
-def data_domain(spec: Spec) -> tuple[float, float] | None:
-    """The time domain the readings must lie in: ``checks.domain`` or ``model.domain``."""
-    return spec.options.domain
+def data_domains(spec: Spec) -> list[tuple[str, tuple[float, float]]]:
+    """The time domains the readings must lie in, each with its check's name:
+    ``checks.domain`` (the plausible times) and ``model.domain`` (the fitted domain; the
+    same as checks.domain when only that is given)."""
+    out = []
+    declared = spec.checks.get("domain")
+    if declared is not None:
+        out.append(("times in declared domain", (float(declared[0]), float(declared[1]))))
+    fitted = spec.options.domain
+    if fitted is not None and (declared is None or tuple(fitted) != out[0][1]):
+        out.append(("times in the fitted domain", (float(fitted[0]), float(fitted[1]))))
+    return out
 
 
 def _range_checks(long: pd.DataFrame, c: dict[str, Any], spec: Spec) -> list[Check]:
@@ -463,18 +472,15 @@ def _range_checks(long: pd.DataFrame, c: dict[str, Any], spec: Spec) -> list[Che
         out.append(Check("values in declared range", status,
                          f"all values within [{lo:g}, {hi:g}]" if n == 0 else
                          f"{n} values outside [{lo:g}, {hi:g}] ({action})"))
-    domain = data_domain(spec)
-    if domain is not None:
-        lo, hi = domain
+    for name, (lo, hi) in data_domains(spec):
         n = int(((long.time < lo) | (long.time > hi)).sum())
         if n == 0:
-            out.append(Check("times in declared domain", "pass",
-                             f"all times within [{lo:g}, {hi:g}]"))
+            out.append(Check(name, "pass", f"all times within [{lo:g}, {hi:g}]"))
         elif c["out_of_domain"] == "drop":
-            out.append(Check("times in declared domain", "warn",
+            out.append(Check(name, "warn",
                              f"{n} readings at times outside [{lo:g}, {hi:g}] (dropped)"))
         else:
-            out.append(Check("times in declared domain", "fail",
+            out.append(Check(name, "fail",
                              f"{n} readings at times outside [{lo:g}, {hi:g}] (refused; set "
                              "checks.out_of_domain: drop to leave them out)"))
     return out
@@ -485,9 +491,9 @@ def _apply_drops(long: pd.DataFrame, c: dict[str, Any], spec: Spec) -> pd.DataFr
     if c.get("value_range") is not None and c["out_of_range"] == "drop":
         lo, hi = c["value_range"]
         keep &= ((long.value >= lo) & (long.value <= hi)).to_numpy()
-    domain = data_domain(spec)
-    if domain is not None and c["out_of_domain"] == "drop":
-        keep &= ((long.time >= domain[0]) & (long.time <= domain[1])).to_numpy()
+    if c["out_of_domain"] == "drop":
+        for _, (lo, hi) in data_domains(spec):
+            keep &= ((long.time >= lo) & (long.time <= hi)).to_numpy()
     return long if keep.all() else long.loc[keep].reset_index(drop=True)
 
 

@@ -96,7 +96,10 @@ def make_figures(result: AnalysisResult, names: Sequence[str] | None = None
     out = {}
     with plt.rc_context(cast(Any, STYLE)):
         for name in wanted:
-            fig, caption, alt = FIGURES[name](result)
+            drawn = FIGURES[name](result)
+            if drawn is None:  # not part of this report (e.g. no groups)
+                continue
+            fig, caption, alt = drawn
             out[name] = (_svg(fig, name), caption, alt)
     return out
 
@@ -106,12 +109,12 @@ Figure = tuple[plt.Figure, str, str]  # the figure, its caption, its alt text
 
 def _time_label(r: AnalysisResult) -> str:
     unit = r.spec.data["time_unit"]
-    return "time" + (f" ({unit})" if unit else "")
+    return r.time_label + (f" ({unit})" if unit else "")
 
 
 def _value_label(r: AnalysisResult) -> str:
     unit = r.spec.value_unit
-    return "value" + (f" ({unit})" if unit else "")
+    return r.value_label + (f" ({unit})" if unit else "")
 
 
 def _level(r: AnalysisResult) -> str:
@@ -406,8 +409,61 @@ def _scores_figure(r: AnalysisResult) -> Figure:
     return fig, caption, alt
 
 
-# The report's figures, in report order: name -> drawing function.
-FIGURES: dict[str, Callable[[AnalysisResult], Figure]] = {
+def _group_means(r: AnalysisResult) -> Figure | None:
+    g = r.groups
+    if g is None:
+        return None
+    fit, level = r.fit, _level(r)
+    z = fit.band_multiplier()
+    fig, ax = plt.subplots(figsize=(6, 3.2))
+    for i, label in enumerate(g.labels):
+        color = PALETTE[i % len(PALETTE)]
+        style = ("-", "--", ":", "-.")[(i // len(PALETTE)) % 4]
+        ax.fill_between(fit.grid, g.means[i] - z * g.mean_se[i], g.means[i] + z * g.mean_se[i],
+                        color=color, alpha=0.18, linewidth=0)
+        ax.plot(fit.grid, g.means[i], style, color=color,
+                label=f"{label} ({g.n_subjects[i]} subjects)")
+    ax.set_xlabel(_time_label(r))
+    ax.set_ylabel(_value_label(r))
+    ax.legend(fontsize=7)
+    return (fig, f"Mean curve of each group with a pointwise {level} band (cluster-robust over "
+            "the group's subjects, without smoothing bias), each smoothed at the common mean "
+            f"bandwidth {fit.mean_bandwidth:.4g}. Descriptive: not adjusted for multiple "
+            "comparisons.",
+            "One mean curve per group with a shaded band, on one set of axes.")
+
+
+def _group_scores(r: AnalysisResult) -> Figure | None:
+    g = r.groups
+    if g is None:
+        return None
+    fit = r.fit
+    shown = min(fit.n_components, 4)
+    su = r.spec.units()["score"]
+    codes = {label: i for i, label in enumerate(g.labels)}
+    member = np.array([codes[x] for x in r.subject_groups])
+    fig, axes = plt.subplots(1, shown, figsize=(min(7.4, 2.4 * shown + 1.2), 2.8),
+                             squeeze=False)
+    for k in range(shown):
+        ax = axes[0, k]
+        data = [fit.score_values[member == i, k] for i in range(len(g.labels))]
+        # Whiskers at the 5th and 95th percentiles and no per-subject marks: the figure's
+        # size does not grow with the number of subjects.
+        ax.boxplot(data, whis=(5, 95), showfliers=False, widths=0.6)
+        ax.set_xticks(range(1, len(g.labels) + 1), list(g.labels), fontsize=7,
+                      rotation=30 if len(g.labels) > 3 else 0)
+        ax.set_title(f"score {k + 1}", fontsize=8)
+        ax.axhline(0.0, color="#999", linewidth=0.8)
+    axes[0, 0].set_ylabel("score" + (f" ({su})" if su else ""))
+    more = (f" (the first 4 of {fit.n_components} components)"
+            if fit.n_components > shown else "")
+    return (fig, f"Scores by group{more}: boxes span the quartiles, whiskers the 5th to 95th "
+            "percentiles, the line is the median.",
+            "Box plots of the subjects' scores, one panel per component, one box per group.")
+
+
+# The report's figures, in report order: name -> drawing function (None: not in this report).
+FIGURES: dict[str, Callable[[AnalysisResult], Figure | None]] = {
     "readings_per_subject": _readings_per_subject,
     "design": _design,
     "mean": _mean,
@@ -417,6 +473,8 @@ FIGURES: dict[str, Callable[[AnalysisResult], Figure]] = {
     "eigenfunctions": _eigenfunctions,
     "effects": _effects,
     "scores": _scores_figure,
+    "group_means": _group_means,
+    "group_scores": _group_scores,
     "trajectories": _trajectories,
     "residuals": _residuals,
     "sensitivity": _sensitivity,

@@ -183,6 +183,8 @@ def build_sections(result: AnalysisResult, record_view: dict[str, Any],
            + (f": {named} (squared distance in brackets)" if named else "")
            + ". Distances and flags of every subject: tables/scores.csv.")
     fig(s, "scores")
+    if result.groups is not None:
+        _groups_section(b, result, fig)
     s = b.section("trajectories", "Trajectories", "Recovered curves of selected subjects with "
                   "their readings and bands.")
     chosen = list(map(str, spec.subjects["show"]))
@@ -255,6 +257,29 @@ def build_sections(result: AnalysisResult, record_view: dict[str, Any],
     b.text(s, record_view["commands"], kind="pre")
     b.text(s, spec.raw.decode("utf-8"), kind="pre")
     return b.sections
+
+
+def _groups_section(b: _Builder, result: AnalysisResult, fig: Any) -> None:
+    g, fit, spec = result.groups, result.fit, result.spec
+    assert g is not None
+    su = spec.units()["score"]
+    s = b.section("groups", "Groups", f"The subjects by {spec.data['group']}: mean curves, "
+                  "scores and a test of equal mean scores.")
+    k = fit.n_components
+    b.table(s, "Subjects and average scores per group (descriptive).",
+            ["group", "subjects"] + [f"mean score {j + 1}" + (f" ({su})" if su else "")
+                                     for j in range(k)],
+            [[label, int(n), *g.score_means[i]]
+             for i, (label, n) in enumerate(zip(g.labels, g.n_subjects, strict=True))])
+    resolution = 1 / (1 + g.permutations)
+    b.text(s, f"Test of equal mean scores across the {len(g.labels)} groups, on the {k} "
+           "retained component(s) together: Pillai's trace of a one-way MANOVA of the scores "
+           f"is {g.statistic:.4g}; its p-value by {g.permutations} random permutations of the "
+           f"group labels over subjects (seed {g.seed}) is {g.p_value:.4g} (the smallest "
+           f"p-value this number of permutations can give is {resolution:.2g}). The scores "
+           "come from one model fitted to all groups together; see the caveats.")
+    fig(s, "group_means")
+    fig(s, "group_scores")
 
 
 def render_html(result: AnalysisResult, version: int, record_view: dict[str, Any],

@@ -185,10 +185,6 @@ def spec_from_bytes(raw: bytes, path: Path) -> Spec:
             raise SpecError(f"checks.{name} must be [low, high] with high > low; got {pair!r}.")
     _check_time_origin(data)
     model = dict(content.get("model", {}))
-    if "domain" in model and "domain" in checks and \
-            [float(v) for v in model["domain"]] != [float(v) for v in checks["domain"]]:
-        raise SpecError(f"checks.domain {checks['domain']!r} and model.domain "
-                        f"{model['domain']!r} differ; give the time domain once (in checks)")
     if "domain" not in model and "domain" in checks:
         model["domain"] = checks["domain"]
     model["band_level"] = report["band_level"]

@@ -48,10 +48,16 @@ def build_tables(result: AnalysisResult) -> dict[str, pd.DataFrame]:
     scores["subject"] = scores["subject"].astype(str)
     scores["distance2"] = result.outliers.distance2.to_numpy()
     scores["flagged"] = result.outliers.flagged.to_numpy()
-    tables["scores"] = scores
-    tables["trajectories"] = fit.trajectories(
+    trajectories = fit.trajectories(
         [s for s in fit.subjects if str(s) in set(result.shown_subjects)]
     )
+    if result.groups is not None:
+        group_of = dict(zip(map(str, fit.subjects), result.subject_groups, strict=True))
+        scores.insert(1, "group", list(result.subject_groups))
+        trajectories.insert(1, "group", trajectories.subject.astype(str).map(group_of))
+        tables.update(group_tables(result))
+    tables["scores"] = scores
+    tables["trajectories"] = trajectories
     tables["checks"] = pd.DataFrame(
         [(c.name, c.status, c.detail) for c in result.dataset.checks],
         columns=["check", "status", "detail"],
@@ -91,6 +97,27 @@ def build_tables(result: AnalysisResult) -> dict[str, pd.DataFrame]:
     tables["units"] = pd.DataFrame(sorted(result.spec.units().items()),
                                    columns=["quantity", "unit"])
     return tables
+
+
+def group_tables(result: AnalysisResult) -> dict[str, pd.DataFrame]:
+    """groups.csv (sizes, average scores, the test) and group_means.csv (curves, bands)."""
+    g, fit = result.groups, result.fit
+    assert g is not None
+    z = fit.band_multiplier()
+    summary = pd.DataFrame({"group": list(g.labels), "n_subjects": g.n_subjects})
+    for j in range(g.score_means.shape[1]):
+        summary[f"mean_score_{j + 1}"] = g.score_means[:, j]
+    summary["pillai_trace"] = g.statistic
+    summary["p_value"] = g.p_value
+    summary["permutations"] = g.permutations
+    summary["seed"] = g.seed
+    n_grid = fit.grid.size
+    means = pd.DataFrame({
+        "group": np.repeat(list(g.labels), n_grid), "time": np.tile(fit.grid, len(g.labels)),
+        "mean": g.means.ravel(), "standard_error": g.mean_se.ravel(),
+        "lower": (g.means - z * g.mean_se).ravel(), "upper": (g.means + z * g.mean_se).ravel(),
+    })
+    return {"groups": summary, "group_means": means}
 
 
 def canonical_bytes(tables: dict[str, pd.DataFrame]) -> dict[str, bytes]:

@@ -149,7 +149,7 @@ class RenderWorker:
         if remote is None:
             remote = make_figures(result, SUMMARY_FIGURES)
         both = {**local, **remote}
-        return {name: both[name] for name in FIGURES}
+        return {name: both[name] for name in FIGURES if name in both}
 
     def pdf(self, html: bytes, spec_bytes: bytes, record_bytes: bytes, stamp: str) -> bytes:
         pending = self._submit("pdf", html, spec_bytes, record_bytes, stamp)
