@@ -334,7 +334,7 @@ def _typed(frame: pd.DataFrame, rows: np.ndarray, table: Table, spec: Spec,
     if parts:
         checks.append(Check("columns typed", "fail", "; ".join(parts)))
         raise _Stop
-    subj = frame[d["subject"]].astype("string")
+    subj = _as_ids(frame[d["subject"]])
     codes = pd.factorize(subj)[0]
     origin, problem = _origin(frame, d, kind, t, codes)
     if problem:
@@ -363,9 +363,21 @@ def _typed(frame: pd.DataFrame, rows: np.ndarray, table: Table, spec: Spec,
         raise _Stop
     long = pd.DataFrame({"subject": subj.to_numpy(), "time": t, "value": y})
     if d.get("group"):
-        long["group"] = frame[d["group"]].astype("string").to_numpy()
+        long["group"] = _as_ids(frame[d["group"]]).to_numpy()
     long.attrs["rows"] = rows
     return long
+
+
+def _as_ids(series: pd.Series) -> pd.Series:
+    """Identifiers as text; whole numbers stored as floats (SAS, Stata and SPSS files store
+    numeric ids so) read 4601, not 4601.0, as they do from a CSV file."""
+    if pd.api.types.is_float_dtype(series):
+        values = series.to_numpy(dtype=np.float64, na_value=np.nan)
+        finite = values[np.isfinite(values)]
+        if finite.size and np.all(finite == np.round(finite)) and \
+                np.all(np.abs(finite) < 2**53):
+            return series.astype("Int64").astype("string")
+    return series.astype("string")
 
 
 def _date_detail(d: dict[str, Any]) -> str:

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import hashlib
 from dataclasses import dataclass
-from datetime import datetime
+from datetime import date, datetime
 from pathlib import Path
 from typing import Any
 
@@ -144,6 +144,17 @@ def load_spec(path: str | Path) -> Spec:
     return spec_from_bytes(raw, p)
 
 
+def _dates_as_text(value: Any) -> Any:
+    """YAML reads an unquoted 2024-01-31 as a date; the spec means the text (ISO 8601)."""
+    if isinstance(value, dict):
+        return {k: _dates_as_text(v) for k, v in value.items()}
+    if isinstance(value, list):
+        return [_dates_as_text(v) for v in value]
+    if isinstance(value, date):
+        return value.isoformat()
+    return value
+
+
 def _json_safe(value: Any, path: str) -> None:
     """Reject YAML values that JSON Schema cannot judge (dates, bytes, non-string keys)."""
     if isinstance(value, dict):
@@ -173,6 +184,7 @@ def _check_time_origin(data: dict[str, Any]) -> None:
 
 def spec_from_bytes(raw: bytes, path: Path) -> Spec:
     content = parse_spec_bytes(raw, f"spec {str(path)!r}")
+    content = _dates_as_text(content)
     _json_safe(content, "")
     validate(content, spec_schema())
     report = {"authors": [], "description": "", "band_level": 0.95, **content["report"]}
