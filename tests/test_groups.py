@@ -73,8 +73,8 @@ def test_permutation_p_value_detects_a_real_shift_and_is_uniform_without_one() -
     scores = rng.normal(size=(120, 2))
     code = np.repeat(np.arange(3), 40).astype(np.intp)
     shifted = scores + np.where(code == 2, 0.9, 0.0)[:, None]
-    stat, p = permutation_test(shifted, code, 3, 999, 1)
-    value, f_p = _manova(shifted, code.astype(str))
+    _stat, p = permutation_test(shifted, code, 3, 999, 1)
+    _value, f_p = _manova(shifted, code.astype(str))
     assert f_p < 1e-3 and p == pytest.approx(1 / 1000)
     # Without a shift, p-values over many data sets are roughly uniform (a valid test).
     ps = [permutation_test(rng.normal(size=(60, 2)), code[::2], 3, 199, s)[1]
@@ -91,7 +91,7 @@ def test_permutations_shrink_only_for_very_many_subjects() -> None:
 
 
 def test_group_mean_is_the_common_mean_estimator(fitted) -> None:  # type: ignore[no-untyped-def]
-    codes, t, y, labels, fit = fitted
+    codes, t, y, _labels, fit = fitted
     mean, se = group_mean(Sample.from_arrays(codes, t, y), fit)
     np.testing.assert_allclose(mean, fit.mean, rtol=1e-12)
     np.testing.assert_allclose(se, fit.mean_se, rtol=1e-10)
