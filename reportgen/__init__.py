@@ -3,6 +3,7 @@
 Public API (everything else is internal):
 
 - :func:`fit_sparse_fpca` and its result :class:`FPCAFit`
+- :func:`load_fit`: a run's stored fit (:class:`StoredFit`), to score new subjects
 - :class:`FPCAOptions`
 - the exception hierarchy of :mod:`reportgen.errors`
 
@@ -25,6 +26,7 @@ from .errors import (
 if _typing.TYPE_CHECKING:
     from .api import fit_sparse_fpca
     from .fpca import FPCAFit, FPCAOptions
+    from .predict import StoredFit, load_fit
 
 __version__ = "0.1.0"
 
@@ -38,8 +40,10 @@ __all__ = [
     "RecordError",
     "ReportgenError",
     "SpecError",
+    "StoredFit",
     "__version__",
     "fit_sparse_fpca",
+    "load_fit",
 ]
 
 
@@ -48,6 +52,10 @@ def __getattr__(name: str) -> _typing.Any:
         from .api import fit_sparse_fpca
 
         return fit_sparse_fpca
+    if name in ("load_fit", "StoredFit"):
+        from . import predict
+
+        return getattr(predict, name)
     if name in ("FPCAFit", "FPCAOptions"):
         from . import fpca
 

@@ -210,6 +210,18 @@ def _cmd_init(args: argparse.Namespace) -> int:
     return 0
 
 
+def _cmd_predict(args: argparse.Namespace) -> int:
+    from .predict import load_fit, summary, write_table
+
+    fit = load_fit(args.run_dir)
+    frame = fit.predict_file(args.data)
+    path = write_table(frame, args.out)
+    subjects, rows = summary(frame)
+    print(f"predictions written: {path} ({subjects} subjects, {rows} rows; scores and "
+          f"trajectories with {fit.predictor.band_level:.0%} bands on the run's grid)")
+    return 0
+
+
 def _cmd_schema(args: argparse.Namespace) -> int:
     from .validation import spec_schema
 
@@ -268,6 +280,13 @@ def build_parser() -> argparse.ArgumentParser:
     sp.add_argument("data")
     sp.add_argument("spec", nargs="?", default="spec.yaml")
     sp.set_defaults(func=_cmd_init)
+    sp = add("predict", "scores and trajectories for the subjects in DATA from the fit "
+             "stored in RUN_DIR (checked against its SHA256SUMS first)")
+    sp.add_argument("run_dir")
+    sp.add_argument("data", help="a data file with the run's columns, read as the run's spec "
+                    "reads its data")
+    sp.add_argument("--out", required=True, help="output file: .csv or .parquet")
+    sp.set_defaults(func=_cmd_predict)
     sp = add("schema", "print the JSON Schema of a spec")
     sp.set_defaults(func=_cmd_schema)
     sp = add("demo", "run the first example spec")
@@ -277,7 +296,7 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 # Commands that compute numbers; they run on one BLAS thread (see ``threads``).
-NUMERIC_COMMANDS = ("run", "verify", "demo")
+NUMERIC_COMMANDS = ("run", "verify", "demo", "predict")
 
 
 def main(argv: Sequence[str] | None = None) -> int:

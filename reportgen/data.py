@@ -65,24 +65,25 @@ def read_file(spec: Spec) -> tuple[bytes, Path]:
     return read_path(spec.data_path, spec.data["file"])
 
 
-def read_path(path: Path, shown: str) -> tuple[bytes, Path]:
-    """The bytes of ``path`` (``shown`` is how the user named it)."""
+def read_path(path: Path, shown: str, what: str = "data.file") -> tuple[bytes, Path]:
+    """The bytes of ``path`` (``shown`` is how the user named it, ``what`` the field or
+    argument that named it)."""
     try:
         st = os.stat(path)
     except FileNotFoundError:
-        raise DataError(f"data.file {shown!r} does not exist (looked for {str(path)!r})") from None
+        raise DataError(f"{what} {shown!r} does not exist (looked for {str(path)!r})") from None
     except (OSError, ValueError) as e:  # ValueError: an embedded NUL byte in the path
         reason = getattr(e, "strerror", None) or str(e)
-        raise DataError(f"data.file {shown!r} cannot be read: {reason}") from e
+        raise DataError(f"{what} {shown!r} cannot be read: {reason}") from e
     if stat.S_ISDIR(st.st_mode):
-        raise DataError(f"data.file {shown!r} is a directory; give a data file")
+        raise DataError(f"{what} {shown!r} is a directory; give a data file")
     if not stat.S_ISREG(st.st_mode):
-        raise DataError(f"data.file {shown!r} is not a regular file (device, pipe or socket)")
+        raise DataError(f"{what} {shown!r} is not a regular file (device, pipe or socket)")
     try:
         with open(path, "rb") as fh:
             return fh.read(), path
     except OSError as e:
-        raise DataError(f"data.file {shown!r} cannot be read: {e.strerror}") from e
+        raise DataError(f"{what} {shown!r} cannot be read: {e.strerror}") from e
 
 
 def _columns_needed(d: dict[str, Any]) -> list[tuple[str, str]]:

@@ -94,6 +94,7 @@ def build_tables(result: AnalysisResult) -> dict[str, pd.DataFrame]:
         rows.append(row)
     tables["sensitivity"] = pd.DataFrame(rows)
     tables["residuals_by_subject"] = result.residual_summary
+    tables["model"] = fit.predictor().to_frame()
     tables["units"] = pd.DataFrame(sorted(result.spec.units().items()),
                                    columns=["quantity", "unit"])
     return tables

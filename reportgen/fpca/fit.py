@@ -47,6 +47,7 @@ from .design import (
 from .frame import arrays_from_frame
 from .likelihood import LikelihoodFit, maximise, starting_error_variance
 from .options import FPCAOptions
+from .predictor import Predictor
 from .scores import SampleTerms, conditional_scores, loo_errors, sample_terms
 from .smoothing import (
     BinGrid,
@@ -284,6 +285,15 @@ class FPCAFit:
             "fitted": fitted.ravel(), "lower": lower.ravel(), "upper": upper.ravel(),
             "lower_simultaneous": lower_s.ravel(), "upper_simultaneous": upper_s.ravel(),
         })
+
+    def predictor(self) -> Predictor:
+        """The population parts that score new subjects (stored in a run as model.csv)."""
+        dof = self.likelihood.eigenvalues.size if np.any(self.truncation_variance > 0) \
+            else self.n_components
+        fine_t, fine_mu = self._mean_fine
+        return Predictor(self.grid, fine_t, fine_mu, self.eigenfunctions, self.eigenvalues,
+                         self.error_variance, self.truncation_variance,
+                         self.options.band_level, int(dof))
 
     def conditional_scores(self, sample: Sample) -> tuple[FloatArray, FloatArray]:
         """BLUP scores and error covariance for readings of (new) subjects."""
