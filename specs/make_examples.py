@@ -7,7 +7,8 @@ clinic_visits.csv  A fictional cohort: a blood marker (arbitrary units) read at 
                    visits each, visits more frequent early on.
 pump_service.csv   Fictional equipment: vibration level (mm/s) of water pumps read at
                    unscheduled service calls over 36 months; 200 pumps, 2 to 7 calls each,
-                   with multiplicative reading error (15% on the log scale).
+                   with multiplicative reading error (15% on the log scale); each pump
+                   belongs to one of three depots (in turn, with no effect on the readings).
 """
 
 from __future__ import annotations
@@ -18,6 +19,7 @@ import numpy as np
 import pandas as pd
 
 HERE = Path(__file__).resolve().parent
+DEPOTS = ("harbour", "hillside", "riverside")
 
 
 def clinic_visits(seed: int = 20261201) -> pd.DataFrame:
@@ -51,8 +53,8 @@ def pump_service(seed: int = 4242) -> pd.DataFrame:
         shift = rng.normal(0, 0.6)
         level = 2.0 + 0.08 * wear * times + shift + 0.4 * np.cos(2 * np.pi * times / 12)
         for t, v in zip(times, level * np.exp(rng.normal(0, 0.15, m)), strict=True):
-            rows.append((f"pump-{i + 1:03d}", float(t), round(float(v), 3)))
-    return pd.DataFrame(rows, columns=["pump", "month", "vibration"])
+            rows.append((f"pump-{i + 1:03d}", DEPOTS[i % 3], float(t), round(float(v), 3)))
+    return pd.DataFrame(rows, columns=["pump", "depot", "month", "vibration"])
 
 
 if __name__ == "__main__":

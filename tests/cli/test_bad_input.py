@@ -53,8 +53,10 @@ CASES = [
     ("yaml alias", BASE + "gates: &g {}\nsubjects: *g\n", None, "anchors"),
     ("python tag", BASE + "extra: !!python/object/apply:os.system ['true']\n", None,
      "not valid YAML"),
-    ("unquoted date", BASE.replace('"Bad input"', "2024-01-31"), None,
-     "report.title must be plain text"),
+    # an unquoted date is read as its ISO text (YAML would make it a date object)
+    ("unquoted date", BASE.replace('title: "Bad input"', 'title: "Bad input"\n  band_level: '
+                                   "2024-01-31"), None,
+     "report.band_level must be a number between 0 and 1 (exclusive); got '2024-01-31'"),
     ("missing data file", BASE.replace("d.csv", "nope.csv"), None, "data.file 'nope.csv' does "
      "not exist"),
     ("directory as data", BASE.replace("d.csv", "."), None, "is a directory"),
