@@ -145,4 +145,6 @@ def test_dates_without_a_unit_are_a_clear_error(tmp_path: Path,
     (tmp_path / "s.yaml").write_text(SPEC.format(extra=""))
     assert main(["run", str(tmp_path / "s.yaml"), "--out", str(tmp_path / "runs")]) == 2
     err = capsys.readouterr().err
-    assert "time value(s) are not numbers" in err and "row 2 of the file" in err
+    # dates are never read as numbers; the message names the fields to set
+    assert "column 'when' holds dates; set data.time_origin" in err
+    assert "data.time_scale" in err
