@@ -21,6 +21,7 @@ from .errors import (
     RecordError,
     ReportgenError,
     SpecError,
+    TemplateError,
 )
 
 if _typing.TYPE_CHECKING:
@@ -41,6 +42,7 @@ __all__ = [
     "ReportgenError",
     "SpecError",
     "StoredFit",
+    "TemplateError",
     "__version__",
     "fit_sparse_fpca",
     "load_fit",

@@ -6,7 +6,8 @@ Hierarchy::
     ├── SpecError                  the YAML spec is malformed or invalid (names the YAML path)
     ├── DataError                  a data file cannot be read or fails a blocking check
     ├── EstimationError            the data cannot support the requested estimate
-    └── OutputError                the run directory cannot be written
+    ├── OutputError                the run directory cannot be written
+    └── TemplateError              the report template cannot be rendered safely
 
     RecordError(ReportgenError)    a run directory's record is missing or damaged
 
@@ -40,6 +41,10 @@ class EstimationError(ReportgenError):
 
 class OutputError(ReportgenError):
     """The run directory could not be written (disk full, read-only folder, ...)."""
+
+
+class TemplateError(ReportgenError):
+    """The report's template failed, broke the sandbox's rules or exceeded its limits."""
 
 
 class RecordError(ReportgenError):

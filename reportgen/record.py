@@ -18,7 +18,10 @@ from .errors import RecordError
 from .fpca.smoothing import trapezoid_weights
 
 if TYPE_CHECKING:
+    from collections.abc import Sequence
+
     from .analysis import AnalysisResult
+    from .style import InputFile
 
 RECORD_KEYS = ("tool", "run", "spec", "inputs", "environment", "results_sha256", "outputs")
 DEPENDENCIES = ("numpy", "scipy", "pandas", "pyarrow", "matplotlib", "jinja2", "weasyprint",
@@ -63,7 +66,10 @@ def settings(result: AnalysisResult) -> dict[str, Any]:
 
 
 def build_record(result: AnalysisResult, version: int, started: str, finished: str,
-                 source_spec: str, results_sha256: str, outputs: dict[str, str]) -> dict:
+                 source_spec: str, results_sha256: str, outputs: dict[str, str],
+                 style_inputs: Sequence[InputFile] = ()) -> dict:
+    """record.json's content. ``inputs`` lists the data file, then the files the spec's
+    report section names (template, style sheet, logo), each with its role."""
     spec, ds = result.spec, result.dataset
     return {
         "tool": {"name": "reportgen", "version": __version__},
@@ -72,7 +78,9 @@ def build_record(result: AnalysisResult, version: int, started: str, finished: s
         "spec": {"path": "spec.yaml", "source": source_spec, "sha256": spec.sha256,
                  "settings": settings(result)},
         "inputs": [{"path": ds.relpath, "bytes": ds.n_bytes, "sha256": ds.sha256,
-                    "rows": ds.rows_read}],
+                    "rows": ds.rows_read},
+                   *({"path": f.path, "bytes": len(f.data), "sha256": f.sha256,
+                      "role": f.role} for f in style_inputs)],
         "environment": environment(),
         "results_sha256": results_sha256,
         "outputs": dict(sorted(outputs.items())),

@@ -7,16 +7,19 @@ import contextlib
 import os
 import re
 import warnings
-from collections.abc import Iterator
-from dataclasses import dataclass, field
+from collections.abc import Callable, Iterator, Sequence
+from dataclasses import asdict, dataclass, field
 from datetime import UTC, datetime
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
-import jinja2
 import numpy as np
 
 from .analysis import STANDARD_CAUTIONS, AnalysisResult, rule_choice, spread_trend
+from .errors import TemplateError
 from .fpca import BandwidthChoice
+
+if TYPE_CHECKING:
+    from .style import Style
 
 
 @dataclass
@@ -53,9 +56,13 @@ def _how(choice: BandwidthChoice) -> str:
 
 
 class _Builder:
-    def __init__(self) -> None:
+    def __init__(self, prefix: str = "") -> None:
         self.n = _Numbering()
+        self.prefix = prefix
         self.sections: list[Section] = []
+
+    def label(self, n: int) -> str:
+        return f"{self.prefix}.{n}" if self.prefix else str(n)
 
     def section(self, id_: str, title: str, lead: str) -> Section:
         s = Section(id_, title, lead)
@@ -64,7 +71,7 @@ class _Builder:
 
     def table(self, s: Section, caption: str, header: list[str], rows: list[list[Any]]) -> None:
         self.n.table += 1
-        s.blocks.append({"kind": "table", "number": self.n.table, "caption": caption,
+        s.blocks.append({"kind": "table", "number": self.label(self.n.table), "caption": caption,
                          "header": header, "rows": [[_fmt(c) for c in r] for r in rows]})
 
     def text(self, s: Section, text: str, kind: str = "text") -> None:
@@ -76,26 +83,37 @@ class _Builder:
 
     def figure(self, s: Section, svg: str, caption: str, alt: str) -> None:
         self.n.figure += 1
-        s.blocks.append({"kind": "figure", "number": self.n.figure, "svg": svg,
+        s.blocks.append({"kind": "figure", "number": self.label(self.n.figure), "svg": svg,
                          "caption": caption, "alt": alt})
 
 
-def build_sections(result: AnalysisResult, record_view: dict[str, Any],
-                   figures: dict[str, tuple[str, str, str]]) -> list[Section]:
-    """Sections in report order. ``figures`` maps a name to (svg, caption, alt)."""
-    fit, spec, ds = result.fit, result.spec, result.dataset
-    b = _Builder()
-    units = spec.units()
+@dataclass
+class _Context:
+    """What a section function reads: the analysis, the figures, the record's summary."""
 
-    def unit(quantity: str) -> str:
-        return f" ({units[quantity]})" if units[quantity] else ""
+    b: _Builder
+    result: AnalysisResult
+    record_view: dict[str, Any]
+    figures: dict[str, tuple[str, str, str]]
 
-    tu = unit("time")
+    @property
+    def units(self) -> dict[str, str]:
+        return self.result.spec.units()
 
-    def fig(s: Section, name: str) -> None:
-        if name in figures:
-            b.figure(s, *figures[name])
+    def unit(self, quantity: str) -> str:
+        u = self.units[quantity]
+        return f" ({u})" if u else ""
 
+    def fig(self, s: Section, name: str) -> None:
+        if name in self.figures:
+            self.b.figure(s, *self.figures[name])
+
+
+def _section_summary(c: _Context) -> None:
+    b = c.b
+    fit = c.result.fit
+    unit = c.unit
+    tu = c.unit("time")
     s = b.section("summary", "Summary", "The key numbers of this analysis at a glance.")
     b.text(s, "Method: functional principal component analysis of sparse longitudinal data by "
            "conditional expectation (Yao, Müller and Wang 2005, Journal of the American "
@@ -127,18 +145,41 @@ def build_sections(result: AnalysisResult, record_view: dict[str, Any],
          f"{fit.covariance_bandwidth:.4g} ({fit.covariance_bandwidth_choice.method})"],
     ])
 
+
+def _section_checks(c: _Context) -> None:
+    b = c.b
+    ds = c.result.dataset
+    fig = c.fig
     s = b.section("checks", "Data checks", "What was checked in the data before fitting.")
     b.table(s, f"Checks of {ds.relpath}.", ["check", "status", "detail"],
-            [[c.name, c.status, c.detail] for c in ds.checks])
+            [[chk.name, chk.status, chk.detail] for chk in ds.checks])
     fig(s, "readings_per_subject")
     fig(s, "design")
 
+
+def _section_mean(c: _Context) -> None:
+    b = c.b
+    fit = c.result.fit
+    fig = c.fig
     s = b.section("mean", "Mean curve", "The average curve over all subjects, with pointwise "
                   f"and simultaneous {fit.options.band_level:.0%} bands.")
     fig(s, "mean")
+
+
+def _section_covariance(c: _Context) -> None:
+    b = c.b
+    fig = c.fig
     s = b.section("covariance", "Covariance and correlation", "How readings at two times vary "
                   "together across subjects.")
     fig(s, "covariance")
+
+
+def _section_components(c: _Context) -> None:
+    b = c.b
+    fit = c.result.fit
+    units = c.units
+    unit = c.unit
+    fig = c.fig
     s = b.section("components", "Components", "The main modes of variation and how many were "
                   "kept.")
     n_ref = fit.likelihood.eigenvalues.size
@@ -172,6 +213,14 @@ def build_sections(result: AnalysisResult, record_view: dict[str, Any],
     fig(s, "eigenvalues")
     fig(s, "eigenfunctions")
     fig(s, "effects")
+
+
+def _section_scores(c: _Context) -> None:
+    b = c.b
+    result = c.result
+    fit = c.result.fit
+    spec = c.result.spec
+    fig = c.fig
     s = b.section("scores", "Scores", "Where each subject sits on the components.")
     flagged = result.outliers[result.outliers.flagged].sort_values("distance2",
                                                                   ascending=False)
@@ -183,8 +232,14 @@ def build_sections(result: AnalysisResult, record_view: dict[str, Any],
            + (f": {named} (squared distance in brackets)" if named else "")
            + ". Distances and flags of every subject: tables/scores.csv.")
     fig(s, "scores")
-    if result.groups is not None:
-        _groups_section(b, result, fig)
+
+
+def _section_trajectories(c: _Context) -> None:
+    b = c.b
+    result = c.result
+    fit = c.result.fit
+    spec = c.result.spec
+    fig = c.fig
     s = b.section("trajectories", "Trajectories", "Recovered curves of selected subjects with "
                   "their readings and bands.")
     chosen = list(map(str, spec.subjects["show"]))
@@ -200,6 +255,12 @@ def build_sections(result: AnalysisResult, record_view: dict[str, Any],
               "plug-in: mean, eigenfunctions and variances taken as known")
            + "); outer band: simultaneous over the whole curve.")
     fig(s, "trajectories")
+
+
+def _section_residuals(c: _Context) -> None:
+    b = c.b
+    result = c.result
+    fig = c.fig
     s = b.section("residuals", "Residual diagnostics", "Whether the readings scatter around the "
                   "fitted curves as the model assumes.")
     fig(s, "residuals")
@@ -218,6 +279,14 @@ def build_sections(result: AnalysisResult, record_view: dict[str, Any],
             ["subject", "readings", "mean residual", "RMS standardized"],
             [[r.subject, r.n_obs, r.mean_residual, r.rms_standardized]
              for r in worst.itertuples()])
+
+
+def _section_sensitivity(c: _Context) -> None:
+    b = c.b
+    result = c.result
+    fit = c.result.fit
+    spec = c.result.spec
+    fig = c.fig
     s = b.section("sensitivity", "Sensitivity to the bandwidths", "How the estimates move when "
                   "both bandwidths are multiplied by a factor.")
     thr = spec.sensitivity["similarity_threshold"]
@@ -245,9 +314,20 @@ def build_sections(result: AnalysisResult, record_view: dict[str, Any],
                       "could be computed)"}[ok]] for k, ok in enumerate(result.stable)])
     fig(s, "sensitivity")
     fig(s, "bandwidths")
+
+
+def _section_caveats(c: _Context) -> None:
+    b = c.b
+    result = c.result
     s = b.section("caveats", "Caveats", "What could be wrong with these results, and how to "
                   "use them.")
     b.items(s, list(result.caveats) + list(STANDARD_CAUTIONS))
+
+
+def _section_reproducibility(c: _Context) -> None:
+    b = c.b
+    spec = c.result.spec
+    record_view = c.record_view
     s = b.section("reproducibility", "Reproducibility", "How to re-run this analysis and "
                   "confirm by hash that nothing changed.")
     b.table(s, "Record.", ["item", "value"], [[k, v] for k, v in record_view["items"]])
@@ -256,12 +336,12 @@ def build_sections(result: AnalysisResult, record_view: dict[str, Any],
            "with the same fonts and library versions (the environment above).")
     b.text(s, record_view["commands"], kind="pre")
     b.text(s, spec.raw.decode("utf-8"), kind="pre")
-    return b.sections
 
 
-def _groups_section(b: _Builder, result: AnalysisResult, fig: Any) -> None:
-    g, fit, spec = result.groups, result.fit, result.spec
-    assert g is not None
+def _section_groups(c: _Context) -> None:
+    g, fit, spec, b = c.result.groups, c.result.fit, c.result.spec, c.b
+    if g is None:
+        return
     su = spec.units()["score"]
     s = b.section("groups", "Groups", f"The subjects by {spec.data['group']}: mean curves, "
                   "scores and a test of equal mean scores.")
@@ -278,23 +358,86 @@ def _groups_section(b: _Builder, result: AnalysisResult, fig: Any) -> None:
            f"group labels over subjects (seed {g.seed}) is {g.p_value:.4g} (the smallest "
            f"p-value this number of permutations can give is {resolution:.2g}). The scores "
            "come from one model fitted to all groups together; see the caveats.")
-    fig(s, "group_means")
-    fig(s, "group_scores")
+    c.fig(s, "group_means")
+    c.fig(s, "group_scores")
+
+
+# The report's sections, in their default order: name -> function. A section adds nothing
+# when it does not apply (groups without a group column). The spec's report.sections picks
+# and orders them; caveats (with the standing cautions) and reproducibility are required.
+SECTIONS: dict[str, Callable[[_Context], None]] = {
+    "summary": _section_summary,
+    "checks": _section_checks,
+    "mean": _section_mean,
+    "covariance": _section_covariance,
+    "components": _section_components,
+    "scores": _section_scores,
+    "groups": _section_groups,
+    "trajectories": _section_trajectories,
+    "residuals": _section_residuals,
+    "sensitivity": _section_sensitivity,
+    "caveats": _section_caveats,
+    "reproducibility": _section_reproducibility,
+}
+
+
+def build_sections(result: AnalysisResult, record_view: dict[str, Any],
+                   figures: dict[str, tuple[str, str, str]], numbering: str = "",
+                   order: Sequence[str] | None = None) -> list[Section]:
+    """Sections in report order (``order``: names from SECTIONS; default all of them).
+    ``figures`` maps a name to (svg, caption, alt); tables and figures are numbered
+    ``numbering.1``, ``numbering.2``, ... when a prefix is given."""
+    context = _Context(_Builder(numbering), result, record_view, figures)
+    for name in (order or SECTIONS):
+        SECTIONS[name](context)
+    return context.b.sections
 
 
 def render_html(result: AnalysisResult, version: int, record_view: dict[str, Any],
-                figures: dict[str, tuple[str, str, str]]) -> bytes:
-    env = jinja2.Environment(
-        loader=jinja2.PackageLoader("reportgen", "templates"),
-        autoescape=True, undefined=jinja2.StrictUndefined, keep_trailing_newline=True,
-    )
+                figures: dict[str, tuple[str, str, str]], style: Style | None = None) -> bytes:
+    """The report page, in the spec's style (the default one when ``style`` is None).
+
+    A shipped style renders in this process; the spec's own template in a sandboxed child
+    process with time, memory and output limits (``sandbox``). Raises TemplateError.
+    """
+    from markupsafe import Markup
+
+    from .sandbox import USER, TemplateFailure, render_here, render_in_child, shipped_sources
+    from .style import Style as _Style
+
     spec = result.spec
-    html = env.get_template("report.html.j2").render(
-        title=spec.report["title"], report_id=spec.report_id, version=version,
-        authors=spec.report["authors"], description=spec.report["description"],
-        sections=build_sections(result, record_view, figures),
-    )
+    style = style or _Style("default", None, _default_css(), "", "", "", "", None, ())
+    sections = build_sections(result, record_view, figures, style.numbering, style.sections)
+    header = " · ".join(x for x in (style.header, f"{spec.report_id} v{version:03d}") if x)
+    context = {
+        "title": spec.report["title"], "report_id": spec.report_id, "version": version,
+        "authors": list(spec.report["authors"]), "description": spec.report["description"],
+        "sections": [asdict(x) for x in sections], "css": Markup(style.css),
+        "logo": style.logo, "header_text": header, "footer_text": style.footer,
+        "numbering": style.numbering, "started": _record_item(record_view, "run started"),
+        "tool": _record_item(record_view, "tool"),
+    }
+    sources = shipped_sources()
+    try:
+        if style.user_template is None:
+            html = render_here(sources, f"{style.name}/report.html.j2", context)
+        else:
+            html = render_in_child({**sources, USER: style.user_template}, USER, context)
+    except TemplateFailure as e:
+        which = (f"report.template {spec.report['template']!r}"
+                 if style.user_template is not None else f"the {style.name} style")
+        raise TemplateError(f"{which}: {e}") from e
     return html.encode("utf-8")
+
+
+def _default_css() -> str:
+    from .sandbox import shipped_css
+
+    return shipped_css("default")
+
+
+def _record_item(record_view: dict[str, Any], prefix: str) -> str:
+    return next((str(v) for k, v in record_view.get("items", []) if k.startswith(prefix)), "")
 
 
 def _offline_fetcher() -> Any:

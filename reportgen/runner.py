@@ -28,6 +28,7 @@ from .integrity import SUMS, checksum_list, sha256_bytes
 from .record import build_record, dump_record, environment
 from .render import render_html
 from .spec import Spec, load_spec
+from .style import InputFile, load_style
 from .tables import build_tables, canonical_bytes, results_digest
 from .worker import RenderWorker
 
@@ -48,6 +49,7 @@ class Built:
     files: dict[str, bytes]
     results_sha256: str
     result: AnalysisResult
+    inputs: tuple[InputFile, ...] = ()  # the spec's template, style sheet and logo
 
 
 class Timer:
@@ -72,6 +74,7 @@ def build_outputs(spec: Spec, version: int, started: str,
     compares as numbers. With a ``worker``, it draws part of the figures.
     """
     clock = timer or Timer()
+    style = load_style(spec) if render else None  # a bad style file fails before the fit
     dataset = load_dataset(spec)
     require_passed(dataset)
     clock.lap("data")
@@ -79,7 +82,7 @@ def build_outputs(spec: Spec, version: int, started: str,
     tables = canonical_bytes(build_tables(result))
     digest = results_digest(tables)
     clock.lap("tables")
-    if not render:
+    if style is None:
         return Built({**tables, "spec.yaml": spec.raw}, digest, result)
     progress("figures")
     if worker is not None:
@@ -100,6 +103,7 @@ def build_outputs(spec: Spec, version: int, started: str,
             ("spec sha256", spec.sha256),
             (f"data sha256 ({dataset.relpath})", dataset.sha256),
             ("data bytes / rows", f"{dataset.n_bytes} / {dataset.rows_read}"),
+            *((f"{f.role} sha256 ({f.path})", f.sha256) for f in style.inputs),
             ("results sha256 (tables)", digest),
         ],
         "commands": (f"reportgen run {spec.path.name} --out RUNS\n"
@@ -107,7 +111,7 @@ def build_outputs(spec: Spec, version: int, started: str,
                      "(RUNS: the folder that holds the runs; run from the spec's folder)"),
     }
     progress("html")
-    html = render_html(result, version, record_view, figures)
+    html = render_html(result, version, record_view, figures, style)
     clock.lap("html")
     files = dict(tables)
     files["report.html"] = html
@@ -116,7 +120,7 @@ def build_outputs(spec: Spec, version: int, started: str,
         # The standalone file needs the namespace that the inline copy does without.
         standalone = svg.replace("<svg ", '<svg xmlns="http://www.w3.org/2000/svg" ', 1)
         files[f"figures/{name}.svg"] = standalone.encode("utf-8")
-    return Built(files, digest, result)
+    return Built(files, digest, result, style.inputs)
 
 
 def _next_version(folder: Path) -> int:
@@ -171,7 +175,7 @@ def run_spec(spec_path: str | Path, out: str | Path, progress: Progress = lambda
         outputs = {name: sha256_bytes(data) for name, data in built.files.items()}
         finished = _timestamp()
         record = dump_record(build_record(built.result, version, started, finished, source,
-                                          built.results_sha256, outputs))
+                                          built.results_sha256, outputs, built.inputs))
         progress("pdf")
         pdf = worker.pdf(built.files["report.html"], spec.raw, record, finished)
         if timer is not None:

@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import hashlib
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from datetime import date, datetime
 from pathlib import Path
 from typing import Any
@@ -15,6 +15,7 @@ from .fpca.options import FPCAOptions
 from .validation import make_options, spec_schema, validate
 
 MAX_SPEC_BYTES = 1_000_000
+REQUIRED_SECTIONS = ("caveats", "reproducibility")
 
 DEFAULT_CHECKS: dict[str, Any] = {
     "missing": "drop", "duplicates": "average", "out_of_range": "warn", "out_of_domain": "fail",
@@ -63,15 +64,20 @@ class Spec:
     subjects: dict[str, Any]
     gates: dict[str, Any]
     options: FPCAOptions
-    data_location: Path | None = None
+    # Input files found elsewhere than beside the spec (``verify --inputs``): the path as
+    # the spec writes it -> where it is.
+    locations: dict[str, Path] = field(default_factory=dict)
+
+    def locate(self, relpath: str) -> Path:
+        """An input file named in the spec: relative to the spec, unless found elsewhere."""
+        if relpath in self.locations:
+            return self.locations[relpath]
+        return (self.path.parent / relpath).resolve()
 
     @property
     def data_path(self) -> Path:
-        """The data file: ``data.file`` relative to the spec, unless found elsewhere
-        (``verify --inputs``: ``data_location``)."""
-        if self.data_location is not None:
-            return self.data_location
-        return (self.path.parent / self.data["file"]).resolve()
+        """The data file: ``data.file`` relative to the spec (or where verify found it)."""
+        return self.locate(self.data["file"])
 
     @property
     def report_id(self) -> str:
@@ -187,7 +193,15 @@ def spec_from_bytes(raw: bytes, path: Path) -> Spec:
     content = _dates_as_text(content)
     _json_safe(content, "")
     validate(content, spec_schema())
-    report = {"authors": [], "description": "", "band_level": 0.95, **content["report"]}
+    report = {"authors": [], "description": "", "band_level": 0.95, "template": "default",
+              "header": "", "footer": "", "numbering": "", **content["report"]}
+    sections = report.get("sections")
+    if sections is not None:
+        missing = [x for x in REQUIRED_SECTIONS if x not in sections]
+        if missing:
+            raise SpecError(f"report.sections must keep {' and '.join(missing)}: the caveats "
+                            "(with the standing cautions) and the reproducibility record are "
+                            "in every report.")
     data = {"format": "auto", "transform": "none", "time_unit": "", "value_unit": "",
             **content["data"]}
     checks = {**DEFAULT_CHECKS, **content.get("checks", {})}

@@ -176,7 +176,7 @@ def _inputs_and_numbers(run: Path, record: dict[str, Any], out: Verification,
         out.verdicts["numbers"] = "FAILED: the recorded spec no longer validates"
         return
     if inputs is not None:
-        spec = replace(spec, data_location=located[0][1])
+        spec = replace(spec, locations=dict(located))
     progress("re-running the recorded spec")
     built = build_outputs(spec, int(record["run"]["version"]), str(record["run"]["started"]),
                           progress, render=render)

@@ -23,6 +23,7 @@ def regenerated(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Path]:
         for name in EXAMPLES:
             for suffix in (".yaml", ".csv"):
                 shutil.copy(ROOT / "specs" / f"{name}{suffix}", base / f"{name}{suffix}")
+            shutil.copy(ROOT / "specs" / "fleet_logo.svg", base / "fleet_logo.svg")
             runs[name] = run_spec(base / f"{name}.yaml", base / "runs")
     finally:
         mp.undo()

@@ -48,16 +48,18 @@ def test_sections_figures_alt_text(regenerated: dict[str, Path], example: str) -
     html = (regenerated[example] / "report.html").read_text("utf-8")
     c = _Collector()
     c.feed(html)
-    # all present, in the order of the brief; the pump example compares its depots
+    # all present, in the order of the brief; the pump example compares its depots and is
+    # in the submission style, which ends with a sign-off block
     grouped = example == "pump_service"
-    expected = [*SECTIONS[:6], "groups", *SECTIONS[6:]] if grouped else SECTIONS
+    expected = [*SECTIONS[:6], "groups", *SECTIONS[6:], "signoff"] if grouped else SECTIONS
     n_figures = FIGURES + 2 * grouped
     assert c.sections == expected
     assert c.figures == n_figures and len(c.images) == n_figures
     assert all(label and len(label) > 20 for label in c.images)  # alt text on every figure
     assert c.th > 20 and c.captions >= n_figures + 7
+    prefix = "14.2." if grouped else ""  # the pump spec numbers in the study's scheme
     for n in range(1, n_figures + 1):
-        assert f"Figure {n}." in html
+        assert f"Figure {prefix}{n}." in html
     assert re.search(r"https?:", html) is None  # no network reference at all
     for caution in ("not for decisions about an individual",
                     "statistical analysis plan take precedence",
@@ -95,4 +97,7 @@ def test_pdf_is_pdfa_with_attachments(regenerated: dict[str, Path], example: str
     assert attached["record.json"] == (run / "record.json").read_bytes()
     assert 6 <= len(reader.pages) <= 20
     first = reader.pages[0].extract_text()
+    if example == "pump_service":  # submission style: a title page, then the contents
+        assert "Study FLT-2026-07 (fictional)" in first and "Prepared by" in first
+        first = reader.pages[1].extract_text()
     assert "Summary" in first and "Contents" in first

@@ -1,0 +1,200 @@
+"""Rendering report templates safely: Jinja2's sandbox, a closed set of templates, bounded
+time, memory and output, and no reference to anything outside the page.
+
+The shipped styles (``templates/`` at the top of the repository, installed as
+``reportgen.styles``) are rendered in this process. A template from the user's own file is
+rendered in a child process (``python -c``) with a wall-clock limit, an address-space limit
+and an output limit, so that a loop that does not end or a template that writes gigabytes
+stops with a clear message instead of hanging or exhausting the machine.
+
+Either way the template runs in :class:`jinja2.sandbox.ImmutableSandboxedEnvironment`
+(no access to attributes that start with an underscore, to Python internals, or to methods
+that change values) with autoescaping, and its loader knows only the shipped templates
+and the user's file: ``{% include "/etc/passwd" %}`` finds nothing. The rendered page may
+not refer to anything outside itself (``src``/``href`` other than ``data:`` or ``#``,
+CSS ``url()`` or ``@import``) nor contain scripts, frames or embedded objects.
+
+This module imports only jinja2 and markupsafe: the child starts in a fraction of a second.
+"""
+
+from __future__ import annotations
+
+import operator
+import pickle
+import re
+import subprocess
+import sys
+from importlib import resources
+from typing import Any
+
+import jinja2
+from jinja2.sandbox import ImmutableSandboxedEnvironment, SecurityError
+from markupsafe import Markup
+
+STYLES = ("default", "journal", "submission")
+TEMPLATE_SECONDS = 30.0
+MAX_OUTPUT_BYTES = 64 * 2**20
+MAX_MEMORY_BYTES = 2 * 2**30
+MAX_REPEAT = 2 * 2**20  # the longest string or list that "*" may build in a template
+USER = "user/report.html.j2"
+
+_TAG = re.compile(r"<[A-Za-z][^>]*>")
+_STYLE = re.compile(r"<style[^>]*>(.*?)</style>", re.S | re.I)
+_EXTERNAL_ATTR = re.compile(
+    r"""\b(?:src|href|xlink:href|srcset|action|formaction|poster|data|background)\s*=\s*"""
+    r"""["']?\s*(?!data:|\#|["'\s>])""", re.I)
+_EXTERNAL_CSS = re.compile(r"""url\(\s*["']?\s*(?!data:|\#)|@import""", re.I)
+_ACTIVE_TAG = re.compile(r"^<\s*(?:script|iframe|frame|object|embed|link|base|form)\b"
+                         r"|^<\s*meta\b[^>]*http-equiv|\son[a-z]+\s*=", re.I)
+
+
+class TemplateFailure(Exception):
+    """The template could not be rendered; the message says why (for TemplateError)."""
+
+
+def shipped_sources() -> dict[str, str]:
+    """Every shipped template by name (``default/report.html.j2``), plus the short names
+    ``default``, ``journal`` and ``submission`` for use in ``{% extends %}``."""
+    root = resources.files("reportgen.styles")
+    out: dict[str, str] = {}
+    for name in STYLES:
+        text = root.joinpath(name, "report.html.j2").read_text("utf-8")
+        out[f"{name}/report.html.j2"] = text
+        out[name] = text
+    return out
+
+
+def shipped_css(name: str) -> str:
+    return resources.files("reportgen.styles").joinpath(name, "style.css").read_text("utf-8")
+
+
+def css_string(value: Any) -> Markup:
+    """A value as a quoted CSS string (for ``content:`` in page rules), safe in <style>."""
+    text = str(value)
+    escaped = "".join(ch if ch.isalnum() or ch in " .,:;-_/()[]+=" else f"\\{ord(ch):x} "
+                      for ch in text)
+    return Markup(f'"{escaped}"')
+
+
+class _Environment(ImmutableSandboxedEnvironment):
+    """The sandbox, with ``*`` and ``**`` bounded (``"x" * 10**10`` would exhaust memory)."""
+
+    intercepted_binops = frozenset({"*", "**"})
+
+    def call_binop(self, context: Any, op: str, left: Any, right: Any) -> Any:
+        if op == "**":
+            if isinstance(right, int | float) and abs(right) > 1000:
+                raise SecurityError("exponents above 1000 are not allowed in a template")
+            return operator.pow(left, right)
+        sized = [x for x in (left, right) if isinstance(x, str | list | tuple)]
+        count = [x for x in (left, right) if isinstance(x, int)]
+        if sized and count and len(sized[0]) * max(count[0], 0) > MAX_REPEAT:
+            raise SecurityError(f"a template may not build values longer than {MAX_REPEAT}")
+        return operator.mul(left, right)
+
+
+def environment(sources: dict[str, str]) -> jinja2.Environment:
+    env = _Environment(loader=jinja2.DictLoader(sources), autoescape=True,
+                       undefined=jinja2.StrictUndefined, keep_trailing_newline=True)
+    env.filters["css_string"] = css_string
+    return env
+
+
+def check_output(html: str) -> None:
+    """Refuse a page that refers outside itself or carries active content. Only markup is
+    inspected (tags, their attributes, style sheets); escaped text cannot form either."""
+    for tag in _TAG.finditer(html):
+        text = tag.group(0)
+        if _ACTIVE_TAG.search(text):
+            raise TemplateFailure(f"the rendered report contains active content "
+                                  f"({text[:80]!r}); scripts, frames, embedded objects, "
+                                  "forms, links and event handlers are not allowed")
+        if _EXTERNAL_ATTR.search(text) or _EXTERNAL_CSS.search(text):
+            raise TemplateFailure(f"the rendered report refers to something outside itself "
+                                  f"({text[:80]!r}); a report may use only data: URIs and "
+                                  "in-page links")
+    for sheet in _STYLE.finditer(html):
+        found = _EXTERNAL_CSS.search(sheet.group(1))
+        if found:
+            near = sheet.group(1)[max(found.start() - 20, 0):found.end() + 40]
+            raise TemplateFailure(f"the report's style sheet refers to something outside the "
+                                  f"page (near {near!r}); only data: URIs are allowed")
+
+
+def render_here(sources: dict[str, str], entry: str, context: dict[str, Any],
+                max_bytes: int = MAX_OUTPUT_BYTES) -> str:
+    """Render ``entry`` in this process (the shipped styles)."""
+    try:
+        template = environment(sources).get_template(entry)
+        parts: list[str] = []
+        size = 0
+        for chunk in template.generate(**context):
+            size += len(chunk)
+            if size > max_bytes:
+                raise TemplateFailure(f"the template's output passed {max_bytes} characters")
+            parts.append(chunk)
+    except TemplateFailure:
+        raise
+    except SecurityError as e:
+        raise TemplateFailure(f"the template did something a sandboxed template may not: "
+                              f"{e}") from e
+    except jinja2.TemplateNotFound as e:
+        raise TemplateFailure(f"the template refers to {e.name!r}, which is neither a shipped "
+                              f"style ({', '.join(STYLES)}) nor the spec's template") from e
+    except jinja2.TemplateSyntaxError as e:
+        raise TemplateFailure(f"the template has a syntax error at line {e.lineno}: "
+                              f"{e.message}") from e
+    except jinja2.UndefinedError as e:
+        raise TemplateFailure(f"the template uses a name the report does not provide: "
+                              f"{e.message}") from e
+    except MemoryError as e:
+        raise TemplateFailure("the template needed more memory than a report may use") from e
+    except RecursionError as e:
+        raise TemplateFailure("the template recurses without end") from e
+    except Exception as e:  # a template can raise anything (a filter on a wrong type, ...)
+        raise TemplateFailure(f"the template failed: {type(e).__name__}: {e}") from e
+    html = "".join(parts)
+    check_output(html)
+    return html
+
+
+def render_in_child(sources: dict[str, str], entry: str, context: dict[str, Any],
+                    seconds: float | None = None, max_bytes: int = MAX_OUTPUT_BYTES) -> str:
+    """Render ``entry`` in a child process with time, memory and output limits."""
+    limit = TEMPLATE_SECONDS if seconds is None else seconds
+    payload = pickle.dumps((sources, entry, context, max_bytes), protocol=pickle.HIGHEST_PROTOCOL)
+    code = "from reportgen.sandbox import _child; _child()"
+    try:
+        done = subprocess.run([sys.executable, "-c", code], input=payload, capture_output=True,
+                              timeout=limit, check=False)
+    except subprocess.TimeoutExpired:
+        raise TemplateFailure(f"the template did not finish within {limit:g} s (a loop that "
+                              "does not end, or far too much work for a report)") from None
+    try:
+        status, value = pickle.loads(done.stdout)
+    except Exception:
+        raise TemplateFailure("the template's renderer stopped without a result (it may have "
+                              f"run out of its {MAX_MEMORY_BYTES // 2**30} GiB of memory)"
+                              ) from None
+    if status != "ok":
+        raise TemplateFailure(str(value))
+    return str(value)
+
+
+def _child() -> None:
+    """The child's side of :func:`render_in_child`: limits, render, one pickled answer."""
+    try:
+        import resource
+
+        resource.setrlimit(resource.RLIMIT_AS, (MAX_MEMORY_BYTES, MAX_MEMORY_BYTES))
+    except (ImportError, ValueError, OSError):  # not on every platform; the timeout stays
+        pass
+    sources, entry, context, max_bytes = pickle.load(sys.stdin.buffer)
+    try:
+        answer: tuple[str, str] = ("ok", render_here(sources, entry, context, max_bytes))
+    except TemplateFailure as e:
+        answer = ("error", str(e))
+    except MemoryError:
+        answer = ("error", "the template needed more memory than a report may use")
+    sys.stdout.buffer.write(pickle.dumps(answer))
+    sys.stdout.flush()
