@@ -122,8 +122,9 @@ def check_output(html: str) -> None:
 
 
 def render_here(sources: dict[str, str], entry: str, context: dict[str, Any],
-                max_bytes: int = MAX_OUTPUT_BYTES) -> str:
+                max_bytes: int | None = None) -> str:
     """Render ``entry`` in this process (the shipped styles)."""
+    max_bytes = MAX_OUTPUT_BYTES if max_bytes is None else max_bytes
     try:
         template = environment(sources).get_template(entry)
         parts: list[str] = []
@@ -159,9 +160,10 @@ def render_here(sources: dict[str, str], entry: str, context: dict[str, Any],
 
 
 def render_in_child(sources: dict[str, str], entry: str, context: dict[str, Any],
-                    seconds: float | None = None, max_bytes: int = MAX_OUTPUT_BYTES) -> str:
+                    seconds: float | None = None, max_bytes: int | None = None) -> str:
     """Render ``entry`` in a child process with time, memory and output limits."""
     limit = TEMPLATE_SECONDS if seconds is None else seconds
+    max_bytes = MAX_OUTPUT_BYTES if max_bytes is None else max_bytes
     payload = pickle.dumps((sources, entry, context, max_bytes), protocol=pickle.HIGHEST_PROTOCOL)
     code = "from reportgen.sandbox import _child; _child()"
     try:

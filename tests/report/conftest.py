@@ -28,3 +28,39 @@ def regenerated(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Path]:
     finally:
         mp.undo()
     return runs
+
+
+STYLES = ("default", "journal", "submission")
+STYLE_FIELDS = {"header": "Study XY-123 (fictional)", "footer": "Confidential: test only",
+                "numbering": "14.2"}
+
+
+@pytest.fixture(scope="session")
+def styled(regenerated: dict[str, Path]) -> dict[tuple[str, str], tuple[bytes, bytes]]:
+    """(example, style) -> (HTML, PDF) of both examples in every shipped style, with a
+    running header, a footer and a numbering prefix; analysed and drawn once per example."""
+    from dataclasses import replace
+
+    from reportgen.analysis import analyse
+    from reportgen.data import load_dataset
+    from reportgen.figures import make_figures
+    from reportgen.render import render_html, render_pdf
+    from reportgen.spec import load_spec
+    from reportgen.style import load_style
+
+    out = {}
+    for name in EXAMPLES:
+        spec = load_spec(regenerated[name].parents[2] / f"{name}.yaml")
+        result = analyse(spec, load_dataset(spec))
+        figures = make_figures(result)
+        record_view = {"items": [("tool", "reportgen test"), ("run started (UTC)",
+                                                               "2025-12-01T00:00:00Z")],
+                       "commands": "reportgen run SPEC"}
+        for style in STYLES:
+            report = {**spec.report, **STYLE_FIELDS, "template": style}
+            styled_spec = replace(spec, report=report)
+            html = render_html(replace(result, spec=styled_spec), 1, record_view, figures,
+                               load_style(styled_spec))
+            pdf = render_pdf(html, spec.raw, b"{}", "2025-12-01T00:00:00Z")
+            out[(name, style)] = (html, pdf)
+    return out

@@ -57,9 +57,13 @@ def _server(page: bytes, seen: list[str]) -> ThreadingHTTPServer:
 
 @pytest.mark.skipif(CHROMIUM is None, reason="chromium is not installed (.ci/run installs the "
                     "Debian package; locally: apt-get install chromium)")
-def test_report_loads_offline_without_errors(regenerated: dict[str, Path],
-                                             tmp_path: Path) -> None:
-    page = (regenerated["clinic_visits"] / "report.html").read_bytes()
+@pytest.mark.parametrize("style", ["run", "default", "journal", "submission"])
+def test_report_loads_offline_without_errors(
+        regenerated: dict[str, Path], styled: dict[tuple[str, str], tuple[bytes, bytes]],
+        tmp_path: Path, style: str) -> None:
+    # "run": the committed example as run; the others: each shipped style
+    page = ((regenerated["clinic_visits"] / "report.html").read_bytes() if style == "run"
+            else styled[("clinic_visits", style)][0])
     seen: list[str] = []
     server = _server(page, seen)
     port = server.server_address[1]

@@ -1,0 +1,182 @@
+"""House styles and the spec's own templates: what each shipped style prints, the sections
+the spec picks, and templates that try to escape the sandbox.
+
+PDF text is read back with pypdf; page images with poppler's pdftoppm where installed.
+The rules for hostile templates are Jinja2's sandbox (its documentation: "Sandbox") plus
+limits of our own; "Table 14.2.1"-style numbering is common practice for the tables of
+clinical study reports (no source).
+"""
+
+from __future__ import annotations
+
+import io
+import re
+import shutil
+import subprocess
+from pathlib import Path
+
+import pytest
+
+from reportgen import sandbox
+from reportgen.cli import main
+from reportgen.errors import SpecError
+from reportgen.spec import load_spec
+
+from .conftest import EXAMPLES, ROOT, STYLES
+
+
+def _pdf_text(pdf: bytes) -> list[str]:
+    from pypdf import PdfReader
+
+    reader = PdfReader(io.BytesIO(pdf))
+    # PDF/A declares itself in the XMP metadata (ISO 19005; from memory)
+    xmp = reader.trailer["/Root"]["/Metadata"].get_object().get_data().decode()
+    assert re.search(r'pdfaid:part(="|>)3', xmp), xmp[:300]
+    return [page.extract_text() for page in reader.pages]
+
+
+@pytest.mark.parametrize("example", EXAMPLES)
+@pytest.mark.parametrize("style", STYLES)
+def test_every_style_prints_header_footer_numbering_and_sections(
+        styled: dict[tuple[str, str], tuple[bytes, bytes]], example: str, style: str) -> None:
+    html, pdf = styled[(example, style)]
+    text = html.decode("utf-8")
+    pages = _pdf_text(pdf)
+    # running header (study id and the run) and footer on every page but a title page
+    body = pages[1:] if style == "submission" else pages
+    assert all("Study XY-123 (fictional)" in p for p in body), style
+    assert all("Confidential: test only" in p for p in pages)
+    assert all(f"page {i + 1} of {len(pages)}" in p for i, p in enumerate(pages))
+    for kind in ("Table", "Figure"):
+        label = f"Supplementary {kind} S14.2." if style == "journal" else f"{kind} 14.2."
+        assert f"{label}1." in text and f"{label}2." in text
+    for section in ("summary", "checks", "caveats", "reproducibility"):
+        assert f'id="{section}"' in text
+    assert ("Contents" in text) == (style != "journal")
+    assert ("Sign-off" in text) == (style == "submission")
+    if style == "submission":
+        assert "Prepared by" in pages[0] and "Reviewed by" in pages[-1]
+    for caution in ("not for decisions about an individual",
+                    "statistical analysis plan take precedence"):
+        assert caution in text
+
+
+@pytest.mark.skipif(shutil.which("pdftoppm") is None, reason="poppler (pdftoppm) is not "
+                    "installed")
+def test_the_submission_title_page_is_a_page_of_its_own(
+        styled: dict[tuple[str, str], tuple[bytes, bytes]], tmp_path: Path) -> None:
+    from PIL import Image
+
+    _, pdf = styled[("clinic_visits", "submission")]
+    (tmp_path / "r.pdf").write_bytes(pdf)
+    subprocess.run(["pdftoppm", "-f", "1", "-l", "2", "-r", "30", "-gray", "-png",
+                    str(tmp_path / "r.pdf"), str(tmp_path / "p")], check=True, timeout=120)
+    import numpy as np
+
+    def load(path: Path) -> np.ndarray:
+        with Image.open(path) as img:
+            return np.asarray(img.convert("L"))
+
+    first, second = (load(p) for p in sorted(tmp_path.glob("p-*.png")))
+
+    def ink(img: np.ndarray, top: float, bottom: float) -> float:
+        h = img.shape[0]
+        return float(np.mean(img[int(top * h):int(bottom * h)] < 128))
+
+    # title page: the upper third is empty (the title sits lower); page 2 starts at once
+    assert ink(first, 0.08, 0.22) < 0.001 < ink(second, 0.08, 0.22)
+
+
+def _study(tmp_path: Path, report_extra: str = "", files: dict[str, str] | None = None
+           ) -> Path:
+    shutil.copy(ROOT / "specs" / "clinic_visits.csv", tmp_path / "clinic_visits.csv")
+    text = (ROOT / "specs" / "clinic_visits.yaml").read_text()
+    text = text.replace("report:\n", f"report:\n{report_extra}", 1)
+    for name, content in (files or {}).items():
+        (tmp_path / name).write_text(content)
+    (tmp_path / "s.yaml").write_text(text)
+    return tmp_path / "s.yaml"
+
+
+def test_a_template_of_ones_own_extends_the_default_by_blocks(tmp_path: Path) -> None:
+    # the README's worked example
+    template = ('{% extends "default" %}\n'
+                '{% block heading %}<header><h1>{{ title }}</h1>'
+                '<p class="sponsor">Prepared for the steering committee</p></header>'
+                '{% endblock %}\n'
+                '{% block end %}<p>End of appendix {{ report_id }}.</p>{% endblock %}\n')
+    spec = _study(tmp_path, '  template: committee.html.j2\n  stylesheet: extra.css\n'
+                  '  sections: [summary, mean, caveats, reproducibility]\n',
+                  {"committee.html.j2": template,
+                   "extra.css": ".sponsor { color: #225; }\n"})
+    assert main(["run", str(spec), "--out", str(tmp_path / "runs"), "--quiet"]) == 0
+    run = tmp_path / "runs" / "clinic-visits" / "v001"
+    html = (run / "report.html").read_text("utf-8")
+    assert "Prepared for the steering committee" in html and "End of appendix" in html
+    assert ".sponsor { color: #225; }" in html
+    sections = [line.split('"')[1] for line in html.splitlines()
+                if line.startswith("<section id=")]
+    assert sections == ["summary", "mean", "caveats", "reproducibility"]
+    record = (run / "record.json").read_text()
+    assert '"role": "template"' in record and '"role": "stylesheet"' in record
+    # a changed template makes verify fail, naming it
+    (tmp_path / "committee.html.j2").write_text(template + "<!-- edited -->\n")
+    assert main(["verify", str(run), "--quiet"]) == 1
+
+
+def test_caveats_and_reproducibility_cannot_be_left_out(tmp_path: Path) -> None:
+    spec = _study(tmp_path, "  sections: [summary, mean, reproducibility]\n")
+    with pytest.raises(SpecError, match=r"report\.sections must keep caveats"):
+        load_spec(spec)
+
+
+@pytest.mark.parametrize(("field", "name", "content", "message"), [
+    ("logo", "logo.png", "not an image", "must be a PNG or SVG file"),
+    ("stylesheet", "x.css", "body { background: url(http://example.org/x.png) }",
+     "refers to other files or URLs"),
+    ("stylesheet", "y.css", "@import 'other.css';", "refers to other files or URLs"),
+    ("stylesheet", "z.css", "</style><p>injected</p>", "contains '<'"),
+    ("template", "missing.j2", None, "does not exist"),
+])
+def test_bad_style_files_are_refused_before_anything_is_written(
+        tmp_path: Path, capsys: pytest.CaptureFixture[str], field: str, name: str,
+        content: str | None, message: str) -> None:
+    spec = _study(tmp_path, f"  {field}: {name}\n", {name: content} if content else {})
+    assert main(["run", str(spec), "--out", str(tmp_path / "runs"), "--quiet"]) == 2
+    err = capsys.readouterr().err
+    assert f"report.{field} '{name}'" in err and message in err, err
+    assert not any((tmp_path / "runs").rglob("v0*"))
+
+
+HOSTILE = {
+    "internals": ("{{ ''.__class__.__mro__[1].__subclasses__() }}",
+                  "did something a sandboxed template may not"),
+    "globals": ("{{ self._TemplateReference__context }}",
+                "did something a sandboxed template may not"),
+    "include": ('{% include "/etc/passwd" %}', "refers to '/etc/passwd', which is neither"),
+    "loop": ("{% for i in range(100000) %}{% for j in range(100000) %}{% endfor %}"
+             "{% endfor %}", "did not finish within 3 s"),
+    "huge": ("{% for i in range(100000) %}{{ 'x' * 2000 }}{% endfor %}",
+             "output passed"),
+    "repeat": ("{{ 'x' * 10000000000 }}", "may not build values longer than"),
+    "fetch": ('<img src="http://example.org/track.png">', "refers to something outside"),
+    "script": ("<script>alert(1)</script>", "contains active content"),
+    "handler": ('<p onclick="x()">hi</p>', "contains active content"),
+}
+
+
+@pytest.mark.parametrize("case", sorted(HOSTILE))
+def test_hostile_templates_stop_with_a_message_and_no_run(
+        tmp_path: Path, capsys: pytest.CaptureFixture[str], monkeypatch: pytest.MonkeyPatch,
+        case: str) -> None:
+    monkeypatch.setattr(sandbox, "TEMPLATE_SECONDS", 3.0)
+    monkeypatch.setattr(sandbox, "MAX_OUTPUT_BYTES", 50 * 2**20)
+    body, message = HOSTILE[case]
+    spec = _study(tmp_path, "  template: evil.j2\n",
+                  {"evil.j2": '{% extends "default" %}{% block end %}' + body
+                              + "{% endblock %}"})
+    assert main(["run", str(spec), "--out", str(tmp_path / "runs"), "--quiet"]) == 2
+    err = capsys.readouterr().err
+    assert "report.template 'evil.j2'" in err and message in err, err
+    runs = tmp_path / "runs" / "clinic-visits"
+    assert not runs.exists() or list(runs.iterdir()) == []
