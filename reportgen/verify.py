@@ -159,9 +159,9 @@ def _inputs_and_numbers(run: Path, record: dict[str, Any], out: Verification,
         out.verdicts["inputs"] = (f"MISSING: {', '.join(str(m[0]) for m in missing)} not found "
                                   f"{where} ({missing[0][1]}); give --inputs DIR")
     elif changed:
-        out.verdicts["inputs"] = (f"CHANGED: the input data differ from those the run used "
-                                  f"({', '.join(str(c[0]) for c in changed)}): the data were "
-                                  "refreshed or edited since the run")
+        out.verdicts["inputs"] = (f"CHANGED: input files differ from those the run used "
+                                  f"({', '.join(str(c[0]) for c in changed)}): refreshed or "
+                                  "edited since the run")
     elif spec_ok:
         out.verdicts["inputs"] = "ok: the spec and every input file match the record"
     else:

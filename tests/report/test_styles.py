@@ -98,7 +98,8 @@ def _study(tmp_path: Path, report_extra: str = "", files: dict[str, str] | None 
     return tmp_path / "s.yaml"
 
 
-def test_a_template_of_ones_own_extends_the_default_by_blocks(tmp_path: Path) -> None:
+def test_a_template_of_ones_own_extends_the_default_by_blocks(
+        tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     # the README's worked example
     template = ('{% extends "default" %}\n'
                 '{% block heading %}<header><h1>{{ title }}</h1>'
@@ -122,6 +123,8 @@ def test_a_template_of_ones_own_extends_the_default_by_blocks(tmp_path: Path) ->
     # a changed template makes verify fail, naming it
     (tmp_path / "committee.html.j2").write_text(template + "<!-- edited -->\n")
     assert main(["verify", str(run), "--quiet"]) == 1
+    out = capsys.readouterr().out
+    assert "CHANGED: input files differ from those the run used (committee.html.j2)" in out
 
 
 def test_caveats_and_reproducibility_cannot_be_left_out(tmp_path: Path) -> None:

@@ -120,7 +120,7 @@ def test_changed_input_is_said_in_words(tmp_path: Path, capsys: pytest.CaptureFi
     _input(run)
     code, out = _verify(capsys, str(run))
     assert code == 1
-    assert "inputs: CHANGED: the input data differ from those the run used" in out
+    assert "inputs: CHANGED: input files differ from those the run used" in out
     assert "numbers: not checked" in out and "input clinic_visits.csv" in out.split("verify:")[-1]
 
 
