@@ -17,8 +17,57 @@ FLOAT_FORMAT = "%.10g"
 
 
 def to_csv_bytes(frame: pd.DataFrame) -> bytes:
-    text = frame.to_csv(index=False, float_format=FLOAT_FORMAT, lineterminator="\n")
-    return text.encode("utf-8")
+    """The canonical CSV bytes of ``frame``: what ``frame.to_csv(index=False,
+    float_format="%.10g", lineterminator="\n")`` writes, built column by column.
+
+    pandas formats every cell through its own per-value machinery (3.2 us a cell: 29 s of
+    the run at 10^6 subjects); formatting each column with one list comprehension and
+    joining the rows once takes 1.3 us. Columns of other kinds (dates, categories) go
+    through pandas. ``tests/test_tables.py`` holds the two byte for byte against each other.
+    """
+    columns = [_column_text(frame[c]) for c in frame.columns] if len(frame.columns) else []
+    if any(col is None for col in columns):
+        text = frame.to_csv(index=False, float_format=FLOAT_FORMAT, lineterminator="\n")
+        return text.encode("utf-8")
+    if len(columns) == 1:  # the csv module writes a lone empty field as "" (not a blank line)
+        columns = [[v if v else '""' for v in columns[0]]]
+    header = ",".join(_quoted(str(c)) for c in frame.columns)
+    if header == "" and len(frame.columns) == 1:
+        header = '""'
+
+    rows = map(",".join, zip(*columns, strict=True)) if columns else iter(())
+    body = "\n".join(rows)
+    return (header + "\n" + (body + "\n" if len(frame) else "")).encode("utf-8")
+
+
+def _quoted(text: str) -> str:
+    """A field as the csv module's QUOTE_MINIMAL writes it with the line terminator "\n"
+    (the delimiter, the quote character or the terminator make it quoted)."""
+    if any(ch in text for ch in ',"\n'):
+        return '"' + text.replace('"', '""') + '"'
+    return text
+
+
+def _column_text(series: pd.Series) -> list[str] | None:
+    """The column's cells as pandas writes them; None for kinds left to pandas."""
+    dtype = series.dtype
+    if isinstance(dtype, np.dtype) and dtype.kind == "b":
+        return ["True" if v else "False" for v in series.tolist()]
+    if isinstance(dtype, np.dtype) and dtype.kind == "f":
+        values = series.to_numpy(dtype=np.float64)
+        text = [FLOAT_FORMAT % v for v in values.tolist()]
+        for i in np.flatnonzero(np.isnan(values)).tolist():
+            text[i] = ""
+        return text
+    if isinstance(dtype, np.dtype) and dtype.kind in "iu":
+        return [str(v) for v in series.tolist()]
+    if (isinstance(dtype, np.dtype) and dtype.kind == "O") or isinstance(dtype, pd.StringDtype):
+        values = series.tolist()
+        if not all(isinstance(v, str) or v is None or (isinstance(v, float) and v != v)
+                   or v is pd.NA for v in values):
+            return None
+        return ["" if not isinstance(v, str) else _quoted(v) for v in values]
+    return None
 
 
 def build_tables(result: AnalysisResult) -> dict[str, pd.DataFrame]:
