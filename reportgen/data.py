@@ -221,11 +221,12 @@ def _times(frame: pd.DataFrame, d: dict[str, Any]) -> tuple[str, np.ndarray, np.
 
 
 def _origin(frame: pd.DataFrame, d: dict[str, Any], kind: str, t: np.ndarray,
-            codes: np.ndarray) -> tuple[np.ndarray, str]:
+            subj: pd.Series) -> tuple[np.ndarray, str]:
     """Per-row origin in the time column's units (days for dates), and a problem."""
     origin = d.get("time_origin")
     if origin is None:
         return np.zeros_like(t), ""
+    codes = pd.factorize(subj)[0]
     if origin == "first":
         first = np.full(int(codes.max()) + 1, np.inf)
         np.minimum.at(first, codes, np.where(np.isfinite(t), t, np.inf))
@@ -294,17 +295,17 @@ def dataset_from_bytes(raw: bytes, path: Path, spec: Spec, design: bool = True,
     except _Stop:
         return finish(frame)
     if design:
-        checks.extend(_design_checks(long, c))
+        codes = pd.factorize(long.subject)[0].astype(np.intp)  # once, for both steps
+        checks.extend(_design_checks(long, c, codes))
         if not any(x.status == "fail" for x in checks):
-            checks.append(_feasibility_check(long, spec))
+            checks.append(_feasibility_check(long, spec, codes))
     return finish(long)
 
 
-def _feasibility_check(long: pd.DataFrame, spec: Spec) -> Check:
+def _feasibility_check(long: pd.DataFrame, spec: Spec, codes: np.ndarray) -> Check:
     """What the fit would refuse (``fpca.feasibility``), so that "usable" means usable."""
     from .fpca.feasibility import problems
 
-    codes = pd.factorize(long.subject)[0].astype(np.intp)
     found = problems(codes, long.time.to_numpy(dtype=np.float64),
                      long.value.to_numpy(dtype=np.float64), spec.options)
     if found:
@@ -336,8 +337,7 @@ def _typed(frame: pd.DataFrame, rows: np.ndarray, table: Table, spec: Spec,
         checks.append(Check("columns typed", "fail", "; ".join(parts)))
         raise _Stop
     subj = _as_ids(frame[d["subject"]])
-    codes = pd.factorize(subj)[0]
-    origin, problem = _origin(frame, d, kind, t, codes)
+    origin, problem = _origin(frame, d, kind, t, subj)
     if problem:
         checks.append(Check("columns typed", "fail", problem))
         raise _Stop
@@ -510,15 +510,17 @@ def _apply_drops(long: pd.DataFrame, c: dict[str, Any], spec: Spec) -> pd.DataFr
     return long if keep.all() else long.loc[keep].reset_index(drop=True)
 
 
-def pair_coverage(long: pd.DataFrame, cells: int = 10) -> float:
+def pair_coverage(long: pd.DataFrame, cells: int = 10, codes: np.ndarray | None = None
+                  ) -> float:
     """Share of the cells of a cells x cells partition of the time-pair square that hold
-    at least one pair (t_ij, t_il), j != l, of some subject."""
+    at least one pair (t_ij, t_il), j != l, of some subject (``codes``: the subjects'
+    integer codes, when already at hand)."""
     t = long.time.to_numpy()
     lo, hi = float(t.min()), float(t.max())
     if not hi > lo:
         return 0.0
     cell = np.minimum(((t - lo) / (hi - lo) * cells).astype(int), cells - 1)
-    codes = pd.factorize(long.subject)[0]
+    codes = pd.factorize(long.subject)[0] if codes is None else codes
     n = int(codes.max()) + 1
     table = np.bincount(codes * cells + cell, minlength=n * cells).reshape(n, cells)
     table = table.astype(np.float64)
@@ -526,9 +528,9 @@ def pair_coverage(long: pd.DataFrame, cells: int = 10) -> float:
     return float((pairs > 0.5).mean())
 
 
-def _design_checks(long: pd.DataFrame, c: dict[str, Any]) -> list[Check]:
+def _design_checks(long: pd.DataFrame, c: dict[str, Any], codes: np.ndarray) -> list[Check]:
     out = []
-    per = long.groupby("subject").size()
+    per = np.bincount(codes)  # readings per subject
     n_subj = int(per.size)
     if n_subj < c["min_subjects"]:
         out.append(Check("enough subjects", "fail",
@@ -544,7 +546,7 @@ def _design_checks(long: pd.DataFrame, c: dict[str, Any]) -> list[Check]:
                      f"{single} of {n_subj} subjects have a single reading (allowed; they "
                      f"inform the mean, and get scores); {multi} have two or more"))
     if multi >= 2:
-        cover = pair_coverage(long)
+        cover = pair_coverage(long, codes=codes)
         ok = cover >= c["min_pair_coverage"]
         out.append(Check("time-pair coverage", "pass" if ok else "warn",
                          f"{cover:.0%} of the 10 x 10 cells of the time-pair square hold pairs"
