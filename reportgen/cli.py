@@ -217,8 +217,10 @@ def _cmd_predict(args: argparse.Namespace) -> int:
     frame = fit.predict_file(args.data)
     path = write_table(frame, args.out)
     subjects, rows = summary(frame)
+    transform = fit.spec.data["transform"]
+    scale = "" if transform == "none" else f", on the {transform} scale the run analysed"
     print(f"predictions written: {path} ({subjects} subjects, {rows} rows; scores and "
-          f"trajectories with {fit.predictor.band_level:.0%} bands on the run's grid)")
+          f"trajectories with {fit.predictor.band_level:.0%} bands on the run's grid{scale})")
     return 0
 
 
