@@ -14,7 +14,7 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
-from .analysis import STANDARD_CAUTIONS, AnalysisResult, rule_choice, spread_trend
+from .analysis import STANDARD_CAUTIONS, AnalysisResult, rule_choice
 from .errors import TemplateError
 from .fpca import BandwidthChoice
 
@@ -273,7 +273,7 @@ def _section_residuals(c: _Context) -> None:
            "expected when the model fits. Per subject, the root mean square of the "
            f"standardized residuals has median {rms.median():.3g} and 90th percentile "
            f"{rms.quantile(0.9):.3g}; the Spearman correlation of their size with the fitted "
-           f"value is {spread_trend(result.residuals):.2f} (near 0 expected). The full list is "
+           f"value is {result.spread:.2f} (near 0 expected). The full list is "
            "tables/residuals_by_subject.csv.")
     b.table(s, f"The {len(worst)} subjects with the largest RMS standardized residual.",
             ["subject", "readings", "mean residual", "RMS standardized"],

@@ -66,7 +66,11 @@ def _column_text(series: pd.Series) -> list[str] | None:
         if not all(isinstance(v, str) or v is None or (isinstance(v, float) and v != v)
                    or v is pd.NA for v in cells):
             return None
-        return ["" if not isinstance(v, str) else _quoted(v) for v in cells]
+        text = ["" if not isinstance(v, str) else v for v in cells]
+        joined = "\x00".join(text)  # one scan for the characters that need quoting
+        if not any(ch in joined for ch in ',"\n'):
+            return text
+        return [_quoted(v) for v in text]
     return None
 
 
