@@ -143,7 +143,7 @@ def _sensitivity(spec: Spec, codes: np.ndarray, t: np.ndarray, y: np.ndarray,
     return runs
 
 
-def _residuals(fit: FPCAFit, frame: pd.DataFrame) -> pd.DataFrame:
+def _residuals(fit: FPCAFit, frame: pd.DataFrame, rows: np.ndarray) -> pd.DataFrame:
     """Readings minus fitted trajectories, each standardized by its own model variance.
 
     Under the model, y - E[X(t) | y] at a reading has variance sigma^2 - phi(t)' Omega phi(t)
@@ -151,14 +151,20 @@ def _residuals(fit: FPCAFit, frame: pd.DataFrame) -> pd.DataFrame:
     for e = sigma^2 Sigma^-1 r, standard Gaussian conditioning), plus the variance of the
     components K leaves out. Dividing by its square root makes 1 the expected spread: the
     in-sample residuals are shrunk by design, so sigma alone would understate them.
+    ``rows`` gives each reading's row in ``fit.subjects`` (the codes the fit was given).
     """
-    rows = pd.Index(fit.subjects).get_indexer(frame.subject)
     t = frame.time.to_numpy()
     phi = fit.eigenfunctions_at(t)
     fitted = fit.mean_at(t) + np.einsum("nk,nk->n", phi, fit.score_values[rows])
     resid = frame.value.to_numpy() - fitted
-    var = (fit.error_variance - np.einsum("nk,nkl,nl->n", phi, fit.score_cov[rows], phi)
-           + np.interp(t, fit.grid, fit.truncation_variance))
+    # phi' Omega phi term by term: never an (n_readings, K, K) copy of the covariances
+    quad = np.zeros_like(t)
+    k = fit.n_components
+    for a in range(k):
+        for b in range(a, k):
+            term = phi[:, a] * phi[:, b] * fit.score_cov[rows, a, b]
+            quad += term if a == b else 2.0 * term
+    var = (fit.error_variance - quad + np.interp(t, fit.grid, fit.truncation_variance))
     sd = np.sqrt(np.maximum(var, 1e-12 * fit.error_variance))
     return pd.DataFrame({"subject": frame.subject.to_numpy(), "time": t,
                          "value": frame.value.to_numpy(), "fitted": fitted, "residual": resid,
@@ -354,7 +360,7 @@ def analyse(spec: Spec, ds: Dataset, progress: Progress = lambda _: None,
     stable: list[bool | None] = [
         all(np.nan_to_num(r.similarity[k]) >= threshold for r in computed) if computed else None
         for k in range(fit.n_components)]
-    residuals = _residuals(fit, ds.frame)
+    residuals = _residuals(fit, ds.frame, codes)
     groups: GroupComparison | None = None
     subject_groups: tuple[str, ...] = ()
     if "group" in ds.frame:
