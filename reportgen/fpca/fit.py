@@ -20,7 +20,7 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
-from scipy.special import chdtri, ndtri
+from scipy.special import ndtri
 from threadpoolctl import threadpool_limits
 
 from ..errors import EstimationError
@@ -47,7 +47,7 @@ from .design import (
 from .frame import arrays_from_frame
 from .likelihood import LikelihoodFit, maximise, starting_error_variance
 from .options import FPCAOptions
-from .predictor import Predictor
+from .predictor import Predictor, band_multiplier
 from .scores import SampleTerms, conditional_scores, loo_errors, sample_terms
 from .smoothing import (
     BinGrid,
@@ -219,22 +219,18 @@ class FPCAFit:
         """Eigenfunctions at arbitrary times (linear interpolation), shape (n, K)."""
         return evaluate_at(np.asarray(t, dtype=np.float64), self.grid, self.eigenfunctions)
 
-    def band_multiplier(self, level: float | None = None, kind: str = "pointwise") -> float:
-        """Multiplier of the standard error for a two-sided band at ``level``.
+    @property
+    def simultaneous_dof(self) -> int:
+        """Components that enter a trajectory band's variance: the retained ones, plus the
+        left-out refined ones when they carry variance."""
+        return int(self.likelihood.eigenvalues.size if np.any(self.truncation_variance > 0)
+                   else self.n_components)
 
-        ``"pointwise"``: the normal quantile. ``"simultaneous"``: sqrt of the chi-square
-        quantile with as many degrees of freedom as components enter the band's variance
-        (the retained ones, plus the left-out refined ones when they carry variance). The
-        trajectory's error then lies in their span, and the Cauchy-Schwarz inequality
-        turns the chi-square region of the scores into a band that holds at every time at
-        once (Yao, Müller & Wang 2005, sec. 3; Scheffé's method).
-        """
+    def band_multiplier(self, level: float | None = None, kind: str = "pointwise") -> float:
+        """Multiplier of the standard error for a two-sided band at ``level``
+        (:func:`~reportgen.fpca.predictor.band_multiplier` with ``simultaneous_dof``)."""
         lvl = self.options.band_level if level is None else level
-        if kind == "pointwise":
-            return float(ndtri(0.5 + lvl / 2.0))
-        dof = self.likelihood.eigenvalues.size if np.any(self.truncation_variance > 0) \
-            else self.n_components
-        return float(np.sqrt(chdtri(dof, 1.0 - lvl)))
+        return band_multiplier(lvl, kind, self.simultaneous_dof)
 
     def curves(
         self, scores: FloatArray, score_cov: FloatArray, level: float | None = None,
@@ -288,12 +284,10 @@ class FPCAFit:
 
     def predictor(self) -> Predictor:
         """The population parts that score new subjects (stored in a run as model.csv)."""
-        dof = self.likelihood.eigenvalues.size if np.any(self.truncation_variance > 0) \
-            else self.n_components
         fine_t, fine_mu = self._mean_fine
         return Predictor(self.grid, fine_t, fine_mu, self.eigenfunctions, self.eigenvalues,
                          self.error_variance, self.truncation_variance,
-                         self.options.band_level, int(dof))
+                         self.options.band_level, self.simultaneous_dof)
 
     def conditional_scores(self, sample: Sample) -> tuple[FloatArray, FloatArray]:
         """BLUP scores and error covariance for readings of (new) subjects."""

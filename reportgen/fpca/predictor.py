@@ -27,6 +27,20 @@ from .smoothing import FloatArray
 SCALARS = ("error_variance", "band_level", "simultaneous_dof")
 
 
+def band_multiplier(level: float, kind: str, dof: int) -> float:
+    """Multiplier of the standard error for a two-sided band at ``level``.
+
+    ``"pointwise"``: the normal quantile. ``"simultaneous"``: sqrt of the chi-square
+    quantile with ``dof`` degrees of freedom, as many as components enter the band's
+    variance. The trajectory's error then lies in their span, and the Cauchy-Schwarz
+    inequality turns the chi-square region of the scores into a band that holds at every
+    time at once (Yao, Müller & Wang 2005, sec. 3; Scheffé's method).
+    """
+    if kind == "pointwise":
+        return float(ndtri(0.5 + level / 2.0))
+    return float(np.sqrt(chdtri(dof, 1.0 - level)))
+
+
 @dataclass(frozen=True)
 class Predictor:
     grid: FloatArray
@@ -89,10 +103,8 @@ class Predictor:
         return out
 
     def band_multiplier(self, kind: str = "pointwise") -> float:
-        """As ``FPCAFit.band_multiplier`` at the stored level."""
-        if kind == "pointwise":
-            return float(ndtri(0.5 + self.band_level / 2.0))
-        return float(np.sqrt(chdtri(self.simultaneous_dof, 1.0 - self.band_level)))
+        """:func:`band_multiplier` at the stored level and degrees of freedom."""
+        return band_multiplier(self.band_level, kind, self.simultaneous_dof)
 
     def scores(self, sample: Sample) -> tuple[FloatArray, FloatArray]:
         """BLUP scores and their prediction-error covariance for the sample's subjects."""
