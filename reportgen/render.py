@@ -394,8 +394,8 @@ def build_sections(result: AnalysisResult, record_view: dict[str, Any],
 
 
 def render_html(result: AnalysisResult, version: int, record_view: dict[str, Any],
-                figures: dict[str, tuple[str, str, str]], style: Style | None = None) -> bytes:
-    """The report page, in the spec's style (the default one when ``style`` is None).
+                figures: dict[str, tuple[str, str, str]], style: Style) -> bytes:
+    """The report page, in the spec's style (``style.load_style``).
 
     A shipped style renders in this process; the spec's own template in a sandboxed child
     process with time, memory and output limits (``sandbox``). Raises TemplateError.
@@ -403,10 +403,8 @@ def render_html(result: AnalysisResult, version: int, record_view: dict[str, Any
     from markupsafe import Markup
 
     from .sandbox import USER, TemplateFailure, render_here, render_in_child, shipped_sources
-    from .style import Style as _Style
 
     spec = result.spec
-    style = style or _Style("default", None, _default_css(), "", "", "", "", None, ())
     sections = build_sections(result, record_view, figures, style.numbering, style.sections)
     header = " · ".join(x for x in (style.header, f"{spec.report_id} v{version:03d}") if x)
     context = {
@@ -428,12 +426,6 @@ def render_html(result: AnalysisResult, version: int, record_view: dict[str, Any
                  if style.user_template is not None else f"the {style.name} style")
         raise TemplateError(f"{which}: {e}") from e
     return html.encode("utf-8")
-
-
-def _default_css() -> str:
-    from .sandbox import shipped_css
-
-    return shipped_css("default")
 
 
 def _record_item(record_view: dict[str, Any], prefix: str) -> str:
