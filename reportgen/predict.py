@@ -14,7 +14,6 @@ import tempfile
 from dataclasses import dataclass
 from pathlib import Path
 
-import numpy as np
 import pandas as pd
 
 from .data import dataset_from_bytes, read_path, require_passed
@@ -123,4 +122,4 @@ def write_table(frame: pd.DataFrame, out: str | Path) -> Path:
 
 def summary(frame: pd.DataFrame) -> tuple[int, int]:
     """(subjects, rows) of a prediction table."""
-    return int(pd.unique(frame.subject).size), int(np.int64(len(frame)))
+    return int(pd.unique(frame.subject).size), len(frame)
