@@ -22,13 +22,12 @@ import threading
 from collections.abc import Callable
 from dataclasses import replace
 from pathlib import Path
-from typing import TYPE_CHECKING, Any, BinaryIO, cast
+from typing import TYPE_CHECKING, Any, BinaryIO
 
 from .threads import one_blas_thread
 
 if TYPE_CHECKING:
     from .analysis import AnalysisResult
-    from .fpca import FPCAFit
 
 # Figures that need the fit's summaries only (not the readings or per-subject results),
 # drawn by the worker from a slim copy of the analysis. The worker is ready about 2 s after
@@ -58,20 +57,14 @@ def _pdf(html: bytes, spec_bytes: bytes, record_bytes: bytes, stamp: str) -> byt
     return render_pdf(html, spec_bytes, record_bytes, stamp)
 
 
-def _slim_fit(fit: FPCAFit) -> FPCAFit:
-    return replace(fit, _sample=cast(Any, None), replicates=(),
-                   subjects=fit.subjects[:0], score_values=fit.score_values[:0],
-                   score_cov=fit.score_cov[:0])
-
-
 def summary_view(result: AnalysisResult) -> AnalysisResult:
     """The analysis without its per-reading and per-subject parts (what SUMMARY_FIGURES
     need, at a size that does not grow with the data)."""
     ds = result.dataset
-    runs = tuple(replace(r, fit=_slim_fit(r.fit)) if r.fit is not None else r
+    runs = tuple(replace(r, fit=r.fit.without_subjects()) if r.fit is not None else r
                  for r in result.sensitivity)
     return replace(result, dataset=replace(ds, frame=ds.frame.iloc[:0]),
-                   fit=_slim_fit(result.fit), sensitivity=runs,
+                   fit=result.fit.without_subjects(), sensitivity=runs,
                    residuals=result.residuals.iloc[:0],
                    residual_summary=result.residual_summary.iloc[:0],
                    outliers=result.outliers.iloc[:0])

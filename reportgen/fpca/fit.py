@@ -169,7 +169,7 @@ class FPCAFit:
     warnings: tuple[str, ...]
     options: FPCAOptions
     _mean_fine: tuple[FloatArray, FloatArray] = field(repr=False)
-    _sample: Sample = field(repr=False)
+    _sample: Sample | None = field(repr=False)  # None in a fit without its subjects
     replicates: tuple[Replicate, ...] = ()
     columns: tuple[str, str, str] = ("subject", "time", "value")
 
@@ -184,6 +184,13 @@ class FPCAFit:
     @property
     def diagonal_bandwidth(self) -> float:
         return self.diagonal_bandwidth_choice.value
+
+    def without_subjects(self) -> FPCAFit:
+        """This fit's population parts only: no scores, readings or resamples, at a size
+        that does not grow with the number of subjects (what a comparison of fits or a
+        summary figure needs). ``n_obs`` stays: the design summaries use it."""
+        return replace(self, _sample=None, replicates=(), subjects=self.subjects[:0],
+                       score_values=self.score_values[:0], score_cov=self.score_cov[:0])
 
     @property
     def retained_covariance(self) -> FloatArray:
@@ -255,6 +262,8 @@ class FPCAFit:
     ) -> pd.DataFrame:
         """Recovered trajectories on the grid: subject, time, fitted, the pointwise band
         (lower, upper) and the simultaneous band (lower_simultaneous, upper_simultaneous)."""
+        if self._sample is None:
+            raise EstimationError("this fit was stripped of its subjects (without_subjects)")
         if subjects is None:
             rows = np.arange(self.n_subjects)
         else:
@@ -460,12 +469,15 @@ def _check_design(sample: Sample, lo: float, hi: float) -> None:
 def fit_arrays(
     subject: IntArray, t: FloatArray, y: FloatArray, labels: np.ndarray,
     options: FPCAOptions = FPCAOptions(), *, population_only: bool = False,
+    per_subject: bool = True,
 ) -> FPCAFit:
     """Fit sparse FPCA to readings given as arrays.
 
     With ``population_only`` (used for the resamples of the corrected bands) the criteria
     for the number of components, the mean's simultaneous multiplier and the corrected
     bands are skipped (``nan`` / empty); ``component_rule`` must then be ``"fixed"``.
+    With ``per_subject=False`` (fits compared by their population parts) the scores are
+    not computed: the fit comes as :meth:`FPCAFit.without_subjects` returns it.
 
     Parameters
     ----------
@@ -480,11 +492,11 @@ def fit_arrays(
     results do not depend on the machine's core count or load.
     """
     with threadpool_limits(limits=1, user_api="blas"):
-        return _fit(subject, t, y, labels, options, population_only)
+        return _fit(subject, t, y, labels, options, population_only, per_subject)
 
 
 def _fit(subject: IntArray, t: FloatArray, y: FloatArray, labels: np.ndarray,
-         options: FPCAOptions, population_only: bool) -> FPCAFit:
+         options: FPCAOptions, population_only: bool, per_subject: bool = True) -> FPCAFit:
     sample = Sample.from_arrays(subject, t, y)
     lo, hi = options.domain if options.domain is not None else (float(t.min()), float(t.max()))
     _check_design(sample, lo, hi)
@@ -583,9 +595,12 @@ def _fit(subject: IntArray, t: FloatArray, y: FloatArray, labels: np.ndarray,
     truncation = np.sum(lik.eigenvalues[k:] * funcs_ref[:, k:] ** 2, axis=1)
 
     # 6. scores
-    phi_obs = evaluate_at(sample.t, grid, funcs)
-    scores, score_cov = conditional_scores(sample.starts, resid, phi_obs, values,
-                                           lik.error_variance)
+    if per_subject:
+        phi_obs = evaluate_at(sample.t, grid, funcs)
+        scores, score_cov = conditional_scores(sample.starts, resid, phi_obs, values,
+                                               lik.error_variance)
+    else:
+        scores, score_cov = np.zeros((0, k)), np.zeros((0, k, k))
     fit = FPCAFit(
         grid=_frozen(grid), mean=_frozen(mean), mean_se=_frozen(mean_se),
         covariance=_frozen(cov), diagonal_variance=_frozen(diag_var),
@@ -601,15 +616,16 @@ def _fit(subject: IntArray, t: FloatArray, y: FloatArray, labels: np.ndarray,
         n_components=k, mean_bandwidth_choice=mean_choice,
         covariance_bandwidth_choice=cov_choice, diagonal_bandwidth_choice=diag_choice,
         selection=selection,
-        subjects=_frozen(np.asarray(labels)), n_obs=_frozen(sample.n_obs),
+        subjects=_frozen(np.asarray(labels)[:scores.shape[0]]), n_obs=_frozen(sample.n_obs),
         score_values=_frozen(scores), score_cov=_frozen(score_cov),
         pair_counts=_frozen(pstats.offdiag.counts.sum(axis=0)), pair_grid=_frozen(cbins.centers),
         n_readings=int(sample.t.size), dropped_eigenvalues=eig.n_dropped,
         dropped_negative_sum=eig.dropped_sum,
         warnings=tuple(messages), options=options,
-        _mean_fine=(_frozen(mbins.centers), _frozen(fine)), _sample=sample,
+        _mean_fine=(_frozen(mbins.centers), _frozen(fine)),
+        _sample=sample if per_subject else None,
     )
-    if options.band == "corrected" and not population_only:
+    if options.band == "corrected" and not population_only and per_subject:
         fit = _with_replicates(fit, sample)
     return fit
 
