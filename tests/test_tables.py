@@ -13,6 +13,7 @@ import pandas as pd
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
+from reportgen import tables
 from reportgen.tables import FLOAT_FORMAT, to_csv_bytes
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -58,3 +59,17 @@ def test_the_committed_tables_are_written_back_identically() -> None:
     for path in sorted((ROOT / "sample_runs").glob("*/v001/tables/*.csv")):
         frame = pd.read_csv(path, keep_default_na=False, na_values=[""])
         assert to_csv_bytes(frame) == _pandas(frame), path.name
+
+
+@settings(max_examples=100, deadline=None)
+@given(st.lists(st.tuples(TEXT, COLUMN), min_size=1, max_size=3, unique_by=lambda c: c[0]),
+       st.integers(1, 4))
+def test_rows_written_in_blocks(columns: list[tuple[str, list[object]]], block: int) -> None:
+    # three rows in blocks of 1 to 4 rows: every way a block boundary can fall
+    frame = pd.DataFrame({name: values for name, values in columns})
+    saved = tables.CSV_BLOCK_ROWS
+    tables.CSV_BLOCK_ROWS = block
+    try:
+        assert to_csv_bytes(frame) == _pandas(frame)
+    finally:
+        tables.CSV_BLOCK_ROWS = saved
