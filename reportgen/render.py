@@ -215,6 +215,11 @@ def _section_components(c: _Context) -> None:
     fig(s, "effects")
 
 
+# Flagged subjects named in the text, farthest first; a large study flags thousands (6558
+# of 10^6 at the 0.99 quantile: 25 PDF pages of ids), and the table holds them all.
+NAMED_FLAGGED = 20
+
+
 def _section_scores(c: _Context) -> None:
     b = c.b
     result = c.result
@@ -224,12 +229,14 @@ def _section_scores(c: _Context) -> None:
     s = b.section("scores", "Scores", "Where each subject sits on the components.")
     flagged = result.outliers[result.outliers.flagged].sort_values("distance2",
                                                                   ascending=False)
+    first = flagged.iloc[:NAMED_FLAGGED]
     named = ", ".join(f"{sid} ({d2:.3g})" for sid, d2 in
-                      zip(flagged.subject.astype(str), flagged.distance2, strict=True))
+                      zip(first.subject.astype(str), first.distance2, strict=True))
+    which = "" if len(flagged) <= NAMED_FLAGGED else f"; the {NAMED_FLAGGED} farthest"
     b.text(s, f"Rule: a subject is flagged when its squared Mahalanobis distance of the scores "
            f"exceeds the {spec.subjects['outlier_quantile']:g} quantile of the "
            f"chi-square({fit.n_components}) distribution; {len(flagged)} subject(s) flagged"
-           + (f": {named} (squared distance in brackets)" if named else "")
+           + (f"{which}: {named} (squared distance in brackets)" if named else "")
            + ". Distances and flags of every subject: tables/scores.csv.")
     fig(s, "scores")
 

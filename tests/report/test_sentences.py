@@ -136,3 +136,20 @@ def test_spread_trend_is_spearmans_rho() -> None:
     assert spread_trend(frame) == pytest.approx(expected, rel=1e-12)
     # Parquet input gives Arrow-backed columns: the same number
     assert spread_trend(frame.astype("float64[pyarrow]")) == pytest.approx(expected, rel=1e-12)
+
+
+def test_flagged_subjects_named_up_to_the_cap(base: AnalysisResult) -> None:
+    from dataclasses import asdict, replace
+
+    from reportgen.render import NAMED_FLAGGED, build_sections
+
+    d2 = base.outliers.distance2.to_numpy()
+    many = base.outliers.assign(flagged=d2 > np.median(d2))  # half the subjects flagged
+    result = replace(base, outliers=many)
+    text = str(asdict(build_sections(result, {}, {"scores": ("<svg></svg>", "c", "a")},
+                                     order=["scores"])[0]))
+    top = many[many.flagged].sort_values("distance2", ascending=False)
+    assert len(top) > NAMED_FLAGGED
+    assert f"{len(top)} subject(s) flagged; the {NAMED_FLAGGED} farthest: " in text
+    named = re.findall(r"(\w+) \(([\d.e+-]+)\)", text.split("farthest: ")[1].split(" (squared")[0])
+    assert [s for s, _ in named] == list(top.subject.astype(str)[:NAMED_FLAGGED])
