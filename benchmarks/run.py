@@ -262,10 +262,10 @@ def end_to_end(big_n: int) -> tuple[str, list[float]]:
             total = time.perf_counter() - t0
             s = timer.seconds
             rows.append([label] + [f"{s.get(k, 0.0):.2f}" for k in
-                                   ("data", "fit", "sensitivity", "tables", "figures", "html",
-                                    "pdf")] + [f"{total:.2f}"])
-    text = table(["run", "data", "fit", "sensitivity", "tables", "figures", "html", "pdf",
-                  "total s"], rows)
+                                   ("data", "fit", "sensitivity", "diagnostics",
+                                    "tables and figures", "html", "pdf")] + [f"{total:.2f}"])
+    text = table(["run", "data", "fit", "sensitivity", "diagnostics", "tables and figures",
+                  "html", "pdf", "total s"], rows)
     return text, [float(r[-1]) for r in rows]
 
 

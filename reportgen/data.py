@@ -255,7 +255,17 @@ def _origin(frame: pd.DataFrame, d: dict[str, Any], kind: str, t: np.ndarray,
 def load_dataset(spec: Spec) -> Dataset:
     """Read the file and run every check. Fails (DataError) only after all checks ran."""
     raw, path = read_file(spec)
-    return dataset_from_bytes(raw, path, spec, design=True)
+    dataset = dataset_from_bytes(raw, path, spec, design=True)
+    _release_arrow_memory()
+    return dataset
+
+
+def _release_arrow_memory() -> None:
+    """Hand back to the system what Arrow's allocator keeps after reading: it holds on to
+    freed blocks, 0.2 GB after loading 4.5 million readings, for the whole run."""
+    import pyarrow
+
+    pyarrow.default_memory_pool().release_unused()
 
 
 def dataset_from_bytes(raw: bytes, path: Path, spec: Spec, design: bool = True,

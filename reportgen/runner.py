@@ -79,19 +79,22 @@ def build_outputs(spec: Spec, version: int, started: str,
     require_passed(dataset)
     clock.lap("data")
     result = analyse(spec, dataset, progress, clock.lap)
-    tables = canonical_bytes(build_tables(result))
-    digest = results_digest(tables)
-    clock.lap("tables")
+    frames = build_tables(result)
     if style is None:
-        return Built({**tables, "spec.yaml": spec.raw}, digest, result)
+        tables = canonical_bytes(frames)
+        return Built({**tables, "spec.yaml": spec.raw}, results_digest(tables), result)
     progress("figures")
-    if worker is not None:
+    if worker is not None:  # the worker writes the large tables while figures are drawn
+        collect = worker.tables(frames)
         figures = worker.figures(result)
+        tables = collect()
     else:
         from .figures import make_figures
 
+        tables = canonical_bytes(frames)
         figures = make_figures(result)
-    clock.lap("figures")
+    digest = results_digest(tables)
+    clock.lap("tables and figures")
     env = environment()
     packages = ", ".join(f"{name} {env['packages'][name]}" for name in
                          ("numpy", "scipy", "pandas", "matplotlib", "weasyprint"))

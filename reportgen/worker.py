@@ -27,6 +27,8 @@ from typing import TYPE_CHECKING, Any, BinaryIO
 from .threads import one_blas_thread
 
 if TYPE_CHECKING:
+    import pandas as pd
+
     from .analysis import AnalysisResult
 
 # Figures that need the fit's summaries only (not the readings or per-subject results),
@@ -70,7 +72,17 @@ def summary_view(result: AnalysisResult) -> AnalysisResult:
                    outliers=result.outliers.iloc[:0])
 
 
-_TASKS: dict[str, Callable[..., Any]] = {"draw": _draw, "pdf": _pdf}
+def _csv(frames: dict[str, pd.DataFrame]) -> dict[str, bytes]:
+    from .tables import canonical_bytes
+
+    return canonical_bytes(frames)
+
+
+# Tables with more rows than this are written by the worker while the main process draws
+# the figures (at 10^6 subjects: 4.3 s of CSV formatting beside 4.5 s of drawing).
+LARGE_TABLE_ROWS = 50_000
+
+_TASKS: dict[str, Callable[..., Any]] = {"draw": _draw, "pdf": _pdf, "csv": _csv}
 
 
 def serve(inbox: BinaryIO | None = None, outbox: BinaryIO | None = None) -> None:
@@ -98,16 +110,21 @@ def serve(inbox: BinaryIO | None = None, outbox: BinaryIO | None = None) -> None
 
 
 class _Pending:
-    """A task sent to the worker; ``result`` waits for its reply (None if the worker failed)."""
+    """A task sent to the worker; ``result`` waits for its reply (None if the worker failed).
+    Several may be pending at once, and their results read in any order."""
 
     def __init__(self, worker: RenderWorker, task: str, args: tuple[Any, ...]) -> None:
         self._worker = worker
-        self._sent = threading.Thread(target=worker._send, args=(task, args), daemon=True)
+        self._number: int | None = None  # the task's place in the worker's queue
+        self._sent = threading.Thread(target=self._send, args=(task, args), daemon=True)
         self._sent.start()  # a large message must not block the caller while the worker loads
+
+    def _send(self, task: str, args: tuple[Any, ...]) -> None:
+        self._number = self._worker._send(task, args)
 
     def result(self) -> Any:
         self._sent.join()
-        return self._worker._receive()
+        return None if self._number is None else self._worker._reply(self._number)
 
 
 class RenderWorker:
@@ -117,6 +134,12 @@ class RenderWorker:
     def __init__(self, start: bool = True) -> None:
         self._lock = threading.Lock()
         self._proc: subprocess.Popen[bytes] | None = None
+        self._sent = 0  # tasks sent; the worker answers them in this order
+        # Replies are read as they come, by a thread of their own: a worker blocked on
+        # writing a large reply would otherwise never read the next task (a deadlock).
+        self._replies: dict[int, Any] = {}  # read, not yet claimed
+        self._arrived = threading.Condition()
+        self._gone = False  # the worker died or was ended
         if not start:  # every task then runs in the calling process
             return
         root = str(Path(__file__).resolve().parents[1])
@@ -129,6 +152,8 @@ class RenderWorker:
                 env=env)
         except OSError:
             self._proc = None
+            return
+        threading.Thread(target=self._read_replies, args=(self._proc,), daemon=True).start()
 
     def figures(self, result: AnalysisResult) -> dict[str, tuple[str, str, str]]:
         """Every figure, in report order: the summary ones drawn by the worker while this
@@ -144,6 +169,25 @@ class RenderWorker:
         both = {**local, **remote}
         return {name: both[name] for name in FIGURES if name in both}
 
+    def tables(self, frames: dict[str, pd.DataFrame]) -> Callable[[], dict[str, bytes]]:
+        """Start writing the canonical CSV bytes (``tables.canonical_bytes``): the large
+        tables in the worker, the others here. Returns the function that waits for them
+        and gives them all, in name order."""
+        from .tables import canonical_bytes
+
+        large = {n: f for n, f in frames.items() if len(f) > LARGE_TABLE_ROWS}
+        pending = self._submit("csv", large) if large else None
+        small = canonical_bytes({n: f for n, f in frames.items() if n not in large})
+
+        def collect() -> dict[str, bytes]:
+            remote = pending.result() if pending is not None else None
+            if remote is None:
+                remote = canonical_bytes(large)
+            both = {**small, **remote}
+            return {name: both[name] for name in sorted(both)}
+
+        return collect
+
     def pdf(self, html: bytes, spec_bytes: bytes, record_bytes: bytes, stamp: str) -> bytes:
         pending = self._submit("pdf", html, spec_bytes, record_bytes, stamp)
         pdf = pending.result() if pending is not None else None
@@ -157,26 +201,41 @@ class RenderWorker:
     def _submit(self, task: str, *args: Any) -> _Pending | None:
         return _Pending(self, task, args) if self._proc is not None else None
 
-    def _send(self, task: str, args: tuple[Any, ...]) -> None:
-        proc = self._proc
-        try:
-            with self._lock:
+    def _send(self, task: str, args: tuple[Any, ...]) -> int | None:
+        """Send a task; its number in the worker's queue, or None if it could not be sent
+        (the caller then does the task itself)."""
+        with self._lock:
+            proc = self._proc
+            try:
                 assert proc is not None and proc.stdin is not None
                 pickle.dump((task, args), proc.stdin, protocol=pickle.HIGHEST_PROTOCOL)
                 proc.stdin.flush()
-        except (OSError, ValueError, AssertionError):  # ValueError: the pipe was closed
-            pass  # the reply read then fails too, and the caller does the task itself
+            except (OSError, ValueError, AssertionError):  # ValueError: the pipe was closed
+                return None
+            self._sent += 1
+            return self._sent - 1
 
-    def _receive(self) -> Any:
-        proc = self._proc
-        if proc is None or proc.stdout is None:
-            return None
+    def _read_replies(self, proc: subprocess.Popen[bytes]) -> None:
+        received = 0
         try:
-            status, value = pickle.load(proc.stdout)
-        except (EOFError, OSError, pickle.UnpicklingError):
-            self._kill()
-            return None
-        return value if status == "ok" else None
+            assert proc.stdout is not None
+            while True:
+                status, value = pickle.load(proc.stdout)
+                with self._arrived:
+                    self._replies[received] = value if status == "ok" else None
+                    received += 1
+                    self._arrived.notify_all()
+        except (EOFError, OSError, ValueError, AssertionError, pickle.UnpicklingError):
+            pass  # the worker ended: every unanswered task falls back to the caller
+        with self._arrived:
+            self._gone = True
+            self._arrived.notify_all()
+
+    def _reply(self, number: int) -> Any:
+        """The reply to task ``number`` (None if the worker failed or died)."""
+        with self._arrived:
+            self._arrived.wait_for(lambda: number in self._replies or self._gone)
+            return self._replies.pop(number, None)
 
     def _kill(self) -> None:
         proc, self._proc = self._proc, None

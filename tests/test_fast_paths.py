@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import numpy as np
 import pandas as pd
+import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
@@ -57,14 +58,16 @@ def test_average_ranks_match_scipy(values: list[float]) -> None:
 
     x = np.array(values)
     assert np.array_equal(average_ranks(x), rankdata(x))
+    assert np.array_equal(average_ranks(np.unique(x)), rankdata(np.unique(x)))  # no ties
 
 
-def test_spread_trend_is_spearman() -> None:
+@pytest.mark.parametrize("n", [5000, 150_000])  # the larger one ranks in two threads
+def test_spread_trend_is_spearman(n: int) -> None:
     from scipy.stats import spearmanr
 
     rng = np.random.default_rng(3)
-    fitted = np.round(rng.normal(size=5000), 1)  # many ties
-    std = rng.normal(size=5000) * (1 + 0.3 * fitted.clip(-2, 2))
+    fitted = np.round(rng.normal(size=n), 1)  # many ties
+    std = rng.normal(size=n) * (1 + 0.3 * fitted.clip(-2, 2))
     frame = pd.DataFrame({"fitted": fitted, "standardized": std})
     ref = spearmanr(np.abs(std), fitted).statistic
     assert abs(spread_trend(frame) - ref) < 1e-12
@@ -109,3 +112,23 @@ def test_a_fit_without_scores_has_the_same_population_parts() -> None:
     assert slim.score_values.shape == (0, full.n_components) and slim.n_subjects == 0
     for name in ("mean", "eigenfunctions", "all_eigenvalues", "error_variance"):
         np.testing.assert_array_equal(getattr(slim, name), getattr(full, name))
+
+
+def test_pair_counts_numpy_and_compiled_agree(monkeypatch: pytest.MonkeyPatch) -> None:
+    # the two ways of counting pairs (numpy for check, the fit's kernel in run); the
+    # kernel's pair sums are checked against explicit enumeration in tests/test_design.py
+    import sys
+
+    import reportgen.fpca._kernels  # noqa: F401  (the compiled path needs it loaded)
+    from reportgen.fpca.feasibility import pair_counts
+    from reportgen.fpca.smoothing import BinGrid
+
+    rng = np.random.default_rng(4)
+    codes = rng.permutation(np.repeat(np.arange(500), rng.integers(1, 7, 500)))
+    t = rng.uniform(0, 10, codes.size)
+    bins = BinGrid(0.0, 10.0, 31)
+    compiled = pair_counts(codes, t, bins)
+    monkeypatch.delitem(sys.modules, "reportgen.fpca._kernels")
+    plain = pair_counts(codes, t, bins)
+    np.testing.assert_allclose(compiled, plain, rtol=1e-12, atol=1e-9)
+    assert compiled.sum() > 0

@@ -1,4 +1,5 @@
-"""What a fit would refuse, found from the design alone (no fit, no compiled kernels).
+"""What a fit would refuse, found from the design alone (no fit; numpy only, unless the
+fit's compiled kernels are loaded already).
 
 ``reportgen check`` calls this so that "usable" means that ``run`` will get past its
 feasibility tests: readings inside the domain, two subjects with two or more readings,
@@ -14,7 +15,9 @@ undefined makes a candidate fail; when all fail the run says so).
 
 from __future__ import annotations
 
+import sys
 from itertools import pairwise
+from typing import Any
 
 import numpy as np
 from numpy.typing import NDArray
@@ -43,8 +46,14 @@ def pair_counts(subject: IntArray, t: FloatArray, bins: BinGrid) -> FloatArray:
     """Linearly binned counts of the pairs (t_ij, t_il), j != l, shape (n_bins, n_bins).
 
     Per subject, the pairs' weights are the outer product of the readings' bin weights
-    minus each reading's product with itself.
+    minus each reading's product with itself. When the fit's compiled kernels are loaded
+    already (``run``, not ``check``), their pair pass counts instead: the same numbers to
+    rounding (``tests/test_fast_paths.py``), 0.2 s against 1.1-2.9 s at 4.5 million
+    readings.
     """
+    kernels = sys.modules.get("reportgen.fpca._kernels")
+    if kernels is not None and subject.size:
+        return _compiled_pair_counts(kernels, subject, t, bins)
     b = bins.n_bins
     left, f = bins.locate(t)
     order = np.argsort(subject, kind="stable")
@@ -65,6 +74,19 @@ def pair_counts(subject: IntArray, t: FloatArray, bins: BinGrid) -> FloatArray:
         for db, wb in ((0, 1.0 - f), (1, f)):
             own += np.bincount((left + da) * b + left + db, wa * wb, b * b)
     return np.maximum(out - own.reshape(b, b), 0.0)
+
+
+def _compiled_pair_counts(kernels: Any, subject: IntArray, t: FloatArray,
+                          bins: BinGrid) -> FloatArray:
+    order = np.argsort(subject, kind="stable")
+    sorted_codes = subject[order]
+    n_subjects = int(sorted_codes[-1]) + 1
+    starts = np.searchsorted(sorted_codes, np.arange(n_subjects)).astype(np.intp)
+    times = np.ascontiguousarray(t[order], dtype=np.float64)
+    counts = kernels.bin_pairs(starts, times, np.zeros_like(times),
+                               np.zeros(n_subjects, dtype=np.intp), bins.lower, bins.width,
+                               bins.n_bins, 1)[1]
+    return np.asarray(counts[0])
 
 
 def _largest(setting: float | str, span: float, bins: BinGrid, n_subjects: int,

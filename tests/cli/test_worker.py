@@ -4,10 +4,13 @@ from __future__ import annotations
 
 from pathlib import Path
 
+import pandas as pd
 import pytest
 
 import reportgen.runner
+import reportgen.worker
 from reportgen.runner import run_spec
+from reportgen.tables import canonical_bytes
 from reportgen.worker import RenderWorker
 
 
@@ -18,6 +21,8 @@ def _files(run: Path) -> dict[str, bytes]:
 
 def test_worker_alone_and_dead_worker_write_the_same_bytes(
         study: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    # the example's per-subject tables count as large: the worker writes them
+    monkeypatch.setattr(reportgen.worker, "LARGE_TABLE_ROWS", 10)
     with_worker = _files(run_spec(study, tmp_path / "a"))
 
     monkeypatch.setattr(reportgen.runner, "RenderWorker", lambda: RenderWorker(start=False))
@@ -33,3 +38,15 @@ def test_worker_alone_and_dead_worker_write_the_same_bytes(
     dead = _files(run_spec(study, tmp_path / "c"))
     assert "report.pdf" in with_worker and len(with_worker) > 20
     assert with_worker == alone == dead
+
+
+def test_replies_are_claimed_in_any_order() -> None:
+    frames = [{"a": pd.DataFrame({"x": [1.5, 2.0]})}, {"b": pd.DataFrame({"y": ["p", "q"]})}]
+    worker = RenderWorker()
+    try:
+        first, second = (worker._submit("csv", f) for f in frames)
+        assert first is not None and second is not None
+        assert second.result() == canonical_bytes(frames[1])
+        assert first.result() == canonical_bytes(frames[0])
+    finally:
+        worker.close()
