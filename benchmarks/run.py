@@ -389,6 +389,10 @@ NOTES = """## Notes on the targets
 - Times are wall-clock on a shared machine; repeated runs vary by about 10%, and the pandas
   floor at 10^6 varied between 0.13 s and 0.25 s across runs of this script (its own
   allocations), so fit / floor at 10^6 has been between 4 and 8.
+- A command's ratio to its floor is steadier than its seconds: on this machine the floor
+  (`python -c "import numpy, pandas"`) has measured 0.5 s on one day and 0.9-1.0 s on
+  another, and the demo run 6.4 s and 11.8 s, both about 12 times the floor. Read a NOT met
+  beside an unchanged ratio as the machine, not the code.
 - The per-reading sums (binned readings, within-subject pairs, per-subject K x K sums and
   interpolation at the reading times) are compiled single passes (numba,
   `reportgen/fpca/_kernels.py`). With dense per-subject bin vectors and BLAS products
