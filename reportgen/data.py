@@ -20,6 +20,8 @@ import numpy as np
 import pandas as pd
 
 from .errors import DataError
+from .manifest import Part, is_many, list_files
+from .manifest import digest as manifest_digest
 from .readers import Table, detect_format, is_date_column, looks_like_dates, parse_table, plain
 from .spec import Spec
 
@@ -50,6 +52,7 @@ class Dataset:
     sha256: str
     rows_read: int
     labels: dict[str, str] = field(default_factory=dict)  # role -> label stored in the file
+    parts: tuple[Part, ...] = ()  # data.file names many Parquet files: these, in order
 
     @property
     def failed(self) -> list[Check]:
@@ -253,11 +256,66 @@ def _origin(frame: pd.DataFrame, d: dict[str, Any], kind: str, t: np.ndarray,
 
 
 def load_dataset(spec: Spec) -> Dataset:
-    """Read the file and run every check. Fails (DataError) only after all checks ran."""
-    raw, path = read_file(spec)
-    dataset = dataset_from_bytes(raw, path, spec, design=True)
+    """Read the file (or files) and run every check. Fails (DataError) only after all
+    checks ran."""
+    if is_many(spec.data["file"], spec.data_path):
+        dataset = _dataset_from_parts(spec)
+    else:
+        raw, path = read_file(spec)
+        dataset = dataset_from_bytes(raw, path, spec, design=True)
     _release_arrow_memory()
     return dataset
+
+
+def _dataset_from_parts(spec: Spec) -> Dataset:
+    """Every Parquet file that ``data.file`` names, in manifest order, as one table; each
+    file's bytes are hashed as read. A subject whose readings lie in two files fails a
+    check: the partitioned plan needs whole subjects per file."""
+    d, shown = spec.data, spec.data["file"]
+    if d["format"] not in ("auto", "parquet"):
+        raise DataError(f"data.file {shown!r} names a folder or pattern, which is read as "
+                        f"Parquet files; data.format says {d['format']}")
+    tables, parts = [], []
+    for rel, full in list_files(spec.data_path, shown):
+        raw, _ = read_path(full, f"{shown}: {rel}")
+        parts.append(Part(rel, len(raw), hashlib.sha256(raw).hexdigest()))
+        tables.append(parse_table(raw, "parquet", f"{shown}: {rel}"))
+        del raw
+        here, there = (", ".join(map(str, t.frame.columns)) for t in (tables[-1], tables[0]))
+        if here != there:
+            raise DataError(f"data.file {shown!r}: {rel!r} has the columns {here}; the first "
+                            f"file, {parts[0].path!r}, has {there}")
+    sizes = [len(t.frame) for t in tables]
+    frame = pd.concat([t.frame for t in tables], ignore_index=True)
+    starts = tuple(int(x) for x in np.cumsum([0, *sizes[:-1]]))
+    table = Table(frame, "parquet", parts=tuple(zip((p.path for p in parts), starts, strict=True)))
+    del tables
+    extra = []
+    if d["subject"] in frame.columns:
+        extra.append(_whole_subjects(frame[d["subject"]], sizes, parts))
+    return _dataset(table, spec.data_path, shown, sum(p.n_bytes for p in parts),
+                    manifest_digest(parts), spec, True, tuple(parts), extra)
+
+
+def _whole_subjects(ids: pd.Series, sizes: list[int], parts: list[Part]) -> Check:
+    """Fails when a subject's readings lie in more than one file."""
+    codes = pd.factorize(ids)[0]
+    part = np.repeat(np.arange(len(sizes)), sizes)
+    pairs = np.unique(codes.astype(np.int64) * len(sizes) + part)
+    split = pairs // len(sizes)
+    repeated = split[1:][split[1:] == split[:-1]]
+    n_files = len(parts)
+    if repeated.size == 0:
+        return Check("subjects whole in one file", "pass",
+                     f"{n_files} Parquet files; every subject's readings are in one of them")
+    first = int(repeated[0])
+    where = [parts[int(x % len(sizes))].path for x in pairs[split == first]]
+    subject = ids.iloc[int(np.flatnonzero(codes == first)[0])]
+    return Check("subjects whole in one file", "fail",
+                 f"{np.unique(repeated).size} subject(s) have readings in more than one of the "
+                 f"{n_files} files, e.g. subject {plain(subject)} in {', '.join(where[:3])}; "
+                 "write the data partitioned by subject (all of a subject's readings in one "
+                 "file)")
 
 
 def _release_arrow_memory() -> None:
@@ -275,23 +333,34 @@ def dataset_from_bytes(raw: bytes, path: Path, spec: Spec, design: bool = True,
     ``design=False`` leaves out the checks on the design (subject counts, pairs): for
     readings of new subjects scored with a stored fit.
     """
-    d, c = spec.data, spec.checks
+    d = spec.data
     shown = shown or d["file"]
     fmt = detect_format(shown, d["format"])
     text = tuple(x for x in (d["subject"], d.get("group")) if x)
     table = parse_table(raw, fmt, shown, text_columns=text)
-    checks: list[Check] = [_column_check(table, d, shown)]
+    return _dataset(table, path, shown, len(raw), hashlib.sha256(raw).hexdigest(), spec,
+                    design)
+
+
+def _dataset(table: Table, path: Path, shown: str, n_bytes: int, sha256: str, spec: Spec,
+             design: bool, parts: tuple[Part, ...] = (), first: list[Check] | None = None
+             ) -> Dataset:
+    """Every check on a parsed table (``first``: checks made while reading it)."""
+    d, c = spec.data, spec.checks
+    checks: list[Check] = [*(first or []), _column_check(table, d, shown)]
     labels = {role: table.labels[d[role]] for role in ("time", "value")
               if table.labels.get(d[role])}
 
     def finish(frame: pd.DataFrame) -> Dataset:
-        return Dataset(frame, tuple(checks), path, shown, len(raw),
-                       hashlib.sha256(raw).hexdigest(), rows_read, labels)
+        return Dataset(frame, tuple(checks), path, shown, n_bytes, sha256, rows_read, labels,
+                       parts)
 
     rows_read = len(table.frame)
     if rows_read == 0:
         raise DataError(f"data.file {shown!r} has a header but no rows")
     frame, rows = table.frame, np.arange(rows_read)
+    if any(x.status == "fail" for x in checks):
+        return finish(frame)
     if d.get("keep_rows"):
         keep, check = _select_rows(table, d["keep_rows"])
         rows = rows[keep]

@@ -69,7 +69,9 @@ def build_record(result: AnalysisResult, version: int, started: str, finished: s
                  source_spec: str, results_sha256: str, outputs: dict[str, str],
                  style_inputs: Sequence[InputFile] = ()) -> dict:
     """record.json's content. ``inputs`` lists the data file, then the files the spec's
-    report section names (template, style sheet, logo), each with its role."""
+    report section names (template, style sheet, logo), each with its role. Data given as
+    many files carry their manifest; the entry's sha256 is then the manifest's digest
+    (``manifest``)."""
     spec, ds = result.spec, result.dataset
     return {
         "tool": {"name": "reportgen", "version": __version__},
@@ -78,7 +80,9 @@ def build_record(result: AnalysisResult, version: int, started: str, finished: s
         "spec": {"path": "spec.yaml", "source": source_spec, "sha256": spec.sha256,
                  "settings": settings(result)},
         "inputs": [{"path": ds.relpath, "bytes": ds.n_bytes, "sha256": ds.sha256,
-                    "rows": ds.rows_read},
+                    "rows": ds.rows_read,
+                    **({"manifest": [{"path": p.path, "bytes": p.n_bytes, "sha256": p.sha256}
+                                     for p in ds.parts]} if ds.parts else {})},
                    *({"path": f.path, "bytes": len(f.data), "sha256": f.sha256,
                       "role": f.role} for f in style_inputs)],
         "environment": environment(),

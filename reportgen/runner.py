@@ -22,9 +22,10 @@ from pathlib import Path
 
 from . import __version__
 from .analysis import AnalysisResult, analyse
-from .data import load_dataset, require_passed
-from .errors import OutputError
-from .integrity import SUMS, checksum_list, sha256_bytes
+from .data import Dataset, load_dataset, require_passed
+from .errors import DataError, OutputError
+from .integrity import SUMS, checksum_list, sha256_bytes, sha256_file
+from .manifest import current_digest
 from .record import build_record, dump_record, environment
 from .render import render_html
 from .spec import Spec, load_spec
@@ -149,6 +150,19 @@ def _write(path: Path, data: bytes) -> None:
         fh.write(data)
 
 
+def _still_the_same(dataset: Dataset) -> None:
+    """Refuse to publish a run whose data file (or any of its files) changed while the run
+    read it: its record would vouch for bytes it did not analyse."""
+    if dataset.parts:
+        now = current_digest(dataset.path, dataset.relpath)
+    else:
+        now = sha256_file(dataset.path) if dataset.path.is_file() else "absent"
+    if now != dataset.sha256:
+        raise DataError(f"data.file {dataset.relpath!r} changed while the run read it (its "
+                        "SHA-256 differs from the bytes analysed); no run was written, run "
+                        "again when the data are complete")
+
+
 def run_spec(spec_path: str | Path, out: str | Path, progress: Progress = lambda _: None,
              timer: Timer | None = None) -> Path:
     """Run a spec; returns the new run directory ``out/<id>/vNNN``.
@@ -187,6 +201,7 @@ def run_spec(spec_path: str | Path, out: str | Path, progress: Progress = lambda
         _write(building / "record.json", record)
         listed = {**outputs, "report.pdf": sha256_bytes(pdf), "record.json": sha256_bytes(record)}
         _write(building / SUMS, checksum_list(listed))
+        _still_the_same(built.result.dataset)
         os.rename(building, final)
         return final
     except OSError as e:

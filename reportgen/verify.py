@@ -27,6 +27,7 @@ import pandas as pd
 
 from .errors import ReportgenError
 from .integrity import check_integrity, sha256_bytes, sha256_file
+from .manifest import current_digest
 from .record import environment, load_record
 from .render import render_pdf
 from .runner import Built, build_outputs
@@ -149,7 +150,10 @@ def _inputs_and_numbers(run: Path, record: dict[str, Any], out: Verification,
     missing: list[tuple[str, Path]] = []
     for entry in record["inputs"]:
         path = _locate_input(entry, source, inputs)
-        now = sha256_file(path) if path.is_file() else "absent"
+        if "manifest" in entry:  # a folder or pattern of files: the digest of all of them
+            now = current_digest(path, str(entry["path"]))
+        else:
+            now = sha256_file(path) if path.is_file() else "absent"
         out.add("inputs", f"input {entry['path']}", entry["sha256"][:16], now[:16],
                 now == entry["sha256"])
         (missing if now == "absent" else changed if now != entry["sha256"] else located).append(

@@ -59,7 +59,8 @@ CASES = [
      "report.band_level must be a number between 0 and 1 (exclusive); got '2024-01-31'"),
     ("missing data file", BASE.replace("d.csv", "nope.csv"), None, "data.file 'nope.csv' does "
      "not exist"),
-    ("directory as data", BASE.replace("d.csv", "."), None, "is a directory"),
+    ("directory as data", BASE.replace("d.csv", "."), None,
+     "is a folder with no Parquet files in it"),
     ("device as data", BASE.replace("d.csv", "/dev/null"), None, "not a regular file"),
     ("empty data", None, "", "is empty"),
     ("header only", None, "id,t,y\n", "no rows"),

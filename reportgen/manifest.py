@@ -1,0 +1,86 @@
+"""Data given as many Parquet files: which files, in which order, and one digest for all.
+
+``data.file`` may name a folder (every ``*.parquet`` file under it) or a glob pattern
+(``parts/*.parquet``, relative to the spec). The files are taken in the order of their
+paths relative to the folder (or to the pattern's fixed part), compared as UTF-8 bytes, so
+that the order never depends on how the file system lists them.
+
+The manifest lists each file's relative path, size and SHA-256 in that order; its digest
+is the SHA-256 of the text ``reportgen-manifest-v1`` followed by one line
+``path<TAB>bytes<TAB>sha256`` per file, each line ending in a newline. A file added,
+removed, renamed or changed changes the digest; listing order does not.
+"""
+
+from __future__ import annotations
+
+import glob
+import hashlib
+from dataclasses import dataclass
+from pathlib import Path
+
+from .errors import DataError
+
+HEADER = "reportgen-manifest-v1\n"
+
+
+@dataclass(frozen=True)
+class Part:
+    path: str  # relative to the folder (or the pattern's fixed part), with "/" separators
+    n_bytes: int
+    sha256: str
+
+
+def is_many(named: str, path: Path) -> bool:
+    """Whether ``data.file`` names many files (a folder or a glob pattern)."""
+    return glob.has_magic(named) or path.is_dir()
+
+
+def _base(path: Path) -> Path:
+    """The folder the pattern's relative paths start from: its parts before the first
+    one with a wildcard."""
+    fixed = []
+    for part in path.parts:
+        if glob.has_magic(part):
+            break
+        fixed.append(part)
+    return Path(*fixed)
+
+
+def list_files(path: Path, named: str, what: str = "data.file") -> list[tuple[str, Path]]:
+    """(relative path, absolute path) of every file named, in manifest order."""
+    if path.is_dir():
+        base, found = path, [p for p in path.rglob("*.parquet") if p.is_file()]
+    else:
+        base = _base(path)
+        found = [Path(p) for p in glob.glob(str(path), recursive=True) if Path(p).is_file()]
+    if not found and path.is_dir():
+        raise DataError(f"{what} {named!r} is a folder with no Parquet files in it (looked in "
+                        f"{str(base)!r}); give a data file, or a folder of Parquet files")
+    if not found:
+        raise DataError(f"{what} {named!r} names no Parquet files (looked in {str(base)!r})")
+    odd = [p for p in found if p.suffix.lower() != ".parquet"]
+    if odd:
+        raise DataError(f"{what} {named!r}: every file of a folder or pattern must be Parquet; "
+                        f"{odd[0].name!r} is not")
+    parts = [(p.relative_to(base).as_posix(), p) for p in found]
+    return sorted(parts, key=lambda item: item[0].encode("utf-8"))
+
+
+def digest(parts: list[Part] | tuple[Part, ...]) -> str:
+    h = hashlib.sha256(HEADER.encode())
+    for p in sorted(parts, key=lambda p: p.path.encode("utf-8")):
+        h.update(f"{p.path}\t{p.n_bytes}\t{p.sha256}\n".encode())
+    return h.hexdigest()
+
+
+def current_digest(path: Path, named: str) -> str:
+    """The digest of the files ``data.file`` names now ("absent" when it names none)."""
+    try:
+        files = list_files(path, named)
+    except DataError:
+        return "absent"
+    parts = []
+    for rel, full in files:
+        data = full.read_bytes()
+        parts.append(Part(rel, len(data), hashlib.sha256(data).hexdigest()))
+    return digest(parts)

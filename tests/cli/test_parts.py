@@ -1,0 +1,161 @@
+"""Data given as a folder (or pattern) of Parquet files: one table, one manifest, the same
+numbers as one file, and refusals where the files cannot be trusted.
+
+Data: the invented clinic example (specs/clinic_visits.csv) split by subject. The
+single-file run is the reference for the numbers; the manifest's digest is checked against
+hashlib's SHA-256 of its documented text (reportgen/manifest.py).
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+from pathlib import Path
+
+import pandas as pd
+import pytest
+
+from reportgen.errors import DataError
+from reportgen.manifest import Part, current_digest, digest
+from reportgen.runner import run_spec
+
+from .conftest import ROOT, cli
+
+SPEC = (ROOT / "specs" / "clinic_visits.yaml").read_text()
+
+
+def _split(folder: Path, by_subject: bool = True) -> None:
+    """The example's readings in three Parquet files: by subject, or (a layout the plan
+    cannot use) by time."""
+    data = pd.read_csv(ROOT / "specs" / "clinic_visits.csv", dtype={"patient": str})
+    folder.mkdir(parents=True)
+    if by_subject:
+        ids = sorted(data.patient.unique())
+        key = data.patient.map({s: i * 3 // len(ids) for i, s in enumerate(ids)})
+    else:
+        key = pd.cut(data.week, 3, labels=False)
+    for k, part in data.groupby(key):
+        part.to_parquet(folder / f"part-{k}.parquet", index=False)
+
+
+def _spec(folder: Path, named: str) -> Path:
+    path = folder / "parts.yaml"
+    path.write_text(SPEC.replace("file: clinic_visits.csv", f"file: '{named}'"))
+    return path
+
+
+def _tables(run: Path) -> dict[str, bytes]:
+    return {p.name: p.read_bytes() for p in sorted((run / "tables").iterdir())}
+
+
+@pytest.fixture(scope="module")
+def runs(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Path]:
+    base = tmp_path_factory.mktemp("parts")
+    _split(base / "readings")
+    one = pd.concat(pd.read_parquet(p) for p in sorted((base / "readings").iterdir()))
+    one.to_parquet(base / "one.parquet", index=False)
+    return {
+        "one": run_spec(_spec_one(base), base / "runs"),
+        "folder": run_spec(_spec(base, "readings"), base / "runs"),
+    }
+
+
+def _spec_one(base: Path) -> Path:
+    path = base / "one.yaml"
+    path.write_text(SPEC.replace("file: clinic_visits.csv", "file: one.parquet")
+                    .replace("id: clinic-visits", "id: one-file"))
+    return path
+
+
+def test_a_folder_gives_the_numbers_of_one_file(runs: dict[str, Path]) -> None:
+    one, folder = _tables(runs["one"]), _tables(runs["folder"])
+    assert one.keys() == folder.keys()
+    for name in one:
+        if name != "checks.csv":  # the folder's run has one check more (whole subjects)
+            assert one[name] == folder[name], name
+    checks = pd.read_csv(runs["folder"] / "tables" / "checks.csv")
+    row = checks[checks.check == "subjects whole in one file"]
+    assert list(row.status) == ["pass"]
+
+
+def test_the_record_carries_the_manifest_and_its_digest(runs: dict[str, Path]) -> None:
+    record = json.loads((runs["folder"] / "record.json").read_text())
+    entry = record["inputs"][0]
+    folder = runs["folder"].parents[2] / "readings"
+    files = sorted(folder.iterdir())
+    assert [m["path"] for m in entry["manifest"]] == [p.name for p in files]
+    for m, p in zip(entry["manifest"], files, strict=True):
+        assert m["sha256"] == hashlib.sha256(p.read_bytes()).hexdigest()
+        assert m["bytes"] == p.stat().st_size
+    text = "reportgen-manifest-v1\n" + "".join(
+        f"{m['path']}\t{m['bytes']}\t{m['sha256']}\n" for m in entry["manifest"])
+    assert entry["sha256"] == hashlib.sha256(text.encode()).hexdigest()
+    assert entry["bytes"] == sum(m["bytes"] for m in entry["manifest"])
+
+
+def test_the_digest_ignores_listing_order_and_sees_every_change(tmp_path: Path) -> None:
+    parts = [Part("b.parquet", 10, "1" * 64), Part("a/c.parquet", 5, "2" * 64)]
+    assert digest(parts) == digest(parts[::-1])
+    _split(tmp_path / "r")
+    before = current_digest(tmp_path / "r", "r")
+    assert before == current_digest(tmp_path / "r" / "*.parquet", "r/*.parquet")
+    (tmp_path / "r" / "part-0.parquet").rename(tmp_path / "r" / "part-9.parquet")
+    renamed = current_digest(tmp_path / "r", "r")
+    extra = tmp_path / "r" / "x.parquet"
+    extra.write_bytes((tmp_path / "r" / "part-1.parquet").read_bytes())
+    added = current_digest(tmp_path / "r", "r")
+    assert len({before, renamed, added}) == 3
+
+
+def test_verify_checks_every_file_of_the_folder(runs: dict[str, Path],
+                                                tmp_path: Path) -> None:
+    ok = cli("verify", str(runs["folder"]))
+    assert ok.returncode == 0, ok.stdout + ok.stderr
+    copy = tmp_path / "copy"
+    import shutil
+
+    shutil.copytree(runs["folder"].parents[2], copy)
+    run = copy / runs["folder"].relative_to(runs["folder"].parents[2])
+    part = copy / "readings" / "part-1.parquet"
+    frame = pd.read_parquet(part)
+    frame.loc[0, "marker"] += 1.0
+    frame.to_parquet(part, index=False)
+    changed = cli("verify", str(run))
+    assert changed.returncode == 1
+    assert "CHANGED" in changed.stdout and "readings" in changed.stdout
+
+
+def test_subjects_split_across_files_are_refused(tmp_path: Path) -> None:
+    _split(tmp_path / "by_time", by_subject=False)
+    spec = _spec(tmp_path, "by_time")
+    done = cli("run", str(spec), "--out", str(tmp_path / "runs"))
+    assert done.returncode == 2, done.stdout + done.stderr
+    assert "subjects whole in one file" in done.stderr
+    assert "partitioned by subject" in done.stderr
+    assert "Traceback" not in done.stderr
+    assert not (tmp_path / "runs").exists() or not any((tmp_path / "runs").rglob("v0*"))
+
+
+def test_a_file_changed_during_the_run_stops_it(tmp_path: Path) -> None:
+    _split(tmp_path / "readings")
+    spec = _spec(tmp_path, "readings")
+    part = tmp_path / "readings" / "part-2.parquet"
+
+    def meddle(step: str) -> None:
+        if step == "figures":  # the data were read and analysed; now a file changes
+            frame = pd.read_parquet(part)
+            frame.to_parquet(part, index=False, compression="gzip")
+
+    with pytest.raises(DataError, match="changed while the run read it"):
+        run_spec(spec, tmp_path / "runs", progress=meddle)
+    leftovers = list((tmp_path / "runs").rglob("*"))
+    assert [p.name for p in leftovers] == ["clinic-visits"]  # the report's folder, empty
+
+
+def test_a_glob_names_the_same_files_as_the_folder(tmp_path: Path) -> None:
+    _split(tmp_path / "readings")
+    done = cli("check", str(_spec(tmp_path, "readings/*.parquet")))
+    assert done.returncode == 0, done.stdout + done.stderr
+    assert "3 Parquet files" in done.stdout
+    nothing = cli("check", str(_spec(tmp_path, "readings/*.csv")))
+    assert nothing.returncode == 2 and "names no Parquet files" in nothing.stderr
