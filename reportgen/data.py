@@ -299,9 +299,10 @@ def _dataset_from_parts(spec: Spec) -> Dataset:
 
 def _whole_subjects(ids: pd.Series, sizes: list[int], parts: list[Part]) -> Check:
     """Fails when a subject's readings lie in more than one file."""
-    codes = pd.factorize(ids)[0]
+    codes = pd.factorize(ids)[0]  # -1 for a missing id: the missing-values check's matter
     part = np.repeat(np.arange(len(sizes)), sizes)
-    pairs = np.unique(codes.astype(np.int64) * len(sizes) + part)
+    known = codes >= 0
+    pairs = np.unique(codes[known].astype(np.int64) * len(sizes) + part[known])
     split = pairs // len(sizes)
     repeated = split[1:][split[1:] == split[:-1]]
     n_files = len(parts)

@@ -19,6 +19,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from .errors import DataError
+from .integrity import sha256_file
 
 HEADER = "reportgen-manifest-v1\n"
 
@@ -73,14 +74,18 @@ def digest(parts: list[Part] | tuple[Part, ...]) -> str:
     return h.hexdigest()
 
 
+def current_sha256(path: Path, named: str, many: bool) -> str:
+    """What a run records as the data's SHA-256, computed from the disk now: the file's
+    own, or the manifest digest of the files named ("absent" when there is nothing)."""
+    if many:
+        return current_digest(path, named)
+    return sha256_file(path) if path.is_file() else "absent"
+
+
 def current_digest(path: Path, named: str) -> str:
     """The digest of the files ``data.file`` names now ("absent" when it names none)."""
     try:
         files = list_files(path, named)
     except DataError:
         return "absent"
-    parts = []
-    for rel, full in files:
-        data = full.read_bytes()
-        parts.append(Part(rel, len(data), hashlib.sha256(data).hexdigest()))
-    return digest(parts)
+    return digest([Part(rel, full.stat().st_size, sha256_file(full)) for rel, full in files])

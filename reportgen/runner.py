@@ -24,8 +24,8 @@ from . import __version__
 from .analysis import AnalysisResult, analyse
 from .data import Dataset, load_dataset, require_passed
 from .errors import DataError, OutputError
-from .integrity import SUMS, checksum_list, sha256_bytes, sha256_file
-from .manifest import current_digest
+from .integrity import SUMS, checksum_list, sha256_bytes
+from .manifest import current_sha256
 from .record import build_record, dump_record, environment
 from .render import render_html
 from .spec import Spec, load_spec
@@ -153,11 +153,7 @@ def _write(path: Path, data: bytes) -> None:
 def _still_the_same(dataset: Dataset) -> None:
     """Refuse to publish a run whose data file (or any of its files) changed while the run
     read it: its record would vouch for bytes it did not analyse."""
-    if dataset.parts:
-        now = current_digest(dataset.path, dataset.relpath)
-    else:
-        now = sha256_file(dataset.path) if dataset.path.is_file() else "absent"
-    if now != dataset.sha256:
+    if current_sha256(dataset.path, dataset.relpath, bool(dataset.parts)) != dataset.sha256:
         raise DataError(f"data.file {dataset.relpath!r} changed while the run read it (its "
                         "SHA-256 differs from the bytes analysed); no run was written, run "
                         "again when the data are complete")

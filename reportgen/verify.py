@@ -27,7 +27,7 @@ import pandas as pd
 
 from .errors import ReportgenError
 from .integrity import check_integrity, sha256_bytes, sha256_file
-from .manifest import current_digest
+from .manifest import current_sha256
 from .record import environment, load_record
 from .render import render_pdf
 from .runner import Built, build_outputs
@@ -150,10 +150,8 @@ def _inputs_and_numbers(run: Path, record: dict[str, Any], out: Verification,
     missing: list[tuple[str, Path]] = []
     for entry in record["inputs"]:
         path = _locate_input(entry, source, inputs)
-        if "manifest" in entry:  # a folder or pattern of files: the digest of all of them
-            now = current_digest(path, str(entry["path"]))
-        else:
-            now = sha256_file(path) if path.is_file() else "absent"
+        # a folder or pattern of files (it has a manifest): the digest of all of them
+        now = current_sha256(path, str(entry["path"]), "manifest" in entry)
         out.add("inputs", f"input {entry['path']}", entry["sha256"][:16], now[:16],
                 now == entry["sha256"])
         (missing if now == "absent" else changed if now != entry["sha256"] else located).append(

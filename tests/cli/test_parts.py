@@ -159,3 +159,14 @@ def test_a_glob_names_the_same_files_as_the_folder(tmp_path: Path) -> None:
     assert "3 Parquet files" in done.stdout
     nothing = cli("check", str(_spec(tmp_path, "readings/*.csv")))
     assert nothing.returncode == 2 and "names no Parquet files" in nothing.stderr
+
+
+def test_missing_ids_are_not_a_split_subject() -> None:
+    # rows without an id are the missing-values check's matter, in whichever files they are
+    from reportgen.data import _whole_subjects
+
+    parts = [Part("a.parquet", 1, "0" * 64), Part("b.parquet", 1, "1" * 64)]
+    whole = _whole_subjects(pd.Series(["s1", None, "s2", None]), [2, 2], parts)
+    assert whole.status == "pass"
+    split = _whole_subjects(pd.Series(["s1", "s2", "s2", "s3"]), [2, 2], parts)
+    assert split.status == "fail" and "subject 's2' in a.parquet, b.parquet" in split.detail
