@@ -105,7 +105,9 @@ def build_outputs(spec: Spec, version: int, started: str,
             ("run started (UTC)", started),
             ("environment", f"Python {env['python']} on {env['platform']}; {packages}"),
             ("spec sha256", spec.sha256),
-            (f"data sha256 ({dataset.relpath})", dataset.sha256),
+            (f"data sha256 ({dataset.relpath})" if not dataset.parts else
+             f"data manifest sha256 ({dataset.relpath}, {len(dataset.parts)} Parquet files; "
+             "each file in record.json)", dataset.sha256),
             ("data bytes / rows", f"{dataset.n_bytes} / {dataset.rows_read}"),
             *((f"{f.role} sha256 ({f.path})", f.sha256) for f in style.inputs),
             ("results sha256 (tables)", digest),

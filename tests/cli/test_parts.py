@@ -91,6 +91,9 @@ def test_the_record_carries_the_manifest_and_its_digest(runs: dict[str, Path]) -
         f"{m['path']}\t{m['bytes']}\t{m['sha256']}\n" for m in entry["manifest"])
     assert entry["sha256"] == hashlib.sha256(text.encode()).hexdigest()
     assert entry["bytes"] == sum(m["bytes"] for m in entry["manifest"])
+    html = (runs["folder"] / "report.html").read_text()
+    assert f"data manifest sha256 (readings, {len(files)} Parquet files" in html
+    assert entry["sha256"] in html
 
 
 def test_the_digest_ignores_listing_order_and_sees_every_change(tmp_path: Path) -> None:
