@@ -599,7 +599,7 @@ def _fit(subject: IntArray, t: FloatArray, y: FloatArray, labels: np.ndarray,
         phi_obs = evaluate_at(sample.t, grid, funcs)
         scores, score_cov = conditional_scores(sample.starts, resid, phi_obs, values,
                                                lik.error_variance)
-    else:
+    else:  # not computed: the fit is returned without its subjects (below)
         scores, score_cov = np.zeros((0, k)), np.zeros((0, k, k))
     fit = FPCAFit(
         grid=_frozen(grid), mean=_frozen(mean), mean_se=_frozen(mean_se),
@@ -616,16 +616,17 @@ def _fit(subject: IntArray, t: FloatArray, y: FloatArray, labels: np.ndarray,
         n_components=k, mean_bandwidth_choice=mean_choice,
         covariance_bandwidth_choice=cov_choice, diagonal_bandwidth_choice=diag_choice,
         selection=selection,
-        subjects=_frozen(np.asarray(labels)[:scores.shape[0]]), n_obs=_frozen(sample.n_obs),
+        subjects=_frozen(np.asarray(labels)), n_obs=_frozen(sample.n_obs),
         score_values=_frozen(scores), score_cov=_frozen(score_cov),
         pair_counts=_frozen(pstats.offdiag.counts.sum(axis=0)), pair_grid=_frozen(cbins.centers),
         n_readings=int(sample.t.size), dropped_eigenvalues=eig.n_dropped,
         dropped_negative_sum=eig.dropped_sum,
         warnings=tuple(messages), options=options,
-        _mean_fine=(_frozen(mbins.centers), _frozen(fine)),
-        _sample=sample if per_subject else None,
+        _mean_fine=(_frozen(mbins.centers), _frozen(fine)), _sample=sample,
     )
-    if options.band == "corrected" and not population_only and per_subject:
+    if not per_subject:
+        return fit.without_subjects()
+    if options.band == "corrected" and not population_only:
         fit = _with_replicates(fit, sample)
     return fit
 
