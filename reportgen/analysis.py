@@ -6,8 +6,9 @@ No files and no printing: the runner writes, the renderer reads.
 from __future__ import annotations
 
 import math
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass, replace
+from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -15,11 +16,14 @@ from scipy.special import chdtri
 
 from .data import Dataset
 from .errors import EstimationError
-from .fpca import FPCAFit, fit_arrays, with_bandwidths
+from .fpca import FPCAFit, with_bandwidths
 from .fpca._kernels import compiled_on_disk
 from .fpca.components import choose
+from .fpca.design import Sample
+from .fpca.fit import fit_parts
 from .fpca.frame import arrays_from_frame
 from .fpca.groups import GroupComparison, compare_groups
+from .fpca.plan import Executor, InProcess, Part, Partitioned, split_parts
 from .fpca.smoothing import trapezoid_weights
 from .spec import Spec
 
@@ -119,9 +123,8 @@ def sensitivity_factors(spec: Spec, fit: FPCAFit) -> tuple[list[float], str]:
     return factors, note
 
 
-def _sensitivity(spec: Spec, codes: np.ndarray, t: np.ndarray, y: np.ndarray,
-                 labels: np.ndarray, fit: FPCAFit, factors: list[float], progress: Progress
-                 ) -> list[SensitivityRun]:
+def _sensitivity(data: Partitioned, labels: np.ndarray, fit: FPCAFit, factors: list[float],
+                 progress: Progress) -> list[SensitivityRun]:
     """Refit at each bandwidth factor, keeping the main fit's number of components so that
     every component can be compared (the number the rule would pick is reported too)."""
     runs = []
@@ -137,10 +140,10 @@ def _sensitivity(spec: Spec, codes: np.ndarray, t: np.ndarray, y: np.ndarray,
         # hold 0.2 GB each at 10^6 subjects, and take a third of its time
         try:
             try:
-                other = fit_arrays(codes, t, y, labels, options, per_subject=False)
+                other = fit_parts(data, labels, options, per_subject=False)
             except EstimationError:  # fewer positive eigenvalues than the main fit's K
-                other = fit_arrays(codes, t, y, labels, replace(options, component_rule="fve"),
-                                   per_subject=False)
+                other = fit_parts(data, labels, replace(options, component_rule="fve"),
+                                  per_subject=False)
         except EstimationError as e:
             runs.append(SensitivityRun(factor, hm, hc, hd, None, (), str(e)))
             continue
@@ -396,22 +399,39 @@ STANDARD_CAUTIONS = (
 )
 
 
+def _parts(ds: Dataset, codes: np.ndarray, t: np.ndarray, y: np.ndarray
+           ) -> tuple[list[Part], Sample]:
+    """The readings as the fit's parts (one per data file), and all of them as one sample
+    (the same arrays when there is one file)."""
+    if "part" not in ds.frame:
+        parts = split_parts(codes, t, y, None)
+        return parts, parts[0].sample
+    part = ds.frame["part"].to_numpy(dtype=np.intp)
+    return split_parts(codes, t, y, part, len(ds.parts)), Sample.from_arrays(codes, t, y)
+
+
 def analyse(spec: Spec, ds: Dataset, progress: Progress = lambda _: None,
-            lap: Progress = lambda _: None) -> AnalysisResult:
+            lap: Progress = lambda _: None, executor: Executor | None = None,
+            place: Callable[[list[Part]], Sequence[Any]] = list) -> AnalysisResult:
     """The main fit, the sensitivity fits, diagnostics and caveats.
 
     ``progress`` receives a message before each long step; ``lap`` the name of each step
-    just finished (for timing).
+    just finished (for timing). The fits' passes over the data run on ``executor`` (here,
+    by default), over the parts as ``place`` puts them there (``reportgen.engine``).
     """
     codes, t, y, labels = arrays_from_frame(ds.frame, "subject", "time", "value")
     if not compiled_on_disk():
         progress("compiling the numerical kernels (once, about half a minute on 2 cores; "
                  "later runs load them from the cache)")
     progress("fit")
-    fit = fit_arrays(codes, t, y, labels, spec.options)
+    parts, sample = _parts(ds, codes, t, y)
+    run_on = executor or InProcess()
+    data = Partitioned.of(run_on, place(parts))
+    del parts
+    fit = fit_parts(data, labels, spec.options, sample=sample)
     lap("fit")
     factors, factors_note = sensitivity_factors(spec, fit)
-    runs = _sensitivity(spec, codes, t, y, labels, fit, factors, progress)
+    runs = _sensitivity(data, labels, fit, factors, progress)
     lap("sensitivity")
     threshold = spec.sensitivity["similarity_threshold"]
     computed = [r for r in runs if r.fit is not None]

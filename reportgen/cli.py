@@ -74,7 +74,8 @@ def _progress(quiet: bool):  # type: ignore[no-untyped-def]
 def _cmd_run(args: argparse.Namespace) -> int:
     from .runner import run_spec
 
-    run_dir = run_spec(args.spec, args.out, _progress(args.quiet))
+    run_dir = run_spec(args.spec, args.out, _progress(args.quiet), engine=args.engine,
+                       scheduler=args.scheduler)
     print(f"run written: {run_dir}")
     print(f"report: {run_dir / 'report.html'}")
     print(f"pdf: {run_dir / 'report.pdf'}")
@@ -260,6 +261,12 @@ def build_parser() -> argparse.ArgumentParser:
     sp.add_argument("--against-previous", action="store_true", help="after writing the run, "
                     "compare it with the previous version under the spec's gates; exit 1 "
                     "when a gate is crossed (for CI on a data refresh)")
+    sp.add_argument("--engine", choices=("local", "dask"), default="local",
+                    help="where the fits' passes over the data run: in this process "
+                    "(default) or on a Dask cluster; the results are the same bits")
+    sp.add_argument("--scheduler", metavar="ADDRESS", help="with --engine dask: the "
+                    "scheduler's address (default: DASK_SCHEDULER_ADDRESS, else a cluster "
+                    "started in this process)")
     sp.set_defaults(func=_cmd_run)
     sp = add("check", "validate the spec and the data; fit nothing")
     sp.add_argument("spec")

@@ -41,8 +41,9 @@ class Check:
 
 @dataclass(frozen=True)
 class Dataset:
-    """Cleaned long table (columns subject, time, value, and group when the spec names
-    one) and what the checks found."""
+    """Cleaned long table (columns subject, time, value, group when the spec names one,
+    and part, the index of each reading's file in ``parts``, when data.file names many
+    files) and what the checks found."""
 
     frame: pd.DataFrame
     checks: tuple[Check, ...]
@@ -447,6 +448,9 @@ def _typed(frame: pd.DataFrame, rows: np.ndarray, table: Table, spec: Spec,
     long = pd.DataFrame({"subject": subj.astype("str").array, "time": t, "value": y})
     if d.get("group"):
         long["group"] = _as_ids(frame[d["group"]]).astype("str").array
+    if table.parts:  # which file each reading came from: the fit's parts
+        starts = np.array([first for _, first in table.parts])
+        long["part"] = (np.searchsorted(starts, rows, side="right") - 1).astype(np.intp)
     long.attrs["rows"] = rows
     return long
 
@@ -558,7 +562,7 @@ def _duplicates(long: pd.DataFrame, rule: str) -> tuple[pd.DataFrame, Check]:
                            f"{n_dup} readings share a (subject, time) with another, e.g. "
                            f"subject {plain(row.subject)} at time {row.time:g}")
     if rule == "average":
-        keys = ["subject", "time"] + (["group"] if "group" in long else [])
+        keys = ["subject", "time"] + [k for k in ("group", "part") if k in long]
         merged = long.groupby(keys, sort=False)["value"].mean().reset_index()
         return merged, Check("duplicate readings", "warn",
                              f"{n_dup} readings at a shared (subject, time) were averaged into "

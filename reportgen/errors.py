@@ -7,7 +7,9 @@ Hierarchy::
     ├── DataError                  a data file cannot be read or fails a blocking check
     ├── EstimationError            the data cannot support the requested estimate
     ├── OutputError                the run directory cannot be written
-    └── TemplateError              the report template cannot be rendered safely
+    ├── TemplateError              the report template cannot be rendered safely
+    └── EngineError                the chosen engine cannot start (Dask missing, scheduler
+                                   unreachable, an option that does not apply)
 
     RecordError(ReportgenError)    a run directory's record is missing or damaged
 
@@ -45,6 +47,10 @@ class OutputError(ReportgenError):
 
 class TemplateError(ReportgenError):
     """The report's template failed, broke the sandbox's rules or exceeded its limits."""
+
+
+class EngineError(ReportgenError):
+    """The engine chosen on the command line cannot run the passes (names the option)."""
 
 
 class RecordError(ReportgenError):

@@ -67,16 +67,17 @@ def settings(result: AnalysisResult) -> dict[str, Any]:
 
 def build_record(result: AnalysisResult, version: int, started: str, finished: str,
                  source_spec: str, results_sha256: str, outputs: dict[str, str],
-                 style_inputs: Sequence[InputFile] = ()) -> dict:
+                 style_inputs: Sequence[InputFile] = (), engine: str = "local") -> dict:
     """record.json's content. ``inputs`` lists the data file, then the files the spec's
     report section names (template, style sheet, logo), each with its role. Data given as
     many files carry their manifest; the entry's sha256 is then the manifest's digest
-    (``manifest``)."""
+    (``manifest``). ``run.engine`` says where the fits' passes ran (``reportgen.engine``;
+    the results do not depend on it)."""
     spec, ds = result.spec, result.dataset
     return {
         "tool": {"name": "reportgen", "version": __version__},
         "run": {"report_id": spec.report_id, "version": version, "started": started,
-                "finished": finished},
+                "finished": finished, "engine": engine},
         "spec": {"path": "spec.yaml", "source": source_spec, "sha256": spec.sha256,
                  "settings": settings(result)},
         "inputs": [{"path": ds.relpath, "bytes": ds.n_bytes, "sha256": ds.sha256,

@@ -23,6 +23,7 @@ from pathlib import Path
 from . import __version__
 from .analysis import AnalysisResult, analyse
 from .data import Dataset, load_dataset, require_passed
+from .engine import Engine, local_engine, open_engine
 from .errors import DataError, OutputError
 from .integrity import SUMS, checksum_list, sha256_bytes
 from .manifest import current_sha256
@@ -68,18 +69,21 @@ class Timer:
 
 def build_outputs(spec: Spec, version: int, started: str,
                   progress: Progress = lambda _: None, timer: Timer | None = None,
-                  render: bool = True, worker: RenderWorker | None = None) -> Built:
+                  render: bool = True, worker: RenderWorker | None = None,
+                  engine: Engine | None = None) -> Built:
     """Every output except record.json and report.pdf (which depend on the record).
 
     With ``render=False`` only the tables (and spec.yaml) are built: what ``verify``
-    compares as numbers. With a ``worker``, it draws part of the figures.
+    compares as numbers. With a ``worker``, it draws part of the figures. The fits' passes
+    run on ``engine`` (here by default); the results do not depend on it.
     """
     clock = timer or Timer()
+    run_on = engine or local_engine()
     style = load_style(spec) if render else None  # a bad style file fails before the fit
     dataset = load_dataset(spec)
     require_passed(dataset)
     clock.lap("data")
-    result = analyse(spec, dataset, progress, clock.lap)
+    result = analyse(spec, dataset, progress, clock.lap, run_on.executor, run_on.place)
     frames = build_tables(result)
     if style is None:
         tables = canonical_bytes(frames)
@@ -162,13 +166,21 @@ def _still_the_same(dataset: Dataset) -> None:
 
 
 def run_spec(spec_path: str | Path, out: str | Path, progress: Progress = lambda _: None,
-             timer: Timer | None = None) -> Path:
+             timer: Timer | None = None, engine: str = "local", scheduler: str | None = None
+             ) -> Path:
     """Run a spec; returns the new run directory ``out/<id>/vNNN``.
 
     record.json lists the hash of every file except itself and report.pdf (the PDF carries
     record.json inside it); SHA256SUMS, written last, lists every other file of the run.
+    ``engine`` and ``scheduler`` choose where the fits' passes run (``reportgen.engine``).
     """
     spec = load_spec(spec_path)
+    with open_engine(engine, scheduler) as run_on:
+        return _run(spec, out, progress, timer, run_on)
+
+
+def _run(spec: Spec, out: str | Path, progress: Progress, timer: Timer | None,
+         engine: Engine) -> Path:
     folder = Path(out) / spec.report_id
     try:
         folder.mkdir(parents=True, exist_ok=True)
@@ -184,13 +196,15 @@ def run_spec(spec_path: str | Path, out: str | Path, progress: Progress = lambda
         final = folder / f"v{version:03d}"
         source = os.path.relpath(spec.path, final.resolve())
         started = _timestamp()
-        built = build_outputs(spec, version, started, progress, timer, worker=worker)
+        built = build_outputs(spec, version, started, progress, timer, worker=worker,
+                              engine=engine)
         for name, data in built.files.items():
             _write(building / name, data)
         outputs = {name: sha256_bytes(data) for name, data in built.files.items()}
         finished = _timestamp()
         record = dump_record(build_record(built.result, version, started, finished, source,
-                                          built.results_sha256, outputs, built.inputs))
+                                          built.results_sha256, outputs, built.inputs,
+                                          engine.description))
         progress("pdf")
         pdf = worker.pdf(built.files["report.html"], spec.raw, record, finished)
         if timer is not None:

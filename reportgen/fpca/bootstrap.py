@@ -35,11 +35,6 @@ class Replicate:
     truncation_variance: FloatArray
 
 
-def resample(sample: Sample, rng: np.random.Generator) -> Sample:
-    """The readings of ``n`` subjects drawn with replacement, recoded 0 .. n - 1."""
-    return sample.subset(rng.integers(0, sample.n_subjects, sample.n_subjects))
-
-
 def total_variance(
     replicates: tuple[Replicate, ...], grid: FloatArray, sample: Sample
 ) -> FloatArray:

@@ -24,9 +24,8 @@ from scipy.special import ndtri
 from threadpoolctl import threadpool_limits
 
 from ..errors import EstimationError
-from ._kernels import interpolate_columns
 from .bandwidth import EXTEND_TO, BandwidthChoice, candidate_bandwidths, select_bandwidth
-from .bootstrap import Replicate, resample, total_variance
+from .bootstrap import Replicate, total_variance
 from .components import (
     ComponentSelection,
     Eigen,
@@ -35,18 +34,11 @@ from .components import (
     evaluate_at,
     trapezoid_weights,
 )
-from .design import (
-    BinnedStats,
-    IntArray,
-    PairStats,
-    Sample,
-    assign_folds,
-    mean_stats,
-    pair_stats,
-)
+from .design import BinnedStats, IntArray, PairStats, Sample, assign_folds
 from .frame import arrays_from_frame
 from .likelihood import LikelihoodFit, maximise, starting_error_variance
 from .options import FPCAOptions
+from .plan import Part, Partitioned
 from .predictor import Predictor, band_multiplier
 from .scores import SampleTerms, conditional_scores, loo_errors, sample_terms
 from .smoothing import (
@@ -263,7 +255,8 @@ class FPCAFit:
         """Recovered trajectories on the grid: subject, time, fitted, the pointwise band
         (lower, upper) and the simultaneous band (lower_simultaneous, upper_simultaneous)."""
         if self._sample is None:
-            raise EstimationError("this fit was stripped of its subjects (without_subjects)")
+            raise EstimationError("this fit holds no readings of its subjects (a fit "
+                                  "without_subjects, or one fitted from parts without them)")
         if subjects is None:
             rows = np.arange(self.n_subjects)
         else:
@@ -431,15 +424,16 @@ def _error_variance(
     return raw, level
 
 
-def _check_variation(y: FloatArray, resid: FloatArray) -> None:
+def _check_variation(check: FloatArray) -> None:
     """Readings that do not vary around the mean leave nothing to decompose.
 
-    "Do not vary" is relative to the size of the values (1e-10 of the largest absolute
-    value): constant data give residuals at rounding level, whose covariance would otherwise
-    yield components made of rounding noise.
+    ``check`` holds (max |y|, sum of squared residuals, number of readings). "Do not vary"
+    is relative to the size of the values (1e-10 of the largest absolute value): constant
+    data give residuals at rounding level, whose covariance would otherwise yield
+    components made of rounding noise.
     """
-    size = float(np.max(np.abs(y)))
-    rms = float(np.sqrt(np.mean(resid * resid)))
+    size, ss, n = (float(x) for x in check)
+    rms = float(np.sqrt(ss / n))
     if not rms > 1e-10 * size:
         raise EstimationError(
             f"the readings show no variation between subjects: the root mean square "
@@ -447,18 +441,18 @@ def _check_variation(y: FloatArray, resid: FloatArray) -> None:
         )
 
 
-def _check_design(sample: Sample, lo: float, hi: float) -> None:
-    outside = int(np.count_nonzero((sample.t < lo) | (sample.t > hi)))
+def _check_design(data: Partitioned, lo: float, hi: float) -> None:
+    outside = data.count_outside(lo, hi)
     if outside:
         raise EstimationError(
             f"{outside} readings lie outside the domain [{lo:.6g}, {hi:.6g}]; leave them out "
             "or widen the domain (they would otherwise be counted at its ends)"
         )
-    n_multi = int(np.count_nonzero(sample.n_obs >= 2))
+    n_multi = int(np.count_nonzero(data.n_obs >= 2))
     if n_multi < 2:
         raise EstimationError(
             "the covariance needs at least two subjects with two or more readings; "
-            f"found {n_multi} among {sample.n_subjects} subjects"
+            f"found {n_multi} among {data.n_subjects} subjects"
         )
     if not hi > lo:
         raise EstimationError(
@@ -492,28 +486,44 @@ def fit_arrays(
     results do not depend on the machine's core count or load.
     """
     with threadpool_limits(limits=1, user_api="blas"):
-        return _fit(subject, t, y, labels, options, population_only, per_subject)
+        sample = Sample.from_arrays(subject, t, y)
+        data = Partitioned.local([Part(sample, np.arange(sample.n_subjects, dtype=np.intp))])
+        return _fit(data, labels, options, population_only, per_subject, sample)
 
 
-def _fit(subject: IntArray, t: FloatArray, y: FloatArray, labels: np.ndarray,
-         options: FPCAOptions, population_only: bool, per_subject: bool = True) -> FPCAFit:
-    sample = Sample.from_arrays(subject, t, y)
-    lo, hi = options.domain if options.domain is not None else (float(t.min()), float(t.max()))
-    _check_design(sample, lo, hi)
+def fit_parts(data: Partitioned, labels: np.ndarray, options: FPCAOptions = FPCAOptions(),
+              *, per_subject: bool = True, sample: Sample | None = None) -> FPCAFit:
+    """Fit sparse FPCA to readings held in parts (``fpca.plan``), whoever executes the passes.
+
+    ``labels[code]`` is the id of the subject with that code. The result depends on the
+    data and on how they are split into parts, not on the executor. ``sample``, when the
+    caller holds all readings (coded as the parts are), is kept for the trajectories'
+    corrected bands; without it the fit cannot draw trajectories. A data set of one part
+    gives exactly :func:`fit_arrays`'s result.
+    """
+    with threadpool_limits(limits=1, user_api="blas"):
+        return _fit(data, labels, options, False, per_subject, sample)
+
+
+def _fit(data: Partitioned, labels: np.ndarray, options: FPCAOptions, population_only: bool,
+         per_subject: bool = True, sample: Sample | None = None) -> FPCAFit:
+    lo, hi = options.domain if options.domain is not None else (data.t_min, data.t_max)
+    _check_design(data, lo, hi)
     kernel = get_kernel(options.kernel)
     grid = np.linspace(lo, hi, options.n_grid)
     auto = "auto" in (options.mean_bandwidth, options.covariance_bandwidth,
                       options.diagonal_bandwidth)
-    n_folds = min(options.cv_folds, sample.n_subjects) if auto else 1
+    n_subjects = data.n_subjects
+    n_folds = min(options.cv_folds, n_subjects) if auto else 1
     method = options.bandwidth_method
-    folds = assign_folds(sample.n_subjects, n_folds, options.seed)
+    folds = assign_folds(n_subjects, n_folds, options.seed)
     messages: list[str] = []
 
     # 1. mean
     mbins = BinGrid(lo, hi, options.mean_bins)
-    mstats = mean_stats(sample, mbins, folds, n_folds)
+    mstats = data.reading_sums(folds, mbins, n_folds)
     mean_choice = _choose_bandwidth(
-        options.mean_bandwidth, mstats, mbins, sample.n_subjects, 1, method, kernel,
+        options.mean_bandwidth, mstats, mbins, n_subjects, 1, method, kernel,
         np.concatenate([grid, mbins.centers]), "mean",
     )
     total = mstats.total()
@@ -521,19 +531,17 @@ def _fit(subject: IntArray, t: FloatArray, y: FloatArray, labels: np.ndarray,
         mbins.centers, mbins.centers, total.counts[0], total.sums[0], mean_choice.value, kernel
     )
     mean = np.interp(grid, mbins.centers, fine)
-    resid = sample.y - interpolate_columns(sample.t, fine[:, None], lo, mbins.width)[:, 0]
-
-    _check_variation(sample.y, resid)
 
     # 2. covariance surface, and the variance of single readings on its own bandwidth
     cbins = BinGrid(lo, hi, options.covariance_bins)
-    pstats = pair_stats(sample, resid, cbins, folds, n_folds)
+    pstats, check = data.residual_sums(folds, fine, mbins, cbins, n_folds)
+    _check_variation(check)
     cov_choice = _choose_bandwidth(
-        options.covariance_bandwidth, pstats.offdiag, cbins, sample.n_subjects, 2, method,
+        options.covariance_bandwidth, pstats.offdiag, cbins, n_subjects, 2, method,
         kernel, grid, "covariance",
     )
     diag_choice = _choose_bandwidth(
-        options.diagonal_bandwidth, pstats.diag, cbins, sample.n_subjects, 1, method,
+        options.diagonal_bandwidth, pstats.diag, cbins, n_subjects, 1, method,
         kernel, grid, "diagonal",
     )
     cov, diag_var, ridge = _surfaces(pstats, cbins, grid, cov_choice.value, diag_choice.value,
@@ -556,8 +564,10 @@ def _fit(subject: IntArray, t: FloatArray, y: FloatArray, labels: np.ndarray,
 
     # 4. likelihood refinement of (lambda_1..K', sigma^2) with the eigenfunctions fixed
     k_ref = _refined_count(eig, options)
-    used = _likelihood_sample(sample.n_subjects, REFINE_MAX_SUBJECTS, options.seed)
-    terms = sample_terms(sample, used, resid, grid, eig.functions[:, :k_ref])
+    used = _likelihood_sample(n_subjects, REFINE_MAX_SUBJECTS, options.seed)
+    chosen, chosen_resid = data.gather(used, fine, mbins)
+    terms = sample_terms(chosen, np.arange(used.size, dtype=np.intp), chosen_resid, grid,
+                         eig.functions[:, :k_ref])
     start = starting_error_variance(sigma2_smooth, level)
     if start != sigma2_smooth:
         messages.append(
@@ -596,9 +606,7 @@ def _fit(subject: IntArray, t: FloatArray, y: FloatArray, labels: np.ndarray,
 
     # 6. scores
     if per_subject:
-        phi_obs = evaluate_at(sample.t, grid, funcs)
-        scores, score_cov = conditional_scores(sample.starts, resid, phi_obs, values,
-                                               lik.error_variance)
+        scores, score_cov = data.scores(fine, mbins, grid, funcs, values, lik.error_variance)
     else:  # not computed: the fit is returned without its subjects (below)
         scores, score_cov = np.zeros((0, k)), np.zeros((0, k, k))
     fit = FPCAFit(
@@ -616,10 +624,10 @@ def _fit(subject: IntArray, t: FloatArray, y: FloatArray, labels: np.ndarray,
         n_components=k, mean_bandwidth_choice=mean_choice,
         covariance_bandwidth_choice=cov_choice, diagonal_bandwidth_choice=diag_choice,
         selection=selection,
-        subjects=_frozen(np.asarray(labels)), n_obs=_frozen(sample.n_obs),
+        subjects=_frozen(np.asarray(labels)), n_obs=_frozen(data.n_obs),
         score_values=_frozen(scores), score_cov=_frozen(score_cov),
         pair_counts=_frozen(pstats.offdiag.counts.sum(axis=0)), pair_grid=_frozen(cbins.centers),
-        n_readings=int(sample.t.size), dropped_eigenvalues=eig.n_dropped,
+        n_readings=data.n_readings, dropped_eigenvalues=eig.n_dropped,
         dropped_negative_sum=eig.dropped_sum,
         warnings=tuple(messages), options=options,
         _mean_fine=(_frozen(mbins.centers), _frozen(fine)), _sample=sample,
@@ -627,11 +635,11 @@ def _fit(subject: IntArray, t: FloatArray, y: FloatArray, labels: np.ndarray,
     if not per_subject:
         return fit.without_subjects()
     if options.band == "corrected" and not population_only:
-        fit = _with_replicates(fit, sample)
+        fit = _with_replicates(fit, data)
     return fit
 
 
-def _with_replicates(fit: FPCAFit, sample: Sample) -> FPCAFit:
+def _with_replicates(fit: FPCAFit, data: Partitioned) -> FPCAFit:
     """Refit the population quantities on resampled subjects (``fpca.bootstrap``).
 
     Each replicate keeps the main fit's three bandwidths, domain and number of components;
@@ -645,13 +653,14 @@ def _with_replicates(fit: FPCAFit, sample: Sample) -> FPCAFit:
         n_components=fit.n_components, band="plugin",
     )
     rng = np.random.default_rng([fit.options.seed, 1])
-    labels = np.arange(sample.n_subjects)
+    n = data.n_subjects
+    labels = np.arange(n)
     reps: list[Replicate] = []
     skipped = 0
     for _ in range(fit.options.bootstrap_replicates):
-        drawn = resample(sample, rng)
+        drawn = data.resample(rng.integers(0, n, n))  # subjects with replacement
         try:
-            rf = _fit(drawn.subject, drawn.t, drawn.y, labels, opts, population_only=True)
+            rf = _fit(drawn, labels, opts, population_only=True)
         except EstimationError:
             skipped += 1
             continue

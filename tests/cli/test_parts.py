@@ -1,5 +1,6 @@
-"""Data given as a folder (or pattern) of Parquet files: one table, one manifest, the same
-numbers as one file, and refusals where the files cannot be trusted.
+"""Data given as a folder (or pattern) of Parquet files: one table, one manifest, the
+numbers of one file (to rounding: the files' sums are added file by file), the same bits on
+either engine, and refusals where the files cannot be trusted.
 
 Data: the invented clinic example (specs/clinic_visits.csv) split by subject. The
 single-file run is the reference for the numbers; the manifest's digest is checked against
@@ -12,6 +13,7 @@ import hashlib
 import json
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
 import pytest
 
@@ -54,9 +56,11 @@ def runs(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Path]:
     _split(base / "readings")
     one = pd.concat(pd.read_parquet(p) for p in sorted((base / "readings").iterdir()))
     one.to_parquet(base / "one.parquet", index=False)
+    spec = _spec(base, "readings")
     return {
         "one": run_spec(_spec_one(base), base / "runs"),
-        "folder": run_spec(_spec(base, "readings"), base / "runs"),
+        "folder": run_spec(spec, base / "runs"),
+        "dask": run_spec(spec, base / "runs", engine="dask"),
     }
 
 
@@ -68,14 +72,48 @@ def _spec_one(base: Path) -> Path:
 
 
 def test_a_folder_gives_the_numbers_of_one_file(runs: dict[str, Path]) -> None:
-    one, folder = _tables(runs["one"]), _tables(runs["folder"])
-    assert one.keys() == folder.keys()
-    for name in one:
-        if name != "checks.csv":  # the folder's run has one check more (whole subjects)
-            assert one[name] == folder[name], name
+    one, folder = runs["one"] / "tables", runs["folder"] / "tables"
+    assert _tables(runs["one"]).keys() == _tables(runs["folder"]).keys()
+    for path in sorted(one.iterdir()):
+        if path.name == "checks.csv":  # the folder's run has one check more (whole subjects)
+            continue
+        a, b = pd.read_csv(path), pd.read_csv(folder / path.name)
+        assert list(a.columns) == list(b.columns) and len(a) == len(b), path.name
+        for column in a:
+            if pd.api.types.is_float_dtype(a[column]):
+                # per-file sums added in another order: rounding only (common practice,
+                # no source)
+                np.testing.assert_allclose(b[column], a[column], rtol=1e-8, atol=1e-10,
+                                           err_msg=f"{path.name}: {column}")
+            else:
+                assert a[column].tolist() == b[column].tolist(), f"{path.name}: {column}"
     checks = pd.read_csv(runs["folder"] / "tables" / "checks.csv")
     row = checks[checks.check == "subjects whole in one file"]
     assert list(row.status) == ["pass"]
+
+
+def test_the_dask_engine_gives_the_same_bits(runs: dict[str, Path]) -> None:
+    assert _tables(runs["dask"]) == _tables(runs["folder"])
+    here, there = (json.loads((runs[k] / "record.json").read_text()) for k in ("folder", "dask"))
+    assert here["results_sha256"] == there["results_sha256"]
+    assert here["run"]["engine"] == "local"
+    assert there["run"]["engine"].startswith("dask (a cluster in this process")
+    # verify re-runs the analysis in this process: the Dask run's numbers must come out
+    ok = cli("verify", str(runs["dask"]))
+    assert ok.returncode == 0, ok.stdout + ok.stderr
+
+
+def test_engine_options_that_cannot_work_are_refused(tmp_path: Path) -> None:
+    spec = str(ROOT / "specs" / "clinic_visits.yaml")
+    out = str(tmp_path / "runs")
+    lone = cli("run", spec, "--out", out, "--scheduler", "tcp://127.0.0.1:8786")
+    assert lone.returncode == 2 and "--scheduler is for --engine dask" in lone.stderr
+    away = cli("run", spec, "--out", out, "--engine", "dask", "--scheduler",
+               "tcp://127.0.0.1:9")  # the discard port: nothing listens there
+    assert away.returncode == 2, away.stdout + away.stderr
+    assert "cannot reach the Dask scheduler at 'tcp://127.0.0.1:9' (--scheduler)" in away.stderr
+    assert "Traceback" not in lone.stderr + away.stderr
+    assert not (tmp_path / "runs").exists()
 
 
 def test_the_record_carries_the_manifest_and_its_digest(runs: dict[str, Path]) -> None:

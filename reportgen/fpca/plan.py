@@ -1,0 +1,311 @@
+"""One plan of passes over parts of the data, whoever executes it.
+
+The readings come in parts (one per data file), each holding whole subjects. Every step of
+the fit that touches readings is a pass: a pure function applied to each part, whose small
+results (binned sums, per-subject scores) are brought together on the caller's side. The
+sums of the parts are added in a fixed binary tree over the parts' order, so that the
+result depends on the data and on how they are split into parts, never on who ran the
+passes, in which order they finished, or on how many workers there were (a different
+order of addition changes the last bits of a sum).
+
+An :class:`Executor` runs the passes: :class:`InProcess` here, one part after another;
+the Dask engine (``reportgen.engine``) on a cluster. A data set that is one part gives
+exactly the sums of the whole sample (the tree of one part is that part).
+
+Passes of a fit: (0) ``summary`` (subject codes and reading counts, time range); (1)
+``reading_sums`` (binned readings per fold, for the mean); (2) ``residual_sums`` (binned
+raw covariances against the mean, and the sums that check the residuals' size); then, on
+a seeded sample of subjects, ``gather`` (their readings, for the likelihood); (3)
+``part_scores`` (each subject's conditional expectation). Resampled parts for corrected
+bands are made where the parts live (``resampled``).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass
+from typing import Any, Protocol, TypeVar
+
+import numpy as np
+from threadpoolctl import threadpool_limits
+
+from ._kernels import interpolate_columns
+from .components import evaluate_at
+from .design import BinnedStats, IntArray, PairStats, Sample, mean_stats, pair_stats
+from .scores import conditional_scores
+from .smoothing import BinGrid, FloatArray
+
+T = TypeVar("T")
+
+
+@dataclass(frozen=True)
+class Part:
+    """Readings of whole subjects: a sample coded 0 .. m - 1 within the part, and the code
+    of each of its subjects in the whole data set (increasing)."""
+
+    sample: Sample
+    subjects: IntArray
+
+    def writable(self) -> Part:
+        """The same part with writable arrays. Arrays that arrive over the network are often
+        read-only, and numba compiles (and caches) a second version of every kernel for
+        read-only arguments (numba issue 4511): copies are cheaper than that."""
+        s = self.sample
+        arrays = (s.subject, s.t, s.y, s.starts, s.n_obs)
+        if all(a.flags.writeable for a in arrays):
+            return self
+        return Part(Sample(*(np.array(a) for a in arrays)), np.array(self.subjects))
+
+
+def split_parts(codes: IntArray, t: FloatArray, y: FloatArray, part: IntArray | None,
+                n_parts: int = 1) -> list[Part]:
+    """The readings (subject codes 0 .. n - 1) as parts; ``part`` gives each reading's part
+    (None: one part). A subject must lie in one part (the loader checks it)."""
+    codes = np.asarray(codes, dtype=np.intp)
+    if part is None or n_parts == 1:
+        sample = Sample.from_arrays(codes, t, y)
+        return [Part(sample, np.arange(sample.n_subjects, dtype=np.intp))]
+    out = []
+    order = np.argsort(part, kind="stable")
+    bounds = np.searchsorted(part[order], np.arange(n_parts + 1))
+    for p in range(n_parts):
+        rows = order[bounds[p]:bounds[p + 1]]
+        subjects, local = np.unique(codes[rows], return_inverse=True)
+        out.append(Part(Sample.from_arrays(local.astype(np.intp), t[rows], y[rows]),
+                        subjects.astype(np.intp)))
+    return out
+
+
+class Executor(Protocol):
+    """Runs a pass over parts. ``per_part[i]`` (a tuple) goes to part ``i`` only; ``shared``
+    to every part. ``map`` returns the results in the parts' order; ``keep`` leaves them
+    where they were computed and returns handles that ``map`` accepts as parts."""
+
+    def map(self, fn: Callable[..., T], parts: Sequence[Any],
+            per_part: Sequence[tuple[Any, ...]] | None = None, shared: tuple[Any, ...] = ()
+            ) -> list[T]: ...
+
+    def keep(self, fn: Callable[..., Part], parts: Sequence[Any],
+             per_part: Sequence[tuple[Any, ...]] | None = None, shared: tuple[Any, ...] = ()
+             ) -> list[Any]: ...
+
+
+class InProcess:
+    """Runs every pass here, one part after another."""
+
+    def map(self, fn: Callable[..., T], parts: Sequence[Any],
+            per_part: Sequence[tuple[Any, ...]] | None = None, shared: tuple[Any, ...] = ()
+            ) -> list[T]:
+        extra = per_part if per_part is not None else [()] * len(parts)
+        return [fn(p, *e, *shared) for p, e in zip(parts, extra, strict=True)]
+
+    keep = map
+
+
+def tree_sum(items: Sequence[T], add: Callable[[T, T], T]) -> T:
+    """Sum in a fixed binary tree: neighbours in order, level by level
+    (((0 + 1) + (2 + 3)) + 4 for five items); one item is returned as it is."""
+    level = list(items)
+    if not level:
+        raise ValueError("nothing to add")
+    while len(level) > 1:
+        level = [add(level[i], level[i + 1]) if i + 1 < len(level) else level[i]
+                 for i in range(0, len(level), 2)]
+    return level[0]
+
+
+def _add_binned(a: BinnedStats, b: BinnedStats) -> BinnedStats:
+    return BinnedStats(a.counts + b.counts, a.sums + b.sums, a.sumsq + b.sumsq, a.n + b.n)
+
+
+def _add_pairs(a: tuple[PairStats, FloatArray], b: tuple[PairStats, FloatArray]
+               ) -> tuple[PairStats, FloatArray]:
+    (pa, ca), (pb, cb) = a, b
+    check = np.array([max(ca[0], cb[0]), ca[1] + cb[1], ca[2] + cb[2]])
+    return (PairStats(_add_binned(pa.offdiag, pb.offdiag), _add_binned(pa.diag, pb.diag),
+                      pa.cross + pb.cross), check)
+
+
+# --- the passes (module-level functions: a cluster ships them by name) -------------------
+
+
+def summary(part: Part) -> tuple[IntArray, IntArray, float, float]:
+    """Pass 0: the part's subject codes, their reading counts, and its time range."""
+    t = part.sample.t
+    return part.subjects, part.sample.n_obs, float(t.min()), float(t.max())
+
+
+def outside(part: Part, lo: float, hi: float) -> int:
+    """Readings outside [lo, hi]."""
+    t = part.sample.t
+    return int(np.count_nonzero((t < lo) | (t > hi)))
+
+
+def reading_sums(part: Part, folds: IntArray, grid: BinGrid, n_folds: int) -> BinnedStats:
+    """Pass 1: binned readings per fold (``folds``: the fold of each of the part's subjects)."""
+    part = part.writable()
+    return mean_stats(part.sample, grid, folds, n_folds)
+
+
+def residuals(part: Part, fine: FloatArray, mean_grid: BinGrid) -> FloatArray:
+    """Readings minus the mean (``fine``: the mean on ``mean_grid``'s centres)."""
+    s = part.sample
+    return s.y - interpolate_columns(s.t, fine[:, None], mean_grid.lower, mean_grid.width)[:, 0]
+
+
+def residual_sums(part: Part, folds: IntArray, fine: FloatArray, mean_grid: BinGrid,
+                  grid: BinGrid, n_folds: int) -> tuple[PairStats, FloatArray]:
+    """Pass 2: binned raw covariances of the residuals per fold, and (max |y|, sum r^2, n)."""
+    part = part.writable()
+    resid = residuals(part, fine, mean_grid)
+    stats = pair_stats(part.sample, resid, grid, folds, n_folds)
+    check = np.array([float(np.max(np.abs(part.sample.y))), float(np.sum(resid * resid)),
+                      float(resid.size)])
+    return stats, check
+
+
+def gather(part: Part, rows: IntArray, fine: FloatArray, mean_grid: BinGrid
+           ) -> tuple[FloatArray, FloatArray, FloatArray, IntArray]:
+    """Readings and residuals of the part's subjects at ``rows`` (in that order), and
+    their reading counts."""
+    part = part.writable()
+    index, _, sizes = part.sample.reading_index(rows)
+    resid = residuals(part, fine, mean_grid)
+    return part.sample.t[index], part.sample.y[index], resid[index], sizes
+
+
+def part_scores(part: Part, fine: FloatArray, mean_grid: BinGrid, grid: FloatArray,
+                functions: FloatArray, values: FloatArray, sigma2: float
+                ) -> tuple[FloatArray, FloatArray]:
+    """Pass 3: each subject's conditional expectation of its scores, and its covariance."""
+    part = part.writable()
+    resid = residuals(part, fine, mean_grid)
+    phi = evaluate_at(part.sample.t, grid, functions)
+    with threadpool_limits(limits=1, user_api="blas"):
+        return conditional_scores(part.sample.starts, resid, phi, values, sigma2)
+
+
+def resampled(part: Part, rows: IntArray, codes: IntArray) -> Part:
+    """The part's subjects at ``rows`` (repeats allowed), as subjects ``codes`` of a
+    resample."""
+    return Part(part.writable().sample.subset(rows), codes)
+
+
+# --- the data of a fit, as parts ----------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class Partitioned:
+    """The parts of one data set, where they live, and what the caller holds of them:
+    subject codes and reading counts (nothing per reading).
+
+    Attributes
+    ----------
+    executor : Executor
+    parts : list
+        The parts, or the executor's handles of them.
+    subjects : list of ndarray
+        The subject codes of each part.
+    n_obs : ndarray of shape (n_subjects,)
+        Readings per subject, by code.
+    t_min, t_max : float
+    """
+
+    executor: Executor
+    parts: Sequence[Any]
+    subjects: tuple[IntArray, ...]
+    n_obs: IntArray
+    t_min: float
+    t_max: float
+
+    @classmethod
+    def of(cls, executor: Executor, parts: Sequence[Any]) -> Partitioned:
+        """Pass 0 over ``parts``."""
+        found = executor.map(summary, parts)
+        n_subjects = sum(int(codes.size) for codes, *_ in found)
+        n_obs = np.zeros(n_subjects, dtype=np.intp)
+        for codes, counts, *_ in found:
+            n_obs[codes] = counts
+        return cls(executor, parts, tuple(f[0] for f in found), n_obs,
+                   min(f[2] for f in found), max(f[3] for f in found))
+
+    @classmethod
+    def local(cls, parts: list[Part]) -> Partitioned:
+        return cls.of(InProcess(), parts)
+
+    @property
+    def n_subjects(self) -> int:
+        return int(self.n_obs.size)
+
+    @property
+    def n_readings(self) -> int:
+        return int(self.n_obs.sum())
+
+    def _each(self, per_subject: np.ndarray) -> list[tuple[Any, ...]]:
+        return [(per_subject[codes],) for codes in self.subjects]
+
+    def count_outside(self, lo: float, hi: float) -> int:
+        return sum(self.executor.map(outside, self.parts, shared=(lo, hi)))
+
+    def reading_sums(self, folds: IntArray, grid: BinGrid, n_folds: int) -> BinnedStats:
+        found = self.executor.map(reading_sums, self.parts, self._each(folds), (grid, n_folds))
+        return tree_sum(found, _add_binned)
+
+    def residual_sums(self, folds: IntArray, fine: FloatArray, mean_grid: BinGrid,
+                      grid: BinGrid, n_folds: int) -> tuple[PairStats, FloatArray]:
+        """Pair sums, and (max |y|, sum r^2, n) over all readings."""
+        found = self.executor.map(residual_sums, self.parts, self._each(folds),
+                                  (fine, mean_grid, grid, n_folds))
+        return tree_sum(found, _add_pairs)
+
+    def gather(self, chosen: IntArray, fine: FloatArray, mean_grid: BinGrid
+               ) -> tuple[Sample, FloatArray]:
+        """The readings and residuals of the subjects ``chosen`` (increasing codes), as a
+        sample coded 0 .. len(chosen) - 1 in that order."""
+        asks = [(np.searchsorted(codes, chosen[np.isin(chosen, codes)]),)
+                for codes in self.subjects]
+        found = self.executor.map(gather, self.parts, asks, (fine, mean_grid))
+        owner = np.concatenate([codes[rows] for codes, (rows,) in zip(self.subjects, asks,
+                                                                      strict=True)])
+        held = np.concatenate([f[3] for f in found])  # reading counts, in the parts' order
+        order = np.argsort(owner, kind="stable")  # the subjects in code order
+        sizes = held[order]
+        starts = np.concatenate(([0], np.cumsum(sizes)[:-1])).astype(np.intp)
+        first = np.concatenate(([0], np.cumsum(held)[:-1])).astype(np.intp)
+        index = np.repeat(first[order] - starts, sizes) + np.arange(int(sizes.sum()))
+        t, y, r = (np.concatenate([f[k] for f in found])[index] for k in range(3))
+        sample = Sample(np.repeat(np.arange(chosen.size), sizes), t, y, starts,
+                        sizes.astype(np.intp))
+        return sample, r
+
+    def scores(self, fine: FloatArray, mean_grid: BinGrid, grid: FloatArray,
+               functions: FloatArray, values: FloatArray, sigma2: float
+               ) -> tuple[FloatArray, FloatArray]:
+        """Scores and their error covariance of every subject, by code."""
+        found = self.executor.map(part_scores, self.parts,
+                                  shared=(fine, mean_grid, grid, functions, values, sigma2))
+        k = values.size
+        scores = np.empty((self.n_subjects, k))
+        cov = np.empty((self.n_subjects, k, k))
+        for codes, (s, c) in zip(self.subjects, found, strict=True):
+            scores[codes] = s
+            cov[codes] = c
+        return scores, cov
+
+    def resample(self, drawn: IntArray) -> Partitioned:
+        """The subjects ``drawn`` (codes, repeats allowed) as a new data set whose subject
+        ``j`` is ``drawn[j]``; each part keeps the draws of its own subjects, in draw order."""
+        home = np.empty(self.n_subjects, dtype=np.intp)
+        local = np.empty(self.n_subjects, dtype=np.intp)
+        for p, codes in enumerate(self.subjects):
+            home[codes] = p
+            local[codes] = np.arange(codes.size)
+        where = home[drawn]
+        asks = [(local[drawn[where == p]], np.flatnonzero(where == p).astype(np.intp))
+                for p in range(len(self.parts))]
+        kept = [i for i, (rows, _) in enumerate(asks) if rows.size]
+        parts = self.executor.keep(resampled, [self.parts[i] for i in kept],
+                                   [asks[i] for i in kept])
+        # the time range is the original's (a resample is fitted on a fixed domain)
+        return Partitioned(self.executor, parts, tuple(asks[i][1] for i in kept),
+                           self.n_obs[drawn], self.t_min, self.t_max)

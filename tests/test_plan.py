@@ -1,0 +1,148 @@
+"""One plan, two executors: a fit over parts gives the same bits in this process and on a
+Dask cluster (threads or processes, one worker or three), and one part gives exactly the
+fit of the whole sample.
+
+The data are the simulation design of tests/designs.py (Yao, Müller & Wang 2005, sec. 5,
+from memory), split by subject into parts of unequal size. The contract checked here is
+internal (the same numbers whoever adds them up); the accuracy of the fit itself is
+checked against published results in test_fit_reference.py.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterator
+from dataclasses import replace
+
+import numpy as np
+import pytest
+
+from reportgen.fpca import FPCAOptions, fit_arrays
+from reportgen.fpca.design import Sample
+from reportgen.fpca.fit import FPCAFit, fit_parts
+from reportgen.fpca.plan import InProcess, Partitioned, split_parts, tree_sum
+from reportgen.fpca.smoothing import BinGrid
+
+from .designs import yao_design
+
+OPTIONS = FPCAOptions(n_grid=41, band="corrected", bootstrap_replicates=4, seed=3)
+N_PARTS = 5
+
+
+@pytest.fixture(scope="module")
+def readings() -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    data = yao_design(300, seed=11)
+    codes = data.id.to_numpy(dtype=np.intp)
+    # unequal parts, subjects interleaved (not contiguous code ranges)
+    part = (codes * 7 + codes // 13) % N_PARTS
+    return codes, data.t.to_numpy(), data.y.to_numpy(), part[np.argsort(codes, kind="stable")]
+
+
+def _numbers(fit: FPCAFit) -> dict[str, np.ndarray]:
+    """Every number of a fit that a table or figure may show."""
+    out = {name: np.asarray(getattr(fit, name), dtype=float) for name in (
+        "grid", "mean", "mean_se", "covariance", "diagonal_variance", "eigenvalues",
+        "eigenfunctions", "all_eigenvalues", "fve", "error_variance",
+        "smoothing_error_variance", "truncation_variance", "mean_simultaneous_multiplier",
+        "diagonal_support", "score_values", "score_cov", "pair_counts", "n_obs")}
+    for what in ("mean", "covariance", "diagonal"):
+        choice = getattr(fit, f"{what}_bandwidth_choice")
+        out[f"{what} bandwidth"] = np.array([choice.value, *choice.criterion])
+    sel = fit.selection
+    out["criteria"] = np.concatenate([sel.aic, sel.bic, sel.cv, [sel.chosen]])
+    for i, rep in enumerate(fit.replicates):
+        out[f"replicate {i}"] = np.concatenate([rep.mean, rep.eigenfunctions.ravel(),
+                                                rep.eigenvalues, [rep.error_variance]])
+    return out
+
+
+def _same_bits(a: FPCAFit, b: FPCAFit) -> None:
+    na, nb = _numbers(a), _numbers(b)
+    assert na.keys() == nb.keys()
+    for name in na:
+        assert na[name].shape == nb[name].shape, name
+        assert na[name].tobytes() == nb[name].tobytes(), name
+
+
+def _fit_on(executor: object, parts: list, labels: np.ndarray, sample: Sample) -> FPCAFit:
+    place = getattr(executor, "place", list)
+    data = Partitioned.of(executor, place(parts))  # type: ignore[arg-type]
+    return fit_parts(data, labels, OPTIONS, sample=sample)
+
+
+@pytest.fixture(scope="module")
+def in_process(readings: tuple) -> tuple[FPCAFit, list, np.ndarray, Sample]:
+    codes, t, y, part = readings
+    order = np.argsort(codes, kind="stable")
+    codes, t, y = codes[order], t[order], y[order]
+    parts = split_parts(codes, t, y, part, N_PARTS)
+    labels = np.arange(codes.max() + 1)
+    sample = Sample.from_arrays(codes, t, y)
+    return _fit_on(InProcess(), parts, labels, sample), parts, labels, sample
+
+
+def test_one_part_is_the_whole_sample_exactly(readings: tuple) -> None:
+    codes, t, y, _ = readings
+    labels = np.arange(codes.max() + 1)
+    whole = fit_arrays(codes, t, y, labels, OPTIONS)
+    parts = split_parts(codes, t, y, None)
+    _same_bits(whole, _fit_on(InProcess(), parts, labels, parts[0].sample))
+
+
+def test_many_parts_differ_from_one_only_in_the_last_bits(readings: tuple, in_process: tuple
+                                                          ) -> None:
+    codes, t, y, _ = readings
+    whole = fit_arrays(codes, t, y, np.arange(codes.max() + 1), OPTIONS)
+    many = _numbers(in_process[0])
+    for name, value in _numbers(whole).items():
+        # sums added in another order: rounding only (common practice, no source)
+        np.testing.assert_allclose(many[name], value, rtol=1e-9, atol=1e-12, err_msg=name)
+
+
+def test_the_tree_adds_in_a_fixed_order() -> None:
+    # (((a + b) + (c + d)) + e): checked on strings, where order shows
+    assert tree_sum(list("abcde"), lambda x, y: f"({x}+{y})") == "(((a+b)+(c+d))+e)"
+    assert tree_sum(["a"], lambda x, y: x + y) == "a"
+    with pytest.raises(ValueError, match="nothing to add"):
+        tree_sum([], lambda x, y: x + y)
+
+
+def test_gathered_subjects_are_their_readings(in_process: tuple) -> None:
+    _, parts, _, sample = in_process
+    data = Partitioned.local(parts)
+    chosen = np.array([0, 3, 4, 17, 250, 299])
+    grid = BinGrid(0.0, 10.0, 11)
+    got, resid = data.gather(chosen, np.zeros(11), grid)
+    want = sample.subset(chosen)
+    for name in ("subject", "t", "y", "starts", "n_obs"):
+        assert np.array_equal(getattr(got, name), getattr(want, name)), name
+    assert np.array_equal(resid, want.y)  # the mean given is zero
+
+
+@pytest.fixture(scope="module", params=[(False, 1), (False, 3), (True, 2)],
+                ids=["threads-1-worker", "threads-3-workers", "processes-2-workers"])
+def on_dask(request: pytest.FixtureRequest) -> Iterator[object]:
+    distributed = pytest.importorskip("distributed")
+    from reportgen.engine import OnDask
+
+    processes, workers = request.param
+    with distributed.LocalCluster(n_workers=workers, threads_per_worker=1,
+                                  processes=processes, dashboard_address=None) as cluster, \
+            distributed.Client(cluster) as client:
+        yield OnDask(client)
+
+
+def test_a_dask_cluster_gives_the_same_bits(on_dask: object, in_process: tuple) -> None:
+    fit, parts, labels, sample = in_process
+    _same_bits(fit, _fit_on(on_dask, parts, labels, sample))
+
+
+def test_the_sensitivity_refits_give_the_same_bits(on_dask: object, in_process: tuple
+                                                  ) -> None:
+    fit, parts, labels, _ = in_process
+    options = replace(OPTIONS, band="plugin", mean_bandwidth=fit.mean_bandwidth * 1.5,
+                      covariance_bandwidth=fit.covariance_bandwidth * 1.5,
+                      diagonal_bandwidth=fit.diagonal_bandwidth * 1.5)
+    here = fit_parts(Partitioned.local(parts), labels, options, per_subject=False)
+    there = fit_parts(Partitioned.of(on_dask, on_dask.place(parts)),  # type: ignore[attr-defined]
+                      labels, options, per_subject=False)
+    _same_bits(here, there)
