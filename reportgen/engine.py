@@ -19,7 +19,7 @@ from dataclasses import dataclass
 from typing import Any, TypeVar
 
 from .errors import EngineError
-from .fpca.plan import Executor, InProcess, Part
+from .fpca.plan import Executor, InProcess, Part, warm_up
 
 T = TypeVar("T")
 ENGINES = ("local", "dask")
@@ -40,7 +40,10 @@ class OnDask:
     parts' order whatever order the tasks finish in."""
 
     def __init__(self, client: Any) -> None:
+        """``client``: a connected ``distributed.Client``. Every worker loads the compiled
+        kernels now, before the first pass."""
         self.client = client
+        client.run(warm_up)
 
     def place(self, parts: list[Part]) -> list[Any]:
         return list(self.client.scatter(parts))

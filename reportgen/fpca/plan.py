@@ -191,6 +191,19 @@ def resampled(part: Part, rows: IntArray, codes: IntArray) -> Part:
     return Part(part.writable().sample.subset(rows), codes)
 
 
+def warm_up() -> None:
+    """Load (or compile) every compiled kernel a pass uses, on a tiny part: run once in each
+    new worker process so that the first pass is not charged with it (about a second per
+    process from numba's on-disk cache)."""
+    t = np.array([0.0, 0.5, 0.25, 1.0])
+    part = Part(Sample.from_arrays(np.array([0, 0, 1, 1]), t, t * t), np.arange(2))
+    folds, grid = np.zeros(2, dtype=np.intp), BinGrid(0.0, 1.0, 5)
+    reading_sums(part, folds, grid, 1)
+    residual_sums(part, folds, np.zeros(5), grid, grid, 1)
+    gather(part, np.arange(2), np.zeros(5), grid)
+    part_scores(part, np.zeros(5), grid, grid.centers, np.ones((5, 1)), np.ones(1), 1.0)
+
+
 # --- the data of a fit, as parts ----------------------------------------------------------
 
 
