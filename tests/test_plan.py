@@ -16,6 +16,7 @@ from dataclasses import replace
 import numpy as np
 import pytest
 
+from reportgen.errors import EstimationError
 from reportgen.fpca import FPCAOptions, fit_arrays
 from reportgen.fpca.design import Sample
 from reportgen.fpca.fit import FPCAFit, fit_parts
@@ -146,3 +147,10 @@ def test_the_sensitivity_refits_give_the_same_bits(on_dask: object, in_process: 
     there = fit_parts(Partitioned.of(on_dask, on_dask.place(parts)),  # type: ignore[attr-defined]
                       labels, options, per_subject=False)
     _same_bits(here, there)
+
+
+def test_a_subject_in_two_parts_is_refused(in_process: tuple) -> None:
+    _, parts, _, _ = in_process
+    twice = [parts[0], parts[0], *parts[1:]]  # the first part's subjects twice
+    with pytest.raises(EstimationError, match="must lie in exactly one part"):
+        Partitioned.local(twice)

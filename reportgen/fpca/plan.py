@@ -29,6 +29,7 @@ from typing import Any, Protocol, TypeVar
 import numpy as np
 from threadpoolctl import threadpool_limits
 
+from ..errors import EstimationError
 from ._kernels import interpolate_columns
 from .components import evaluate_at
 from .design import BinnedStats, IntArray, PairStats, Sample, mean_stats, pair_stats
@@ -237,8 +238,16 @@ class Partitioned:
         found = executor.map(summary, parts)
         n_subjects = sum(int(codes.size) for codes, *_ in found)
         n_obs = np.zeros(n_subjects, dtype=np.intp)
+        seen = np.zeros(n_subjects, dtype=np.intp)
         for codes, counts, *_ in found:
+            if codes.size and (codes[0] < 0 or codes[-1] >= n_subjects):
+                raise EstimationError("the parts' subject codes are not 0 .. n - 1")
             n_obs[codes] = counts
+            seen[codes] += 1
+        if np.any(seen != 1):
+            code = int(np.flatnonzero(seen != 1)[0])
+            raise EstimationError(f"subject code {code} is in {int(seen[code])} parts: each "
+                                  "subject's readings must lie in exactly one part")
         return cls(executor, parts, tuple(f[0] for f in found), n_obs,
                    min(f[2] for f in found), max(f[3] for f in found))
 
