@@ -154,3 +154,13 @@ def test_a_subject_in_two_parts_is_refused(in_process: tuple) -> None:
     twice = [parts[0], parts[0], *parts[1:]]  # the first part's subjects twice
     with pytest.raises(EstimationError, match="must lie in exactly one part"):
         Partitioned.local(twice)
+
+
+def test_a_part_without_readings_is_left_out(readings: tuple) -> None:
+    codes, t, y, part = readings
+    order = np.argsort(codes, kind="stable")
+    codes, t, y = codes[order], t[order], y[order]
+    moved = np.where(part == 2, 4, part)  # part 2 holds nothing now (a file all dropped)
+    parts = split_parts(codes, t, y, moved, N_PARTS)
+    assert len(parts) == N_PARTS - 1
+    assert sum(p.sample.n_subjects for p in parts) == codes.max() + 1

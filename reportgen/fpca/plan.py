@@ -61,7 +61,8 @@ class Part:
 def split_parts(codes: IntArray, t: FloatArray, y: FloatArray, part: IntArray | None,
                 n_parts: int = 1) -> list[Part]:
     """The readings (subject codes 0 .. n - 1) as parts; ``part`` gives each reading's part
-    (None: one part). A subject must lie in one part (the loader checks it)."""
+    (None: one part). A subject must lie in one part (the loader checks it). A part left
+    with no readings (a file whose rows the checks dropped) is left out."""
     codes = np.asarray(codes, dtype=np.intp)
     if part is None or n_parts == 1:
         sample = Sample.from_arrays(codes, t, y)
@@ -71,6 +72,8 @@ def split_parts(codes: IntArray, t: FloatArray, y: FloatArray, part: IntArray | 
     bounds = np.searchsorted(part[order], np.arange(n_parts + 1))
     for p in range(n_parts):
         rows = order[bounds[p]:bounds[p + 1]]
+        if rows.size == 0:
+            continue
         subjects, local = np.unique(codes[rows], return_inverse=True)
         out.append(Part(Sample.from_arrays(local.astype(np.intp), t[rows], y[rows]),
                         subjects.astype(np.intp)))
