@@ -16,6 +16,7 @@ import typing as _typing
 from .errors import (
     DataError,
     DegenerateDataWarning,
+    EngineError,
     EstimationError,
     OutputError,
     RecordError,
@@ -34,6 +35,7 @@ __version__ = "0.1.0"
 __all__ = [
     "DataError",
     "DegenerateDataWarning",
+    "EngineError",
     "EstimationError",
     "FPCAFit",
     "FPCAOptions",
