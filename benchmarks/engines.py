@@ -150,13 +150,25 @@ def main() -> None:
         f"{name} {r[1] / base:.2f}" for name, r in results.items() if name != "in this process")
     print(text)
     if args.write:
-        out = ROOT / "benchmarks" / "ENGINES.md"
-        head = ("# The fit's plan on the two engines\n\nProduced by `benchmarks/engines.py "
-                "--subjects N --files F --write`; each size is a section of its own.\n")
-        old = out.read_text() if out.exists() else head
-        marker = f"\n## {n:,} subjects\n"
-        kept = old.split(marker)[0] if marker in old else old
-        out.write_text(kept.rstrip("\n") + "\n" + marker + "\n" + text + "\n")
+        write_section(ROOT / "benchmarks" / "ENGINES.md", f"{n:,} subjects", text)
+
+
+HEAD = """# The fit's plan on the two engines
+
+Produced by `benchmarks/engines.py --subjects N --files F --write`; each number of subjects
+is a section of its own (a new run replaces its section and keeps the others).
+"""
+
+
+def write_section(path: Path, title: str, text: str) -> None:
+    """Replace the section ``## title`` of ``path`` (or add it), keeping the rest."""
+    old = path.read_text() if path.exists() else HEAD
+    head, *rest = old.split("\n## ")
+    sections = dict(part.split("\n", 1) for part in rest)
+    sections[title] = "\n" + text + "\n"
+    ordered = sorted(sections, key=lambda t: int(t.split()[0].replace(",", "")))
+    path.write_text(head.rstrip("\n") + "\n" + "".join(
+        f"\n## {t}\n{sections[t].rstrip()}\n" for t in ordered))
 
 
 if __name__ == "__main__":
