@@ -181,6 +181,8 @@ def run_spec(spec_path: str | Path, out: str | Path, progress: Progress = lambda
 
 def _run(spec: Spec, out: str | Path, progress: Progress, timer: Timer | None,
          engine: Engine) -> Path:
+    if engine.description != "local":
+        progress(f"the fits' passes run on {engine.description}")
     folder = Path(out) / spec.report_id
     try:
         folder.mkdir(parents=True, exist_ok=True)

@@ -1,0 +1,52 @@
+"""`run --engine dask` against a scheduler of its own (worker processes), on both invented
+examples: the tables and the HTML are the committed sample runs' bytes (made by the local
+engine), whether the scheduler is named by Dask's DASK_SCHEDULER_ADDRESS or --scheduler.
+"""
+
+from __future__ import annotations
+
+import json
+from collections.abc import Iterator
+from pathlib import Path
+
+import pytest
+
+from .conftest import ROOT, cli
+
+SAMPLES = ROOT / "sample_runs"
+
+
+@pytest.fixture(scope="module")
+def scheduler() -> Iterator[str]:
+    distributed = pytest.importorskip("distributed")
+    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
+                                  dashboard_address=None) as cluster:
+        yield cluster.scheduler_address
+
+
+@pytest.mark.parametrize(("example", "named_by"), [("clinic_visits", "environment"),
+                                                   ("pump_service", "option")])
+def test_an_example_on_a_cluster_is_its_sample_run(example: str, named_by: str,
+                                                   scheduler: str, tmp_path: Path,
+                                                   monkeypatch: pytest.MonkeyPatch) -> None:
+    args = ["run", str(ROOT / "specs" / f"{example}.yaml"), "--out", str(tmp_path),
+            "--engine", "dask", "--quiet"]
+    if named_by == "environment":
+        monkeypatch.setenv("DASK_SCHEDULER_ADDRESS", scheduler)
+    else:
+        monkeypatch.delenv("DASK_SCHEDULER_ADDRESS", raising=False)
+        args += ["--scheduler", scheduler]
+    done = cli(*args)
+    assert done.returncode == 0, done.stdout + done.stderr
+    run = next(tmp_path.glob("*/v001"))
+    sample = SAMPLES / run.parent.name / "v001"
+    tables = sorted(p.name for p in (sample / "tables").iterdir())
+    assert sorted(p.name for p in (run / "tables").iterdir()) == tables
+    for name in tables:
+        assert (run / "tables" / name).read_bytes() == (sample / "tables" / name).read_bytes(), \
+            name
+    assert (run / "report.html").read_bytes() == (sample / "report.html").read_bytes()
+    record = json.loads((run / "record.json").read_text())
+    assert record["run"]["engine"] == f"dask (scheduler {scheduler}, 2 workers)"
+    expected = json.loads((sample / "record.json").read_text())["results_sha256"]
+    assert record["results_sha256"] == expected
