@@ -119,7 +119,7 @@ def main() -> None:
     found: dict[str, bytes] = {}
     for name, processes in (("Dask, 2 processes", True), ("Dask, 2 threads", False)):
         with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=processes,
-                                      dashboard_address=None) as cluster, \
+                                      dashboard_address=":0") as cluster, \
                 distributed.Client(cluster) as client:
             numbers, seconds, total = _fit(OnDask(client), n, files)
             workers = ("in this process" if not processes else ", ".join(

@@ -18,12 +18,14 @@ from contextlib import contextmanager
 from dataclasses import dataclass
 from typing import Any, TypeVar
 
+from . import __version__
 from .errors import EngineError
 from .fpca.plan import Executor, InProcess, Part, warm_up
 
 T = TypeVar("T")
 ENGINES = ("local", "dask")
 CONNECT_TIMEOUT = "10s"
+WAIT_FOR_WORKERS = 10.0  # seconds
 
 
 @dataclass(frozen=True)
@@ -41,9 +43,16 @@ class OnDask:
 
     def __init__(self, client: Any) -> None:
         """``client``: a connected ``distributed.Client``. Every worker loads the compiled
-        kernels now, before the first pass."""
+        kernels now, before the first pass, and must run the versions that this process
+        runs (the same bits need the same code)."""
         self.client = client
-        client.run(warm_up)
+        try:
+            found = client.run(prepare_worker)
+        except Exception as e:  # a worker without reportgen fails to unpickle the task
+            raise EngineError(f"the Dask workers cannot run reportgen's tasks "
+                              f"({type(e).__name__}: {e}); install reportgen {__version__} "
+                              "on every worker") from None
+        check_versions(found, versions())
 
     def place(self, parts: list[Part]) -> list[Any]:
         return list(self.client.scatter(parts))
@@ -61,6 +70,31 @@ class OnDask:
         return list(self.client.gather(self.keep(fn, parts, per_part, shared)))
 
 
+def versions() -> dict[str, str]:
+    """The versions of the code that runs the passes."""
+    import numba
+    import numpy
+
+    return {"reportgen": __version__, "numpy": numpy.__version__, "numba": numba.__version__}
+
+
+def prepare_worker() -> dict[str, str]:
+    """Run on each worker when the engine opens: load the kernels, report the versions."""
+    warm_up()
+    return versions()
+
+
+def check_versions(found: dict[str, dict[str, str]], here: dict[str, str]) -> None:
+    """Refuse workers whose reportgen, numpy or numba differ from this process's."""
+    for worker, versions in sorted(found.items()):
+        differ = [f"{name} {versions.get(name)} (here {v})" for name, v in here.items()
+                  if versions.get(name) != v]
+        if differ:
+            raise EngineError(f"Dask worker {worker} runs {', '.join(differ)}: every worker "
+                              "needs the versions of this process, or the results could "
+                              "differ")
+
+
 def local_engine() -> Engine:
     """Every pass in this process, one part after another."""
     return Engine(InProcess(), list, "local")
@@ -68,7 +102,11 @@ def local_engine() -> Engine:
 
 @contextmanager
 def open_engine(name: str = "local", scheduler: str | None = None) -> Iterator[Engine]:
-    """The engine called ``name``, open for the duration of the block."""
+    """The engine called ``name``, open for the duration of the block.
+
+    A Dask cluster that fails during the block (a worker lost, the scheduler gone) raises
+    EngineError; the run writes nothing then.
+    """
     if name == "local":
         if scheduler:
             raise EngineError("--scheduler is for --engine dask")
@@ -78,26 +116,42 @@ def open_engine(name: str = "local", scheduler: str | None = None) -> Iterator[E
         raise EngineError(f"--engine must be one of {', '.join(ENGINES)}; got {name!r}")
     try:
         import dask
-        from distributed import Client, LocalCluster
+        from distributed import Client, KilledWorker, LocalCluster
     except ImportError:
         raise EngineError("--engine dask needs Dask: pip install 'reportgen[dask]'") from None
     address = scheduler or dask.config.get("scheduler-address", None)
-    if address:
-        try:
-            client = Client(address, timeout=CONNECT_TIMEOUT)
-        except (OSError, TimeoutError) as e:
-            where = "--scheduler" if scheduler else "DASK_SCHEDULER_ADDRESS"
-            raise EngineError(f"cannot reach the Dask scheduler at {address!r} ({where}): "
-                             f"{e}") from None
-        try:
-            n = len(client.scheduler_info(n_workers=-1).get("workers", {}))
+    try:
+        if address:
+            with _connected(Client, address, "--scheduler" if scheduler else
+                            "DASK_SCHEDULER_ADDRESS") as (client, n):
+                on = OnDask(client)
+                yield Engine(on, on.place, f"dask (scheduler {address}, {n} workers)")
+            return
+        workers = os.cpu_count() or 1
+        with LocalCluster(n_workers=workers, threads_per_worker=1, processes=False,
+                          dashboard_address=":0") as cluster, Client(cluster) as client:
             on = OnDask(client)
-            yield Engine(on, on.place, f"dask (scheduler {address}, {n} workers)")
-        finally:
-            client.close()
-        return
-    workers = os.cpu_count() or 1
-    with LocalCluster(n_workers=workers, threads_per_worker=1, processes=False,
-                      dashboard_address=None) as cluster, Client(cluster) as client:
-        on = OnDask(client)
-        yield Engine(on, on.place, f"dask (a cluster in this process, {workers} workers)")
+            yield Engine(on, on.place, f"dask (a cluster in this process, {workers} workers)")
+    except (KilledWorker, OSError, TimeoutError) as e:  # CommClosedError is an OSError
+        raise EngineError(f"the Dask cluster failed during the run ({type(e).__name__}: "
+                          f"{e}); nothing was written") from None
+
+
+@contextmanager
+def _connected(client_type: Any, address: str, named_by: str) -> Iterator[tuple[Any, int]]:
+    """A client of the scheduler at ``address`` that has at least one worker."""
+    try:
+        client = client_type(address, timeout=CONNECT_TIMEOUT)
+    except (OSError, TimeoutError) as e:
+        raise EngineError(f"cannot reach the Dask scheduler at {address!r} ({named_by}): "
+                          f"{e}") from None
+    try:
+        try:
+            client.wait_for_workers(1, timeout=WAIT_FOR_WORKERS)
+        except TimeoutError:
+            raise EngineError(f"the Dask scheduler at {address!r} ({named_by}) has no workers "
+                              f"(waited {WAIT_FOR_WORKERS:g} s); start some with "
+                              f"`dask worker {address}`") from None
+        yield client, len(client.scheduler_info(n_workers=-1).get("workers", {}))
+    finally:
+        client.close()

@@ -127,7 +127,7 @@ def on_dask(request: pytest.FixtureRequest) -> Iterator[object]:
 
     processes, workers = request.param
     with distributed.LocalCluster(n_workers=workers, threads_per_worker=1,
-                                  processes=processes, dashboard_address=None) as cluster, \
+                                  processes=processes, dashboard_address=":0") as cluster, \
             distributed.Client(cluster) as client:
         yield OnDask(client)
 

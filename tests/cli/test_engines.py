@@ -11,6 +11,8 @@ from pathlib import Path
 
 import pytest
 
+from reportgen.errors import EngineError
+
 from .conftest import ROOT, cli
 
 SAMPLES = ROOT / "sample_runs"
@@ -20,7 +22,7 @@ SAMPLES = ROOT / "sample_runs"
 def scheduler() -> Iterator[str]:
     distributed = pytest.importorskip("distributed")
     with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
-                                  dashboard_address=None) as cluster:
+                                  dashboard_address=":0") as cluster:
         yield cluster.scheduler_address
 
 
@@ -50,3 +52,38 @@ def test_an_example_on_a_cluster_is_its_sample_run(example: str, named_by: str,
     assert record["run"]["engine"] == f"dask (scheduler {scheduler}, 2 workers)"
     expected = json.loads((sample / "record.json").read_text())["results_sha256"]
     assert record["results_sha256"] == expected
+
+
+def test_workers_of_other_versions_are_refused() -> None:
+    from reportgen.engine import check_versions, versions
+
+    here = versions()
+    check_versions({"tcp://a:1": dict(here)}, here)  # the same: accepted
+    older = {**here, "numba": "0.1.0"}
+    with pytest.raises(EngineError, match=r"tcp://b:2 runs numba 0\.1\.0 \(here "):
+        check_versions({"tcp://a:1": dict(here), "tcp://b:2": older}, here)
+
+
+def test_a_scheduler_without_workers_is_an_error(tmp_path: Path,
+                                                 monkeypatch: pytest.MonkeyPatch) -> None:
+    distributed = pytest.importorskip("distributed")
+    from reportgen import engine
+    from reportgen.runner import run_spec
+
+    monkeypatch.setattr(engine, "WAIT_FOR_WORKERS", 1.0)
+    with distributed.LocalCluster(n_workers=0, processes=False,
+                                  dashboard_address=":0") as cluster:
+        with pytest.raises(EngineError, match="has no workers"):
+            run_spec(ROOT / "specs" / "clinic_visits.yaml", tmp_path / "runs",
+                     engine="dask", scheduler=cluster.scheduler_address)
+    assert not (tmp_path / "runs").exists()
+
+
+def test_a_cluster_that_fails_during_the_run_is_an_error(scheduler: str) -> None:
+    from distributed.comm.core import CommClosedError
+
+    from reportgen.engine import open_engine
+
+    with pytest.raises(EngineError, match="the Dask cluster failed during the run"), \
+            open_engine("dask", scheduler):
+        raise CommClosedError("the scheduler went away")
