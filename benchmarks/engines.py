@@ -47,16 +47,17 @@ class Timed:
     def map(self, fn: Callable[..., Any], parts: Sequence[Any],
             per_part: Sequence[tuple[Any, ...]] | None = None, shared: tuple[Any, ...] = ()
             ) -> list[Any]:
-        start = time.perf_counter()
-        out = self.inner.map(fn, parts, per_part, shared)
-        self.seconds[fn.__name__] += time.perf_counter() - start
-        return out
+        return self._timed(self.inner.map, fn, parts, per_part, shared)
 
     def keep(self, fn: Callable[..., Any], parts: Sequence[Any],
-            per_part: Sequence[tuple[Any, ...]] | None = None, shared: tuple[Any, ...] = ()
-            ) -> list[Any]:
+             per_part: Sequence[tuple[Any, ...]] | None = None, shared: tuple[Any, ...] = ()
+             ) -> list[Any]:
+        return self._timed(self.inner.keep, fn, parts, per_part, shared)
+
+    def _timed(self, run: Callable[..., list[Any]], fn: Callable[..., Any], *args: Any
+               ) -> list[Any]:
         start = time.perf_counter()
-        out = self.inner.keep(fn, parts, per_part, shared)
+        out = run(fn, *args)
         self.seconds[fn.__name__] += time.perf_counter() - start
         return out
 
