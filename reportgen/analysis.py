@@ -403,11 +403,9 @@ def _parts(ds: Dataset, codes: np.ndarray, t: np.ndarray, y: np.ndarray
            ) -> tuple[list[Part], Sample]:
     """The readings as the fit's parts (one per data file), and all of them as one sample
     (the same arrays when there is one file)."""
-    if "part" not in ds.frame:
-        parts = split_parts(codes, t, y, None)
-        return parts, parts[0].sample
-    part = ds.frame["part"].to_numpy(dtype=np.intp)
-    return split_parts(codes, t, y, part, len(ds.parts)), Sample.from_arrays(codes, t, y)
+    part = ds.frame["part"].to_numpy(dtype=np.intp) if "part" in ds.frame else None
+    parts = split_parts(codes, t, y, part, max(len(ds.parts), 1))
+    return parts, parts[0].sample if len(parts) == 1 else Sample.from_arrays(codes, t, y)
 
 
 def analyse(spec: Spec, ds: Dataset, progress: Progress = lambda _: None,

@@ -164,3 +164,52 @@ def test_a_part_without_readings_is_left_out(readings: tuple) -> None:
     parts = split_parts(codes, t, y, moved, N_PARTS)
     assert len(parts) == N_PARTS - 1
     assert sum(p.sample.n_subjects for p in parts) == codes.max() + 1
+
+
+class _Counting(InProcess):
+    """Counts the numbers that each pass brings back to the caller."""
+
+    def __init__(self) -> None:
+        self.returned: dict[str, int] = {}
+
+    def map(self, fn, parts, per_part=None, shared=()):  # type: ignore[no-untyped-def]
+        out = super().map(fn, parts, per_part, shared)
+        size = sum(_size(x) for x in out)
+        self.returned[fn.__name__] = self.returned.get(fn.__name__, 0) + size
+        return out
+
+
+def _size(x: object) -> int:
+    if isinstance(x, np.ndarray):
+        return int(x.size)
+    if isinstance(x, tuple | list):
+        return sum(_size(v) for v in x)
+    if hasattr(x, "__dataclass_fields__"):
+        return sum(_size(getattr(x, f)) for f in x.__dataclass_fields__)
+    return 1
+
+
+def test_what_comes_back_does_not_grow_with_the_readings(monkeypatch: pytest.MonkeyPatch
+                                                         ) -> None:
+    # A fit gathers from its parts per subject (codes, counts, scores) and per bin (the
+    # sums); readings only of the likelihood's sampled subjects (capped). Twice the
+    # readings per subject, same subjects: everything else comes back at the same size.
+    from reportgen.fpca import fit as fit_module
+
+    monkeypatch.setattr(fit_module, "REFINE_MAX_SUBJECTS", 40)
+    returned = []
+    for low, high in ((2, 5), (6, 12)):
+        data = yao_design(300, seed=11, min_obs=low, max_obs=high)
+        codes = data.id.to_numpy(dtype=np.intp)
+        parts = split_parts(codes, data.t.to_numpy(), data.y.to_numpy(), codes % N_PARTS,
+                            N_PARTS)
+        counting = _Counting()
+        fit_parts(Partitioned.of(counting, parts), np.arange(300),
+                  replace(OPTIONS, band="plugin", component_rule="fixed", n_components=2))
+        returned.append(counting.returned)
+    few, many = returned
+    assert few.keys() == many.keys()
+    for name in few:
+        if name != "gather":
+            assert few[name] == many[name], name
+    assert many["gather"] <= 4 * 40 * 12  # t, y, residual, count: 40 subjects, <= 12 each
