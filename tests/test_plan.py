@@ -213,3 +213,26 @@ def test_what_comes_back_does_not_grow_with_the_readings(monkeypatch: pytest.Mon
         if name != "gather":
             assert few[name] == many[name], name
     assert many["gather"] <= 4 * 40 * 12  # t, y, residual, count: 40 subjects, <= 12 each
+
+
+def test_the_order_of_the_rows_does_not_change_a_bit(readings: tuple) -> None:
+    # The readings in another row order (subjects and readings within them shuffled) are
+    # the same data: every sum adds them in one canonical order, (subject, time, value).
+    codes, t, y, _ = readings
+    labels = np.arange(codes.max() + 1)
+    shuffled = np.random.default_rng(5).permutation(codes.size)
+    options = replace(OPTIONS, band="plugin")
+    _same_bits(fit_arrays(codes, t, y, labels, options),
+               fit_arrays(codes[shuffled], t[shuffled], y[shuffled], labels, options))
+
+
+def test_readings_are_ordered_by_time_then_value_within_a_subject() -> None:
+    # against numpy's lexsort (reference library); subject 1 has more readings than the
+    # insertion sort takes, and repeated times
+    rng = np.random.default_rng(2)
+    codes = np.repeat([0, 1, 2], [5, 80, 1])
+    t = rng.integers(0, 10, codes.size).astype(float)
+    y = rng.normal(size=codes.size)
+    sample = Sample.from_arrays(codes, t, y)
+    order = np.lexsort((y, t, codes))
+    assert np.array_equal(sample.t, t[order]) and np.array_equal(sample.y, y[order])

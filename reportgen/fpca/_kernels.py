@@ -140,6 +140,37 @@ def subject_sums(starts: np.ndarray, resid: FloatArray, phi: FloatArray
     return gram, cross
 
 
+# Subjects with more readings than this are ordered by two stable sorts, not by insertion.
+_INSERTION_MAX = 32
+
+
+@njit(cache=True, nogil=True)
+def order_within_subjects(starts: np.ndarray, t: FloatArray, y: FloatArray) -> np.ndarray:
+    """The permutation that orders each subject's readings by (time, value), subjects kept
+    in place. Insertion sort for the usual handful of readings, two stable merge sorts
+    (value, then time) for a subject with many."""
+    n = t.size
+    perm = np.arange(n)
+    n_subj = starts.size
+    for s in range(n_subj):
+        a = starts[s]
+        b = starts[s + 1] if s + 1 < n_subj else n
+        if b - a > _INSERTION_MAX:
+            by_value = np.argsort(y[a:b], kind="mergesort")
+            by_time = np.argsort(t[a:b][by_value], kind="mergesort")
+            perm[a:b] = a + by_value[by_time]
+            continue
+        for i in range(a + 1, b):
+            p = perm[i]
+            j = i
+            while j > a and (t[perm[j - 1]] > t[p]
+                             or (t[perm[j - 1]] == t[p] and y[perm[j - 1]] > y[p])):
+                perm[j] = perm[j - 1]
+                j -= 1
+            perm[j] = p
+    return perm
+
+
 @njit(cache=True, nogil=True)
 def interpolate_columns(t: FloatArray, values: FloatArray, lower: float, width: float
                         ) -> FloatArray:
@@ -337,7 +368,7 @@ def likelihood_sums(gram_t: FloatArray, cross_t: FloatArray, rr: FloatArray,
 
 
 KERNELS: tuple[Any, ...] = (bin_readings, bin_pairs, subject_sums, interpolate_columns,
-                            likelihood_sums)
+                            likelihood_sums, order_within_subjects)
 
 
 def compiled_on_disk() -> bool:

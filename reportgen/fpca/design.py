@@ -13,7 +13,7 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import NDArray
 
-from ._kernels import bin_pairs, bin_readings
+from ._kernels import bin_pairs, bin_readings, order_within_subjects
 from .smoothing import BinGrid, FloatArray
 
 IntArray = NDArray[np.intp]
@@ -61,9 +61,13 @@ class Sample:
 
     @classmethod
     def from_arrays(cls, subject: IntArray, t: FloatArray, y: FloatArray) -> Sample:
-        """Sort by subject index (stable; skipped when already sorted) and index the subjects.
+        """Sort by subject index, and each subject's readings by (time, value); index the
+        subjects. Each sort is skipped when the arrays are in order already.
 
-        ``subject`` holds integer codes 0 .. n_subjects - 1, every code present.
+        The order of the readings decides the order in which every sum adds them, so a
+        fixed order makes the results depend on the readings, not on the order of the
+        rows that hold them. ``subject`` holds integer codes 0 .. n_subjects - 1, every
+        code present.
         """
         subject = np.asarray(subject, dtype=np.intp)
         t = np.asarray(t, dtype=np.float64)
@@ -73,6 +77,11 @@ class Sample:
             subject, t, y = subject[order], t[order], y[order]
         n_obs = np.bincount(subject)
         starts = np.concatenate(([0], np.cumsum(n_obs)[:-1])).astype(np.intp)
+        same = subject[1:] == subject[:-1]
+        later = (t[1:] < t[:-1]) | ((t[1:] == t[:-1]) & (y[1:] < y[:-1]))
+        if np.any(same & later):
+            order = order_within_subjects(starts, t, y)
+            t, y = t[order], y[order]
         return cls(subject, t, y, starts, n_obs.astype(np.intp))
 
 
