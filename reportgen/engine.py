@@ -55,7 +55,9 @@ class OnDask:
         check_versions(found, versions())
 
     def place(self, parts: list[Part]) -> list[Any]:
-        return list(self.client.scatter(parts))
+        # hash=False: the parts need no content key; hashing 4.5 million readings in 32 parts
+        # took 0.12 s in a cluster of threads, where sending them took 0.01 s
+        return list(self.client.scatter(parts, hash=False))
 
     def keep(self, fn: Callable[..., Any], parts: Sequence[Any],
              per_part: Sequence[tuple[Any, ...]] | None = None, shared: tuple[Any, ...] = ()
