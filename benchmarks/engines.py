@@ -44,6 +44,9 @@ class Timed:
         self.inner = inner
         self.seconds: dict[str, float] = defaultdict(float)
 
+    def place(self, parts: list[Part]) -> Sequence[Any]:
+        return self.inner.place(parts)
+
     def map(self, fn: Callable[..., Any], parts: Sequence[Any],
             per_part: Sequence[tuple[Any, ...]] | None = None, shared: tuple[Any, ...] = ()
             ) -> list[Any]:

@@ -6,9 +6,8 @@ No files and no printing: the runner writes, the renderer reads.
 from __future__ import annotations
 
 import math
-from collections.abc import Callable, Sequence
+from collections.abc import Callable
 from dataclasses import dataclass, replace
-from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -409,13 +408,13 @@ def _parts(ds: Dataset, codes: np.ndarray, t: np.ndarray, y: np.ndarray
 
 
 def analyse(spec: Spec, ds: Dataset, progress: Progress = lambda _: None,
-            lap: Progress = lambda _: None, executor: Executor | None = None,
-            place: Callable[[list[Part]], Sequence[Any]] = list) -> AnalysisResult:
+            lap: Progress = lambda _: None, executor: Executor | None = None
+            ) -> AnalysisResult:
     """The main fit, the sensitivity fits, diagnostics and caveats.
 
     ``progress`` receives a message before each long step; ``lap`` the name of each step
     just finished (for timing). The fits' passes over the data run on ``executor`` (here,
-    by default), over the parts as ``place`` puts them there (``reportgen.engine``).
+    by default; ``reportgen.engine``).
     """
     codes, t, y, labels = arrays_from_frame(ds.frame, "subject", "time", "value")
     if not compiled_on_disk():
@@ -424,7 +423,7 @@ def analyse(spec: Spec, ds: Dataset, progress: Progress = lambda _: None,
     progress("fit")
     parts, sample = _parts(ds, codes, t, y)
     run_on = executor or InProcess()
-    data = Partitioned.of(run_on, place(parts))
+    data = Partitioned.of(run_on, run_on.place(parts))
     del parts
     fit = fit_parts(data, labels, spec.options, sample=sample)
     lap("fit")

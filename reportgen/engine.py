@@ -30,10 +30,9 @@ WAIT_FOR_WORKERS = 10.0  # seconds
 
 @dataclass(frozen=True)
 class Engine:
-    """An executor, how it places the parts, and what record.json says of it."""
+    """An executor and what record.json says of it."""
 
     executor: Executor
-    place: Callable[[list[Part]], Sequence[Any]]
     description: str
 
 
@@ -99,7 +98,7 @@ def check_versions(found: dict[str, dict[str, str]], here: dict[str, str]) -> No
 
 def local_engine() -> Engine:
     """Every pass in this process, one part after another."""
-    return Engine(InProcess(), list, "local")
+    return Engine(InProcess(), "local")
 
 
 @contextmanager
@@ -127,13 +126,13 @@ def open_engine(name: str = "local", scheduler: str | None = None) -> Iterator[E
             with _connected(Client, address, "--scheduler" if scheduler else
                             "DASK_SCHEDULER_ADDRESS") as (client, n):
                 on = OnDask(client)
-                yield Engine(on, on.place, f"dask (scheduler {address}, {n} workers)")
+                yield Engine(on, f"dask (scheduler {address}, {n} workers)")
             return
         workers = os.cpu_count() or 1
         with LocalCluster(n_workers=workers, threads_per_worker=1, processes=False,
                           dashboard_address=":0") as cluster, Client(cluster) as client:
             on = OnDask(client)
-            yield Engine(on, on.place, f"dask (a cluster in this process, {workers} workers)")
+            yield Engine(on, f"dask (a cluster in this process, {workers} workers)")
     except (KilledWorker, OSError, TimeoutError) as e:  # CommClosedError is an OSError
         raise EngineError(f"the Dask cluster failed during the run ({type(e).__name__}: "
                           f"{e}); nothing was written") from None

@@ -83,7 +83,7 @@ def build_outputs(spec: Spec, version: int, started: str,
     dataset = load_dataset(spec)
     require_passed(dataset)
     clock.lap("data")
-    result = analyse(spec, dataset, progress, clock.lap, run_on.executor, run_on.place)
+    result = analyse(spec, dataset, progress, clock.lap, run_on.executor)
     frames = build_tables(result)
     if style is None:
         tables = canonical_bytes(frames)

@@ -65,8 +65,7 @@ def _same_bits(a: FPCAFit, b: FPCAFit) -> None:
 
 
 def _fit_on(executor: object, parts: list, labels: np.ndarray, sample: Sample) -> FPCAFit:
-    place = getattr(executor, "place", list)
-    data = Partitioned.of(executor, place(parts))  # type: ignore[arg-type]
+    data = Partitioned.of(executor, executor.place(parts))  # type: ignore[attr-defined]
     return fit_parts(data, labels, OPTIONS, sample=sample)
 
 

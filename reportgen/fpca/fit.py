@@ -11,6 +11,9 @@ Steps (Yao, Müller & Wang 2005, JASA 100:577-590, doi:10.1198/01621450400000174
 4. eigen-decomposition with trapezoid weights (``components.eigen_decompose``);
 5. number of components by FVE, AIC, BIC, leave-one-reading-out error or fixed;
 6. scores and their error covariance by conditional expectation (``scores``).
+
+Every step that touches readings is a pass over the data's parts (``plan``), so that the
+same fit runs in this process or on a cluster with the same bits.
 """
 
 from __future__ import annotations

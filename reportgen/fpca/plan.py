@@ -81,9 +81,12 @@ def split_parts(codes: IntArray, t: FloatArray, y: FloatArray, part: IntArray | 
 
 
 class Executor(Protocol):
-    """Runs a pass over parts. ``per_part[i]`` (a tuple) goes to part ``i`` only; ``shared``
-    to every part. ``map`` returns the results in the parts' order; ``keep`` leaves them
-    where they were computed and returns handles that ``map`` accepts as parts."""
+    """Runs a pass over parts. ``place`` puts parts where the passes run and returns their
+    handles. ``per_part[i]`` (a tuple) goes to part ``i`` only; ``shared`` to every part.
+    ``map`` returns the results in the parts' order; ``keep`` leaves them where they were
+    computed and returns handles that ``map`` accepts as parts."""
+
+    def place(self, parts: list[Part]) -> Sequence[Any]: ...
 
     def map(self, fn: Callable[..., T], parts: Sequence[Any],
             per_part: Sequence[tuple[Any, ...]] | None = None, shared: tuple[Any, ...] = ()
@@ -95,7 +98,10 @@ class Executor(Protocol):
 
 
 class InProcess:
-    """Runs every pass here, one part after another."""
+    """Runs every pass here, one part after another; the parts are their own handles."""
+
+    def place(self, parts: list[Part]) -> list[Part]:
+        return list(parts)
 
     def map(self, fn: Callable[..., T], parts: Sequence[Any],
             per_part: Sequence[tuple[Any, ...]] | None = None, shared: tuple[Any, ...] = ()
@@ -152,7 +158,9 @@ def reading_sums(part: Part, folds: IntArray, grid: BinGrid, n_folds: int) -> Bi
 
 
 def residuals(part: Part, fine: FloatArray, mean_grid: BinGrid) -> FloatArray:
-    """Readings minus the mean (``fine``: the mean on ``mean_grid``'s centres)."""
+    """Readings minus the mean (``fine``: the mean on ``mean_grid``'s centres). Each pass
+    that needs them computes them again (0.03 s at 4.5 million readings): a part keeps no
+    state between passes, and a kept copy would add a third to its memory."""
     s = part.sample
     return s.y - interpolate_columns(s.t, fine[:, None], mean_grid.lower, mean_grid.width)[:, 0]
 
