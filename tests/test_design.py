@@ -20,7 +20,8 @@ def test_pair_sums_equal_explicit_pairs() -> None:
     sample = Sample.from_arrays(subj, t, r)
     grid = BinGrid(0.0, 1.0, 11)
     folds = assign_folds(50, 3, seed=0)
-    stats = pair_stats(sample, r, grid, folds, 3)
+    # the sample holds the readings in its own order, (subject, time): r as it holds them
+    stats = pair_stats(sample, sample.y, grid, folds, 3)
     counts, sums, sumsq = np.zeros((3, 11, 11)), np.zeros((3, 11, 11)), np.zeros(3)
     left, frac = grid.locate(t)
     for a in range(subj.size):

@@ -68,7 +68,9 @@ def test_criteria_equal_direct_gaussian_likelihood_and_loo() -> None:
     lam, s2 = np.array([2.0, 0.5]), 0.4
     r = rng.normal(size=subject.size)
     sample = Sample.from_arrays(subject, t, r)
-    terms = sample_terms(sample, np.arange(sizes.size), r, grid, funcs)
+    # the sample's own order of the readings, (subject, time); the references below sum
+    # over each subject's readings, in which order does not matter
+    terms = sample_terms(sample, np.arange(sizes.size), sample.y, grid, funcs)
     loo = loo_errors(terms, [(lam[:1], s2), (lam[:2], s2)])
     loglik = [evaluate(terms.sums.leading(k), lam[:k], s2, False)[0]
               for k in (1, 2)]
