@@ -7,7 +7,8 @@ outside the hashed spec; record.json names the one that ran.
 
 Dask is optional (``pip install 'reportgen[dask]'``). Its scheduler is, in this order: the
 address given (``--scheduler``), Dask's own ``DASK_SCHEDULER_ADDRESS`` setting, or a
-cluster started in this process (threads as workers, one per core, no dashboard).
+cluster started in this process (threads as workers, one per core; its HTTP server on a
+free port).
 """
 
 from __future__ import annotations
