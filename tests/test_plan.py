@@ -235,3 +235,11 @@ def test_readings_are_ordered_by_time_then_value_within_a_subject() -> None:
     sample = Sample.from_arrays(codes, t, y)
     order = np.lexsort((y, t, codes))
     assert np.array_equal(sample.t, t[order]) and np.array_equal(sample.y, y[order])
+
+
+def test_no_subjects_gathered_is_an_empty_sample(in_process: tuple) -> None:
+    _, parts, _, sample = in_process
+    got, resid = Partitioned.local(parts).gather(np.zeros(0, dtype=np.intp), np.zeros(11),
+                                                 BinGrid(0.0, 10.0, 11))
+    assert got.n_subjects == 0 and got.t.size == 0 and resid.size == 0
+    assert sample.subset(np.zeros(0, dtype=np.intp)).n_subjects == 0

@@ -49,7 +49,7 @@ class Sample:
         """Indices of the readings of the subjects at ``rows`` (in that order), the offset of
         each of those subjects in them, and their reading counts."""
         sizes = self.n_obs[rows].astype(np.intp)
-        offsets = np.concatenate(([0], np.cumsum(sizes)[:-1])).astype(np.intp)
+        offsets = (np.cumsum(sizes) - sizes).astype(np.intp)  # empty for no rows
         index = np.repeat(self.starts[rows] - offsets, sizes) + np.arange(int(sizes.sum()))
         return index, offsets, sizes
 
@@ -76,7 +76,7 @@ class Sample:
             order = np.argsort(subject, kind="stable")
             subject, t, y = subject[order], t[order], y[order]
         n_obs = np.bincount(subject)
-        starts = np.concatenate(([0], np.cumsum(n_obs)[:-1])).astype(np.intp)
+        starts = (np.cumsum(n_obs) - n_obs).astype(np.intp)
         same = subject[1:] == subject[:-1]
         later = (t[1:] < t[:-1]) | ((t[1:] == t[:-1]) & (y[1:] < y[:-1]))
         if np.any(same & later):

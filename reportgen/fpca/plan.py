@@ -303,8 +303,8 @@ class Partitioned:
         held = np.concatenate([f[3] for f in found])  # reading counts, in the parts' order
         order = np.argsort(owner, kind="stable")  # the subjects in code order
         sizes = held[order]
-        starts = np.concatenate(([0], np.cumsum(sizes)[:-1])).astype(np.intp)
-        first = np.concatenate(([0], np.cumsum(held)[:-1])).astype(np.intp)
+        starts = (np.cumsum(sizes) - sizes).astype(np.intp)
+        first = (np.cumsum(held) - held).astype(np.intp)
         index = np.repeat(first[order] - starts, sizes) + np.arange(int(sizes.sum()))
         t, y, r = (np.concatenate([f[k] for f in found])[index] for k in range(3))
         sample = Sample(np.repeat(np.arange(chosen.size), sizes), t, y, starts,
