@@ -19,7 +19,8 @@ from .fpca import FPCAFit, with_bandwidths
 from .fpca._kernels import compiled_on_disk
 from .fpca.components import choose
 from .fpca.design import Sample
-from .fpca.fit import fit_parts
+from .fpca.diagnostics import check_readings
+from .fpca.fit import fit_parts, seeded_sample
 from .fpca.frame import arrays_from_frame
 from .fpca.groups import GroupComparison, compare_groups
 from .fpca.plan import Executor, InProcess, Part, Partitioned, split_parts
@@ -46,14 +47,14 @@ class AnalysisResult:
     dataset: Dataset
     fit: FPCAFit
     sensitivity: tuple[SensitivityRun, ...]
-    residuals: pd.DataFrame  # subject, time, value, fitted, residual, standardized
+    readings: ReadingView  # what the report holds of the readings
     residual_summary: pd.DataFrame  # per subject: n_obs, mean_residual, rms_standardized
     outliers: pd.DataFrame  # subject, distance, flagged
     shown_subjects: tuple[str, ...]
     caveats: tuple[str, ...]
     stable: tuple[bool | None, ...]  # per component; None: no setting could be computed
     factors_note: str  # how the sensitivity factors were chosen
-    spread: float = 0.0  # spread_trend(residuals), computed once
+    spread: float = 0.0  # spread_trend(readings.residuals), computed once
     groups: GroupComparison | None = None  # when the spec names a group column
     subject_groups: tuple[str, ...] = ()  # the group of each of fit.subjects
 
@@ -61,8 +62,7 @@ class AnalysisResult:
     def shown_labels(self) -> np.ndarray:
         """The labels of the shown subjects, in the fit's order (``shown_subjects`` holds
         them as text, in the order chosen)."""
-        as_text = pd.Index(self.fit.subjects).astype(str)
-        return self.fit.subjects[as_text.isin(self.shown_subjects)]
+        return self.fit.subjects[_codes_of(self.fit, self.shown_subjects)]
 
     @property
     def time_label(self) -> str:
@@ -155,35 +155,64 @@ def _sensitivity(data: Partitioned, labels: np.ndarray, fit: FPCAFit, factors: l
     return runs
 
 
-def _residuals(fit: FPCAFit, frame: pd.DataFrame, rows: np.ndarray) -> pd.DataFrame:
-    """Readings minus fitted trajectories, each standardized by its own model variance.
+# The residual diagnostics (figure, spread trend) use the readings of at most this many
+# subjects, a seeded sample above it: at 20 000 subjects (about 10^5 readings) the
+# Spearman correlation's standard error is about 0.003, against a caveat threshold of 0.2.
+DIAGNOSTIC_MAX_SUBJECTS = 20000
 
-    Under the model, y - E[X(t) | y] at a reading has variance sigma^2 - phi(t)' Omega phi(t)
-    (Omega: the subject's score prediction-error covariance; from Var(e) = sigma^4 Sigma^-1
-    for e = sigma^2 Sigma^-1 r, standard Gaussian conditioning), plus the variance of the
-    components K leaves out. Dividing by its square root makes 1 the expected spread: the
-    in-sample residuals are shrunk by design, so sigma alone would understate them.
-    ``rows`` gives each reading's row in ``fit.subjects`` (the codes the fit was given).
+
+@dataclass(frozen=True)
+class ReadingView:
+    """What the report holds of the readings, at a size that does not grow with them.
+
+    Attributes
+    ----------
+    n_readings : int
+    n_sampled : int
+        Subjects in the residual sample: all of them up to DIAGNOSTIC_MAX_SUBJECTS, a seeded
+        sample of that many above it.
+    frame : DataFrame
+        The readings of the sampled and of the shown subjects: subject, time, value,
+        fitted, residual, standardized, sampled (the subject is in the residual sample).
+    density : ndarray
+        All readings counted in equal cells of ``time_axis`` x ``value_axis``
+        (each axis: low, high, cells).
     """
-    t = frame.time.to_numpy()
-    phi = fit.eigenfunctions_at(t)
-    fitted = fit.mean_at(t) + np.einsum("nk,nk->n", phi, fit.score_values[rows])
-    resid = frame.value.to_numpy() - fitted
-    # phi' Omega phi term by term: never an (n_readings, K, K) copy of the covariances
-    quad = np.zeros_like(t)
-    k = fit.n_components
-    for a in range(k):
-        for b in range(a, k):
-            term = phi[:, a] * phi[:, b] * fit.score_cov[rows, a, b]
-            quad += term if a == b else 2.0 * term
-    var = (fit.error_variance - quad + np.interp(t, fit.grid, fit.truncation_variance))
-    sd = np.sqrt(np.maximum(var, 1e-12 * fit.error_variance))
-    # the subject column as it is (Arrow-backed text stays so: to_numpy() would make one
-    # Python string per reading, 0.3 GB at 4.5 million readings)
-    # copy=False: the columns are used as they are (a copy held 0.2 GB more at its peak)
-    return pd.DataFrame({"subject": frame.subject.reset_index(drop=True), "time": t,
-                         "value": frame.value.to_numpy(), "fitted": fitted, "residual": resid,
-                         "standardized": resid / sd}, copy=False)
+
+    n_readings: int
+    n_sampled: int
+    frame: pd.DataFrame
+    density: np.ndarray
+    time_axis: tuple[float, float, int]
+    value_axis: tuple[float, float, int]
+
+    @property
+    def residuals(self) -> pd.DataFrame:
+        """The readings of the residual sample."""
+        return self.frame[self.frame.sampled.to_numpy()]
+
+    def empty(self) -> ReadingView:
+        return replace(self, frame=self.frame.iloc[:0])
+
+
+def _check_readings(data: Partitioned, fit: FPCAFit, shown: np.ndarray
+                    ) -> tuple[ReadingView, pd.DataFrame]:
+    """The pass that holds the fit against every reading (``fpca.diagnostics``): the
+    per-subject residual summary and what the report shows of the readings. ``shown``:
+    the codes of the shown subjects."""
+    sampled = seeded_sample(fit.n_subjects, DIAGNOSTIC_MAX_SUBJECTS, fit.options.seed)
+    chosen = np.union1d(sampled, shown).astype(np.intp)
+    found = check_readings(data, fit.score_values, fit.score_cov, fit.predictor(), chosen)
+    n = found.n_obs
+    summary = pd.DataFrame({"subject": fit.subjects, "n_obs": n,
+                            "mean_residual": found.residual_sum / n,
+                            "rms_standardized": np.sqrt(found.squared_standardized_sum / n)})
+    codes = found.readings["subject"]
+    frame = pd.DataFrame({**found.readings, "subject": fit.subjects[codes],
+                          "sampled": np.isin(codes, sampled)})
+    view = ReadingView(int(n.sum()), int(sampled.size), frame, found.density,
+                       found.time_axis, found.value_axis)
+    return view, summary
 
 
 def spread_trend(residuals: pd.DataFrame) -> float:
@@ -227,18 +256,6 @@ def average_ranks(x: np.ndarray) -> np.ndarray:
     return ranks
 
 
-def _residual_summary(residuals: pd.DataFrame, rows: np.ndarray, subjects: np.ndarray
-                      ) -> pd.DataFrame:
-    """Per subject (in the fit's order, ``rows`` giving each reading's): readings, mean
-    residual and root mean square standardized residual. Sums by subject code, not a
-    group-by on 4.5 million text ids (0.8 s)."""
-    n = np.bincount(rows, minlength=subjects.size)
-    mean = np.bincount(rows, residuals.residual.to_numpy(), subjects.size) / n
-    ms = np.bincount(rows, residuals.standardized.to_numpy() ** 2, subjects.size) / n
-    return pd.DataFrame({"subject": subjects, "n_obs": n, "mean_residual": mean,
-                         "rms_standardized": np.sqrt(ms)})
-
-
 def _outliers(fit: FPCAFit, quantile: float) -> pd.DataFrame:
     """Squared Mahalanobis distance of the scores under N(0, Lambda), flagged above the
     chi-square(K) quantile (rule stated in the report)."""
@@ -263,6 +280,12 @@ def _shown(fit: FPCAFit, spec: Spec) -> tuple[str, ...]:
     return tuple(chosen)
 
 
+def _codes_of(fit: FPCAFit, shown: tuple[str, ...]) -> np.ndarray:
+    """The codes (rows of ``fit.subjects``) of the subjects shown, named as text."""
+    as_text = pd.Index(fit.subjects).astype(str)
+    return np.flatnonzero(as_text.isin(shown)).astype(np.intp)
+
+
 def _by_readings_then_id(n_obs: np.ndarray, subjects: np.ndarray) -> np.ndarray:
     """Row order by (readings, id as text); the ids usually come sorted already (the fit
     sorts its labels), and then it is one stable sort of the counts, not a sort of a
@@ -274,7 +297,7 @@ def _by_readings_then_id(n_obs: np.ndarray, subjects: np.ndarray) -> np.ndarray:
 
 
 def _caveats(spec: Spec, ds: Dataset, fit: FPCAFit, runs: list[SensitivityRun],
-             stable: list[bool | None], residuals: pd.DataFrame, rho: float) -> list[str]:
+             stable: list[bool | None], n_residuals: int, rho: float) -> list[str]:
     out = [w[:1].upper() + w[1:] + ("" if w.endswith(".") else ".") for w in fit.warnings]
     for c in ds.checks:
         if c.name == "time-pair coverage" and c.status == "warn":
@@ -288,7 +311,7 @@ def _caveats(spec: Spec, ds: Dataset, fit: FPCAFit, runs: list[SensitivityRun],
                    "estimated as the difference of two smoothed variances, which is imprecise "
                    "when differences between subjects dominate: read it, and the width of the "
                    "bands, with the sensitivity table.")
-    if rho > max(0.2, 3.0 / np.sqrt(len(residuals))):
+    if rho > max(0.2, 3.0 / np.sqrt(n_residuals)):
         out.append(f"The spread of the residuals grows with the fitted value (Spearman "
                    f"correlation of |standardized residual| with the fitted value {rho:.2f}): "
                    "the error is not of constant size. A log transform of the values "
@@ -435,7 +458,9 @@ def analyse(spec: Spec, ds: Dataset, progress: Progress = lambda _: None,
     stable: list[bool | None] = [
         all(np.nan_to_num(r.similarity[k]) >= threshold for r in computed) if computed else None
         for k in range(fit.n_components)]
-    residuals = _residuals(fit, ds.frame, codes)
+    shown = _shown(fit, spec)
+    progress("diagnostics")
+    view, summary = _check_readings(data, fit, _codes_of(fit, shown))
     groups: GroupComparison | None = None
     subject_groups: tuple[str, ...] = ()
     if "group" in ds.frame:
@@ -444,16 +469,15 @@ def analyse(spec: Spec, ds: Dataset, progress: Progress = lambda _: None,
         subject_groups = tuple(str(g) for g in per.reindex(fit.subjects).to_numpy())
         groups = compare_groups(fit, codes, t, y, np.asarray(subject_groups))
         lap("groups")
-    rho = spread_trend(residuals)  # 1.3 s at 4.5 million readings: once, here
-    caveats = (_caveats(spec, ds, fit, runs, stable, residuals, rho)
+    sampled = view.residuals
+    rho = spread_trend(sampled)
+    caveats = (_caveats(spec, ds, fit, runs, stable, len(sampled), rho)
                + _group_caveats(groups, fit))
-    summary = _residual_summary(residuals, codes, fit.subjects)
     outliers = _outliers(fit, spec.subjects["outlier_quantile"])
-    shown = _shown(fit, spec)
     lap("diagnostics")
     return AnalysisResult(
         spec=spec, dataset=ds, fit=fit, sensitivity=tuple(runs),
-        residuals=residuals, residual_summary=summary, outliers=outliers,
+        readings=view, residual_summary=summary, outliers=outliers,
         shown_subjects=shown, caveats=tuple(caveats), stable=tuple(stable),
         factors_note=factors_note, spread=rho, groups=groups, subject_groups=subject_groups,
     )

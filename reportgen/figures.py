@@ -21,6 +21,7 @@ from cycler import cycler
 from scipy.special import ndtri
 
 from .analysis import AnalysisResult
+from .fpca.diagnostics import axis, cell_counts
 
 PALETTE = ("#1f5f8b", "#c0632b", "#3f8f4f", "#8a3f8f", "#7a7a2a", "#2a7a7a")
 STYLE = {
@@ -149,31 +150,33 @@ def _density(ax: Any, x: np.ndarray, y: np.ndarray, cells: tuple[int, int]) -> N
     """Counts of points in a grid of ``cells`` (x by y) over their range, drawn as a grey
     image with empty cells left white: one bincount, so that millions of points cost a
     fraction of a second and no more memory than two index arrays."""
-    index = np.zeros(x.size, dtype=np.intp)
-    edges = []
-    for values, n in ((x, cells[0]), (y, cells[1])):
-        lo, hi = float(values.min()), float(values.max())
-        if not hi > lo:
-            lo, hi = lo - 0.5, hi + 0.5
-        cell = ((values - lo) * (n / (hi - lo))).astype(np.intp)
-        index = index * n + np.minimum(cell, n - 1)
-        edges.append(np.linspace(lo, hi, n + 1))
-    counts = np.bincount(index, minlength=cells[0] * cells[1]).reshape(cells).astype(float)
-    counts[counts == 0] = np.nan
-    ax.pcolormesh(edges[0], edges[1], counts.T, cmap="Greys", shading="flat",
-                  rasterized=True)
+    axes = tuple(axis(float(v.min()), float(v.max()), n) for v, n in ((x, cells[0]),
+                                                                        (y, cells[1])))
+    _draw_counts(ax, cell_counts(x, y, axes), axes)
+
+
+def _draw_counts(ax: Any, counts: np.ndarray, axes: tuple[tuple[float, float, int], ...]
+                 ) -> None:
+    """Counts in equal cells (each axis: low, high, cells) as a grey image, empty cells
+    white."""
+    shown = counts.astype(float)
+    shown[shown == 0] = np.nan
+    edges = [np.linspace(lo, hi, n + 1) for lo, hi, n in axes]
+    ax.pcolormesh(edges[0], edges[1], shown.T, cmap="Greys", shading="flat", rasterized=True)
 
 
 def _mean(r: AnalysisResult) -> Figure:
-    fit, frame, g = r.fit, r.dataset.frame, r.fit.grid
+    fit, view, g = r.fit, r.readings, r.fit.grid
     fig, ax = plt.subplots(figsize=(6, 3.2))
-    if len(frame) > MAX_POINTS:
-        _density(ax, frame.time.to_numpy(), frame.value.to_numpy(), (60, 40))
-        ax.plot([], [], "s", color="#888", label=f"readings (density of {len(frame):,})")
+    n = view.n_readings
+    if n > MAX_POINTS:  # counted where the readings are (fpca.diagnostics)
+        _draw_counts(ax, view.density, (view.time_axis, view.value_axis))
+        ax.plot([], [], "s", color="#888", label=f"readings (density of {n:,})")
         drawn = "the density of all readings (grey cells; darker holds more)"
-    else:
+    else:  # then every subject is in the residual sample: the frame holds every reading
+        frame = view.residuals
         ax.scatter(frame.time, frame.value, s=5, color="#777", alpha=0.5, linewidths=0,
-                   rasterized=True, label=f"readings ({len(frame):,})")
+                   rasterized=True, label=f"readings ({n:,})")
         drawn = "every reading (grey points)"
     z, zs = fit.band_multiplier(), fit.mean_simultaneous_multiplier
     level = _level(r)
@@ -297,10 +300,10 @@ def _effects(r: AnalysisResult) -> Figure:
 
 
 def _trajectories(r: AnalysisResult) -> Figure:
-    fit, frame = r.fit, r.dataset.frame
+    fit, frame = r.fit, r.readings.frame
     tl, vl, level = _time_label(r), _value_label(r), _level(r)
     shown = list(r.shown_subjects)
-    readings = frame[frame.subject.isin(shown)]  # one pass over the readings, not one a subject
+    readings = frame[frame.subject.astype(str).isin(shown)]
     traj = fit.trajectories(list(r.shown_labels))
     n = max(len(shown), 1)
     cols = min(n, 3)
@@ -329,7 +332,7 @@ def _trajectories(r: AnalysisResult) -> Figure:
 
 
 def _residuals(r: AnalysisResult) -> Figure:
-    res, tl, vl = r.residuals, _time_label(r), _value_label(r)
+    res, tl, vl = r.readings.residuals, _time_label(r), _value_label(r)
     fig, axes = plt.subplots(1, 3, figsize=(6.6, 2.4))
     for ax, xcol, xl in ((axes[0], "time", tl), (axes[1], "fitted", "fitted " + vl)):
         if len(res) > MAX_POINTS:
@@ -348,9 +351,12 @@ def _residuals(r: AnalysisResult) -> Figure:
     axes[2].plot(theo, theo, color="#888", linewidth=0.8)
     axes[2].set_xlabel("normal quantile")
     axes[2].set_ylabel("residual quantile")
+    view, n = r.readings, r.fit.n_subjects
+    of = ("" if view.n_sampled == n else f" Drawn from the {len(res):,} readings of a seeded "
+          f"sample of {view.n_sampled:,} of the {n:,} subjects.")
     return (fig, "Standardized residuals (reading minus fitted trajectory, over its own "
             "standard deviation under the fitted model) against time and fitted value, and a "
-            "normal quantile plot.",
+            "normal quantile plot." + of,
             "Three panels: residuals against time, against fitted values, and a normal "
             "quantile plot.")
 

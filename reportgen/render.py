@@ -280,12 +280,21 @@ def _section_residuals(c: _Context) -> None:
            "expected when the model fits. Per subject, the root mean square of the "
            f"standardized residuals has median {rms.median():.3g} and 90th percentile "
            f"{rms.quantile(0.9):.3g}; the Spearman correlation of their size with the fitted "
-           f"value is {result.spread:.2f} (near 0 expected). The full list is "
-           "tables/residuals_by_subject.csv.")
+           f"value is {result.spread:.2f} (near 0 expected{_over_sample(result)}). The full "
+           "list is tables/residuals_by_subject.csv.")
     b.table(s, f"The {len(worst)} subjects with the largest RMS standardized residual.",
             ["subject", "readings", "mean residual", "RMS standardized"],
             [[r.subject, r.n_obs, r.mean_residual, r.rms_standardized]
              for r in worst.itertuples()])
+
+
+def _over_sample(result: AnalysisResult) -> str:
+    """Where the residual diagnostics use a sample of subjects, say so."""
+    view, n = result.readings, result.fit.n_subjects
+    if view.n_sampled == n:
+        return ""
+    return (f"; over the {len(view.residuals):,} readings of a seeded sample of "
+            f"{view.n_sampled:,} of the {n:,} subjects")
 
 
 def _section_sensitivity(c: _Context) -> None:

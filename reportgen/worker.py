@@ -67,7 +67,7 @@ def summary_view(result: AnalysisResult) -> AnalysisResult:
                  for r in result.sensitivity)
     return replace(result, dataset=replace(ds, frame=ds.frame.iloc[:0]),
                    fit=result.fit.without_subjects(), sensitivity=runs,
-                   residuals=result.residuals.iloc[:0],
+                   readings=result.readings.empty(),
                    residual_summary=result.residual_summary.iloc[:0],
                    outliers=result.outliers.iloc[:0])
 

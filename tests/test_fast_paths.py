@@ -1,6 +1,6 @@
 """The faster paths for large data give what the general-purpose libraries give.
 
-References, beside each test: pandas (``DataFrame.duplicated``, ``groupby``), scipy.stats
+References, beside each test: pandas (``DataFrame.duplicated``), scipy.stats
 (``rankdata``, ``spearmanr``) and Python's ``sorted``.
 """
 
@@ -12,7 +12,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from reportgen.analysis import _by_readings_then_id, _residual_summary, average_ranks, spread_trend
+from reportgen.analysis import _by_readings_then_id, average_ranks, spread_trend
 from reportgen.data import duplicate_mask
 from reportgen.fpca import FPCAOptions, fit_arrays
 
@@ -82,22 +82,6 @@ def test_order_by_readings_then_id() -> None:
         n = rng.integers(1, 6, labels.size)
         expected = [s for _, s in sorted(zip(n, map(str, labels), strict=True))]
         assert [str(labels[i]) for i in _by_readings_then_id(n, labels)] == expected
-
-
-# pandas groupby(...).agg(size, mean): the summary's definition before its rewrite
-def test_residual_summary_matches_groupby() -> None:
-    rng = np.random.default_rng(5)
-    subjects = np.array(sorted(f"p{i}" for i in range(400)), dtype=object)
-    rows = np.repeat(np.arange(400), rng.integers(1, 7, 400))
-    frame = pd.DataFrame({"subject": subjects[rows], "residual": rng.normal(size=rows.size),
-                          "standardized": rng.normal(size=rows.size)})
-    got = _residual_summary(frame, rows, subjects)
-    ref = frame.assign(sq=frame.standardized ** 2).groupby("subject").agg(
-        n_obs=("residual", "size"), mean_residual=("residual", "mean"), ms=("sq", "mean"))
-    assert list(got.subject) == list(ref.index)
-    assert np.array_equal(got.n_obs, ref.n_obs)
-    np.testing.assert_allclose(got.mean_residual, ref.mean_residual, rtol=1e-12, atol=1e-15)
-    np.testing.assert_allclose(got.rms_standardized, np.sqrt(ref.ms), rtol=1e-12)
 
 
 def test_a_fit_without_scores_has_the_same_population_parts() -> None:

@@ -243,3 +243,77 @@ def test_no_subjects_gathered_is_an_empty_sample(in_process: tuple) -> None:
                                                  BinGrid(0.0, 10.0, 11))
     assert got.n_subjects == 0 and got.t.size == 0 and resid.size == 0
     assert sample.subset(np.zeros(0, dtype=np.intp)).n_subjects == 0
+
+
+# --- the diagnostics pass (fpca.diagnostics) ----------------------------------------------
+
+
+def _checks_on(executor: object, parts: list, fit: FPCAFit, chosen: np.ndarray) -> object:
+    from reportgen.fpca.diagnostics import check_readings
+
+    data = Partitioned.of(executor, executor.place(parts))  # type: ignore[attr-defined]
+    return check_readings(data, fit.score_values, fit.score_cov, fit.predictor(), chosen)
+
+
+CHOSEN = np.array([0, 3, 4, 17, 250, 299])
+
+
+def test_the_diagnostics_pass_gives_the_definitions(in_process: tuple) -> None:
+    import pandas as pd
+
+    fit, parts, _, sample = in_process
+    got = _checks_on(InProcess(), parts, fit, CHOSEN)
+    # the definitions on the whole sample, through the fit's own methods and numpy's einsum
+    codes, t, y = sample.subject, sample.t, sample.y
+    phi = fit.eigenfunctions_at(t)
+    fitted = fit.mean_at(t) + np.einsum("nk,nk->n", phi, fit.score_values[codes])
+    var = (fit.error_variance - np.einsum("nk,nkl,nl->n", phi, fit.score_cov[codes], phi)
+           + np.interp(t, fit.grid, fit.truncation_variance))
+    std = (y - fitted) / np.sqrt(var)
+    # pandas groupby: the per-subject summary's definition
+    by = pd.DataFrame({"s": codes, "r": y - fitted, "q": std**2}).groupby("s")
+    np.testing.assert_allclose(got.residual_sum, by.r.sum(), rtol=1e-10, atol=1e-12)
+    np.testing.assert_allclose(got.squared_standardized_sum, by.q.sum(), rtol=1e-10)
+    assert np.array_equal(got.n_obs, np.bincount(codes))
+    # numpy.histogram2d over the data's range: the density's definition
+    (t0, t1, nt), (y0, y1, ny) = got.time_axis, got.value_axis
+    assert (t0, t1, y0, y1) == (t.min(), t.max(), y.min(), y.max())
+    ref, _, _ = np.histogram2d(t, y, bins=(np.linspace(t0, t1, nt + 1),
+                                           np.linspace(y0, y1, ny + 1)))
+    assert np.array_equal(got.density, ref)
+    # the chosen subjects' readings, in code order
+    index, _, _ = sample.reading_index(CHOSEN)
+    assert np.array_equal(got.chosen, CHOSEN)
+    assert np.array_equal(got.readings["subject"], codes[index])
+    for name, want in (("time", t), ("value", y), ("fitted", fitted), ("standardized", std)):
+        np.testing.assert_allclose(got.readings[name], want[index], rtol=1e-10, err_msg=name)
+
+
+def test_the_diagnostics_pass_gives_the_same_bits(on_dask: object, in_process: tuple) -> None:
+    fit, parts, _, _ = in_process
+    here, there = (_checks_on(e, parts, fit, CHOSEN) for e in (InProcess(), on_dask))
+    for name in ("n_obs", "residual_sum", "squared_standardized_sum", "density", "chosen"):
+        assert getattr(here, name).tobytes() == getattr(there, name).tobytes(), name
+    assert here.time_axis == there.time_axis and here.value_axis == there.value_axis
+    for name, values in here.readings.items():
+        assert values.tobytes() == there.readings[name].tobytes(), name
+
+
+def test_the_diagnostics_bring_back_no_more_with_more_readings() -> None:
+    # per subject and per cell only, plus the chosen subjects' readings
+    from reportgen.fpca.diagnostics import check_readings
+
+    returned = []
+    for low, high in ((2, 5), (6, 12)):
+        data = yao_design(300, seed=11, min_obs=low, max_obs=high)
+        codes = data.id.to_numpy(dtype=np.intp)
+        parts = split_parts(codes, data.t.to_numpy(), data.y.to_numpy(), codes % N_PARTS,
+                            N_PARTS)
+        fit = fit_parts(Partitioned.local(parts), np.arange(300),
+                        replace(OPTIONS, band="plugin", component_rule="fixed", n_components=2))
+        counting = _Counting()
+        found = check_readings(Partitioned.of(counting, parts), fit.score_values,
+                               fit.score_cov, fit.predictor(), CHOSEN)
+        kept = int(found.readings["time"].size)
+        returned.append(counting.returned["part_checks"] - 5 * kept)
+    assert returned[0] == returned[1]

@@ -567,7 +567,7 @@ def _fit(data: Partitioned, labels: np.ndarray, options: FPCAOptions, population
 
     # 4. likelihood refinement of (lambda_1..K', sigma^2) with the eigenfunctions fixed
     k_ref = _refined_count(eig, options)
-    used = _likelihood_sample(n_subjects, REFINE_MAX_SUBJECTS, options.seed)
+    used = seeded_sample(n_subjects, REFINE_MAX_SUBJECTS, options.seed)
     chosen, chosen_resid = data.gather(used, fine, mbins)
     terms = sample_terms(chosen, np.arange(used.size, dtype=np.intp), chosen_resid, grid,
                          eig.functions[:, :k_ref])
@@ -708,7 +708,7 @@ def _refined_count(eig: Eigen, options: FPCAOptions) -> int:
 REFINE_MAX_SUBJECTS = 20000
 
 
-def _likelihood_sample(n_subjects: int, cap: int, seed: int) -> IntArray:
+def seeded_sample(n_subjects: int, cap: int, seed: int) -> IntArray:
     """All subjects, or a seeded sample of ``cap`` of them (sorted)."""
     if n_subjects <= cap:
         return np.arange(n_subjects, dtype=np.intp)
@@ -804,7 +804,7 @@ def _select_components(
     cum = np.cumsum(fve)[:k_max]
     n_used = terms.sums.rr.size
     if n_used > options.criteria_max_subjects:
-        keep = _likelihood_sample(n_used, options.criteria_max_subjects, options.seed)
+        keep = seeded_sample(n_used, options.criteria_max_subjects, options.seed)
         terms = terms.subjects(keep)
     params: list[tuple[FloatArray, float]] = []
     loglik = np.empty(k_max)

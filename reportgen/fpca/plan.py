@@ -12,12 +12,13 @@ An :class:`Executor` runs the passes: :class:`InProcess` here, one part after an
 the Dask engine (``reportgen.engine``) on a cluster. A data set that is one part gives
 exactly the sums of the whole sample (the tree of one part is that part).
 
-Passes of a fit: (0) ``summary`` (subject codes and reading counts, time range); (1)
-``reading_sums`` (binned readings per fold, for the mean); (2) ``residual_sums`` (binned
-raw covariances against the mean, and the sums that check the residuals' size); then, on
-a seeded sample of subjects, ``gather`` (their readings, for the likelihood); (3)
-``part_scores`` (each subject's conditional expectation). Resampled parts for corrected
-bands are made where the parts live (``resampled``).
+Passes of a fit: (0) ``summary`` (subject codes and reading counts, time and value
+ranges); (1) ``reading_sums`` (binned readings per fold, for the mean); (2)
+``residual_sums`` (binned raw covariances against the mean, and the sums that check the
+residuals' size); then, on a seeded sample of subjects, ``gather`` (their readings, for the
+likelihood); (3) ``part_scores`` (each subject's conditional expectation). Resampled parts
+for corrected bands are made where the parts live (``resampled``). After the fit, the
+report's diagnostics are one more pass (``diagnostics.check_readings``).
 """
 
 from __future__ import annotations
@@ -125,6 +126,18 @@ def tree_sum(items: Sequence[T], add: Callable[[T, T], T]) -> T:
     return level[0]
 
 
+def in_code_order(owner: IntArray, held: IntArray) -> tuple[IntArray, IntArray]:
+    """Readings gathered from the parts, subject after subject in the parts' order
+    (``owner``: each subject's code, ``held``: its reading count), put in code order: the
+    index into the concatenated readings, and the counts in that order."""
+    order = np.argsort(owner, kind="stable")
+    sizes = held[order].astype(np.intp)
+    first = (np.cumsum(held) - held).astype(np.intp)
+    index = np.repeat(first[order] - (np.cumsum(sizes) - sizes), sizes) + np.arange(
+        int(sizes.sum()))
+    return index, sizes
+
+
 def _add_binned(a: BinnedStats, b: BinnedStats) -> BinnedStats:
     return BinnedStats(a.counts + b.counts, a.sums + b.sums, a.sumsq + b.sumsq, a.n + b.n)
 
@@ -140,10 +153,11 @@ def _add_pairs(a: tuple[PairStats, FloatArray], b: tuple[PairStats, FloatArray]
 # --- the passes (module-level functions: a cluster ships them by name) -------------------
 
 
-def summary(part: Part) -> tuple[IntArray, IntArray, float, float]:
-    """Pass 0: the part's subject codes, their reading counts, and its time range."""
-    t = part.sample.t
-    return part.subjects, part.sample.n_obs, float(t.min()), float(t.max())
+def summary(part: Part) -> tuple[IntArray, IntArray, float, float, float, float]:
+    """Pass 0: the part's subject codes, their reading counts, its time and value ranges."""
+    t, y = part.sample.t, part.sample.y
+    return (part.subjects, part.sample.n_obs, float(t.min()), float(t.max()), float(y.min()),
+            float(y.max()))
 
 
 def outside(part: Part, lo: float, hi: float) -> int:
@@ -238,7 +252,8 @@ class Partitioned:
         The subject codes of each part.
     n_obs : ndarray of shape (n_subjects,)
         Readings per subject, by code.
-    t_min, t_max : float
+    t_min, t_max, y_min, y_max : float
+        The ranges of the times and of the values.
     """
 
     executor: Executor
@@ -247,6 +262,8 @@ class Partitioned:
     n_obs: IntArray
     t_min: float
     t_max: float
+    y_min: float
+    y_max: float
 
     @classmethod
     def of(cls, executor: Executor, parts: Sequence[Any]) -> Partitioned:
@@ -265,7 +282,8 @@ class Partitioned:
             raise EstimationError(f"subject code {code} is in {int(seen[code])} parts: each "
                                   "subject's readings must lie in exactly one part")
         return cls(executor, parts, tuple(f[0] for f in found), n_obs,
-                   min(f[2] for f in found), max(f[3] for f in found))
+                   min(f[2] for f in found), max(f[3] for f in found),
+                   min(f[4] for f in found), max(f[5] for f in found))
 
     @classmethod
     def local(cls, parts: list[Part]) -> Partitioned:
@@ -305,15 +323,10 @@ class Partitioned:
         found = self.executor.map(gather, self.parts, asks, (fine, mean_grid))
         owner = np.concatenate([codes[rows] for codes, (rows,) in zip(self.subjects, asks,
                                                                       strict=True)])
-        held = np.concatenate([f[3] for f in found])  # reading counts, in the parts' order
-        order = np.argsort(owner, kind="stable")  # the subjects in code order
-        sizes = held[order]
-        starts = (np.cumsum(sizes) - sizes).astype(np.intp)
-        first = (np.cumsum(held) - held).astype(np.intp)
-        index = np.repeat(first[order] - starts, sizes) + np.arange(int(sizes.sum()))
+        index, sizes = in_code_order(owner, np.concatenate([f[3] for f in found]))
         t, y, r = (np.concatenate([f[k] for f in found])[index] for k in range(3))
-        sample = Sample(np.repeat(np.arange(chosen.size), sizes), t, y, starts,
-                        sizes.astype(np.intp))
+        starts = (np.cumsum(sizes) - sizes).astype(np.intp)
+        sample = Sample(np.repeat(np.arange(chosen.size), sizes), t, y, starts, sizes)
         return sample, r
 
     def scores(self, fine: FloatArray, mean_grid: BinGrid, grid: FloatArray,
@@ -350,6 +363,6 @@ class Partitioned:
         kept = [i for i, (rows, _) in enumerate(asks) if rows.size]
         parts = self.executor.keep(resampled, [self.parts[i] for i in kept],
                                    [asks[i] for i in kept])
-        # the time range is the original's (a resample is fitted on a fixed domain)
+        # the ranges are the original's (a resample is fitted on a fixed domain)
         return Partitioned(self.executor, parts, tuple(asks[i][1] for i in kept),
-                           self.n_obs[drawn], self.t_min, self.t_max)
+                           self.n_obs[drawn], self.t_min, self.t_max, self.y_min, self.y_max)
