@@ -22,7 +22,7 @@ from .fpca.design import Sample
 from .fpca.diagnostics import check_readings
 from .fpca.fit import fit_parts, seeded_sample
 from .fpca.frame import arrays_from_frame
-from .fpca.groups import GroupComparison, compare_groups
+from .fpca.groups import GroupComparison, compare_groups_on
 from .fpca.plan import Executor, InProcess, Part, Partitioned, split_parts
 from .fpca.smoothing import trapezoid_weights
 from .spec import Spec
@@ -51,18 +51,13 @@ class AnalysisResult:
     residual_summary: pd.DataFrame  # per subject: n_obs, mean_residual, rms_standardized
     outliers: pd.DataFrame  # subject, distance, flagged
     shown_subjects: tuple[str, ...]
+    trajectories: pd.DataFrame  # of the shown subjects, in the fit's order (FPCAFit.trajectories)
     caveats: tuple[str, ...]
     stable: tuple[bool | None, ...]  # per component; None: no setting could be computed
     factors_note: str  # how the sensitivity factors were chosen
     spread: float = 0.0  # spread_trend(readings.residuals), computed once
     groups: GroupComparison | None = None  # when the spec names a group column
     subject_groups: tuple[str, ...] = ()  # the group of each of fit.subjects
-
-    @property
-    def shown_labels(self) -> np.ndarray:
-        """The labels of the shown subjects, in the fit's order (``shown_subjects`` holds
-        them as text, in the order chosen)."""
-        return self.fit.subjects[_codes_of(self.fit, self.shown_subjects)]
 
     @property
     def time_label(self) -> str:
@@ -196,10 +191,10 @@ class ReadingView:
 
 
 def _check_readings(data: Partitioned, fit: FPCAFit, shown: np.ndarray
-                    ) -> tuple[ReadingView, pd.DataFrame]:
-    """The pass that holds the fit against every reading (``fpca.diagnostics``): the
-    per-subject residual summary and what the report shows of the readings. ``shown``:
-    the codes of the shown subjects."""
+                    ) -> tuple[ReadingView, pd.DataFrame, pd.DataFrame]:
+    """The pass that holds the fit against every reading (``fpca.diagnostics``): what the
+    report shows of the readings, the per-subject residual summary, and the trajectories
+    of the shown subjects (``shown``: their codes, increasing) from their readings."""
     sampled = seeded_sample(fit.n_subjects, DIAGNOSTIC_MAX_SUBJECTS, fit.options.seed)
     chosen = np.union1d(sampled, shown).astype(np.intp)
     found = check_readings(data, fit.score_values, fit.score_cov, fit.predictor(), chosen)
@@ -212,7 +207,11 @@ def _check_readings(data: Partitioned, fit: FPCAFit, shown: np.ndarray
                           "sampled": np.isin(codes, sampled)})
     view = ReadingView(int(n.sum()), int(sampled.size), frame, found.density,
                        found.time_axis, found.value_axis)
-    return view, summary
+    mine = np.isin(codes, shown)
+    readings = Sample.from_arrays(np.searchsorted(shown, codes[mine]),
+                                  found.readings["time"][mine], found.readings["value"][mine])
+    trajectories = fit.trajectories(list(fit.subjects[shown]), readings=readings)
+    return view, summary, trajectories
 
 
 def spread_trend(residuals: pd.DataFrame) -> float:
@@ -421,13 +420,10 @@ STANDARD_CAUTIONS = (
 )
 
 
-def _parts(ds: Dataset, codes: np.ndarray, t: np.ndarray, y: np.ndarray
-           ) -> tuple[list[Part], Sample]:
-    """The readings as the fit's parts (one per data file), and all of them as one sample
-    (the same arrays when there is one file)."""
+def _parts(ds: Dataset, codes: np.ndarray, t: np.ndarray, y: np.ndarray) -> list[Part]:
+    """The readings as the fit's parts (one per data file)."""
     part = ds.frame["part"].to_numpy(dtype=np.intp) if "part" in ds.frame else None
-    parts = split_parts(codes, t, y, part, max(len(ds.parts), 1))
-    return parts, parts[0].sample if len(parts) == 1 else Sample.from_arrays(codes, t, y)
+    return split_parts(codes, t, y, part, max(len(ds.parts), 1))
 
 
 def analyse(spec: Spec, ds: Dataset, progress: Progress = lambda _: None,
@@ -444,11 +440,11 @@ def analyse(spec: Spec, ds: Dataset, progress: Progress = lambda _: None,
         progress("compiling the numerical kernels (once, about half a minute on 2 cores; "
                  "later runs load them from the cache)")
     progress("fit")
-    parts, sample = _parts(ds, codes, t, y)
+    parts = _parts(ds, codes, t, y)
     run_on = executor or InProcess()
     data = Partitioned.of(run_on, run_on.place(parts))
     del parts
-    fit = fit_parts(data, labels, spec.options, sample=sample)
+    fit = fit_parts(data, labels, spec.options)  # the shown subjects' readings come later
     lap("fit")
     factors, factors_note = sensitivity_factors(spec, fit)
     runs = _sensitivity(data, labels, fit, factors, progress)
@@ -460,14 +456,14 @@ def analyse(spec: Spec, ds: Dataset, progress: Progress = lambda _: None,
         for k in range(fit.n_components)]
     shown = _shown(fit, spec)
     progress("diagnostics")
-    view, summary = _check_readings(data, fit, _codes_of(fit, shown))
+    view, summary, trajectories = _check_readings(data, fit, _codes_of(fit, shown))
     groups: GroupComparison | None = None
     subject_groups: tuple[str, ...] = ()
     if "group" in ds.frame:
         progress("groups")
         per = ds.frame.drop_duplicates("subject").set_index("subject")["group"]
         subject_groups = tuple(str(g) for g in per.reindex(fit.subjects).to_numpy())
-        groups = compare_groups(fit, codes, t, y, np.asarray(subject_groups))
+        groups = compare_groups_on(data, fit, np.asarray(subject_groups))
         lap("groups")
     sampled = view.residuals
     rho = spread_trend(sampled)
@@ -478,6 +474,7 @@ def analyse(spec: Spec, ds: Dataset, progress: Progress = lambda _: None,
     return AnalysisResult(
         spec=spec, dataset=ds, fit=fit, sensitivity=tuple(runs),
         readings=view, residual_summary=summary, outliers=outliers,
+        trajectories=trajectories,
         shown_subjects=shown, caveats=tuple(caveats), stable=tuple(stable),
         factors_note=factors_note, spread=rho, groups=groups, subject_groups=subject_groups,
     )

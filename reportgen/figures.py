@@ -300,11 +300,11 @@ def _effects(r: AnalysisResult) -> Figure:
 
 
 def _trajectories(r: AnalysisResult) -> Figure:
-    fit, frame = r.fit, r.readings.frame
+    frame = r.readings.frame
     tl, vl, level = _time_label(r), _value_label(r), _level(r)
     shown = list(r.shown_subjects)
     readings = frame[frame.subject.astype(str).isin(shown)]
-    traj = fit.trajectories(list(r.shown_labels))
+    traj = r.trajectories
     n = max(len(shown), 1)
     cols = min(n, 3)
     rows = int(np.ceil(n / cols))

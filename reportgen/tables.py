@@ -109,7 +109,7 @@ def build_tables(result: AnalysisResult) -> dict[str, pd.DataFrame]:
     scores["subject"] = scores["subject"].astype(str)
     scores["distance2"] = result.outliers.distance2.to_numpy()
     scores["flagged"] = result.outliers.flagged.to_numpy()
-    trajectories = fit.trajectories(list(result.shown_labels))
+    trajectories = result.trajectories.copy()
     if result.groups is not None:
         group_of = dict(zip(map(str, fit.subjects), result.subject_groups, strict=True))
         scores.insert(1, "group", list(result.subject_groups))

@@ -317,3 +317,42 @@ def test_the_diagnostics_bring_back_no_more_with_more_readings() -> None:
         kept = int(found.readings["time"].size)
         returned.append(counting.returned["part_checks"] - 5 * kept)
     assert returned[0] == returned[1]
+
+
+# --- group means as passes (fpca.groups) ----------------------------------------------------
+
+
+def _groups_of(n: int) -> np.ndarray:
+    # three groups; "c" holds subjects of one part only, so the other parts have none of it
+    part = (np.arange(n) * 7 + np.arange(n) // 13) % N_PARTS
+    return np.where(part == 0, np.where(np.arange(n) % 2 == 0, "c", "a"),
+                    np.where(np.arange(n) % 3 == 0, "a", "b"))
+
+
+def test_group_means_over_parts_are_those_of_the_whole_sample(readings: tuple,
+                                                              in_process: tuple) -> None:
+    from reportgen.fpca.groups import compare_groups, compare_groups_on
+
+    codes, t, y, _ = readings
+    fit, parts, _, _ = in_process
+    groups = _groups_of(fit.n_subjects)
+    many = compare_groups_on(Partitioned.local(parts), fit, groups)
+    whole = compare_groups(fit, codes, t, y, groups)
+    assert many.labels == whole.labels == ("a", "b", "c")
+    # sums added in another order: rounding only (common practice, no source)
+    np.testing.assert_allclose(many.means, whole.means, rtol=1e-10)
+    np.testing.assert_allclose(many.mean_se, whole.mean_se, rtol=1e-8)
+    assert (many.statistic, many.p_value) == (whole.statistic, whole.p_value)
+
+
+def test_group_means_on_a_dask_cluster_give_the_same_bits(on_dask: object, in_process: tuple
+                                                          ) -> None:
+    from reportgen.fpca.groups import compare_groups_on
+
+    fit, parts, _, _ = in_process
+    groups = _groups_of(fit.n_subjects)
+    here = compare_groups_on(Partitioned.local(parts), fit, groups)
+    there = compare_groups_on(Partitioned.of(on_dask, on_dask.place(parts)),  # type: ignore[attr-defined]
+                              fit, groups)
+    assert here.means.tobytes() == there.means.tobytes()
+    assert here.mean_se.tobytes() == there.mean_se.tobytes()

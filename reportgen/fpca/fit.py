@@ -253,11 +253,16 @@ class FPCAFit:
         return fitted, fitted - half, fitted + half
 
     def trajectories(
-        self, subjects: list[Any] | None = None, level: float | None = None
+        self, subjects: list[Any] | None = None, level: float | None = None,
+        readings: Sample | None = None,
     ) -> pd.DataFrame:
         """Recovered trajectories on the grid: subject, time, fitted, the pointwise band
-        (lower, upper) and the simultaneous band (lower_simultaneous, upper_simultaneous)."""
-        if self._sample is None:
+        (lower, upper) and the simultaneous band (lower_simultaneous, upper_simultaneous).
+
+        ``readings``: the readings of ``subjects`` (coded 0 .. len - 1 in that order), which
+        corrected bands need; by default the fit's own (a fit from parts holds none).
+        """
+        if readings is None and self._sample is None:
             raise EstimationError("this fit holds no readings of its subjects (a fit "
                                   "without_subjects, or one fitted from parts without them)")
         if subjects is None:
@@ -268,8 +273,14 @@ class FPCAFit:
             missing = [s for s, r in zip(subjects, rows, strict=True) if r < 0]
             if missing:
                 raise EstimationError(f"subjects not in the fit: {missing[:5]!r}")
+        if readings is None:
+            assert self._sample is not None
+            readings = self._sample.subset(rows)
+        elif readings.n_subjects != rows.size:
+            raise EstimationError(f"readings of {readings.n_subjects} subjects given for "
+                                  f"{rows.size} trajectories")
         return self._curve_frame(self.subjects[rows], self.score_values[rows],
-                                 self.score_cov[rows], level, self._sample.subset(rows))
+                                 self.score_cov[rows], level, readings)
 
     def band_kind(self) -> str:
         """``"corrected"`` when replicates carry the estimation uncertainty, else ``"plugin"``."""

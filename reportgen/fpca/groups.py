@@ -1,6 +1,7 @@
 """Groups of subjects (arms, cohorts, sites) under one common fit.
 
-Two things per group, both from the common fit's choices:
+Two things per group, both from the common fit's choices (the means as passes over the
+data's parts, ``plan``):
 
 * the group's mean curve: the local linear smoother of the group's readings at the common
   mean bandwidth, with its cluster-robust pointwise standard error (the same estimator as
@@ -23,8 +24,9 @@ from numpy.typing import NDArray
 
 from ..errors import EstimationError
 from ._kernels import interpolate_columns
-from .design import Sample, assign_folds, mean_stats, pair_stats
+from .design import BinnedStats, PairStats, Sample, mean_stats, pair_stats
 from .fit import FPCAFit, _mean_covariance
+from .plan import Part, Partitioned, add_binned, add_pair_stats, split_parts, tree_sum
 from .smoothing import BinGrid, FloatArray, get_kernel, local_linear_binned_1d
 
 IntArray = NDArray[np.intp]
@@ -122,55 +124,98 @@ def permutation_test(scores: FloatArray, group: IntArray, n_groups: int,
     return observed, (1 + exceed) / (1 + permutations)
 
 
-def group_mean(sample: Sample, fit: FPCAFit) -> tuple[FloatArray, FloatArray]:
-    """A group's mean on the fit's grid and its cluster-robust standard error."""
+def _by_group(sample: Sample, groups: IntArray, n_groups: int) -> list[Sample]:
+    """The readings of each group's subjects (``groups``: each subject's group)."""
+    return [sample.subset(np.flatnonzero(groups == k).astype(np.intp)) for k in range(n_groups)]
+
+
+def group_reading_sums(part: Part, groups: IntArray, n_groups: int, mbins: BinGrid
+                       ) -> list[BinnedStats]:
+    """Pass: each group's binned readings (``groups``: the group of each of the part's
+    subjects)."""
+    part = part.writable()
+    return [mean_stats(s, mbins, np.zeros(s.n_subjects, dtype=np.intp), 1)
+            for s in _by_group(part.sample, groups, n_groups)]
+
+
+def group_pair_sums(part: Part, groups: IntArray, n_groups: int, fine: FloatArray,
+                    mbins: BinGrid, cbins: BinGrid) -> list[PairStats]:
+    """Pass: each group's binned raw covariances against its own mean (``fine``: the
+    groups' means on ``mbins``' centres, one row a group)."""
+    part = part.writable()
+    out = []
+    for k, s in enumerate(_by_group(part.sample, groups, n_groups)):
+        resid = s.y - interpolate_columns(s.t, fine[k][:, None], mbins.lower, mbins.width)[:, 0]
+        out.append(pair_stats(s, resid, cbins, np.zeros(s.n_subjects, dtype=np.intp), 1))
+    return out
+
+
+def group_means(data: Partitioned, fit: FPCAFit, groups: IntArray, n_groups: int
+                ) -> tuple[FloatArray, FloatArray]:
+    """Each group's mean on the fit's grid and its cluster-robust standard error, shape
+    (n_groups, n_grid) each: the common mean's estimator applied to the group's subjects
+    (``groups``: the group of each subject, by code), in two passes over ``data``."""
     opts = fit.options
     lo, hi = float(fit.grid[0]), float(fit.grid[-1])
     kernel = get_kernel(opts.kernel)
-    folds = assign_folds(sample.n_subjects, 1, opts.seed)
-    mbins = BinGrid(lo, hi, opts.mean_bins)
-    total = mean_stats(sample, mbins, folds, 1).total()
+    mbins, cbins = BinGrid(lo, hi, opts.mean_bins), BinGrid(lo, hi, opts.covariance_bins)
+    each = [(groups[codes],) for codes in data.subjects]
+    found = data.executor.map(group_reading_sums, data.parts, each, (n_groups, mbins))
     h = fit.mean_bandwidth
-    fine = local_linear_binned_1d(mbins.centers, mbins.centers, total.counts[0],
-                                  total.sums[0], h, kernel)
-    mean = local_linear_binned_1d(fit.grid, mbins.centers, total.counts[0], total.sums[0], h,
-                                  kernel)
-    filled = np.where(np.isfinite(fine), fine, np.interp(mbins.centers, fit.grid, fit.mean))
-    resid = sample.y - interpolate_columns(sample.t, filled[:, None], lo, mbins.width)[:, 0]
-    cbins = BinGrid(lo, hi, opts.covariance_bins)
-    pstats = pair_stats(sample, resid, cbins, folds, 1)
-    cov = _mean_covariance(pstats, cbins, fit.grid, h, kernel)
-    se = np.sqrt(np.maximum(np.diag(cov), 0.0))
-    return mean, np.where(np.isfinite(mean), se, np.nan)
+    means, fines = [], []
+    for k in range(n_groups):
+        total = tree_sum([f[k] for f in found], add_binned).total()
+        fine = local_linear_binned_1d(mbins.centers, mbins.centers, total.counts[0],
+                                      total.sums[0], h, kernel)
+        means.append(local_linear_binned_1d(fit.grid, mbins.centers, total.counts[0],
+                                            total.sums[0], h, kernel))
+        fines.append(np.where(np.isfinite(fine), fine,
+                              np.interp(mbins.centers, fit.grid, fit.mean)))
+    found_pairs = data.executor.map(group_pair_sums, data.parts, each,
+                                    (n_groups, np.stack(fines), mbins, cbins))
+    ses = []
+    for k, mean in enumerate(means):
+        pstats = tree_sum([f[k] for f in found_pairs], add_pair_stats)
+        cov = _mean_covariance(pstats, cbins, fit.grid, h, kernel)
+        se = np.sqrt(np.maximum(np.diag(cov), 0.0))
+        ses.append(np.where(np.isfinite(mean), se, np.nan))
+    return np.stack(means), np.stack(ses)
+
+
+def group_mean(sample: Sample, fit: FPCAFit) -> tuple[FloatArray, FloatArray]:
+    """One group's mean on the fit's grid and its cluster-robust standard error (the
+    readings of its subjects, in one part)."""
+    data = Partitioned.local([Part(sample, np.arange(sample.n_subjects, dtype=np.intp))])
+    means, ses = group_means(data, fit, np.zeros(sample.n_subjects, dtype=np.intp), 1)
+    return means[0], ses[0]
 
 
 def compare_groups(fit: FPCAFit, subject: IntArray, t: FloatArray, y: FloatArray,
                    subject_group: np.ndarray, permutations: int = PERMUTATIONS
                    ) -> GroupComparison:
-    """Group means and the test of equal mean scores.
+    """Group means and the test of equal mean scores, from readings in one part.
 
     ``subject`` holds codes into ``fit.subjects`` (one per reading); ``subject_group`` the
     group label of each of ``fit.subjects``.
     """
+    data = Partitioned.local(split_parts(np.asarray(subject, dtype=np.intp), t, y, None))
+    return compare_groups_on(data, fit, subject_group, permutations)
+
+
+def compare_groups_on(data: Partitioned, fit: FPCAFit, subject_group: np.ndarray,
+                      permutations: int = PERMUTATIONS) -> GroupComparison:
+    """Group means (passes over ``data``, the fit's readings as parts) and the test of
+    equal mean scores. ``subject_group``: the group label of each of ``fit.subjects``."""
     labels, code = np.unique(np.asarray(subject_group, dtype=str), return_inverse=True)
     code = code.astype(np.intp)
     g = labels.size
     if g < 2:
         raise EstimationError("a group comparison needs two or more groups")
-    reading_group = code[subject]
-    means, ses = [], []
-    for k in range(g):
-        rows = reading_group == k
-        local = np.unique(subject[rows], return_inverse=True)[1]
-        sample = Sample.from_arrays(local.astype(np.intp), t[rows], y[rows])
-        mean, se = group_mean(sample, fit)
-        means.append(mean)
-        ses.append(se)
+    means, ses = group_means(data, fit, code, g)
     counts = np.bincount(code, minlength=g)
     score_means = np.stack([fit.score_values[code == k].mean(axis=0) for k in range(g)])
     permutations = permutation_count(code.size, permutations)
     statistic, p_value = permutation_test(fit.score_values, code, g, permutations,
                                           fit.options.seed)
-    return GroupComparison(tuple(str(x) for x in labels), counts.astype(np.intp),
-                           np.stack(means), np.stack(ses), score_means, statistic, p_value,
-                           permutations, fit.options.seed)
+    return GroupComparison(tuple(str(x) for x in labels), counts.astype(np.intp), means, ses,
+                           score_means, statistic, p_value, permutations, fit.options.seed)

@@ -138,16 +138,20 @@ def in_code_order(owner: IntArray, held: IntArray) -> tuple[IntArray, IntArray]:
     return index, sizes
 
 
-def _add_binned(a: BinnedStats, b: BinnedStats) -> BinnedStats:
+def add_binned(a: BinnedStats, b: BinnedStats) -> BinnedStats:
     return BinnedStats(a.counts + b.counts, a.sums + b.sums, a.sumsq + b.sumsq, a.n + b.n)
+
+
+def add_pair_stats(a: PairStats, b: PairStats) -> PairStats:
+    return PairStats(add_binned(a.offdiag, b.offdiag), add_binned(a.diag, b.diag),
+                     a.cross + b.cross)
 
 
 def _add_pairs(a: tuple[PairStats, FloatArray], b: tuple[PairStats, FloatArray]
                ) -> tuple[PairStats, FloatArray]:
     (pa, ca), (pb, cb) = a, b
     check = np.array([max(ca[0], cb[0]), ca[1] + cb[1], ca[2] + cb[2]])
-    return (PairStats(_add_binned(pa.offdiag, pb.offdiag), _add_binned(pa.diag, pb.diag),
-                      pa.cross + pb.cross), check)
+    return add_pair_stats(pa, pb), check
 
 
 # --- the passes (module-level functions: a cluster ships them by name) -------------------
@@ -305,7 +309,7 @@ class Partitioned:
 
     def reading_sums(self, folds: IntArray, grid: BinGrid, n_folds: int) -> BinnedStats:
         found = self.executor.map(reading_sums, self.parts, self._each(folds), (grid, n_folds))
-        return tree_sum(found, _add_binned)
+        return tree_sum(found, add_binned)
 
     def residual_sums(self, folds: IntArray, fine: FloatArray, mean_grid: BinGrid,
                       grid: BinGrid, n_folds: int) -> tuple[PairStats, FloatArray]:
