@@ -211,3 +211,33 @@ def test_missing_ids_are_not_a_split_subject() -> None:
     assert whole.status == "pass"
     split = _whole_subjects(pd.Series(["s1", "s2", "s2", "s3"]), [2, 2], parts)
     assert split.status == "fail" and "subject 's2' in a.parquet, b.parquet" in split.detail
+
+
+def test_groups_over_files_on_either_engine(tmp_path: Path) -> None:
+    # The other invented example (three depots compared) split by pump into three files:
+    # the group means are passes over the files; the committed one-file run is the
+    # reference for the numbers (rounding only: common practice, no source), and the
+    # Dask engine gives the same bits as the local one.
+    data = pd.read_csv(ROOT / "specs" / "pump_service.csv", dtype={"pump": str})
+    (tmp_path / "pumps").mkdir()
+    ids = sorted(data.pump.unique())
+    key = data.pump.map({s: i * 3 // len(ids) for i, s in enumerate(ids)})
+    for k, part in data.groupby(key):
+        part.to_parquet(tmp_path / "pumps" / f"part-{k}.parquet", index=False)
+    spec = tmp_path / "pumps.yaml"
+    spec.write_text((ROOT / "specs" / "pump_service.yaml").read_text()
+                    .replace("file: pump_service.csv", "file: pumps")
+                    .replace("logo: fleet_logo.svg", ""))
+    here = run_spec(spec, tmp_path / "local")
+    there = run_spec(spec, tmp_path / "dask", engine="dask")
+    assert _tables(here) == _tables(there)
+    reference = ROOT / "sample_runs" / "pump-service" / "v001" / "tables"
+    for name in ("groups.csv", "group_means.csv", "scores.csv", "residuals_by_subject.csv"):
+        a, b = pd.read_csv(reference / name), pd.read_csv(here / "tables" / name)
+        assert list(a.columns) == list(b.columns) and len(a) == len(b), name
+        for column in a:
+            if pd.api.types.is_float_dtype(a[column]):
+                np.testing.assert_allclose(b[column], a[column], rtol=1e-8, atol=1e-10,
+                                           err_msg=f"{name}: {column}")
+            else:
+                assert a[column].tolist() == b[column].tolist(), f"{name}: {column}"
