@@ -4,13 +4,13 @@ Run:  .venv/bin/python benchmarks/engines.py [--subjects N] [--files F] [--write
 
 Simulated readings (as ``run.simulate``: 1 to 8 readings per subject on [0, 1]) in F
 parts of whole subjects, each made where it is to live (as a worker would read its own
-file), are fitted (automatic bandwidths, FVE rule, scores) three ways: on a Dask cluster of
-2 worker processes, on one of 2 worker threads in this process, and in this process, one
-part after another. For each it prints the seconds
+file), are fitted (automatic bandwidths, FVE rule, scores; then the diagnostics and group
+passes) three ways: on a Dask cluster of 2 worker processes, on one of 2 worker threads in
+this process, and in this process, one part after another. For each it prints the seconds
 spent in each pass over the parts (the executor's calls, by pass) and in the steps between
 them (bandwidths, smoothers, eigen-decomposition, likelihood: on the client), the peak
-resident memory of the client and of each worker process, and whether every number of the
-fit is bit-identical to the in-process one. Not part of the test run. With --write the
+resident memory of the client and of each worker process, and whether every number is
+bit-identical to the in-process one. Not part of the test run. With --write the
 table goes to benchmarks/ENGINES.md (one section per number of subjects).
 """
 
@@ -31,9 +31,12 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
 from benchmarks.run import machine, table  # noqa: E402
+from reportgen.analysis import DIAGNOSTIC_MAX_SUBJECTS  # noqa: E402
 from reportgen.fpca import FPCAOptions  # noqa: E402
 from reportgen.fpca.design import Sample  # noqa: E402
-from reportgen.fpca.fit import FPCAFit, fit_parts  # noqa: E402
+from reportgen.fpca.diagnostics import check_readings  # noqa: E402
+from reportgen.fpca.fit import FPCAFit, fit_parts, seeded_sample  # noqa: E402
+from reportgen.fpca.groups import group_means  # noqa: E402
 from reportgen.fpca.plan import Executor, InProcess, Part, Partitioned, warm_up  # noqa: E402
 
 
@@ -86,16 +89,27 @@ def make_part(p: int, n: int, n_parts: int, seed: int) -> Part:
 
 
 def _fit(executor: Executor, n: int, n_parts: int) -> tuple[bytes, dict[str, float], float]:
+    """The fit, then the report's passes after it: the diagnostics (as a run makes them:
+    the seeded sample of 20,000 subjects and six shown ones) and the means of three groups
+    (subject code modulo 3)."""
     timed = Timed(executor)
     start = time.perf_counter()
     parts = timed.keep(make_part, list(range(n_parts)), shared=(n, n_parts, 3))
     made = time.perf_counter() - start
-    fit = fit_parts(Partitioned.of(timed, parts), np.arange(n), FPCAOptions())
+    data = Partitioned.of(timed, parts)
+    fit = fit_parts(data, np.arange(n), FPCAOptions())
+    chosen = np.union1d(seeded_sample(n, DIAGNOSTIC_MAX_SUBJECTS, fit.options.seed),
+                        np.linspace(0, n - 1, 6).astype(np.intp))
+    checks = check_readings(data, fit.score_values, fit.score_cov, fit.predictor(), chosen)
+    means, ses = group_means(data, fit, (np.arange(n) % 3).astype(np.intp), 3)
     total = time.perf_counter() - start
     seconds = dict(timed.seconds)
     seconds["make_part"] = made  # with Dask, keep() returns at once: the time is the first pass's
     seconds["client steps"] = total - sum(seconds.values())
-    return _numbers(fit), seconds, total
+    extra = (checks.residual_sum, checks.squared_standardized_sum, checks.density,
+             *checks.readings.values(), means, ses)
+    return _numbers(fit) + b"".join(np.ascontiguousarray(a).tobytes() for a in extra), \
+        seconds, total
 
 
 def _numbers(fit: FPCAFit) -> bytes:
@@ -137,13 +151,15 @@ def main() -> None:
     same = {name: found[name] == numbers for name in found}
 
     steps = ["make_part", "summary", "outside", "reading_sums", "residual_sums", "gather",
-             "part_scores", "client steps"]
+             "part_scores", "part_checks", "group_reading_sums", "group_pair_sums",
+             "client steps"]
     rows = [[name, *(f"{r[0].get(s, 0.0):.2f}" for s in steps), f"{r[1]:.1f}", r[2], r[3],
              "yes" if same.get(name, True) else "NO"] for name, r in results.items()]
     text = (f"Machine: {machine()}\nDate: {time.strftime('%Y-%m-%d')}\n\n"
             f"{n:,} subjects (about {4.5 * n:,.0f} readings) in {files} parts, each simulated "
             "where it is to live (as a worker reads its file); the fit with automatic "
-            "bandwidths (5-fold cross-validation), FVE rule and scores. Seconds per pass "
+            "bandwidths (5-fold cross-validation), FVE rule and scores, then the report's "
+            "diagnostics pass (`part_checks`) and the means of three groups. Seconds per pass "
             "over the parts (summed over the fit's calls; with Dask the parts are made while "
             "the first pass waits for them, so `make_part` shows in `summary`), the steps in "
             "the client between passes, the total, and peak resident memory.\n\n"
