@@ -153,3 +153,30 @@ def test_flagged_subjects_named_up_to_the_cap(base: AnalysisResult) -> None:
     assert f"{len(top)} subject(s) flagged; the {NAMED_FLAGGED} farthest: " in text
     named = re.findall(r"(\w+) \(([\d.e+-]+)\)", text.split("farthest: ")[1].split(" (squared")[0])
     assert [s for s, _ in named] == list(top.subject.astype(str)[:NAMED_FLAGGED])
+
+
+def test_residual_diagnostics_over_a_sample_say_so(base: AnalysisResult, tmp_path: Path,
+                                                   monkeypatch: pytest.MonkeyPatch) -> None:
+    # Above DIAGNOSTIC_MAX_SUBJECTS the spread trend and the residual figure use a seeded
+    # sample of subjects: the sentence names it, and the number is Spearman's rho of that
+    # sample's readings (reference: scipy.stats.spearmanr). At or below it, every subject.
+    from scipy.stats import spearmanr
+
+    from reportgen import analysis
+    from reportgen.render import _over_sample
+
+    assert base.readings.n_sampled == base.fit.n_subjects and _over_sample(base) == ""
+    monkeypatch.setattr(analysis, "DIAGNOSTIC_MAX_SUBJECTS", 40)
+    res = _analyse(tmp_path, "sampled")
+    n = res.fit.n_subjects
+    sampled = res.readings.residuals
+    assert res.readings.n_sampled == 40 < n and sampled.subject.nunique() == 40
+    counts = sampled.groupby("subject").size()
+    assert counts.tolist() == res.fit.scores.n_obs.loc[counts.index].tolist()  # all readings
+    expected = spearmanr(np.abs(sampled.standardized), sampled.fitted).statistic
+    assert res.spread == pytest.approx(expected, rel=1e-12)
+    assert _over_sample(res) == (f"; over the {len(sampled):,} readings of a seeded sample "
+                                 f"of 40 of the {n:,} subjects")
+    assert len(res.residual_summary) == n  # the per-subject table covers every subject
+    np.testing.assert_array_equal(res.residual_summary.rms_standardized,
+                                  base.residual_summary.rms_standardized)
