@@ -8,6 +8,7 @@ sample for the residual diagnostics and the few subjects a report shows).
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -112,6 +113,23 @@ class ReadingChecks:
     readings: dict[str, np.ndarray]
 
 
+class _Asks(Sequence[tuple[FloatArray, FloatArray, IntArray]]):
+    """Each part's arguments, made when the executor takes them, so that the parts' copies
+    of their subjects' scores need not all exist at once."""
+
+    def __init__(self, subjects: tuple[IntArray, ...], scores: FloatArray, cov: FloatArray,
+                 chosen: IntArray) -> None:
+        self.subjects, self.scores, self.cov, self.chosen = subjects, scores, cov, chosen
+
+    def __len__(self) -> int:
+        return len(self.subjects)
+
+    def __getitem__(self, i: int) -> tuple[FloatArray, FloatArray, IntArray]:  # type: ignore[override]
+        codes = self.subjects[i]
+        return (self.scores[codes], self.cov[codes],
+                np.searchsorted(codes, self.chosen[np.isin(self.chosen, codes)]))
+
+
 def check_readings(data: Partitioned, scores: FloatArray, cov: FloatArray, model: Predictor,
                    chosen: IntArray) -> ReadingChecks:
     """One pass over ``data``: residual sums of every subject (``scores``, ``cov`` by
@@ -119,8 +137,7 @@ def check_readings(data: Partitioned, scores: FloatArray, cov: FloatArray, model
     (increasing codes)."""
     edges = (axis(data.t_min, data.t_max, DENSITY_CELLS[0]),
              axis(data.y_min, data.y_max, DENSITY_CELLS[1]))
-    asks = [(scores[codes], cov[codes], np.searchsorted(codes, chosen[np.isin(chosen, codes)]))
-            for codes in data.subjects]
+    asks = _Asks(data.subjects, scores, cov, chosen)
     found = data.executor.map(part_checks, data.parts, asks, (model, edges))
     n = data.n_subjects
     residual_sum, squared_sum = np.empty(n), np.empty(n)
@@ -129,8 +146,7 @@ def check_readings(data: Partitioned, scores: FloatArray, cov: FloatArray, model
         squared_sum[codes] = b
     density = sum((f[1] for f in found), np.zeros(DENSITY_CELLS, dtype=np.intp))
     # the chosen subjects' readings, from the parts' order into code order
-    owner = np.concatenate([codes[rows] for codes, (*_, rows) in zip(data.subjects, asks,
-                                                                       strict=True)])
+    owner = np.concatenate([chosen[np.isin(chosen, codes)] for codes in data.subjects])
     index, sizes = in_code_order(owner, np.concatenate([f[2] for f in found]))
     kept = np.sort(owner)
     names = ("time", "value", "fitted", "residual", "standardized")
