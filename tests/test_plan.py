@@ -188,6 +188,13 @@ def _size(x: object) -> int:
     return 1
 
 
+def _parts_of(low: int, high: int) -> list:
+    """300 subjects with ``low`` to ``high`` readings each, in N_PARTS parts."""
+    data = yao_design(300, seed=11, min_obs=low, max_obs=high)
+    codes = data.id.to_numpy(dtype=np.intp)
+    return split_parts(codes, data.t.to_numpy(), data.y.to_numpy(), codes % N_PARTS, N_PARTS)
+
+
 def test_what_comes_back_does_not_grow_with_the_readings(monkeypatch: pytest.MonkeyPatch
                                                          ) -> None:
     # A fit gathers from its parts per subject (codes, counts, scores) and per bin (the
@@ -198,10 +205,7 @@ def test_what_comes_back_does_not_grow_with_the_readings(monkeypatch: pytest.Mon
     monkeypatch.setattr(fit_module, "REFINE_MAX_SUBJECTS", 40)
     returned = []
     for low, high in ((2, 5), (6, 12)):
-        data = yao_design(300, seed=11, min_obs=low, max_obs=high)
-        codes = data.id.to_numpy(dtype=np.intp)
-        parts = split_parts(codes, data.t.to_numpy(), data.y.to_numpy(), codes % N_PARTS,
-                            N_PARTS)
+        parts = _parts_of(low, high)
         counting = _Counting()
         fit_parts(Partitioned.of(counting, parts), np.arange(300),
                   replace(OPTIONS, band="plugin", component_rule="fixed", n_components=2))
@@ -305,10 +309,7 @@ def test_the_diagnostics_bring_back_no_more_with_more_readings() -> None:
 
     returned = []
     for low, high in ((2, 5), (6, 12)):
-        data = yao_design(300, seed=11, min_obs=low, max_obs=high)
-        codes = data.id.to_numpy(dtype=np.intp)
-        parts = split_parts(codes, data.t.to_numpy(), data.y.to_numpy(), codes % N_PARTS,
-                            N_PARTS)
+        parts = _parts_of(low, high)
         fit = fit_parts(Partitioned.local(parts), np.arange(300),
                         replace(OPTIONS, band="plugin", component_rule="fixed", n_components=2))
         counting = _Counting()

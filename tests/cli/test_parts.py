@@ -71,22 +71,26 @@ def _spec_one(base: Path) -> Path:
     return path
 
 
+def _same_to_rounding(expected: Path, got: Path) -> None:
+    """The same table, its numbers to rounding: per-file sums are added in another order
+    (common practice, no source)."""
+    a, b = pd.read_csv(expected), pd.read_csv(got)
+    assert list(a.columns) == list(b.columns) and len(a) == len(b), got.name
+    for column in a:
+        if pd.api.types.is_float_dtype(a[column]):
+            np.testing.assert_allclose(b[column], a[column], rtol=1e-8, atol=1e-10,
+                                       err_msg=f"{got.name}: {column}")
+        else:
+            assert a[column].tolist() == b[column].tolist(), f"{got.name}: {column}"
+
+
 def test_a_folder_gives_the_numbers_of_one_file(runs: dict[str, Path]) -> None:
     one, folder = runs["one"] / "tables", runs["folder"] / "tables"
     assert _tables(runs["one"]).keys() == _tables(runs["folder"]).keys()
     for path in sorted(one.iterdir()):
         if path.name == "checks.csv":  # the folder's run has one check more (whole subjects)
             continue
-        a, b = pd.read_csv(path), pd.read_csv(folder / path.name)
-        assert list(a.columns) == list(b.columns) and len(a) == len(b), path.name
-        for column in a:
-            if pd.api.types.is_float_dtype(a[column]):
-                # per-file sums added in another order: rounding only (common practice,
-                # no source)
-                np.testing.assert_allclose(b[column], a[column], rtol=1e-8, atol=1e-10,
-                                           err_msg=f"{path.name}: {column}")
-            else:
-                assert a[column].tolist() == b[column].tolist(), f"{path.name}: {column}"
+        _same_to_rounding(path, folder / path.name)
     checks = pd.read_csv(runs["folder"] / "tables" / "checks.csv")
     row = checks[checks.check == "subjects whole in one file"]
     assert list(row.status) == ["pass"]
@@ -216,8 +220,7 @@ def test_missing_ids_are_not_a_split_subject() -> None:
 def test_groups_over_files_on_either_engine(tmp_path: Path) -> None:
     # The other invented example (three depots compared) split by pump into three files:
     # the group means are passes over the files; the committed one-file run is the
-    # reference for the numbers (rounding only: common practice, no source), and the
-    # Dask engine gives the same bits as the local one.
+    # reference for the numbers, and the Dask engine gives the same bits as the local one.
     data = pd.read_csv(ROOT / "specs" / "pump_service.csv", dtype={"pump": str})
     (tmp_path / "pumps").mkdir()
     ids = sorted(data.pump.unique())
@@ -233,11 +236,4 @@ def test_groups_over_files_on_either_engine(tmp_path: Path) -> None:
     assert _tables(here) == _tables(there)
     reference = ROOT / "sample_runs" / "pump-service" / "v001" / "tables"
     for name in ("groups.csv", "group_means.csv", "scores.csv", "residuals_by_subject.csv"):
-        a, b = pd.read_csv(reference / name), pd.read_csv(here / "tables" / name)
-        assert list(a.columns) == list(b.columns) and len(a) == len(b), name
-        for column in a:
-            if pd.api.types.is_float_dtype(a[column]):
-                np.testing.assert_allclose(b[column], a[column], rtol=1e-8, atol=1e-10,
-                                           err_msg=f"{name}: {column}")
-            else:
-                assert a[column].tolist() == b[column].tolist(), f"{name}: {column}"
+        _same_to_rounding(reference / name, here / "tables" / name)
