@@ -189,6 +189,14 @@ class ReadingView:
     def empty(self) -> ReadingView:
         return replace(self, frame=self.frame.iloc[:0])
 
+    def sample_words(self, n_subjects: int) -> str:
+        """What the residual diagnostics are drawn from when it is a sample ("" when it is
+        every subject)."""
+        if self.n_sampled == n_subjects:
+            return ""
+        return (f"the {len(self.residuals):,} readings of a seeded sample of "
+                f"{self.n_sampled:,} of the {n_subjects:,} subjects")
+
 
 def _check_readings(data: Partitioned, fit: FPCAFit, shown: np.ndarray
                     ) -> tuple[ReadingView, pd.DataFrame, pd.DataFrame]:
@@ -454,9 +462,6 @@ def analyse(spec: Spec, ds: Dataset, progress: Progress = lambda _: None,
     stable: list[bool | None] = [
         all(np.nan_to_num(r.similarity[k]) >= threshold for r in computed) if computed else None
         for k in range(fit.n_components)]
-    shown = _shown(fit, spec)
-    progress("diagnostics")
-    view, summary, trajectories = _check_readings(data, fit, _codes_of(fit, shown))
     groups: GroupComparison | None = None
     subject_groups: tuple[str, ...] = ()
     if "group" in ds.frame:
@@ -465,6 +470,9 @@ def analyse(spec: Spec, ds: Dataset, progress: Progress = lambda _: None,
         subject_groups = tuple(str(g) for g in per.reindex(fit.subjects).to_numpy())
         groups = compare_groups_on(data, fit, np.asarray(subject_groups))
         lap("groups")
+    shown = _shown(fit, spec)
+    progress("diagnostics")
+    view, summary, trajectories = _check_readings(data, fit, _codes_of(fit, shown))
     sampled = view.residuals
     rho = spread_trend(sampled)
     caveats = (_caveats(spec, ds, fit, runs, stable, len(sampled), rho)

@@ -351,9 +351,8 @@ def _residuals(r: AnalysisResult) -> Figure:
     axes[2].plot(theo, theo, color="#888", linewidth=0.8)
     axes[2].set_xlabel("normal quantile")
     axes[2].set_ylabel("residual quantile")
-    view, n = r.readings, r.fit.n_subjects
-    of = ("" if view.n_sampled == n else f" Drawn from the {len(res):,} readings of a seeded "
-          f"sample of {view.n_sampled:,} of the {n:,} subjects.")
+    words = r.readings.sample_words(r.fit.n_subjects)
+    of = f" Drawn from {words}." if words else ""
     return (fig, "Standardized residuals (reading minus fitted trajectory, over its own "
             "standard deviation under the fitted model) against time and fitted value, and a "
             "normal quantile plot." + of,

@@ -290,11 +290,8 @@ def _section_residuals(c: _Context) -> None:
 
 def _over_sample(result: AnalysisResult) -> str:
     """Where the residual diagnostics use a sample of subjects, say so."""
-    view, n = result.readings, result.fit.n_subjects
-    if view.n_sampled == n:
-        return ""
-    return (f"; over the {len(view.residuals):,} readings of a seeded sample of "
-            f"{view.n_sampled:,} of the {n:,} subjects")
+    words = result.readings.sample_words(result.fit.n_subjects)
+    return f"; over {words}" if words else ""
 
 
 def _section_sensitivity(c: _Context) -> None:
