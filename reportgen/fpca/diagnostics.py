@@ -118,16 +118,15 @@ class _Asks(Sequence[tuple[FloatArray, FloatArray, IntArray]]):
     of their subjects' scores need not all exist at once."""
 
     def __init__(self, subjects: tuple[IntArray, ...], scores: FloatArray, cov: FloatArray,
-                 chosen: IntArray) -> None:
-        self.subjects, self.scores, self.cov, self.chosen = subjects, scores, cov, chosen
+                 rows: list[IntArray]) -> None:
+        self.subjects, self.scores, self.cov, self.rows = subjects, scores, cov, rows
 
     def __len__(self) -> int:
         return len(self.subjects)
 
     def __getitem__(self, i: int) -> tuple[FloatArray, FloatArray, IntArray]:  # type: ignore[override]
         codes = self.subjects[i]
-        return (self.scores[codes], self.cov[codes],
-                np.searchsorted(codes, self.chosen[np.isin(self.chosen, codes)]))
+        return self.scores[codes], self.cov[codes], self.rows[i]
 
 
 def check_readings(data: Partitioned, scores: FloatArray, cov: FloatArray, model: Predictor,
@@ -137,7 +136,8 @@ def check_readings(data: Partitioned, scores: FloatArray, cov: FloatArray, model
     (increasing codes)."""
     edges = (axis(data.t_min, data.t_max, DENSITY_CELLS[0]),
              axis(data.y_min, data.y_max, DENSITY_CELLS[1]))
-    asks = _Asks(data.subjects, scores, cov, chosen)
+    rows = data.rows_of(chosen)
+    asks = _Asks(data.subjects, scores, cov, rows)
     found = data.executor.map(part_checks, data.parts, asks, (model, edges))
     n = data.n_subjects
     residual_sum, squared_sum = np.empty(n), np.empty(n)
@@ -146,7 +146,7 @@ def check_readings(data: Partitioned, scores: FloatArray, cov: FloatArray, model
         squared_sum[codes] = b
     density = sum((f[1] for f in found), np.zeros(DENSITY_CELLS, dtype=np.intp))
     # the chosen subjects' readings, from the parts' order into code order
-    owner = np.concatenate([chosen[np.isin(chosen, codes)] for codes in data.subjects])
+    owner = np.concatenate([codes[r] for codes, r in zip(data.subjects, rows, strict=True)])
     index, sizes = in_code_order(owner, np.concatenate([f[2] for f in found]))
     kept = np.sort(owner)
     names = ("time", "value", "fitted", "residual", "standardized")

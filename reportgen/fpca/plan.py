@@ -318,15 +318,18 @@ class Partitioned:
                                   (fine, mean_grid, grid, n_folds))
         return tree_sum(found, _add_pairs)
 
+    def rows_of(self, chosen: IntArray) -> list[IntArray]:
+        """Each part's rows of those of the subjects ``chosen`` (increasing codes) that it
+        holds."""
+        return [np.searchsorted(codes, chosen[np.isin(chosen, codes)]) for codes in self.subjects]
+
     def gather(self, chosen: IntArray, fine: FloatArray, mean_grid: BinGrid
                ) -> tuple[Sample, FloatArray]:
         """The readings and residuals of the subjects ``chosen`` (increasing codes), as a
         sample coded 0 .. len(chosen) - 1 in that order."""
-        asks = [(np.searchsorted(codes, chosen[np.isin(chosen, codes)]),)
-                for codes in self.subjects]
-        found = self.executor.map(gather, self.parts, asks, (fine, mean_grid))
-        owner = np.concatenate([codes[rows] for codes, (rows,) in zip(self.subjects, asks,
-                                                                      strict=True)])
+        rows = self.rows_of(chosen)
+        found = self.executor.map(gather, self.parts, [(r,) for r in rows], (fine, mean_grid))
+        owner = np.concatenate([codes[r] for codes, r in zip(self.subjects, rows, strict=True)])
         index, sizes = in_code_order(owner, np.concatenate([f[3] for f in found]))
         t, y, r = (np.concatenate([f[k] for f in found])[index] for k in range(3))
         starts = (np.cumsum(sizes) - sizes).astype(np.intp)
