@@ -5,6 +5,14 @@ selection (``data.keep_rows``); the types (dates need an origin); the time origi
 transform; missing values; duplicates; the declared value range and time domain; the
 design (subjects, single readings, pairs). A failed step stops the later ones; the run
 refuses the data only after every step that could run has reported.
+
+The row-level steps run file by file (a single file is one file): each step leaves a
+``Tally`` (counts and first examples) per file, and a ``_say_*`` function turns the tallies
+of every file into the step's check, adding the counts and quoting the first file's
+example. So a folder of Parquet files is never held as one raw table, the texts of a
+folder and of the same rows in one file agree (tests/cli/test_parts.py), and the per-file
+step can move to where the file is (a cluster's workers) without changing a word. The
+design steps run on the cleaned readings of all files.
 """
 
 from __future__ import annotations
@@ -12,7 +20,7 @@ from __future__ import annotations
 import hashlib
 import os
 import stat
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any
 
@@ -58,10 +66,6 @@ class Dataset:
     @property
     def failed(self) -> list[Check]:
         return [c for c in self.checks if c.status == "fail"]
-
-
-class _Stop(Exception):
-    """A failed step: the checks so far are the result."""
 
 
 def read_file(spec: Spec) -> tuple[bytes, Path]:
@@ -173,20 +177,27 @@ def _mask(series: pd.Series, cond: dict[str, Any], where: str) -> np.ndarray:
     return np.asarray(column.isin(wanted), dtype=bool)
 
 
-def _select_rows(table: Table, conditions: list[dict[str, Any]]) -> tuple[np.ndarray, Check]:
+def _select_rows(table: Table, conditions: list[dict[str, Any]]) -> tuple[np.ndarray, Tally]:
+    """The rows that meet every condition; the tally counts rows read, rows each condition
+    dropped and rows kept."""
     frame = table.frame
     keep = np.ones(len(frame), dtype=bool)
-    parts = [f"{len(frame)} rows read"]
+    dropped = []
     for i, cond in enumerate(conditions):
         mask = _mask(frame[cond["column"]], cond, f"data.keep_rows[{i}]")
-        dropped = int(np.count_nonzero(keep & ~mask))
+        dropped.append(int(np.count_nonzero(keep & ~mask)))
         keep &= mask
-        parts.append(f"{_condition_text(cond)}: {dropped} dropped")
-    kept = int(keep.sum())
-    parts.append(f"{kept} kept")
-    status = "pass" if kept else "fail"
-    detail = "; ".join(parts) + ("" if kept else " (no row meets every condition)")
-    return keep, Check("row selection", status, detail)
+    return keep, Tally("row selection", (len(frame), *dropped, int(keep.sum())))
+
+
+def _say_selection(tallies: list[Tally], spec: Spec) -> Check:
+    n = _totals(tallies)
+    parts = [f"{n[0]} rows read"]
+    parts += [f"{_condition_text(cond)}: {dropped} dropped"
+              for cond, dropped in zip(spec.data["keep_rows"], n[1:-1], strict=True)]
+    parts.append(f"{n[-1]} kept")
+    detail = "; ".join(parts) + ("" if n[-1] else " (no row meets every condition)")
+    return Check("row selection", "pass" if n[-1] else "fail", detail)
 
 
 def _describe_row(table: Table, rows: np.ndarray, frame: pd.DataFrame, i: int,
@@ -269,55 +280,60 @@ def load_dataset(spec: Spec) -> Dataset:
 
 
 def _dataset_from_parts(spec: Spec) -> Dataset:
-    """Every Parquet file that ``data.file`` names, in manifest order, as one table; each
-    file's bytes are hashed as read. A subject whose readings lie in two files fails a
-    check: the partitioned plan needs whole subjects per file."""
+    """Every Parquet file that ``data.file`` names, in manifest order, each read (its bytes
+    hashed as read), checked and cleaned on its own; the files' findings are then put
+    together check by check. A subject whose readings lie in two files fails a check: the
+    partitioned plan needs whole subjects per file."""
     d, shown = spec.data, spec.data["file"]
     if d["format"] not in ("auto", "parquet"):
         raise DataError(f"data.file {shown!r} names a folder or pattern, which is read as "
                         f"Parquet files; data.format says {d['format']}")
-    tables, parts = [], []
-    for rel, full in list_files(spec.data_path, shown):
+    parts: list[Part] = []
+    files: list[FileChecks] = []
+    ids: list[np.ndarray] = []
+    rows_read, columns, first = 0, "", None
+    for i, (rel, full) in enumerate(list_files(spec.data_path, shown)):
         raw, _ = read_path(full, f"{shown}: {rel}")
         parts.append(Part(rel, len(raw), hashlib.sha256(raw).hexdigest()))
-        tables.append(parse_table(raw, "parquet", f"{shown}: {rel}"))
+        table = replace(parse_table(raw, "parquet", f"{shown}: {rel}"), parts=((rel, 0),))
         del raw
-        here, there = (", ".join(map(str, t.frame.columns)) for t in (tables[-1], tables[0]))
-        if here != there:
+        here = ", ".join(map(str, table.frame.columns))
+        if first is None:
+            first, columns = table, here
+            column_check = _column_check(table, d, shown)
+        elif here != columns:
             raise DataError(f"data.file {shown!r}: {rel!r} has the columns {here}; the first "
-                            f"file, {parts[0].path!r}, has {there}")
-    sizes = [len(t.frame) for t in tables]
-    frame = pd.concat([t.frame for t in tables], ignore_index=True)
-    starts = tuple(int(x) for x in np.cumsum([0, *sizes[:-1]]))
-    table = Table(frame, "parquet", parts=tuple(zip((p.path for p in parts), starts, strict=True)))
-    del tables
-    extra = []
-    if d["subject"] in frame.columns:
-        extra.append(_whole_subjects(frame[d["subject"]], sizes, parts))
-    return _dataset(table, spec.data_path, shown, sum(p.n_bytes for p in parts),
-                    manifest_digest(parts), spec, True, tuple(parts), extra)
+                            f"file, {parts[0].path!r}, has {columns}")
+        rows_read += len(table.frame)
+        ids.append(table.frame[d["subject"]].dropna().unique())
+        files.append(_file_checks(table, spec, i))
+        del table
+    if rows_read == 0:
+        raise DataError(f"data.file {shown!r} has a header but no rows")
+    assert first is not None  # list_files names at least one file
+    frame, checks = _assembled(spec, files, [_whole_subjects(ids, parts), column_check], True)
+    return Dataset(frame, tuple(checks), spec.data_path, shown, sum(p.n_bytes for p in parts),
+                   manifest_digest(parts), rows_read, _labels(first, d), tuple(parts))
 
 
-def _whole_subjects(ids: pd.Series, sizes: list[int], parts: list[Part]) -> Check:
-    """Fails when a subject's readings lie in more than one file."""
-    codes = pd.factorize(ids)[0]  # -1 for a missing id: the missing-values check's matter
-    part = np.repeat(np.arange(len(sizes)), sizes)
-    known = codes >= 0
-    pairs = np.unique(codes[known].astype(np.int64) * len(sizes) + part[known])
-    split = pairs // len(sizes)
-    repeated = split[1:][split[1:] == split[:-1]]
+def _whole_subjects(ids: list[np.ndarray], parts: list[Part]) -> Check:
+    """Fails when a subject's readings lie in more than one file (``ids``: each file's
+    distinct subject ids, missing ones left out: they are the missing-values check's
+    matter)."""
+    codes, uniques = pd.factorize(pd.Series(np.concatenate(ids) if ids else []))
+    files = np.repeat(np.arange(len(ids)), [len(x) for x in ids])
+    split = np.flatnonzero(np.bincount(codes, minlength=len(uniques)) > 1)
     n_files = len(parts)
-    if repeated.size == 0:
+    if split.size == 0:
         return Check("subjects whole in one file", "pass",
                      f"{n_files} Parquet files; every subject's readings are in one of them")
-    first = int(repeated[0])
-    where = [parts[int(x % len(sizes))].path for x in pairs[split == first]]
-    subject = ids.iloc[int(np.flatnonzero(codes == first)[0])]
+    first = int(split[0])  # the split subject met first, in manifest order
+    where = [parts[int(f)].path for f in files[codes == first]]
     return Check("subjects whole in one file", "fail",
-                 f"{np.unique(repeated).size} subject(s) have readings in more than one of the "
-                 f"{n_files} files, e.g. subject {plain(subject)} in {', '.join(where[:3])}; "
-                 "write the data partitioned by subject (all of a subject's readings in one "
-                 "file)")
+                 f"{split.size} subject(s) have readings in more than one of the "
+                 f"{n_files} files, e.g. subject {plain(uniques[first])} in "
+                 f"{', '.join(where[:3])}; write the data partitioned by subject (all of a "
+                 "subject's readings in one file)")
 
 
 def _release_arrow_memory() -> None:
@@ -340,47 +356,109 @@ def dataset_from_bytes(raw: bytes, path: Path, spec: Spec, design: bool = True,
     fmt = detect_format(shown, d["format"])
     text = tuple(x for x in (d["subject"], d.get("group")) if x)
     table = parse_table(raw, fmt, shown, text_columns=text)
-    return _dataset(table, path, shown, len(raw), hashlib.sha256(raw).hexdigest(), spec,
-                    design)
-
-
-def _dataset(table: Table, path: Path, shown: str, n_bytes: int, sha256: str, spec: Spec,
-             design: bool, parts: tuple[Part, ...] = (), first: list[Check] | None = None
-             ) -> Dataset:
-    """Every check on a parsed table (``first``: checks made while reading it)."""
-    d, c = spec.data, spec.checks
-    checks: list[Check] = [*(first or []), _column_check(table, d, shown)]
-    labels = {role: table.labels[d[role]] for role in ("time", "value")
-              if table.labels.get(d[role])}
-
-    def finish(frame: pd.DataFrame) -> Dataset:
-        return Dataset(frame, tuple(checks), path, shown, n_bytes, sha256, rows_read, labels,
-                       parts)
-
-    rows_read = len(table.frame)
-    if rows_read == 0:
+    if len(table.frame) == 0:
         raise DataError(f"data.file {shown!r} has a header but no rows")
-    frame, rows = table.frame, np.arange(rows_read)
-    if any(x.status == "fail" for x in checks):
-        return finish(frame)
-    if d.get("keep_rows"):
-        keep, check = _select_rows(table, d["keep_rows"])
+    checks = [_column_check(table, d, shown)]
+    frame, checks = _assembled(spec, [_file_checks(table, spec, None)], checks, design)
+    return Dataset(frame, tuple(checks), path, shown, len(raw),
+                   hashlib.sha256(raw).hexdigest(), len(table.frame), _labels(table, d))
+
+
+def _labels(table: Table, d: dict[str, Any]) -> dict[str, str]:
+    return {role: table.labels[d[role]] for role in ("time", "value")
+            if table.labels.get(d[role])}
+
+
+@dataclass(frozen=True)
+class Tally:
+    """What one step found in one file, before the files' findings are put together:
+    counts, added over the files, and first examples, the first file's (in manifest order)
+    that has one. ``sizes``: subjects per group (the groups step); ``file``: the file."""
+
+    step: str
+    n: tuple[int, ...] = ()
+    first: tuple[str, ...] = ()
+    sizes: tuple[tuple[str, int], ...] = ()
+    file: str = ""
+
+
+@dataclass(frozen=True)
+class FileChecks:
+    """One file's findings and its cleaned readings (None: a step stopped the file, or no
+    reading of it was left)."""
+
+    tallies: tuple[Tally, ...]
+    long: pd.DataFrame | None
+
+
+def _totals(tallies: list[Tally]) -> list[int]:
+    return [int(x) for x in np.sum([t.n for t in tallies], axis=0)]
+
+
+def _first(tallies: list[Tally], slot: int) -> str:
+    return next((t.first[slot] for t in tallies if t.first[slot]), "")
+
+
+def _file_checks(table: Table, spec: Spec, part: int | None) -> FileChecks:
+    """The row-level steps on one parsed file, each leaving a tally; ``part``: the file's
+    index when data.file names many (it becomes the readings' ``part`` column).
+
+    A file stops where its own rows make a step fail; it is not stopped by what only all
+    files together decide (no row kept, every row missing, one group only): it then
+    contributes no readings, and the merged check decides."""
+    d = spec.data
+    found: list[Tally] = []
+    frame, rows = table.frame, np.arange(len(table.frame))
+    if len(frame) and d.get("keep_rows"):
+        keep, tally = _select_rows(table, d["keep_rows"])
+        found.append(tally)
         rows = rows[keep]
         frame = frame.loc[keep].reset_index(drop=True)
-        checks.append(check)
-        if check.status == "fail":
-            return finish(frame)
-    try:
-        long = _typed(frame, rows, table, spec, checks)
-        long = _cleaned(long, table, c, checks, spec)
-    except _Stop:
-        return finish(frame)
+    long = _typed(frame, rows, table, spec, found) if len(frame) else None
+    if long is not None:
+        long = _cleaned(long, table, spec, found)
+    if long is not None and part is not None:
+        long["part"] = np.full(len(long), part, dtype=np.intp)
+    return FileChecks(tuple(found), long)
+
+
+_STEPS_THAT_STOP = {"row selection", "columns typed", "log transform", "missing values",
+                    "groups"}
+
+
+def _assembled(spec: Spec, files: list[FileChecks], checks: list[Check], design: bool
+               ) -> tuple[pd.DataFrame, list[Check]]:
+    """The files' tallies put together step by step (a failed step that stops stops the
+    later ones), the cleaned readings of every file in order, and, when ``design``, the
+    checks on the design of all of them."""
+    say = {"row selection": _say_selection, "columns typed": _say_typed,
+           "log transform": _say_log, "missing values": _say_missing, "groups": _say_groups,
+           "duplicate readings": _say_duplicates}
+    steps = ["row selection", "columns typed", "log transform", "missing values", "groups",
+             "duplicate readings", "values in declared range",
+             *(name for name, _ in data_domains(spec))]
+    stopped = False
+    for step in steps:
+        tallies = [t for f in files for t in f.tallies if t.step == step]
+        check = (say[step](tallies, spec) if step in say else _say_range(step, tallies, spec)
+                 ) if tallies else None
+        if check is not None:
+            checks.append(check)
+            if check.status == "fail" and step in _STEPS_THAT_STOP:
+                stopped = True
+                break
+    kept = [f.long for f in files if f.long is not None]
+    if stopped or not kept:
+        columns = ["subject", "time", "value"] + (["group"] if spec.data.get("group") else [])
+        return pd.DataFrame({c: [] for c in columns}), checks
+    long = kept[0] if len(kept) == 1 else pd.concat(kept, ignore_index=True)
+    del kept
     if design:
         codes = pd.factorize(long.subject)[0].astype(np.intp)  # once, for both steps
-        checks.extend(_design_checks(long, c, codes))
+        checks.extend(_design_checks(long, spec.checks, codes))
         if not any(x.status == "fail" for x in checks):
             checks.append(_feasibility_check(long, spec, codes))
-    return finish(long)
+    return long, checks
 
 
 def _feasibility_check(long: pd.DataFrame, spec: Spec, codes: np.ndarray) -> Check:
@@ -396,63 +474,90 @@ def _feasibility_check(long: pd.DataFrame, spec: Spec, codes: np.ndarray) -> Che
 
 
 def _typed(frame: pd.DataFrame, rows: np.ndarray, table: Table, spec: Spec,
-           checks: list[Check]) -> pd.DataFrame:
-    """Times (after the origin) and values as numbers, log transform applied."""
+           found: list[Tally]) -> pd.DataFrame | None:
+    """Times (after the origin) and values as numbers, log transform applied; None when
+    this file's rows fail the step."""
     d = spec.data
     kind, t, bad_t, problem = _times(frame, d)
     y = pd.to_numeric(frame[d["value"]], errors="coerce").to_numpy(dtype=float, na_value=np.nan)
     bad_y = np.flatnonzero(np.isnan(y) & frame[d["value"]].notna().to_numpy())
-    parts = []
-    if problem:
-        parts.append(problem)
-    elif bad_t.any():
+    t_first = y_first = origin_problem = ""
+    if not problem and bad_t.any():
         first = int(np.flatnonzero(bad_t)[0])
-        parts.append(f"{int(bad_t.sum())} time value(s) are not {kind}, first at "
-                     + _describe_row(table, rows, frame, first, d["time"])
-                     + ("" if kind == "dates" or not looks_like_dates(
-                         frame[d["time"]].iloc[[first]]) else f"; {DATE_HINT}"))
+        t_first = (_describe_row(table, rows, frame, first, d["time"])
+                   + ("" if kind == "dates" or not looks_like_dates(
+                       frame[d["time"]].iloc[[first]]) else f"; {DATE_HINT}"))
     if bad_y.size:
-        parts.append(f"{bad_y.size} value(s) are not numbers, first at "
-                     + _describe_row(table, rows, frame, int(bad_y[0]), d["value"]))
-    if parts:
-        checks.append(Check("columns typed", "fail", "; ".join(parts)))
-        raise _Stop
+        y_first = _describe_row(table, rows, frame, int(bad_y[0]), d["value"])
     subj = _as_ids(frame[d["subject"]])
-    origin, problem = _origin(frame, d, kind, t, subj)
-    if problem:
-        checks.append(Check("columns typed", "fail", problem))
-        raise _Stop
+    if not (problem or t_first or y_first):
+        origin, origin_problem = _origin(frame, d, kind, t, subj)
+    known = kind if frame[d["time"]].notna().any() else ""  # an empty column has no kind
+    found.append(Tally("columns typed", (0 if problem else int(bad_t.sum()), int(bad_y.size)),
+                       (known, problem, t_first, y_first, origin_problem),
+                       file=table.parts[0][0] if table.parts else ""))
+    if problem or t_first or y_first or origin_problem:
+        return None
     t = t - origin
     if kind == "dates":
         t = t / SCALE_DAYS[d.get("time_scale", "days")]
-        checks.append(Check("columns typed", "pass", _date_detail(d)))
-    else:
-        checks.append(Check("columns typed", "pass", "time and value are numeric" + (
-            "; time counted from each subject's " + (
-                "first reading" if d["time_origin"] == "first" else
-                f"baseline in column {d['time_origin']['column']!r}")
-            if d.get("time_origin") else "")))
-    with np.errstate(all="ignore"):
-        if d["transform"] in ("log", "log10"):
+    if d["transform"] in ("log", "log10"):
+        with np.errstate(all="ignore"):
             bad_log = np.flatnonzero(y <= 0)
             y = np.log(y) if d["transform"] == "log" else np.log10(y)
-        else:
-            bad_log = np.zeros(0, dtype=int)
-    if bad_log.size:
-        checks.append(Check("log transform", "fail",
-                            f"{bad_log.size} value(s) are zero or negative, first at "
-                            + _describe_row(table, rows, frame, int(bad_log[0]), d["value"])))
-        raise _Stop
+        found.append(Tally("log transform", (bad_log.size,), (
+            _describe_row(table, rows, frame, int(bad_log[0]), d["value"])
+            if bad_log.size else "",)))
+        if bad_log.size:
+            return None
     # the ids stay Arrow-backed text: to_numpy() would make a Python string per reading
     # (0.5 s and 0.3 GB at 4.5 million readings, and again to convert them back)
     long = pd.DataFrame({"subject": subj.astype("str").array, "time": t, "value": y})
     if d.get("group"):
         long["group"] = _as_ids(frame[d["group"]]).astype("str").array
-    if table.parts:  # which file each reading came from: the fit's parts
-        starts = np.array([first for _, first in table.parts])
-        long["part"] = (np.searchsorted(starts, rows, side="right") - 1).astype(np.intp)
     long.attrs["rows"] = rows
     return long
+
+
+def _say_typed(tallies: list[Tally], spec: Spec) -> Check:
+    d = spec.data
+    kinds: dict[str, str] = {}
+    for t in tallies:
+        if t.first[0]:
+            kinds.setdefault(t.first[0], t.file)
+    if len(kinds) > 1:
+        (k1, f1), (k2, f2) = list(kinds.items())[:2]
+        return Check("columns typed", "fail",
+                     f"column {d['time']!r} holds {k1} in {f1} but {k2} in {f2}; every file "
+                     "must hold the same kind of time")
+    kind = next(iter(kinds), "numbers")
+    n_t, n_y = _totals(tallies)
+    parts = []
+    problem = _first(tallies, 1)
+    if problem:
+        parts.append(problem)
+    elif n_t:
+        parts.append(f"{n_t} time value(s) are not {kind}, first at {_first(tallies, 2)}")
+    if n_y:
+        parts.append(f"{n_y} value(s) are not numbers, first at {_first(tallies, 3)}")
+    origin_problem = _first(tallies, 4)
+    if parts or origin_problem:
+        return Check("columns typed", "fail", "; ".join(parts) or origin_problem)
+    if kind == "dates":
+        return Check("columns typed", "pass", _date_detail(d))
+    return Check("columns typed", "pass", "time and value are numeric" + (
+        "; time counted from each subject's " + (
+            "first reading" if d["time_origin"] == "first" else
+            f"baseline in column {d['time_origin']['column']!r}")
+        if d.get("time_origin") else ""))
+
+
+def _say_log(tallies: list[Tally], spec: Spec) -> Check | None:
+    n = _totals(tallies)[0]
+    if n == 0:
+        return None
+    return Check("log transform", "fail",
+                 f"{n} value(s) are zero or negative, first at {_first(tallies, 0)}")
 
 
 def _as_ids(series: pd.Series) -> pd.Series:
@@ -479,51 +584,73 @@ def _date_detail(d: dict[str, Any]) -> str:
     return f"time is dates, counted in {scale} since {since}; value is numeric"
 
 
-def _cleaned(long: pd.DataFrame, table: Table, c: dict[str, Any], checks: list[Check],
-             spec: Spec) -> pd.DataFrame:
-    """Missing values, groups, duplicates, value range and domain, in that order."""
+def _cleaned(long: pd.DataFrame, table: Table, spec: Spec, found: list[Tally]
+             ) -> pd.DataFrame | None:
+    """Missing values, groups, duplicates, value range and domain, in that order; None
+    when this file's rows fail a step that stops, or none is left."""
+    c = spec.checks
     rows = long.attrs.pop("rows")
     na = (~np.isfinite(long.time.to_numpy()) | ~np.isfinite(long.value.to_numpy())
           | long.subject.isna().to_numpy())
     if "group" in long:
         na |= long.group.isna().to_numpy()
     n_na = int(na.sum())
-    what = "subject, time, value" + (" or group" if "group" in long else "")
-    if n_na == 0:
-        checks.append(Check("missing values", "pass", "no missing or non-finite values"))
-    elif c["missing"] == "fail" or n_na == len(long):
-        first = int(rows[int(np.flatnonzero(na)[0])])
-        checks.append(Check("missing values", "fail",
-                            f"{n_na} of {len(long)} rows have a missing or non-finite {what} "
-                            f"(first at {table.where(first)})"))
-        raise _Stop
-    else:
-        checks.append(Check("missing values", "warn",
-                            f"{n_na} of {len(long)} rows dropped (missing or non-finite {what})"))
+    found.append(Tally("missing values", (n_na, len(long)), (
+        table.where(int(rows[int(np.flatnonzero(na)[0])])) if n_na else "",)))
+    if n_na and (c["missing"] == "fail" or n_na == len(long)):
+        return None
     long = long.loc[~na].reset_index(drop=True)
     if "group" in long:
-        checks.append(_group_check(long))
-        if checks[-1].status == "fail":
-            raise _Stop
-    long, dup_check = _duplicates(long, c["duplicates"])
-    checks.append(dup_check)
-    checks.extend(_range_checks(long, c, spec))
-    return _apply_drops(long, c, spec)
+        found.append(_group_tally(long))
+        if found[-1].first[0]:
+            return None
+    long, tally = _duplicates(long, c["duplicates"])
+    found.append(tally)
+    found.extend(_range_tallies(long, spec))
+    long = _apply_drops(long, c, spec)
+    return long if len(long) else None
 
 
-def _group_check(long: pd.DataFrame) -> Check:
+def _say_missing(tallies: list[Tally], spec: Spec) -> Check:
+    n_na, n = _totals(tallies)
+    what = "subject, time, value" + (" or group" if spec.data.get("group") else "")
+    if n_na == 0:
+        return Check("missing values", "pass", "no missing or non-finite values")
+    if spec.checks["missing"] == "fail" or n_na == n:
+        return Check("missing values", "fail",
+                     f"{n_na} of {n} rows have a missing or non-finite {what} "
+                     f"(first at {_first(tallies, 0)})")
+    return Check("missing values", "warn",
+                 f"{n_na} of {n} rows dropped (missing or non-finite {what})")
+
+
+def _group_tally(long: pd.DataFrame) -> Tally:
+    """A subject in two groups (the first met), and the subjects per group."""
     per = long.groupby("subject", sort=False)["group"].nunique()
+    multi = ""
     if (per > 1).any():
-        subject = per.index[int(np.flatnonzero(per.to_numpy() > 1)[0])]
-        return Check("groups", "fail", f"subject {plain(subject)} is in more than one group; "
-                     "a group (arm, cohort, site) is one value per subject")
+        multi = plain(per.index[int(np.flatnonzero(per.to_numpy() > 1)[0])])
     sizes = long.drop_duplicates("subject").groupby("group").size()
-    if sizes.size < 2:
-        return Check("groups", "fail", f"one group only ({plain(sizes.index[0])}); a group "
+    return Tally("groups", first=(multi,),
+                 sizes=tuple((str(g), int(n)) for g, n in sizes.items()))
+
+
+def _say_groups(tallies: list[Tally], spec: Spec) -> Check:
+    multi = _first(tallies, 0)
+    if multi:
+        return Check("groups", "fail", f"subject {multi} is in more than one group; "
+                     "a group (arm, cohort, site) is one value per subject")
+    sizes: dict[str, int] = {}
+    for t in tallies:  # a subject's readings are in one file: its files' counts add up
+        for g, n in t.sizes:
+            sizes[g] = sizes.get(g, 0) + n
+    labels = sorted(sizes)
+    if len(labels) < 2:
+        return Check("groups", "fail", f"one group only ({plain(labels[0])}); a group "
                      "comparison needs two or more")
-    listed = ", ".join(f"{g} ({n} subjects)" for g, n in sizes.items())
-    status = "pass" if sizes.min() >= 2 else "warn"
-    return Check("groups", status, f"{sizes.size} groups: {listed}")
+    listed = ", ".join(f"{g} ({sizes[g]} subjects)" for g in labels)
+    status = "pass" if min(sizes.values()) >= 2 else "warn"
+    return Check("groups", status, f"{len(labels)} groups: {listed}")
 
 
 def duplicate_mask(codes: np.ndarray, t: np.ndarray) -> np.ndarray:
@@ -551,24 +678,37 @@ def duplicate_mask(codes: np.ndarray, t: np.ndarray) -> np.ndarray:
     return mask
 
 
-def _duplicates(long: pd.DataFrame, rule: str) -> tuple[pd.DataFrame, Check]:
+def _duplicates(long: pd.DataFrame, rule: str) -> tuple[pd.DataFrame, Tally]:
+    """The readings as the rule leaves them; the tally counts the readings that share a
+    (subject, time) and, when averaged, the readings they became."""
     dup = duplicate_mask(pd.factorize(long.subject)[0], long.time.to_numpy())
     n_dup = int(dup.sum())
     if n_dup == 0:
-        return long, Check("duplicate readings", "pass", "no subject has two readings at one time")
-    if rule == "fail":
-        row = long[dup].iloc[0]
-        return long, Check("duplicate readings", "fail",
-                           f"{n_dup} readings share a (subject, time) with another, e.g. "
-                           f"subject {plain(row.subject)} at time {row.time:g}")
+        return long, Tally("duplicate readings", (0, 0), ("",))
     if rule == "average":
-        keys = ["subject", "time"] + [k for k in ("group", "part") if k in long]
+        keys = ["subject", "time"] + (["group"] if "group" in long else [])
         merged = long.groupby(keys, sort=False)["value"].mean().reset_index()
-        return merged, Check("duplicate readings", "warn",
-                             f"{n_dup} readings at a shared (subject, time) were averaged into "
-                             f"{n_dup - (len(long) - len(merged))}")
-    return long, Check("duplicate readings", "warn",
-                       f"{n_dup} readings share a (subject, time); kept as they are")
+        return merged, Tally("duplicate readings", (n_dup, n_dup - (len(long) - len(merged))),
+                             ("",))
+    row = long[dup].iloc[0]
+    return long, Tally("duplicate readings", (n_dup, 0),
+                       (f"subject {plain(row.subject)} at time {row.time:g}",))
+
+
+def _say_duplicates(tallies: list[Tally], spec: Spec) -> Check:
+    n_dup, into = _totals(tallies)
+    rule = spec.checks["duplicates"]
+    if n_dup == 0:
+        return Check("duplicate readings", "pass", "no subject has two readings at one time")
+    if rule == "fail":
+        return Check("duplicate readings", "fail",
+                     f"{n_dup} readings share a (subject, time) with another, e.g. "
+                     f"{_first(tallies, 0)}")
+    if rule == "average":
+        return Check("duplicate readings", "warn",
+                     f"{n_dup} readings at a shared (subject, time) were averaged into {into}")
+    return Check("duplicate readings", "warn",
+                 f"{n_dup} readings share a (subject, time); kept as they are")
 
 
 def data_domains(spec: Spec) -> list[tuple[str, tuple[float, float]]]:
@@ -585,29 +725,33 @@ def data_domains(spec: Spec) -> list[tuple[str, tuple[float, float]]]:
     return out
 
 
-def _range_checks(long: pd.DataFrame, c: dict[str, Any], spec: Spec) -> list[Check]:
-    out = []
+def _range_tallies(long: pd.DataFrame, spec: Spec) -> list[Tally]:
+    """Values outside checks.value_range, and times outside each domain, counted."""
+    c, out = spec.checks, []
     if c.get("value_range") is not None:
         lo, hi = c["value_range"]
-        bad = (long.value < lo) | (long.value > hi)
-        n = int(bad.sum())
+        out.append(Tally("values in declared range",
+                         (int(((long.value < lo) | (long.value > hi)).sum()),)))
+    for name, (lo, hi) in data_domains(spec):
+        out.append(Tally(name, (int(((long.time < lo) | (long.time > hi)).sum()),)))
+    return out
+
+
+def _say_range(step: str, tallies: list[Tally], spec: Spec) -> Check:
+    c, n = spec.checks, _totals(tallies)[0]
+    if step == "values in declared range":
+        lo, hi = c["value_range"]
         status = "pass" if n == 0 else ("fail" if c["out_of_range"] == "fail" else "warn")
         action = {"warn": "kept", "drop": "dropped", "fail": "refused"}[c["out_of_range"]]
-        out.append(Check("values in declared range", status,
-                         f"all values within [{lo:g}, {hi:g}]" if n == 0 else
-                         f"{n} values outside [{lo:g}, {hi:g}] ({action})"))
-    for name, (lo, hi) in data_domains(spec):
-        n = int(((long.time < lo) | (long.time > hi)).sum())
-        if n == 0:
-            out.append(Check(name, "pass", f"all times within [{lo:g}, {hi:g}]"))
-        elif c["out_of_domain"] == "drop":
-            out.append(Check(name, "warn",
-                             f"{n} readings at times outside [{lo:g}, {hi:g}] (dropped)"))
-        else:
-            out.append(Check(name, "fail",
-                             f"{n} readings at times outside [{lo:g}, {hi:g}] (refused; set "
-                             "checks.out_of_domain: drop to leave them out)"))
-    return out
+        return Check(step, status, f"all values within [{lo:g}, {hi:g}]" if n == 0 else
+                     f"{n} values outside [{lo:g}, {hi:g}] ({action})")
+    lo, hi = dict(data_domains(spec))[step]
+    if n == 0:
+        return Check(step, "pass", f"all times within [{lo:g}, {hi:g}]")
+    if c["out_of_domain"] == "drop":
+        return Check(step, "warn", f"{n} readings at times outside [{lo:g}, {hi:g}] (dropped)")
+    return Check(step, "fail", f"{n} readings at times outside [{lo:g}, {hi:g}] (refused; set "
+                 "checks.out_of_domain: drop to leave them out)")
 
 
 def _apply_drops(long: pd.DataFrame, c: dict[str, Any], spec: Spec) -> pd.DataFrame:
@@ -619,6 +763,7 @@ def _apply_drops(long: pd.DataFrame, c: dict[str, Any], spec: Spec) -> pd.DataFr
         for _, (lo, hi) in data_domains(spec):
             keep &= ((long.time >= lo) & (long.time <= hi)).to_numpy()
     return long if keep.all() else long.loc[keep].reset_index(drop=True)
+
 
 
 def pair_coverage(long: pd.DataFrame, cells: int = 10, codes: np.ndarray | None = None

@@ -16,6 +16,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pytest
+import yaml
 
 from reportgen.errors import DataError
 from reportgen.manifest import Part, current_digest, digest
@@ -206,15 +207,21 @@ def test_a_glob_names_the_same_files_as_the_folder(tmp_path: Path) -> None:
     assert nothing.returncode == 2 and "names no Parquet files" in nothing.stderr
 
 
-def test_missing_ids_are_not_a_split_subject() -> None:
+def test_missing_ids_are_not_a_split_subject(tmp_path: Path) -> None:
     # rows without an id are the missing-values check's matter, in whichever files they are
-    from reportgen.data import _whole_subjects
+    from reportgen.data import load_dataset
+    from reportgen.spec import load_spec
 
-    parts = [Part("a.parquet", 1, "0" * 64), Part("b.parquet", 1, "1" * 64)]
-    whole = _whole_subjects(pd.Series(["s1", None, "s2", None]), [2, 2], parts)
-    assert whole.status == "pass"
-    split = _whole_subjects(pd.Series(["s1", "s2", "s2", "s3"]), [2, 2], parts)
-    assert split.status == "fail" and "subject 's2' in a.parquet, b.parquet" in split.detail
+    _split(tmp_path / "readings")
+    for name in ("part-0.parquet", "part-2.parquet"):
+        path = tmp_path / "readings" / name
+        frame = pd.read_parquet(path)
+        frame.loc[1, "patient"] = None
+        frame.to_parquet(path, index=False)
+    checks = {c.name: c for c in load_dataset(load_spec(_spec(tmp_path, "readings"))).checks}
+    assert checks["subjects whole in one file"].status == "pass"
+    assert checks["missing values"].status == "warn"
+    assert checks["missing values"].detail.startswith("2 of ")
 
 
 def test_groups_over_files_on_either_engine(tmp_path: Path) -> None:
@@ -237,3 +244,99 @@ def test_groups_over_files_on_either_engine(tmp_path: Path) -> None:
     reference = ROOT / "sample_runs" / "pump-service" / "v001" / "tables"
     for name in ("groups.csv", "group_means.csv", "scores.csv", "residuals_by_subject.csv"):
         _same_to_rounding(reference / name, here / "tables" / name)
+
+
+def _checks_of(spec: Path) -> tuple[dict[str, tuple[str, str]], pd.DataFrame]:
+    from reportgen.data import load_dataset
+    from reportgen.spec import load_spec
+
+    ds = load_dataset(load_spec(spec))
+    return {c.name: (c.status, c.detail) for c in ds.checks}, ds.frame
+
+
+def _messy(tmp_path: Path, **checks: str) -> tuple[Path, Path]:
+    """The example with a row selection, missing values, duplicates, a value out of range
+    and a time out of the domain spread over its three files, and the same rows as one
+    Parquet file: a spec for each (``checks``: rules changed in the checks section)."""
+    _split(tmp_path / "readings")
+    paths = sorted((tmp_path / "readings").iterdir())
+    for i, path in enumerate(paths):
+        frame = pd.read_parquet(path)
+        frame["usable"] = np.arange(len(frame)) % 17 != 3  # drops rows 3, 20, ... of each
+        if i > 0:
+            frame.loc[4 + i, "marker"] = np.nan
+        if i == 1:
+            frame = pd.concat([frame, frame.iloc[[7, 9]].assign(marker=1.0)], ignore_index=True)
+        if i == 2:
+            frame.loc[7, "marker"] = 500.0
+            frame.loc[8, "week"] = 130.0
+        frame.to_parquet(path, index=False)
+    pd.concat(pd.read_parquet(p) for p in paths).to_parquet(tmp_path / "one.parquet",
+                                                            index=False)
+    specs = []
+    for name in ("readings", "one.parquet"):
+        spec = yaml.safe_load(SPEC)
+        spec["data"].update(file=name, keep_rows=[{"column": "usable", "equals": True}])
+        spec["checks"].update(out_of_domain="drop", **checks)
+        specs.append(tmp_path / f"{name.split('.')[0]}.yaml")
+        specs[-1].write_text(yaml.safe_dump(spec, sort_keys=False))
+    return specs[0], specs[1]
+
+
+@pytest.mark.parametrize("duplicates", ["average", "fail"])
+def test_the_checks_over_files_say_what_one_file_says(tmp_path: Path, duplicates: str) -> None:
+    # Reference: the same rows read as one file and checked as a whole (the one-file path).
+    folder, one = _messy(tmp_path, duplicates=duplicates)
+    (here, frame), (there, whole) = _checks_of(folder), _checks_of(one)
+    assert here.pop("subjects whole in one file")[0] == "pass"
+    assert here == there
+    assert here["missing values"][0] == "warn"
+    assert here["duplicate readings"][0] == {"average": "warn", "fail": "fail"}[duplicates]
+    assert here["values in declared range"][0] == "warn"
+    assert here["times in declared domain"][1].endswith("(dropped)")
+    if duplicates == "average":
+        pd.testing.assert_frame_equal(frame.drop(columns="part"), whole)
+        assert frame.part.tolist() == sorted(frame.part)  # the files in manifest order
+
+
+def test_a_step_that_fails_in_some_files_fails_over_all(tmp_path: Path) -> None:
+    folder, one = _messy(tmp_path, missing="fail")
+    (here, _), (there, _) = _checks_of(folder), _checks_of(one)
+    # the one file's text, with its row of the first missing value named in its file
+    before = len(pd.read_parquet(tmp_path / "readings" / "part-0.parquet"))
+    expected = there["missing values"][1].replace(f"data row {before + 6} of the table",
+                                                  "data row 6 of part-1.parquet")
+    assert here["missing values"] == ("fail", expected)
+    assert expected.startswith("2 of ")
+    assert "duplicate readings" not in here  # the failed step stopped the later ones
+
+
+def test_a_group_per_file_is_no_single_group(tmp_path: Path) -> None:
+    # The pump example written one depot (its group) per file: each file holds one group,
+    # all of them together three; the one-file run's check is the reference.
+    data = pd.read_csv(ROOT / "specs" / "pump_service.csv", dtype={"pump": str})
+    (tmp_path / "depots").mkdir()
+    for depot, part in data.groupby("depot"):
+        part.to_parquet(tmp_path / "depots" / f"{depot}.parquet", index=False)
+    data.sort_values("depot", kind="stable").to_parquet(tmp_path / "one.parquet", index=False)
+    text = (ROOT / "specs" / "pump_service.yaml").read_text()
+    for name in ("depots", "one.parquet"):
+        (tmp_path / f"{name}.yaml").write_text(
+            text.replace("file: pump_service.csv", f"file: {name}"))
+    here, _ = _checks_of(tmp_path / "depots.yaml")
+    there, _ = _checks_of(tmp_path / "one.parquet.yaml")
+    assert here["groups"] == there["groups"] and here["groups"][0] == "pass"
+    assert here["groups"][1].startswith("3 groups: ")
+
+
+def test_files_that_disagree_on_the_kind_of_time_are_refused(tmp_path: Path) -> None:
+    _split(tmp_path / "readings")
+    path = tmp_path / "readings" / "part-1.parquet"
+    frame = pd.read_parquet(path)
+    frame["week"] = pd.Timestamp("2024-01-01") + pd.to_timedelta(frame.week * 7, unit="D")
+    frame.to_parquet(path, index=False)
+    here, _ = _checks_of(_spec(tmp_path, "readings"))
+    status, detail = here["columns typed"]
+    assert status == "fail"
+    assert detail.startswith("column 'week' holds numbers in part-0.parquet but dates in "
+                             "part-1.parquet")
