@@ -23,7 +23,7 @@ from .fpca.diagnostics import check_readings
 from .fpca.fit import fit_parts, seeded_sample
 from .fpca.frame import arrays_from_frame
 from .fpca.groups import GroupComparison, compare_groups_on
-from .fpca.plan import Executor, InProcess, Part, Partitioned, split_parts
+from .fpca.plan import Executor, InProcess, Partitioned, split_parts
 from .fpca.smoothing import trapezoid_weights
 from .spec import Spec
 
@@ -428,10 +428,13 @@ STANDARD_CAUTIONS = (
 )
 
 
-def _parts(ds: Dataset, codes: np.ndarray, t: np.ndarray, y: np.ndarray) -> list[Part]:
-    """The readings as the fit's parts (one per data file)."""
-    part = ds.frame["part"].to_numpy(dtype=np.intp) if "part" in ds.frame else None
-    return split_parts(codes, t, y, part, max(len(ds.parts), 1))
+def _data(ds: Dataset, executor: Executor) -> tuple[Partitioned, np.ndarray]:
+    """The readings as the fit's parts, one per data file, and the subjects' ids: those of
+    many files where they were read (``Dataset.held``), one file's placed on ``executor``."""
+    if ds.held is not None:
+        return Partitioned.of(executor, ds.held.parts), ds.held.ids
+    codes, t, y, labels = arrays_from_frame(ds.frame, "subject", "time", "value")
+    return Partitioned.of(executor, executor.place(split_parts(codes, t, y, None))), labels
 
 
 def analyse(spec: Spec, ds: Dataset, progress: Progress = lambda _: None,
@@ -443,15 +446,11 @@ def analyse(spec: Spec, ds: Dataset, progress: Progress = lambda _: None,
     just finished (for timing). The fits' passes over the data run on ``executor`` (here,
     by default; ``reportgen.engine``).
     """
-    codes, t, y, labels = arrays_from_frame(ds.frame, "subject", "time", "value")
     if not compiled_on_disk():
         progress("compiling the numerical kernels (once, about half a minute on 2 cores; "
                  "later runs load them from the cache)")
     progress("fit")
-    parts = _parts(ds, codes, t, y)
-    run_on = executor or InProcess()
-    data = Partitioned.of(run_on, run_on.place(parts))
-    del parts
+    data, labels = _data(ds, executor or InProcess())
     fit = fit_parts(data, labels, spec.options)  # the shown subjects' readings come later
     lap("fit")
     factors, factors_note = sensitivity_factors(spec, fit)
@@ -464,10 +463,13 @@ def analyse(spec: Spec, ds: Dataset, progress: Progress = lambda _: None,
         for k in range(fit.n_components)]
     groups: GroupComparison | None = None
     subject_groups: tuple[str, ...] = ()
-    if "group" in ds.frame:
+    if spec.data.get("group"):
         progress("groups")
-        per = ds.frame.drop_duplicates("subject").set_index("subject")["group"]
-        subject_groups = tuple(str(g) for g in per.reindex(fit.subjects).to_numpy())
+        if ds.held is not None and ds.held.groups is not None:  # by code: fit.subjects' order
+            subject_groups = tuple(str(g) for g in ds.held.groups)
+        else:
+            per = ds.frame.drop_duplicates("subject").set_index("subject")["group"]
+            subject_groups = tuple(str(g) for g in per.reindex(fit.subjects).to_numpy())
         groups = compare_groups_on(data, fit, np.asarray(subject_groups))
         lap("groups")
     shown = _shown(fit, spec)
@@ -480,7 +482,7 @@ def analyse(spec: Spec, ds: Dataset, progress: Progress = lambda _: None,
     outliers = _outliers(fit, spec.subjects["outlier_quantile"])
     lap("diagnostics")
     return AnalysisResult(
-        spec=spec, dataset=ds, fit=fit, sensitivity=tuple(runs),
+        spec=spec, dataset=replace(ds, held=None), fit=fit, sensitivity=tuple(runs),
         readings=view, residual_summary=summary, outliers=outliers,
         trajectories=trajectories,
         shown_subjects=shown, caveats=tuple(caveats), stable=tuple(stable),

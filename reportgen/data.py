@@ -20,18 +20,22 @@ from __future__ import annotations
 import hashlib
 import os
 import stat
-from dataclasses import dataclass, field, replace
+from collections.abc import Callable
+from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import pandas as pd
 
 from .errors import DataError
-from .manifest import Part, is_many, list_files
-from .manifest import digest as manifest_digest
+from .manifest import Part, is_many
 from .readers import Table, detect_format, is_date_column, looks_like_dates, parse_table, plain
 from .spec import Spec
+
+if TYPE_CHECKING:
+    from .fpca.executor import Executor
+    from .fpca.feasibility import DesignCounts
 
 SCALE_DAYS = {"hours": 1 / 24, "days": 1.0, "weeks": 7.0, "months": 365.25 / 12,
               "years": 365.25}
@@ -48,10 +52,21 @@ class Check:
 
 
 @dataclass(frozen=True)
+class Held:
+    """The cleaned readings of many files as the fit's parts, left where the files were
+    read: the executor's handles (in manifest order), the subject ids (sorted: subject code
+    ``i`` is ``ids[i]``) and each subject's group (by code; None without groups)."""
+
+    parts: tuple[Any, ...]
+    ids: np.ndarray
+    groups: np.ndarray | None
+
+
+@dataclass(frozen=True)
 class Dataset:
-    """Cleaned long table (columns subject, time, value, group when the spec names one,
-    and part, the index of each reading's file in ``parts``, when data.file names many
-    files) and what the checks found."""
+    """Cleaned long table (columns subject, time, value, group when the spec names one)
+    and what the checks found. When data.file names many files the table is empty: their
+    readings stay where they were read (``held``, when read for a fit)."""
 
     frame: pd.DataFrame
     checks: tuple[Check, ...]
@@ -62,6 +77,7 @@ class Dataset:
     rows_read: int
     labels: dict[str, str] = field(default_factory=dict)  # role -> label stored in the file
     parts: tuple[Part, ...] = ()  # data.file names many Parquet files: these, in order
+    held: Held | None = None  # many files read for a fit: their readings, as parts
 
     @property
     def failed(self) -> list[Check]:
@@ -107,7 +123,7 @@ def _columns_needed(d: dict[str, Any]) -> list[tuple[str, str]]:
     return out
 
 
-def _column_check(table: Table, d: dict[str, Any], shown: str) -> Check:
+def column_check(table: Table, d: dict[str, Any], shown: str) -> Check:
     frame = table.frame
     missing = [(f, c) for f, c in _columns_needed(d) if c not in frame.columns]
     if missing:
@@ -267,73 +283,24 @@ def _origin(frame: pd.DataFrame, d: dict[str, Any], kind: str, t: np.ndarray,
     return base, ""
 
 
-def load_dataset(spec: Spec) -> Dataset:
+def load_dataset(spec: Spec, executor: Executor | None = None, for_fit: bool = False
+                 ) -> Dataset:
     """Read the file (or files) and run every check. Fails (DataError) only after all
-    checks ran."""
+    checks ran.
+
+    Many files are read, checked and cleaned by tasks on ``executor`` (here, one after
+    another, by default); with ``for_fit`` their readings are left there as the fit's parts
+    (``Dataset.held``).
+    """
     if is_many(spec.data["file"], spec.data_path):
-        dataset = _dataset_from_parts(spec)
+        from .folder import dataset_from_files
+
+        dataset = dataset_from_files(spec, executor, for_fit)
     else:
         raw, path = read_file(spec)
         dataset = dataset_from_bytes(raw, path, spec, design=True)
     _release_arrow_memory()
     return dataset
-
-
-def _dataset_from_parts(spec: Spec) -> Dataset:
-    """Every Parquet file that ``data.file`` names, in manifest order, each read (its bytes
-    hashed as read), checked and cleaned on its own; the files' findings are then put
-    together check by check. A subject whose readings lie in two files fails a check: the
-    partitioned plan needs whole subjects per file."""
-    d, shown = spec.data, spec.data["file"]
-    if d["format"] not in ("auto", "parquet"):
-        raise DataError(f"data.file {shown!r} names a folder or pattern, which is read as "
-                        f"Parquet files; data.format says {d['format']}")
-    parts: list[Part] = []
-    files: list[FileChecks] = []
-    ids: list[np.ndarray] = []
-    rows_read, columns, first = 0, "", None
-    for i, (rel, full) in enumerate(list_files(spec.data_path, shown)):
-        raw, _ = read_path(full, f"{shown}: {rel}")
-        parts.append(Part(rel, len(raw), hashlib.sha256(raw).hexdigest()))
-        table = replace(parse_table(raw, "parquet", f"{shown}: {rel}"), parts=((rel, 0),))
-        del raw
-        here = ", ".join(map(str, table.frame.columns))
-        if first is None:
-            first, columns = table, here
-            column_check = _column_check(table, d, shown)
-        elif here != columns:
-            raise DataError(f"data.file {shown!r}: {rel!r} has the columns {here}; the first "
-                            f"file, {parts[0].path!r}, has {columns}")
-        rows_read += len(table.frame)
-        ids.append(table.frame[d["subject"]].dropna().unique())
-        files.append(_file_checks(table, spec, i))
-        del table
-    if rows_read == 0:
-        raise DataError(f"data.file {shown!r} has a header but no rows")
-    assert first is not None  # list_files names at least one file
-    frame, checks = _assembled(spec, files, [_whole_subjects(ids, parts), column_check], True)
-    return Dataset(frame, tuple(checks), spec.data_path, shown, sum(p.n_bytes for p in parts),
-                   manifest_digest(parts), rows_read, _labels(first, d), tuple(parts))
-
-
-def _whole_subjects(ids: list[np.ndarray], parts: list[Part]) -> Check:
-    """Fails when a subject's readings lie in more than one file (``ids``: each file's
-    distinct subject ids, missing ones left out: they are the missing-values check's
-    matter)."""
-    codes, uniques = pd.factorize(pd.Series(np.concatenate(ids) if ids else []))
-    files = np.repeat(np.arange(len(ids)), [len(x) for x in ids])
-    split = np.flatnonzero(np.bincount(codes, minlength=len(uniques)) > 1)
-    n_files = len(parts)
-    if split.size == 0:
-        return Check("subjects whole in one file", "pass",
-                     f"{n_files} Parquet files; every subject's readings are in one of them")
-    first = int(split[0])  # the split subject met first, in manifest order
-    where = [parts[int(f)].path for f in files[codes == first]]
-    return Check("subjects whole in one file", "fail",
-                 f"{split.size} subject(s) have readings in more than one of the "
-                 f"{n_files} files, e.g. subject {plain(uniques[first])} in "
-                 f"{', '.join(where[:3])}; write the data partitioned by subject (all of a "
-                 "subject's readings in one file)")
 
 
 def _release_arrow_memory() -> None:
@@ -358,13 +325,26 @@ def dataset_from_bytes(raw: bytes, path: Path, spec: Spec, design: bool = True,
     table = parse_table(raw, fmt, shown, text_columns=text)
     if len(table.frame) == 0:
         raise DataError(f"data.file {shown!r} has a header but no rows")
-    checks = [_column_check(table, d, shown)]
-    frame, checks = _assembled(spec, [_file_checks(table, spec, None)], checks, design)
-    return Dataset(frame, tuple(checks), path, shown, len(raw),
-                   hashlib.sha256(raw).hexdigest(), len(table.frame), _labels(table, d))
+    checks = [column_check(table, d, shown)]
+    found = file_checks(table, spec)
+    merged, stopped = merged_steps(spec, [found.tallies])
+    checks += merged
+    long = found.long if found.long is not None and not stopped else empty_readings(spec)
+    if design and not stopped:
+        codes = pd.factorize(long.subject)[0].astype(np.intp)
+        t = long.time.to_numpy(dtype=np.float64)
+        y = long.value.to_numpy(dtype=np.float64)
+        span = (float(t.min()), float(t.max())) if t.size else (np.nan, np.nan)
+        checks += design_checks(
+            spec, np.bincount(codes), span, bool(y.size) and float(np.ptp(y)) == 0.0,
+            lambda observed, domain, fit: design_sums(codes, t, observed, domain, spec, fit),
+            any(x.status == "fail" for x in checks))
+    return Dataset(long, tuple(checks), path, shown, len(raw),
+                   hashlib.sha256(raw).hexdigest(), len(table.frame), column_labels(table, d))
 
 
-def _labels(table: Table, d: dict[str, Any]) -> dict[str, str]:
+def column_labels(table: Table, d: dict[str, Any]) -> dict[str, str]:
+    """The labels the file stores for the time and value columns."""
     return {role: table.labels[d[role]] for role in ("time", "value")
             if table.labels.get(d[role])}
 
@@ -399,9 +379,8 @@ def _first(tallies: list[Tally], slot: int) -> str:
     return next((t.first[slot] for t in tallies if t.first[slot]), "")
 
 
-def _file_checks(table: Table, spec: Spec, part: int | None) -> FileChecks:
-    """The row-level steps on one parsed file, each leaving a tally; ``part``: the file's
-    index when data.file names many (it becomes the readings' ``part`` column).
+def file_checks(table: Table, spec: Spec) -> FileChecks:
+    """The row-level steps on one parsed file, each leaving a tally.
 
     A file stops where its own rows make a step fail; it is not stopped by what only all
     files together decide (no row kept, every row missing, one group only): it then
@@ -417,8 +396,6 @@ def _file_checks(table: Table, spec: Spec, part: int | None) -> FileChecks:
     long = _typed(frame, rows, table, spec, found) if len(frame) else None
     if long is not None:
         long = _cleaned(long, table, spec, found)
-    if long is not None and part is not None:
-        long["part"] = np.full(len(long), part, dtype=np.intp)
     return FileChecks(tuple(found), long)
 
 
@@ -426,51 +403,109 @@ _STEPS_THAT_STOP = {"row selection", "columns typed", "log transform", "missing 
                     "groups"}
 
 
-def _assembled(spec: Spec, files: list[FileChecks], checks: list[Check], design: bool
-               ) -> tuple[pd.DataFrame, list[Check]]:
-    """The files' tallies put together step by step (a failed step that stops stops the
-    later ones), the cleaned readings of every file in order, and, when ``design``, the
-    checks on the design of all of them."""
+def merged_steps(spec: Spec, tallies: list[tuple[Tally, ...]]) -> tuple[list[Check], bool]:
+    """The files' tallies (one tuple per file, in manifest order) put together step by step,
+    and whether a failed step stopped the later ones."""
     say = {"row selection": _say_selection, "columns typed": _say_typed,
            "log transform": _say_log, "missing values": _say_missing, "groups": _say_groups,
            "duplicate readings": _say_duplicates}
     steps = ["row selection", "columns typed", "log transform", "missing values", "groups",
              "duplicate readings", "values in declared range",
              *(name for name, _ in data_domains(spec))]
-    stopped = False
+    checks = []
     for step in steps:
-        tallies = [t for f in files for t in f.tallies if t.step == step]
-        check = (say[step](tallies, spec) if step in say else _say_range(step, tallies, spec)
-                 ) if tallies else None
+        these = [t for file in tallies for t in file if t.step == step]
+        check = (say[step](these, spec) if step in say else _say_range(step, these, spec)
+                 ) if these else None
         if check is not None:
             checks.append(check)
             if check.status == "fail" and step in _STEPS_THAT_STOP:
-                stopped = True
-                break
-    kept = [f.long for f in files if f.long is not None]
-    if stopped or not kept:
-        columns = ["subject", "time", "value"] + (["group"] if spec.data.get("group") else [])
-        return pd.DataFrame({c: [] for c in columns}), checks
-    long = kept[0] if len(kept) == 1 else pd.concat(kept, ignore_index=True)
-    del kept
-    if design:
-        codes = pd.factorize(long.subject)[0].astype(np.intp)  # once, for both steps
-        checks.extend(_design_checks(long, spec.checks, codes))
-        if not any(x.status == "fail" for x in checks):
-            checks.append(_feasibility_check(long, spec, codes))
-    return long, checks
+                return checks, True
+    return checks, False
 
 
-def _feasibility_check(long: pd.DataFrame, spec: Spec, codes: np.ndarray) -> Check:
-    """What the fit would refuse (``fpca.feasibility``), so that "usable" means usable."""
-    from .fpca.feasibility import problems
+def empty_readings(spec: Spec) -> pd.DataFrame:
+    columns = ["subject", "time", "value"] + (["group"] if spec.data.get("group") else [])
+    return pd.DataFrame({c: [] for c in columns})
 
-    found = problems(codes, long.time.to_numpy(dtype=np.float64),
-                     long.value.to_numpy(dtype=np.float64), spec.options)
-    if found:
-        return Check("fit feasible", "fail", "; ".join(found))
-    return Check("fit feasible", "pass", "the mean, diagonal and covariance smoothers are "
-                 "defined on the whole grid at the largest bandwidth the fit may use")
+
+@dataclass(frozen=True)
+class DesignSums:
+    """The design checks' counts of some of the readings, added over files: pairs per cell
+    pair of the 10 x 10 partition of the time-pair square (over the readings' range), and
+    the feasibility test's counts on the fit's domain (None when not asked for)."""
+
+    cells: np.ndarray
+    fit: DesignCounts | None
+
+
+def design_sums(subject: np.ndarray, t: np.ndarray, observed: tuple[float, float],
+                domain: tuple[float, float], spec: Spec, fit: bool) -> DesignSums:
+    """The counts of these readings (``subject``: codes 0 .. m - 1)."""
+    from .fpca.feasibility import count_design
+
+    cells = 10
+    lo, hi = observed
+    pairs: np.ndarray = np.zeros((cells, cells))
+    if hi > lo and subject.size:
+        cell = np.minimum(((t - lo) / (hi - lo) * cells).astype(int), cells - 1)
+        n = int(subject.max()) + 1
+        table = np.bincount(subject * cells + cell, minlength=n * cells).reshape(n, cells)
+        table = table.astype(np.float64)
+        pairs = table.T @ table - np.diag(table.sum(axis=0))  # exact: whole numbers
+    return DesignSums(pairs, count_design(subject, t, domain, spec.options) if fit else None)
+
+
+def add_design_sums(a: DesignSums, b: DesignSums) -> DesignSums:
+    from .fpca.feasibility import add_design
+
+    return DesignSums(a.cells + b.cells, add_design(a.fit, b.fit)
+                      if a.fit is not None and b.fit is not None else None)
+
+
+def design_checks(spec: Spec, n_obs: np.ndarray, t_range: tuple[float, float],
+                  constant: bool, sums: Callable[[tuple[float, float], tuple[float, float],
+                                                  bool], DesignSums],
+                  failed: bool) -> list[Check]:
+    """The checks on the design of all the readings: ``n_obs`` (readings per subject),
+    their time range, whether every value is the same, and ``sums`` (observed range,
+    domain, with the feasibility counts) that counts them; ``failed``: an earlier check
+    failed (the feasibility test is then left out)."""
+    from .fpca.feasibility import design_domain, problems_from
+
+    c, out = spec.checks, []
+    n_subj = int(n_obs.size)
+    if n_subj < c["min_subjects"]:
+        out.append(Check("enough subjects", "fail",
+                         f"{n_subj} subjects; the spec asks for at least {c['min_subjects']}"))
+    else:
+        out.append(Check("enough subjects", "pass",
+                         f"{n_subj} subjects, {int(n_obs.sum())} readings"))
+    single = int((n_obs == 1).sum())
+    multi = n_subj - single
+    status = "pass" if single <= n_subj / 2 else "warn"
+    if multi < 2:
+        status = "fail"
+    out.append(Check("subjects with one reading", status,
+                     f"{single} of {n_subj} subjects have a single reading (allowed; they "
+                     f"inform the mean, and get scores); {multi} have two or more"))
+    if multi < 2:
+        return out
+    failed = failed or any(x.status == "fail" for x in out)
+    domain = design_domain(spec.options, *t_range)
+    found = sums(t_range, domain, not failed)
+    cover = float((found.cells > 0.5).mean()) if t_range[1] > t_range[0] else 0.0
+    ok = cover >= c["min_pair_coverage"]
+    out.append(Check("time-pair coverage", "pass" if ok else "warn",
+                     f"{cover:.0%} of the 10 x 10 cells of the time-pair square hold pairs"
+                     + ("" if ok else "; the covariance elsewhere is extrapolated")))
+    if found.fit is not None:
+        problems = problems_from(found.fit, n_obs, domain, constant, spec.options)
+        out.append(Check("fit feasible", "fail", "; ".join(problems)) if problems else
+                   Check("fit feasible", "pass", "the mean, diagonal and covariance smoothers "
+                         "are defined on the whole grid at the largest bandwidth the fit "
+                         "may use"))
+    return out
 
 
 def _typed(frame: pd.DataFrame, rows: np.ndarray, table: Table, spec: Spec,
@@ -764,50 +799,6 @@ def _apply_drops(long: pd.DataFrame, c: dict[str, Any], spec: Spec) -> pd.DataFr
             keep &= ((long.time >= lo) & (long.time <= hi)).to_numpy()
     return long if keep.all() else long.loc[keep].reset_index(drop=True)
 
-
-
-def pair_coverage(long: pd.DataFrame, cells: int = 10, codes: np.ndarray | None = None
-                  ) -> float:
-    """Share of the cells of a cells x cells partition of the time-pair square that hold
-    at least one pair (t_ij, t_il), j != l, of some subject (``codes``: the subjects'
-    integer codes, when already at hand)."""
-    t = long.time.to_numpy()
-    lo, hi = float(t.min()), float(t.max())
-    if not hi > lo:
-        return 0.0
-    cell = np.minimum(((t - lo) / (hi - lo) * cells).astype(int), cells - 1)
-    codes = pd.factorize(long.subject)[0] if codes is None else codes
-    n = int(codes.max()) + 1
-    table = np.bincount(codes * cells + cell, minlength=n * cells).reshape(n, cells)
-    table = table.astype(np.float64)
-    pairs = table.T @ table - np.diag(table.sum(axis=0))  # pair counts per cell pair
-    return float((pairs > 0.5).mean())
-
-
-def _design_checks(long: pd.DataFrame, c: dict[str, Any], codes: np.ndarray) -> list[Check]:
-    out = []
-    per = np.bincount(codes)  # readings per subject
-    n_subj = int(per.size)
-    if n_subj < c["min_subjects"]:
-        out.append(Check("enough subjects", "fail",
-                         f"{n_subj} subjects; the spec asks for at least {c['min_subjects']}"))
-    else:
-        out.append(Check("enough subjects", "pass", f"{n_subj} subjects, {len(long)} readings"))
-    single = int((per == 1).sum())
-    multi = n_subj - single
-    status = "pass" if single <= n_subj / 2 else "warn"
-    if multi < 2:
-        status = "fail"
-    out.append(Check("subjects with one reading", status,
-                     f"{single} of {n_subj} subjects have a single reading (allowed; they "
-                     f"inform the mean, and get scores); {multi} have two or more"))
-    if multi >= 2:
-        cover = pair_coverage(long, codes=codes)
-        ok = cover >= c["min_pair_coverage"]
-        out.append(Check("time-pair coverage", "pass" if ok else "warn",
-                         f"{cover:.0%} of the 10 x 10 cells of the time-pair square hold pairs"
-                         + ("" if ok else "; the covariance elsewhere is extrapolated")))
-    return out
 
 
 def require_passed(dataset: Dataset) -> None:

@@ -80,10 +80,11 @@ def build_outputs(spec: Spec, version: int, started: str,
     clock = timer or Timer()
     run_on = engine or local_engine()
     style = load_style(spec) if render else None  # a bad style file fails before the fit
-    dataset = load_dataset(spec)
+    dataset = load_dataset(spec, run_on.executor, for_fit=True)
     require_passed(dataset)
     clock.lap("data")
     result = analyse(spec, dataset, progress, clock.lap, run_on.executor)
+    dataset = result.dataset  # without the parts of many files, which the fit is done with
     frames = build_tables(result)
     if style is None:
         tables = canonical_bytes(frames)

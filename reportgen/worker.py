@@ -65,7 +65,7 @@ def summary_view(result: AnalysisResult) -> AnalysisResult:
     ds = result.dataset
     runs = tuple(replace(r, fit=r.fit.without_subjects()) if r.fit is not None else r
                  for r in result.sensitivity)
-    return replace(result, dataset=replace(ds, frame=ds.frame.iloc[:0]),
+    return replace(result, dataset=replace(ds, frame=ds.frame.iloc[:0], held=None),
                    fit=result.fit.without_subjects(), sensitivity=runs,
                    readings=result.readings.empty(),
                    residual_summary=result.residual_summary.iloc[:0],

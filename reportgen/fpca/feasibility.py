@@ -16,6 +16,7 @@ undefined makes a candidate fail; when all fail the run says so).
 from __future__ import annotations
 
 import sys
+from dataclasses import dataclass
 from itertools import pairwise
 from typing import Any
 
@@ -96,6 +97,45 @@ def _largest(setting: float | str, span: float, bins: BinGrid, n_subjects: int,
     return float(candidate_bandwidths(span, bins.width, n_subjects, dim)[-1])
 
 
+@dataclass(frozen=True)
+class DesignCounts:
+    """What the feasibility tests need of some of the readings, added over parts of them
+    (the design of a fit on ``domain`` = (lo, hi)): readings outside the domain, linearly
+    binned reading counts inside it on the mean and covariance bins, and the pairs' counts
+    on the covariance bins (zeros when not asked for)."""
+
+    outside: int
+    mean: FloatArray
+    diagonal: FloatArray
+    pairs: FloatArray
+
+
+def count_design(subject: IntArray, t: FloatArray, domain: tuple[float, float],
+                 options: FPCAOptions, pairs: bool = True) -> DesignCounts:
+    """The counts of these readings (``subject``: codes 0 .. m - 1)."""
+    lo, hi = domain
+    outside = int(np.count_nonzero((t < lo) | (t > hi)))
+    b = options.covariance_bins
+    if not hi > lo:
+        return DesignCounts(outside, np.zeros(options.mean_bins), np.zeros(b), np.zeros((b, b)))
+    inside = (t >= lo) & (t <= hi)
+    subject, t = subject[inside], t[inside]
+    cbins = BinGrid(lo, hi, b)
+    return DesignCounts(outside, _reading_counts(t, BinGrid(lo, hi, options.mean_bins)),
+                        _reading_counts(t, cbins),
+                        pair_counts(subject, t, cbins) if pairs else np.zeros((b, b)))
+
+
+def add_design(a: DesignCounts, b: DesignCounts) -> DesignCounts:
+    return DesignCounts(a.outside + b.outside, a.mean + b.mean, a.diagonal + b.diagonal,
+                        a.pairs + b.pairs)
+
+
+def design_domain(options: FPCAOptions, t_min: float, t_max: float) -> tuple[float, float]:
+    """The fit's domain: the declared one, or the readings' range."""
+    return (options.domain if options.domain is not None else (t_min, t_max))
+
+
 def problems(subject: IntArray, t: FloatArray, y: FloatArray,
              options: FPCAOptions = FPCAOptions()) -> list[str]:
     """Every reason the fit of these readings would stop, in the fit's words; [] if none.
@@ -104,12 +144,20 @@ def problems(subject: IntArray, t: FloatArray, y: FloatArray,
     """
     if t.size == 0:
         return ["no readings"]
-    lo, hi = options.domain if options.domain is not None else (float(t.min()), float(t.max()))
-    out: list[str] = []
-    outside = int(np.count_nonzero((t < lo) | (t > hi)))
-    if outside:
-        out.append(f"{outside} readings lie outside the domain [{lo:.6g}, {hi:.6g}]")
+    domain = design_domain(options, float(t.min()), float(t.max()))
     n_obs = np.bincount(subject)
+    counts = count_design(subject, t, domain, options, int(np.count_nonzero(n_obs >= 2)) >= 2)
+    return problems_from(counts, n_obs, domain, float(np.ptp(y)) == 0.0, options)
+
+
+def problems_from(counts: DesignCounts, n_obs: IntArray, domain: tuple[float, float],
+                  constant: bool, options: FPCAOptions) -> list[str]:
+    """``problems`` from the counts of all readings (``n_obs``: readings per subject;
+    ``constant``: every reading has the same value)."""
+    lo, hi = domain
+    out: list[str] = []
+    if counts.outside:
+        out.append(f"{counts.outside} readings lie outside the domain [{lo:.6g}, {hi:.6g}]")
     n_multi = int(np.count_nonzero(n_obs >= 2))
     if n_multi < 2:
         out.append("the covariance needs at least two subjects with two or more readings; "
@@ -117,29 +165,27 @@ def problems(subject: IntArray, t: FloatArray, y: FloatArray,
     if not hi > lo:
         out.append(f"all readings are at one time ({lo:.6g}): a curve cannot be estimated")
         return out
-    if float(np.ptp(y)) == 0.0:
+    if constant:
         out.append("every reading has the same value: there is nothing to decompose")
-    inside = (t >= lo) & (t <= hi)
-    subject, t = subject[inside], t[inside]
     kernel = get_kernel(options.kernel)
     grid = np.linspace(lo, hi, options.n_grid)
     span, n = hi - lo, int(n_obs.size)
     mbins = BinGrid(lo, hi, options.mean_bins)
     cbins = BinGrid(lo, hi, options.covariance_bins)
-    counts = _reading_counts(t, mbins)
+    counts_m = counts.mean
     h = _largest(options.mean_bandwidth, span, mbins, n, 1)
     evals = np.concatenate([grid, mbins.centers])
-    if not np.all(np.isfinite(local_linear_binned_1d(evals, mbins.centers, counts,
-                                                     np.zeros_like(counts), h, kernel))):
-        out.append(_gap("mean", h, options.mean_bandwidth, evals, mbins, counts, kernel))
-    dcounts = _reading_counts(t, cbins)
+    if not np.all(np.isfinite(local_linear_binned_1d(evals, mbins.centers, counts_m,
+                                                     np.zeros_like(counts_m), h, kernel))):
+        out.append(_gap("mean", h, options.mean_bandwidth, evals, mbins, counts_m, kernel))
+    dcounts = counts.diagonal
     h = _largest(options.diagonal_bandwidth, span, cbins, n, 1)
     if not np.all(np.isfinite(local_linear_binned_1d(grid, cbins.centers, dcounts,
                                                      np.zeros_like(dcounts), h, kernel))):
         out.append(_gap("diagonal", h, options.diagonal_bandwidth, grid, cbins, dcounts,
                         kernel))
     if n_multi >= 2:
-        pairs = pair_counts(subject, t, cbins)
+        pairs = counts.pairs
         h = _largest(options.covariance_bandwidth, span, cbins, n, 2)
         surface = local_linear_binned_2d(grid, cbins.centers, pairs, np.zeros_like(pairs), h,
                                          kernel, symmetric=True)

@@ -23,10 +23,10 @@ report's diagnostics are one more pass (``diagnostics.check_readings``).
 
 from __future__ import annotations
 
-from collections.abc import Callable, Sequence
+from collections.abc import Sequence
 from dataclasses import dataclass
 from functools import cached_property
-from typing import Any, Protocol, TypeVar
+from typing import Any, TypeVar
 
 import numpy as np
 from threadpoolctl import threadpool_limits
@@ -35,6 +35,7 @@ from ..errors import EstimationError
 from ._kernels import interpolate_columns
 from .components import evaluate_at
 from .design import BinnedStats, IntArray, PairStats, Sample, mean_stats, pair_stats
+from .executor import Executor, InProcess, tree_sum
 from .scores import conditional_scores
 from .smoothing import BinGrid, FloatArray
 
@@ -80,50 +81,6 @@ def split_parts(codes: IntArray, t: FloatArray, y: FloatArray, part: IntArray | 
         out.append(Part(Sample.from_arrays(local.astype(np.intp), t[rows], y[rows]),
                         subjects.astype(np.intp)))
     return out
-
-
-class Executor(Protocol):
-    """Runs a pass over parts. ``place`` puts parts where the passes run and returns their
-    handles. ``per_part[i]`` (a tuple) goes to part ``i`` only; ``shared`` to every part.
-    ``map`` returns the results in the parts' order; ``keep`` leaves them where they were
-    computed and returns handles that ``map`` accepts as parts."""
-
-    def place(self, parts: list[Part]) -> Sequence[Any]: ...
-
-    def map(self, fn: Callable[..., T], parts: Sequence[Any],
-            per_part: Sequence[tuple[Any, ...]] | None = None, shared: tuple[Any, ...] = ()
-            ) -> list[T]: ...
-
-    def keep(self, fn: Callable[..., Part], parts: Sequence[Any],
-             per_part: Sequence[tuple[Any, ...]] | None = None, shared: tuple[Any, ...] = ()
-             ) -> list[Any]: ...
-
-
-class InProcess:
-    """Runs every pass here, one part after another; the parts are their own handles."""
-
-    def place(self, parts: list[Part]) -> list[Part]:
-        return list(parts)
-
-    def map(self, fn: Callable[..., T], parts: Sequence[Any],
-            per_part: Sequence[tuple[Any, ...]] | None = None, shared: tuple[Any, ...] = ()
-            ) -> list[T]:
-        extra = per_part if per_part is not None else [()] * len(parts)
-        return [fn(p, *e, *shared) for p, e in zip(parts, extra, strict=True)]
-
-    keep = map
-
-
-def tree_sum(items: Sequence[T], add: Callable[[T, T], T]) -> T:
-    """Sum in a fixed binary tree: neighbours in order, level by level
-    (((0 + 1) + (2 + 3)) + 4 for five items); one item is returned as it is."""
-    level = list(items)
-    if not level:
-        raise ValueError("nothing to add")
-    while len(level) > 1:
-        level = [add(level[i], level[i + 1]) if i + 1 < len(level) else level[i]
-                 for i in range(0, len(level), 2)]
-    return level[0]
 
 
 def in_code_order(owner: IntArray, held: IntArray) -> tuple[IntArray, IntArray]:

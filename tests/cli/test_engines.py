@@ -87,3 +87,39 @@ def test_a_cluster_that_fails_during_the_run_is_an_error(scheduler: str) -> None
     with pytest.raises(EngineError, match="the Dask cluster failed during the run"), \
             open_engine("dask", scheduler):
         raise CommClosedError("the scheduler went away")
+
+
+def test_worker_processes_read_a_folder_as_this_process_does(scheduler: str,
+                                                            tmp_path: Path) -> None:
+    # The pump example (groups) split by pump into three Parquet files: the workers read,
+    # check and clean the files; the tables are those of the local engine's run.
+    import pandas as pd
+
+    data = pd.read_csv(ROOT / "specs" / "pump_service.csv", dtype={"pump": str})
+    (tmp_path / "pumps").mkdir()
+    ids = sorted(data.pump.unique())
+    key = data.pump.map({s: i * 3 // len(ids) for i, s in enumerate(ids)})
+    for k, part in data.groupby(key):
+        part.to_parquet(tmp_path / "pumps" / f"part-{k}.parquet", index=False)
+    spec = tmp_path / "pumps.yaml"
+    spec.write_text((ROOT / "specs" / "pump_service.yaml").read_text()
+                    .replace("file: pump_service.csv", "file: pumps")
+                    .replace("logo: fleet_logo.svg", ""))
+    runs = {}
+    for engine in ("local", "dask"):
+        extra = ["--scheduler", scheduler] if engine == "dask" else []
+        done = cli("run", str(spec), "--out", str(tmp_path / engine), "--engine", engine,
+                   "--quiet", *extra)
+        assert done.returncode == 0, done.stdout + done.stderr
+        runs[engine] = next((tmp_path / engine).glob("*/v001"))
+    for path in sorted((runs["local"] / "tables").iterdir()):
+        assert (runs["dask"] / "tables" / path.name).read_bytes() == path.read_bytes(), \
+            path.name
+    # a file that a worker cannot use stops the run with the file named, nothing written
+    part = pd.read_parquet(tmp_path / "pumps" / "part-1.parquet")
+    part.drop(columns="vibration").to_parquet(tmp_path / "pumps" / "part-1.parquet")
+    done = cli("run", str(spec), "--out", str(tmp_path / "refused"), "--engine", "dask",
+               "--scheduler", scheduler)
+    assert done.returncode == 2, done.stdout + done.stderr
+    assert "part-1.parquet" in done.stderr and "Traceback" not in done.stderr
+    assert not any((tmp_path / "refused").rglob("v0*"))

@@ -38,3 +38,16 @@ def test_light_commands_import_no_numerical_library(args: tuple[str, ...], study
     argv = [str(run) if a == "RUN" else a for a in args]
     result = _loaded(*argv, cwd=study.parent)
     assert result == {"code": 0, "loaded": []}
+
+
+def test_checking_a_folder_of_files_imports_no_numerical_library(tmp_path: Path) -> None:
+    # The files are read and checked as passes over files; nothing is fitted.
+    import pandas as pd
+
+    data = pd.read_csv(ROOT / "specs" / "clinic_visits.csv", dtype={"patient": str})
+    (tmp_path / "readings").mkdir()
+    for k, part in data.groupby(data.patient.str[-1]):
+        part.to_parquet(tmp_path / "readings" / f"part-{k}.parquet", index=False)
+    (tmp_path / "folder.yaml").write_text((ROOT / "specs" / "clinic_visits.yaml").read_text()
+                                          .replace("file: clinic_visits.csv", "file: readings"))
+    assert _loaded("check", "folder.yaml", cwd=tmp_path) == {"code": 0, "loaded": []}

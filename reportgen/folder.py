@@ -1,0 +1,235 @@
+"""Data given as many Parquet files (a folder or a pattern): each file is read, hashed,
+checked and cleaned by a task of its own, wherever the executor runs it (here, or on a
+Dask worker that sees the same storage); only small findings come back.
+
+The passes (module-level functions: a cluster ships them by name):
+
+- ``read_file`` (kept where it ran): the file's bytes, hashed as read; the parsed table's
+  row-level checks as tallies (``data.file_checks``); its cleaned readings;
+- ``file_facts``: what the caller gathers of it: its manifest entry, columns, tallies,
+  rows, and of its cleaned readings the distinct subject ids (sorted) with their reading
+  counts and groups, and the time and value ranges;
+- ``file_design_sums``: the design checks' counts, added over the files in a fixed tree;
+- ``as_part`` (kept): the cleaned readings as the fit's part, its subjects coded by the
+  sorted union of every file's ids.
+
+The caller puts the tallies together check by check (``data.merged_steps``: the texts of
+a folder are those of the same rows in one file), checks that no subject's readings lie
+in two files, and runs the design checks on the gathered counts. Nothing per reading comes
+back; per subject, its id, reading count and group.
+"""
+
+from __future__ import annotations
+
+import hashlib
+from dataclasses import dataclass, replace
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from .data import (
+    Check,
+    Dataset,
+    DesignSums,
+    FileChecks,
+    Held,
+    Tally,
+    add_design_sums,
+    column_check,
+    column_labels,
+    design_checks,
+    design_sums,
+    empty_readings,
+    file_checks,
+    merged_steps,
+    read_path,
+)
+from .errors import DataError
+from .fpca.executor import Executor, InProcess, tree_sum
+from .manifest import Part, list_files
+from .manifest import digest as manifest_digest
+from .readers import parse_table, plain
+from .spec import Spec
+
+
+@dataclass(frozen=True)
+class FileRead:
+    """One file as its task read it (kept where the task ran)."""
+
+    part: Part
+    columns: str
+    check: Check  # the columns that the spec names are there
+    labels: dict[str, str]
+    rows_read: int
+    found: FileChecks
+
+
+@dataclass(frozen=True)
+class FileFacts:
+    """What the caller gathers of one file. ``ids``: the distinct subjects of its cleaned
+    readings, sorted (None when none is left), with ``counts`` (readings each) and
+    ``groups`` (each one's group, or None)."""
+
+    part: Part
+    columns: str
+    check: Check
+    labels: dict[str, str]
+    rows_read: int
+    tallies: tuple[Tally, ...]
+    ids: pd.Index | None
+    counts: np.ndarray
+    groups: np.ndarray | None
+    t_range: tuple[float, float]
+    y_range: tuple[float, float]
+
+
+def read_file(full: str, rel: str, spec: Spec) -> FileRead:
+    """Pass: read, hash, parse and check the file at ``full`` (``rel``: its manifest
+    path). A needed column that is missing fails here, naming the file."""
+    named = f"{spec.data['file']}: {rel}"
+    raw, _ = read_path(Path(full), named)
+    part = Part(rel, len(raw), hashlib.sha256(raw).hexdigest())
+    table = replace(parse_table(raw, "parquet", named), parts=((rel, 0),))
+    del raw
+    return FileRead(part, ", ".join(map(str, table.frame.columns)),
+                    column_check(table, spec.data, named), column_labels(table, spec.data),
+                    len(table.frame), file_checks(table, spec))
+
+
+def file_facts(read: FileRead) -> FileFacts:
+    """Pass: the small findings of a file."""
+    long = read.found.long
+    ids, counts, groups = None, np.zeros(0, dtype=np.intp), None
+    t_range = y_range = (np.nan, np.nan)
+    if long is not None:
+        codes, ids = pd.factorize(long.subject, sort=True)
+        counts = np.bincount(codes, minlength=len(ids))
+        if "group" in long:
+            first = np.empty(len(ids), dtype=np.intp)
+            first[codes[::-1]] = np.arange(len(codes))[::-1]  # each subject's first reading
+            groups = np.asarray(long.group.to_numpy()[first], dtype=object)
+        t, y = long.time.to_numpy(dtype=np.float64), long.value.to_numpy(dtype=np.float64)
+        t_range, y_range = (float(t.min()), float(t.max())), (float(y.min()), float(y.max()))
+    return FileFacts(read.part, read.columns, read.check, read.labels, read.rows_read,
+                     read.found.tallies, ids, counts, groups, t_range, y_range)
+
+
+def file_design_sums(read: FileRead, observed: tuple[float, float],
+                     domain: tuple[float, float], spec: Spec, fit: bool) -> DesignSums:
+    """Pass: the design checks' counts of a file's cleaned readings."""
+    long = read.found.long
+    assert long is not None  # only files with readings are asked
+    codes = pd.factorize(long.subject)[0].astype(np.intp)
+    return design_sums(codes, long.time.to_numpy(dtype=np.float64), observed, domain, spec,
+                       fit)
+
+
+def as_part(read: FileRead, subjects: np.ndarray) -> Any:
+    """Pass (kept): a file's cleaned readings as the fit's part; ``subjects``: the codes of
+    its subjects (in the order of their sorted ids) in the whole data set."""
+    from .fpca.design import Sample
+    from .fpca.plan import Part as FitPart
+
+    long = read.found.long
+    assert long is not None
+    local = pd.factorize(long.subject, sort=True)[0].astype(np.intp)
+    sample = Sample.from_arrays(local, long.time.to_numpy(dtype=np.float64),
+                                long.value.to_numpy(dtype=np.float64))
+    return FitPart(sample, np.asarray(subjects, dtype=np.intp))
+
+
+def dataset_from_files(spec: Spec, executor: Executor | None, for_fit: bool) -> Dataset:
+    """Every Parquet file that ``data.file`` names, read and checked by its own task on
+    ``executor`` (here by default), the findings put together in manifest order."""
+    d, shown = spec.data, spec.data["file"]
+    if d["format"] not in ("auto", "parquet"):
+        raise DataError(f"data.file {shown!r} names a folder or pattern, which is read as "
+                        f"Parquet files; data.format says {d['format']}")
+    listed = list_files(spec.data_path, shown)
+    run_on = executor or InProcess()
+    files = run_on.keep(read_file, [str(full) for _, full in listed],
+                        [(rel,) for rel, _ in listed], (spec,))
+    facts = run_on.map(file_facts, files)
+    first = facts[0]
+    for f in facts[1:]:
+        if f.columns != first.columns:
+            raise DataError(f"data.file {shown!r}: {f.part.path!r} has the columns "
+                            f"{f.columns}; the first file, {first.part.path!r}, has "
+                            f"{first.columns}")
+    rows_read = sum(f.rows_read for f in facts)
+    if rows_read == 0:
+        raise DataError(f"data.file {shown!r} has a header but no rows")
+    parts = tuple(f.part for f in facts)
+    checks = [first.check]
+    merged, stopped = merged_steps(spec, [f.tallies for f in facts])
+    checks += merged
+    held = None
+    if not stopped:
+        kept = [i for i, f in enumerate(facts) if f.ids is not None]
+        whole, codes, ids = _subjects([facts[i] for i in kept], parts)
+        checks.insert(0, whole)
+        if whole.status == "pass":
+            n_obs = np.zeros(len(ids), dtype=np.intp)
+            for i, c in zip(kept, codes, strict=True):
+                n_obs[c] = facts[i].counts
+            t_range = (min((facts[i].t_range[0] for i in kept), default=np.nan),
+                       max((facts[i].t_range[1] for i in kept), default=np.nan))
+            constant = bool(kept) and min(facts[i].y_range[0] for i in kept) == max(
+                facts[i].y_range[1] for i in kept)
+            reads = [files[i] for i in kept]
+
+            def sums(observed: tuple[float, float], domain: tuple[float, float],
+                     fit: bool) -> DesignSums:
+                found = run_on.map(file_design_sums, reads, shared=(observed, domain, spec, fit))
+                return tree_sum(found, add_design_sums)
+
+            checks += design_checks(spec, n_obs, t_range, constant, sums,
+                                    any(x.status == "fail" for x in checks))
+            if for_fit and not any(x.status == "fail" for x in checks):
+                held = Held(tuple(run_on.keep(as_part, reads, [(c,) for c in codes])),
+                            np.asarray(ids), _groups(facts, kept, codes, len(ids)))
+    return Dataset(empty_readings(spec), tuple(checks), spec.data_path, shown,
+                   sum(p.n_bytes for p in parts), manifest_digest(parts), rows_read,
+                   first.labels, parts, held)
+
+
+def _subjects(facts: list[FileFacts], parts: tuple[Part, ...]
+              ) -> tuple[Check, list[np.ndarray], pd.Index]:
+    """Whether every subject's readings lie in one file; each file's subject codes in the
+    whole data set (by sorted id); the sorted ids."""
+    if not facts:
+        return _whole(len(parts)), [], pd.Index([])
+    sizes = [len(f.ids) for f in facts if f.ids is not None]
+    every = pd.concat([pd.Series(f.ids) for f in facts], ignore_index=True)
+    codes, ids = pd.factorize(every, sort=True)
+    codes = codes.astype(np.intp)
+    count = np.bincount(codes, minlength=len(ids))
+    split = count[codes] > 1
+    if not split.any():
+        return _whole(len(parts)), np.split(codes, np.cumsum(sizes)[:-1]), ids
+    which = np.repeat(np.arange(len(facts)), sizes)
+    code = codes[int(np.flatnonzero(split)[0])]  # the first met, in manifest order
+    where = [facts[int(f)].part.path for f in which[codes == code]]
+    return Check("subjects whole in one file", "fail",
+                 f"{int((count > 1).sum())} subject(s) have readings in more than one of "
+                 f"the {len(parts)} files, e.g. subject {plain(ids[code])} in "
+                 f"{', '.join(where[:3])}; write the data partitioned by subject (all of a "
+                 "subject's readings in one file)"), [], ids
+
+
+def _whole(n_files: int) -> Check:
+    return Check("subjects whole in one file", "pass",
+                 f"{n_files} Parquet files; every subject's readings are in one of them")
+
+
+def _groups(facts: list[FileFacts], kept: list[int], codes: list[np.ndarray], n: int
+            ) -> np.ndarray | None:
+    """Each subject's group, by code (None without groups)."""
+    if not kept or facts[kept[0]].groups is None:
+        return None
+    out = np.empty(n, dtype=object)
+    for i, c in zip(kept, codes, strict=True):
+        out[c] = facts[i].groups
+    return out
