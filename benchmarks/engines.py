@@ -1,6 +1,6 @@
 """The fit's plan on the two engines: time per pass, peak memory, and the same bits.
 
-Run:  .venv/bin/python benchmarks/engines.py [--subjects N] [--files F] [--write]
+Run:  .venv/bin/python benchmarks/engines.py [--subjects N] [--files F] [--read FOLDER] [--write]
 
 Simulated readings (as ``run.simulate``: 1 to 8 readings per subject on [0, 1]) in F
 parts of whole subjects, each made where it is to live (as a worker would read its own
@@ -27,18 +27,21 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+import pandas as pd
 
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
 from benchmarks.run import machine, table  # noqa: E402
 from reportgen.analysis import DIAGNOSTIC_MAX_SUBJECTS  # noqa: E402
+from reportgen.data import load_dataset  # noqa: E402
 from reportgen.fpca import FPCAOptions  # noqa: E402
 from reportgen.fpca.design import Sample  # noqa: E402
 from reportgen.fpca.diagnostics import check_readings  # noqa: E402
 from reportgen.fpca.fit import FPCAFit, fit_parts, seeded_sample  # noqa: E402
 from reportgen.fpca.groups import group_means  # noqa: E402
 from reportgen.fpca.plan import Executor, InProcess, Part, Partitioned, warm_up  # noqa: E402
+from reportgen.spec import load_spec  # noqa: E402
 
 
 class Timed:
@@ -89,15 +92,39 @@ def make_part(p: int, n: int, n_parts: int, seed: int) -> Part:
     return Part(Sample.from_arrays(local, t, y), np.arange(first, stop, dtype=np.intp))
 
 
-def _fit(executor: Executor, n: int, n_parts: int) -> tuple[bytes, dict[str, float], float]:
+def write_files(folder: Path, n: int, n_parts: int, seed: int) -> Path:
+    """The parts' readings as Parquet files of whole subjects (ids u000000000, ... in code
+    order), and a spec that names the folder."""
+    folder.mkdir(parents=True, exist_ok=True)
+    for p in range(n_parts):
+        part = make_part(p, n, n_parts, seed)
+        s = part.sample
+        ids = np.char.add("u", np.char.zfill(part.subjects[s.subject].astype(str), 9))
+        pd.DataFrame({"unit": ids, "t": s.t, "y": s.y}).to_parquet(
+            folder / f"part-{p:03d}.parquet", index=False)
+    spec = folder.parent / "engines.yaml"
+    spec.write_text(f"report: {{id: engines, title: '{n} simulated subjects'}}\n"
+                    f"data: {{file: {folder.name}, subject: unit, time: t, value: y}}\n")
+    return spec
+
+
+def _fit(executor: Executor, n: int, n_parts: int, spec: Path | None
+         ) -> tuple[bytes, dict[str, float], float]:
     """The fit, then the report's passes after it: the diagnostics (as a run makes them:
     the seeded sample of 20,000 subjects and six shown ones) and the means of three groups
-    (subject code modulo 3)."""
+    (subject code modulo 3). With ``spec``, the parts are its Parquet files, read, checked
+    and cleaned where they are to live (``reportgen.folder``); otherwise simulated there."""
     timed = Timed(executor)
     start = time.perf_counter()
-    parts = timed.keep(make_part, list(range(n_parts)), shared=(n, n_parts, 3))
+    if spec is not None:
+        ds = load_dataset(load_spec(spec), timed, for_fit=True)
+        assert not ds.failed and ds.held is not None, ds.failed
+        parts: Sequence[Any] = ds.held.parts
+    else:
+        parts = timed.keep(make_part, list(range(n_parts)), shared=(n, n_parts, 3))
     made = time.perf_counter() - start
     data = Partitioned.of(timed, parts)
+    del parts
     fit = fit_parts(data, np.arange(n), FPCAOptions())
     chosen = np.union1d(seeded_sample(n, DIAGNOSTIC_MAX_SUBJECTS, fit.options.seed),
                         np.linspace(0, n - 1, 6).astype(np.intp))
@@ -105,7 +132,8 @@ def _fit(executor: Executor, n: int, n_parts: int) -> tuple[bytes, dict[str, flo
     means, ses = group_means(data, fit, (np.arange(n) % 3).astype(np.intp), 3)
     total = time.perf_counter() - start
     seconds = dict(timed.seconds)
-    seconds["make_part"] = made  # with Dask, keep() returns at once: the time is the first pass's
+    if spec is None:  # with Dask, keep() returns at once: the time is the first pass's
+        seconds["make_part"] = made
     seconds["client steps"] = total - sum(seconds.values())
     extra = (checks.residual_sum, checks.squared_standardized_sum, checks.density,
              *checks.readings.values(), means, ses)
@@ -126,6 +154,9 @@ def main() -> None:
     parser = argparse.ArgumentParser()
     parser.add_argument("--subjects", type=int, default=1_000_000)
     parser.add_argument("--files", type=int, default=32)
+    parser.add_argument("--read", type=Path, metavar="FOLDER",
+                        help="write the readings as Parquet files in FOLDER (a new folder) "
+                        "and read them through reportgen's checks, on each engine")
     parser.add_argument("--write", action="store_true")
     args = parser.parse_args()
     import distributed
@@ -133,6 +164,7 @@ def main() -> None:
     from reportgen.engine import OnDask
 
     n, files = args.subjects, args.files
+    spec = write_files(args.read / "readings", n, files, 3) if args.read else None
     warm_up()  # the compiled kernels, loaded here as each worker loads them
     fit_parts(Partitioned.local(InProcess().map(make_part, [0], shared=(2000, 1, 0))),
               np.arange(2000), FPCAOptions())  # and every first-use cost of the client steps
@@ -143,30 +175,36 @@ def main() -> None:
         with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=processes,
                                       dashboard_address=":0") as cluster, \
                 distributed.Client(cluster) as client:
-            numbers, seconds, total = _fit(OnDask(client), n, files)
+            numbers, seconds, total = _fit(OnDask(client), n, files, spec)
             workers = ("in this process" if not processes else ", ".join(
                 f"{mb:,.0f}" for mb in client.run(_peak_mb).values()))
             results[name] = (seconds, total, f"{_peak_mb():,.0f}", workers)
             found[name] = numbers
         print(name, f"{total:.1f} s", flush=True)
-    numbers, seconds, total = _fit(InProcess(), n, files)
+    numbers, seconds, total = _fit(InProcess(), n, files, spec)
     results["in this process"] = (seconds, total, f"{_peak_mb():,.0f}", "-")
     print("in this process", f"{total:.1f} s", flush=True)
     same = {name: found[name] == numbers for name in found}
 
-    steps = ["make_part", "summary", "outside", "reading_sums", "residual_sums", "gather",
+    steps = (["read_and_check", "file_facts", "file_design_sums", "as_part"] if spec
+             else ["make_part"])
+    steps += ["summary", "outside", "reading_sums", "residual_sums", "gather",
              "part_scores", "part_checks", "group_reading_sums", "group_pair_sums",
              "client steps"]
     rows = [[name, *(f"{r[0].get(s, 0.0):.2f}" for s in steps), f"{r[1]:.1f}", r[2], r[3],
              "yes" if same.get(name, True) else "NO"] for name, r in results.items()]
+    made_where = ("each a Parquet file read, checked and cleaned where it is to live "
+                  "(`read_and_check` .. `as_part`)" if spec else
+                  "each simulated where it is to live (as a worker reads its file)")
     text = (f"Machine: {machine()}\nDate: {time.strftime('%Y-%m-%d')}\n\n"
-            f"{n:,} subjects (about {4.5 * n:,.0f} readings) in {files} parts, each simulated "
-            "where it is to live (as a worker reads its file); the fit with automatic "
-            "bandwidths (5-fold cross-validation), FVE rule and scores, then the report's "
-            "diagnostics pass (`part_checks`) and the means of three groups. Seconds per pass "
-            "over the parts (summed over the fit's calls; with Dask the parts are made while "
-            "the first pass waits for them, so `make_part` shows in `summary`), the steps in "
-            "the client between passes, the total, and peak resident memory.\n\n"
+            f"{n:,} subjects (about {4.5 * n:,.0f} readings) in {files} parts, {made_where}; "
+            "the fit with automatic bandwidths (5-fold cross-validation), FVE rule and "
+            "scores, then the report's diagnostics pass (`part_checks`) and the means of three "
+            "groups. Seconds per pass over the parts (summed over the fit's calls; with Dask a "
+            "pass whose results stay on the workers returns at once, and its time shows in the "
+            "pass that waits for them: `make_part` and `as_part` in `summary`, "
+            "`read_and_check` in `file_facts`), the steps in the client between passes, the "
+            "total, and peak resident memory.\n\n"
             + table(["engine", *steps, "total s", "client peak MB", "worker peak MB",
                      "same bits as in this process"], rows))
     base = results["in this process"][1]
@@ -174,7 +212,8 @@ def main() -> None:
         f"{name} {r[1] / base:.2f}" for name, r in results.items() if name != "in this process")
     print(text)
     if args.write:
-        write_section(ROOT / "benchmarks" / "ENGINES.md", f"{n:,} subjects", text)
+        write_section(ROOT / "benchmarks" / "ENGINES.md",
+                      f"{n:,} subjects" + (" read from Parquet files" if spec else ""), text)
 
 
 HEAD = """# The fit's plan on the two engines

@@ -4,7 +4,7 @@ Dask worker that sees the same storage); only small findings come back.
 
 The passes (module-level functions: a cluster ships them by name):
 
-- ``read_file`` (kept where it ran): the file's bytes, hashed as read; the parsed table's
+- ``read_and_check`` (kept where it ran): the file's bytes, hashed as read; the parsed table's
   row-level checks as tallies (``data.file_checks``); its cleaned readings;
 - ``file_facts``: what the caller gathers of it: its manifest entry, columns, tallies,
   rows, and of its cleaned readings the distinct subject ids (sorted) with their reading
@@ -85,7 +85,7 @@ class FileFacts:
     y_range: tuple[float, float]
 
 
-def read_file(full: str, rel: str, spec: Spec) -> FileRead:
+def read_and_check(full: str, rel: str, spec: Spec) -> FileRead:
     """Pass: read, hash, parse and check the file at ``full`` (``rel``: its manifest
     path). A needed column that is missing fails here, naming the file."""
     named = f"{spec.data['file']}: {rel}"
@@ -107,9 +107,10 @@ def file_facts(read: FileRead) -> FileFacts:
         codes, ids = pd.factorize(long.subject, sort=True)
         counts = np.bincount(codes, minlength=len(ids))
         if "group" in long:
-            first = np.empty(len(ids), dtype=np.intp)
-            first[codes[::-1]] = np.arange(len(codes))[::-1]  # each subject's first reading
-            groups = np.asarray(long.group.to_numpy()[first], dtype=object)
+            # a subject has one group (the groups check): any of its readings names it
+            some = np.empty(len(ids), dtype=np.intp)
+            some[codes] = np.arange(len(codes))
+            groups = np.asarray(long.group.to_numpy()[some], dtype=object)
         t, y = long.time.to_numpy(dtype=np.float64), long.value.to_numpy(dtype=np.float64)
         t_range, y_range = (float(t.min()), float(t.max())), (float(y.min()), float(y.max()))
     return FileFacts(read.part, read.columns, read.check, read.labels, read.rows_read,
@@ -149,7 +150,7 @@ def dataset_from_files(spec: Spec, executor: Executor | None, for_fit: bool) -> 
                         f"Parquet files; data.format says {d['format']}")
     listed = list_files(spec.data_path, shown)
     run_on = executor or InProcess()
-    files = run_on.keep(read_file, [str(full) for _, full in listed],
+    files = run_on.keep(read_and_check, [str(full) for _, full in listed],
                         [(rel,) for rel, _ in listed], (spec,))
     facts = run_on.map(file_facts, files)
     first = facts[0]

@@ -394,3 +394,34 @@ def test_reading_many_files_brings_back_nothing_per_reading(tmp_path: Path) -> N
     assert few.keys() == many.keys() == {"file_facts", "file_design_sums"}
     for name in few:  # a few more digits in the counts, nothing per reading
         assert many[name] <= few[name] * 1.02, name
+
+
+def test_files_left_without_readings_change_no_number(tmp_path: Path) -> None:
+    # An empty file and a file whose every row the selection drops, beside the example's
+    # three: no part is made of them, so the fit's sums are those of the three files
+    # alone, bit for bit; the checks count their rows.
+    _split(tmp_path / "readings")
+    for path in (tmp_path / "readings").iterdir():
+        pd.read_parquet(path).assign(usable=True).to_parquet(path, index=False)
+    plain_run = run_spec(_selecting(tmp_path, "readings"), tmp_path / "plain")
+    frame = pd.read_parquet(tmp_path / "readings" / "part-0.parquet")
+    frame.iloc[:0].to_parquet(tmp_path / "readings" / "part-00-empty.parquet", index=False)
+    frame.assign(usable=False).to_parquet(tmp_path / "readings" / "part-3.parquet",
+                                          index=False)
+    more = run_spec(_selecting(tmp_path, "readings"), tmp_path / "more")
+    for path in sorted((plain_run / "tables").iterdir()):
+        if path.name != "checks.csv":
+            assert (more / "tables" / path.name).read_bytes() == path.read_bytes(), path.name
+    checks = pd.read_csv(more / "tables" / "checks.csv").set_index("check")
+    n = len(pd.read_csv(ROOT / "specs" / "clinic_visits.csv"))
+    assert checks.loc["row selection", "detail"] == (
+        f"{n + len(frame)} rows read; usable equals True: {len(frame)} dropped; {n} kept")
+    assert checks.loc["subjects whole in one file", "detail"].startswith("5 Parquet files")
+
+
+def _selecting(tmp_path: Path, named: str) -> Path:
+    spec = yaml.safe_load(SPEC)
+    spec["data"].update(file=named, keep_rows=[{"column": "usable", "equals": True}])
+    path = tmp_path / "selecting.yaml"
+    path.write_text(yaml.safe_dump(spec, sort_keys=False))
+    return path
