@@ -432,7 +432,8 @@ def _data(ds: Dataset, executor: Executor) -> tuple[Partitioned, np.ndarray]:
     """The readings as the fit's parts, one per data file, and the subjects' ids: those of
     many files where they were read (``Dataset.held``), one file's placed on ``executor``."""
     if ds.held is not None:
-        return Partitioned.of(executor, ds.held.parts), ds.held.ids
+        # the fit's labels as one file's are (Python strings: about 0.7 GB at 10^7 subjects)
+        return Partitioned.of(executor, ds.held.parts), np.asarray(ds.held.ids)
     codes, t, y, labels = arrays_from_frame(ds.frame, "subject", "time", "value")
     return Partitioned.of(executor, executor.place(split_parts(codes, t, y, None))), labels
 

@@ -55,10 +55,12 @@ class Check:
 class Held:
     """The cleaned readings of many files as the fit's parts, left where the files were
     read: the executor's handles (in manifest order), the subject ids (sorted: subject code
-    ``i`` is ``ids[i]``) and each subject's group (by code; None without groups)."""
+    ``i`` is ``ids[i]``; text as Arrow holds it, its characters and an offset, where a
+    Python string costs about 60 bytes more) and each subject's group (by code; None
+    without groups)."""
 
     parts: tuple[Any, ...]
-    ids: np.ndarray
+    ids: pd.Index
     groups: np.ndarray | None
 
 
@@ -530,7 +532,7 @@ def _typed(frame: pd.DataFrame, rows: np.ndarray, table: Table, spec: Spec,
     known = kind if frame[d["time"]].notna().any() else ""  # an empty column has no kind
     found.append(Tally("columns typed", (0 if problem else int(bad_t.sum()), int(bad_y.size)),
                        (known, problem, t_first, y_first, origin_problem),
-                       file=table.parts[0][0] if table.parts else ""))
+                       file=table.file))
     if problem or t_first or y_first or origin_problem:
         return None
     t = t - origin

@@ -91,7 +91,7 @@ def read_and_check(full: str, rel: str, spec: Spec) -> FileRead:
     named = f"{spec.data['file']}: {rel}"
     raw, _ = read_path(Path(full), named)
     part = Part(rel, len(raw), hashlib.sha256(raw).hexdigest())
-    table = replace(parse_table(raw, "parquet", named), parts=((rel, 0),))
+    table = replace(parse_table(raw, "parquet", named), file=rel)
     del raw
     return FileRead(part, ", ".join(map(str, table.frame.columns)),
                     column_check(table, spec.data, named), column_labels(table, spec.data),
@@ -190,7 +190,7 @@ def dataset_from_files(spec: Spec, executor: Executor | None, for_fit: bool) -> 
                                     any(x.status == "fail" for x in checks))
             if for_fit and not any(x.status == "fail" for x in checks):
                 held = Held(tuple(run_on.keep(as_part, reads, [(c,) for c in codes])),
-                            np.asarray(ids), _groups(facts, kept, codes, len(ids)))
+                            ids, _groups(facts, kept, codes, len(ids)))
     return Dataset(empty_readings(spec), tuple(checks), spec.data_path, shown,
                    sum(p.n_bytes for p in parts), manifest_digest(parts), rows_read,
                    first.labels, parts, held)

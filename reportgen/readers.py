@@ -43,13 +43,12 @@ class Table:
     labels: dict[str, str] = field(default_factory=dict)
     formats: dict[str, str] = field(default_factory=dict)
     delimiter: str = ""
-    parts: tuple[tuple[str, int], ...] = ()  # many files: (relative path, first row) each
+    file: str = ""  # one file of many: its path relative to the folder or pattern
 
     def where(self, row: int) -> str:
         """Where row ``row`` (0-based, in the parsed table) is, in the user's terms."""
-        if self.parts:
-            name, first = next(p for p in reversed(self.parts) if p[1] <= row)
-            return f"data row {row - first + 1} of {name}"
+        if self.file:
+            return f"data row {row + 1} of {self.file}"
         if self.format == "csv":
             return f"row {row + 2} of the file"  # as a spreadsheet shows it: row 1 is the header
         return f"data row {row + 1} of the table"

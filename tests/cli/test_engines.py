@@ -13,7 +13,7 @@ import pytest
 
 from reportgen.errors import EngineError
 
-from .conftest import ROOT, cli
+from .conftest import ROOT, cli, pump_folder
 
 SAMPLES = ROOT / "sample_runs"
 
@@ -95,16 +95,7 @@ def test_worker_processes_read_a_folder_as_this_process_does(scheduler: str,
     # check and clean the files; the tables are those of the local engine's run.
     import pandas as pd
 
-    data = pd.read_csv(ROOT / "specs" / "pump_service.csv", dtype={"pump": str})
-    (tmp_path / "pumps").mkdir()
-    ids = sorted(data.pump.unique())
-    key = data.pump.map({s: i * 3 // len(ids) for i, s in enumerate(ids)})
-    for k, part in data.groupby(key):
-        part.to_parquet(tmp_path / "pumps" / f"part-{k}.parquet", index=False)
-    spec = tmp_path / "pumps.yaml"
-    spec.write_text((ROOT / "specs" / "pump_service.yaml").read_text()
-                    .replace("file: pump_service.csv", "file: pumps")
-                    .replace("logo: fleet_logo.svg", ""))
+    spec = pump_folder(tmp_path)
     runs = {}
     for engine in ("local", "dask"):
         extra = ["--scheduler", scheduler] if engine == "dask" else []

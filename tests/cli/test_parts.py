@@ -23,7 +23,7 @@ from reportgen.errors import DataError
 from reportgen.manifest import Part, current_digest, digest
 from reportgen.runner import run_spec
 
-from .conftest import ROOT, cli
+from .conftest import ROOT, cli, pump_folder
 
 SPEC = (ROOT / "specs" / "clinic_visits.yaml").read_text()
 
@@ -229,16 +229,7 @@ def test_groups_over_files_on_either_engine(tmp_path: Path) -> None:
     # The other invented example (three depots compared) split by pump into three files:
     # the group means are passes over the files; the committed one-file run is the
     # reference for the numbers, and the Dask engine gives the same bits as the local one.
-    data = pd.read_csv(ROOT / "specs" / "pump_service.csv", dtype={"pump": str})
-    (tmp_path / "pumps").mkdir()
-    ids = sorted(data.pump.unique())
-    key = data.pump.map({s: i * 3 // len(ids) for i, s in enumerate(ids)})
-    for k, part in data.groupby(key):
-        part.to_parquet(tmp_path / "pumps" / f"part-{k}.parquet", index=False)
-    spec = tmp_path / "pumps.yaml"
-    spec.write_text((ROOT / "specs" / "pump_service.yaml").read_text()
-                    .replace("file: pump_service.csv", "file: pumps")
-                    .replace("logo: fleet_logo.svg", ""))
+    spec = pump_folder(tmp_path)
     here = run_spec(spec, tmp_path / "local")
     there = run_spec(spec, tmp_path / "dask", engine="dask")
     assert _tables(here) == _tables(there)
