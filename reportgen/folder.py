@@ -22,6 +22,7 @@ back; per subject, its id, reading count and group.
 from __future__ import annotations
 
 import hashlib
+import socket
 from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any
@@ -89,6 +90,11 @@ def read_and_check(full: str, rel: str, spec: Spec) -> FileRead:
     """Pass: read, hash, parse and check the file at ``full`` (``rel``: its manifest
     path). A needed column that is missing fails here, naming the file."""
     named = f"{spec.data['file']}: {rel}"
+    if not Path(full).exists():  # it was there when the files were listed
+        raise DataError(f"data.file {named!r} is not at {full!r} on {socket.gethostname()}, "
+                        "where its task ran, although it was listed when the run started: "
+                        "it was removed since, or (on a cluster) this worker does not see "
+                        "the data at the path that the reportgen process sees")
     raw, _ = read_path(Path(full), named)
     part = Part(rel, len(raw), hashlib.sha256(raw).hexdigest())
     table = replace(parse_table(raw, "parquet", named), file=rel)

@@ -416,3 +416,23 @@ def _selecting(tmp_path: Path, named: str) -> Path:
     path = tmp_path / "selecting.yaml"
     path.write_text(yaml.safe_dump(spec, sort_keys=False))
     return path
+
+
+def test_a_file_a_task_cannot_find_is_named_with_the_likely_cause(tmp_path: Path,
+                                                                  monkeypatch: pytest.MonkeyPatch
+                                                                  ) -> None:
+    # Listed by the reportgen process, gone where the task runs (as on a worker that does
+    # not mount the data): the error names the file and says what workers need.
+    from reportgen import folder
+
+    _split(tmp_path / "readings")
+    listed = folder.list_files
+
+    def also_missing(path: Path, named: str) -> list[tuple[str, Path]]:
+        return [*listed(path, named), ("part-9.parquet", tmp_path / "elsewhere" / "p.parquet")]
+
+    monkeypatch.setattr(folder, "list_files", also_missing)
+    with pytest.raises(DataError, match=r"'readings: part-9.parquet' is not at .* this worker "
+                                        "does not see the data"):
+        run_spec(_spec(tmp_path, "readings"), tmp_path / "runs")
+    assert not (tmp_path / "runs").exists() or not any((tmp_path / "runs").rglob("v0*"))
