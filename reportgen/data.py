@@ -473,7 +473,7 @@ def design_checks(spec: Spec, n_obs: np.ndarray, t_range: tuple[float, float],
     their time range, whether every value is the same, and ``sums`` (observed range,
     domain, with the feasibility counts) that counts them; ``failed``: an earlier check
     failed (the feasibility test is then left out)."""
-    from .fpca.feasibility import design_domain, problems_from
+    from .fpca.feasibility import problems_from
 
     c, out = spec.checks, []
     n_subj = int(n_obs.size)
@@ -494,7 +494,7 @@ def design_checks(spec: Spec, n_obs: np.ndarray, t_range: tuple[float, float],
     if multi < 2:
         return out
     failed = failed or any(x.status == "fail" for x in out)
-    domain = design_domain(spec.options, *t_range)
+    domain = spec.options.fitted_domain(*t_range)
     found = sums(t_range, domain, not failed)
     cover = float((found.cells > 0.5).mean()) if t_range[1] > t_range[0] else 0.0
     ok = cover >= c["min_pair_coverage"]

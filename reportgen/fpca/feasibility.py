@@ -131,11 +131,6 @@ def add_design(a: DesignCounts, b: DesignCounts) -> DesignCounts:
                         a.pairs + b.pairs)
 
 
-def design_domain(options: FPCAOptions, t_min: float, t_max: float) -> tuple[float, float]:
-    """The fit's domain: the declared one, or the readings' range."""
-    return (options.domain if options.domain is not None else (t_min, t_max))
-
-
 def problems(subject: IntArray, t: FloatArray, y: FloatArray,
              options: FPCAOptions = FPCAOptions()) -> list[str]:
     """Every reason the fit of these readings would stop, in the fit's words; [] if none.
@@ -144,7 +139,7 @@ def problems(subject: IntArray, t: FloatArray, y: FloatArray,
     """
     if t.size == 0:
         return ["no readings"]
-    domain = design_domain(options, float(t.min()), float(t.max()))
+    domain = options.fitted_domain(float(t.min()), float(t.max()))
     n_obs = np.bincount(subject)
     counts = count_design(subject, t, domain, options, int(np.count_nonzero(n_obs >= 2)) >= 2)
     return problems_from(counts, n_obs, domain, float(np.ptp(y)) == 0.0, options)

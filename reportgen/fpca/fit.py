@@ -521,7 +521,7 @@ def fit_parts(data: Partitioned, labels: np.ndarray, options: FPCAOptions = FPCA
 
 def _fit(data: Partitioned, labels: np.ndarray, options: FPCAOptions, population_only: bool,
          per_subject: bool = True, sample: Sample | None = None) -> FPCAFit:
-    lo, hi = options.domain if options.domain is not None else (data.t_min, data.t_max)
+    lo, hi = options.fitted_domain(data.t_min, data.t_max)
     _check_design(data, lo, hi)
     kernel = get_kernel(options.kernel)
     grid = np.linspace(lo, hi, options.n_grid)

@@ -44,6 +44,10 @@ class FPCAOptions:
     bootstrap_replicates: int = 50
     seed: int = 0
 
+    def fitted_domain(self, t_min: float, t_max: float) -> tuple[float, float]:
+        """The domain a fit works on: the declared one, or the readings' range."""
+        return self.domain if self.domain is not None else (t_min, t_max)
+
     def as_dict(self) -> dict[str, Any]:
         out = {name: getattr(self, name) for name in self.__dataclass_fields__}
         if self.domain is not None:
