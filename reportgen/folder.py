@@ -220,7 +220,7 @@ def _subjects(facts: list[FileFacts], parts: tuple[Part, ...]
     code = codes[int(np.flatnonzero(split)[0])]  # the first met, in manifest order
     where = [facts[int(f)].part.path for f in which[codes == code]]
     return Check("subjects whole in one file", "fail",
-                 f"{int((count > 1).sum())} subject(s) have readings in more than one of "
+                 f"{int((count > 1).sum())} subject(s) have kept readings in more than one of "
                  f"the {len(parts)} files, e.g. subject {plain(ids[code])} in "
                  f"{', '.join(where[:3])}; write the data partitioned by subject (all of a "
                  "subject's readings in one file)"), [], ids
@@ -228,7 +228,7 @@ def _subjects(facts: list[FileFacts], parts: tuple[Part, ...]
 
 def _whole(n_files: int) -> Check:
     return Check("subjects whole in one file", "pass",
-                 f"{n_files} Parquet files; every subject's readings are in one of them")
+                 f"{n_files} Parquet files; every subject's kept readings are in one of them")
 
 
 def _groups(facts: list[FileFacts], kept: list[int], codes: list[np.ndarray], n: int
