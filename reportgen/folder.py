@@ -65,6 +65,7 @@ class FileRead:
     labels: dict[str, str]
     rows_read: int
     found: FileChecks
+    problem: str = ""  # why the file cannot be used (the rest is then empty)
 
 
 @dataclass(frozen=True)
@@ -84,11 +85,22 @@ class FileFacts:
     groups: np.ndarray | None
     t_range: tuple[float, float]
     y_range: tuple[float, float]
+    problem: str = ""
 
 
 def read_and_check(full: str, rel: str, spec: Spec) -> FileRead:
     """Pass: read, hash, parse and check the file at ``full`` (``rel``: its manifest
-    path). A needed column that is missing fails here, naming the file."""
+    path). A file that cannot be used (unreadable, not Parquet, a needed column missing)
+    is a finding, not a failed task: the caller raises it, for the first such file in
+    manifest order, and no worker logs a task failure for a mistake in the data."""
+    try:
+        return _read_and_check(full, rel, spec)
+    except DataError as e:
+        return FileRead(Part(rel, 0, ""), "", Check("", "", ""), {}, 0, FileChecks((), None),
+                        str(e))
+
+
+def _read_and_check(full: str, rel: str, spec: Spec) -> FileRead:
     named = f"{spec.data['file']}: {rel}"
     if not Path(full).exists():  # it was there when the files were listed
         raise DataError(f"data.file {named!r} is not at {full!r} on {socket.gethostname()}, "
@@ -120,7 +132,7 @@ def file_facts(read: FileRead) -> FileFacts:
         t, y = long.time.to_numpy(dtype=np.float64), long.value.to_numpy(dtype=np.float64)
         t_range, y_range = (float(t.min()), float(t.max())), (float(y.min()), float(y.max()))
     return FileFacts(read.part, read.columns, read.check, read.labels, read.rows_read,
-                     read.found.tallies, ids, counts, groups, t_range, y_range)
+                     read.found.tallies, ids, counts, groups, t_range, y_range, read.problem)
 
 
 def file_design_sums(read: FileRead, observed: tuple[float, float],
@@ -159,6 +171,9 @@ def dataset_from_files(spec: Spec, executor: Executor | None, for_fit: bool) -> 
     files = run_on.keep(read_and_check, [str(full) for _, full in listed],
                         [(rel,) for rel, _ in listed], (spec,))
     facts = run_on.map(file_facts, files)
+    unusable = next((f.problem for f in facts if f.problem), "")
+    if unusable:
+        raise DataError(unusable)
     first = facts[0]
     for f in facts[1:]:
         if f.columns != first.columns:

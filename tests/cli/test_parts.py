@@ -436,3 +436,19 @@ def test_a_file_a_task_cannot_find_is_named_with_the_likely_cause(tmp_path: Path
                                         "does not see the data"):
         run_spec(_spec(tmp_path, "readings"), tmp_path / "runs")
     assert not (tmp_path / "runs").exists() or not any((tmp_path / "runs").rglob("v0*"))
+
+
+@pytest.mark.parametrize("engine", ["local", "dask"])
+def test_a_file_that_cannot_be_used_is_a_message_not_a_failed_task(tmp_path: Path,
+                                                                   engine: str) -> None:
+    # The value column missing from one file: one line naming the file, on either engine
+    # (a cluster in the process logs to this terminal: no task failure, no traceback).
+    _split(tmp_path / "readings")
+    path = tmp_path / "readings" / "part-1.parquet"
+    pd.read_parquet(path).drop(columns="marker").to_parquet(path, index=False)
+    done = cli("run", str(_spec(tmp_path, "readings")), "--out", str(tmp_path / "runs"),
+               "--engine", engine)
+    assert done.returncode == 2, done.stdout + done.stderr
+    assert done.stderr.strip() == (
+        "reportgen run: error: column(s) 'marker' not found in 'readings: part-1.parquet' "
+        "(named by data.value); the file has 2 column(s): patient, week")
