@@ -102,12 +102,16 @@ def read_and_check(full: str, rel: str, spec: Spec) -> FileRead:
 
 def _read_and_check(full: str, rel: str, spec: Spec) -> FileRead:
     named = f"{spec.data['file']}: {rel}"
-    if not Path(full).exists():  # it was there when the files were listed
+    try:
+        raw, _ = read_path(Path(full), named)
+    except DataError:
+        if Path(full).exists():
+            raise
+        # it was there when the files were listed
         raise DataError(f"data.file {named!r} is not at {full!r} on {socket.gethostname()}, "
                         "where its task ran, although it was listed when the run started: "
                         "it was removed since, or (on a cluster) this worker does not see "
-                        "the data at the path that the reportgen process sees")
-    raw, _ = read_path(Path(full), named)
+                        "the data at the path that the reportgen process sees") from None
     part = Part(rel, len(raw), hashlib.sha256(raw).hexdigest())
     table = replace(parse_table(raw, "parquet", named), file=rel)
     del raw
@@ -187,42 +191,50 @@ def dataset_from_files(spec: Spec, executor: Executor | None, for_fit: bool) -> 
     checks = [first.check]
     merged, stopped = merged_steps(spec, [f.tallies for f in facts])
     checks += merged
-    held = None
-    if not stopped:
-        kept = [i for i, f in enumerate(facts) if f.ids is not None]
-        whole, codes, ids = _subjects([facts[i] for i in kept], parts)
-        checks.insert(0, whole)
-        if whole.status == "pass":
-            n_obs = np.zeros(len(ids), dtype=np.intp)
-            for i, c in zip(kept, codes, strict=True):
-                n_obs[c] = facts[i].counts
-            t_range = (min((facts[i].t_range[0] for i in kept), default=np.nan),
-                       max((facts[i].t_range[1] for i in kept), default=np.nan))
-            constant = bool(kept) and min(facts[i].y_range[0] for i in kept) == max(
-                facts[i].y_range[1] for i in kept)
-            reads = [files[i] for i in kept]
-
-            def sums(observed: tuple[float, float], domain: tuple[float, float],
-                     fit: bool) -> DesignSums:
-                found = run_on.map(file_design_sums, reads, shared=(observed, domain, spec, fit))
-                return tree_sum(found, add_design_sums)
-
-            checks += design_checks(spec, n_obs, t_range, constant, sums,
-                                    any(x.status == "fail" for x in checks))
-            if for_fit and not any(x.status == "fail" for x in checks):
-                held = Held(tuple(run_on.keep(as_part, reads, [(c,) for c in codes])),
-                            ids, _groups(facts, kept, codes, len(ids)))
+    held = None if stopped else _design(spec, run_on, files, facts, checks, for_fit)
     return Dataset(empty_readings(spec), tuple(checks), spec.data_path, shown,
                    sum(p.n_bytes for p in parts), manifest_digest(parts), rows_read,
                    first.labels, parts, held)
 
 
-def _subjects(facts: list[FileFacts], parts: tuple[Part, ...]
+def _design(spec: Spec, run_on: Executor, files: list[Any], facts: list[FileFacts],
+            checks: list[Check], for_fit: bool) -> Held | None:
+    """After the row-level checks: whether every subject's kept readings lie in one file
+    (put first in ``checks``), the design checks over all files (appended), and, with
+    ``for_fit`` and no check failed, the files' readings as the fit's parts."""
+    kept = [i for i, f in enumerate(facts) if f.ids is not None]
+    whole, codes, ids = _subjects([facts[i] for i in kept], len(facts))
+    checks.insert(0, whole)
+    if whole.status != "pass":
+        return None
+    n_obs = np.zeros(len(ids), dtype=np.intp)
+    for i, c in zip(kept, codes, strict=True):
+        n_obs[c] = facts[i].counts
+    t_range = (min((facts[i].t_range[0] for i in kept), default=np.nan),
+               max((facts[i].t_range[1] for i in kept), default=np.nan))
+    constant = bool(kept) and min(facts[i].y_range[0] for i in kept) == max(
+        facts[i].y_range[1] for i in kept)
+    reads = [files[i] for i in kept]
+
+    def sums(observed: tuple[float, float], domain: tuple[float, float], fit: bool
+             ) -> DesignSums:
+        found = run_on.map(file_design_sums, reads, shared=(observed, domain, spec, fit))
+        return tree_sum(found, add_design_sums)
+
+    checks += design_checks(spec, n_obs, t_range, constant, sums,
+                            any(x.status == "fail" for x in checks))
+    if not for_fit or any(x.status == "fail" for x in checks):
+        return None
+    return Held(tuple(run_on.keep(as_part, reads, [(c,) for c in codes])), ids,
+                _groups(facts, kept, codes, len(ids)))
+
+
+def _subjects(facts: list[FileFacts], n_files: int
               ) -> tuple[Check, list[np.ndarray], pd.Index]:
     """Whether every subject's readings lie in one file; each file's subject codes in the
     whole data set (by sorted id); the sorted ids."""
     if not facts:
-        return _whole(len(parts)), [], pd.Index([])
+        return _whole(n_files), [], pd.Index([])
     sizes = [len(f.ids) for f in facts if f.ids is not None]
     every = pd.concat([pd.Series(f.ids) for f in facts], ignore_index=True)
     codes, ids = pd.factorize(every, sort=True)
@@ -230,13 +242,13 @@ def _subjects(facts: list[FileFacts], parts: tuple[Part, ...]
     count = np.bincount(codes, minlength=len(ids))
     split = count[codes] > 1
     if not split.any():
-        return _whole(len(parts)), np.split(codes, np.cumsum(sizes)[:-1]), ids
+        return _whole(n_files), np.split(codes, np.cumsum(sizes)[:-1]), ids
     which = np.repeat(np.arange(len(facts)), sizes)
     code = codes[int(np.flatnonzero(split)[0])]  # the first met, in manifest order
     where = [facts[int(f)].part.path for f in which[codes == code]]
     return Check("subjects whole in one file", "fail",
                  f"{int((count > 1).sum())} subject(s) have kept readings in more than one of "
-                 f"the {len(parts)} files, e.g. subject {plain(ids[code])} in "
+                 f"the {n_files} files, e.g. subject {plain(ids[code])} in "
                  f"{', '.join(where[:3])}; write the data partitioned by subject (all of a "
                  "subject's readings in one file)"), [], ids
 
