@@ -58,6 +58,9 @@ class AnalysisResult:
     spread: float = 0.0  # spread_trend(readings.residuals), computed once
     groups: GroupComparison | None = None  # when the spec names a group column
     subject_groups: tuple[str, ...] = ()  # the group of each of fit.subjects
+    # the codes (rows of fit.subjects, increasing) of the subjects of each data part, in
+    # the parts' order (one part per data file): how tables of subjects are split into parts
+    subject_parts: tuple[np.ndarray, ...] = ()
 
     @property
     def time_label(self) -> str:
@@ -488,4 +491,5 @@ def analyse(spec: Spec, ds: Dataset, progress: Progress = lambda _: None,
         trajectories=trajectories,
         shown_subjects=shown, caveats=tuple(caveats), stable=tuple(stable),
         factors_note=factors_note, spread=rho, groups=groups, subject_groups=subject_groups,
+        subject_parts=data.subjects,
     )

@@ -135,11 +135,23 @@ class Finding:
     crossed: bool = False
 
 
-def _table(run_dir: Path, name: str) -> pd.DataFrame:
+def _table(run_dir: Path, name: str, columns: list[str] | None = None) -> pd.DataFrame:
+    """A run's table: tables/NAME.csv, or the parts listed in tables/NAME/parts.json."""
     path = run_dir / "tables" / f"{name}.csv"
-    if not path.is_file():
-        raise RecordError(f"{str(run_dir)!r} has no tables/{name}.csv")
-    return pd.read_csv(path, dtype={"subject": str})
+    if path.is_file():
+        return pd.read_csv(path, dtype={"subject": str}, usecols=columns)
+    from .subject_parts import manifest_file, read_manifest
+
+    if (run_dir / manifest_file(name)).is_file():
+        import pyarrow.parquet as pq
+
+        try:
+            files = [run_dir / e.file for e in read_manifest(run_dir, name)]
+            return pd.concat([pq.read_table(f, columns=columns).to_pandas() for f in files],
+                             ignore_index=True)
+        except (ValueError, OSError) as e:
+            raise RecordError(f"{str(run_dir)!r}: tables/{name} cannot be read: {e}") from e
+    raise RecordError(f"{str(run_dir)!r} has no tables/{name}.csv")
 
 
 def _units(run_dir: Path) -> tuple[str, str]:
@@ -185,7 +197,7 @@ def compare_runs(a: Path, b: Path, gates: dict[str, Any]) -> list[Finding]:
         out.append(Finding(f"input {path}", (ia.get(path) or "absent")[:12],
                            (ib.get(path) or "absent")[:12] + ("" if same else " (changed)")))
     out.append(Finding("spec", ra["spec"]["sha256"][:12], rb["spec"]["sha256"][:12]))
-    sa, sb = _table(a, "scores"), _table(b, "scores")
+    sa, sb = (_table(r, "scores", ["subject", "n_obs"]) for r in (a, b))
     added = sorted(set(sb.subject) - set(sa.subject))
     removed = sorted(set(sa.subject) - set(sb.subject))
     out.append(Finding("subjects", str(len(sa)), f"{len(sb)} (+{len(added)} / -{len(removed)})"))

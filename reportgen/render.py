@@ -220,6 +220,14 @@ def _section_components(c: _Context) -> None:
 NAMED_FLAGGED = 20
 
 
+def _subject_table(result: AnalysisResult, name: str) -> str:
+    """Where a table of subjects is in the run directory."""
+    if result.spec.subjects["tables"] == "parquet":
+        return (f"tables/{name}/, {len(result.subject_parts)} Parquet part(s) listed in "
+                f"tables/{name}/parts.json")
+    return f"tables/{name}.csv"
+
+
 def _section_scores(c: _Context) -> None:
     b = c.b
     result = c.result
@@ -237,7 +245,7 @@ def _section_scores(c: _Context) -> None:
            f"exceeds the {spec.subjects['outlier_quantile']:g} quantile of the "
            f"chi-square({fit.n_components}) distribution; {len(flagged)} subject(s) flagged"
            + (f"{which}: {named} (squared distance in brackets)" if named else "")
-           + ". Distances and flags of every subject: tables/scores.csv.")
+           + f". Distances and flags of every subject: {_subject_table(result, 'scores')}.")
     fig(s, "scores")
 
 
@@ -281,7 +289,7 @@ def _section_residuals(c: _Context) -> None:
            f"standardized residuals has median {rms.median():.3g} and 90th percentile "
            f"{rms.quantile(0.9):.3g}; the Spearman correlation of their size with the fitted "
            f"value is {result.spread:.2f} (near 0 expected{_over_sample(result)}). The full "
-           "list is tables/residuals_by_subject.csv.")
+           f"list is {_subject_table(result, 'residuals_by_subject')}.")
     b.table(s, f"The {len(worst)} subjects with the largest RMS standardized residual.",
             ["subject", "readings", "mean residual", "RMS standardized"],
             [[r.subject, r.n_obs, r.mean_residual, r.rms_standardized]

@@ -17,7 +17,7 @@ import shutil
 import threading
 import time
 from collections.abc import Callable
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 
 from . import __version__
@@ -31,6 +31,7 @@ from .record import build_record, dump_record, environment
 from .render import render_html
 from .spec import Spec, load_spec
 from .style import InputFile, load_style
+from .subject_parts import PartEntry, manifest_bytes, manifest_file, write_subject_parts
 from .tables import build_tables, canonical_bytes, results_digest
 from .worker import RenderWorker
 
@@ -52,6 +53,14 @@ class Built:
     results_sha256: str
     result: AnalysisResult
     inputs: tuple[InputFile, ...] = ()  # the spec's template, style sheet and logo
+    # subjects.tables: parquet: the parts written (run-relative name -> entry)
+    parts: dict[str, PartEntry] = field(default_factory=dict)
+
+    @property
+    def outputs(self) -> dict[str, str]:
+        """SHA-256 of every file built so far (the parts as written)."""
+        return {**{name: sha256_bytes(data) for name, data in self.files.items()},
+                **{name: e.sha256 for name, e in self.parts.items()}}
 
 
 class Timer:
@@ -70,12 +79,15 @@ class Timer:
 def build_outputs(spec: Spec, version: int, started: str,
                   progress: Progress = lambda _: None, timer: Timer | None = None,
                   render: bool = True, worker: RenderWorker | None = None,
-                  engine: Engine | None = None) -> Built:
+                  engine: Engine | None = None, parts_to: Path | None = None) -> Built:
     """Every output except record.json and report.pdf (which depend on the record).
 
     With ``render=False`` only the tables (and spec.yaml) are built: what ``verify``
     compares as numbers. With a ``worker``, it draws part of the figures. The fits' passes
-    run on ``engine`` (here by default); the results do not depend on it.
+    run on ``engine`` (here by default); the results do not depend on it. With
+    ``subjects.tables: parquet`` the tables of subjects are written in parts under
+    ``parts_to`` (the run directory being built) as they are made; ``files`` then holds
+    their parts.json.
     """
     clock = timer or Timer()
     run_on = engine or local_engine()
@@ -86,9 +98,20 @@ def build_outputs(spec: Spec, version: int, started: str,
     result = analyse(spec, dataset, progress, clock.lap, run_on.executor)
     dataset = result.dataset  # without the parts of many files, which the fit is done with
     frames = build_tables(result)
+    parts: dict[str, PartEntry] = {}
+    listed: dict[str, bytes] = {}
+    if spec.subjects["tables"] == "parquet":
+        if parts_to is None:
+            raise ValueError("subjects.tables: parquet needs a folder to write the parts to")
+        for name, entries in write_subject_parts(result, parts_to).items():
+            listed[manifest_file(name)] = manifest_bytes(name, entries)
+            parts.update((e.file, e) for e in entries)
+        clock.lap("tables of subjects")
+    sums = {name: (e.csv_bytes, e.csv_sha256) for name, e in parts.items()}
     if style is None:
         tables = canonical_bytes(frames)
-        return Built({**tables, "spec.yaml": spec.raw}, results_digest(tables), result)
+        return Built({**tables, **listed, "spec.yaml": spec.raw}, results_digest(tables, sums),
+                     result, parts=parts)
     progress("figures")
     if worker is not None:  # the worker writes the large tables while figures are drawn
         collect = worker.tables(frames)
@@ -99,7 +122,7 @@ def build_outputs(spec: Spec, version: int, started: str,
 
         tables = canonical_bytes(frames)
         figures = make_figures(result)
-    digest = results_digest(tables)
+    digest = results_digest(tables, sums)
     clock.lap("tables and figures")
     env = environment()
     packages = ", ".join(f"{name} {env['packages'][name]}" for name in
@@ -124,14 +147,14 @@ def build_outputs(spec: Spec, version: int, started: str,
     progress("html")
     html = render_html(result, version, record_view, figures, style)
     clock.lap("html")
-    files = dict(tables)
+    files = {**tables, **listed}
     files["report.html"] = html
     files["spec.yaml"] = spec.raw
     for name, (svg, _, _) in figures.items():
         # The standalone file needs the namespace that the inline copy does without.
         standalone = svg.replace("<svg ", '<svg xmlns="http://www.w3.org/2000/svg" ', 1)
         files[f"figures/{name}.svg"] = standalone.encode("utf-8")
-    return Built(files, digest, result, style.inputs)
+    return Built(files, digest, result, style.inputs, parts)
 
 
 def _next_version(folder: Path) -> int:
@@ -200,10 +223,10 @@ def _run(spec: Spec, out: str | Path, progress: Progress, timer: Timer | None,
         source = os.path.relpath(spec.path, final.resolve())
         started = _timestamp()
         built = build_outputs(spec, version, started, progress, timer, worker=worker,
-                              engine=engine)
+                              engine=engine, parts_to=building)
         for name, data in built.files.items():
             _write(building / name, data)
-        outputs = {name: sha256_bytes(data) for name, data in built.files.items()}
+        outputs = built.outputs
         finished = _timestamp()
         record = dump_record(build_record(built.result, version, started, finished, source,
                                           built.results_sha256, outputs, built.inputs,

@@ -23,7 +23,8 @@ DEFAULT_CHECKS: dict[str, Any] = {
 }
 DEFAULT_SENSITIVITY: dict[str, Any] = {"factors": [0.5, 0.75, 1.5, 2.0],
                                        "similarity_threshold": 0.9}
-DEFAULT_SUBJECTS: dict[str, Any] = {"show": [], "count": 6, "outlier_quantile": 0.99}
+DEFAULT_SUBJECTS: dict[str, Any] = {"show": [], "count": 6, "outlier_quantile": 0.99,
+                                    "tables": "csv"}
 DEFAULT_GATES: dict[str, Any] = {
     "max_mean_change": 0.1, "max_eigenvalue_change": 0.5, "max_error_variance_change": 0.5,
     "min_eigenfunction_similarity": 0.9, "same_components": True,

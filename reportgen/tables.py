@@ -105,17 +105,13 @@ def build_tables(result: AnalysisResult) -> dict[str, pd.DataFrame]:
     for j in range(k):
         ef[f"phi_{j + 1}"] = fit.eigenfunctions[:, j]
     tables["eigenfunctions"] = ef
-    scores = fit.scores.reset_index()
-    scores["subject"] = scores["subject"].astype(str)
-    scores["distance2"] = result.outliers.distance2.to_numpy()
-    scores["flagged"] = result.outliers.flagged.to_numpy()
+    if result.spec.subjects["tables"] == "csv":
+        tables.update(subject_tables(result, None))
     trajectories = result.trajectories.copy()
     if result.groups is not None:
-        group_of = dict(zip(map(str, fit.subjects), result.subject_groups, strict=True))
-        scores.insert(1, "group", list(result.subject_groups))
-        trajectories.insert(1, "group", trajectories.subject.astype(str).map(group_of))
+        shown = _codes(fit.subjects, trajectories.subject.astype(str))
+        trajectories.insert(1, "group", np.asarray(result.subject_groups, dtype=object)[shown])
         tables.update(group_tables(result))
-    tables["scores"] = scores
     tables["trajectories"] = trajectories
     tables["checks"] = pd.DataFrame(
         [(c.name, c.status, c.detail) for c in result.dataset.checks],
@@ -152,11 +148,39 @@ def build_tables(result: AnalysisResult) -> dict[str, pd.DataFrame]:
             row[f"similarity_{j + 1}"] = run.similarity[j] if run.similarity else np.nan
         rows.append(row)
     tables["sensitivity"] = pd.DataFrame(rows)
-    tables["residuals_by_subject"] = result.residual_summary
     tables["model"] = fit.predictor().to_frame()
     tables["units"] = pd.DataFrame(sorted(result.spec.units().items()),
                                    columns=["quantity", "unit"])
     return tables
+
+
+PER_SUBJECT = ("residuals_by_subject", "scores")  # one row per subject: parts when large
+
+
+def subject_tables(result: AnalysisResult, codes: np.ndarray | None
+                   ) -> dict[str, pd.DataFrame]:
+    """The tables of one row per subject, of the subjects ``codes`` (rows of
+    ``fit.subjects``, increasing; None: all): scores (with the outlier distances) and
+    residuals_by_subject."""
+    fit = result.fit
+    rows = slice(None) if codes is None else codes
+    scores = pd.DataFrame({"subject": pd.Index(fit.subjects[rows]).astype(str)})
+    if result.groups is not None:
+        scores["group"] = np.asarray(result.subject_groups, dtype=object)[rows]
+    scores["n_obs"] = fit.n_obs[rows]
+    for k in range(fit.n_components):
+        scores[f"score_{k + 1}"] = fit.score_values[rows, k]
+    scores["distance2"] = result.outliers.distance2.to_numpy()[rows]
+    scores["flagged"] = result.outliers.flagged.to_numpy()[rows]
+    residuals = result.residual_summary
+    if codes is not None:
+        residuals = residuals.iloc[codes].reset_index(drop=True)
+    return {"scores": scores, "residuals_by_subject": residuals}
+
+
+def _codes(subjects: np.ndarray, named: pd.Series) -> np.ndarray:
+    """The rows of ``subjects`` of the ids ``named`` (as text; each one present)."""
+    return pd.Index(subjects).astype(str).get_indexer(named)
 
 
 def group_tables(result: AnalysisResult) -> dict[str, pd.DataFrame]:
@@ -184,11 +208,19 @@ def canonical_bytes(tables: dict[str, pd.DataFrame]) -> dict[str, bytes]:
     return {f"tables/{name}.csv": to_csv_bytes(frame) for name, frame in sorted(tables.items())}
 
 
-def results_digest(canonical: dict[str, bytes]) -> str:
-    """SHA-256 over the canonical tables: name, length and bytes of each, in name order."""
+def results_digest(canonical: dict[str, bytes],
+                   parts: dict[str, tuple[int, str]] | None = None) -> str:
+    """SHA-256 over the canonical tables: name, length and bytes of each, in name order.
+    A table written in parts (``parts``: each part's run-relative name -> the length and
+    SHA-256 of its canonical CSV) enters as each part's name, length and SHA-256 (hex)."""
     h = hashlib.sha256()
-    for name in sorted(canonical):
-        data = canonical[name]
-        h.update(f"{name}\n{len(data)}\n".encode())
-        h.update(data)
+    held = parts or {}
+    for name in sorted({*canonical, *held}):
+        if name in canonical:
+            data = canonical[name]
+            h.update(f"{name}\n{len(data)}\n".encode())
+            h.update(data)
+        else:
+            size, sha = held[name]
+            h.update(f"{name}\n{size}\n{sha}".encode())
     return h.hexdigest()

@@ -17,6 +17,7 @@ input, a changed result, or only a different rendering environment:
 from __future__ import annotations
 
 import io
+import tempfile
 from collections.abc import Callable
 from dataclasses import dataclass, field, replace
 from pathlib import Path
@@ -32,6 +33,8 @@ from .record import environment, load_record
 from .render import render_pdf
 from .runner import Built, build_outputs
 from .spec import spec_from_bytes
+from .subject_parts import MANIFEST, csv_of_part, read_manifest
+from .tables import PER_SUBJECT
 
 Progress = Callable[[str], None]
 RTOL = 1e-6  # relative tolerance for numbers re-computed on another machine
@@ -90,6 +93,32 @@ def _compare_table(a: bytes, b: bytes) -> tuple[bool, str]:
     if cells:
         return False, f"{cells} cell(s) differ (largest relative difference {worst:.2g})"
     return True, f"equal within {RTOL:g} (largest relative difference {worst:.2g})"
+
+
+def _compare_parts(run: Path, table: str, built: Built, scratch: Path) -> tuple[bool, str]:
+    """A table in parts against its re-run: the parts' canonical CSV digests, and where one
+    differs, the two parts as numbers (``_compare_table``)."""
+    try:
+        recorded = read_manifest(run, table)
+    except ValueError as e:
+        return False, str(e)
+    now = [e for name, e in sorted(built.parts.items()) if name.startswith(f"tables/{table}/")]
+    if [e.file for e in recorded] != [e.file for e in now]:
+        return False, f"{len(recorded)} part(s) recorded, {len(now)} now"
+    if all(a.csv_sha256 == b.csv_sha256 for a, b in zip(recorded, now, strict=True)):
+        return True, f"identical ({len(now)} part(s))"
+    worst = ""
+    for a, b in zip(recorded, now, strict=True):
+        if a.csv_sha256 == b.csv_sha256:
+            continue
+        try:
+            ok, detail = _compare_table(csv_of_part(run / a.file), csv_of_part(scratch / b.file))
+        except OSError as e:
+            return False, f"{Path(a.file).name}: cannot be read ({e.strerror or e})"
+        if not ok:
+            return False, f"{Path(a.file).name}: {detail}"
+        worst = detail
+    return True, f"{len(now)} part(s); {worst}"
 
 
 def _environment_diff(recorded: dict[str, Any]) -> list[str]:
@@ -180,19 +209,33 @@ def _inputs_and_numbers(run: Path, record: dict[str, Any], out: Verification,
     if inputs is not None:
         spec = replace(spec, locations=dict(located))
     progress("re-running the recorded spec")
-    built = build_outputs(spec, int(record["run"]["version"]), str(record["run"]["started"]),
-                          progress, render=render)
-    out.rebuilt = built
+    with tempfile.TemporaryDirectory(prefix="reportgen-verify-") as scratch:
+        built = build_outputs(spec, int(record["run"]["version"]), str(record["run"]["started"]),
+                              progress, render=render, parts_to=Path(scratch))
+        out.rebuilt = built
+        _numbers(run, record, out, built, Path(scratch))
+
+
+def _numbers(run: Path, record: dict[str, Any], out: Verification, built: Built,
+             scratch: Path) -> None:
+    """The re-run's tables against the run's (its parts re-written under ``scratch``)."""
     same_digest = built.results_sha256 == record["results_sha256"]
     out.add("numbers", "results sha256 (exact)", record["results_sha256"][:16],
             built.results_sha256[:16], True)
     bad = 0
     for name in sorted(n for n in built.files if n.startswith("tables/")):
+        if name.endswith("/" + MANIFEST):  # a table in parts: compared part by part below
+            continue
         stored = run / name
         ok, detail = _compare_table(stored.read_bytes() if stored.is_file() else b"",
                                     built.files[name])
         bad += not ok
         out.add("numbers", f"table {name.removeprefix('tables/')}", "recorded", detail, ok)
+    if built.parts:
+        for table in PER_SUBJECT:
+            ok, detail = _compare_parts(run, table, built, scratch)
+            bad += not ok
+            out.add("numbers", f"table {table} (parts)", "recorded", detail, ok)
     if bad:
         out.verdicts["numbers"] = f"CHANGED: {bad} table(s) differ beyond {RTOL:g}"
     elif same_digest:

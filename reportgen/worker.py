@@ -69,7 +69,7 @@ def summary_view(result: AnalysisResult) -> AnalysisResult:
                    fit=result.fit.without_subjects(), sensitivity=runs,
                    readings=result.readings.empty(),
                    residual_summary=result.residual_summary.iloc[:0],
-                   outliers=result.outliers.iloc[:0])
+                   outliers=result.outliers.iloc[:0], subject_parts=())
 
 
 def _csv(frames: dict[str, pd.DataFrame]) -> dict[str, bytes]:

@@ -1,0 +1,123 @@
+"""Tables of one row per subject as folders of Parquet parts (``subjects.tables: parquet``).
+
+``tables/<name>/part-00001.parquet``, ``part-00002.parquet``, ...: one part per part of the
+data (per data file that holds readings, in the order of the input manifest), its subjects
+in code order. ``tables/<name>/parts.json`` lists each part's rows, its bytes and their
+SHA-256, and the length and SHA-256 of the part's canonical CSV (``tables.to_csv_bytes``
+of the same rows, header included). The results digest takes the canonical CSV's, so that
+it depends on the numbers, not on the Parquet writer's version; ``verify`` compares them.
+
+With one data file there is one part, and its canonical CSV is byte for byte the table
+``subjects.tables: csv`` writes. A part is made, written and hashed before the next one is
+made: the rendering never holds a table of every subject.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import io
+import json
+from collections.abc import Iterator
+from dataclasses import asdict, dataclass
+from pathlib import Path
+from typing import TYPE_CHECKING, Any
+
+import pandas as pd
+
+from .tables import PER_SUBJECT, subject_tables, to_csv_bytes
+
+if TYPE_CHECKING:
+    from .analysis import AnalysisResult
+
+MANIFEST = "parts.json"
+COMPRESSION = "zstd"
+
+
+@dataclass(frozen=True)
+class PartEntry:
+    """One written part. ``file`` is relative to the run directory."""
+
+    file: str
+    rows: int
+    bytes: int
+    sha256: str
+    csv_bytes: int
+    csv_sha256: str
+
+
+def part_file(table: str, index: int) -> str:
+    """The run-relative name of part ``index`` (from 0) of ``table``."""
+    return f"tables/{table}/part-{index + 1:05d}.parquet"
+
+
+def manifest_file(table: str) -> str:
+    return f"tables/{table}/{MANIFEST}"
+
+
+def parquet_bytes(frame: pd.DataFrame) -> bytes:
+    """The frame as Parquet bytes: no index, no pandas metadata (it names the pandas
+    version), a fixed compression; the same frame and pyarrow version give the same bytes."""
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    table = pa.Table.from_pandas(frame, preserve_index=False).replace_schema_metadata(None)
+    sink = io.BytesIO()
+    pq.write_table(table, sink, compression=COMPRESSION)
+    return sink.getvalue()
+
+
+def csv_of_part(path: Path) -> bytes:
+    """The canonical CSV of a written part (what its ``csv_sha256`` digests)."""
+    import pyarrow.parquet as pq
+
+    return to_csv_bytes(pq.read_table(path).to_pandas())
+
+
+def subject_part_frames(result: AnalysisResult) -> Iterator[tuple[int, dict[str, pd.DataFrame]]]:
+    """Each part's tables of subjects, part after part."""
+    for index, codes in enumerate(result.subject_parts):
+        yield index, subject_tables(result, codes)
+
+
+def write_subject_parts(result: AnalysisResult, run: Path) -> dict[str, list[PartEntry]]:
+    """Write every part of every table of subjects under ``run`` (the run directory being
+    built); returns each table's entries, in part order."""
+    written: dict[str, list[PartEntry]] = {name: [] for name in PER_SUBJECT}
+    for index, frames in subject_part_frames(result):
+        for name in PER_SUBJECT:
+            frame = frames[name]
+            data = parquet_bytes(frame)
+            text = to_csv_bytes(frame)
+            target = run / part_file(name, index)
+            target.parent.mkdir(parents=True, exist_ok=True)
+            target.write_bytes(data)
+            written[name].append(PartEntry(
+                part_file(name, index), len(frame), len(data), _sha256(data), len(text),
+                _sha256(text)))
+    return written
+
+
+def manifest_bytes(table: str, entries: list[PartEntry]) -> bytes:
+    """A table's parts.json: its parts in order, with their sizes and digests."""
+    content: dict[str, Any] = {
+        "table": table,
+        "format": f"Parquet ({COMPRESSION}); one part per data file holding readings, in "
+                  "the input manifest's order; subjects in code order within a part",
+        "rows": sum(e.rows for e in entries),
+        "parts": [{**asdict(e), "file": Path(e.file).name} for e in entries],
+    }
+    return (json.dumps(content, indent=1, sort_keys=True) + "\n").encode("utf-8")
+
+
+def read_manifest(run: Path, table: str) -> list[PartEntry]:
+    """The entries of a run's parts.json for ``table`` (ValueError when unreadable)."""
+    try:
+        content = json.loads((run / manifest_file(table)).read_text("utf-8"))
+        return [PartEntry(**{**p, "file": f"tables/{table}/{p['file']}"})
+                for p in content["parts"]]
+    except (OSError, KeyError, TypeError, json.JSONDecodeError) as e:
+        raise ValueError(f"{manifest_file(table)} cannot be read: {e}") from e
+
+
+def _sha256(data: bytes) -> str:
+    return hashlib.sha256(data).hexdigest()
