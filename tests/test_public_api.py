@@ -10,7 +10,7 @@ def test_all_is_sorted_and_complete() -> None:
         "api", "errors", "fpca", "validation", "cli", "spec", "data", "analysis", "record",
         "figures", "render", "runner", "checks", "tables", "verify", "integrity", "syscheck",
         "threads", "worker", "readers", "predict", "starter", "style", "sandbox", "styles",
-        "manifest", "engine", "folder",
+        "manifest", "engine", "folder", "subject_parts",
     }
     assert sorted(reportgen.__all__) == reportgen.__all__
     assert set(reportgen.__all__) - {"__version__"} == public
