@@ -19,6 +19,8 @@ from .errors import TemplateError
 from .fpca import BandwidthChoice
 
 if TYPE_CHECKING:
+    import pandas as pd
+
     from .style import Style
 
 
@@ -272,6 +274,17 @@ def _section_trajectories(c: _Context) -> None:
     fig(s, "trajectories")
 
 
+def _largest(frame: pd.DataFrame, column: str, n: int) -> pd.DataFrame:
+    """The ``n`` rows with the largest ``column``, ties by subject: the rows of the ``n``
+    largest values found by a partition, then sorted (a sort of every row, ids included,
+    took seconds and a copy of the frame at 10^7 subjects)."""
+    values = np.nan_to_num(frame[column].to_numpy(dtype=np.float64), nan=-np.inf)
+    if values.size > n:
+        cut = np.partition(values, values.size - n)[values.size - n]
+        frame = frame[values >= cut]
+    return frame.sort_values([column, "subject"], ascending=[False, True]).head(n)
+
+
 def _section_residuals(c: _Context) -> None:
     b = c.b
     result = c.result
@@ -280,7 +293,7 @@ def _section_residuals(c: _Context) -> None:
                   "fitted curves as the model assumes.")
     fig(s, "residuals")
     summary = result.residual_summary
-    worst = summary.sort_values(["rms_standardized", "subject"], ascending=[False, True]).head(10)
+    worst = _largest(summary, "rms_standardized", 10)
     rms = summary.rms_standardized
     b.text(s, "Each residual (reading minus fitted trajectory) is divided by its own standard "
            "deviation under the fitted model, which is smaller than the error standard "

@@ -12,6 +12,7 @@ import numpy as np
 import pandas as pd
 
 from .analysis import AnalysisResult, rule_choice
+from .fpca.fit import Labels
 
 FLOAT_FORMAT = "%.10g"
 
@@ -178,9 +179,9 @@ def subject_tables(result: AnalysisResult, codes: np.ndarray | None
     return {"scores": scores, "residuals_by_subject": residuals}
 
 
-def _codes(subjects: np.ndarray, named: pd.Series) -> np.ndarray:
+def _codes(subjects: Labels, named: pd.Series) -> np.ndarray:
     """The rows of ``subjects`` of the ids ``named`` (as text; each one present)."""
-    return pd.Index(subjects).astype(str).get_indexer(named)
+    return pd.Index(subjects).astype(str).get_indexer(pd.Index(named))
 
 
 def group_tables(result: AnalysisResult) -> dict[str, pd.DataFrame]:

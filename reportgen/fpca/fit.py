@@ -58,6 +58,13 @@ from .smoothing import (
     local_quadratic_diagonal_2d,
 )
 
+# Subject labels: an array, or a pandas Index (immutable) of text kept as it came.
+Labels = np.ndarray | pd.Index
+
+
+def _labels(labels: Labels) -> Labels:
+    return labels if isinstance(labels, pd.Index) else _frozen(np.asarray(labels))
+
 
 def _frozen(a: np.ndarray) -> np.ndarray:
     a = np.ascontiguousarray(a)
@@ -111,8 +118,10 @@ class FPCAFit:
     mean_bandwidth_choice, covariance_bandwidth_choice, diagonal_bandwidth_choice
         BandwidthChoice
     selection : ComponentSelection
-    subjects : ndarray of shape (n_subjects,)
-        Subject labels, in the order of the score rows.
+    subjects : ndarray or pandas Index of shape (n_subjects,)
+        Subject labels, in the order of the score rows: an Index of text when the labels
+        came as one (the ids of many files, held as Arrow text: about 30 bytes a subject
+        where an array of Python strings takes about 70).
     n_obs : ndarray of shape (n_subjects,)
     score_values : ndarray of shape (n_subjects, n_components)
     score_cov : ndarray of shape (n_subjects, n_components, n_components)
@@ -152,7 +161,7 @@ class FPCAFit:
     covariance_bandwidth_choice: BandwidthChoice
     diagonal_bandwidth_choice: BandwidthChoice
     selection: ComponentSelection
-    subjects: np.ndarray
+    subjects: Labels
     n_obs: IntArray
     score_values: FloatArray
     score_cov: FloatArray
@@ -269,7 +278,7 @@ class FPCAFit:
             rows = np.arange(self.n_subjects)
         else:
             lookup = pd.Index(self.subjects)
-            rows = lookup.get_indexer(subjects)
+            rows = lookup.get_indexer(pd.Index(subjects))
             missing = [s for s, r in zip(subjects, rows, strict=True) if r < 0]
             if missing:
                 raise EstimationError(f"subjects not in the fit: {missing[:5]!r}")
@@ -286,7 +295,7 @@ class FPCAFit:
         """``"corrected"`` when replicates carry the estimation uncertainty, else ``"plugin"``."""
         return "corrected" if self.replicates else "plugin"
 
-    def _curve_frame(self, labels: np.ndarray, scores: FloatArray, cov: FloatArray,
+    def _curve_frame(self, labels: Labels, scores: FloatArray, cov: FloatArray,
                      level: float | None, sample: Sample) -> pd.DataFrame:
         var = total_variance(self.replicates, self.grid, sample) if self.replicates else None
         fitted, lower, upper = self.curves(scores, cov, level, variance=var)
@@ -505,7 +514,7 @@ def fit_arrays(
         return _fit(data, labels, options, population_only, per_subject, sample)
 
 
-def fit_parts(data: Partitioned, labels: np.ndarray, options: FPCAOptions = FPCAOptions(),
+def fit_parts(data: Partitioned, labels: Labels, options: FPCAOptions = FPCAOptions(),
               *, per_subject: bool = True, sample: Sample | None = None) -> FPCAFit:
     """Fit sparse FPCA to readings held in parts (``fpca.plan``), whoever executes the passes.
 
@@ -519,7 +528,7 @@ def fit_parts(data: Partitioned, labels: np.ndarray, options: FPCAOptions = FPCA
         return _fit(data, labels, options, False, per_subject, sample)
 
 
-def _fit(data: Partitioned, labels: np.ndarray, options: FPCAOptions, population_only: bool,
+def _fit(data: Partitioned, labels: Labels, options: FPCAOptions, population_only: bool,
          per_subject: bool = True, sample: Sample | None = None) -> FPCAFit:
     lo, hi = options.fitted_domain(data.t_min, data.t_max)
     _check_design(data, lo, hi)
@@ -638,7 +647,7 @@ def _fit(data: Partitioned, labels: np.ndarray, options: FPCAOptions, population
         n_components=k, mean_bandwidth_choice=mean_choice,
         covariance_bandwidth_choice=cov_choice, diagonal_bandwidth_choice=diag_choice,
         selection=selection,
-        subjects=_frozen(np.asarray(labels)), n_obs=_frozen(data.n_obs),
+        subjects=_labels(labels), n_obs=_frozen(data.n_obs),
         score_values=_frozen(scores), score_cov=_frozen(score_cov),
         pair_counts=_frozen(pstats.offdiag.counts.sum(axis=0)), pair_grid=_frozen(cbins.centers),
         n_readings=data.n_readings, dropped_eigenvalues=eig.n_dropped,
