@@ -12,7 +12,7 @@ import numpy as np
 import pandas as pd
 
 from .analysis import AnalysisResult, rule_choice
-from .fpca.fit import Labels
+from .fpca.fit import Labels, rows_of
 
 FLOAT_FORMAT = "%.10g"
 
@@ -181,7 +181,7 @@ def subject_tables(result: AnalysisResult, codes: np.ndarray | None
 
 def _codes(subjects: Labels, named: pd.Series) -> np.ndarray:
     """The rows of ``subjects`` of the ids ``named`` (as text; each one present)."""
-    return pd.Index(subjects).astype(str).get_indexer(pd.Index(named))
+    return rows_of(pd.Index(subjects).astype(str), named.tolist())
 
 
 def group_tables(result: AnalysisResult) -> dict[str, pd.DataFrame]:
