@@ -73,11 +73,15 @@ class OnDask:
 
 
 def versions() -> dict[str, str]:
-    """The versions of the code that runs the passes."""
+    """The versions of the code that runs the passes (pandas and pyarrow: the workers make
+    the Parquet parts of the tables of subjects, whose bytes name the writer)."""
     import numba
     import numpy
+    import pandas
+    import pyarrow
 
-    return {"reportgen": __version__, "numpy": numpy.__version__, "numba": numba.__version__}
+    return {"reportgen": __version__, "numpy": numpy.__version__, "numba": numba.__version__,
+            "pandas": pandas.__version__, "pyarrow": pyarrow.__version__}
 
 
 def prepare_worker() -> dict[str, str]:
@@ -87,7 +91,8 @@ def prepare_worker() -> dict[str, str]:
 
 
 def check_versions(found: dict[str, dict[str, str]], here: dict[str, str]) -> None:
-    """Refuse workers whose reportgen, numpy or numba differ from this process's."""
+    """Refuse workers whose reportgen, numpy, numba, pandas or pyarrow differ from this
+    process's."""
     for worker, versions in sorted(found.items()):
         differ = [f"{name} {versions.get(name)} (here {v})" for name, v in here.items()
                   if versions.get(name) != v]

@@ -103,7 +103,7 @@ def build_outputs(spec: Spec, version: int, started: str,
     if spec.subjects["tables"] == "parquet":
         if parts_to is None:
             raise ValueError("subjects.tables: parquet needs a folder to write the parts to")
-        for name, entries in write_subject_parts(result, parts_to).items():
+        for name, entries in write_subject_parts(result, parts_to, run_on.executor).items():
             listed[manifest_file(name)] = manifest_bytes(name, entries)
             parts.update((e.file, e) for e in entries)
         clock.lap("tables of subjects")
