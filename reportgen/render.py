@@ -270,7 +270,10 @@ def _section_trajectories(c: _Context) -> None:
            + ("corrected for the estimation of the population quantities by "
               f"{len(fit.replicates)} resamples of subjects" if fit.replicates else
               "plug-in: mean, eigenfunctions and variances taken as known")
-           + "); outer band: simultaneous over the whole curve.")
+           + "); outer band: simultaneous over the whole curve."
+           + (" The trajectory of every subject, with plug-in bands: "
+              f"{_subject_table(result, 'all_trajectories')}."
+              if spec.subjects["all_trajectories"] else ""))
     fig(s, "trajectories")
 
 

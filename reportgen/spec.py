@@ -24,7 +24,7 @@ DEFAULT_CHECKS: dict[str, Any] = {
 DEFAULT_SENSITIVITY: dict[str, Any] = {"factors": [0.5, 0.75, 1.5, 2.0],
                                        "similarity_threshold": 0.9}
 DEFAULT_SUBJECTS: dict[str, Any] = {"show": [], "count": 6, "outlier_quantile": 0.99,
-                                    "tables": "csv"}
+                                    "tables": "csv", "all_trajectories": False}
 DEFAULT_GATES: dict[str, Any] = {
     "max_mean_change": 0.1, "max_eigenvalue_change": 0.5, "max_error_variance_change": 0.5,
     "min_eigenfunction_similarity": 0.9, "same_components": True,
@@ -216,10 +216,17 @@ def spec_from_bytes(raw: bytes, path: Path) -> Spec:
         model["domain"] = checks["domain"]
     model["band_level"] = report["band_level"]
     options = make_options(model, root="model")
+    subjects = {**DEFAULT_SUBJECTS, **content.get("subjects", {})}
+    if subjects["all_trajectories"] and options.band == "corrected":
+        raise SpecError("subjects.all_trajectories writes every subject's trajectory with the "
+                        "plug-in band; model.band is corrected, whose band needs each "
+                        "subject's readings in one place. Set model.band: plugin, or leave "
+                        "subjects.all_trajectories out (the shown subjects keep the corrected "
+                        "band).")
     return Spec(
         path=path.resolve(), raw=raw, sha256=hashlib.sha256(raw).hexdigest(), content=content,
         report=report, data=data, checks=checks,
         sensitivity={**DEFAULT_SENSITIVITY, **content.get("sensitivity", {})},
-        subjects={**DEFAULT_SUBJECTS, **content.get("subjects", {})},
+        subjects=subjects,
         gates={**DEFAULT_GATES, **content.get("gates", {})}, options=options,
     )

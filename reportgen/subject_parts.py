@@ -25,7 +25,7 @@ from typing import TYPE_CHECKING, Any
 
 import pandas as pd
 
-from .tables import PER_SUBJECT, subject_tables, to_csv_bytes
+from .tables import subject_table_names, subject_tables, to_csv_bytes
 
 if TYPE_CHECKING:
     from .analysis import AnalysisResult
@@ -99,7 +99,8 @@ def write_subject_parts(result: AnalysisResult, run: Path, executor: Executor | 
     from .fpca.executor import InProcess
 
     run_on = executor or InProcess()
-    written: dict[str, list[PartEntry]] = {name: [] for name in PER_SUBJECT}
+    names = subject_table_names(result.spec)
+    written: dict[str, list[PartEntry]] = {name: [] for name in names}
     parts = result.subject_parts
     for first in range(0, len(parts), BATCH):
         indices = range(first, min(first + BATCH, len(parts)))
@@ -108,7 +109,7 @@ def write_subject_parts(result: AnalysisResult, run: Path, executor: Executor | 
         made = run_on.map(made_part, frames)
         del frames
         for index, tables in zip(indices, made, strict=True):
-            for name in PER_SUBJECT:
+            for name in names:
                 data, rows, csv_bytes, csv_sha256 = tables[name]
                 target = run / part_file(name, index)
                 target.parent.mkdir(parents=True, exist_ok=True)

@@ -13,6 +13,7 @@ import pandas as pd
 
 from .analysis import AnalysisResult, rule_choice
 from .fpca.fit import Labels, rows_of
+from .spec import Spec
 
 FLOAT_FORMAT = "%.10g"
 
@@ -155,7 +156,11 @@ def build_tables(result: AnalysisResult) -> dict[str, pd.DataFrame]:
     return tables
 
 
-PER_SUBJECT = ("residuals_by_subject", "scores")  # one row per subject: parts when large
+def subject_table_names(spec: Spec) -> tuple[str, ...]:
+    """The tables whose rows belong to one subject each (in parts with subjects.tables:
+    parquet), in name order."""
+    extra = ("all_trajectories",) if spec.subjects["all_trajectories"] else ()
+    return (*extra, "residuals_by_subject", "scores")
 
 
 def subject_tables(result: AnalysisResult, codes: np.ndarray | None
@@ -176,7 +181,15 @@ def subject_tables(result: AnalysisResult, codes: np.ndarray | None
     residuals = result.residual_summary
     if codes is not None:
         residuals = residuals.iloc[codes].reset_index(drop=True)
-    return {"scores": scores, "residuals_by_subject": residuals}
+    tables = {"scores": scores, "residuals_by_subject": residuals}
+    if result.spec.subjects["all_trajectories"]:
+        curves = fit.plugin_trajectories(codes)
+        curves["subject"] = pd.Index(curves["subject"]).astype(str)
+        if result.groups is not None:
+            groups = np.asarray(result.subject_groups, dtype=object)[rows]
+            curves.insert(1, "group", np.repeat(groups, fit.grid.size))
+        tables["all_trajectories"] = curves
+    return tables
 
 
 def _codes(subjects: Labels, named: pd.Series) -> np.ndarray:

@@ -34,7 +34,7 @@ from .render import render_pdf
 from .runner import Built, build_outputs
 from .spec import spec_from_bytes
 from .subject_parts import MANIFEST, csv_of_part, read_manifest
-from .tables import PER_SUBJECT
+from .tables import subject_table_names
 
 Progress = Callable[[str], None]
 RTOL = 1e-6  # relative tolerance for numbers re-computed on another machine
@@ -232,7 +232,7 @@ def _numbers(run: Path, record: dict[str, Any], out: Verification, built: Built,
         bad += not ok
         out.add("numbers", f"table {name.removeprefix('tables/')}", "recorded", detail, ok)
     if built.parts:
-        for table in PER_SUBJECT:
+        for table in subject_table_names(built.result.spec):
             ok, detail = _compare_parts(run, table, built, scratch)
             bad += not ok
             out.add("numbers", f"table {table} (parts)", "recorded", detail, ok)

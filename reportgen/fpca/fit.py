@@ -298,16 +298,24 @@ class FPCAFit:
         elif readings.n_subjects != rows.size:
             raise EstimationError(f"readings of {readings.n_subjects} subjects given for "
                                   f"{rows.size} trajectories")
+        var = total_variance(self.replicates, self.grid, readings) if self.replicates else None
         return self._curve_frame(self.subjects[rows], self.score_values[rows],
-                                 self.score_cov[rows], level, readings)
+                                 self.score_cov[rows], level, var)
+
+    def plugin_trajectories(self, rows: IntArray | None = None) -> pd.DataFrame:
+        """The trajectories of the subjects at ``rows`` (all by default) with plug-in bands,
+        as :meth:`trajectories` gives them for a fit without resamples: from the scores and
+        their covariances alone (no readings)."""
+        at = slice(None) if rows is None else rows
+        return self._curve_frame(self.subjects[at], self.score_values[at], self.score_cov[at],
+                                 None, None)
 
     def band_kind(self) -> str:
         """``"corrected"`` when replicates carry the estimation uncertainty, else ``"plugin"``."""
         return "corrected" if self.replicates else "plugin"
 
     def _curve_frame(self, labels: Labels, scores: FloatArray, cov: FloatArray,
-                     level: float | None, sample: Sample) -> pd.DataFrame:
-        var = total_variance(self.replicates, self.grid, sample) if self.replicates else None
+                     level: float | None, var: FloatArray | None) -> pd.DataFrame:
         fitted, lower, upper = self.curves(scores, cov, level, variance=var)
         _, lower_s, upper_s = self.curves(scores, cov, level, "simultaneous", var)
         return pd.DataFrame({
@@ -348,7 +356,8 @@ class FPCAFit:
         lower_simultaneous, upper_simultaneous.
         """
         labels, scores, cov, sample = self._new_subjects(frame)
-        return self._curve_frame(labels, scores, cov, level, sample)
+        var = total_variance(self.replicates, self.grid, sample) if self.replicates else None
+        return self._curve_frame(labels, scores, cov, level, var)
 
     def predict_at(
         self, frame: pd.DataFrame, targets: pd.DataFrame, level: float | None = None,

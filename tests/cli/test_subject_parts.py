@@ -12,6 +12,7 @@ are read back with pyarrow.
 from __future__ import annotations
 
 import hashlib
+import io
 import json
 import shutil
 from pathlib import Path
@@ -26,13 +27,13 @@ from reportgen.tables import to_csv_bytes
 
 from .conftest import ROOT, cli, pump_folder
 
-PARTS = "  count: 6\n  tables: parquet\n"
 TABLES = ("residuals_by_subject", "scores")
+ALL = "  all_trajectories: true\n"
 
 
-def _as_parts(spec: Path, name: str) -> Path:
+def _with(spec: Path, name: str, settings: str) -> Path:
     path = spec.with_name(name)
-    path.write_text(spec.read_text().replace("  count: 6\n", PARTS))
+    path.write_text(spec.read_text().replace("  count: 6\n", "  count: 6\n" + settings))
     return path
 
 
@@ -40,17 +41,18 @@ def _as_parts(spec: Path, name: str) -> Path:
 def runs(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Path]:
     base = tmp_path_factory.mktemp("subject-parts")
     folder = pump_folder(base)
-    one = base / "one.yaml"
+    one = base / "one-plain.yaml"
     shutil.copy(ROOT / "specs" / "pump_service.csv", base / "pump_service.csv")
     one.write_text((ROOT / "specs" / "pump_service.yaml").read_text()
                    .replace("logo: fleet_logo.svg", ""))
+    parts = _with(folder, "folder-parts.yaml", "  tables: parquet\n" + ALL)
     return {
-        "one csv": run_spec(one, base / "one"),
-        "one parts": run_spec(_as_parts(one, "one-parts.yaml"), base / "one"),
+        "one csv": run_spec(_with(one, "one.yaml", ALL), base / "one"),
+        "one parts": run_spec(_with(one, "one-parts.yaml", "  tables: parquet\n" + ALL),
+                              base / "one"),
         "folder csv": run_spec(folder, base / "folder"),
-        "folder parts": run_spec(_as_parts(folder, "folder-parts.yaml"), base / "folder"),
-        "dask parts": run_spec(folder.with_name("folder-parts.yaml"), base / "dask",
-                               engine="dask"),
+        "folder parts": run_spec(parts, base / "folder"),
+        "dask parts": run_spec(parts, base / "dask", engine="dask"),
     }
 
 
@@ -60,7 +62,7 @@ def _manifest(run: Path, table: str) -> dict:
 
 def test_one_file_gives_one_part_equal_to_the_csv_table(runs: dict[str, Path]) -> None:
     csv, parts = runs["one csv"], runs["one parts"]
-    for table in TABLES:
+    for table in (*TABLES, "all_trajectories"):
         assert not (parts / "tables" / f"{table}.csv").exists()
         manifest = _manifest(parts, table)
         assert [p["file"] for p in manifest["parts"]] == ["part-00001.parquet"]
@@ -89,6 +91,16 @@ def test_a_folder_gives_one_part_per_file_holding_its_subjects(runs: dict[str, P
         # the files split the sorted ids in thirds: the parts in order are the CSV table
         whole = (csv / "tables" / f"{table}.csv").read_bytes()
         assert to_csv_bytes(pd.concat(frames, ignore_index=True)) == whole
+    # every subject's trajectory: a grid's rows each; the shown subjects' as trajectories.csv
+    grid = len(pd.read_csv(csv / "tables" / "mean.csv"))
+    curves = [pq.read_table(parts / "tables" / "all_trajectories" / e["file"]).to_pandas()
+              for e in _manifest(parts, "all_trajectories")["parts"]]
+    assert [len(c) for c in curves] == [e["rows"] * grid
+                                         for e in _manifest(parts, "scores")["parts"]]
+    every = pd.concat(curves, ignore_index=True)
+    shown = (parts / "tables" / "trajectories.csv").read_bytes()
+    picked = every[every.subject.isin(pd.read_csv(io.BytesIO(shown), dtype=str).subject)]
+    assert to_csv_bytes(picked) == shown
     scores = pq.read_table(parts / "tables" / "scores" / "part-00001.parquet")
     assert str(scores.schema.field("subject").type) in ("string", "large_string")
     assert str(scores.schema.field("score_1").type) == "double"
@@ -104,7 +116,9 @@ def test_the_results_digest_takes_each_parts_csv_digest(runs: dict[str, Path]) -
     for path in (run / "tables").glob("*.csv"):
         data = path.read_bytes()
         items[f"tables/{path.name}"] = (len(data), data)
-    for table in TABLES:
+    tables = sorted(p.name for p in (run / "tables").iterdir() if p.is_dir())
+    assert tables == ["all_trajectories", *TABLES]
+    for table in tables:
         for e in _manifest(run, table)["parts"]:
             items[f"tables/{table}/{e['file']}"] = (e["csv_bytes"], e["csv_sha256"])
     for name in sorted(items):
@@ -126,7 +140,7 @@ def test_the_results_digest_takes_each_parts_csv_digest(runs: dict[str, Path]) -
 
 def test_the_dask_engine_writes_the_same_parts(runs: dict[str, Path]) -> None:
     here, there = runs["folder parts"], runs["dask parts"]
-    for table in TABLES:
+    for table in (*TABLES, "all_trajectories"):
         for path in sorted((here / "tables" / table).iterdir()):
             assert path.read_bytes() == (there / "tables" / table / path.name).read_bytes()
     records = [json.loads((r / "record.json").read_text()) for r in (here, there)]
@@ -164,3 +178,20 @@ def test_the_report_says_where_the_tables_of_subjects_are(runs: dict[str, Path])
     html = (runs["folder parts"] / "report.html").read_text()
     assert "tables/scores/, 3 Parquet part(s) listed in tables/scores/parts.json" in html
     assert "tables/scores.csv" not in html
+    assert ("The trajectory of every subject, with plug-in bands: tables/all_trajectories/, "
+            "3 Parquet part(s)") in html
+    one = (runs["one csv"] / "report.html").read_text()
+    assert "with plug-in bands: tables/all_trajectories.csv." in one
+
+
+def test_every_trajectory_needs_the_plugin_band(tmp_path: Path) -> None:
+    spec = tmp_path / "pump.yaml"
+    shutil.copy(ROOT / "specs" / "pump_service.csv", tmp_path / "pump_service.csv")
+    spec.write_text((ROOT / "specs" / "pump_service.yaml").read_text()
+                    .replace("logo: fleet_logo.svg", "")
+                    .replace("  count: 6\n", "  count: 6\n" + ALL)
+                    .replace("model:\n", "model:\n  band: corrected\n"))
+    done = cli("check", str(spec))
+    assert done.returncode == 2, done.stdout + done.stderr
+    assert "subjects.all_trajectories writes every subject's trajectory with the plug-in band" \
+        in done.stderr and "Traceback" not in done.stderr
