@@ -19,17 +19,26 @@ from __future__ import annotations
 import hashlib
 import io
 import json
-from dataclasses import asdict, dataclass
+from dataclasses import asdict, dataclass, replace
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
+import numpy as np
 import pandas as pd
 
-from .tables import subject_table_names, subject_tables, to_csv_bytes
+from .tables import (
+    subject_groups,
+    subject_table_names,
+    subject_tables,
+    to_csv_bytes,
+    trajectory_table,
+)
 
 if TYPE_CHECKING:
     from .analysis import AnalysisResult
     from .fpca.executor import Executor
+    from .fpca.fit import FPCAFit
+    from .fpca.smoothing import FloatArray
 
 MANIFEST = "parts.json"
 COMPRESSION = "zstd"
@@ -75,9 +84,27 @@ def csv_of_part(path: Path) -> bytes:
     return to_csv_bytes(pq.read_table(path).to_pandas())
 
 
-def made_part(frames: dict[str, pd.DataFrame]) -> dict[str, tuple[bytes, int, int, str]]:
+@dataclass(frozen=True)
+class PartInput:
+    """What a task makes one part's tables of subjects from: the frames of one row per
+    subject, and for all_trajectories (a grid's rows per subject, made by the task) the
+    subjects' ids, scores, score covariances and groups."""
+
+    frames: dict[str, pd.DataFrame]
+    curves: tuple[Any, FloatArray, FloatArray, np.ndarray | None] | None = None
+
+
+def made_part(given: PartInput, model: FPCAFit | None
+              ) -> dict[str, tuple[bytes, int, int, str]]:
     """A task: one part's tables of subjects as Parquet bytes, with their rows and the
-    length and SHA-256 of their canonical CSV (the text itself stays where it was made)."""
+    length and SHA-256 of their canonical CSV (the text itself stays where it was made).
+    ``model``: the fit without its subjects, for all_trajectories."""
+    frames = dict(given.frames)
+    if given.curves is not None:
+        assert model is not None
+        labels, scores, cov, groups = given.curves
+        fit = replace(model, subjects=labels, score_values=scores, score_cov=cov)
+        frames["all_trajectories"] = trajectory_table(fit, None, groups)
     out = {}
     for name, frame in frames.items():
         text = to_csv_bytes(frame)
@@ -85,9 +112,26 @@ def made_part(frames: dict[str, pd.DataFrame]) -> dict[str, tuple[bytes, int, in
     return out
 
 
-# Parts made per call of the executor: their Parquet bytes come back together (at 10^7
-# subjects in 64 files, about 7 MB a part), and the next call's frames are made after.
-BATCH = 8
+# Output rows made per call of the executor (at least two parts a call: two workers):
+# their Parquet bytes come back together. At 10^7 subjects in 64 files, six parts of
+# scores and residuals a call (about 7 MB of Parquet a part); with all_trajectories at
+# 10^6 subjects in 32 files, two parts a call (about 120 MB a part).
+BATCH_ROWS = 2_000_000
+
+
+def _batches(sizes: list[int], per_subject: int) -> list[range]:
+    """Consecutive parts, each run ``BATCH_ROWS`` output rows or at least two parts."""
+    out: list[range] = []
+    first = 0
+    while first < len(sizes):
+        last, rows = first, 0
+        while last < len(sizes) and (last < first + 2 or
+                                     rows + sizes[last] * per_subject <= BATCH_ROWS):
+            rows += sizes[last] * per_subject
+            last += 1
+        out.append(range(first, last))
+        first = last
+    return out
 
 
 def write_subject_parts(result: AnalysisResult, run: Path, executor: Executor | None = None
@@ -101,13 +145,21 @@ def write_subject_parts(result: AnalysisResult, run: Path, executor: Executor | 
     run_on = executor or InProcess()
     names = subject_table_names(result.spec)
     written: dict[str, list[PartEntry]] = {name: [] for name in names}
-    parts = result.subject_parts
-    for first in range(0, len(parts), BATCH):
-        indices = range(first, min(first + BATCH, len(parts)))
+    parts, fit = result.subject_parts, result.fit
+    curves = result.spec.subjects["all_trajectories"]
+    # the fit's population parts, about 0.2 MB, sent with every task (not its n_obs)
+    model = replace(fit.without_subjects(), n_obs=fit.n_obs[:0]) if curves else None
+    per_subject = 2 + (fit.grid.size if curves else 0)
+    for indices in _batches([p.size for p in parts], per_subject):
+        given = [PartInput(subject_tables(result, parts[i], curves=False),
+                           (fit.subjects[parts[i]], fit.score_values[parts[i]],
+                            fit.score_cov[parts[i]], subject_groups(result, parts[i]))
+                           if curves else None) for i in indices]
         # placed first: a frame sent inside a task makes a large task graph (Dask warns)
-        frames = run_on.place([subject_tables(result, parts[i]) for i in indices])
-        made = run_on.map(made_part, frames)
-        del frames
+        placed = run_on.place(given)
+        del given
+        made = run_on.map(made_part, placed, shared=(model,))
+        del placed
         for index, tables in zip(indices, made, strict=True):
             for name in names:
                 data, rows, csv_bytes, csv_sha256 = tables[name]

@@ -12,7 +12,7 @@ import numpy as np
 import pandas as pd
 
 from .analysis import AnalysisResult, rule_choice
-from .fpca.fit import Labels, rows_of
+from .fpca.fit import FPCAFit, Labels, rows_of
 from .spec import Spec
 
 FLOAT_FORMAT = "%.10g"
@@ -163,11 +163,11 @@ def subject_table_names(spec: Spec) -> tuple[str, ...]:
     return (*extra, "residuals_by_subject", "scores")
 
 
-def subject_tables(result: AnalysisResult, codes: np.ndarray | None
+def subject_tables(result: AnalysisResult, codes: np.ndarray | None, curves: bool = True
                    ) -> dict[str, pd.DataFrame]:
-    """The tables of one row per subject, of the subjects ``codes`` (rows of
-    ``fit.subjects``, increasing; None: all): scores (with the outlier distances) and
-    residuals_by_subject."""
+    """The tables of subjects, of the subjects ``codes`` (rows of ``fit.subjects``,
+    increasing; None: all): scores (with the outlier distances), residuals_by_subject, and
+    all_trajectories when the spec asks for it and ``curves``."""
     fit = result.fit
     rows = slice(None) if codes is None else codes
     scores = pd.DataFrame({"subject": pd.Index(fit.subjects[rows]).astype(str)})
@@ -182,14 +182,27 @@ def subject_tables(result: AnalysisResult, codes: np.ndarray | None
     if codes is not None:
         residuals = residuals.iloc[codes].reset_index(drop=True)
     tables = {"scores": scores, "residuals_by_subject": residuals}
-    if result.spec.subjects["all_trajectories"]:
-        curves = fit.plugin_trajectories(codes)
-        curves["subject"] = pd.Index(curves["subject"]).astype(str)
-        if result.groups is not None:
-            groups = np.asarray(result.subject_groups, dtype=object)[rows]
-            curves.insert(1, "group", np.repeat(groups, fit.grid.size))
-        tables["all_trajectories"] = curves
+    if curves and result.spec.subjects["all_trajectories"]:
+        tables["all_trajectories"] = trajectory_table(fit, codes, subject_groups(result, codes))
     return tables
+
+
+def subject_groups(result: AnalysisResult, codes: np.ndarray | None) -> np.ndarray | None:
+    """The groups of the subjects ``codes`` (None: all); None without groups."""
+    if result.groups is None:
+        return None
+    groups = np.asarray(result.subject_groups, dtype=object)
+    return groups if codes is None else groups[codes]
+
+
+def trajectory_table(fit: FPCAFit, codes: np.ndarray | None, groups: np.ndarray | None
+                     ) -> pd.DataFrame:
+    """all_trajectories of the subjects ``codes`` (None: all), with their ``groups``."""
+    table = fit.plugin_trajectories(codes)
+    table["subject"] = pd.Index(table["subject"]).astype(str)
+    if groups is not None:
+        table.insert(1, "group", np.repeat(groups, fit.grid.size))
+    return table
 
 
 def _codes(subjects: Labels, named: pd.Series) -> np.ndarray:

@@ -195,3 +195,19 @@ def test_every_trajectory_needs_the_plugin_band(tmp_path: Path) -> None:
     assert done.returncode == 2, done.stdout + done.stderr
     assert "subjects.all_trajectories writes every subject's trajectory with the plug-in band" \
         in done.stderr and "Traceback" not in done.stderr
+
+
+def test_the_parts_go_in_batches_of_bounded_rows() -> None:
+    """Consecutive parts, every part once, at least two a batch, and no more rows than
+    BATCH_ROWS beyond the first two (common practice, no source)."""
+    from reportgen.subject_parts import BATCH_ROWS, _batches
+
+    sizes = [31_000] * 5 + [400_000, 10, 10, 10]
+    batches = _batches(sizes, 53)
+    assert [i for b in batches for i in b] == list(range(len(sizes)))
+    assert all(len(b) >= 2 for b in batches[:-1])
+    for b in batches:
+        if len(b) > 2:
+            assert sum(sizes[i] for i in b) * 53 <= BATCH_ROWS
+    assert _batches([10] * 9, 2) == [range(0, 9)]
+    assert _batches([], 2) == []
