@@ -1,6 +1,7 @@
 """`reportgen run` of a folder of Parquet files on a Dask cluster of worker processes.
 
-Run:  .venv/bin/python benchmarks/whole_runs.py [--subjects N] [--files F] [--data FOLDER] [--write]
+Run:  .venv/bin/python benchmarks/whole_runs.py [--subjects N] [--files F] [--data FOLDER]
+          [--all-trajectories] [--write]
 
 The readings are ``engines.write_files``'s (1 to 8 readings per subject, whole subjects
 per file); FOLDER/readings is reused when it is there (10^7 subjects take minutes to
@@ -9,7 +10,8 @@ it starts a LocalCluster of 2 worker processes (one thread each), runs the insta
 ``reportgen run SPEC --engine dask --scheduler ADDRESS --quiet`` as a process of its own,
 and prints the wall time, the peak resident memory of the ``reportgen`` process (the
 largest of it and its rendering worker: getrusage of a launcher's children), and each
-worker's peak. The two runs' population tables (mean, components, eigenfunctions) must
+worker's peak; with --all-trajectories, a third run adds ``subjects.all_trajectories``.
+The runs' population tables (mean, components, eigenfunctions) must
 come out byte-identical. Not part of the test run; with --write the table goes to
 benchmarks/ENGINES.md as a section of its own.
 """
@@ -73,6 +75,7 @@ def main() -> None:
     parser.add_argument("--subjects", type=int, default=1_000_000)
     parser.add_argument("--files", type=int, default=32)
     parser.add_argument("--data", type=Path, help="where the readings are (or go)")
+    parser.add_argument("--all-trajectories", action="store_true")
     parser.add_argument("--write", action="store_true")
     args = parser.parse_args()
     n, files = args.subjects, args.files
@@ -81,28 +84,34 @@ def main() -> None:
     if not readings.is_dir():
         write_files(readings, n, files, 3)
     rows, runs = [], {}
-    for tables in ("csv", "parquet"):
-        spec = base / f"whole-{tables}.yaml"
-        spec.write_text(f"report: {{id: whole-{tables}, title: '{n} simulated subjects'}}\n"
+    settings = {"csv": "tables: csv", "parquet": "tables: parquet"}
+    if args.all_trajectories:
+        settings["parquet, all_trajectories"] = "tables: parquet, all_trajectories: true"
+    for label, setting in settings.items():
+        name = f"whole-{len(runs)}"
+        spec = base / f"{name}.yaml"
+        spec.write_text(f"report: {{id: {name}, title: '{n} simulated subjects'}}\n"
                         "data: {file: readings, subject: unit, time: t, value: y}\n"
-                        f"subjects: {{tables: {tables}}}\n")
+                        f"subjects: {{{setting}}}\n")
         out = Path(tempfile.mkdtemp(prefix="reportgen-whole-runs-"))
         found = run_on_cluster(spec, out)
-        runs[tables] = out / f"whole-{tables}" / "v001"
-        rows.append([tables, f"{found['wall']:.1f}", f"{found['peak']:,.0f}",
-                     ", ".join(f"{mb:,.0f}" for mb in found["workers"])])  # type: ignore[attr-defined]
+        runs[label] = out / name / "v001"
+        size = sum(p.stat().st_size for p in (runs[label] / "tables").rglob("*") if p.is_file())
+        rows.append([label, f"{found['wall']:.1f}", f"{found['peak']:,.0f}",
+                     ", ".join(f"{mb:,.0f}" for mb in found["workers"]),  # type: ignore[attr-defined]
+                     f"{size / 2**20:,.0f}"])
         print(rows[-1], flush=True)
     same = all((runs["csv"] / "tables" / name).read_bytes()
-               == (runs["parquet"] / "tables" / name).read_bytes() for name in SAME)
+               == (run / "tables" / name).read_bytes() for name in SAME for run in runs.values())
     text = (f"Machine: {machine()}\nDate: {time.strftime('%Y-%m-%d')}\n\n"
             f"`reportgen run` (report, PDF and tables) of {n:,} subjects in {files} Parquet "
             "files on a LocalCluster of 2 worker processes (`benchmarks/whole_runs.py`); "
             "`subjects.tables` as CSV files or as Parquet parts. Peak resident memory of the "
             "`reportgen` process (or its rendering worker, whichever is larger) and of each "
-            "worker.\n\n"
-            + table(["subjects.tables", "wall s", "reportgen peak MB", "worker peaks MB"],
-                    rows)
-            + f"\n\nPopulation tables ({', '.join(SAME)}) byte-identical between the two: "
+            "worker; the size of the run's tables.\n\n"
+            + table(["subjects", "wall s", "reportgen peak MB", "worker peaks MB",
+                     "tables MB"], rows)
+            + f"\n\nPopulation tables ({', '.join(SAME)}) byte-identical between the runs: "
             + ("yes" if same else "NO"))
     print(text)
     if args.write:
