@@ -9,9 +9,10 @@ it depends on the numbers, not on the Parquet writer's version; ``verify`` compa
 
 With one data file there is one part, and its canonical CSV is byte for byte the table
 ``subjects.tables: csv`` writes. A part is formatted, hashed and turned into Parquet by a
-task of the engine (on a cluster, by the workers), a few parts at a time; the
-``reportgen`` process makes their frames and writes the bytes, and never holds a table of
-every subject.
+task of the engine (on a cluster, by the workers), a batch of parts at a time; the
+``reportgen`` process makes the frames of one row per subject, the tasks make
+all_trajectories (a grid's rows per subject) from the part's scores and covariances, and
+the ``reportgen`` process writes the bytes. It never holds a table of every subject.
 """
 
 from __future__ import annotations
@@ -120,7 +121,8 @@ BATCH_ROWS = 2_000_000
 
 
 def _batches(sizes: list[int], per_subject: int) -> list[range]:
-    """Consecutive parts, each run ``BATCH_ROWS`` output rows or at least two parts."""
+    """The parts (``sizes``: subjects each) in runs of consecutive parts, each of at most
+    ``BATCH_ROWS`` output rows (``per_subject`` a subject) or else of two parts."""
     out: list[range] = []
     first = 0
     while first < len(sizes):
@@ -138,8 +140,8 @@ def write_subject_parts(result: AnalysisResult, run: Path, executor: Executor | 
                         ) -> dict[str, list[PartEntry]]:
     """Write every part of every table of subjects under ``run`` (the run directory being
     built); returns each table's entries, in part order. The parts are formatted and
-    hashed by tasks of ``executor`` (here by default), ``BATCH`` at a time; this process
-    makes their frames and writes the bytes."""
+    hashed by tasks of ``executor`` (here by default), in batches of ``BATCH_ROWS`` output
+    rows; this process writes the bytes."""
     from .fpca.executor import InProcess
 
     run_on = executor or InProcess()
