@@ -112,7 +112,7 @@ def build_tables(result: AnalysisResult) -> dict[str, pd.DataFrame]:
     trajectories = result.trajectories.copy()
     if result.groups is not None:
         shown = _codes(fit.subjects, trajectories.subject.astype(str))
-        trajectories.insert(1, "group", np.asarray(result.subject_groups, dtype=object)[shown])
+        trajectories.insert(1, "group", subject_groups(result, shown))
         tables.update(group_tables(result))
     tables["trajectories"] = trajectories
     tables["checks"] = pd.DataFrame(
@@ -171,8 +171,9 @@ def subject_tables(result: AnalysisResult, codes: np.ndarray | None, curves: boo
     fit = result.fit
     rows = slice(None) if codes is None else codes
     scores = pd.DataFrame({"subject": pd.Index(fit.subjects[rows]).astype(str)})
-    if result.groups is not None:
-        scores["group"] = np.asarray(result.subject_groups, dtype=object)[rows]
+    groups = subject_groups(result, codes)
+    if groups is not None:
+        scores["group"] = groups
     scores["n_obs"] = fit.n_obs[rows]
     for k in range(fit.n_components):
         scores[f"score_{k + 1}"] = fit.score_values[rows, k]
@@ -183,16 +184,19 @@ def subject_tables(result: AnalysisResult, codes: np.ndarray | None, curves: boo
         residuals = residuals.iloc[codes].reset_index(drop=True)
     tables = {"scores": scores, "residuals_by_subject": residuals}
     if curves and result.spec.subjects["all_trajectories"]:
-        tables["all_trajectories"] = trajectory_table(fit, codes, subject_groups(result, codes))
+        tables["all_trajectories"] = trajectory_table(fit, codes, groups)
     return tables
 
 
 def subject_groups(result: AnalysisResult, codes: np.ndarray | None) -> np.ndarray | None:
-    """The groups of the subjects ``codes`` (None: all); None without groups."""
+    """The groups of the subjects ``codes`` (None: all); None without groups. (A part's
+    groups are picked one by one: the tuple of every subject's group is not made an array
+    again for each part.)"""
     if result.groups is None:
         return None
-    groups = np.asarray(result.subject_groups, dtype=object)
-    return groups if codes is None else groups[codes]
+    every = result.subject_groups
+    picked = every if codes is None else [every[i] for i in codes.tolist()]
+    return np.array(picked, dtype=object)
 
 
 def trajectory_table(fit: FPCAFit, codes: np.ndarray | None, groups: np.ndarray | None
