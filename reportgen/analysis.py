@@ -20,7 +20,7 @@ from .fpca._kernels import compiled_on_disk
 from .fpca.components import choose
 from .fpca.design import Sample
 from .fpca.diagnostics import check_readings
-from .fpca.fit import Labels, fit_parts, seeded_sample
+from .fpca.fit import Labels, fit_parts, rows_of, seeded_sample
 from .fpca.frame import arrays_from_frame
 from .fpca.groups import GroupComparison, compare_groups_on
 from .fpca.plan import Executor, InProcess, Partitioned, split_parts
@@ -276,9 +276,8 @@ def _outliers(fit: FPCAFit, quantile: float) -> pd.DataFrame:
 
 def _shown(fit: FPCAFit, spec: Spec) -> tuple[str, ...]:
     chosen = [str(s) for s in spec.subjects["show"]]
-    as_text = pd.Index(fit.subjects).astype(str)
-    known = set(as_text[as_text.isin(chosen)])  # a scan: no set or hash table of every id
-    missing = [s for s in chosen if s not in known]
+    found = rows_of(pd.Index(fit.subjects).astype(str), chosen)
+    missing = [s for s, row in zip(chosen, found, strict=True) if row < 0]
     if missing:
         raise EstimationError(f"subjects.show names subjects not in the data: {missing[:5]!r}")
     count = spec.subjects["count"]

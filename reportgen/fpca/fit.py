@@ -298,9 +298,8 @@ class FPCAFit:
         elif readings.n_subjects != rows.size:
             raise EstimationError(f"readings of {readings.n_subjects} subjects given for "
                                   f"{rows.size} trajectories")
-        var = total_variance(self.replicates, self.grid, readings) if self.replicates else None
         return self._curve_frame(self.subjects[rows], self.score_values[rows],
-                                 self.score_cov[rows], level, var)
+                                 self.score_cov[rows], level, self._band_variance(readings))
 
     def plugin_trajectories(self, rows: IntArray | None = None) -> pd.DataFrame:
         """The trajectories of the subjects at ``rows`` (all by default) with plug-in bands,
@@ -313,6 +312,10 @@ class FPCAFit:
     def band_kind(self) -> str:
         """``"corrected"`` when replicates carry the estimation uncertainty, else ``"plugin"``."""
         return "corrected" if self.replicates else "plugin"
+
+    def _band_variance(self, sample: Sample) -> FloatArray | None:
+        """The corrected band's variance for the subjects of ``sample`` (None: plug-in)."""
+        return total_variance(self.replicates, self.grid, sample) if self.replicates else None
 
     def _curve_frame(self, labels: Labels, scores: FloatArray, cov: FloatArray,
                      level: float | None, var: FloatArray | None) -> pd.DataFrame:
@@ -356,8 +359,7 @@ class FPCAFit:
         lower_simultaneous, upper_simultaneous.
         """
         labels, scores, cov, sample = self._new_subjects(frame)
-        var = total_variance(self.replicates, self.grid, sample) if self.replicates else None
-        return self._curve_frame(labels, scores, cov, level, var)
+        return self._curve_frame(labels, scores, cov, level, self._band_variance(sample))
 
     def predict_at(
         self, frame: pd.DataFrame, targets: pd.DataFrame, level: float | None = None,
