@@ -78,6 +78,11 @@ CASES = [
     ("out of range fail", BASE + "  value_range: [0, 1]\n  out_of_range: fail\n", None,
      "values outside [0, 1]"),
     ("times outside domain", BASE + "  domain: [0, 5]\n", None, "outside [0, 5]"),
+    ("shown subject not in the data", BASE + "subjects:\n  show: [s1, nobody, s2]\n", None,
+     "subjects.show names subjects not in the data: ['nobody']"),
+    ("every trajectory with the corrected band",
+     BASE + "model:\n  band: corrected\nsubjects:\n  all_trajectories: true\n", None,
+     "subjects.all_trajectories writes every subject's trajectory with the plug-in band"),
     ("single readings only", None, "id,t,y\n" + "".join(f"s{i},{i},{i}\n" for i in range(20)),
      "have two or more"),
 ]
