@@ -36,7 +36,20 @@ def environment() -> dict[str, Any]:
         except metadata.PackageNotFoundError:
             versions[name] = "not installed"
     return {"python": sys.version.split()[0], "platform": platform.platform(),
-            "packages": versions}
+            "blas": blas(), "packages": versions}
+
+
+def blas() -> str:
+    """The BLAS libraries numpy and scipy loaded and the CPU kernels they chose. Another
+    kernel (another CPU) moves the last digits of some numbers: the tables then match as
+    numbers, not as bytes, and the rendered report may differ."""
+    import scipy.linalg  # noqa: F401  (loads scipy's BLAS, as a run does)
+    from threadpoolctl import threadpool_info
+
+    found = sorted({f"{i.get('internal_api')} {i.get('version')} "
+                    f"({i.get('architecture') or 'kernel not reported'})"
+                    for i in threadpool_info() if i.get("user_api") == "blas"})
+    return "; ".join(found) or "none found"
 
 
 def settings(result: AnalysisResult) -> dict[str, Any]:

@@ -69,7 +69,7 @@ def _locate_input(entry: dict[str, Any], source: Path, inputs: Path | None) -> P
     return (source.parent / str(entry["path"])).resolve()
 
 
-def _compare_table(a: bytes, b: bytes) -> tuple[bool, str]:
+def tables_match(a: bytes, b: bytes) -> tuple[bool, str]:
     """Tables equal as numbers within RTOL (text cells exactly); and what differs."""
     if a == b:
         return True, "identical"
@@ -97,7 +97,7 @@ def _compare_table(a: bytes, b: bytes) -> tuple[bool, str]:
 
 def _compare_parts(run: Path, table: str, built: Built, scratch: Path) -> tuple[bool, str]:
     """A table in parts against its re-run: the parts' canonical CSV digests, and where one
-    differs, the two parts as numbers (``_compare_table``)."""
+    differs, the two parts as numbers (``tables_match``)."""
     try:
         recorded = read_manifest(run, table)
     except ValueError as e:
@@ -112,7 +112,7 @@ def _compare_parts(run: Path, table: str, built: Built, scratch: Path) -> tuple[
         if a.csv_sha256 == b.csv_sha256:
             continue
         try:
-            ok, detail = _compare_table(csv_of_part(run / a.file), csv_of_part(scratch / b.file))
+            ok, detail = tables_match(csv_of_part(run / a.file), csv_of_part(scratch / b.file))
         except OSError as e:
             return False, f"{Path(a.file).name}: cannot be read ({e.strerror or e})"
         if not ok:
@@ -121,10 +121,10 @@ def _compare_parts(run: Path, table: str, built: Built, scratch: Path) -> tuple[
     return True, f"{len(now)} part(s); {worst}"
 
 
-def _environment_diff(recorded: dict[str, Any]) -> list[str]:
+def environment_diff(recorded: dict[str, Any]) -> list[str]:
     now = environment()
     out = []
-    for key in ("python", "platform"):
+    for key in ("python", "platform", "blas"):
         if recorded.get(key) != now[key]:
             out.append(f"{key} {recorded.get(key)} -> {now[key]}")
     rec_p, now_p = recorded.get("packages", {}), now["packages"]
@@ -227,7 +227,7 @@ def _numbers(run: Path, record: dict[str, Any], out: Verification, built: Built,
         if name.endswith("/" + MANIFEST):  # a table in parts: compared part by part below
             continue
         stored = run / name
-        ok, detail = _compare_table(stored.read_bytes() if stored.is_file() else b"",
+        ok, detail = tables_match(stored.read_bytes() if stored.is_file() else b"",
                                     built.files[name])
         bad += not ok
         out.add("numbers", f"table {name.removeprefix('tables/')}", "recorded", detail, ok)
@@ -269,7 +269,7 @@ def _rendering(run: Path, record: dict[str, Any], out: Verification, render: boo
     if not differing:
         out.verdicts["rendering"] = "ok: HTML, figures and PDF re-render byte-identical"
         return
-    env = _environment_diff(record.get("environment", {}))
+    env = environment_diff(record.get("environment", {}))
     numbers_ok = out.verdicts.get("numbers", "").startswith("ok")
     if env and numbers_ok:
         out.verdicts["rendering"] = (f"differs only in rendering ({len(differing)} file(s)); "
