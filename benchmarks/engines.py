@@ -128,14 +128,14 @@ def _fit(executor: Executor, n: int, n_parts: int, spec: Path | None
     fit = fit_parts(data, np.arange(n), FPCAOptions())
     chosen = np.union1d(seeded_sample(n, DIAGNOSTIC_MAX_SUBJECTS, fit.options.seed),
                         np.linspace(0, n - 1, 6).astype(np.intp))
-    checks = check_readings(data, fit.score_values, fit.score_cov, fit.predictor(), chosen)
+    checks = check_readings(data, fit.kept_scores, fit.predictor(), chosen)
     means, ses = group_means(data, fit, (np.arange(n) % 3).astype(np.intp), 3)
     total = time.perf_counter() - start
     seconds = dict(timed.seconds)
     if spec is None:  # with Dask, keep() returns at once: the time is the first pass's
         seconds["make_part"] = made
     seconds["client steps"] = total - sum(seconds.values())
-    extra = (checks.residual_sum, checks.squared_standardized_sum, checks.density,
+    extra = (*checks.sums.every(), checks.density,
              *checks.readings.values(), means, ses)
     return _numbers(fit, extra), seconds, total
 

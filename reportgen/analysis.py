@@ -19,11 +19,17 @@ from .fpca import FPCAFit, with_bandwidths
 from .fpca._kernels import compiled_on_disk
 from .fpca.components import choose
 from .fpca.design import Sample
-from .fpca.diagnostics import check_readings
+from .fpca.diagnostics import (
+    check_readings,
+    distances,
+    part_farthest,
+    part_largest_rms,
+    residual_summary,
+)
 from .fpca.fit import Labels, fit_parts, rows_of, seeded_sample
 from .fpca.frame import arrays_from_frame
 from .fpca.groups import GroupComparison, compare_groups_on
-from .fpca.plan import Executor, InProcess, Partitioned, split_parts
+from .fpca.plan import Executor, InProcess, Kept, Partitioned, split_parts
 from .fpca.smoothing import trapezoid_weights
 from .spec import Spec
 
@@ -48,8 +54,8 @@ class AnalysisResult:
     fit: FPCAFit
     sensitivity: tuple[SensitivityRun, ...]
     readings: ReadingView  # what the report holds of the readings
-    residual_summary: pd.DataFrame  # per subject: n_obs, mean_residual, rms_standardized
-    outliers: pd.DataFrame  # subject, distance, flagged
+    subjects_view: SubjectView  # what the report holds of every subject's results
+    residual_sums: Kept  # per subject: sums of the residuals and squared standardized ones
     shown_subjects: tuple[str, ...]
     trajectories: pd.DataFrame  # of the shown subjects, in the fit's order (FPCAFit.trajectories)
     caveats: tuple[str, ...]
@@ -201,28 +207,131 @@ class ReadingView:
                 f"{self.n_sampled:,} of the {n_subjects:,} subjects")
 
 
+# What the report shows of every subject's scores and residual summary (the score figures,
+# the group test, the median and 90th percentile of the RMS standardized residuals) comes
+# from at most this many subjects, a seeded sample above it; their scores, covariances and
+# residual sums are gathered, (3 + K + K^2) x 8 bytes each: 10 MB at K = 2. The tables of
+# subjects, the count of flagged subjects and the farthest and worst ones cover every
+# subject (passes over the results kept with the parts).
+SUBJECT_SAMPLE_MAX = 200_000
+# The flagged subjects the report names (the farthest first), and the subjects of the
+# table of the largest RMS standardized residuals.
+NAMED_FLAGGED = 20
+WORST_SHOWN = 10
+
+
+@dataclass(frozen=True)
+class SubjectView:
+    """What the report holds of every subject's results, at a size that does not grow with
+    the subjects (the rest stay with the parts, for the tables of subjects).
+
+    Attributes
+    ----------
+    n_subjects : int
+    sampled : ndarray
+        Codes of the subjects held (increasing): every subject up to SUBJECT_SAMPLE_MAX, a
+        seeded sample of that many above it.
+    scores, distance2, rms : ndarray
+        Their scores (n_sampled, K), squared Mahalanobis distances and RMS standardized
+        residuals.
+    cut : float
+        A subject is flagged when its squared distance exceeds it.
+    n_flagged : int
+        Flagged subjects, of every subject.
+    farthest : DataFrame
+        The NAMED_FLAGGED farthest flagged subjects, farthest first: code, subject,
+        distance2, score_1 .. score_K.
+    worst : DataFrame
+        The WORST_SHOWN subjects with the largest RMS standardized residual: subject,
+        n_obs, mean_residual, rms_standardized.
+    """
+
+    n_subjects: int
+    sampled: np.ndarray
+    scores: np.ndarray
+    distance2: np.ndarray
+    rms: np.ndarray
+    cut: float
+    n_flagged: int
+    farthest: pd.DataFrame
+    worst: pd.DataFrame
+
+    @property
+    def flagged(self) -> np.ndarray:
+        """Whether each sampled subject is flagged."""
+        return np.asarray(self.distance2 > self.cut)
+
+    def sample_words(self) -> str:
+        """The sample's description ("" when it is every subject)."""
+        if self.sampled.size == self.n_subjects:
+            return ""
+        return f"a seeded sample of {self.sampled.size:,} of the {self.n_subjects:,} subjects"
+
+    def empty(self) -> SubjectView:
+        return replace(self, sampled=self.sampled[:0], scores=self.scores[:0],
+                       distance2=self.distance2[:0], rms=self.rms[:0])
+
+
 def _check_readings(data: Partitioned, fit: FPCAFit, shown: np.ndarray
-                    ) -> tuple[ReadingView, pd.DataFrame, pd.DataFrame]:
+                    ) -> tuple[ReadingView, Kept, pd.DataFrame]:
     """The pass that holds the fit against every reading (``fpca.diagnostics``): what the
-    report shows of the readings, the per-subject residual summary, and the trajectories
-    of the shown subjects (``shown``: their codes, increasing) from their readings."""
+    report shows of the readings, the per-subject residual sums (kept with the parts), and
+    the trajectories of the shown subjects (``shown``: their codes, increasing) from their
+    readings."""
     sampled = seeded_sample(fit.n_subjects, DIAGNOSTIC_MAX_SUBJECTS, fit.options.seed)
     chosen = np.union1d(sampled, shown).astype(np.intp)
-    found = check_readings(data, fit.score_values, fit.score_cov, fit.predictor(), chosen)
-    n = found.n_obs
-    summary = pd.DataFrame({"subject": fit.subjects, "n_obs": n,
-                            "mean_residual": found.residual_sum / n,
-                            "rms_standardized": np.sqrt(found.squared_standardized_sum / n)})
+    found = check_readings(data, fit.kept_scores, fit.predictor(), chosen)
     codes = found.readings["subject"]
     frame = pd.DataFrame({**found.readings, "subject": fit.subjects[codes],
                           "sampled": np.isin(codes, sampled)})
-    view = ReadingView(int(n.sum()), int(sampled.size), frame, found.density,
+    view = ReadingView(fit.n_readings, int(sampled.size), frame, found.density,
                        found.time_axis, found.value_axis)
     mine = np.isin(codes, shown)
     readings = Sample.from_arrays(np.searchsorted(shown, codes[mine]),
                                   found.readings["time"][mine], found.readings["value"][mine])
     trajectories = fit.trajectories(list(fit.subjects[shown]), readings=readings)
-    return view, summary, trajectories
+    return view, found.sums, trajectories
+
+
+def flag_cut(n_components: int, quantile: float) -> float:
+    """The squared distance above which a subject is flagged: the chi-square(K) quantile."""
+    return float(chdtri(n_components, 1.0 - quantile))
+
+
+def _largest(frame: pd.DataFrame, column: str, n: int) -> pd.DataFrame:
+    """The ``n`` rows with the largest ``column`` (NaN last), ties by subject."""
+    values = np.nan_to_num(frame[column].to_numpy(dtype=np.float64), nan=-np.inf)
+    order = np.lexsort((frame.subject.to_numpy(), -values))
+    return frame.iloc[order[:n]].reset_index(drop=True)
+
+
+def subject_view(fit: FPCAFit, sums: Kept, quantile: float, sampled: np.ndarray,
+                 sampled_scores: np.ndarray) -> SubjectView:
+    """What the report shows of every subject: the sample's values (``sampled``, with
+    their ``sampled_scores``) and two passes over the kept results, for the farthest
+    flagged subjects and the largest RMS standardized residuals."""
+    cut = flag_cut(fit.n_components, quantile)
+    kept = fit.kept_scores
+    found = kept.map(part_farthest, shared=(fit.eigenvalues, cut, NAMED_FLAGGED))
+    codes = np.concatenate([c[f[1]] for c, f in zip(kept.subjects, found, strict=True)])
+    d2 = np.concatenate([f[2] for f in found])
+    order = np.lexsort((codes, -d2))[:NAMED_FLAGGED]
+    farthest = pd.DataFrame({"code": codes[order], "subject": fit.subjects[codes[order]],
+                             "distance2": d2[order]})
+    top = np.concatenate([f[3] for f in found])[order]
+    for k in range(fit.n_components):
+        farthest[f"score_{k + 1}"] = top[:, k]
+    worst = sums.map(part_largest_rms, [(fit.n_obs[c],) for c in sums.subjects],
+                     (WORST_SHOWN,))
+    codes = np.concatenate([c[w[0]] for c, w in zip(sums.subjects, worst, strict=True)])
+    candidates = pd.DataFrame({"subject": fit.subjects[codes], "n_obs": fit.n_obs[codes],
+                               "mean_residual": np.concatenate([w[1] for w in worst]),
+                               "rms_standardized": np.concatenate([w[2] for w in worst])})
+    _, rms = residual_summary(sums.pick(sampled), fit.n_obs[sampled])
+    return SubjectView(fit.n_subjects, sampled, sampled_scores,
+                       distances(sampled_scores, fit.eigenvalues), rms, cut,
+                       sum(f[0] for f in found), farthest,
+                       _largest(candidates, "rms_standardized", WORST_SHOWN))
 
 
 def spread_trend(residuals: pd.DataFrame) -> float:
@@ -264,14 +373,6 @@ def average_ranks(x: np.ndarray) -> np.ndarray:
     last = np.append(first[1:], x.size) - 1
     ranks[order] = np.repeat((first + last) / 2.0 + 1.0, last - first + 1)
     return ranks
-
-
-def _outliers(fit: FPCAFit, quantile: float) -> pd.DataFrame:
-    """Squared Mahalanobis distance of the scores under N(0, Lambda), flagged above the
-    chi-square(K) quantile (rule stated in the report)."""
-    d2 = np.sum(fit.score_values**2 / fit.eigenvalues, axis=1)
-    cut = float(chdtri(fit.n_components, 1.0 - quantile))  # chi-square quantile
-    return pd.DataFrame({"subject": fit.subjects, "distance2": d2, "flagged": d2 > cut})
 
 
 def _shown(fit: FPCAFit, spec: Spec) -> tuple[str, ...]:
@@ -465,6 +566,8 @@ def analyse(spec: Spec, ds: Dataset, progress: Progress = lambda _: None,
     stable: list[bool | None] = [
         all(np.nan_to_num(r.similarity[k]) >= threshold for r in computed) if computed else None
         for k in range(fit.n_components)]
+    drawn = seeded_sample(fit.n_subjects, SUBJECT_SAMPLE_MAX, fit.options.seed)
+    drawn_scores = fit.kept_scores.pick(drawn)[0]
     groups: GroupComparison | None = None
     subject_groups: tuple[str, ...] = ()
     if spec.data.get("group"):
@@ -474,20 +577,22 @@ def analyse(spec: Spec, ds: Dataset, progress: Progress = lambda _: None,
         else:
             per = ds.frame.drop_duplicates("subject").set_index("subject")["group"]
             subject_groups = tuple(str(g) for g in per.reindex(fit.subjects).to_numpy())
-        groups = compare_groups_on(data, fit, np.asarray(subject_groups))
+        groups = compare_groups_on(data, fit, np.asarray(subject_groups),
+                                   tested=(drawn, drawn_scores))
         lap("groups")
     shown = _shown(fit, spec)
     progress("diagnostics")
-    view, summary, trajectories = _check_readings(data, fit, _codes_of(fit, shown))
+    view, sums, trajectories = _check_readings(data, fit, _codes_of(fit, shown))
     sampled = view.residuals
     rho = spread_trend(sampled)
     caveats = (_caveats(spec, ds, fit, runs, stable, len(sampled), rho)
                + _group_caveats(groups, fit))
-    outliers = _outliers(fit, spec.subjects["outlier_quantile"])
+    subjects = subject_view(fit, sums, spec.subjects["outlier_quantile"], drawn,
+                            drawn_scores)
     lap("diagnostics")
     return AnalysisResult(
         spec=spec, dataset=replace(ds, held=None), fit=fit, sensitivity=tuple(runs),
-        readings=view, residual_summary=summary, outliers=outliers,
+        readings=view, subjects_view=subjects, residual_sums=sums,
         trajectories=trajectories,
         shown_subjects=shown, caveats=tuple(caveats), stable=tuple(stable),
         factors_note=factors_note, spread=rho, groups=groups, subject_groups=subject_groups,

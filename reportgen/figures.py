@@ -389,23 +389,27 @@ def _scores_figure(r: AnalysisResult) -> Figure:
     fit = r.fit
     su = r.spec.units()["score"]
     unit = f" ({su})" if su else ""
-    sc = fit.score_values
-    flagged = r.outliers.flagged.to_numpy()
-    order = np.argsort(-r.outliers.distance2.to_numpy())
-    labelled = order[flagged[order]][:10].tolist()
+    view = r.subjects_view
+    sc = view.scores
+    flagged = view.flagged
+    named = view.farthest.iloc[:10]  # the ten farthest flagged subjects, of every subject
+    labels = named.subject.astype(str).tolist()
+    at = named[[f"score_{k + 1}" for k in range(min(2, fit.n_components))]].to_numpy()
+    over = f" ({view.sample_words()}; the labelled ones of every subject)" \
+        if view.sample_words() else ""
     fig, ax = plt.subplots(figsize=(4.6, 3.6))
     if fit.n_components == 1:
         ax.hist(sc[:, 0], bins=min(40, max(10, len(sc) // 10)), color=PALETTE[0])
         ax.plot(sc[flagged, 0], np.zeros(int(flagged.sum())), "o", markersize=6,
                 markerfacecolor="none", color=PALETTE[1], label="flagged",
                 rasterized=bool(flagged.sum() > MAX_MARKS))
-        for i in labelled:
-            ax.annotate(str(fit.subjects[i]), (sc[i, 0], 0), textcoords="offset points",
+        for label, (x,) in zip(labels, at, strict=True):
+            ax.annotate(label, (x, 0), textcoords="offset points",
                         xytext=(0, 6), fontsize=6, rotation=90, ha="center")
         ax.set_xlabel("score 1" + unit)
         ax.set_ylabel("subjects")
         caption = ("Distribution of the scores of the single retained component; flagged "
-                   "subjects circled on the axis and labelled by id.")
+                   f"subjects circled on the axis and labelled by id{over}.")
         alt = "Histogram of the subjects' scores with flagged subjects marked."
     else:
         if len(sc) > MAX_POINTS:
@@ -418,13 +422,12 @@ def _scores_figure(r: AnalysisResult) -> Figure:
         ax.scatter(sc[flagged, 0], sc[flagged, 1], s=18, facecolors="none",
                    edgecolors=PALETTE[1], label="flagged",
                    rasterized=bool(flagged.sum() > MAX_MARKS))
-        for i in labelled:
-            ax.annotate(str(fit.subjects[i]), (sc[i, 0], sc[i, 1]), textcoords="offset points",
-                        xytext=(3, 3), fontsize=6)
+        for label, (x, y) in zip(labels, at, strict=True):
+            ax.annotate(label, (x, y), textcoords="offset points", xytext=(3, 3), fontsize=6)
         ax.set_xlabel("score 1" + unit)
         ax.set_ylabel("score 2" + unit)
         caption = ("Scores of the first two components; flagged subjects circled and labelled "
-                   "by id.")
+                   f"by id{over}.")
         alt = "Scatter of subjects' first two scores with flagged subjects circled."
     if flagged.any():
         ax.legend(fontsize=7)
@@ -463,12 +466,13 @@ def _group_scores(r: AnalysisResult) -> Figure | None:
     shown = min(fit.n_components, 4)
     su = r.spec.units()["score"]
     codes = {label: i for i, label in enumerate(g.labels)}
-    member = np.array([codes[x] for x in r.subject_groups])
+    view = r.subjects_view
+    member = np.array([codes[r.subject_groups[i]] for i in view.sampled.tolist()])
     fig, axes = plt.subplots(1, shown, figsize=(min(7.4, 2.4 * shown + 1.2), 2.8),
                              squeeze=False)
     for k in range(shown):
         ax = axes[0, k]
-        data = [fit.score_values[member == i, k] for i in range(len(g.labels))]
+        data = [view.scores[member == i, k] for i in range(len(g.labels))]
         # Whiskers at the 5th and 95th percentiles and no per-subject marks: the figure's
         # size does not grow with the number of subjects.
         ax.boxplot(data, whis=(5, 95), showfliers=False, widths=0.6)
@@ -479,8 +483,9 @@ def _group_scores(r: AnalysisResult) -> Figure | None:
     axes[0, 0].set_ylabel("score" + (f" ({su})" if su else ""))
     more = (f" (the first 4 of {fit.n_components} components)"
             if fit.n_components > shown else "")
-    return (fig, f"Scores by group{more}: boxes span the quartiles, whiskers the 5th to 95th "
-            "percentiles, the line is the median.",
+    over = f" ({view.sample_words()})" if view.sample_words() else ""
+    return (fig, f"Scores by group{more}{over}: boxes span the quartiles, whiskers the 5th to "
+            "95th percentiles, the line is the median.",
             "Box plots of the subjects' scores, one panel per component, one box per group.")
 
 

@@ -14,13 +14,14 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
-from .analysis import STANDARD_CAUTIONS, AnalysisResult, rule_choice
+# NAMED_FLAGGED: flagged subjects named in the text, farthest first; a large study flags
+# thousands (6558 of 10^6 at the 0.99 quantile: 25 PDF pages of ids), and the table holds
+# them all.
+from .analysis import NAMED_FLAGGED, STANDARD_CAUTIONS, AnalysisResult, rule_choice
 from .errors import TemplateError
 from .fpca import BandwidthChoice
 
 if TYPE_CHECKING:
-    import pandas as pd
-
     from .style import Style
 
 
@@ -217,10 +218,6 @@ def _section_components(c: _Context) -> None:
     fig(s, "effects")
 
 
-# Flagged subjects named in the text, farthest first; a large study flags thousands (6558
-# of 10^6 at the 0.99 quantile: 25 PDF pages of ids), and the table holds them all.
-NAMED_FLAGGED = 20
-
 
 def _subject_table(result: AnalysisResult, name: str) -> str:
     """Where a table of subjects is in the run directory."""
@@ -237,15 +234,14 @@ def _section_scores(c: _Context) -> None:
     spec = c.result.spec
     fig = c.fig
     s = b.section("scores", "Scores", "Where each subject sits on the components.")
-    flagged = result.outliers[result.outliers.flagged].sort_values("distance2",
-                                                                  ascending=False)
-    first = flagged.iloc[:NAMED_FLAGGED]
+    view = result.subjects_view
+    first = view.farthest.iloc[:NAMED_FLAGGED]
     named = ", ".join(f"{sid} ({d2:.3g})" for sid, d2 in
                       zip(first.subject.astype(str), first.distance2, strict=True))
-    which = "" if len(flagged) <= NAMED_FLAGGED else f"; the {NAMED_FLAGGED} farthest"
+    which = "" if view.n_flagged <= NAMED_FLAGGED else f"; the {NAMED_FLAGGED} farthest"
     b.text(s, f"Rule: a subject is flagged when its squared Mahalanobis distance of the scores "
            f"exceeds the {spec.subjects['outlier_quantile']:g} quantile of the "
-           f"chi-square({fit.n_components}) distribution; {len(flagged)} subject(s) flagged"
+           f"chi-square({fit.n_components}) distribution; {view.n_flagged} subject(s) flagged"
            + (f"{which}: {named} (squared distance in brackets)" if named else "")
            + f". Distances and flags of every subject: {_subject_table(result, 'scores')}.")
     fig(s, "scores")
@@ -277,17 +273,6 @@ def _section_trajectories(c: _Context) -> None:
     fig(s, "trajectories")
 
 
-def _largest(frame: pd.DataFrame, column: str, n: int) -> pd.DataFrame:
-    """The ``n`` rows with the largest ``column``, ties by subject: the rows of the ``n``
-    largest values found by a partition, then sorted (a sort of every row, ids included,
-    took seconds and a copy of the frame at 10^7 subjects)."""
-    values = np.nan_to_num(frame[column].to_numpy(dtype=np.float64), nan=-np.inf)
-    if values.size > n:
-        cut = np.partition(values, values.size - n)[values.size - n]
-        frame = frame[values >= cut]
-    return frame.sort_values([column, "subject"], ascending=[False, True]).head(n)
-
-
 def _section_residuals(c: _Context) -> None:
     b = c.b
     result = c.result
@@ -295,21 +280,33 @@ def _section_residuals(c: _Context) -> None:
     s = b.section("residuals", "Residual diagnostics", "Whether the readings scatter around the "
                   "fitted curves as the model assumes.")
     fig(s, "residuals")
-    summary = result.residual_summary
-    worst = _largest(summary, "rms_standardized", 10)
-    rms = summary.rms_standardized
+    import pandas as pd  # loaded already: the analysis made it
+
+    view = result.subjects_view
+    worst = view.worst
+    rms = pd.Series(view.rms)
+    over = view.sample_words()
     b.text(s, "Each residual (reading minus fitted trajectory) is divided by its own standard "
            "deviation under the fitted model, which is smaller than the error standard "
            "deviation because the trajectory was fitted to the same readings; so about 1 is "
            "expected when the model fits. Per subject, the root mean square of the "
            f"standardized residuals has median {rms.median():.3g} and 90th percentile "
-           f"{rms.quantile(0.9):.3g}; the Spearman correlation of their size with the fitted "
+           f"{rms.quantile(0.9):.3g}{f' (over {over})' if over else ''}; the Spearman "
+           "correlation of their size with the fitted "
            f"value is {result.spread:.2f} (near 0 expected{_over_sample(result)}). The full "
            f"list is {_subject_table(result, 'residuals_by_subject')}.")
     b.table(s, f"The {len(worst)} subjects with the largest RMS standardized residual.",
             ["subject", "readings", "mean residual", "RMS standardized"],
             [[r.subject, r.n_obs, r.mean_residual, r.rms_standardized]
              for r in worst.itertuples()])
+
+
+def _tested(result: AnalysisResult) -> str:
+    """Whom the group test permuted: the subjects, or a seeded sample of them."""
+    g = result.groups
+    if g is None or g.tested == result.fit.n_subjects:
+        return "subjects"
+    return f"the subjects of a seeded sample of {g.tested:,} of the {result.fit.n_subjects:,}"
 
 
 def _over_sample(result: AnalysisResult) -> str:
@@ -392,9 +389,9 @@ def _section_groups(c: _Context) -> None:
     b.text(s, f"Test of equal mean scores across the {len(g.labels)} groups, on the {k} "
            "retained component(s) together: Pillai's trace of a one-way MANOVA of the scores "
            f"is {g.statistic:.4g}; its p-value by {g.permutations} random permutations of the "
-           f"group labels over subjects (seed {g.seed}) is {g.p_value:.4g} (the smallest "
-           f"p-value this number of permutations can give is {resolution:.2g}). The scores "
-           "come from one model fitted to all groups together; see the caveats.")
+           f"group labels over {_tested(c.result)} (seed {g.seed}) is {g.p_value:.4g} (the "
+           f"smallest p-value this number of permutations can give is {resolution:.2g}). The "
+           "scores come from one model fitted to all groups together; see the caveats.")
     c.fig(s, "group_means")
     c.fig(s, "group_scores")
 

@@ -27,13 +27,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 import pandas as pd
 
-from .tables import (
-    subject_groups,
-    subject_table_names,
-    subject_tables,
-    to_csv_bytes,
-    trajectory_table,
-)
+from .tables import subject_frames, subject_groups, subject_table_names, to_csv_bytes
 
 if TYPE_CHECKING:
     from .analysis import AnalysisResult
@@ -87,25 +81,24 @@ def csv_of_part(path: Path) -> bytes:
 
 @dataclass(frozen=True)
 class PartInput:
-    """What a task makes one part's tables of subjects from: the frames of one row per
-    subject, and for all_trajectories (a grid's rows per subject, made by the task) the
-    subjects' ids, scores, score covariances and groups."""
+    """What the ``reportgen`` process sends a task for one part's tables of subjects: the
+    subjects' ids, groups and reading counts (their scores, covariances and residual sums
+    are where the fit's passes left them)."""
 
-    frames: dict[str, pd.DataFrame]
-    curves: tuple[Any, FloatArray, FloatArray, np.ndarray | None] | None = None
+    ids: Any
+    groups: np.ndarray | None
+    n_obs: np.ndarray
 
 
-def made_part(given: PartInput, model: FPCAFit | None
+def made_part(given: PartInput, scores: tuple[FloatArray, FloatArray],
+              sums: tuple[FloatArray, FloatArray], model: FPCAFit, cut: float, curves: bool
               ) -> dict[str, tuple[bytes, int, int, str]]:
     """A task: one part's tables of subjects as Parquet bytes, with their rows and the
     length and SHA-256 of their canonical CSV (the text itself stays where it was made).
-    ``model``: the fit without its subjects, for all_trajectories."""
-    frames = dict(given.frames)
-    if given.curves is not None:
-        assert model is not None
-        labels, scores, cov, groups = given.curves
-        fit = replace(model, subjects=labels, score_values=scores, score_cov=cov)
-        frames["all_trajectories"] = trajectory_table(fit, None, groups)
+    ``scores``: the part's kept scores and covariances; ``sums``: its kept residual sums;
+    ``model``: the fit without its subjects; ``cut``: the flagging distance."""
+    frames = subject_frames(model, given.ids, given.groups, given.n_obs, *scores, sums, cut,
+                            curves)
     out = {}
     for name, frame in frames.items():
         text = to_csv_bytes(frame)
@@ -148,19 +141,19 @@ def write_subject_parts(result: AnalysisResult, run: Path, executor: Executor | 
     names = subject_table_names(result.spec)
     written: dict[str, list[PartEntry]] = {name: [] for name in names}
     parts, fit = result.subject_parts, result.fit
-    curves = result.spec.subjects["all_trajectories"]
+    scores, sums = fit.kept_scores, result.residual_sums
+    curves = bool(result.spec.subjects["all_trajectories"])
     # the fit's population parts, about 0.2 MB, sent with every task (not its n_obs)
-    model = replace(fit.without_subjects(), n_obs=fit.n_obs[:0]) if curves else None
+    model = replace(fit.without_subjects(), n_obs=fit.n_obs[:0])
     per_subject = 2 + (fit.grid.size if curves else 0)
     for indices in _batches([p.size for p in parts], per_subject):
-        given = [PartInput(subject_tables(result, parts[i], curves=False),
-                           (fit.subjects[parts[i]], fit.score_values[parts[i]],
-                            fit.score_cov[parts[i]], subject_groups(result, parts[i]))
-                           if curves else None) for i in indices]
-        # placed first: a frame sent inside a task makes a large task graph (Dask warns)
+        given = [PartInput(fit.subjects[parts[i]], subject_groups(result, parts[i]),
+                           fit.n_obs[parts[i]]) for i in indices]
         placed = run_on.place(given)
         del given
-        made = run_on.map(made_part, placed, shared=(model,))
+        made = run_on.map(made_part, placed,
+                          [(scores.handles[i], sums.handles[i]) for i in indices],
+                          (model, result.subjects_view.cut, curves))
         del placed
         for index, tables in zip(indices, made, strict=True):
             for name in names:

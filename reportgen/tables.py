@@ -7,12 +7,15 @@ significant digits so that the digest does not depend on the last bits of a BLAS
 from __future__ import annotations
 
 import hashlib
+from dataclasses import replace
 
 import numpy as np
 import pandas as pd
 
 from .analysis import AnalysisResult, rule_choice
+from .fpca.diagnostics import distances, residual_summary
 from .fpca.fit import FPCAFit, Labels, rows_of
+from .fpca.plan import Kept
 from .spec import Spec
 
 FLOAT_FORMAT = "%.10g"
@@ -108,7 +111,7 @@ def build_tables(result: AnalysisResult) -> dict[str, pd.DataFrame]:
         ef[f"phi_{j + 1}"] = fit.eigenfunctions[:, j]
     tables["eigenfunctions"] = ef
     if result.spec.subjects["tables"] == "csv":
-        tables.update(subject_tables(result, None))
+        tables.update(subject_tables(result))
     trajectories = result.trajectories.copy()
     if result.groups is not None:
         shown = _codes(fit.subjects, trajectories.subject.astype(str))
@@ -163,28 +166,39 @@ def subject_table_names(spec: Spec) -> tuple[str, ...]:
     return (*extra, "residuals_by_subject", "scores")
 
 
-def subject_tables(result: AnalysisResult, codes: np.ndarray | None, curves: bool = True
-                   ) -> dict[str, pd.DataFrame]:
-    """The tables of subjects, of the subjects ``codes`` (rows of ``fit.subjects``,
-    increasing; None: all): scores (with the outlier distances), residuals_by_subject, and
-    all_trajectories when the spec asks for it and ``curves``."""
+def subject_tables(result: AnalysisResult) -> dict[str, pd.DataFrame]:
+    """The tables of every subject as single tables (``subjects.tables: csv``): their
+    scores, covariances and residual sums are gathered from the parts."""
     fit = result.fit
-    rows = slice(None) if codes is None else codes
-    scores = pd.DataFrame({"subject": pd.Index(fit.subjects[rows]).astype(str)})
-    groups = subject_groups(result, codes)
+    scores, cov = fit.kept_scores.every()
+    return subject_frames(fit, fit.subjects, subject_groups(result, None), fit.n_obs, scores,
+                          cov, result.residual_sums.every(), result.subjects_view.cut,
+                          bool(result.spec.subjects["all_trajectories"]))
+
+
+def subject_frames(fit: FPCAFit, ids: Labels, groups: np.ndarray | None, n_obs: np.ndarray,
+                   scores: np.ndarray, cov: np.ndarray, sums: tuple[np.ndarray, ...],
+                   cut: float, curves: bool) -> dict[str, pd.DataFrame]:
+    """The tables of the subjects ``ids`` (with their ``groups``, reading counts, scores,
+    score covariances and residual sums): scores (with the outlier distances: flagged
+    beyond ``cut``), residuals_by_subject, and all_trajectories when ``curves``. ``fit``
+    gives the population parts (eigenvalues, eigenfunctions, ...) only."""
+    table = pd.DataFrame({"subject": pd.Index(ids).astype(str)})
     if groups is not None:
-        scores["group"] = groups
-    scores["n_obs"] = fit.n_obs[rows]
+        table["group"] = groups
+    table["n_obs"] = n_obs
     for k in range(fit.n_components):
-        scores[f"score_{k + 1}"] = fit.score_values[rows, k]
-    scores["distance2"] = result.outliers.distance2.to_numpy()[rows]
-    scores["flagged"] = result.outliers.flagged.to_numpy()[rows]
-    residuals = result.residual_summary
-    if codes is not None:
-        residuals = residuals.iloc[codes].reset_index(drop=True)
-    tables = {"scores": scores, "residuals_by_subject": residuals}
-    if curves and result.spec.subjects["all_trajectories"]:
-        tables["all_trajectories"] = trajectory_table(fit, codes, groups)
+        table[f"score_{k + 1}"] = scores[:, k]
+    d2 = distances(scores, fit.eigenvalues)
+    table["distance2"] = d2
+    table["flagged"] = d2 > cut
+    mean, rms = residual_summary(sums, n_obs)
+    residuals = pd.DataFrame({"subject": ids, "n_obs": n_obs, "mean_residual": mean,
+                              "rms_standardized": rms})
+    tables = {"scores": table, "residuals_by_subject": residuals}
+    if curves:
+        held = replace(fit, subjects=ids, kept_scores=Kept.of_arrays(scores, cov))
+        tables["all_trajectories"] = trajectory_table(held, None, groups)
     return tables
 
 

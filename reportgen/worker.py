@@ -61,15 +61,19 @@ def _pdf(html: bytes, spec_bytes: bytes, record_bytes: bytes, stamp: str) -> byt
 
 def summary_view(result: AnalysisResult) -> AnalysisResult:
     """The analysis without its per-reading and per-subject parts (what SUMMARY_FIGURES
-    need, at a size that does not grow with the data)."""
+    need, at a size that does not grow with the data, and nothing of the engine's)."""
+    import numpy as np
+
+    from .fpca.plan import Kept
+
     ds = result.dataset
     runs = tuple(replace(r, fit=r.fit.without_subjects()) if r.fit is not None else r
                  for r in result.sensitivity)
     return replace(result, dataset=replace(ds, frame=ds.frame.iloc[:0], held=None),
                    fit=result.fit.without_subjects(), sensitivity=runs,
                    readings=result.readings.empty(),
-                   residual_summary=result.residual_summary.iloc[:0],
-                   outliers=result.outliers.iloc[:0], subject_parts=())
+                   subjects_view=result.subjects_view.empty(),
+                   residual_sums=Kept.of_arrays(np.zeros(0), np.zeros(0)), subject_parts=())
 
 
 def _csv(frames: dict[str, pd.DataFrame]) -> dict[str, bytes]:

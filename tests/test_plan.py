@@ -256,7 +256,7 @@ def _checks_on(executor: object, parts: list, fit: FPCAFit, chosen: np.ndarray) 
     from reportgen.fpca.diagnostics import check_readings
 
     data = Partitioned.of(executor, executor.place(parts))  # type: ignore[attr-defined]
-    return check_readings(data, fit.score_values, fit.score_cov, fit.predictor(), chosen)
+    return check_readings(data, fit.kept_scores, fit.predictor(), chosen)
 
 
 CHOSEN = np.array([0, 3, 4, 17, 250, 299])
@@ -276,9 +276,9 @@ def test_the_diagnostics_pass_gives_the_definitions(in_process: tuple) -> None:
     std = (y - fitted) / np.sqrt(var)
     # pandas groupby: the per-subject summary's definition
     by = pd.DataFrame({"s": codes, "r": y - fitted, "q": std**2}).groupby("s")
-    np.testing.assert_allclose(got.residual_sum, by.r.sum(), rtol=1e-10, atol=1e-12)
-    np.testing.assert_allclose(got.squared_standardized_sum, by.q.sum(), rtol=1e-10)
-    assert np.array_equal(got.n_obs, np.bincount(codes))
+    residual_sum, squared_sum = got.sums.every()
+    np.testing.assert_allclose(residual_sum, by.r.sum(), rtol=1e-10, atol=1e-12)
+    np.testing.assert_allclose(squared_sum, by.q.sum(), rtol=1e-10)
     # numpy.histogram2d over the data's range: the density's definition
     (t0, t1, nt), (y0, y1, ny) = got.time_axis, got.value_axis
     assert (t0, t1, y0, y1) == (t.min(), t.max(), y.min(), y.max())
@@ -296,15 +296,17 @@ def test_the_diagnostics_pass_gives_the_definitions(in_process: tuple) -> None:
 def test_the_diagnostics_pass_gives_the_same_bits(on_dask: object, in_process: tuple) -> None:
     fit, parts, _, _ = in_process
     here, there = (_checks_on(e, parts, fit, CHOSEN) for e in (InProcess(), on_dask))
-    for name in ("n_obs", "residual_sum", "squared_standardized_sum", "density", "chosen"):
+    for name in ("density", "chosen"):
         assert getattr(here, name).tobytes() == getattr(there, name).tobytes(), name
+    for a, b in zip(here.sums.every(), there.sums.every(), strict=True):
+        assert a.tobytes() == b.tobytes()
     assert here.time_axis == there.time_axis and here.value_axis == there.value_axis
     for name, values in here.readings.items():
         assert values.tobytes() == there.readings[name].tobytes(), name
 
 
 def test_the_diagnostics_bring_back_no_more_with_more_readings() -> None:
-    # per subject and per cell only, plus the chosen subjects' readings
+    # per cell only, plus the chosen subjects' readings (the per-subject sums are kept)
     from reportgen.fpca.diagnostics import check_readings
 
     returned = []
@@ -313,10 +315,11 @@ def test_the_diagnostics_bring_back_no_more_with_more_readings() -> None:
         fit = fit_parts(Partitioned.local(parts), np.arange(300),
                         replace(OPTIONS, band="plugin", component_rule="fixed", n_components=2))
         counting = _Counting()
-        found = check_readings(Partitioned.of(counting, parts), fit.score_values,
-                               fit.score_cov, fit.predictor(), CHOSEN)
+        found = check_readings(Partitioned.of(counting, parts), fit.kept_scores,
+                               fit.predictor(), CHOSEN)
         kept = int(found.readings["time"].size)
-        returned.append(counting.returned["part_checks"] - 5 * kept)
+        assert "part_checks" not in counting.returned  # kept, not brought back
+        returned.append(counting.returned["_small"] - 5 * kept)
     assert returned[0] == returned[1]
 
 

@@ -8,7 +8,6 @@ sample for the residual diagnostics and the few subjects a report shows).
 
 from __future__ import annotations
 
-from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -16,7 +15,7 @@ import numpy as np
 
 from .components import evaluate_at
 from .design import IntArray
-from .plan import Part, Partitioned, in_code_order
+from .plan import Kept, Part, Partitioned, in_code_order
 from .predictor import Predictor
 from .smoothing import FloatArray
 
@@ -70,20 +69,30 @@ def axis(lo: float, hi: float, cells: int) -> tuple[float, float, int]:
     return (lo, hi, cells) if hi > lo else (lo - 0.5, hi + 0.5, cells)
 
 
-def part_checks(part: Part, scores: FloatArray, cov: FloatArray, rows: IntArray,
+def part_checks(part: Part, kept: tuple[FloatArray, FloatArray], rows: IntArray,
                 model: Predictor, edges: tuple[tuple[float, float, int], ...]
                 ) -> tuple[Any, ...]:
-    """The pass: per subject of the part, the sums of its residuals and of its squared
-    standardized residuals; the density of the part's readings; and the readings of its
-    subjects at ``rows`` (time, value, fitted, residual, standardized) with their counts."""
+    """The pass, over a part and its kept scores and covariances (``kept``): per subject of
+    the part, the sums of its residuals and of its squared standardized residuals; the
+    density of the part's readings; and the readings of its subjects at ``rows`` (time,
+    value, fitted, residual, standardized) with their counts."""
     part = part.writable()
     s = part.sample
+    scores, cov = kept
     fitted, resid, std = standardized_residuals(s.t, s.y, s.subject, scores, cov, model)
     n = s.n_subjects
     sums = np.bincount(s.subject, resid, n), np.bincount(s.subject, std * std, n)
     index, _, sizes = s.reading_index(rows)
-    kept = tuple(a[index] for a in (s.t, s.y, fitted, resid, std))
-    return sums, cell_counts(s.t, s.y, edges), sizes, kept
+    kept_readings = tuple(a[index] for a in (s.t, s.y, fitted, resid, std))
+    return sums, cell_counts(s.t, s.y, edges), sizes, kept_readings
+
+
+def _sums(checked: tuple[Any, ...]) -> tuple[FloatArray, FloatArray]:
+    return checked[0]
+
+
+def _small(checked: tuple[Any, ...]) -> tuple[Any, ...]:
+    return checked[1:]
 
 
 @dataclass(frozen=True)
@@ -92,8 +101,9 @@ class ReadingChecks:
 
     Attributes
     ----------
-    n_obs, residual_sum, squared_standardized_sum : ndarray of shape (n_subjects,)
-        Per subject, by code.
+    sums : Kept
+        Per subject, the sum of its residuals and of its squared standardized residuals,
+        kept where the pass computed them.
     density : ndarray of shape DENSITY_CELLS
         Readings per cell of (time, value) over ``time_axis`` x ``value_axis``.
     chosen : ndarray
@@ -103,9 +113,7 @@ class ReadingChecks:
         ``value``, ``fitted``, ``residual``, ``standardized``.
     """
 
-    n_obs: IntArray
-    residual_sum: FloatArray
-    squared_standardized_sum: FloatArray
+    sums: Kept
     density: IntArray
     time_axis: tuple[float, float, int]
     value_axis: tuple[float, float, int]
@@ -113,45 +121,78 @@ class ReadingChecks:
     readings: dict[str, np.ndarray]
 
 
-class _Asks(Sequence[tuple[FloatArray, FloatArray, IntArray]]):
-    """Each part's arguments, made when the executor takes them, so that the parts' copies
-    of their subjects' scores need not all exist at once."""
-
-    def __init__(self, subjects: tuple[IntArray, ...], scores: FloatArray, cov: FloatArray,
-                 rows: list[IntArray]) -> None:
-        self.subjects, self.scores, self.cov, self.rows = subjects, scores, cov, rows
-
-    def __len__(self) -> int:
-        return len(self.subjects)
-
-    def __getitem__(self, i: int) -> tuple[FloatArray, FloatArray, IntArray]:  # type: ignore[override]
-        codes = self.subjects[i]
-        return self.scores[codes], self.cov[codes], self.rows[i]
-
-
-def check_readings(data: Partitioned, scores: FloatArray, cov: FloatArray, model: Predictor,
-                   chosen: IntArray) -> ReadingChecks:
-    """One pass over ``data``: residual sums of every subject (``scores``, ``cov`` by
-    code), the density of all readings, and the readings of the subjects ``chosen``
-    (increasing codes)."""
+def check_readings(data: Partitioned, scores: Kept, model: Predictor, chosen: IntArray
+                   ) -> ReadingChecks:
+    """One pass over ``data`` and its subjects' kept ``scores`` (scores and covariances):
+    residual sums of every subject (kept with the parts), the density of all readings,
+    and the readings of the subjects ``chosen`` (increasing codes)."""
     edges = (axis(data.t_min, data.t_max, DENSITY_CELLS[0]),
              axis(data.y_min, data.y_max, DENSITY_CELLS[1]))
     rows = data.rows_of(chosen)
-    asks = _Asks(data.subjects, scores, cov, rows)
-    found = data.executor.map(part_checks, data.parts, asks, (model, edges))
-    n = data.n_subjects
-    residual_sum, squared_sum = np.empty(n), np.empty(n)
-    for codes, ((a, b), *_) in zip(data.subjects, found, strict=True):
-        residual_sum[codes] = a
-        squared_sum[codes] = b
-    density = sum((f[1] for f in found), np.zeros(DENSITY_CELLS, dtype=np.intp))
+    run = data.executor
+    checked = run.keep(part_checks, data.parts,
+                       [(h, r) for h, r in zip(scores.handles, rows, strict=True)], (model, edges))
+    found = run.map(_small, checked)
+    sums = Kept(run, tuple(run.keep(_sums, checked)), data.subjects)
+    density = sum((f[0] for f in found), np.zeros(DENSITY_CELLS, dtype=np.intp))
     # the chosen subjects' readings, from the parts' order into code order
     owner = np.concatenate([codes[r] for codes, r in zip(data.subjects, rows, strict=True)])
-    index, sizes = in_code_order(owner, np.concatenate([f[2] for f in found]))
+    index, sizes = in_code_order(owner, np.concatenate([f[1] for f in found]))
     kept = np.sort(owner)
     names = ("time", "value", "fitted", "residual", "standardized")
-    readings = {name: np.concatenate([f[3][k] for f in found])[index]
+    readings = {name: np.concatenate([f[2][k] for f in found])[index]
                 for k, name in enumerate(names)}
     readings = {"subject": np.repeat(kept, sizes), **readings}
-    return ReadingChecks(data.n_obs, residual_sum, squared_sum, density, *edges, kept,
-                         readings)
+    return ReadingChecks(sums, density, *edges, kept, readings)
+
+
+# --- passes over the kept per-subject results: what the report shows of every subject ---
+
+
+def distances(scores: FloatArray, eigenvalues: FloatArray) -> FloatArray:
+    """Squared Mahalanobis distance of each row of ``scores`` under N(0, diag(eigenvalues))."""
+    return np.asarray(np.sum(scores**2 / eigenvalues, axis=1))
+
+
+def _top(values: FloatArray, n: int) -> IntArray:
+    """The rows of the ``n`` largest ``values`` (NaN lowest), ties at the n-th included:
+    the caller orders them and cuts to ``n`` with every part's candidates in hand."""
+    values = np.nan_to_num(values, nan=-np.inf)
+    if values.size <= n:
+        return np.arange(values.size, dtype=np.intp)
+    cut = np.partition(values, values.size - n)[values.size - n]
+    return np.flatnonzero(values >= cut).astype(np.intp)
+
+
+def part_farthest(kept: tuple[FloatArray, FloatArray], eigenvalues: FloatArray, cut: float,
+                  n: int) -> tuple[int, IntArray, FloatArray, FloatArray]:
+    """Pass over a part's kept scores: how many of its subjects are beyond ``cut``, and the
+    rows, distances and scores of the ``n`` farthest of those."""
+    scores = kept[0]
+    d2 = distances(scores, eigenvalues)
+    beyond = np.flatnonzero(d2 > cut)
+    rows = beyond[_top(d2[beyond], n)]
+    return int(beyond.size), rows, d2[rows], scores[rows]
+
+
+def residual_summary(sums: tuple[FloatArray, ...], n_obs: IntArray
+                     ) -> tuple[FloatArray, FloatArray]:
+    """Each subject's mean residual and RMS standardized residual from its sums."""
+    residual_sum, squared_sum = sums
+    return residual_sum / n_obs, np.sqrt(squared_sum / n_obs)
+
+
+def part_largest_rms(kept: tuple[FloatArray, FloatArray], n_obs: IntArray, n: int
+                     ) -> tuple[IntArray, FloatArray, FloatArray]:
+    """Pass over a part's kept residual sums (``n_obs``: its subjects' reading counts): the
+    rows, mean residuals and RMS standardized residuals of the ``n`` largest RMS."""
+    mean, rms = residual_summary(kept, n_obs)
+    rows = _top(rms, n)
+    return rows, mean[rows], rms[rows]
+
+
+def part_group_sums(kept: tuple[FloatArray, FloatArray], groups: IntArray, n_groups: int
+                    ) -> FloatArray:
+    """Pass over a part's kept scores: the sum of each group's scores, (n_groups, K)."""
+    scores = kept[0]
+    return np.stack([scores[groups == k].sum(axis=0) for k in range(n_groups)])

@@ -20,6 +20,7 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 from dataclasses import dataclass, field, replace
+from functools import cached_property
 from typing import Any
 
 import numpy as np
@@ -42,7 +43,7 @@ from .design import BinnedStats, IntArray, PairStats, Sample, assign_folds
 from .frame import arrays_from_frame
 from .likelihood import LikelihoodFit, maximise, starting_error_variance
 from .options import FPCAOptions
-from .plan import Part, Partitioned
+from .plan import Kept, Part, Partitioned
 from .predictor import Predictor, band_multiplier
 from .scores import SampleTerms, conditional_scores, loo_errors, sample_terms
 from .smoothing import (
@@ -134,8 +135,11 @@ class FPCAFit:
         came as one (the ids of many files, held as Arrow text: about 30 bytes a subject
         where an array of Python strings takes about 70).
     n_obs : ndarray of shape (n_subjects,)
-    score_values : ndarray of shape (n_subjects, n_components)
-    score_cov : ndarray of shape (n_subjects, n_components, n_components)
+    kept_scores : Kept
+        Each subject's scores (n_subjects, n_components) and their error covariance
+        (n_subjects, n_components, n_components), by code, where the scores pass left them
+        (``fpca.plan``; on a cluster, on the workers). ``score_values`` and ``score_cov``
+        gather them all; the report's passes read them where they are.
     pair_counts : ndarray of shape (n_bins, n_bins)
         Linearly binned counts of the pairs (t_ij, t_il), j != l, on ``pair_grid``.
     pair_grid : ndarray of shape (n_bins,)
@@ -174,8 +178,7 @@ class FPCAFit:
     selection: ComponentSelection
     subjects: Labels
     n_obs: IntArray
-    score_values: FloatArray
-    score_cov: FloatArray
+    kept_scores: Kept
     pair_counts: FloatArray
     pair_grid: FloatArray
     n_readings: int
@@ -204,8 +207,33 @@ class FPCAFit:
         """This fit's population parts only: no scores, readings or resamples, at a size
         that does not grow with the number of subjects (what a comparison of fits or a
         summary figure needs). ``n_obs`` stays: the design summaries use it."""
+        k = self.n_components
         return replace(self, _sample=None, replicates=(), subjects=self.subjects[:0],
-                       score_values=self.score_values[:0], score_cov=self.score_cov[:0])
+                       kept_scores=Kept.of_arrays(np.zeros((0, k)), np.zeros((0, k, k))))
+
+    @cached_property
+    def _gathered(self) -> tuple[FloatArray, FloatArray]:
+        scores, cov = self.kept_scores.every()
+        return _frozen(scores), _frozen(cov)
+
+    @property
+    def score_values(self) -> FloatArray:
+        """Every subject's scores, shape (n_subjects, n_components), gathered from where
+        they were computed (on a cluster: while its client is open)."""
+        return self._gathered[0]
+
+    @property
+    def score_cov(self) -> FloatArray:
+        """Every subject's score error covariance, (n_subjects, K, K), gathered likewise."""
+        return self._gathered[1]
+
+    def scores_of(self, rows: IntArray) -> tuple[FloatArray, FloatArray]:
+        """The scores and covariances of the subjects at ``rows`` (any order), gathering
+        only theirs."""
+        rows = np.asarray(rows, dtype=np.intp)
+        codes, back = np.unique(rows, return_inverse=True)
+        scores, cov = self.kept_scores.pick(codes)
+        return scores[back], cov[back]
 
     @property
     def retained_covariance(self) -> FloatArray:
@@ -298,8 +326,9 @@ class FPCAFit:
         elif readings.n_subjects != rows.size:
             raise EstimationError(f"readings of {readings.n_subjects} subjects given for "
                                   f"{rows.size} trajectories")
-        return self._curve_frame(self.subjects[rows], self.score_values[rows],
-                                 self.score_cov[rows], level, self._band_variance(readings))
+        scores, cov = self.scores_of(rows)
+        return self._curve_frame(self.subjects[rows], scores, cov, level,
+                                 self._band_variance(readings))
 
     def plugin_trajectories(self, rows: IntArray | None = None) -> pd.DataFrame:
         """The trajectories of the subjects at ``rows`` (all by default) with plug-in bands,
@@ -650,9 +679,9 @@ def _fit(data: Partitioned, labels: Labels, options: FPCAOptions, population_onl
 
     # 6. scores
     if per_subject:
-        scores, score_cov = data.scores(fine, mbins, grid, funcs, values, lik.error_variance)
+        kept = data.keep_scores(fine, mbins, grid, funcs, values, lik.error_variance)
     else:  # not computed: the fit is returned without its subjects (below)
-        scores, score_cov = np.zeros((0, k)), np.zeros((0, k, k))
+        kept = Kept.of_arrays(np.zeros((0, k)), np.zeros((0, k, k)))
     fit = FPCAFit(
         grid=_frozen(grid), mean=_frozen(mean), mean_se=_frozen(mean_se),
         covariance=_frozen(cov), diagonal_variance=_frozen(diag_var),
@@ -669,7 +698,7 @@ def _fit(data: Partitioned, labels: Labels, options: FPCAOptions, population_onl
         covariance_bandwidth_choice=cov_choice, diagonal_bandwidth_choice=diag_choice,
         selection=selection,
         subjects=_labels(labels), n_obs=_frozen(data.n_obs),
-        score_values=_frozen(scores), score_cov=_frozen(score_cov),
+        kept_scores=kept,
         pair_counts=_frozen(pstats.offdiag.counts.sum(axis=0)), pair_grid=_frozen(cbins.centers),
         n_readings=data.n_readings, dropped_eigenvalues=eig.n_dropped,
         dropped_negative_sum=eig.dropped_sum,

@@ -25,6 +25,7 @@ from numpy.typing import NDArray
 from ..errors import EstimationError
 from ._kernels import interpolate_columns
 from .design import BinnedStats, PairStats, Sample, mean_stats, pair_stats
+from .diagnostics import part_group_sums
 from .fit import FPCAFit, _mean_covariance
 from .plan import Part, Partitioned, add_binned, add_pair_stats, split_parts, tree_sum
 from .smoothing import BinGrid, FloatArray, get_kernel, local_linear_binned_1d
@@ -57,6 +58,9 @@ class GroupComparison:
         (1 + #{permutations with a statistic >= the observed}) / (1 + permutations).
     permutations : int
     seed : int
+    tested : int
+        Subjects whose scores the test permuted: every subject, or a seeded sample of
+        them (``compare_groups_on``'s ``tested``).
     """
 
     labels: tuple[str, ...]
@@ -68,6 +72,7 @@ class GroupComparison:
     p_value: float
     permutations: int
     seed: int
+    tested: int
 
 
 def pillai_trace(scores: FloatArray, group: IntArray, n_groups: int) -> float:
@@ -203,9 +208,13 @@ def compare_groups(fit: FPCAFit, subject: IntArray, t: FloatArray, y: FloatArray
 
 
 def compare_groups_on(data: Partitioned, fit: FPCAFit, subject_group: np.ndarray,
-                      permutations: int = PERMUTATIONS) -> GroupComparison:
-    """Group means (passes over ``data``, the fit's readings as parts) and the test of
-    equal mean scores. ``subject_group``: the group label of each of ``fit.subjects``."""
+                      permutations: int = PERMUTATIONS,
+                      tested: tuple[IntArray, FloatArray] | None = None) -> GroupComparison:
+    """Group means (passes over ``data``, the fit's readings as parts), the average scores
+    of each group (a pass over the fit's kept scores) and the test of equal mean scores.
+    ``subject_group``: the group label of each of ``fit.subjects``. ``tested``: the codes
+    (increasing) and scores of the subjects the permutation test uses (by default every
+    subject, whose scores are then gathered)."""
     labels, code = np.unique(np.asarray(subject_group, dtype=str), return_inverse=True)
     code = code.astype(np.intp)
     g = labels.size
@@ -213,9 +222,14 @@ def compare_groups_on(data: Partitioned, fit: FPCAFit, subject_group: np.ndarray
         raise EstimationError("a group comparison needs two or more groups")
     means, ses = group_means(data, fit, code, g)
     counts = np.bincount(code, minlength=g)
-    score_means = np.stack([fit.score_values[code == k].mean(axis=0) for k in range(g)])
-    permutations = permutation_count(code.size, permutations)
-    statistic, p_value = permutation_test(fit.score_values, code, g, permutations,
+    kept = fit.kept_scores
+    sums = kept.map(part_group_sums, [(code[c],) for c in kept.subjects], (g,))
+    score_means = tree_sum(sums, np.add) / counts[:, None]
+    codes, scores = tested if tested is not None else (
+        np.arange(fit.n_subjects, dtype=np.intp), fit.score_values)
+    permutations = permutation_count(codes.size, permutations)
+    statistic, p_value = permutation_test(scores, code[codes], g, permutations,
                                           fit.options.seed)
     return GroupComparison(tuple(str(x) for x in labels), counts.astype(np.intp), means, ses,
-                           score_means, statistic, p_value, permutations, fit.options.seed)
+                           score_means, statistic, p_value, permutations, fit.options.seed,
+                           int(codes.size))

@@ -196,6 +196,66 @@ def warm_up() -> None:
     part_scores(part, np.zeros(5), grid, grid.centers, np.ones((5, 1)), np.ones(1), 1.0)
 
 
+def take_rows(kept: tuple[np.ndarray, ...], rows: IntArray) -> tuple[np.ndarray, ...]:
+    """The rows ``rows`` of each of a part's kept arrays."""
+    return tuple(a[rows] for a in kept)
+
+
+def as_they_are(kept: tuple[np.ndarray, ...]) -> tuple[np.ndarray, ...]:
+    return kept
+
+
+@dataclass(frozen=True, eq=False)
+class Kept:
+    """Per-subject results of a pass, left where the pass computed them (on a cluster, in
+    the workers' memory): for each part, a tuple of arrays whose rows are the part's
+    subjects in code order (``subjects``: their codes). Passes over them take the
+    ``handles`` as parts (``map``); the caller gathers only the rows it asks for (``pick``)
+    or, where it must hold every subject, all of them (``every``).
+    """
+
+    executor: Executor
+    handles: tuple[Any, ...]
+    subjects: tuple[IntArray, ...]
+
+    @classmethod
+    def of_arrays(cls, *arrays: np.ndarray) -> Kept:
+        """Arrays of every subject (rows by code) held here, as one part."""
+        n = arrays[0].shape[0]
+        return cls(InProcess(), (tuple(arrays),), (np.arange(n, dtype=np.intp),))
+
+    @property
+    def n_subjects(self) -> int:
+        return sum(int(c.size) for c in self.subjects)
+
+    def map(self, fn: Any, per_part: Sequence[tuple[Any, ...]] | None = None,
+            shared: tuple[Any, ...] = ()) -> list[Any]:
+        """A pass over the kept results (``fn(kept, *per_part[i], *shared)`` per part)."""
+        return self.executor.map(fn, self.handles, per_part, shared)
+
+    def pick(self, codes: IntArray) -> tuple[np.ndarray, ...]:
+        """The rows of the subjects ``codes`` (increasing), in that order."""
+        codes = np.asarray(codes, dtype=np.intp)
+        rows = [np.searchsorted(c, codes[np.isin(codes, c)]) for c in self.subjects]
+        found = self.map(take_rows, [(r,) for r in rows])
+        owner = np.concatenate([c[r] for c, r in zip(self.subjects, rows, strict=True)])
+        order = np.argsort(owner, kind="stable")
+        return tuple(np.concatenate([f[j] for f in found])[order]
+                     for j in range(len(found[0])))
+
+    def every(self) -> tuple[np.ndarray, ...]:
+        """The rows of every subject, by code (one part in code order: its own arrays)."""
+        found = self.map(as_they_are)
+        n = self.n_subjects
+        if len(found) == 1 and np.array_equal(self.subjects[0], np.arange(n)):
+            return tuple(found[0])
+        out = tuple(np.empty((n, *a.shape[1:]), dtype=a.dtype) for a in found[0])
+        for codes, arrays in zip(self.subjects, found, strict=True):
+            for target, a in zip(out, arrays, strict=True):
+                target[codes] = a
+        return out
+
+
 # --- the data of a fit, as parts ----------------------------------------------------------
 
 
@@ -293,19 +353,13 @@ class Partitioned:
         sample = Sample(np.repeat(np.arange(chosen.size), sizes), t, y, starts, sizes)
         return sample, r
 
-    def scores(self, fine: FloatArray, mean_grid: BinGrid, grid: FloatArray,
-               functions: FloatArray, values: FloatArray, sigma2: float
-               ) -> tuple[FloatArray, FloatArray]:
-        """Scores and their error covariance of every subject, by code."""
-        found = self.executor.map(part_scores, self.parts,
-                                  shared=(fine, mean_grid, grid, functions, values, sigma2))
-        k = values.size
-        scores = np.empty((self.n_subjects, k))
-        cov = np.empty((self.n_subjects, k, k))
-        for codes, (s, c) in zip(self.subjects, found, strict=True):
-            scores[codes] = s
-            cov[codes] = c
-        return scores, cov
+    def keep_scores(self, fine: FloatArray, mean_grid: BinGrid, grid: FloatArray,
+                    functions: FloatArray, values: FloatArray, sigma2: float) -> Kept:
+        """Pass 3: each subject's scores and their error covariance, kept where each part's
+        were computed (nothing per subject comes back)."""
+        handles = self.executor.keep(part_scores, self.parts,
+                                     shared=(fine, mean_grid, grid, functions, values, sigma2))
+        return Kept(self.executor, tuple(handles), self.subjects)
 
     @cached_property
     def _homes(self) -> tuple[IntArray, IntArray]:

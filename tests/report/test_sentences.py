@@ -139,20 +139,28 @@ def test_spread_trend_is_spearmans_rho() -> None:
 
 
 def test_flagged_subjects_named_up_to_the_cap(base: AnalysisResult) -> None:
+    # At the 0.5 quantile about half the subjects are flagged: the count is over every
+    # subject and the names are the NAMED_FLAGGED farthest, farthest first, both found by
+    # passes over the kept scores; the reference is numpy on every subject's scores.
     from dataclasses import asdict, replace
 
+    from reportgen.analysis import subject_view
     from reportgen.render import NAMED_FLAGGED, build_sections
 
-    d2 = base.outliers.distance2.to_numpy()
-    many = base.outliers.assign(flagged=d2 > np.median(d2))  # half the subjects flagged
-    result = replace(base, outliers=many)
+    fit = base.fit
+    view = subject_view(fit, base.residual_sums, 0.5, base.subjects_view.sampled,
+                        base.subjects_view.scores)
+    d2 = np.sum(fit.score_values**2 / fit.eigenvalues, axis=1)
+    assert view.n_flagged == int(np.sum(d2 > view.cut)) > NAMED_FLAGGED
+    top = np.argsort(-d2, kind="stable")[:NAMED_FLAGGED]
+    assert view.farthest.subject.tolist() == list(fit.subjects[top])
+    np.testing.assert_array_equal(view.farthest.distance2, d2[top])
+    result = replace(base, subjects_view=view)
     text = str(asdict(build_sections(result, {}, {"scores": ("<svg></svg>", "c", "a")},
                                      order=["scores"])[0]))
-    top = many[many.flagged].sort_values("distance2", ascending=False)
-    assert len(top) > NAMED_FLAGGED
-    assert f"{len(top)} subject(s) flagged; the {NAMED_FLAGGED} farthest: " in text
+    assert f"{view.n_flagged} subject(s) flagged; the {NAMED_FLAGGED} farthest: " in text
     named = re.findall(r"(\w+) \(([\d.e+-]+)\)", text.split("farthest: ")[1].split(" (squared")[0])
-    assert [s for s, _ in named] == list(top.subject.astype(str)[:NAMED_FLAGGED])
+    assert [s for s, _ in named] == [str(x) for x in fit.subjects[top]]
 
 
 def test_residual_diagnostics_over_a_sample_say_so(base: AnalysisResult, tmp_path: Path,
@@ -177,6 +185,11 @@ def test_residual_diagnostics_over_a_sample_say_so(base: AnalysisResult, tmp_pat
     assert res.spread == pytest.approx(expected, rel=1e-12)
     assert _over_sample(res) == (f"; over the {len(sampled):,} readings of a seeded sample "
                                  f"of 40 of the {n:,} subjects")
-    assert len(res.residual_summary) == n  # the per-subject table covers every subject
-    np.testing.assert_array_equal(res.residual_summary.rms_standardized,
-                                  base.residual_summary.rms_standardized)
+    # the per-subject table covers every subject, as does the summary's sample here
+    from reportgen.tables import subject_tables
+
+    table = subject_tables(res)["residuals_by_subject"]
+    assert len(table) == n and res.subjects_view.sample_words() == ""
+    np.testing.assert_array_equal(table.rms_standardized,
+                                  subject_tables(base)["residuals_by_subject"].rms_standardized)
+    np.testing.assert_array_equal(res.subjects_view.rms, table.rms_standardized)
