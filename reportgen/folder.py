@@ -258,6 +258,10 @@ def _subjects(facts: list[FileFacts], n_files: int
     if not facts:
         return _whole(n_files), [], pd.Index([])
     sizes = [len(f.ids) for f in facts if f.ids is not None]
+    union = _sorted_union([f.ids for f in facts if f.ids is not None])
+    if union is not None:
+        codes, ids = union
+        return _whole(n_files), np.split(codes, np.cumsum(sizes)[:-1]), ids
     every = pd.concat([pd.Series(f.ids) for f in facts], ignore_index=True)
     codes, ids = pd.factorize(every, sort=True)
     codes = codes.astype(np.intp)
@@ -273,6 +277,34 @@ def _subjects(facts: list[FileFacts], n_files: int
                  f"the {n_files} files, e.g. subject {plain(ids[code])} in "
                  f"{', '.join(where[:3])}; write the data partitioned by subject (all of a "
                  "subject's readings in one file)"), [], ids
+
+
+def _sorted_union(indexes: list[pd.Index]) -> tuple[np.ndarray, pd.Index] | None:
+    """The codes of the files' ids in their sorted union, and that union, when no id is in
+    two files and all are of one type: by one sort of the ids as Arrow arrays. (Factorizing
+    them takes a hash table: at 10^7 ids of 10 characters 1.1 GB more and 6 s, against
+    0.4 GB and 1 s.) None otherwise: the caller factorizes and names the split subjects."""
+    import pyarrow as pa
+    import pyarrow.compute as pc
+
+    if len({ix.dtype for ix in indexes}) != 1:
+        return None
+    try:
+        every = pa.chunked_array([pa.array(ix) for ix in indexes])
+    except (pa.ArrowInvalid, pa.ArrowTypeError, pa.ArrowNotImplementedError):
+        return None
+    kind = every.type
+    if every.null_count or not (pa.types.is_string(kind) or pa.types.is_large_string(kind)
+                                or pa.types.is_integer(kind)):
+        return None  # text and whole numbers only: no NaN, no two spellings of one value
+    order = pc.sort_indices(every)
+    ids = every.take(order)
+    del every
+    if len(ids) > 1 and pc.any(pc.equal(ids[1:], ids[:-1])).as_py():
+        return None
+    codes = np.empty(len(ids), dtype=np.intp)
+    codes[order.to_numpy()] = np.arange(len(ids), dtype=np.intp)
+    return codes, pd.Index(pd.array(ids.to_pandas(), dtype=indexes[0].dtype))
 
 
 def _whole(n_files: int) -> Check:

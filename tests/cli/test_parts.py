@@ -452,3 +452,28 @@ def test_a_file_that_cannot_be_used_is_a_message_not_a_failed_task(tmp_path: Pat
     assert done.stderr.strip() == (
         "reportgen run: error: column(s) 'marker' not found in 'readings: part-1.parquet' "
         "(named by data.value); the file has 2 column(s): patient, week")
+
+
+def test_the_union_of_the_files_ids_is_pandas_factorize() -> None:
+    # Reference: pandas.factorize(sort=True) of the files' ids put one after another (what
+    # the union replaced): the same codes and the same sorted ids, of the same dtype.
+    import pandas as pd
+
+    from reportgen.folder import _sorted_union
+
+    rng = np.random.default_rng(4)
+    words = np.array(["b", "a", "ä", "Z", "a1", "a10", "a2", "ß", "b ", "€x", "10", "9"])
+    for values in (words, np.array([7, -3, 12, 0, 5, 100, 2, 41])):
+        values = values[rng.permutation(values.size)]
+        files = [pd.Index(np.sort(part)).astype(pd.Series(values).convert_dtypes().dtype
+                                                 if values.dtype.kind == "i" else "str")
+                 for part in np.split(values, [3, 4])]
+        codes, ids = _sorted_union(files)  # type: ignore[misc]
+        want_codes, want_ids = pd.factorize(pd.concat([pd.Series(f) for f in files],
+                                                      ignore_index=True), sort=True)
+        assert codes.tolist() == want_codes.tolist()
+        assert ids.equals(pd.Index(want_ids)) and ids.dtype == files[0].dtype
+    # an id in two files, or ids that are not text or whole numbers: the caller factorizes
+    assert _sorted_union([pd.Index(["a", "b"]), pd.Index(["b", "c"])]) is None
+    assert _sorted_union([pd.Index([0.5, 1.5]), pd.Index([2.5])]) is None
+    assert _sorted_union([pd.Index(["a"]), pd.Index([1])]) is None
