@@ -402,9 +402,25 @@ def _by_readings_then_id(n_obs: np.ndarray, subjects: Labels) -> np.ndarray:
     sorts its labels), and then it is one stable sort of the counts, not a sort of a
     million Python tuples (1.8 s)."""
     ids = pd.Index(subjects).astype(str)
-    if ids.is_monotonic_increasing:
+    if _increasing(ids):
         return np.argsort(n_obs, kind="stable")
     return np.lexsort((ids.argsort(kind="stable").argsort(kind="stable"), n_obs))
+
+
+def _increasing(ids: pd.Index) -> bool:
+    """Whether text ids are in increasing order: for Arrow text, one comparison of
+    neighbours in Arrow (pandas' is_monotonic_increasing made a Python string of every id:
+    0.77 GB more at 10^7 ids, measured)."""
+    import pyarrow as pa
+    import pyarrow.compute as pc
+
+    try:
+        text = pa.array(ids)
+    except (pa.ArrowInvalid, pa.ArrowTypeError):
+        return bool(ids.is_monotonic_increasing)
+    if text.null_count or len(text) < 2:
+        return bool(ids.is_monotonic_increasing)
+    return not pc.any(pc.less(text[1:], text[:-1])).as_py()
 
 
 def _caveats(spec: Spec, ds: Dataset, fit: FPCAFit, runs: list[SensitivityRun],

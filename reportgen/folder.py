@@ -320,4 +320,9 @@ def _groups(facts: list[FileFacts], kept: list[int], codes: list[np.ndarray], n:
     out = np.empty(n, dtype=object)
     for i, c in zip(kept, codes, strict=True):
         out[c] = facts[i].groups
-    return out
+    # one string object per group, not per subject (each came back from its file as a
+    # string of its own: 71 bytes a subject, measured, where a reference takes 8)
+    labels = pd.Categorical(out)
+    if np.any(labels.codes < 0):  # a missing group (not one string): as they came
+        return out
+    return np.asarray(labels.categories, dtype=object)[labels.codes]
