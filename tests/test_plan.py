@@ -23,6 +23,7 @@ from reportgen.fpca.fit import FPCAFit, fit_parts
 from reportgen.fpca.plan import InProcess, Partitioned, split_parts, tree_sum
 from reportgen.fpca.smoothing import BinGrid
 
+from .counting import numbers_in
 from .designs import yao_design
 
 OPTIONS = FPCAOptions(n_grid=41, band="corrected", bootstrap_replicates=4, seed=3)
@@ -173,19 +174,9 @@ class _Counting(InProcess):
 
     def map(self, fn, parts, per_part=None, shared=()):  # type: ignore[no-untyped-def]
         out = super().map(fn, parts, per_part, shared)
-        size = sum(_size(x) for x in out)
+        size = sum(numbers_in(x) for x in out)
         self.returned[fn.__name__] = self.returned.get(fn.__name__, 0) + size
         return out
-
-
-def _size(x: object) -> int:
-    if isinstance(x, np.ndarray):
-        return int(x.size)
-    if isinstance(x, tuple | list):
-        return sum(_size(v) for v in x)
-    if hasattr(x, "__dataclass_fields__"):
-        return sum(_size(getattr(x, f)) for f in x.__dataclass_fields__)
-    return 1
 
 
 def _parts_of(low: int, high: int) -> list:

@@ -22,6 +22,7 @@ from reportgen.fpca.plan import InProcess
 from reportgen.spec import load_spec
 from reportgen.subject_parts import write_subject_parts
 
+from ..counting import numbers_in
 from ..designs import yao_design
 
 ROOT = Path(__file__).resolve().parents[2]
@@ -38,21 +39,9 @@ class _Counting(InProcess):
 
     def map(self, fn, parts, per_part=None, shared=()):  # type: ignore[no-untyped-def]
         out = super().map(fn, parts, per_part, shared)
-        size = sum(_size(x) for x in out)
+        size = sum(numbers_in(x) for x in out)
         self.largest[fn.__name__] = max(self.largest.get(fn.__name__, 0), size)
         return out
-
-
-def _size(x: Any) -> int:
-    if isinstance(x, np.ndarray):
-        return int(x.size)
-    if isinstance(x, tuple | list):
-        return sum(_size(v) for v in x)
-    if isinstance(x, dict):
-        return sum(_size(v) for v in x.values())
-    if hasattr(x, "__dataclass_fields__"):
-        return sum(_size(getattr(x, f)) for f in x.__dataclass_fields__)
-    return 1
 
 
 def _run(tmp_path: Path, n: int) -> tuple[_Counting, Any]:
