@@ -189,7 +189,7 @@ def main() -> None:
     steps = (["read_and_check", "file_facts", "file_design_sums", "as_part"] if spec
              else ["make_part"])
     steps += ["summary", "outside", "reading_sums", "residual_sums", "gather",
-             "part_scores", "part_checks", "group_reading_sums", "group_pair_sums",
+             "part_scores", "part_checks", "_small", "group_reading_sums", "group_pair_sums",
              "client steps"]
     rows = [[name, *(f"{r[0].get(s, 0.0):.2f}" for s in steps), f"{r[1]:.1f}", r[2], r[3],
              "yes" if same.get(name, True) else "NO"] for name, r in results.items()]
@@ -203,8 +203,10 @@ def main() -> None:
             "groups. Seconds per pass over the parts (summed over the fit's calls; with Dask a "
             "pass whose results stay on the workers returns at once, and its time shows in the "
             "pass that waits for them: `make_part` and `as_part` in `summary`, "
-            "`read_and_check` in `file_facts`), the steps in the client between passes, the "
-            "total, and peak resident memory.\n\n"
+            "`read_and_check` in `file_facts`, `part_scores` and `part_checks` in `_small`, the "
+            "first pass that brings back some of the diagnostics' results), the steps in the "
+            "client between passes, the total (the comparison of bits, which gathers every "
+            "subject's scores, comes after it), and peak resident memory.\n\n"
             + table(["engine", *steps, "total s", "client peak MB", "worker peak MB",
                      "same bits as in this process"], rows))
     base = results["in this process"][1]

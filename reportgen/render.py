@@ -306,7 +306,7 @@ def _tested(result: AnalysisResult) -> str:
     g = result.groups
     if g is None or g.tested == result.fit.n_subjects:
         return "subjects"
-    return f"the subjects of a seeded sample of {g.tested:,} of the {result.fit.n_subjects:,}"
+    return f"a seeded sample of {g.tested:,} of the {result.fit.n_subjects:,} subjects"
 
 
 def _over_sample(result: AnalysisResult) -> str:

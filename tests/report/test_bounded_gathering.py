@@ -12,6 +12,7 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+import pandas as pd
 import pytest
 
 from reportgen import analysis
@@ -84,3 +85,29 @@ def test_the_report_gathers_nothing_per_subject(tmp_path: Path,
     # the count can fail: gathering every subject's scores is seen
     assert result.fit.score_values.shape == (2 * N_SUBJECTS, result.fit.n_components)
     assert large.largest["as_they_are"] >= 2 * N_SUBJECTS
+
+
+def test_the_report_says_where_it_uses_the_sample(tmp_path: Path,
+                                                  monkeypatch: pytest.MonkeyPatch) -> None:
+    # Above SUBJECT_SAMPLE_MAX the residual quantiles, the group test and the score figures
+    # come from the sample, and each says so; the count of flagged subjects is of all.
+    from dataclasses import asdict
+
+    from reportgen.figures import make_figures
+    from reportgen.render import build_sections
+
+    for module, name in ((analysis, "SUBJECT_SAMPLE_MAX"), (analysis, "DIAGNOSTIC_MAX_SUBJECTS"),
+                         (fit_module, "REFINE_MAX_SUBJECTS")):
+        monkeypatch.setattr(module, name, CAP)
+    _, result = _run(tmp_path, N_SUBJECTS)
+    words = f"a seeded sample of {CAP} of the {N_SUBJECTS:,} subjects"
+    figures = make_figures(result, ["scores", "group_scores"])
+    for name in ("scores", "group_scores"):
+        assert words in figures[name][1], name
+    empty = {name: ("<svg></svg>", "c", "a") for name in ("residuals", "group_means")}
+    text = "".join(str(asdict(s)) for s in build_sections(
+        result, {}, {**figures, **empty}, order=["residuals", "groups", "scores"]))
+    assert f"90th percentile {pd.Series(result.subjects_view.rms).quantile(0.9):.3g} " \
+           f"(over {words})" in text
+    assert f"group labels over {words} (seed" in text
+    assert f"{result.subjects_view.n_flagged} subject(s) flagged" in text
