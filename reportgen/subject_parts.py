@@ -8,11 +8,12 @@ of the same rows, header included). The results digest takes the canonical CSV's
 it depends on the numbers, not on the Parquet writer's version; ``verify`` compares them.
 
 With one data file there is one part, and its canonical CSV is byte for byte the table
-``subjects.tables: csv`` writes. A part is formatted, hashed and turned into Parquet by a
-task of the engine (on a cluster, by the workers), a batch of parts at a time; the
-``reportgen`` process makes the frames of one row per subject, the tasks make
-all_trajectories (a grid's rows per subject) from the part's scores and covariances, and
-the ``reportgen`` process writes the bytes. It never holds a table of every subject.
+``subjects.tables: csv`` writes. A part is made, formatted, hashed and turned into
+Parquet by a task of the engine (on a cluster, by the workers), a batch of parts at a
+time: from the part's scores, covariances and residual sums, which stay where the fit's
+passes computed them, and the subjects' ids, groups and reading counts, which the
+``reportgen`` process sends; it writes the bytes. It never holds a table of every subject,
+nor every subject's scores.
 """
 
 from __future__ import annotations
@@ -149,6 +150,7 @@ def write_subject_parts(result: AnalysisResult, run: Path, executor: Executor | 
     for indices in _batches([p.size for p in parts], per_subject):
         given = [PartInput(fit.subjects[parts[i]], subject_groups(result, parts[i]),
                            fit.n_obs[parts[i]]) for i in indices]
+        # placed first: arrays sent inside a task make a large task graph (Dask warns)
         placed = run_on.place(given)
         del given
         made = run_on.map(made_part, placed,

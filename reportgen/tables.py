@@ -198,7 +198,7 @@ def subject_frames(fit: FPCAFit, ids: Labels, groups: np.ndarray | None, n_obs: 
     tables = {"scores": table, "residuals_by_subject": residuals}
     if curves:
         held = replace(fit, subjects=ids, kept_scores=Kept.of_arrays(scores, cov))
-        tables["all_trajectories"] = trajectory_table(held, None, groups)
+        tables["all_trajectories"] = trajectory_table(held, groups)
     return tables
 
 
@@ -213,10 +213,9 @@ def subject_groups(result: AnalysisResult, codes: np.ndarray | None) -> np.ndarr
     return np.array(picked, dtype=object)
 
 
-def trajectory_table(fit: FPCAFit, codes: np.ndarray | None, groups: np.ndarray | None
-                     ) -> pd.DataFrame:
-    """all_trajectories of the subjects ``codes`` (None: all), with their ``groups``."""
-    table = fit.plugin_trajectories(codes)
+def trajectory_table(fit: FPCAFit, groups: np.ndarray | None) -> pd.DataFrame:
+    """all_trajectories of the fit's subjects, with their ``groups``."""
+    table = fit.plugin_trajectories()
     table["subject"] = pd.Index(table["subject"]).astype(str)
     if groups is not None:
         table.insert(1, "group", np.repeat(groups, fit.grid.size))
