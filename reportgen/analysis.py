@@ -210,7 +210,7 @@ class ReadingView:
 # What the report shows of every subject's scores and residual summary (the score figures,
 # the group test, the median and 90th percentile of the RMS standardized residuals) comes
 # from at most this many subjects, a seeded sample above it; their scores, covariances and
-# residual sums are gathered, (3 + K + K^2) x 8 bytes each: 10 MB at K = 2. The tables of
+# residual sums are gathered, (2 + K + K^2) x 8 bytes each: 13 MB at K = 2. The tables of
 # subjects, the count of flagged subjects and the farthest and worst ones cover every
 # subject (passes over the results kept with the parts).
 SUBJECT_SAMPLE_MAX = 200_000
