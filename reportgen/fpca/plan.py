@@ -16,7 +16,8 @@ Passes of a fit: (0) ``summary`` (subject codes and reading counts, time and val
 ranges); (1) ``reading_sums`` (binned readings per fold, for the mean); (2)
 ``residual_sums`` (binned raw covariances against the mean, and the sums that check the
 residuals' size); then, on a seeded sample of subjects, ``gather`` (their readings, for the
-likelihood); (3) ``part_scores`` (each subject's conditional expectation). Resampled parts
+likelihood); (3) ``part_scores`` (each subject's conditional expectation, kept where it
+was computed: :class:`Kept`; later passes read it there). Resampled parts
 for corrected bands are made where the parts live (``resampled``). After the fit, the
 report's diagnostics are one more pass (``diagnostics.check_readings``).
 """
@@ -196,6 +197,12 @@ def warm_up() -> None:
     part_scores(part, np.zeros(5), grid, grid.centers, np.ones((5, 1)), np.ones(1), 1.0)
 
 
+def rows_in_parts(subjects: Sequence[IntArray], chosen: IntArray) -> list[IntArray]:
+    """Each part's rows (``subjects``: each part's codes, increasing) of those of the
+    subjects ``chosen`` (increasing codes) that it holds."""
+    return [np.searchsorted(codes, chosen[np.isin(chosen, codes)]) for codes in subjects]
+
+
 def take_rows(kept: tuple[np.ndarray, ...], rows: IntArray) -> tuple[np.ndarray, ...]:
     """The rows ``rows`` of each of a part's kept arrays."""
     return tuple(a[rows] for a in kept)
@@ -235,8 +242,7 @@ class Kept:
 
     def pick(self, codes: IntArray) -> tuple[np.ndarray, ...]:
         """The rows of the subjects ``codes`` (increasing), in that order."""
-        codes = np.asarray(codes, dtype=np.intp)
-        rows = [np.searchsorted(c, codes[np.isin(codes, c)]) for c in self.subjects]
+        rows = rows_in_parts(self.subjects, np.asarray(codes, dtype=np.intp))
         found = self.map(take_rows, [(r,) for r in rows])
         owner = np.concatenate([c[r] for c, r in zip(self.subjects, rows, strict=True)])
         order = np.argsort(owner, kind="stable")
@@ -338,7 +344,7 @@ class Partitioned:
     def rows_of(self, chosen: IntArray) -> list[IntArray]:
         """Each part's rows of those of the subjects ``chosen`` (increasing codes) that it
         holds."""
-        return [np.searchsorted(codes, chosen[np.isin(chosen, codes)]) for codes in self.subjects]
+        return rows_in_parts(self.subjects, chosen)
 
     def gather(self, chosen: IntArray, fine: FloatArray, mean_grid: BinGrid
                ) -> tuple[Sample, FloatArray]:
