@@ -68,11 +68,15 @@ def _run(tmp_path: Path, n: int) -> tuple[_Counting, Any]:
     return counting, result
 
 
-def test_the_report_gathers_nothing_per_subject(tmp_path: Path,
-                                                monkeypatch: pytest.MonkeyPatch) -> None:
+@pytest.fixture
+def capped(monkeypatch: pytest.MonkeyPatch) -> None:
+    """The report's samples (scores, residual readings, likelihood) capped at CAP subjects."""
     for module, name in ((analysis, "SUBJECT_SAMPLE_MAX"), (analysis, "DIAGNOSTIC_MAX_SUBJECTS"),
                          (fit_module, "REFINE_MAX_SUBJECTS")):
         monkeypatch.setattr(module, name, CAP)
+
+
+def test_the_report_gathers_nothing_per_subject(tmp_path: Path, capped: None) -> None:
     small, _ = _run(tmp_path, N_SUBJECTS)
     large, result = _run(tmp_path, 2 * N_SUBJECTS)
     passes = set(large.largest) - {"summary", "made_part"}
@@ -87,8 +91,7 @@ def test_the_report_gathers_nothing_per_subject(tmp_path: Path,
     assert large.largest["as_they_are"] >= 2 * N_SUBJECTS
 
 
-def test_the_report_says_where_it_uses_the_sample(tmp_path: Path,
-                                                  monkeypatch: pytest.MonkeyPatch) -> None:
+def test_the_report_says_where_it_uses_the_sample(tmp_path: Path, capped: None) -> None:
     # Above SUBJECT_SAMPLE_MAX the residual quantiles, the group test and the score figures
     # come from the sample, and each says so; the count of flagged subjects is of all.
     from dataclasses import asdict
@@ -96,9 +99,6 @@ def test_the_report_says_where_it_uses_the_sample(tmp_path: Path,
     from reportgen.figures import make_figures
     from reportgen.render import build_sections
 
-    for module, name in ((analysis, "SUBJECT_SAMPLE_MAX"), (analysis, "DIAGNOSTIC_MAX_SUBJECTS"),
-                         (fit_module, "REFINE_MAX_SUBJECTS")):
-        monkeypatch.setattr(module, name, CAP)
     _, result = _run(tmp_path, N_SUBJECTS)
     words = f"a seeded sample of {CAP} of the {N_SUBJECTS:,} subjects"
     figures = make_figures(result, ["scores", "group_scores"])
