@@ -330,13 +330,11 @@ class FPCAFit:
         return self._curve_frame(self.subjects[rows], scores, cov, level,
                                  self._band_variance(readings))
 
-    def plugin_trajectories(self, rows: IntArray | None = None) -> pd.DataFrame:
-        """The trajectories of the subjects at ``rows`` (all by default) with plug-in bands,
-        as :meth:`trajectories` gives them for a fit without resamples: from the scores and
-        their covariances alone (no readings)."""
-        at = slice(None) if rows is None else rows
-        return self._curve_frame(self.subjects[at], self.score_values[at], self.score_cov[at],
-                                 None, None)
+    def plugin_trajectories(self) -> pd.DataFrame:
+        """Every subject's trajectory with plug-in bands, as :meth:`trajectories` gives them
+        for a fit without resamples: from the scores and their covariances alone (no
+        readings)."""
+        return self._curve_frame(self.subjects, self.score_values, self.score_cov, None, None)
 
     def band_kind(self) -> str:
         """``"corrected"`` when replicates carry the estimation uncertainty, else ``"plugin"``."""
