@@ -33,15 +33,15 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
 from benchmarks.run import machine, table  # noqa: E402
-from reportgen.analysis import DIAGNOSTIC_MAX_SUBJECTS  # noqa: E402
-from reportgen.data import load_dataset  # noqa: E402
+from reportgen.analysis.analyse import DIAGNOSTIC_MAX_SUBJECTS  # noqa: E402
 from reportgen.fpca import FPCAOptions  # noqa: E402
 from reportgen.fpca.design import Sample  # noqa: E402
 from reportgen.fpca.diagnostics import check_readings  # noqa: E402
 from reportgen.fpca.fit import FPCAFit, fit_parts, seeded_sample  # noqa: E402
 from reportgen.fpca.groups import group_means  # noqa: E402
 from reportgen.fpca.plan import Executor, InProcess, Part, Partitioned, warm_up  # noqa: E402
-from reportgen.spec import load_spec  # noqa: E402
+from reportgen.inputs.checks import load_dataset  # noqa: E402
+from reportgen.inputs.spec import load_spec  # noqa: E402
 
 
 class Timed:
@@ -113,7 +113,7 @@ def _fit(executor: Executor, n: int, n_parts: int, spec: Path | None
     """The fit, then the report's passes after it: the diagnostics (as a run makes them:
     the seeded sample of 20,000 subjects and six shown ones) and the means of three groups
     (subject code modulo 3). With ``spec``, the parts are its Parquet files, read, checked
-    and cleaned where they are to live (``reportgen.folder``); otherwise simulated there."""
+    and cleaned where they are to live (``reportgen.inputs.folder``); otherwise simulated there."""
     timed = Timed(executor)
     start = time.perf_counter()
     if spec is not None:
@@ -161,7 +161,7 @@ def main() -> None:
     args = parser.parse_args()
     import distributed
 
-    from reportgen.engine import OnDask
+    from reportgen.analysis.engine import OnDask
 
     n, files = args.subjects, args.files
     spec = write_files(args.read / "readings", n, files, 3) if args.read else None

@@ -242,7 +242,7 @@ def scores_batched_vs_loop(n: int) -> tuple[str, float]:
 
 
 def end_to_end(big_n: int) -> tuple[str, list[float]]:
-    from reportgen.runner import Timer, run_spec
+    from reportgen.runs.writer import Timer, run_spec
 
     rows = []
     with tempfile.TemporaryDirectory() as tmp:

@@ -28,9 +28,9 @@ from .errors import (
 if _typing.TYPE_CHECKING:
     from .api import fit_sparse_fpca
     from .fpca import FPCAFit, FPCAOptions
-    from .predict import StoredFit, load_fit
+    from .runs.stored_fit import StoredFit, load_fit
 
-__version__ = "0.1.0"
+from ._version import __version__
 
 __all__ = [
     "DataError",
@@ -57,9 +57,9 @@ def __getattr__(name: str) -> _typing.Any:
 
         return fit_sparse_fpca
     if name in ("load_fit", "StoredFit"):
-        from . import predict
+        from .runs import stored_fit
 
-        return getattr(predict, name)
+        return getattr(stored_fit, name)
     if name in ("FPCAFit", "FPCAOptions"):
         from . import fpca
 

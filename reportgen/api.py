@@ -11,7 +11,7 @@ import pandas as pd
 from .errors import DataError, SpecError
 from .fpca import FPCAFit, fit_arrays
 from .fpca.frame import arrays_from_frame
-from .validation import make_options
+from .inputs.schema import make_options
 
 
 def fit_sparse_fpca(

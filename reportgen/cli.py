@@ -13,7 +13,7 @@ import sys
 from collections.abc import Sequence
 from pathlib import Path
 
-from . import __version__
+from ._version import __version__
 from .errors import ReportgenError
 
 STARTER = """\
@@ -72,7 +72,7 @@ def _progress(quiet: bool):  # type: ignore[no-untyped-def]
 
 
 def _cmd_run(args: argparse.Namespace) -> int:
-    from .runner import run_spec
+    from .runs.writer import run_spec
 
     run_dir = run_spec(args.spec, args.out, _progress(args.quiet), engine=args.engine,
                        scheduler=args.scheduler)
@@ -91,8 +91,8 @@ def _cmd_run(args: argparse.Namespace) -> int:
 
 
 def _cmd_check(args: argparse.Namespace) -> int:
-    from .data import load_dataset
-    from .spec import load_spec
+    from .inputs.checks import load_dataset
+    from .inputs.spec import load_spec
 
     spec = load_spec(args.spec)
     ds = load_dataset(spec)
@@ -124,7 +124,7 @@ def _summary(command: str, problems: list[str], ok_text: str) -> int:
 
 
 def _cmd_verify(args: argparse.Namespace) -> int:
-    from .verify import verify_run
+    from .runs.verify import verify_run
 
     result = verify_run(args.run_dir, args.inputs, args.render, args.strict,
                         _progress(args.quiet))
@@ -141,8 +141,8 @@ def _cmd_verify(args: argparse.Namespace) -> int:
 
 def _compare(run_a: Path, run_b: Path) -> int:
     """Print what changed from run A to run B under B's gates; 1 when a gate is crossed."""
-    from .record import compare_runs
-    from .spec import DEFAULT_GATES, spec_from_bytes
+    from .inputs.spec import DEFAULT_GATES, spec_from_bytes
+    from .runs.record import compare_runs
 
     spec_file = run_b / "spec.yaml"
     gates = (spec_from_bytes(spec_file.read_bytes(), spec_file).gates if spec_file.is_file()
@@ -170,8 +170,8 @@ NUMBER_LINES = """\
 
 def _cmd_init(args: argparse.Namespace) -> int:
     from .errors import DataError
-    from .readers import detect_format, parse_table
-    from .starter import column_listing, guess_columns
+    from .inputs.readers import detect_format, parse_table
+    from .inputs.starter import column_listing, guess_columns
 
     data = Path(args.data)
     if not data.is_file():
@@ -212,7 +212,7 @@ def _cmd_init(args: argparse.Namespace) -> int:
 
 
 def _cmd_predict(args: argparse.Namespace) -> int:
-    from .predict import load_fit, summary, write_table
+    from .runs.stored_fit import load_fit, summary, write_table
 
     fit = load_fit(args.run_dir)
     frame = fit.predict_file(args.data)
@@ -226,14 +226,14 @@ def _cmd_predict(args: argparse.Namespace) -> int:
 
 
 def _cmd_schema(args: argparse.Namespace) -> int:
-    from .validation import spec_schema
+    from .inputs.schema import spec_schema
 
     print(json.dumps(spec_schema(), indent=2))
     return 0
 
 
 def _cmd_demo(args: argparse.Namespace) -> int:
-    from .runner import run_spec
+    from .runs.writer import run_spec
 
     spec = Path(__file__).resolve().parent.parent / "specs" / "clinic_visits.yaml"
     if not spec.is_file():
@@ -313,7 +313,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     args = parser.parse_args(argv)
     try:
         if args.command in NUMERIC_COMMANDS:
-            from .threads import one_blas_thread
+            from ._threads import one_blas_thread
 
             with one_blas_thread():
                 code = int(args.func(args))

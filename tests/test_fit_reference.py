@@ -272,7 +272,7 @@ def test_selection_sentences_appear_exactly_when_true(yao_fit) -> None:  # type:
     # The disagreement sentence quotes each rule's pick; each must equal the argmin of its
     # criterion in the selection table (or the FVE rule's pick), and the sentence must be
     # absent when all picks agree. The threshold sentence appears only within 0.01.
-    from reportgen.analysis import _selection_caveats
+    from reportgen.analysis.analyse import _selection_caveats
 
     fit = yao_fit
     sel = fit.selection

@@ -123,7 +123,7 @@ def test_gathered_subjects_are_their_readings(in_process: tuple) -> None:
                 ids=["threads-1-worker", "threads-3-workers", "processes-2-workers"])
 def on_dask(request: pytest.FixtureRequest) -> Iterator[object]:
     distributed = pytest.importorskip("distributed")
-    from reportgen.engine import OnDask
+    from reportgen.analysis.engine import OnDask
 
     processes, workers = request.param
     with distributed.LocalCluster(n_workers=workers, threads_per_worker=1,

@@ -7,10 +7,8 @@ import reportgen
 
 def test_all_is_sorted_and_complete() -> None:
     public = {n for n in dir(reportgen) if not n.startswith("_")} - {
-        "api", "errors", "fpca", "validation", "cli", "spec", "data", "analysis", "record",
-        "figures", "render", "runner", "checks", "tables", "verify", "integrity", "syscheck",
-        "threads", "worker", "readers", "predict", "starter", "style", "sandbox", "styles",
-        "manifest", "engine", "folder", "subject_parts",
+        "api", "errors", "fpca", "cli", "inputs", "analysis", "report", "runs", "syscheck",
+        "styles",
     }
     assert sorted(reportgen.__all__) == reportgen.__all__
     assert set(reportgen.__all__) - {"__version__"} == public

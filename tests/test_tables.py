@@ -13,8 +13,8 @@ import pandas as pd
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from reportgen import tables
-from reportgen.tables import FLOAT_FORMAT, to_csv_bytes
+from reportgen.report import tables
+from reportgen.report.tables import FLOAT_FORMAT, to_csv_bytes
 
 ROOT = Path(__file__).resolve().parents[1]
 

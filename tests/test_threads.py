@@ -56,7 +56,7 @@ def test_results_do_not_depend_on_the_callers_thread_count() -> None:
 def test_numeric_commands_pin_the_whole_command(monkeypatch: pytest.MonkeyPatch,
                                                  tmp_path: Any) -> None:
     # `reportgen run` holds one BLAS thread around everything it computes, not only the fit.
-    import reportgen.runner
+    import reportgen.runs.writer
     from reportgen.cli import main
 
     seen: list[list[int]] = []
@@ -65,7 +65,7 @@ def test_numeric_commands_pin_the_whole_command(monkeypatch: pytest.MonkeyPatch,
         seen.append(_blas_threads())
         return tmp_path / "v001"
 
-    monkeypatch.setattr(reportgen.runner, "run_spec", fake_run)
+    monkeypatch.setattr(reportgen.runs.writer, "run_spec", fake_run)
     with threadpool_limits(limits=2, user_api="blas"):
         assert main(["run", "spec.yaml", "--quiet"]) == 0
     assert seen == [[1] * len(seen[0])] and seen[0]

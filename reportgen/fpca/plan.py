@@ -9,7 +9,7 @@ passes, in which order they finished, or on how many workers there were (a diffe
 order of addition changes the last bits of a sum).
 
 An :class:`Executor` runs the passes: :class:`InProcess` here, one part after another;
-the Dask engine (``reportgen.engine``) on a cluster. A data set that is one part gives
+the Dask engine (``reportgen.analysis.engine``) on a cluster. A data set that is one part gives
 exactly the sums of the whole sample (the tree of one part is that part).
 
 Passes of a fit: (0) ``summary`` (subject codes and reading counts, time and value

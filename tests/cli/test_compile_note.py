@@ -9,12 +9,12 @@ import numpy as np
 import pandas as pd
 import pytest
 
-import reportgen.analysis
+import reportgen.analysis.analyse
 from reportgen import fit_sparse_fpca
-from reportgen.analysis import analyse
-from reportgen.data import load_dataset
+from reportgen.analysis.analyse import analyse
 from reportgen.fpca._kernels import compiled_on_disk
-from reportgen.spec import load_spec
+from reportgen.inputs.checks import load_dataset
+from reportgen.inputs.spec import load_spec
 
 from .conftest import ROOT
 
@@ -36,7 +36,7 @@ def test_compile_note_only_when_the_cache_is_cold(warm: bool, tmp_path: Path,
                                                   monkeypatch: pytest.MonkeyPatch) -> None:
     for name in ("clinic_visits.yaml", "clinic_visits.csv"):
         shutil.copy(ROOT / "specs" / name, tmp_path / name)
-    monkeypatch.setattr(reportgen.analysis, "compiled_on_disk", lambda: warm)
+    monkeypatch.setattr(reportgen.analysis.analyse, "compiled_on_disk", lambda: warm)
     said: list[str] = []
     spec = load_spec(tmp_path / "clinic_visits.yaml")
     analyse(spec, load_dataset(spec), said.append)

@@ -58,7 +58,7 @@ def test_an_example_on_a_cluster_is_the_local_run(example: str, named_by: str,
 
 
 def test_workers_of_other_versions_are_refused() -> None:
-    from reportgen.engine import check_versions, versions
+    from reportgen.analysis.engine import check_versions, versions
 
     here = versions()
     check_versions({"tcp://a:1": dict(here)}, here)  # the same: accepted
@@ -70,8 +70,8 @@ def test_workers_of_other_versions_are_refused() -> None:
 def test_a_scheduler_without_workers_is_an_error(tmp_path: Path,
                                                  monkeypatch: pytest.MonkeyPatch) -> None:
     distributed = pytest.importorskip("distributed")
-    from reportgen import engine
-    from reportgen.runner import run_spec
+    from reportgen.analysis import engine
+    from reportgen.runs.writer import run_spec
 
     monkeypatch.setattr(engine, "WAIT_FOR_WORKERS", 1.0)
     with distributed.LocalCluster(n_workers=0, processes=False,
@@ -85,7 +85,7 @@ def test_a_scheduler_without_workers_is_an_error(tmp_path: Path,
 def test_a_cluster_that_fails_during_the_run_is_an_error(scheduler: str) -> None:
     from distributed.comm.core import CommClosedError
 
-    from reportgen.engine import open_engine
+    from reportgen.analysis.engine import open_engine
 
     with pytest.raises(EngineError, match="the Dask cluster failed during the run"), \
             open_engine("dask", scheduler):

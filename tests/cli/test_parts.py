@@ -20,8 +20,8 @@ import pytest
 import yaml
 
 from reportgen.errors import DataError
-from reportgen.manifest import Part, current_digest, digest
-from reportgen.runner import run_spec
+from reportgen.inputs.files import Part, current_digest, digest
+from reportgen.runs.writer import run_spec
 
 from .conftest import ROOT, cli, pump_folder
 
@@ -210,8 +210,8 @@ def test_a_glob_names_the_same_files_as_the_folder(tmp_path: Path) -> None:
 
 def test_missing_ids_are_not_a_split_subject(tmp_path: Path) -> None:
     # rows without an id are the missing-values check's matter, in whichever files they are
-    from reportgen.data import load_dataset
-    from reportgen.spec import load_spec
+    from reportgen.inputs.checks import load_dataset
+    from reportgen.inputs.spec import load_spec
 
     _split(tmp_path / "readings")
     for name in ("part-0.parquet", "part-2.parquet"):
@@ -245,8 +245,8 @@ def _ordered(frame: pd.DataFrame) -> pd.DataFrame:
 
 def _held_readings(spec: Path) -> pd.DataFrame:
     """The readings of a folder as the fit's parts hold them, with their subjects' ids."""
-    from reportgen.data import load_dataset
-    from reportgen.spec import load_spec
+    from reportgen.inputs.checks import load_dataset
+    from reportgen.inputs.spec import load_spec
 
     held = load_dataset(load_spec(spec), for_fit=True).held
     assert held is not None
@@ -256,8 +256,8 @@ def _held_readings(spec: Path) -> pd.DataFrame:
 
 
 def _checks_of(spec: Path) -> tuple[dict[str, tuple[str, str]], pd.DataFrame]:
-    from reportgen.data import load_dataset
-    from reportgen.spec import load_spec
+    from reportgen.inputs.checks import load_dataset
+    from reportgen.inputs.spec import load_spec
 
     ds = load_dataset(load_spec(spec))
     return {c.name: (c.status, c.detail) for c in ds.checks}, ds.frame
@@ -355,9 +355,9 @@ def test_reading_many_files_brings_back_nothing_per_reading(tmp_path: Path) -> N
     # Twice the readings per subject (each one again at 0.999 of its time), the same
     # subjects: what the reading passes bring back (pickled, as a cluster sends it to its
     # client) stays the same size.
-    from reportgen.data import load_dataset
     from reportgen.fpca.executor import InProcess
-    from reportgen.spec import load_spec
+    from reportgen.inputs.checks import load_dataset
+    from reportgen.inputs.spec import load_spec
 
     class Counting(InProcess):
         def __init__(self) -> None:
@@ -423,7 +423,7 @@ def test_a_file_a_task_cannot_find_is_named_with_the_likely_cause(tmp_path: Path
                                                                   ) -> None:
     # Listed by the reportgen process, gone where the task runs (as on a worker that does
     # not mount the data): the error names the file and says what workers need.
-    from reportgen import folder
+    from reportgen.inputs import folder
 
     _split(tmp_path / "readings")
     listed = folder.list_files
@@ -459,7 +459,7 @@ def test_the_union_of_the_files_ids_is_pandas_factorize() -> None:
     # the union replaced): the same codes and the same sorted ids, of the same dtype.
     import pandas as pd
 
-    from reportgen.folder import _sorted_union
+    from reportgen.inputs.folder import _sorted_union
 
     rng = np.random.default_rng(4)
     words = np.array(["b", "a", "ä", "Z", "a1", "a10", "a2", "ß", "b ", "€x", "10", "9"])

@@ -17,12 +17,12 @@ import pytest
 
 from reportgen.api import fit_sparse_fpca
 from reportgen.cli import main
-from reportgen.data import load_dataset
 from reportgen.errors import DataError, EstimationError, SpecError
 from reportgen.fpca import fit_arrays
 from reportgen.fpca.frame import arrays_from_frame
-from reportgen.readers import parse_table, sniff_delimiter
-from reportgen.spec import load_spec
+from reportgen.inputs.checks import load_dataset
+from reportgen.inputs.readers import parse_table, sniff_delimiter
+from reportgen.inputs.spec import load_spec
 
 LABELS = {"Weight": "Live weight", "Time": "Week on trial", "Pig": "Pig number"}
 
@@ -90,7 +90,7 @@ def test_a_stata_file_written_by_stata(tmp_path: Path) -> None:
 
 def test_a_run_from_sas_transport_equals_the_run_from_csv(dietox: pd.DataFrame,
                                                           tmp_path: Path) -> None:
-    from reportgen.analysis import analyse
+    from reportgen.analysis.analyse import analyse
 
     _statistical_files(dietox, tmp_path)
     dietox.to_csv(tmp_path / "dietox.csv", index=False)

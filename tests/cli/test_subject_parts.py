@@ -21,9 +21,9 @@ import pandas as pd
 import pyarrow.parquet as pq
 import pytest
 
-from reportgen.runner import run_spec
-from reportgen.subject_parts import csv_of_part, parquet_bytes
-from reportgen.tables import to_csv_bytes
+from reportgen.report.subject_parts import csv_of_part, parquet_bytes
+from reportgen.report.tables import to_csv_bytes
+from reportgen.runs.writer import run_spec
 
 from .conftest import ROOT, cli, pump_folder
 
@@ -200,7 +200,7 @@ def test_every_trajectory_needs_the_plugin_band(tmp_path: Path) -> None:
 def test_the_parts_go_in_batches_of_bounded_rows() -> None:
     """Consecutive parts, every part once, at least two a batch, and no more rows than
     BATCH_ROWS beyond the first two (common practice, no source)."""
-    from reportgen.subject_parts import BATCH_ROWS, _batches
+    from reportgen.report.subject_parts import BATCH_ROWS, _batches
 
     sizes = [31_000] * 5 + [400_000, 10, 10, 10]
     batches = _batches(sizes, 53)

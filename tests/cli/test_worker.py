@@ -7,11 +7,11 @@ from pathlib import Path
 import pandas as pd
 import pytest
 
-import reportgen.runner
-import reportgen.worker
-from reportgen.runner import run_spec
-from reportgen.tables import canonical_bytes
-from reportgen.worker import RenderWorker
+import reportgen.report.render_process
+import reportgen.runs.writer
+from reportgen.report.render_process import RenderWorker
+from reportgen.report.tables import canonical_bytes
+from reportgen.runs.writer import run_spec
 
 
 def _files(run: Path) -> dict[str, bytes]:
@@ -22,10 +22,10 @@ def _files(run: Path) -> dict[str, bytes]:
 def test_worker_alone_and_dead_worker_write_the_same_bytes(
         study: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
     # the example's per-subject tables count as large: the worker writes them
-    monkeypatch.setattr(reportgen.worker, "LARGE_TABLE_ROWS", 10)
+    monkeypatch.setattr(reportgen.report.render_process, "LARGE_TABLE_ROWS", 10)
     with_worker = _files(run_spec(study, tmp_path / "a"))
 
-    monkeypatch.setattr(reportgen.runner, "RenderWorker", lambda: RenderWorker(start=False))
+    monkeypatch.setattr(reportgen.runs.writer, "RenderWorker", lambda: RenderWorker(start=False))
     alone = _files(run_spec(study, tmp_path / "b"))
 
     def dying() -> RenderWorker:
@@ -34,7 +34,7 @@ def test_worker_alone_and_dead_worker_write_the_same_bytes(
         worker._proc.kill()  # gone before its first task: every task falls back
         return worker
 
-    monkeypatch.setattr(reportgen.runner, "RenderWorker", dying)
+    monkeypatch.setattr(reportgen.runs.writer, "RenderWorker", dying)
     dead = _files(run_spec(study, tmp_path / "c"))
     assert "report.pdf" in with_worker and len(with_worker) > 20
     assert with_worker == alone == dead

@@ -5,7 +5,7 @@ from pathlib import Path
 
 import pytest
 
-from reportgen.runner import run_spec
+from reportgen.runs.writer import run_spec
 
 ROOT = Path(__file__).resolve().parents[2]
 EXAMPLES = ("clinic_visits", "pump_service")
@@ -41,12 +41,12 @@ def styled(regenerated: dict[str, Path]) -> dict[tuple[str, str], tuple[bytes, b
     running header, a footer and a numbering prefix; analysed and drawn once per example."""
     from dataclasses import replace
 
-    from reportgen.analysis import analyse
-    from reportgen.data import load_dataset
-    from reportgen.figures import make_figures
-    from reportgen.render import render_html, render_pdf
-    from reportgen.spec import load_spec
-    from reportgen.style import load_style
+    from reportgen.analysis.analyse import analyse
+    from reportgen.inputs.checks import load_dataset
+    from reportgen.inputs.spec import load_spec
+    from reportgen.report.figures import make_figures
+    from reportgen.report.render import render_html, render_pdf
+    from reportgen.report.styles import load_style
 
     out = {}
     for name in EXAMPLES:

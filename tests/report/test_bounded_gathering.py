@@ -15,13 +15,13 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from reportgen import analysis
-from reportgen.analysis import analyse
-from reportgen.data import load_dataset
+from reportgen.analysis import analyse as analysis
+from reportgen.analysis.analyse import analyse
 from reportgen.fpca import fit as fit_module
 from reportgen.fpca.plan import InProcess
-from reportgen.spec import load_spec
-from reportgen.subject_parts import write_subject_parts
+from reportgen.inputs.checks import load_dataset
+from reportgen.inputs.spec import load_spec
+from reportgen.report.subject_parts import write_subject_parts
 
 from ..counting import numbers_in
 from ..designs import yao_design
@@ -96,8 +96,8 @@ def test_the_report_says_where_it_uses_the_sample(tmp_path: Path, capped: None) 
     # come from the sample, and each says so; the count of flagged subjects is of all.
     from dataclasses import asdict
 
-    from reportgen.figures import make_figures
-    from reportgen.render import build_sections
+    from reportgen.report.figures import make_figures
+    from reportgen.report.render import build_sections
 
     _, result = _run(tmp_path, N_SUBJECTS)
     words = f"a seeded sample of {CAP} of the {N_SUBJECTS:,} subjects"

@@ -13,8 +13,8 @@ from pathlib import Path
 import pandas as pd
 import pytest
 
-from reportgen.render import NAMED_FLAGGED
-from reportgen.runner import run_spec
+from reportgen.report.render import NAMED_FLAGGED
+from reportgen.runs.writer import run_spec
 
 CASES = {
     # name: (package, dataset, subject, time, value, time unit, value unit, extra spec)

@@ -10,8 +10,8 @@ from pathlib import Path
 import pypdf
 import pytest
 
-from reportgen.runner import build_outputs
-from reportgen.spec import load_spec
+from reportgen.inputs.spec import load_spec
+from reportgen.runs.writer import build_outputs
 
 from .conftest import ROOT
 

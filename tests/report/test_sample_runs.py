@@ -11,7 +11,7 @@ from pathlib import Path
 
 import pytest
 
-from reportgen.verify import environment_diff, tables_match
+from reportgen.runs.verify import environment_diff, tables_match
 
 from .conftest import ROOT
 

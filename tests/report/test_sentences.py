@@ -14,9 +14,9 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from reportgen.analysis import AnalysisResult, analyse
-from reportgen.data import load_dataset
-from reportgen.spec import load_spec
+from reportgen.analysis.analyse import AnalysisResult, analyse
+from reportgen.inputs.checks import load_dataset
+from reportgen.inputs.spec import load_spec
 
 ROOT = Path(__file__).resolve().parents[2]
 
@@ -126,7 +126,7 @@ def test_spread_trend_is_spearmans_rho() -> None:
     # Reference: scipy.stats.spearmanr (general-purpose library), on values with ties.
     from scipy.stats import spearmanr
 
-    from reportgen.analysis import spread_trend
+    from reportgen.analysis.analyse import spread_trend
 
     rng = np.random.default_rng(9)
     fitted = rng.integers(0, 20, 300).astype(float)
@@ -144,8 +144,8 @@ def test_flagged_subjects_named_up_to_the_cap(base: AnalysisResult) -> None:
     # passes over the kept scores; the reference is numpy on every subject's scores.
     from dataclasses import asdict, replace
 
-    from reportgen.analysis import subject_view
-    from reportgen.render import NAMED_FLAGGED, build_sections
+    from reportgen.analysis.analyse import subject_view
+    from reportgen.report.render import NAMED_FLAGGED, build_sections
 
     fit = base.fit
     view = subject_view(fit, base.residual_sums, 0.5, base.subjects_view.sampled,
@@ -170,8 +170,8 @@ def test_residual_diagnostics_over_a_sample_say_so(base: AnalysisResult, tmp_pat
     # sample's readings (reference: scipy.stats.spearmanr). At or below it, every subject.
     from scipy.stats import spearmanr
 
-    from reportgen import analysis
-    from reportgen.render import _over_sample
+    from reportgen.analysis import analyse as analysis
+    from reportgen.report.render import _over_sample
 
     assert base.readings.n_sampled == base.fit.n_subjects and _over_sample(base) == ""
     monkeypatch.setattr(analysis, "DIAGNOSTIC_MAX_SUBJECTS", 40)
@@ -186,7 +186,7 @@ def test_residual_diagnostics_over_a_sample_say_so(base: AnalysisResult, tmp_pat
     assert _over_sample(res) == (f"; over the {len(sampled):,} readings of a seeded sample "
                                  f"of 40 of the {n:,} subjects")
     # the per-subject table covers every subject, as does the summary's sample here
-    from reportgen.tables import subject_tables
+    from reportgen.report.tables import subject_tables
 
     table = subject_tables(res)["residuals_by_subject"]
     assert len(table) == n and res.subjects_view.sample_words() == ""

@@ -17,10 +17,10 @@ from pathlib import Path
 
 import pytest
 
-from reportgen import sandbox
 from reportgen.cli import main
 from reportgen.errors import SpecError
-from reportgen.spec import load_spec
+from reportgen.inputs.spec import load_spec
+from reportgen.report import sandbox
 
 from .conftest import EXAMPLES, ROOT, STYLES
 

@@ -14,8 +14,8 @@ from pathlib import Path
 
 import pytest
 
-from reportgen import runner
 from reportgen.cli import main
+from reportgen.runs import writer as runner
 
 ROOT = Path(__file__).resolve().parents[2]
 

@@ -11,9 +11,9 @@ from pathlib import Path
 import pytest
 
 from reportgen.cli import main
-from reportgen.render import render_pdf
-from reportgen.runner import build_outputs
-from reportgen.spec import load_spec
+from reportgen.inputs.spec import load_spec
+from reportgen.report.render import render_pdf
+from reportgen.runs.writer import build_outputs
 
 ROOT = Path(__file__).resolve().parents[2]
 SPEC = (ROOT / "specs" / "clinic_visits.yaml").read_text()

@@ -12,8 +12,9 @@ from pathlib import Path
 import pytest
 
 from reportgen.cli import main
-from reportgen.integrity import checksum_list, parse_checksum_list, sha256_file
-from reportgen.runner import run_spec
+from reportgen.inputs.files import sha256_file
+from reportgen.runs.integrity import checksum_list, parse_checksum_list
+from reportgen.runs.writer import run_spec
 
 ROOT = Path(__file__).resolve().parents[2]
 

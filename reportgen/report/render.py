@@ -17,12 +17,12 @@ import numpy as np
 # NAMED_FLAGGED: flagged subjects named in the text, farthest first; a large study flags
 # thousands (6558 of 10^6 at the 0.99 quantile: 25 PDF pages of ids), and the table holds
 # them all.
-from .analysis import NAMED_FLAGGED, STANDARD_CAUTIONS, AnalysisResult, rule_choice
-from .errors import TemplateError
-from .fpca import BandwidthChoice
+from ..analysis.analyse import NAMED_FLAGGED, STANDARD_CAUTIONS, AnalysisResult, rule_choice
+from ..errors import TemplateError
+from ..fpca import BandwidthChoice
 
 if TYPE_CHECKING:
-    from .style import Style
+    from .styles import Style
 
 
 @dataclass

@@ -18,10 +18,21 @@ import hashlib
 from dataclasses import dataclass
 from pathlib import Path
 
-from .errors import DataError
-from .integrity import sha256_file
+from ..errors import DataError
 
 HEADER = "reportgen-manifest-v1\n"
+
+
+def sha256_bytes(data: bytes) -> str:
+    return hashlib.sha256(data).hexdigest()
+
+
+def sha256_file(path: Path) -> str:
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for chunk in iter(lambda: fh.read(1 << 20), b""):
+            h.update(chunk)
+    return h.hexdigest()
 
 
 @dataclass(frozen=True)

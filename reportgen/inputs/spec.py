@@ -10,9 +10,9 @@ from typing import Any
 
 import yaml
 
-from .errors import SpecError
-from .fpca.options import FPCAOptions
-from .validation import make_options, spec_schema, validate
+from ..errors import SpecError
+from ..fpca.options import FPCAOptions
+from .schema import make_options, spec_schema, validate
 
 MAX_SPEC_BYTES = 1_000_000
 REQUIRED_SECTIONS = ("caveats", "reproducibility")

@@ -24,12 +24,12 @@ from dataclasses import replace
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, BinaryIO
 
-from .threads import one_blas_thread
+from .._threads import one_blas_thread
 
 if TYPE_CHECKING:
     import pandas as pd
 
-    from .analysis import AnalysisResult
+    from ..analysis.analyse import AnalysisResult
 
 # Figures that need the fit's summaries only (not the readings or per-subject results),
 # drawn by the worker from a slim copy of the analysis. The worker is ready about 2 s after
@@ -64,7 +64,7 @@ def summary_view(result: AnalysisResult) -> AnalysisResult:
     need, at a size that does not grow with the data, and nothing of the engine's)."""
     import numpy as np
 
-    from .fpca.plan import Kept
+    from ..fpca.plan import Kept
 
     ds = result.dataset
     runs = tuple(replace(r, fit=r.fit.without_subjects()) if r.fit is not None else r
@@ -92,9 +92,9 @@ _TASKS: dict[str, Callable[..., Any]] = {"draw": _draw, "pdf": _pdf, "csv": _csv
 def serve(inbox: BinaryIO | None = None, outbox: BinaryIO | None = None) -> None:
     """The worker's loop: unpickle (task, args) from stdin, pickle ("ok", result) or
     ("error", text) to stdout, until stdin closes. Started by :class:`RenderWorker` as
-    ``python -c "from reportgen.worker import serve; serve()"``: a fresh interpreter that
-    imports nothing of the caller's (unlike multiprocessing's spawn, which re-runs the
-    caller's main script when it has no ``if __name__ == "__main__"`` guard)."""
+    ``python -c "from reportgen.report.render_process import serve; serve()"``: a fresh
+    interpreter that imports nothing of the caller's (unlike multiprocessing's spawn, which
+    re-runs the caller's main script when it has no ``if __name__ == "__main__"`` guard)."""
     inbox = inbox or sys.stdin.buffer
     outbox = outbox or sys.stdout.buffer
     sys.stdout = sys.stderr  # the pipe carries results only
@@ -111,6 +111,9 @@ def serve(inbox: BinaryIO | None = None, outbox: BinaryIO | None = None) -> None
                 reply = ("error", f"{type(e).__name__}: {e}")
             pickle.dump(reply, outbox, protocol=pickle.HIGHEST_PROTOCOL)
             outbox.flush()
+
+
+SERVE = "from reportgen.report.render_process import serve; serve()"
 
 
 class _Pending:
@@ -146,12 +149,12 @@ class RenderWorker:
         self._gone = False  # the worker died or was ended
         if not start:  # every task then runs in the calling process
             return
-        root = str(Path(__file__).resolve().parents[1])
+        root = str(Path(__file__).resolve().parents[2])
         env = dict(os.environ)
         env["PYTHONPATH"] = os.pathsep.join(p for p in (root, env.get("PYTHONPATH")) if p)
         try:
             self._proc = subprocess.Popen(
-                [sys.executable, "-c", "from reportgen.worker import serve; serve()"],
+                [sys.executable, "-c", SERVE],
                 stdin=subprocess.PIPE, stdout=subprocess.PIPE, stderr=subprocess.DEVNULL,
                 env=env)
         except OSError:

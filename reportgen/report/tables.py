@@ -12,11 +12,11 @@ from dataclasses import replace
 import numpy as np
 import pandas as pd
 
-from .analysis import AnalysisResult, rule_choice
-from .fpca.diagnostics import distances, residual_summary
-from .fpca.fit import FPCAFit, Labels, rows_of
-from .fpca.plan import Kept
-from .spec import Spec
+from ..analysis.analyse import AnalysisResult, rule_choice
+from ..fpca.diagnostics import distances, residual_summary
+from ..fpca.fit import FPCAFit, Labels, rows_of
+from ..fpca.plan import Kept
+from ..inputs.spec import Spec
 
 FLOAT_FORMAT = "%.10g"
 

@@ -26,15 +26,15 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from .errors import ReportgenError
-from .integrity import check_integrity, sha256_bytes, sha256_file
-from .manifest import current_sha256
+from ..errors import ReportgenError
+from ..inputs.files import current_sha256, sha256_bytes, sha256_file
+from ..inputs.spec import spec_from_bytes
+from ..report.render import render_pdf
+from ..report.subject_parts import MANIFEST, csv_of_part, read_manifest
+from ..report.tables import subject_table_names
+from .integrity import check_integrity
 from .record import environment, load_record
-from .render import render_pdf
-from .runner import Built, build_outputs
-from .spec import spec_from_bytes
-from .subject_parts import MANIFEST, csv_of_part, read_manifest
-from .tables import subject_table_names
+from .writer import Built, build_outputs
 
 Progress = Callable[[str], None]
 RTOL = 1e-6  # relative tolerance for numbers re-computed on another machine

@@ -28,14 +28,14 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 import pandas as pd
 
-from .errors import DataError
-from .manifest import Part, is_many
+from ..errors import DataError
+from .files import Part, is_many
 from .readers import Table, detect_format, is_date_column, looks_like_dates, parse_table, plain
 from .spec import Spec
 
 if TYPE_CHECKING:
-    from .fpca.executor import Executor
-    from .fpca.feasibility import DesignCounts
+    from ..fpca.executor import Executor
+    from ..fpca.feasibility import DesignCounts
 
 SCALE_DAYS = {"hours": 1 / 24, "days": 1.0, "weeks": 7.0, "months": 365.25 / 12,
               "years": 365.25}
@@ -444,7 +444,7 @@ class DesignSums:
 def design_sums(subject: np.ndarray, t: np.ndarray, observed: tuple[float, float],
                 domain: tuple[float, float], spec: Spec, fit: bool) -> DesignSums:
     """The counts of these readings (``subject``: codes 0 .. m - 1)."""
-    from .fpca.feasibility import count_design
+    from ..fpca.feasibility import count_design
 
     cells = 10
     lo, hi = observed
@@ -459,7 +459,7 @@ def design_sums(subject: np.ndarray, t: np.ndarray, observed: tuple[float, float
 
 
 def add_design_sums(a: DesignSums, b: DesignSums) -> DesignSums:
-    from .fpca.feasibility import add_design
+    from ..fpca.feasibility import add_design
 
     return DesignSums(a.cells + b.cells, add_design(a.fit, b.fit)
                       if a.fit is not None and b.fit is not None else None)
@@ -473,7 +473,7 @@ def design_checks(spec: Spec, n_obs: np.ndarray, t_range: tuple[float, float],
     their time range, whether every value is the same, and ``sums`` (observed range,
     domain, with the feasibility counts) that counts them; ``failed``: an earlier check
     failed (the feasibility test is then left out)."""
-    from .fpca.feasibility import problems_from
+    from ..fpca.feasibility import problems_from
 
     c, out = spec.checks, []
     n_subj = int(n_obs.size)

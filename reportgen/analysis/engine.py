@@ -19,9 +19,9 @@ from contextlib import contextmanager
 from dataclasses import dataclass
 from typing import Any, TypeVar
 
-from . import __version__
-from .errors import EngineError
-from .fpca.plan import Executor, InProcess, Part, warm_up
+from .._version import __version__
+from ..errors import EngineError
+from ..fpca.plan import Executor, InProcess, Part, warm_up
 
 T = TypeVar("T")
 ENGINES = ("local", "dask")

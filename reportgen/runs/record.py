@@ -13,15 +13,15 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 import pandas as pd
 
-from . import __version__
-from .errors import RecordError
-from .fpca.smoothing import trapezoid_weights
+from .._version import __version__
+from ..errors import RecordError
+from ..fpca.smoothing import trapezoid_weights
 
 if TYPE_CHECKING:
     from collections.abc import Sequence
 
-    from .analysis import AnalysisResult
-    from .style import InputFile
+    from ..analysis.analyse import AnalysisResult
+    from ..report.styles import InputFile
 
 RECORD_KEYS = ("tool", "run", "spec", "inputs", "environment", "results_sha256", "outputs")
 DEPENDENCIES = ("numpy", "scipy", "pandas", "pyarrow", "matplotlib", "jinja2", "weasyprint",
@@ -84,7 +84,7 @@ def build_record(result: AnalysisResult, version: int, started: str, finished: s
     """record.json's content. ``inputs`` lists the data file, then the files the spec's
     report section names (template, style sheet, logo), each with its role. Data given as
     many files carry their manifest; the entry's sha256 is then the manifest's digest
-    (``manifest``). ``run.engine`` says where the fits' passes ran (``reportgen.engine``;
+    (``manifest``). ``run.engine`` says where the fits' passes ran (``reportgen.analysis.engine``;
     the results do not depend on it)."""
     spec, ds = result.spec, result.dataset
     return {
@@ -153,7 +153,7 @@ def _table(run_dir: Path, name: str, columns: list[str] | None = None) -> pd.Dat
     path = run_dir / "tables" / f"{name}.csv"
     if path.is_file():
         return pd.read_csv(path, dtype={"subject": str}, usecols=columns)
-    from .subject_parts import manifest_file, read_manifest
+    from ..report.subject_parts import manifest_file, read_manifest
 
     if (run_dir / manifest_file(name)).is_file():
         import pyarrow.parquet as pq
@@ -169,7 +169,7 @@ def _table(run_dir: Path, name: str, columns: list[str] | None = None) -> pd.Dat
 
 def _units(run_dir: Path) -> tuple[str, str]:
     """(time unit, value unit) from a run's spec.yaml; empty when not stated."""
-    from .spec import parse_spec_bytes
+    from ..inputs.spec import parse_spec_bytes
 
     path = run_dir / "spec.yaml"
     if not path.is_file():

@@ -16,14 +16,14 @@ from typing import Any
 
 import jsonschema
 
-from .errors import SpecError
-from .fpca.options import FPCAOptions
+from ..errors import SpecError
+from ..fpca.options import FPCAOptions
 
 
 @cache
 def spec_schema() -> dict[str, Any]:
     """The JSON Schema of a spec (shipped as ``reportgen/spec.schema.json``)."""
-    text = resources.files("reportgen").joinpath("spec.schema.json").read_text("utf-8")
+    text = resources.files("reportgen.inputs").joinpath("spec.schema.json").read_text("utf-8")
     schema: dict[str, Any] = json.loads(text)
     return schema
 

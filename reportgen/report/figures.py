@@ -20,8 +20,8 @@ import numpy as np
 from cycler import cycler
 from scipy.special import ndtri
 
-from .analysis import AnalysisResult
-from .fpca.diagnostics import axis, cell_counts
+from ..analysis.analyse import AnalysisResult
+from ..fpca.diagnostics import axis, cell_counts
 
 PALETTE = ("#1f5f8b", "#c0632b", "#3f8f4f", "#8a3f8f", "#7a7a2a", "#2a7a7a")
 STYLE = {

@@ -165,7 +165,7 @@ def render_in_child(sources: dict[str, str], entry: str, context: dict[str, Any]
     limit = TEMPLATE_SECONDS if seconds is None else seconds
     max_bytes = MAX_OUTPUT_BYTES if max_bytes is None else max_bytes
     payload = pickle.dumps((sources, entry, context, max_bytes), protocol=pickle.HIGHEST_PROTOCOL)
-    code = "from reportgen.sandbox import _child; _child()"
+    code = "from reportgen.report.sandbox import _child; _child()"
     try:
         done = subprocess.run([sys.executable, "-c", code], input=payload, capture_output=True,
                               timeout=limit, check=False)

@@ -12,9 +12,9 @@ import base64
 import hashlib
 from dataclasses import dataclass
 
-from .errors import SpecError
+from ..errors import SpecError
+from ..inputs.spec import Spec
 from .sandbox import STYLES, shipped_css
-from .spec import Spec
 
 MAX_TEMPLATE_BYTES = 256 * 1024
 MAX_STYLESHEET_BYTES = 256 * 1024

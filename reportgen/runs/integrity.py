@@ -8,25 +8,14 @@ newline; sorted by path. ``cd RUN && sha256sum -c SHA256SUMS`` checks it without
 
 from __future__ import annotations
 
-import hashlib
 import re
 from dataclasses import dataclass
 from pathlib import Path
 
+from ..inputs.files import sha256_file
+
 SUMS = "SHA256SUMS"
 _LINE = re.compile(r"^([0-9a-f]{64}) [ *](.+)$")
-
-
-def sha256_bytes(data: bytes) -> str:
-    return hashlib.sha256(data).hexdigest()
-
-
-def sha256_file(path: Path) -> str:
-    h = hashlib.sha256()
-    with open(path, "rb") as fh:
-        for chunk in iter(lambda: fh.read(1 << 20), b""):
-            h.update(chunk)
-    return h.hexdigest()
 
 
 def checksum_list(hashes: dict[str, str]) -> bytes:

@@ -13,25 +13,25 @@ import numpy as np
 import pandas as pd
 from scipy.special import chdtri
 
-from .data import Dataset
-from .errors import EstimationError
-from .fpca import FPCAFit, with_bandwidths
-from .fpca._kernels import compiled_on_disk
-from .fpca.components import choose
-from .fpca.design import Sample
-from .fpca.diagnostics import (
+from ..errors import EstimationError
+from ..fpca import FPCAFit, with_bandwidths
+from ..fpca._kernels import compiled_on_disk
+from ..fpca.components import choose
+from ..fpca.design import Sample
+from ..fpca.diagnostics import (
     check_readings,
     distances,
     part_farthest,
     part_largest_rms,
     residual_summary,
 )
-from .fpca.fit import Labels, fit_parts, rows_of, seeded_sample
-from .fpca.frame import arrays_from_frame
-from .fpca.groups import GroupComparison, compare_groups_on
-from .fpca.plan import Executor, InProcess, Kept, Partitioned, split_parts
-from .fpca.smoothing import trapezoid_weights
-from .spec import Spec
+from ..fpca.fit import Labels, fit_parts, rows_of, seeded_sample
+from ..fpca.frame import arrays_from_frame
+from ..fpca.groups import GroupComparison, compare_groups_on
+from ..fpca.plan import Executor, InProcess, Kept, Partitioned, split_parts
+from ..fpca.smoothing import trapezoid_weights
+from ..inputs.checks import Dataset
+from ..inputs.spec import Spec
 
 Progress = Callable[[str], None]
 
@@ -565,7 +565,7 @@ def analyse(spec: Spec, ds: Dataset, progress: Progress = lambda _: None,
 
     ``progress`` receives a message before each long step; ``lap`` the name of each step
     just finished (for timing). The fits' passes over the data run on ``executor`` (here,
-    by default; ``reportgen.engine``).
+    by default; ``reportgen.analysis.engine``).
     """
     if not compiled_on_disk():
         progress("compiling the numerical kernels (once, about half a minute on 2 cores; "

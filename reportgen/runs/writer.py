@@ -20,20 +20,20 @@ from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
 
-from . import __version__
-from .analysis import AnalysisResult, analyse
-from .data import Dataset, load_dataset, require_passed
-from .engine import Engine, local_engine, open_engine
-from .errors import DataError, OutputError
-from .integrity import SUMS, checksum_list, sha256_bytes
-from .manifest import current_sha256
+from .._version import __version__
+from ..analysis.analyse import AnalysisResult, analyse
+from ..analysis.engine import Engine, local_engine, open_engine
+from ..errors import DataError, OutputError
+from ..inputs.checks import Dataset, load_dataset, require_passed
+from ..inputs.files import current_sha256, sha256_bytes
+from ..inputs.spec import Spec, load_spec
+from ..report.render import render_html
+from ..report.render_process import RenderWorker
+from ..report.styles import InputFile, load_style
+from ..report.subject_parts import PartEntry, manifest_bytes, manifest_file, write_subject_parts
+from ..report.tables import build_tables, canonical_bytes, results_digest
+from .integrity import SUMS, checksum_list
 from .record import build_record, dump_record, environment
-from .render import render_html
-from .spec import Spec, load_spec
-from .style import InputFile, load_style
-from .subject_parts import PartEntry, manifest_bytes, manifest_file, write_subject_parts
-from .tables import build_tables, canonical_bytes, results_digest
-from .worker import RenderWorker
 
 Progress = Callable[[str], None]
 _VERSION = re.compile(r"^\.?v(\d{3,})(\.building)?$")
@@ -118,7 +118,7 @@ def build_outputs(spec: Spec, version: int, started: str,
         figures = worker.figures(result)
         tables = collect()
     else:
-        from .figures import make_figures
+        from ..report.figures import make_figures
 
         tables = canonical_bytes(frames)
         figures = make_figures(result)
@@ -196,7 +196,7 @@ def run_spec(spec_path: str | Path, out: str | Path, progress: Progress = lambda
 
     record.json lists the hash of every file except itself and report.pdf (the PDF carries
     record.json inside it); SHA256SUMS, written last, lists every other file of the run.
-    ``engine`` and ``scheduler`` choose where the fits' passes run (``reportgen.engine``).
+    ``engine`` and ``scheduler`` choose where the fits' passes run (``reportgen.analysis.engine``).
     """
     spec = load_spec(spec_path)
     with open_engine(engine, scheduler) as run_on:
@@ -216,7 +216,7 @@ def _run(spec: Spec, out: str | Path, progress: Progress, timer: Timer | None,
     worker = RenderWorker()  # loads the rendering libraries while this process fits
     # Load matplotlib here too, in a thread: the fit's compiled steps release the GIL, so
     # most of the import overlaps them (measured: 0.7 s of 1 s off the critical path).
-    threading.Thread(target=importlib.import_module, args=("reportgen.figures",),
+    threading.Thread(target=importlib.import_module, args=("reportgen.report.figures",),
                      daemon=True).start()
     try:
         final = folder / f"v{version:03d}"

@@ -16,13 +16,13 @@ from pathlib import Path
 
 import pandas as pd
 
-from .data import dataset_from_bytes, read_path, require_passed
-from .errors import DataError, EstimationError, OutputError, RecordError
-from .fpca.frame import arrays_from_frame
-from .fpca.predictor import Predictor
+from ..errors import DataError, EstimationError, OutputError, RecordError
+from ..fpca.frame import arrays_from_frame
+from ..fpca.predictor import Predictor
+from ..inputs.checks import dataset_from_bytes, read_path, require_passed
+from ..inputs.spec import Spec, spec_from_bytes
 from .integrity import check_integrity
 from .record import load_record
-from .spec import Spec, spec_from_bytes
 
 OUTPUT_SUFFIXES = (".csv", ".parquet")
 

@@ -31,10 +31,10 @@ import pandas as pd
 from .tables import subject_frames, subject_groups, subject_table_names, to_csv_bytes
 
 if TYPE_CHECKING:
-    from .analysis import AnalysisResult
-    from .fpca.executor import Executor
-    from .fpca.fit import FPCAFit
-    from .fpca.smoothing import FloatArray
+    from ..analysis.analyse import AnalysisResult
+    from ..fpca.executor import Executor
+    from ..fpca.fit import FPCAFit
+    from ..fpca.smoothing import FloatArray
 
 MANIFEST = "parts.json"
 COMPRESSION = "zstd"
@@ -136,7 +136,7 @@ def write_subject_parts(result: AnalysisResult, run: Path, executor: Executor | 
     built); returns each table's entries, in part order. The parts are formatted and
     hashed by tasks of ``executor`` (here by default), in batches of ``BATCH_ROWS`` output
     rows; this process writes the bytes."""
-    from .fpca.executor import InProcess
+    from ..fpca.executor import InProcess
 
     run_on = executor or InProcess()
     names = subject_table_names(result.spec)

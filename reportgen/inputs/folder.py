@@ -30,7 +30,9 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from .data import (
+from ..errors import DataError
+from ..fpca.executor import Executor, InProcess, tree_sum
+from .checks import (
     Check,
     Dataset,
     DesignSums,
@@ -47,10 +49,8 @@ from .data import (
     merged_steps,
     read_path,
 )
-from .errors import DataError
-from .fpca.executor import Executor, InProcess, tree_sum
-from .manifest import Part, list_files
-from .manifest import digest as manifest_digest
+from .files import Part, list_files
+from .files import digest as manifest_digest
 from .readers import parse_table, plain
 from .spec import Spec
 
@@ -176,8 +176,8 @@ def file_design_sums(read: FileRead, observed: tuple[float, float],
 def as_part(read: FileRead, subjects: np.ndarray) -> Any:
     """Pass (kept): a file's cleaned readings as the fit's part; ``subjects``: the codes of
     its subjects (in the order of their sorted ids) in the whole data set."""
-    from .fpca.design import Sample
-    from .fpca.plan import Part as FitPart
+    from ..fpca.design import Sample
+    from ..fpca.plan import Part as FitPart
 
     c = read.cleaned
     assert c is not None
