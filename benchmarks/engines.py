@@ -33,14 +33,15 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
 from benchmarks.run import machine, table  # noqa: E402
-from reportgen.analysis.analyse import DIAGNOSTIC_MAX_SUBJECTS  # noqa: E402
+from reportgen.analysis.views import DIAGNOSTIC_MAX_SUBJECTS  # noqa: E402
 from reportgen.fpca import FPCAOptions  # noqa: E402
-from reportgen.fpca.design import Sample  # noqa: E402
+from reportgen.fpca.design import Sample, seeded_sample  # noqa: E402
 from reportgen.fpca.diagnostics import check_readings  # noqa: E402
-from reportgen.fpca.fit import FPCAFit, fit_parts, seeded_sample  # noqa: E402
+from reportgen.fpca.fit import fit_parts  # noqa: E402
 from reportgen.fpca.groups import group_means  # noqa: E402
 from reportgen.fpca.plan import Executor, InProcess, Part, Partitioned, warm_up  # noqa: E402
-from reportgen.inputs.checks import load_dataset  # noqa: E402
+from reportgen.fpca.result import FPCAFit  # noqa: E402
+from reportgen.inputs.loader import load_dataset  # noqa: E402
 from reportgen.inputs.spec import load_spec  # noqa: E402
 
 
@@ -113,13 +114,13 @@ def _fit(executor: Executor, n: int, n_parts: int, spec: Path | None
     """The fit, then the report's passes after it: the diagnostics (as a run makes them:
     the seeded sample of 20,000 subjects and six shown ones) and the means of three groups
     (subject code modulo 3). With ``spec``, the parts are its Parquet files, read, checked
-    and cleaned where they are to live (``reportgen.inputs.folder``); otherwise simulated there."""
+    and cleaned where they are to live (``reportgen.inputs.loader``); otherwise simulated there."""
     timed = Timed(executor)
     start = time.perf_counter()
     if spec is not None:
         ds = load_dataset(load_spec(spec), timed, for_fit=True)
-        assert not ds.failed and ds.held is not None, ds.failed
-        parts: Sequence[Any] = ds.held.parts
+        assert not ds.failed and ds.readings is not None, ds.failed
+        parts: Sequence[Any] = ds.readings.parts
     else:
         parts = timed.keep(make_part, list(range(n_parts)), shared=(n, n_parts, 3))
     made = time.perf_counter() - start
@@ -128,7 +129,7 @@ def _fit(executor: Executor, n: int, n_parts: int, spec: Path | None
     fit = fit_parts(data, np.arange(n), FPCAOptions())
     chosen = np.union1d(seeded_sample(n, DIAGNOSTIC_MAX_SUBJECTS, fit.options.seed),
                         np.linspace(0, n - 1, 6).astype(np.intp))
-    checks = check_readings(data, fit.kept_scores, fit.predictor(), chosen)
+    checks = check_readings(data, fit.kept_scores, fit.predictor, chosen)
     means, ses = group_means(data, fit, (np.arange(n) % 3).astype(np.intp), 3)
     total = time.perf_counter() - start
     seconds = dict(timed.seconds)

@@ -91,7 +91,7 @@ def _cmd_run(args: argparse.Namespace) -> int:
 
 
 def _cmd_check(args: argparse.Namespace) -> int:
-    from .inputs.checks import load_dataset
+    from .inputs.loader import load_dataset
     from .inputs.spec import load_spec
 
     spec = load_spec(args.spec)
@@ -141,12 +141,12 @@ def _cmd_verify(args: argparse.Namespace) -> int:
 
 def _compare(run_a: Path, run_b: Path) -> int:
     """Print what changed from run A to run B under B's gates; 1 when a gate is crossed."""
-    from .inputs.spec import DEFAULT_GATES, spec_from_bytes
-    from .runs.record import compare_runs
+    from .inputs.spec import GatesSection, spec_from_bytes
+    from .runs.compare import compare_runs
 
     spec_file = run_b / "spec.yaml"
     gates = (spec_from_bytes(spec_file.read_bytes(), spec_file).gates if spec_file.is_file()
-             else DEFAULT_GATES)
+             else GatesSection())
     findings = compare_runs(run_a, run_b, gates)
     _print_rows(("item", "A", "B", "gate"),
                 [(f.item, f.a, f.b, "CROSSED" if f.crossed else "") for f in findings])
@@ -218,7 +218,7 @@ def _cmd_predict(args: argparse.Namespace) -> int:
     frame = fit.predict_file(args.data)
     path = write_table(frame, args.out)
     subjects, rows = summary(frame)
-    transform = fit.spec.data["transform"]
+    transform = fit.spec.data.transform
     scale = "" if transform == "none" else f", on the {transform} scale the run analysed"
     print(f"predictions written: {path} ({subjects} subjects, {rows} rows; scores and "
           f"trajectories with {fit.predictor.band_level:.0%} bands on the run's grid{scale})")

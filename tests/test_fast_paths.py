@@ -12,9 +12,10 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from reportgen.analysis.analyse import _by_readings_then_id, average_ranks, spread_trend
+from reportgen.analysis.analyse import _by_readings_then_id
+from reportgen.analysis.views import average_ranks, spread_trend
 from reportgen.fpca import FPCAOptions, fit_arrays
-from reportgen.inputs.checks import duplicate_mask
+from reportgen.inputs.cleaning import duplicate_mask
 
 # few subjects and few distinct times, so that ties are common; -0.0 beside 0.0
 ROWS = st.lists(st.tuples(st.integers(0, 4), st.sampled_from([0.0, -0.0, 1.5, 2.0, 7.25])),

@@ -19,8 +19,9 @@ import pytest
 from reportgen.errors import EstimationError
 from reportgen.fpca import FPCAOptions, fit_arrays
 from reportgen.fpca.design import Sample
-from reportgen.fpca.fit import FPCAFit, fit_parts
+from reportgen.fpca.fit import fit_parts
 from reportgen.fpca.plan import InProcess, Partitioned, split_parts, tree_sum
+from reportgen.fpca.result import FPCAFit
 from reportgen.fpca.smoothing import BinGrid
 
 from .counting import numbers_in
@@ -52,7 +53,7 @@ def _numbers(fit: FPCAFit) -> dict[str, np.ndarray]:
     sel = fit.selection
     out["criteria"] = np.concatenate([sel.aic, sel.bic, sel.cv, [sel.chosen]])
     for i, rep in enumerate(fit.replicates):
-        out[f"replicate {i}"] = np.concatenate([rep.mean, rep.eigenfunctions.ravel(),
+        out[f"replicate {i}"] = np.concatenate([rep.mean_value, rep.eigenfunctions.ravel(),
                                                 rep.eigenvalues, [rep.error_variance]])
     return out
 
@@ -247,7 +248,7 @@ def _checks_on(executor: object, parts: list, fit: FPCAFit, chosen: np.ndarray) 
     from reportgen.fpca.diagnostics import check_readings
 
     data = Partitioned.of(executor, executor.place(parts))  # type: ignore[attr-defined]
-    return check_readings(data, fit.kept_scores, fit.predictor(), chosen)
+    return check_readings(data, fit.kept_scores, fit.predictor, chosen)
 
 
 CHOSEN = np.array([0, 3, 4, 17, 250, 299])
@@ -307,7 +308,7 @@ def test_the_diagnostics_bring_back_no_more_with_more_readings() -> None:
                         replace(OPTIONS, band="plugin", component_rule="fixed", n_components=2))
         counting = _Counting()
         found = check_readings(Partitioned.of(counting, parts), fit.kept_scores,
-                               fit.predictor(), CHOSEN)
+                               fit.predictor, CHOSEN)
         kept = int(found.readings["time"].size)
         assert "part_checks" not in counting.returned  # kept, not brought back
         returned.append(counting.returned["_small"] - 5 * kept)

@@ -13,7 +13,8 @@ from .options import FPCAOptions
 if TYPE_CHECKING:
     from .bandwidth import BandwidthChoice
     from .components import ComponentSelection
-    from .fit import FPCAFit, fit_arrays, with_bandwidths
+    from .fit import fit_arrays, with_bandwidths
+    from .result import FPCAFit
 
 __all__ = [
     "BandwidthChoice",
@@ -25,7 +26,7 @@ __all__ = [
 ]
 
 _HOMES = {"BandwidthChoice": "bandwidth", "ComponentSelection": "components",
-          "FPCAFit": "fit", "fit_arrays": "fit", "with_bandwidths": "fit"}
+          "FPCAFit": "result", "fit_arrays": "fit", "with_bandwidths": "fit"}
 
 
 def __getattr__(name: str) -> Any:

@@ -18,7 +18,7 @@ from typing import Any
 import numpy as np
 from numba import njit
 
-from .smoothing import FloatArray
+from .arrays import FloatArray
 
 
 @njit(cache=True, nogil=True)

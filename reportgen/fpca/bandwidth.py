@@ -28,7 +28,7 @@ from typing import TYPE_CHECKING
 import numpy as np
 
 from ..errors import EstimationError
-from .smoothing import FloatArray
+from .arrays import FloatArray
 
 if TYPE_CHECKING:  # the binning (compiled kernels) is not needed to choose candidates
     from .design import BinnedStats

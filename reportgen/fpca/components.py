@@ -20,7 +20,8 @@ from numpy.typing import NDArray
 
 from ..errors import EstimationError
 from ._kernels import interpolate_columns
-from .smoothing import FloatArray, trapezoid_weights
+from .arrays import FloatArray
+from .smoothing import trapezoid_weights
 
 # Eigenvalues below this fraction of the largest are numerically zero (common practice,
 # no source): they are dropped with the negative ones.

@@ -11,12 +11,10 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from numpy.typing import NDArray
 
 from ._kernels import bin_pairs, bin_readings, order_within_subjects
-from .smoothing import BinGrid, FloatArray
-
-IntArray = NDArray[np.intp]
+from .arrays import FloatArray, IntArray
+from .smoothing import BinGrid
 
 
 @dataclass(frozen=True)
@@ -83,6 +81,14 @@ class Sample:
             order = order_within_subjects(starts, t, y)
             t, y = t[order], y[order]
         return cls(subject, t, y, starts, n_obs.astype(np.intp))
+
+
+def seeded_sample(n_subjects: int, cap: int, seed: int) -> IntArray:
+    """All subjects, or a seeded sample of ``cap`` of them (sorted)."""
+    if n_subjects <= cap:
+        return np.arange(n_subjects, dtype=np.intp)
+    rng = np.random.default_rng(seed)
+    return np.sort(rng.choice(n_subjects, cap, replace=False)).astype(np.intp)
 
 
 def assign_folds(n_subjects: int, n_folds: int, seed: int) -> IntArray:

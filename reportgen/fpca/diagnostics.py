@@ -13,11 +13,10 @@ from typing import Any
 
 import numpy as np
 
+from .arrays import FloatArray, IntArray
 from .components import evaluate_at
-from .design import IntArray
 from .plan import Kept, Part, Partitioned, in_code_order
 from .predictor import Predictor
-from .smoothing import FloatArray
 
 # Cells of the density of all readings (time x value).
 DENSITY_CELLS = (60, 40)

@@ -21,19 +21,12 @@ from itertools import pairwise
 from typing import Any
 
 import numpy as np
-from numpy.typing import NDArray
 
+from .arrays import FloatArray, IntArray
 from .bandwidth import candidate_bandwidths
 from .options import FPCAOptions
-from .smoothing import (
-    BinGrid,
-    FloatArray,
-    get_kernel,
-    local_linear_binned_1d,
-    local_linear_binned_2d,
-)
+from .smoothing import BinGrid, get_kernel, local_linear_binned_1d, local_linear_binned_2d
 
-IntArray = NDArray[np.intp]
 _CHUNK = 20_000  # subjects per block of the pair counts (memory ~ chunk x bins x 8 bytes)
 
 

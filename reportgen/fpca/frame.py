@@ -6,8 +6,7 @@ import numpy as np
 import pandas as pd
 
 from ..errors import DataError
-from .design import IntArray
-from .smoothing import FloatArray
+from .arrays import FloatArray, IntArray
 
 
 def _numeric(frame: pd.DataFrame, column: str, role: str) -> FloatArray:

@@ -20,17 +20,17 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from numpy.typing import NDArray
 
 from ..errors import EstimationError
 from ._kernels import interpolate_columns
+from .arrays import FloatArray, IntArray
 from .design import BinnedStats, PairStats, Sample, mean_stats, pair_stats
 from .diagnostics import part_group_sums
-from .fit import FPCAFit, _mean_covariance
+from .fit import mean_covariance
 from .plan import Part, Partitioned, add_binned, add_pair_stats, split_parts, tree_sum
-from .smoothing import BinGrid, FloatArray, get_kernel, local_linear_binned_1d
+from .result import FPCAFit
+from .smoothing import BinGrid, get_kernel, local_linear_binned_1d
 
-IntArray = NDArray[np.intp]
 PERMUTATIONS = 1999
 MIN_PERMUTATIONS = 199
 # Permutation x subject cells (~70 ns each): 1999 permutations up to 10^5 subjects, fewer
@@ -181,7 +181,7 @@ def group_means(data: Partitioned, fit: FPCAFit, groups: IntArray, n_groups: int
     ses = []
     for k, mean in enumerate(means):
         pstats = tree_sum([f[k] for f in found_pairs], add_pair_stats)
-        cov = _mean_covariance(pstats, cbins, fit.grid, h, kernel)
+        cov = mean_covariance(pstats, cbins, fit.grid, h, kernel)
         se = np.sqrt(np.maximum(np.diag(cov), 0.0))
         ses.append(np.where(np.isfinite(mean), se, np.nan))
     return np.stack(means), np.stack(ses)

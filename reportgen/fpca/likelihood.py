@@ -44,7 +44,7 @@ import numpy as np
 
 from ..errors import EstimationError
 from ._kernels import likelihood_sums
-from .smoothing import FloatArray
+from .arrays import FloatArray
 
 
 @dataclass(frozen=True)

@@ -30,15 +30,16 @@ from functools import cached_property
 from typing import Any, TypeVar
 
 import numpy as np
-from threadpoolctl import threadpool_limits
 
+from .._threads import one_blas_thread
 from ..errors import EstimationError
 from ._kernels import interpolate_columns
+from .arrays import FloatArray, IntArray
 from .components import evaluate_at
-from .design import BinnedStats, IntArray, PairStats, Sample, mean_stats, pair_stats
+from .design import BinnedStats, PairStats, Sample, mean_stats, pair_stats
 from .executor import Executor, InProcess, tree_sum
 from .scores import conditional_scores
-from .smoothing import BinGrid, FloatArray
+from .smoothing import BinGrid
 
 T = TypeVar("T")
 
@@ -174,7 +175,7 @@ def part_scores(part: Part, fine: FloatArray, mean_grid: BinGrid, grid: FloatArr
     part = part.writable()
     resid = residuals(part, fine, mean_grid)
     phi = evaluate_at(part.sample.t, grid, functions)
-    with threadpool_limits(limits=1, user_api="blas"):
+    with one_blas_thread():
         return conditional_scores(part.sample.starts, resid, phi, values, sigma2)
 
 

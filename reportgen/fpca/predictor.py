@@ -1,33 +1,40 @@
-"""Scores and trajectories of new subjects from the population parts of a fit.
+"""The one routine that turns readings into scores, curves and bands: :class:`Predictor`.
 
-A :class:`Predictor` holds what conditional expectation needs (Yao, Müller & Wang 2005,
-eq. 4-5): the mean (on the fine grid of the mean smoother), the retained eigenfunctions,
+A predictor holds what conditional expectation needs (Yao, Müller & Wang 2005, eq. 4-5):
+the mean (on the fine grid of the mean smoother), the retained eigenfunctions,
 eigenvalues and the error variance, plus what the bands need (the variance the retained
-components leave out, the level, the degrees of freedom of the simultaneous band). It is
-written into every run as ``tables/model.csv`` and read back by ``reportgen predict``.
+components leave out, the level, the degrees of freedom of the simultaneous band). Every
+caller goes through it: a fit's trajectories (``FPCAFit`` holds its predictor), prediction
+for new subjects in memory and from a stored run (``tables/model.csv``, read back by
+``reportgen predict``), the residual diagnostics, and each resample of a corrected band
+(a replicate is a predictor of its own; ``bootstrap``).
 
-Bands are the plug-in ones: the population parts are taken as known (the corrected bands
-need the resampled fits, which a run does not store).
+The fit's passes over the data (``plan``) compute the same residuals with the compiled
+twin of :meth:`Predictor.mean_at` (``_kernels.interpolate_columns``, the same linear
+interpolation written as ``(1 - f) a + f b``; the two agree to about 1e-13 relative).
 """
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from dataclasses import dataclass
+from typing import Literal
 
 import numpy as np
 import pandas as pd
 from scipy.special import chdtri, ndtri
 
 from ..errors import EstimationError
+from .arrays import FloatArray
 from .components import evaluate_at
-from .design import IntArray, Sample
+from .design import Sample
 from .scores import conditional_scores
-from .smoothing import FloatArray
 
 SCALARS = ("error_variance", "band_level", "simultaneous_dof")
+BandKind = Literal["pointwise", "simultaneous"]
 
 
-def band_multiplier(level: float, kind: str, dof: int) -> float:
+def band_multiplier(level: float, kind: BandKind, dof: int) -> float:
     """Multiplier of the standard error for a two-sided band at ``level``.
 
     ``"pointwise"``: the normal quantile. ``"simultaneous"``: sqrt of the chi-square
@@ -43,10 +50,27 @@ def band_multiplier(level: float, kind: str, dof: int) -> float:
 
 @dataclass(frozen=True)
 class Predictor:
+    """The population parts of a fit that predict a subject's curve from its readings.
+
+    Attributes
+    ----------
+    grid : ndarray of shape (n_grid,)
+    mean_time, mean_value : ndarray of shape (n_mean,)
+        The mean on the fine grid of its smoother (a resample's: on ``grid``).
+    eigenfunctions : ndarray of shape (n_grid, K)
+    eigenvalues : ndarray of shape (K,)
+    error_variance : float
+    truncation_variance : ndarray of shape (n_grid,)
+        The variance of the refined components that K leaves out (added to every band).
+    band_level : float
+    simultaneous_dof : int
+        Components entering a band's variance (degrees of freedom of the simultaneous one).
+    """
+
     grid: FloatArray
     mean_time: FloatArray
     mean_value: FloatArray
-    eigenfunctions: FloatArray  # (n_grid, K)
+    eigenfunctions: FloatArray
     eigenvalues: FloatArray
     error_variance: float
     truncation_variance: FloatArray
@@ -60,6 +84,97 @@ class Predictor:
     @property
     def n_components(self) -> int:
         return int(self.eigenvalues.size)
+
+    # --- the population curves at any time ----------------------------------------------
+
+    def mean_at(self, t: FloatArray) -> FloatArray:
+        """The mean at times ``t``, interpolated linearly from its fine grid."""
+        return np.interp(np.asarray(t, dtype=np.float64), self.mean_time, self.mean_value)
+
+    def mean_on_grid(self) -> FloatArray:
+        return self.mean_at(self.grid)
+
+    def eigenfunctions_at(self, t: FloatArray) -> FloatArray:
+        """The eigenfunctions at times ``t`` (linear interpolation), shape (n, K)."""
+        return evaluate_at(np.asarray(t, dtype=np.float64), self.grid, self.eigenfunctions)
+
+    def band_multiplier(self, kind: BandKind = "pointwise", level: float | None = None
+                        ) -> float:
+        """:func:`band_multiplier` at ``level`` (default: the stored one)."""
+        return band_multiplier(self.band_level if level is None else level, kind,
+                               self.simultaneous_dof)
+
+    # --- subjects ---------------------------------------------------------------------------
+
+    def scores(self, sample: Sample) -> tuple[FloatArray, FloatArray]:
+        """BLUP scores and their prediction-error covariance for the sample's subjects,
+        shapes (n, K) and (n, K, K)."""
+        resid = sample.y - self.mean_at(sample.t)
+        return conditional_scores(sample.starts, resid, self.eigenfunctions_at(sample.t),
+                                  self.eigenvalues, self.error_variance)
+
+    def fitted(self, scores: FloatArray) -> FloatArray:
+        """Each subject's curve on the grid, (n, n_grid)."""
+        out: FloatArray = self.mean_on_grid()[None, :] + scores @ self.eigenfunctions.T
+        return out
+
+    def curve_variance(self, cov: FloatArray) -> FloatArray:
+        """The plug-in variance of each curve on the grid, (n, n_grid): the scores'
+        prediction error along the eigenfunctions, plus what K components leave out."""
+        phi = self.eigenfunctions
+        out: FloatArray = (np.einsum("gk,nkl,gl->ng", phi, cov, phi)
+                           + self.truncation_variance[None, :])
+        return out
+
+    def trajectories(self, labels: Sequence[object] | np.ndarray | pd.Index, scores: FloatArray,
+                     cov: FloatArray, level: float | None = None,
+                     variance: FloatArray | None = None) -> pd.DataFrame:
+        """Curves on the grid and their bands, one row per subject and grid time: subject,
+        time, fitted, lower, upper (pointwise), lower_simultaneous, upper_simultaneous.
+
+        ``variance``: the curves' variance when it is not the plug-in one (a corrected
+        band's, ``bootstrap.corrected_variance``).
+        """
+        fitted = self.fitted(scores)
+        var = self.curve_variance(cov) if variance is None else variance
+        sd = np.sqrt(np.maximum(var, 0.0))
+        half = self.band_multiplier("pointwise", level) * sd
+        wide = self.band_multiplier("simultaneous", level) * sd
+        labels = np.asarray(labels) if not isinstance(labels, pd.Index) else labels
+        return pd.DataFrame({
+            "subject": np.repeat(labels, self.grid.size),
+            "time": np.tile(self.grid, len(labels)),
+            "fitted": fitted.ravel(), "lower": (fitted - half).ravel(),
+            "upper": (fitted + half).ravel(), "lower_simultaneous": (fitted - wide).ravel(),
+            "upper_simultaneous": (fitted + wide).ravel(),
+        })
+
+    def predict(self, sample: Sample, labels: np.ndarray,
+                replicates: Sequence[Predictor] = (), level: float | None = None
+                ) -> pd.DataFrame:
+        """Scores and curves of the sample's subjects (coded 0 .. n - 1; ``labels`` their
+        ids): subject, n_obs, score_1..K, then :meth:`trajectories`' columns. With
+        ``replicates`` (a corrected band's resamples) the bands are corrected ones.
+        Readings outside the grid's domain are refused (the fit says nothing there)."""
+        lo, hi = self.domain
+        outside = np.flatnonzero((sample.t < lo) | (sample.t > hi))
+        if outside.size:
+            raise EstimationError(
+                f"{outside.size} readings lie outside the run's time domain [{lo:g}, {hi:g}] "
+                f"(first: subject {labels[sample.subject[outside[0]]]}, time "
+                f"{sample.t[outside[0]]:g}); the fit says nothing there: leave them out")
+        from .bootstrap import corrected_variance
+
+        scores, cov = self.scores(sample)
+        variance = corrected_variance(tuple(replicates), sample) if replicates else None
+        out = self.trajectories(labels, scores, cov, level, variance)
+        g = self.grid.size
+        out.insert(1, "n_obs", np.repeat(sample.n_obs, g))
+        for j in range(self.n_components):
+            out.insert(2 + j, f"score_{j + 1}", np.repeat(scores[:, j], g))
+        return out
+
+    # --- stored in a run as tables/model.csv -------------------------------------------------
 
     def to_frame(self) -> pd.DataFrame:
         """Long table: quantity, component (0: none), time (nan: none), value."""
@@ -102,47 +217,3 @@ class Predictor:
             raise EstimationError("the stored model table is inconsistent (sizes differ)")
         return out
 
-    def band_multiplier(self, kind: str = "pointwise") -> float:
-        """:func:`band_multiplier` at the stored level and degrees of freedom."""
-        return band_multiplier(self.band_level, kind, self.simultaneous_dof)
-
-    def scores(self, sample: Sample) -> tuple[FloatArray, FloatArray]:
-        """BLUP scores and their prediction-error covariance for the sample's subjects."""
-        resid = sample.y - np.interp(sample.t, self.mean_time, self.mean_value)
-        phi = evaluate_at(sample.t, self.grid, self.eigenfunctions)
-        return conditional_scores(sample.starts, resid, phi, self.eigenvalues,
-                                  self.error_variance)
-
-    def predict(self, subject: IntArray, t: FloatArray, y: FloatArray, labels: np.ndarray
-                ) -> pd.DataFrame:
-        """One row per subject and grid time: subject, n_obs, score_1..K, time, fitted and
-        the pointwise and simultaneous bands at the stored level."""
-        lo, hi = self.domain
-        outside = np.flatnonzero((t < lo) | (t > hi))
-        if outside.size:
-            raise EstimationError(
-                f"{outside.size} readings lie outside the run's time domain [{lo:g}, {hi:g}] "
-                f"(first: subject {labels[subject[outside[0]]]}, time {t[outside[0]]:g}); "
-                "the fit says nothing there: leave them out")
-        sample = Sample.from_arrays(subject, t, y)
-        scores, cov = self.scores(sample)
-        phi = self.eigenfunctions
-        fitted = self.mean_at_grid()[None, :] + scores @ phi.T
-        var = np.einsum("gk,nkl,gl->ng", phi, cov, phi) + self.truncation_variance[None, :]
-        sd = np.sqrt(np.maximum(var, 0.0))
-        zp, zs = self.band_multiplier(), self.band_multiplier("simultaneous")
-        n, g = scores.shape[0], self.grid.size
-        out = pd.DataFrame({"subject": np.repeat(labels, g),
-                            "n_obs": np.repeat(sample.n_obs, g)})
-        for j in range(self.n_components):
-            out[f"score_{j + 1}"] = np.repeat(scores[:, j], g)
-        out["time"] = np.tile(self.grid, n)
-        out["fitted"] = fitted.ravel()
-        out["lower"] = (fitted - zp * sd).ravel()
-        out["upper"] = (fitted + zp * sd).ravel()
-        out["lower_simultaneous"] = (fitted - zs * sd).ravel()
-        out["upper_simultaneous"] = (fitted + zs * sd).ravel()
-        return out
-
-    def mean_at_grid(self) -> FloatArray:
-        return np.interp(self.grid, self.mean_time, self.mean_value)

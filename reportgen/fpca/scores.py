@@ -23,10 +23,10 @@ from dataclasses import dataclass
 import numpy as np
 
 from ._kernels import subject_sums
+from .arrays import FloatArray, IntArray
 from .components import evaluate_at
-from .design import IntArray, Sample
+from .design import Sample
 from .likelihood import SubjectSums
-from .smoothing import FloatArray
 
 
 def conditional_scores(

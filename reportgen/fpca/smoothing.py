@@ -23,14 +23,12 @@ from __future__ import annotations
 
 from collections.abc import Callable
 from dataclasses import dataclass
-from typing import Any
 
 import numpy as np
 from numpy.typing import NDArray
 
-# Arrays are documented by dtype and shape in the docstrings; numpy's stubs type many
-# reductions (bincount, einsum) loosely, so the alias does not pin the dtype.
-FloatArray = NDArray[Any]
+from .arrays import FloatArray
+
 Kernel = Callable[[FloatArray], FloatArray]
 
 # A local design is called singular when its determinant is below this fraction of the

@@ -1,4 +1,5 @@
-"""Data given as many Parquet files: which files, in which order, and one digest for all.
+"""The input files: reading one file's bytes (once, read-only), hashing them, and, for data
+given as many Parquet files, which files in which order, with one digest for all.
 
 ``data.file`` may name a folder (every ``*.parquet`` file under it) or a glob pattern
 (``parts/*.parquet``, relative to the spec). The files are taken in the order of their
@@ -15,6 +16,8 @@ from __future__ import annotations
 
 import glob
 import hashlib
+import os
+import stat
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -35,8 +38,31 @@ def sha256_file(path: Path) -> str:
     return h.hexdigest()
 
 
+def read_path(path: Path, shown: str, what: str = "data.file") -> bytes:
+    """The bytes of ``path``, read once (``shown`` is how the user named it, ``what`` the
+    field or argument that named it); refuses folders, devices, pipes and sockets."""
+    try:
+        st = os.stat(path)
+    except FileNotFoundError:
+        raise DataError(f"{what} {shown!r} does not exist (looked for {str(path)!r})") from None
+    except (OSError, ValueError) as e:  # ValueError: an embedded NUL byte in the path
+        reason = getattr(e, "strerror", None) or str(e)
+        raise DataError(f"{what} {shown!r} cannot be read: {reason}") from e
+    if stat.S_ISDIR(st.st_mode):
+        raise DataError(f"{what} {shown!r} is a directory; give a data file")
+    if not stat.S_ISREG(st.st_mode):
+        raise DataError(f"{what} {shown!r} is not a regular file (device, pipe or socket)")
+    try:
+        with open(path, "rb") as fh:
+            return fh.read()
+    except OSError as e:
+        raise DataError(f"{what} {shown!r} cannot be read: {e.strerror}") from e
+
+
 @dataclass(frozen=True)
-class Part:
+class DataFile:
+    """One data file of many, as the manifest lists it."""
+
     path: str  # relative to the folder (or the pattern's fixed part), with "/" separators
     n_bytes: int
     sha256: str
@@ -74,14 +100,14 @@ def list_files(path: Path, named: str, what: str = "data.file") -> list[tuple[st
     if odd:
         raise DataError(f"{what} {named!r}: every file of a folder or pattern must be Parquet; "
                         f"{odd[0].name!r} is not")
-    parts = [(p.relative_to(base).as_posix(), p) for p in found]
-    return sorted(parts, key=lambda item: item[0].encode("utf-8"))
+    listed = [(p.relative_to(base).as_posix(), p) for p in found]
+    return sorted(listed, key=lambda item: item[0].encode("utf-8"))
 
 
-def digest(parts: list[Part] | tuple[Part, ...]) -> str:
+def digest(files: list[DataFile] | tuple[DataFile, ...]) -> str:
     h = hashlib.sha256(HEADER.encode())
-    for p in sorted(parts, key=lambda p: p.path.encode("utf-8")):
-        h.update(f"{p.path}\t{p.n_bytes}\t{p.sha256}\n".encode())
+    for f in sorted(files, key=lambda f: f.path.encode("utf-8")):
+        h.update(f"{f.path}\t{f.n_bytes}\t{f.sha256}\n".encode())
     return h.hexdigest()
 
 
@@ -99,4 +125,4 @@ def current_digest(path: Path, named: str) -> str:
         files = list_files(path, named)
     except DataError:
         return "absent"
-    return digest([Part(rel, full.stat().st_size, sha256_file(full)) for rel, full in files])
+    return digest([DataFile(rel, full.stat().st_size, sha256_file(full)) for rel, full in files])

@@ -1,12 +1,19 @@
-"""YAML spec -> frozen, validated :class:`Spec` with resolved paths and defaults."""
+"""YAML spec -> frozen, validated :class:`Spec` with typed sections, resolved paths and
+defaults.
+
+The JSON Schema (``spec.schema.json``, through ``schema.validate``) says what a spec may
+hold and words every refusal; this module turns a valid mapping into one frozen dataclass
+per section, so that the rest of the package reads ``spec.data.time_unit``, never a key of
+a dictionary.
+"""
 
 from __future__ import annotations
 
 import hashlib
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, fields
 from datetime import date, datetime
 from pathlib import Path
-from typing import Any
+from typing import Any, Literal
 
 import yaml
 
@@ -16,19 +23,7 @@ from .schema import make_options, spec_schema, validate
 
 MAX_SPEC_BYTES = 1_000_000
 REQUIRED_SECTIONS = ("caveats", "reproducibility")
-
-DEFAULT_CHECKS: dict[str, Any] = {
-    "missing": "drop", "duplicates": "average", "out_of_range": "warn", "out_of_domain": "fail",
-    "min_subjects": 10, "min_pair_coverage": 0.9,
-}
-DEFAULT_SENSITIVITY: dict[str, Any] = {"factors": [0.5, 0.75, 1.5, 2.0],
-                                       "similarity_threshold": 0.9}
-DEFAULT_SUBJECTS: dict[str, Any] = {"show": [], "count": 6, "outlier_quantile": 0.99,
-                                    "tables": "csv", "all_trajectories": False}
-DEFAULT_GATES: dict[str, Any] = {
-    "max_mean_change": 0.1, "max_eigenvalue_change": 0.5, "max_error_variance_change": 0.5,
-    "min_eigenfunction_similarity": 0.9, "same_components": True,
-}
+DEFAULT_FACTORS = (0.5, 0.75, 1.5, 2.0)
 
 
 class _NoAliasLoader(yaml.SafeLoader):
@@ -50,6 +45,127 @@ class _NoAliasLoader(yaml.SafeLoader):
         return super().compose_node(parent, index)
 
 
+# --- the sections -------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class ReportSection:
+    """``report``: what the appendix is called and how it looks."""
+
+    id: str
+    title: str
+    authors: tuple[str, ...] = ()
+    description: str = ""
+    band_level: float = 0.95
+    template: str = "default"
+    stylesheet: str | None = None
+    logo: str | None = None
+    header: str = ""
+    footer: str = ""
+    numbering: str = ""
+    sections: tuple[str, ...] | None = None
+
+
+@dataclass(frozen=True)
+class RowCondition:
+    """One condition of ``data.keep_rows``: ``column`` equals a value, is in a list, or is
+    between two bounds (``values`` holds the one value, the list, or the two bounds)."""
+
+    column: str
+    kind: Literal["equals", "in", "between"]
+    values: tuple[Any, ...]
+
+
+@dataclass(frozen=True)
+class TimeOrigin:
+    """``data.time_origin``: each subject's first reading, a calendar date (ISO text), or
+    each subject's baseline in a column."""
+
+    kind: Literal["first", "date", "column"]
+    value: str = ""  # the ISO date, or the column's name
+
+    def describe(self) -> str:
+        """The origin as the spec writes it (for messages)."""
+        return {"first": "first", "date": self.value, "column": f"{{column: {self.value}}}"
+                }[self.kind]
+
+
+@dataclass(frozen=True)
+class DataSection:
+    """``data``: which file, which columns, and how the values are read."""
+
+    file: str
+    subject: str
+    time: str
+    value: str
+    format: str = "auto"
+    time_unit: str = ""
+    value_unit: str = ""
+    transform: Literal["none", "log", "log10"] = "none"
+    time_origin: TimeOrigin | None = None
+    time_scale: str = "days"
+    group: str | None = None
+    time_label: str | None = None
+    value_label: str | None = None
+    keep_rows: tuple[RowCondition, ...] = ()
+
+
+@dataclass(frozen=True)
+class ChecksSection:
+    """``checks``: what the data checks refuse, drop or only report."""
+
+    missing: Literal["drop", "fail"] = "drop"
+    duplicates: Literal["average", "keep", "fail"] = "average"
+    value_range: tuple[float, float] | None = None
+    out_of_range: Literal["warn", "fail", "drop"] = "warn"
+    domain: tuple[float, float] | None = None
+    out_of_domain: Literal["fail", "drop"] = "fail"
+    min_subjects: int = 10
+    min_pair_coverage: float = 0.9
+
+
+@dataclass(frozen=True)
+class SensitivitySection:
+    """``sensitivity``: the bandwidth factors (``given``: the spec names them, so they are
+    used as given; otherwise the defaults, which may be raised) and the similarity that
+    counts as stable."""
+
+    factors: tuple[float, ...] = DEFAULT_FACTORS
+    given: bool = False
+    similarity_threshold: float = 0.9
+
+
+@dataclass(frozen=True)
+class SubjectsSection:
+    """``subjects``: which trajectories are shown, the outlier rule, how the tables of
+    subjects are written."""
+
+    show: tuple[str, ...] = ()
+    count: int = 6
+    outlier_quantile: float = 0.99
+    tables: Literal["csv", "parquet"] = "csv"
+    all_trajectories: bool = False
+
+
+@dataclass(frozen=True)
+class GatesSection:
+    """``gates``: what ``reportgen compare`` treats as a change beyond the allowed."""
+
+    max_mean_change: float = 0.1
+    max_eigenvalue_change: float = 0.5
+    max_error_variance_change: float = 0.5
+    min_eigenfunction_similarity: float = 0.9
+    same_components: bool = True
+
+
+def value_unit(unit: str, transform: str) -> str:
+    """The unit of the analysed values: the data's unit under the spec's transform
+    (``log(mg/dl)``; the transform's name alone when the data have no unit)."""
+    if transform == "none":
+        return unit
+    return f"{transform}({unit})" if unit else transform
+
+
 @dataclass(frozen=True)
 class Spec:
     """A validated spec. ``raw`` holds the file's bytes exactly as given."""
@@ -57,13 +173,12 @@ class Spec:
     path: Path
     raw: bytes
     sha256: str
-    content: dict[str, Any]
-    report: dict[str, Any]
-    data: dict[str, Any]
-    checks: dict[str, Any]
-    sensitivity: dict[str, Any]
-    subjects: dict[str, Any]
-    gates: dict[str, Any]
+    report: ReportSection
+    data: DataSection
+    checks: ChecksSection
+    sensitivity: SensitivitySection
+    subjects: SubjectsSection
+    gates: GatesSection
     options: FPCAOptions
     # Input files found elsewhere than beside the spec (``verify --inputs``): the path as
     # the spec writes it -> where it is.
@@ -78,11 +193,11 @@ class Spec:
     @property
     def data_path(self) -> Path:
         """The data file: ``data.file`` relative to the spec (or where verify found it)."""
-        return self.locate(self.data["file"])
+        return self.locate(self.data.file)
 
     @property
     def report_id(self) -> str:
-        return str(self.report["id"])
+        return self.report.id
 
     def units(self) -> dict[str, str]:
         """The unit of each reported quantity, from the value unit u and time unit T.
@@ -91,7 +206,7 @@ class Spec:
         carries u sqrt(T) and an eigenvalue (a score variance) u^2 T. Empty where the spec
         gives no unit.
         """
-        u, t = self.value_unit, self.data["time_unit"]
+        u, t = self.value_unit, self.data.time_unit
         uu = f"({u})^2" if u and not u.isalnum() else (f"{u}^2" if u else "")
         root_t = f"sqrt({t})" if t else ""
         return {
@@ -105,11 +220,7 @@ class Spec:
     @property
     def value_unit(self) -> str:
         """The unit of the analysed values: the data's unit under the spec's transform."""
-        unit = self.data["value_unit"]
-        transform = self.data["transform"]
-        if transform == "none":
-            return unit
-        return f"{transform}({unit})" if unit else transform
+        return value_unit(self.data.value_unit, self.data.transform)
 
 
 def parse_spec_bytes(raw: bytes, where: str = "spec") -> dict[str, Any]:
@@ -178,15 +289,42 @@ def _json_safe(value: Any, path: str) -> None:
         raise SpecError(f"{path} must be a number; got nan.")
 
 
-def _check_time_origin(data: dict[str, Any]) -> None:
-    origin = data.get("time_origin")
-    if not isinstance(origin, str) or origin == "first":
-        return
+def _time_origin(given: Any) -> TimeOrigin | None:
+    if given is None:
+        return None
+    if isinstance(given, dict):
+        return TimeOrigin("column", str(given["column"]))
+    if given == "first":
+        return TimeOrigin("first")
     try:
-        datetime.fromisoformat(origin)
+        datetime.fromisoformat(given)
     except ValueError:
         raise SpecError(f"data.time_origin must be an ISO date such as 2024-01-31, first, or "
-                        f"{{column: NAME}}; got {origin!r}.") from None
+                        f"{{column: NAME}}; got {given!r}.") from None
+    return TimeOrigin("date", str(given))
+
+
+def _condition(given: dict[str, Any]) -> RowCondition:
+    kind: Literal["equals", "in", "between"] = next(
+        k for k in ("equals", "in", "between") if k in given)
+    value = given[kind]
+    return RowCondition(str(given["column"]), kind,
+                        (value,) if kind == "equals" else tuple(value))
+
+
+def _pair(given: Any, where: str) -> tuple[float, float] | None:
+    if given is None:
+        return None
+    low, high = float(given[0]), float(given[1])
+    if not high > low:
+        raise SpecError(f"{where} must be [low, high] with high > low; got {list(given)!r}.")
+    return low, high
+
+
+def _known(section: type, given: dict[str, Any]) -> dict[str, Any]:
+    """The fields of ``section`` that ``given`` sets (the schema allows no others)."""
+    names = {f.name for f in fields(section)}
+    return {k: v for k, v in given.items() if k in names}
 
 
 def spec_from_bytes(raw: bytes, path: Path) -> Spec:
@@ -194,39 +332,47 @@ def spec_from_bytes(raw: bytes, path: Path) -> Spec:
     content = _dates_as_text(content)
     _json_safe(content, "")
     validate(content, spec_schema())
-    report = {"authors": [], "description": "", "band_level": 0.95, "template": "default",
-              "header": "", "footer": "", "numbering": "", **content["report"]}
-    sections = report.get("sections")
+    given = content["report"]
+    sections = given.get("sections")
     if sections is not None:
         missing = [x for x in REQUIRED_SECTIONS if x not in sections]
         if missing:
             raise SpecError(f"report.sections must keep {' and '.join(missing)}: the caveats "
                             "(with the standing cautions) and the reproducibility record are "
                             "in every report.")
-    data = {"format": "auto", "transform": "none", "time_unit": "", "value_unit": "",
-            **content["data"]}
-    checks = {**DEFAULT_CHECKS, **content.get("checks", {})}
-    for name in ("value_range", "domain"):
-        pair = checks.get(name)
-        if pair is not None and not pair[1] > pair[0]:
-            raise SpecError(f"checks.{name} must be [low, high] with high > low; got {pair!r}.")
-    _check_time_origin(data)
+    report = ReportSection(**{**_known(ReportSection, given),
+                              "authors": tuple(given.get("authors", ())),
+                              "sections": None if sections is None else tuple(sections)})
+    given = content["data"]
+    data = DataSection(**{**_known(DataSection, given),
+                          "time_origin": _time_origin(given.get("time_origin")),
+                          "keep_rows": tuple(_condition(c) for c in given.get("keep_rows", ()))})
+    given = content.get("checks", {})
+    checks = ChecksSection(**{**_known(ChecksSection, given),
+                              "value_range": _pair(given.get("value_range"),
+                                                   "checks.value_range"),
+                              "domain": _pair(given.get("domain"), "checks.domain")})
     model = dict(content.get("model", {}))
-    if "domain" not in model and "domain" in checks:
-        model["domain"] = checks["domain"]
-    model["band_level"] = report["band_level"]
+    if "domain" not in model and checks.domain is not None:
+        model["domain"] = list(checks.domain)
+    model["band_level"] = report.band_level
     options = make_options(model, root="model")
-    subjects = {**DEFAULT_SUBJECTS, **content.get("subjects", {})}
-    if subjects["all_trajectories"] and options.band == "corrected":
+    given = content.get("sensitivity", {})
+    sensitivity = SensitivitySection(
+        tuple(float(f) for f in given.get("factors", DEFAULT_FACTORS)), "factors" in given,
+        float(given.get("similarity_threshold", 0.9)))
+    given = content.get("subjects", {})
+    subjects = SubjectsSection(**{**_known(SubjectsSection, given),
+                                  "show": tuple(str(s) for s in given.get("show", ()))})
+    if subjects.all_trajectories and options.band == "corrected":
         raise SpecError("subjects.all_trajectories writes every subject's trajectory with the "
                         "plug-in band; model.band is corrected, whose band needs each "
                         "subject's readings in one place. Set model.band: plugin, or leave "
                         "subjects.all_trajectories out (the shown subjects keep the corrected "
                         "band).")
+    gates = GatesSection(**_known(GatesSection, content.get("gates", {})))
     return Spec(
-        path=path.resolve(), raw=raw, sha256=hashlib.sha256(raw).hexdigest(), content=content,
-        report=report, data=data, checks=checks,
-        sensitivity={**DEFAULT_SENSITIVITY, **content.get("sensitivity", {})},
-        subjects=subjects,
-        gates={**DEFAULT_GATES, **content.get("gates", {})}, options=options,
+        path=path.resolve(), raw=raw, sha256=hashlib.sha256(raw).hexdigest(), report=report,
+        data=data, checks=checks, sensitivity=sensitivity, subjects=subjects, gates=gates,
+        options=options,
     )

@@ -21,7 +21,7 @@ from cycler import cycler
 from scipy.special import ndtri
 
 from ..analysis.analyse import AnalysisResult
-from ..fpca.diagnostics import axis, cell_counts
+from ..analysis.views import density
 
 PALETTE = ("#1f5f8b", "#c0632b", "#3f8f4f", "#8a3f8f", "#7a7a2a", "#2a7a7a")
 STYLE = {
@@ -109,7 +109,7 @@ Figure = tuple[plt.Figure, str, str]  # the figure, its caption, its alt text
 
 
 def _time_label(r: AnalysisResult) -> str:
-    unit = r.spec.data["time_unit"]
+    unit = r.spec.data.time_unit
     return r.time_label + (f" ({unit})" if unit else "")
 
 
@@ -150,9 +150,8 @@ def _density(ax: Any, x: np.ndarray, y: np.ndarray, cells: tuple[int, int]) -> N
     """Counts of points in a grid of ``cells`` (x by y) over their range, drawn as a grey
     image with empty cells left white: one bincount, so that millions of points cost a
     fraction of a second and no more memory than two index arrays."""
-    axes = tuple(axis(float(v.min()), float(v.max()), n) for v, n in ((x, cells[0]),
-                                                                        (y, cells[1])))
-    _draw_counts(ax, cell_counts(x, y, axes), axes)
+    counts, axes = density(x, y, cells)
+    _draw_counts(ax, counts, axes)
 
 
 def _draw_counts(ax: Any, counts: np.ndarray, axes: tuple[tuple[float, float, int], ...]
@@ -221,7 +220,7 @@ def _covariance(r: AnalysisResult) -> Figure:
 
 
 def _bandwidths(r: AnalysisResult) -> Figure:
-    fit, unit = r.fit, r.spec.data["time_unit"]
+    fit, unit = r.fit, r.spec.data.time_unit
     fig, axes = plt.subplots(1, 3, figsize=(7.4, 2.3))
     for ax, (what, choice) in zip(axes, (("mean", fit.mean_bandwidth_choice),
                                          ("covariance", fit.covariance_bandwidth_choice),

@@ -17,7 +17,9 @@ import numpy as np
 # NAMED_FLAGGED: flagged subjects named in the text, farthest first; a large study flags
 # thousands (6558 of 10^6 at the 0.99 quantile: 25 PDF pages of ids), and the table holds
 # them all.
-from ..analysis.analyse import NAMED_FLAGGED, STANDARD_CAUTIONS, AnalysisResult, rule_choice
+from ..analysis.analyse import AnalysisResult
+from ..analysis.caveats import STANDARD_CAUTIONS
+from ..analysis.views import NAMED_FLAGGED
 from ..errors import TemplateError
 from ..fpca import BandwidthChoice
 
@@ -221,7 +223,7 @@ def _section_components(c: _Context) -> None:
 
 def _subject_table(result: AnalysisResult, name: str) -> str:
     """Where a table of subjects is in the run directory."""
-    if result.spec.subjects["tables"] == "parquet":
+    if result.spec.subjects.tables == "parquet":
         return (f"tables/{name}/, {len(result.subject_parts)} Parquet part(s) listed in "
                 f"tables/{name}/parts.json")
     return f"tables/{name}.csv"
@@ -240,7 +242,7 @@ def _section_scores(c: _Context) -> None:
                       zip(first.subject.astype(str), first.distance2, strict=True))
     which = "" if view.n_flagged <= NAMED_FLAGGED else f"; the {NAMED_FLAGGED} farthest"
     b.text(s, f"Rule: a subject is flagged when its squared Mahalanobis distance of the scores "
-           f"exceeds the {spec.subjects['outlier_quantile']:g} quantile of the "
+           f"exceeds the {spec.subjects.outlier_quantile:g} quantile of the "
            f"chi-square({fit.n_components}) distribution; {view.n_flagged} subject(s) flagged"
            + (f"{which}: {named} (squared distance in brackets)" if named else "")
            + f". Distances and flags of every subject: {_subject_table(result, 'scores')}.")
@@ -255,11 +257,11 @@ def _section_trajectories(c: _Context) -> None:
     fig = c.fig
     s = b.section("trajectories", "Trajectories", "Recovered curves of selected subjects with "
                   "their readings and bands.")
-    chosen = list(map(str, spec.subjects["show"]))
+    chosen = list(spec.subjects.show)
     b.text(s, "Subjects shown: " + (f"{', '.join(chosen)} as listed in subjects.show; then "
                                     if chosen else "")
            + "the rest of the "
-           f"{spec.subjects['count']} at even steps through all subjects ordered by number of "
+           f"{spec.subjects.count} at even steps through all subjects ordered by number of "
            "readings, then id (from the fewest readings to the most), so that sparse and dense "
            f"subjects both appear: {', '.join(result.shown_subjects)}. Inner band: pointwise "
            f"{fit.options.band_level:.0%} ("
@@ -269,7 +271,7 @@ def _section_trajectories(c: _Context) -> None:
            + "); outer band: simultaneous over the whole curve."
            + (" The trajectory of every subject, with plug-in bands: "
               f"{_subject_table(result, 'all_trajectories')}."
-              if spec.subjects["all_trajectories"] else ""))
+              if spec.subjects.all_trajectories else ""))
     fig(s, "trajectories")
 
 
@@ -323,13 +325,13 @@ def _section_sensitivity(c: _Context) -> None:
     fig = c.fig
     s = b.section("sensitivity", "Sensitivity to the bandwidths", "How the estimates move when "
                   "both bandwidths are multiplied by a factor.")
-    thr = spec.sensitivity["similarity_threshold"]
+    thr = spec.sensitivity.similarity_threshold
     rows = []
-    rule, fve_threshold = fit.options.component_rule, fit.options.fve_threshold
+    rule = fit.options.component_rule
     for run in result.sensitivity:
         rows.append([run.factor, run.mean_bandwidth, run.covariance_bandwidth,
                      run.diagonal_bandwidth,
-                     rule_choice(run.fit, rule, fve_threshold) if run.fit else "—",
+                     run.fit.rule_picks(rule) if run.fit else "—",
                      run.fit.error_variance if run.fit else float("nan"),
                      ", ".join(_fmt(x) if np.isfinite(x) else "absent"
                                for x in run.similarity)
@@ -377,7 +379,7 @@ def _section_groups(c: _Context) -> None:
     if g is None:
         return
     su = spec.units()["score"]
-    s = b.section("groups", "Groups", f"The subjects by {spec.data['group']}: mean curves, "
+    s = b.section("groups", "Groups", f"The subjects by {spec.data.group}: mean curves, "
                   "scores and a test of equal mean scores.")
     k = fit.n_components
     b.table(s, "Subjects and average scores per group (descriptive).",
@@ -442,8 +444,8 @@ def render_html(result: AnalysisResult, version: int, record_view: dict[str, Any
     sections = build_sections(result, record_view, figures, style.numbering, style.sections)
     header = " · ".join(x for x in (style.header, f"{spec.report_id} v{version:03d}") if x)
     context = {
-        "title": spec.report["title"], "report_id": spec.report_id, "version": version,
-        "authors": list(spec.report["authors"]), "description": spec.report["description"],
+        "title": spec.report.title, "report_id": spec.report_id, "version": version,
+        "authors": list(spec.report.authors), "description": spec.report.description,
         "sections": [asdict(x) for x in sections], "css": Markup(style.css),
         "logo": style.logo, "header_text": header, "footer_text": style.footer,
         "numbering": style.numbering, "started": _record_item(record_view, "run started"),
@@ -456,7 +458,7 @@ def render_html(result: AnalysisResult, version: int, record_view: dict[str, Any
         else:
             html = render_in_child({**sources, USER: style.user_template}, USER, context)
     except TemplateFailure as e:
-        which = (f"report.template {spec.report['template']!r}"
+        which = (f"report.template {spec.report.template!r}"
                  if style.user_template is not None else f"the {style.name} style")
         raise TemplateError(f"{which}: {e}") from e
     return html.encode("utf-8")

@@ -20,7 +20,6 @@ import subprocess
 import sys
 import threading
 from collections.abc import Callable
-from dataclasses import replace
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, BinaryIO
 
@@ -57,23 +56,6 @@ def _pdf(html: bytes, spec_bytes: bytes, record_bytes: bytes, stamp: str) -> byt
     from .render import render_pdf
 
     return render_pdf(html, spec_bytes, record_bytes, stamp)
-
-
-def summary_view(result: AnalysisResult) -> AnalysisResult:
-    """The analysis without its per-reading and per-subject parts (what SUMMARY_FIGURES
-    need, at a size that does not grow with the data, and nothing of the engine's)."""
-    import numpy as np
-
-    from ..fpca.plan import Kept
-
-    ds = result.dataset
-    runs = tuple(replace(r, fit=r.fit.without_subjects()) if r.fit is not None else r
-                 for r in result.sensitivity)
-    return replace(result, dataset=replace(ds, frame=ds.frame.iloc[:0], held=None),
-                   fit=result.fit.without_subjects(), sensitivity=runs,
-                   readings=result.readings.empty(),
-                   subjects_view=result.subjects_view.empty(),
-                   residual_sums=Kept.of_arrays(np.zeros(0), np.zeros(0)), subject_parts=())
 
 
 def _csv(frames: dict[str, pd.DataFrame]) -> dict[str, bytes]:
@@ -167,7 +149,7 @@ class RenderWorker:
         process draws the rest."""
         from .figures import FIGURES, make_figures
 
-        pending = (self._submit("draw", summary_view(result), SUMMARY_FIGURES)
+        pending = (self._submit("draw", result.without_subjects(), SUMMARY_FIGURES)
                    if self._proc is not None else None)
         local = make_figures(result, [n for n in FIGURES if n not in SUMMARY_FIGURES])
         remote = pending.result() if pending is not None else None

@@ -48,7 +48,7 @@ class Style:
 
 
 def _read(spec: Spec, field: str, limit: int) -> InputFile:
-    relpath = str(spec.report[field])
+    relpath = str(getattr(spec.report, field))
     path = spec.locate(relpath)
     try:
         size = path.stat().st_size
@@ -103,7 +103,7 @@ def load_style(spec: Spec) -> Style:
     """Read and check everything the spec's report section names. Raises SpecError."""
     r = spec.report
     inputs: list[InputFile] = []
-    template = str(r["template"])
+    template = r.template
     user = None
     if template in STYLES:
         name = template
@@ -116,15 +116,14 @@ def load_style(spec: Spec) -> Style:
                         f".j2 or .html file relative to the spec; got {template!r}.")
     base = "default" if name == "user" else name
     css = shipped_css("default") + ("" if base == "default" else "\n" + shipped_css(base))
-    if r.get("stylesheet"):
+    if r.stylesheet:
         file = _read(spec, "stylesheet", MAX_STYLESHEET_BYTES)
         inputs.append(file)
         css += "\n" + _stylesheet(file)
     logo = ""
-    if r.get("logo"):
+    if r.logo:
         file = _read(spec, "logo", MAX_LOGO_BYTES)
         inputs.append(file)
         logo = _logo(file)
-    sections = tuple(r["sections"]) if r.get("sections") else None
-    return Style(name, user, css, logo, str(r["header"]), str(r["footer"]),
-                 str(r["numbering"]), sections, tuple(inputs))
+    return Style(name, user, css, logo, r.header, r.footer, r.numbering, r.sections or None,
+                 tuple(inputs))

@@ -28,13 +28,14 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 import pandas as pd
 
-from .tables import subject_frames, subject_groups, subject_table_names, to_csv_bytes
+from ..analysis.subjects import subject_frames, subject_groups, subject_table_names
+from .tables import to_csv_bytes
 
 if TYPE_CHECKING:
     from ..analysis.analyse import AnalysisResult
+    from ..fpca.arrays import FloatArray
     from ..fpca.executor import Executor
-    from ..fpca.fit import FPCAFit
-    from ..fpca.smoothing import FloatArray
+    from ..fpca.result import FPCAFit
 
 MANIFEST = "parts.json"
 COMPRESSION = "zstd"
@@ -139,11 +140,11 @@ def write_subject_parts(result: AnalysisResult, run: Path, executor: Executor | 
     from ..fpca.executor import InProcess
 
     run_on = executor or InProcess()
-    names = subject_table_names(result.spec)
+    names = subject_table_names(result)
     written: dict[str, list[PartEntry]] = {name: [] for name in names}
     parts, fit = result.subject_parts, result.fit
     scores, sums = fit.kept_scores, result.residual_sums
-    curves = bool(result.spec.subjects["all_trajectories"])
+    curves = result.spec.subjects.all_trajectories
     # the fit's population parts, about 0.2 MB, sent with every task (not its n_obs)
     model = replace(fit.without_subjects(), n_obs=fit.n_obs[:0])
     per_subject = 2 + (fit.grid.size if curves else 0)

@@ -7,16 +7,12 @@ significant digits so that the digest does not depend on the last bits of a BLAS
 from __future__ import annotations
 
 import hashlib
-from dataclasses import replace
 
 import numpy as np
 import pandas as pd
 
-from ..analysis.analyse import AnalysisResult, rule_choice
-from ..fpca.diagnostics import distances, residual_summary
-from ..fpca.fit import FPCAFit, Labels, rows_of
-from ..fpca.plan import Kept
-from ..inputs.spec import Spec
+from ..analysis.analyse import AnalysisResult
+from ..analysis.subjects import every_subject_frames, shown_trajectories
 
 FLOAT_FORMAT = "%.10g"
 
@@ -110,14 +106,11 @@ def build_tables(result: AnalysisResult) -> dict[str, pd.DataFrame]:
     for j in range(k):
         ef[f"phi_{j + 1}"] = fit.eigenfunctions[:, j]
     tables["eigenfunctions"] = ef
-    if result.spec.subjects["tables"] == "csv":
-        tables.update(subject_tables(result))
-    trajectories = result.trajectories.copy()
+    if result.spec.subjects.tables == "csv":
+        tables.update(every_subject_frames(result))
     if result.groups is not None:
-        shown = _codes(fit.subjects, trajectories.subject.astype(str))
-        trajectories.insert(1, "group", subject_groups(result, shown))
         tables.update(group_tables(result))
-    tables["trajectories"] = trajectories
+    tables["trajectories"] = shown_trajectories(result)
     tables["checks"] = pd.DataFrame(
         [(c.name, c.status, c.detail) for c in result.dataset.checks],
         columns=["check", "status", "detail"],
@@ -142,9 +135,7 @@ def build_tables(result: AnalysisResult) -> dict[str, pd.DataFrame]:
         if run.fit is None:
             row.update({"n_components": np.nan, "error_variance": np.nan, "note": run.error})
         else:
-            rule = result.spec.options.component_rule
-            row.update({"n_components": rule_choice(run.fit, rule,
-                                                    result.spec.options.fve_threshold),
+            row.update({"n_components": run.fit.rule_picks(result.spec.options.component_rule),
                         "error_variance": run.fit.error_variance, "note": ""})
         for j in range(k):
             ev = run.fit.all_eigenvalues[j] if run.fit is not None and \
@@ -153,78 +144,10 @@ def build_tables(result: AnalysisResult) -> dict[str, pd.DataFrame]:
             row[f"similarity_{j + 1}"] = run.similarity[j] if run.similarity else np.nan
         rows.append(row)
     tables["sensitivity"] = pd.DataFrame(rows)
-    tables["model"] = fit.predictor().to_frame()
+    tables["model"] = fit.predictor.to_frame()
     tables["units"] = pd.DataFrame(sorted(result.spec.units().items()),
                                    columns=["quantity", "unit"])
     return tables
-
-
-def subject_table_names(spec: Spec) -> tuple[str, ...]:
-    """The tables whose rows belong to one subject each (in parts with subjects.tables:
-    parquet), in name order."""
-    extra = ("all_trajectories",) if spec.subjects["all_trajectories"] else ()
-    return (*extra, "residuals_by_subject", "scores")
-
-
-def subject_tables(result: AnalysisResult) -> dict[str, pd.DataFrame]:
-    """The tables of every subject as single tables (``subjects.tables: csv``): their
-    scores, covariances and residual sums are gathered from the parts."""
-    fit = result.fit
-    scores, cov = fit.kept_scores.every()
-    return subject_frames(fit, fit.subjects, subject_groups(result, None), fit.n_obs, scores,
-                          cov, result.residual_sums.every(), result.subjects_view.cut,
-                          bool(result.spec.subjects["all_trajectories"]))
-
-
-def subject_frames(fit: FPCAFit, ids: Labels, groups: np.ndarray | None, n_obs: np.ndarray,
-                   scores: np.ndarray, cov: np.ndarray, sums: tuple[np.ndarray, ...],
-                   cut: float, curves: bool) -> dict[str, pd.DataFrame]:
-    """The tables of the subjects ``ids`` (with their ``groups``, reading counts, scores,
-    score covariances and residual sums): scores (with the outlier distances: flagged
-    beyond ``cut``), residuals_by_subject, and all_trajectories when ``curves``. ``fit``
-    gives the population parts (eigenvalues, eigenfunctions, ...) only."""
-    table = pd.DataFrame({"subject": pd.Index(ids).astype(str)})
-    if groups is not None:
-        table["group"] = groups
-    table["n_obs"] = n_obs
-    for k in range(fit.n_components):
-        table[f"score_{k + 1}"] = scores[:, k]
-    d2 = distances(scores, fit.eigenvalues)
-    table["distance2"] = d2
-    table["flagged"] = d2 > cut
-    mean, rms = residual_summary(sums, n_obs)
-    residuals = pd.DataFrame({"subject": ids, "n_obs": n_obs, "mean_residual": mean,
-                              "rms_standardized": rms})
-    tables = {"scores": table, "residuals_by_subject": residuals}
-    if curves:
-        held = replace(fit, subjects=ids, kept_scores=Kept.of_arrays(scores, cov))
-        tables["all_trajectories"] = trajectory_table(held, groups)
-    return tables
-
-
-def subject_groups(result: AnalysisResult, codes: np.ndarray | None) -> np.ndarray | None:
-    """The groups of the subjects ``codes`` (None: all); None without groups. (A part's
-    groups are picked one by one: the tuple of every subject's group is not made an array
-    again for each part.)"""
-    if result.groups is None:
-        return None
-    every = result.subject_groups
-    picked = every if codes is None else [every[i] for i in codes.tolist()]
-    return np.array(picked, dtype=object)
-
-
-def trajectory_table(fit: FPCAFit, groups: np.ndarray | None) -> pd.DataFrame:
-    """all_trajectories of the fit's subjects, with their ``groups``."""
-    table = fit.plugin_trajectories()
-    table["subject"] = pd.Index(table["subject"]).astype(str)
-    if groups is not None:
-        table.insert(1, "group", np.repeat(groups, fit.grid.size))
-    return table
-
-
-def _codes(subjects: Labels, named: pd.Series) -> np.ndarray:
-    """The rows of ``subjects`` of the ids ``named`` (as text; each one present)."""
-    return rows_of(pd.Index(subjects).astype(str), named.tolist())
 
 
 def group_tables(result: AnalysisResult) -> dict[str, pd.DataFrame]:

@@ -17,9 +17,11 @@ from pathlib import Path
 import pandas as pd
 
 from ..errors import DataError, EstimationError, OutputError, RecordError
+from ..fpca.design import Sample
 from ..fpca.frame import arrays_from_frame
 from ..fpca.predictor import Predictor
-from ..inputs.checks import dataset_from_bytes, read_path, require_passed
+from ..inputs.files import read_path
+from ..inputs.loader import load_file, require_passed
 from ..inputs.spec import Spec, spec_from_bytes
 from .integrity import check_integrity
 from .record import load_record
@@ -44,7 +46,7 @@ class StoredFit:
         run's level).
         """
         codes, t, y, labels = arrays_from_frame(frame, "subject", "time", "value")
-        out = self.predictor.predict(codes, t, y, labels)
+        out = self.predictor.predict(Sample.from_arrays(codes, t, y), labels)
         if "group" in frame:
             per = frame.drop_duplicates("subject").set_index("subject")["group"]
             out.insert(1, "group", per.reindex(out.subject).to_numpy())
@@ -57,11 +59,12 @@ class StoredFit:
         outside the run's time domain.
         """
         path = Path(data)
-        raw, resolved = read_path(path, str(data), "the data file")
-        ds = dataset_from_bytes(raw, resolved, self.spec, design=False, shown=path.name)
+        raw = read_path(path, str(data), "the data file")
+        ds = load_file(self.spec, path, path.name, for_fit=True, design=False, raw=raw)
         require_passed(ds)
+        assert ds.readings is not None  # no check failed
         try:
-            return self.predict(ds.frame)
+            return self.predict(ds.readings.frame())
         except EstimationError as e:
             raise DataError(f"{path.name}: {e}") from e
 

@@ -26,12 +26,12 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from ..analysis.subjects import subject_table_names
 from ..errors import ReportgenError
 from ..inputs.files import current_sha256, sha256_bytes, sha256_file
 from ..inputs.spec import spec_from_bytes
 from ..report.render import render_pdf
 from ..report.subject_parts import MANIFEST, csv_of_part, read_manifest
-from ..report.tables import subject_table_names
 from .integrity import check_integrity
 from .record import environment, load_record
 from .writer import Built, build_outputs
@@ -232,7 +232,7 @@ def _numbers(run: Path, record: dict[str, Any], out: Verification, built: Built,
         bad += not ok
         out.add("numbers", f"table {name.removeprefix('tables/')}", "recorded", detail, ok)
     if built.parts:
-        for table in subject_table_names(built.result.spec):
+        for table in subject_table_names(built.result):
             ok, detail = _compare_parts(run, table, built, scratch)
             bad += not ok
             out.add("numbers", f"table {table} (parts)", "recorded", detail, ok)

@@ -24,8 +24,8 @@ from .._version import __version__
 from ..analysis.analyse import AnalysisResult, analyse
 from ..analysis.engine import Engine, local_engine, open_engine
 from ..errors import DataError, OutputError
-from ..inputs.checks import Dataset, load_dataset, require_passed
 from ..inputs.files import current_sha256, sha256_bytes
+from ..inputs.loader import Dataset, load_dataset, require_passed
 from ..inputs.spec import Spec, load_spec
 from ..report.render import render_html
 from ..report.render_process import RenderWorker
@@ -95,12 +95,12 @@ def build_outputs(spec: Spec, version: int, started: str,
     dataset = load_dataset(spec, run_on.executor, for_fit=True)
     require_passed(dataset)
     clock.lap("data")
-    result = analyse(spec, dataset, progress, clock.lap, run_on.executor)
-    dataset = result.dataset  # without the parts of many files, which the fit is done with
+    result = analyse(spec, dataset, progress, clock.lap)
+    dataset = result.dataset  # without its readings, which the fit is done with
     frames = build_tables(result)
     parts: dict[str, PartEntry] = {}
     listed: dict[str, bytes] = {}
-    if spec.subjects["tables"] == "parquet":
+    if spec.subjects.tables == "parquet":
         if parts_to is None:
             raise ValueError("subjects.tables: parquet needs a folder to write the parts to")
         for name, entries in write_subject_parts(result, parts_to, run_on.executor).items():
@@ -133,8 +133,8 @@ def build_outputs(spec: Spec, version: int, started: str,
             ("run started (UTC)", started),
             ("environment", f"Python {env['python']} on {env['platform']}; {packages}"),
             ("spec sha256", spec.sha256),
-            (f"data sha256 ({dataset.relpath})" if not dataset.parts else
-             f"data manifest sha256 ({dataset.relpath}, {len(dataset.parts)} Parquet files; "
+            (f"data sha256 ({dataset.relpath})" if not dataset.files else
+             f"data manifest sha256 ({dataset.relpath}, {len(dataset.files)} Parquet files; "
              "each file in record.json)", dataset.sha256),
             ("data bytes / rows", f"{dataset.n_bytes} / {dataset.rows_read}"),
             *((f"{f.role} sha256 ({f.path})", f.sha256) for f in style.inputs),
@@ -183,7 +183,7 @@ def _write(path: Path, data: bytes) -> None:
 def _still_the_same(dataset: Dataset) -> None:
     """Refuse to publish a run whose data file (or any of its files) changed while the run
     read it: its record would vouch for bytes it did not analyse."""
-    if current_sha256(dataset.path, dataset.relpath, bool(dataset.parts)) != dataset.sha256:
+    if current_sha256(dataset.path, dataset.relpath, bool(dataset.files)) != dataset.sha256:
         raise DataError(f"data.file {dataset.relpath!r} changed while the run read it (its "
                         "SHA-256 differs from the bytes analysed); no run was written, run "
                         "again when the data are complete")

@@ -13,7 +13,7 @@ import reportgen.analysis.analyse
 from reportgen import fit_sparse_fpca
 from reportgen.analysis.analyse import analyse
 from reportgen.fpca._kernels import compiled_on_disk
-from reportgen.inputs.checks import load_dataset
+from reportgen.inputs.loader import load_dataset
 from reportgen.inputs.spec import load_spec
 
 from .conftest import ROOT
@@ -39,7 +39,7 @@ def test_compile_note_only_when_the_cache_is_cold(warm: bool, tmp_path: Path,
     monkeypatch.setattr(reportgen.analysis.analyse, "compiled_on_disk", lambda: warm)
     said: list[str] = []
     spec = load_spec(tmp_path / "clinic_visits.yaml")
-    analyse(spec, load_dataset(spec), said.append)
+    analyse(spec, load_dataset(spec, for_fit=True), said.append)
     notes = [m for m in said if m.startswith("compiling the numerical kernels")]
     assert len(notes) == (0 if warm else 1)
     if notes:

@@ -20,7 +20,8 @@ import pytest
 import yaml
 
 from reportgen.errors import DataError
-from reportgen.inputs.files import Part, current_digest, digest
+from reportgen.inputs.files import DataFile as Part
+from reportgen.inputs.files import current_digest, digest
 from reportgen.runs.writer import run_spec
 
 from .conftest import ROOT, cli, pump_folder
@@ -210,7 +211,7 @@ def test_a_glob_names_the_same_files_as_the_folder(tmp_path: Path) -> None:
 
 def test_missing_ids_are_not_a_split_subject(tmp_path: Path) -> None:
     # rows without an id are the missing-values check's matter, in whichever files they are
-    from reportgen.inputs.checks import load_dataset
+    from reportgen.inputs.loader import load_dataset
     from reportgen.inputs.spec import load_spec
 
     _split(tmp_path / "readings")
@@ -245,10 +246,10 @@ def _ordered(frame: pd.DataFrame) -> pd.DataFrame:
 
 def _held_readings(spec: Path) -> pd.DataFrame:
     """The readings of a folder as the fit's parts hold them, with their subjects' ids."""
-    from reportgen.inputs.checks import load_dataset
+    from reportgen.inputs.loader import load_dataset
     from reportgen.inputs.spec import load_spec
 
-    held = load_dataset(load_spec(spec), for_fit=True).held
+    held = load_dataset(load_spec(spec), for_fit=True).readings
     assert held is not None
     frames = [pd.DataFrame({"subject": held.ids[p.subjects[p.sample.subject]],
                             "time": p.sample.t, "value": p.sample.y}) for p in held.parts]
@@ -256,11 +257,12 @@ def _held_readings(spec: Path) -> pd.DataFrame:
 
 
 def _checks_of(spec: Path) -> tuple[dict[str, tuple[str, str]], pd.DataFrame]:
-    from reportgen.inputs.checks import load_dataset
+    from reportgen.inputs.loader import load_dataset
     from reportgen.inputs.spec import load_spec
 
-    ds = load_dataset(load_spec(spec))
-    return {c.name: (c.status, c.detail) for c in ds.checks}, ds.frame
+    ds = load_dataset(load_spec(spec), for_fit=True)
+    readings = ds.readings.frame() if ds.readings is not None else pd.DataFrame()
+    return {c.name: (c.status, c.detail) for c in ds.checks}, readings
 
 
 def _messy(tmp_path: Path, **checks: str) -> tuple[Path, Path]:
@@ -303,9 +305,9 @@ def test_the_checks_over_files_say_what_one_file_says(tmp_path: Path, duplicates
     assert here["duplicate readings"][0] == {"average": "warn", "fail": "fail"}[duplicates]
     assert here["values in declared range"][0] == "warn"
     assert here["times in declared domain"][1].endswith("(dropped)")
-    assert frame.empty  # the readings of many files stay where they were read
     if duplicates == "average":  # the files' cleaned readings are the one file's
         pd.testing.assert_frame_equal(_held_readings(folder), _ordered(whole))
+        pd.testing.assert_frame_equal(_ordered(frame), _ordered(whole))
 
 
 def test_a_step_that_fails_in_some_files_fails_over_all(tmp_path: Path) -> None:
@@ -356,7 +358,7 @@ def test_reading_many_files_brings_back_nothing_per_reading(tmp_path: Path) -> N
     # subjects: what the reading passes bring back (pickled, as a cluster sends it to its
     # client) stays the same size.
     from reportgen.fpca.executor import InProcess
-    from reportgen.inputs.checks import load_dataset
+    from reportgen.inputs.loader import load_dataset
     from reportgen.inputs.spec import load_spec
 
     class Counting(InProcess):
@@ -378,7 +380,7 @@ def test_reading_many_files_brings_back_nothing_per_reading(tmp_path: Path) -> N
             frame.to_parquet(path, index=False)
         counting = Counting()
         ds = load_dataset(load_spec(_spec(tmp_path, folder.name)), counting, for_fit=True)
-        assert not ds.failed and ds.held is not None
+        assert not ds.failed and ds.readings is not None
         assert ds.rows_read == copies * len(pd.read_csv(ROOT / "specs" / "clinic_visits.csv"))
         sent.append(counting.sent)
     few, many = sent
@@ -423,7 +425,7 @@ def test_a_file_a_task_cannot_find_is_named_with_the_likely_cause(tmp_path: Path
                                                                   ) -> None:
     # Listed by the reportgen process, gone where the task runs (as on a worker that does
     # not mount the data): the error names the file and says what workers need.
-    from reportgen.inputs import folder
+    from reportgen.inputs import loader as folder
 
     _split(tmp_path / "readings")
     listed = folder.list_files
@@ -459,7 +461,7 @@ def test_the_union_of_the_files_ids_is_pandas_factorize() -> None:
     # the union replaced): the same codes and the same sorted ids, of the same dtype.
     import pandas as pd
 
-    from reportgen.inputs.folder import _sorted_union
+    from reportgen.inputs.loader import _sorted_union
 
     rng = np.random.default_rng(4)
     words = np.array(["b", "a", "ä", "Z", "a1", "a10", "a2", "ß", "b ", "€x", "10", "9"])

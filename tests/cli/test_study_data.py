@@ -20,7 +20,7 @@ from reportgen.cli import main
 from reportgen.errors import DataError, EstimationError, SpecError
 from reportgen.fpca import fit_arrays
 from reportgen.fpca.frame import arrays_from_frame
-from reportgen.inputs.checks import load_dataset
+from reportgen.inputs.loader import load_dataset
 from reportgen.inputs.readers import parse_table, sniff_delimiter
 from reportgen.inputs.spec import load_spec
 
@@ -95,15 +95,18 @@ def test_a_run_from_sas_transport_equals_the_run_from_csv(dietox: pd.DataFrame,
     _statistical_files(dietox, tmp_path)
     dietox.to_csv(tmp_path / "dietox.csv", index=False)
     cols = "subject: Pig, time: Time, value: Weight"
-    by_csv = load_dataset(load_spec(_write(tmp_path, "c", f"file: dietox.csv, {cols}")))
-    by_xpt = load_dataset(load_spec(_write(tmp_path, "x", f"file: dietox.xpt, {cols}")))
-    pd.testing.assert_frame_equal(by_csv.frame, by_xpt.frame)
+    by_csv = load_dataset(load_spec(_write(tmp_path, "c", f"file: dietox.csv, {cols}")),
+                          for_fit=True)
+    by_xpt = load_dataset(load_spec(_write(tmp_path, "x", f"file: dietox.xpt, {cols}")),
+                          for_fit=True)
+    assert by_csv.readings is not None and by_xpt.readings is not None
+    pd.testing.assert_frame_equal(by_csv.readings.frame(), by_xpt.readings.frame())
     present = by_xpt.checks[0].detail
     assert "Time (label 'Week on trial'" in present and "(xpt)" in present
     assert by_xpt.labels == {"time": "Week on trial", "value": "Live weight"}
     spec = load_spec(_write(tmp_path, "xl", f"file: dietox.xpt, {cols}, value_label: Body "
                                             "weight"))
-    result = analyse(spec, load_dataset(spec))
+    result = analyse(spec, load_dataset(spec, for_fit=True))
     # display labels: the spec's, else the file's, else the column name
     assert (result.time_label, result.value_label) == ("Week on trial", "Body weight")
 
@@ -119,12 +122,13 @@ def test_rows_are_kept_by_declared_conditions(dietox: pd.DataFrame, tmp_path: Pa
         tmp_path, "k", "file: adam.csv, subject: Pig, time: Time, value: AVAL, keep_rows: ["
         "{column: PARAMCD, equals: Weight}, {column: ANL01FL, in: [Y]}, "
         "{column: Time, between: [2, 11]}]"))
-    ds = load_dataset(spec)
+    ds = load_dataset(spec, for_fit=True)
+    assert ds.readings is not None
     step1 = long.PARAMCD == "Weight"
     step2 = step1 & (long.ANL01FL == "Y")
     step3 = step2 & long.Time.between(2, 11)
-    assert len(ds.frame) == int(step3.sum())
-    assert sorted(ds.frame.value) == sorted(long.AVAL[step3])
+    assert len(ds.readings.frame()) == int(step3.sum())
+    assert sorted(ds.readings.frame().value) == sorted(long.AVAL[step3])
     detail = next(c for c in ds.checks if c.name == "row selection").detail
     assert detail == (f"{len(long)} rows read; PARAMCD equals 'Weight': "
                       f"{int((~step1).sum())} dropped; ANL01FL in ['Y']: "
@@ -161,9 +165,9 @@ def test_time_from_dates_with_each_kind_of_origin(dietox: pd.DataFrame, tmp_path
     def times(origin: str, scale: str = "weeks") -> np.ndarray:
         spec = load_spec(_write(tmp_path, "d", f"{cols}, time_origin: {origin}, "
                                                f"time_scale: {scale}"))
-        ds = load_dataset(spec)
-        assert not ds.failed, ds.failed
-        return ds.frame.sort_values(["subject", "time"]).time.to_numpy()
+        ds = load_dataset(spec, for_fit=True)
+        assert not ds.failed and ds.readings is not None, ds.failed
+        return ds.readings.frame().sort_values(["subject", "time"]).time.to_numpy()
 
     truth = frame.sort_values(["Pig", "Time"])
     np.testing.assert_allclose(times("{column: BASEDT}"), truth.Time, atol=1e-12)
@@ -195,7 +199,7 @@ def test_init_guesses_columns_by_name_and_type(tmp_path: Path,
         target = tmp_path / f"{name}.yaml"
         assert main(["init", str(tmp_path / f"{name}.csv"), str(target)]) == 0
         spec = load_spec(target)
-        assert (spec.data["subject"], spec.data["time"], spec.data["value"]) == expected
+        assert (spec.data.subject, spec.data.time, spec.data.value) == expected
         text = target.read_text()
         for col in data.columns:  # every column is listed for the user to correct
             assert f"#   {col}: " in text, col
@@ -208,8 +212,9 @@ def test_init_guesses_columns_by_name_and_type(tmp_path: Path,
     data.drop(columns="Time").to_csv(tmp_path / "visits.csv", index=False)
     assert main(["init", str(tmp_path / "visits.csv"), str(tmp_path / "visits.yaml")]) == 0
     spec = load_spec(tmp_path / "visits.yaml")
-    assert spec.data["time"] == "visit_date"
-    assert spec.data["time_origin"] == "first" and spec.data["time_scale"] == "days"
+    assert spec.data.time == "visit_date"
+    assert spec.data.time_origin is not None and spec.data.time_origin.kind == "first"
+    assert spec.data.time_scale == "days"
     assert main(["check", str(tmp_path / "visits.yaml")]) == 0
 
 
@@ -238,7 +243,7 @@ def test_a_semicolon_file_is_read_and_said_so(tmp_path: Path) -> None:
     ds = load_dataset(load_spec(_write(tmp_path, "s", "file: semi.csv, subject: id, time: t, "
                                                       "value: y")))
     assert "fields separated by semicolons" in ds.checks[0].detail
-    assert len(ds.frame) == 36
+    assert ds.rows_read == 36
     (tmp_path / "one.csv").write_text("id:t:y\n" + "a:1:2\n" * 3)
     with pytest.raises(DataError, match="the file has a single column: is it separated by "
                                         "something other than"):
@@ -259,10 +264,12 @@ def test_readings_outside_the_domain_are_refused_or_dropped_alike(tmp_path: Path
     assert check.status == "fail" and check.detail.startswith(f"{outside} readings at times "
                                                               "outside [0, 200] (refused")
     ds = load_dataset(load_spec(_write(tmp_path, "b", cols, "model: {domain: [0, 200]}\n"
-                                                          "checks: {out_of_domain: drop}\n")))
+                                                          "checks: {out_of_domain: drop}\n")),
+                      for_fit=True)
     check = next(c for c in ds.checks if c.name == "times in the fitted domain")
     assert check.status == "warn" and check.detail.startswith(f"{outside} readings")
-    assert len(ds.frame) == int((data.time <= 200).sum())
+    assert ds.readings is not None
+    assert len(ds.readings.frame()) == int((data.time <= 200).sum())
     # the Python API: refuses by default, drops on request, like the spec
     with pytest.raises(DataError, match=f"{outside} readings lie outside the domain"):
         fit_sparse_fpca(data, subject="Subject", time="time", value="conc", domain=[0, 200])

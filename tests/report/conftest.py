@@ -42,7 +42,7 @@ def styled(regenerated: dict[str, Path]) -> dict[tuple[str, str], tuple[bytes, b
     from dataclasses import replace
 
     from reportgen.analysis.analyse import analyse
-    from reportgen.inputs.checks import load_dataset
+    from reportgen.inputs.loader import load_dataset
     from reportgen.inputs.spec import load_spec
     from reportgen.report.figures import make_figures
     from reportgen.report.render import render_html, render_pdf
@@ -51,7 +51,7 @@ def styled(regenerated: dict[str, Path]) -> dict[tuple[str, str], tuple[bytes, b
     out = {}
     for name in EXAMPLES:
         spec = load_spec(regenerated[name].parents[2] / f"{name}.yaml")
-        result = analyse(spec, load_dataset(spec))
+        result = analyse(spec, load_dataset(spec, for_fit=True))
         figures = make_figures(result)
         record_view = {"items": [("tool", "reportgen test"), ("run started (UTC)",
                                                                "2025-12-01T00:00:00Z")],

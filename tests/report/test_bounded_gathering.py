@@ -15,11 +15,11 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from reportgen.analysis import analyse as analysis
+from reportgen.analysis import views as analysis
 from reportgen.analysis.analyse import analyse
 from reportgen.fpca import fit as fit_module
 from reportgen.fpca.plan import InProcess
-from reportgen.inputs.checks import load_dataset
+from reportgen.inputs.loader import load_dataset
 from reportgen.inputs.spec import load_spec
 from reportgen.report.subject_parts import write_subject_parts
 
@@ -60,7 +60,7 @@ def _run(tmp_path: Path, n: int) -> tuple[_Counting, Any]:
     (folder / "s.yaml").write_text(text)
     spec = load_spec(folder / "s.yaml")
     counting = _Counting()
-    result = analyse(spec, load_dataset(spec), executor=counting)
+    result = analyse(spec, load_dataset(spec, counting, for_fit=True))
     written = write_subject_parts(result, folder / "run", counting)
     assert result.fit.n_subjects == n and result.groups is not None
     assert sum(e.rows for e in written["scores"]) == n

@@ -13,7 +13,7 @@ from pathlib import Path
 import pandas as pd
 import pytest
 
-from reportgen.report.render import NAMED_FLAGGED
+from reportgen.analysis.views import NAMED_FLAGGED
 from reportgen.runs.writer import run_spec
 
 CASES = {

@@ -15,7 +15,7 @@ import pandas as pd
 import pytest
 
 from reportgen.analysis.analyse import AnalysisResult, analyse
-from reportgen.inputs.checks import load_dataset
+from reportgen.inputs.loader import load_dataset
 from reportgen.inputs.spec import load_spec
 
 ROOT = Path(__file__).resolve().parents[2]
@@ -35,7 +35,7 @@ def _analyse(tmp_path: Path, name: str, spec_edit: tuple[str, str] = ("", ""),
     else:
         data.to_csv(folder / "clinic_visits.csv", index=False)
     spec = load_spec(folder / "s.yaml")
-    return analyse(spec, load_dataset(spec))
+    return analyse(spec, load_dataset(spec, for_fit=True))
 
 
 @pytest.fixture(scope="module")
@@ -126,7 +126,7 @@ def test_spread_trend_is_spearmans_rho() -> None:
     # Reference: scipy.stats.spearmanr (general-purpose library), on values with ties.
     from scipy.stats import spearmanr
 
-    from reportgen.analysis.analyse import spread_trend
+    from reportgen.analysis.views import spread_trend
 
     rng = np.random.default_rng(9)
     fitted = rng.integers(0, 20, 300).astype(float)
@@ -144,8 +144,8 @@ def test_flagged_subjects_named_up_to_the_cap(base: AnalysisResult) -> None:
     # passes over the kept scores; the reference is numpy on every subject's scores.
     from dataclasses import asdict, replace
 
-    from reportgen.analysis.analyse import subject_view
-    from reportgen.report.render import NAMED_FLAGGED, build_sections
+    from reportgen.analysis.views import NAMED_FLAGGED, subject_view
+    from reportgen.report.render import build_sections
 
     fit = base.fit
     view = subject_view(fit, base.residual_sums, 0.5, base.subjects_view.sampled,
@@ -170,7 +170,7 @@ def test_residual_diagnostics_over_a_sample_say_so(base: AnalysisResult, tmp_pat
     # sample's readings (reference: scipy.stats.spearmanr). At or below it, every subject.
     from scipy.stats import spearmanr
 
-    from reportgen.analysis import analyse as analysis
+    from reportgen.analysis import views as analysis
     from reportgen.report.render import _over_sample
 
     assert base.readings.n_sampled == base.fit.n_subjects and _over_sample(base) == ""
@@ -186,7 +186,7 @@ def test_residual_diagnostics_over_a_sample_say_so(base: AnalysisResult, tmp_pat
     assert _over_sample(res) == (f"; over the {len(sampled):,} readings of a seeded sample "
                                  f"of 40 of the {n:,} subjects")
     # the per-subject table covers every subject, as does the summary's sample here
-    from reportgen.report.tables import subject_tables
+    from reportgen.analysis.subjects import every_subject_frames as subject_tables
 
     table = subject_tables(res)["residuals_by_subject"]
     assert len(table) == n and res.subjects_view.sample_words() == ""

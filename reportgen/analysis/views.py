@@ -1,0 +1,255 @@
+"""What the report holds of the readings and of every subject, at a size that does not grow
+with them: the residual diagnostics' readings (:class:`ReadingView`), and the scores,
+distances and residual summaries of a sample of subjects with the farthest and worst of
+all (:class:`SubjectView`). The per-subject results themselves stay with the data's parts.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, replace
+
+import numpy as np
+import pandas as pd
+from scipy.special import chdtri
+
+from ..fpca.design import Sample, seeded_sample
+from ..fpca.diagnostics import (
+    axis,
+    cell_counts,
+    check_readings,
+    distances,
+    part_farthest,
+    part_largest_rms,
+    residual_summary,
+)
+from ..fpca.plan import Kept, Partitioned
+from ..fpca.result import FPCAFit
+
+# The residual diagnostics (figure, spread trend) use the readings of at most this many
+# subjects, a seeded sample above it: at 20 000 subjects (about 10^5 readings) the
+# Spearman correlation's standard error is about 0.003, against a caveat threshold of 0.2.
+DIAGNOSTIC_MAX_SUBJECTS = 20000
+# What the report shows of every subject's scores and residual summary (the score figures,
+# the group test, the median and 90th percentile of the RMS standardized residuals) comes
+# from at most this many subjects, a seeded sample above it ((2 + K + K^2) x 8 bytes each
+# are gathered). The tables of subjects, the count of flagged subjects and the farthest and
+# worst ones cover every subject (passes over the results kept with the parts).
+SUBJECT_SAMPLE_MAX = 200_000
+# The flagged subjects the report names (the farthest first): a large study flags thousands,
+# and the table of scores holds them all; and the subjects of the table of the largest RMS
+# standardized residuals.
+NAMED_FLAGGED = 20
+WORST_SHOWN = 10
+
+
+@dataclass(frozen=True)
+class ReadingView:
+    """What the report holds of the readings, at a size that does not grow with them.
+
+    Attributes
+    ----------
+    n_readings : int
+    n_sampled : int
+        Subjects in the residual sample: all of them up to DIAGNOSTIC_MAX_SUBJECTS, a seeded
+        sample of that many above it.
+    frame : DataFrame
+        The readings of the sampled and of the shown subjects: subject, time, value,
+        fitted, residual, standardized, sampled (the subject is in the residual sample).
+    density : ndarray
+        All readings counted in equal cells of ``time_axis`` x ``value_axis``
+        (each axis: low, high, cells).
+    """
+
+    n_readings: int
+    n_sampled: int
+    frame: pd.DataFrame
+    density: np.ndarray
+    time_axis: tuple[float, float, int]
+    value_axis: tuple[float, float, int]
+
+    @property
+    def residuals(self) -> pd.DataFrame:
+        """The readings of the residual sample."""
+        return self.frame[self.frame.sampled.to_numpy()]
+
+    def empty(self) -> ReadingView:
+        return replace(self, frame=self.frame.iloc[:0])
+
+    def sample_words(self, n_subjects: int) -> str:
+        """What the residual diagnostics are drawn from when it is a sample ("" when it is
+        every subject)."""
+        if self.n_sampled == n_subjects:
+            return ""
+        return (f"the {len(self.residuals):,} readings of a seeded sample of "
+                f"{self.n_sampled:,} of the {n_subjects:,} subjects")
+
+
+@dataclass(frozen=True)
+class SubjectView:
+    """What the report holds of every subject's results, at a size that does not grow with
+    the subjects (the rest stay with the parts, for the tables of subjects).
+
+    Attributes
+    ----------
+    n_subjects : int
+    sampled : ndarray
+        Codes of the subjects held (increasing): every subject up to SUBJECT_SAMPLE_MAX, a
+        seeded sample of that many above it.
+    scores, distance2, rms : ndarray
+        Their scores (n_sampled, K), squared Mahalanobis distances and RMS standardized
+        residuals.
+    cut : float
+        A subject is flagged when its squared distance exceeds it.
+    n_flagged : int
+        Flagged subjects, of every subject.
+    farthest : DataFrame
+        The NAMED_FLAGGED farthest flagged subjects, farthest first: code, subject,
+        distance2, score_1 .. score_K.
+    worst : DataFrame
+        The WORST_SHOWN subjects with the largest RMS standardized residual: subject,
+        n_obs, mean_residual, rms_standardized.
+    """
+
+    n_subjects: int
+    sampled: np.ndarray
+    scores: np.ndarray
+    distance2: np.ndarray
+    rms: np.ndarray
+    cut: float
+    n_flagged: int
+    farthest: pd.DataFrame
+    worst: pd.DataFrame
+
+    @property
+    def flagged(self) -> np.ndarray:
+        """Whether each sampled subject is flagged."""
+        return np.asarray(self.distance2 > self.cut)
+
+    def sample_words(self) -> str:
+        """The sample's description ("" when it is every subject)."""
+        if self.sampled.size == self.n_subjects:
+            return ""
+        return f"a seeded sample of {self.sampled.size:,} of the {self.n_subjects:,} subjects"
+
+    def empty(self) -> SubjectView:
+        return replace(self, sampled=self.sampled[:0], scores=self.scores[:0],
+                       distance2=self.distance2[:0], rms=self.rms[:0])
+
+
+def reading_view(data: Partitioned, fit: FPCAFit, shown: np.ndarray
+                 ) -> tuple[ReadingView, Kept, pd.DataFrame]:
+    """The pass that holds the fit against every reading (``fpca.diagnostics``): what the
+    report shows of the readings, the per-subject residual sums (kept with the parts), and
+    the trajectories of the shown subjects (``shown``: their codes, increasing) from their
+    readings."""
+    sampled = seeded_sample(fit.n_subjects, DIAGNOSTIC_MAX_SUBJECTS, fit.options.seed)
+    chosen = np.union1d(sampled, shown).astype(np.intp)
+    found = check_readings(data, fit.kept_scores, fit.predictor, chosen)
+    codes = found.readings["subject"]
+    frame = pd.DataFrame({**found.readings, "subject": fit.subjects[codes],
+                          "sampled": np.isin(codes, sampled)})
+    view = ReadingView(fit.n_readings, int(sampled.size), frame, found.density,
+                       found.time_axis, found.value_axis)
+    mine = np.isin(codes, shown)
+    readings = Sample.from_arrays(np.searchsorted(shown, codes[mine]),
+                                  found.readings["time"][mine], found.readings["value"][mine])
+    trajectories = fit.trajectories(list(fit.subjects[shown]), readings=readings)
+    return view, found.sums, trajectories
+
+
+def subject_sample(fit: FPCAFit) -> tuple[np.ndarray, np.ndarray]:
+    """The codes of the subjects whose results the report gathers (every subject up to
+    SUBJECT_SAMPLE_MAX, a seeded sample above it), and their scores."""
+    drawn = seeded_sample(fit.n_subjects, SUBJECT_SAMPLE_MAX, fit.options.seed)
+    return drawn, fit.kept_scores.pick(drawn)[0]
+
+
+def flag_cut(n_components: int, quantile: float) -> float:
+    """The squared distance above which a subject is flagged: the chi-square(K) quantile."""
+    return float(chdtri(n_components, 1.0 - quantile))
+
+
+def _largest(frame: pd.DataFrame, column: str, n: int) -> pd.DataFrame:
+    """The ``n`` rows with the largest ``column`` (NaN last), ties by subject."""
+    values = np.nan_to_num(frame[column].to_numpy(dtype=np.float64), nan=-np.inf)
+    order = np.lexsort((frame.subject.to_numpy(), -values))
+    return frame.iloc[order[:n]].reset_index(drop=True)
+
+
+def subject_view(fit: FPCAFit, sums: Kept, quantile: float, sampled: np.ndarray,
+                 sampled_scores: np.ndarray) -> SubjectView:
+    """What the report shows of every subject: the sample's values (``sampled``, with
+    their ``sampled_scores``) and two passes over the kept results, for the farthest
+    flagged subjects and the largest RMS standardized residuals."""
+    cut = flag_cut(fit.n_components, quantile)
+    kept = fit.kept_scores
+    found = kept.map(part_farthest, shared=(fit.eigenvalues, cut, NAMED_FLAGGED))
+    codes = np.concatenate([c[f[1]] for c, f in zip(kept.subjects, found, strict=True)])
+    d2 = np.concatenate([f[2] for f in found])
+    order = np.lexsort((codes, -d2))[:NAMED_FLAGGED]
+    farthest = pd.DataFrame({"code": codes[order], "subject": fit.subjects[codes[order]],
+                             "distance2": d2[order]})
+    top = np.concatenate([f[3] for f in found])[order]
+    for k in range(fit.n_components):
+        farthest[f"score_{k + 1}"] = top[:, k]
+    worst = sums.map(part_largest_rms, [(fit.n_obs[c],) for c in sums.subjects],
+                     (WORST_SHOWN,))
+    codes = np.concatenate([c[w[0]] for c, w in zip(sums.subjects, worst, strict=True)])
+    candidates = pd.DataFrame({"subject": fit.subjects[codes], "n_obs": fit.n_obs[codes],
+                               "mean_residual": np.concatenate([w[1] for w in worst]),
+                               "rms_standardized": np.concatenate([w[2] for w in worst])})
+    _, rms = residual_summary(sums.pick(sampled), fit.n_obs[sampled])
+    return SubjectView(fit.n_subjects, sampled, sampled_scores,
+                       distances(sampled_scores, fit.eigenvalues), rms, cut,
+                       sum(f[0] for f in found), farthest,
+                       _largest(candidates, "rms_standardized", WORST_SHOWN))
+
+
+def density(x: np.ndarray, y: np.ndarray, cells: tuple[int, int]
+            ) -> tuple[np.ndarray, tuple[tuple[float, float, int], ...]]:
+    """Counts of the points (x, y) in ``cells`` equal cells over their range, and the two
+    axes (low, high, cells): how the report draws many points as an image."""
+    axes = tuple(axis(float(v.min()), float(v.max()), n) for v, n in ((x, cells[0]),
+                                                                        (y, cells[1])))
+    return cell_counts(x, y, axes), axes
+
+
+def spread_trend(residuals: pd.DataFrame) -> float:
+    """Spearman correlation of |standardized residual| with the fitted value: the Pearson
+    correlation of their average ranks (its definition; pandas' own method="spearman"
+    imports scipy.stats, a second of start-up for one number)."""
+    columns = (np.abs(residuals.standardized.to_numpy(dtype=np.float64)),
+               residuals.fitted.to_numpy(dtype=np.float64))
+    if columns[0].size > 100_000:  # numpy sorts without the GIL: two cores, half the time
+        from concurrent.futures import ThreadPoolExecutor
+
+        with ThreadPoolExecutor(2) as pool:
+            size, fitted = pool.map(average_ranks, columns)
+    else:
+        size, fitted = map(average_ranks, columns)
+    size -= size.mean()
+    fitted -= fitted.mean()
+    den = math.sqrt(float(size @ size) * float(fitted @ fitted))
+    return float(size @ fitted) / den if den > 0 else float("nan")
+
+
+def average_ranks(x: np.ndarray) -> np.ndarray:
+    """Ranks 1..n of finite values, ties given the average of their ranks: one sort, a
+    third of the memory of pandas' rank when no value repeats (benchmarks/RESULTS.md)."""
+    if x.size == 0:
+        return np.zeros(0)
+    order = np.argsort(x)  # ties get one average rank: the sort need not be stable
+    xs = x[order]
+    new = np.empty(x.size, dtype=bool)
+    new[0] = True
+    np.not_equal(xs[1:], xs[:-1], out=new[1:])
+    del xs
+    ranks = np.empty(x.size)
+    if new.all():  # no ties, as with continuous values
+        ranks[order] = np.arange(1.0, x.size + 1.0)
+        return ranks
+    first = np.flatnonzero(new)
+    last = np.append(first[1:], x.size) - 1
+    ranks[order] = np.repeat((first + last) / 2.0 + 1.0, last - first + 1)
+    return ranks
