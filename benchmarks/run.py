@@ -49,8 +49,8 @@ from reportgen.fpca.smoothing import (  # noqa: E402
     bin_1d,
     local_linear_binned_1d,
     local_linear_binned_2d,
-    local_linear_exact_1d,
 )
+from tests.reference.exact_smoothers import local_linear_exact_1d  # noqa: E402
 
 
 def simulate(n: int, seed: int = 0, max_readings: int = 15

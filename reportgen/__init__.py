@@ -15,7 +15,6 @@ import typing as _typing
 
 from .errors import (
     DataError,
-    DegenerateDataWarning,
     EngineError,
     EstimationError,
     OutputError,
@@ -34,7 +33,6 @@ from ._version import __version__
 
 __all__ = [
     "DataError",
-    "DegenerateDataWarning",
     "EngineError",
     "EstimationError",
     "FPCAFit",

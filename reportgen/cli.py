@@ -133,7 +133,8 @@ def _cmd_verify(args: argparse.Namespace) -> int:
                  for r in result.rows])
     print()
     for part in ("integrity", "inputs", "numbers", "rendering"):
-        print(f"{part}: {result.verdicts.get(part, 'not checked')}")
+        verdict = result.verdicts.get(part)
+        print(f"{part}: {verdict.text if verdict is not None else 'not checked'}")
     for note in result.notes:
         print(f"note: {note}")
     return _summary("verify", result.problems, "everything matches")
@@ -212,12 +213,12 @@ def _cmd_init(args: argparse.Namespace) -> int:
 
 
 def _cmd_predict(args: argparse.Namespace) -> int:
-    from .runs.stored_fit import load_fit, summary, write_table
+    from .runs.stored_fit import load_fit, prediction_size, write_table
 
     fit = load_fit(args.run_dir)
     frame = fit.predict_file(args.data)
     path = write_table(frame, args.out)
-    subjects, rows = summary(frame)
+    subjects, rows = prediction_size(frame)
     transform = fit.spec.data.transform
     scale = "" if transform == "none" else f", on the {transform} scale the run analysed"
     print(f"predictions written: {path} ({subjects} subjects, {rows} rows; scores and "

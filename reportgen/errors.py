@@ -1,4 +1,4 @@
-"""Exceptions and warnings raised by reportgen.
+"""The exceptions reportgen raises on purpose.
 
 Hierarchy::
 
@@ -8,18 +8,13 @@ Hierarchy::
     ├── EstimationError            the data cannot support the requested estimate
     ├── OutputError                the run directory cannot be written
     ├── TemplateError              the report template cannot be rendered safely
-    └── EngineError                the chosen engine cannot start (Dask missing, scheduler
-                                   unreachable, an option that does not apply)
-
-    RecordError(ReportgenError)    a run directory's record is missing or damaged
-
-    DegenerateDataWarning(UserWarning)
-                                   the fit went through but something was floored, dropped
-                                   or extrapolated; the report lists every such warning
+    ├── EngineError                the chosen engine cannot run the passes (Dask missing,
+    │                              scheduler unreachable, a cluster lost during the run)
+    └── RecordError                a run directory's record is missing or damaged
 
 The numerical core (``reportgen.fpca``) raises only ``EstimationError`` and never warns
-through :mod:`warnings`: it returns its warnings as strings on the result so that the
-report can show them and the tests can assert them.
+through :mod:`warnings`: it returns what it noticed as strings on the result
+(``FPCAFit.warnings``), so that the report can show them and the tests can assert them.
 """
 
 from __future__ import annotations
@@ -56,6 +51,3 @@ class EngineError(ReportgenError):
 class RecordError(ReportgenError):
     """A run directory's record.json is missing, unreadable or structurally damaged."""
 
-
-class DegenerateDataWarning(UserWarning):
-    """The fit went through with a floor, a dropped eigenvalue or an extrapolated region."""

@@ -17,13 +17,13 @@ from reportgen.fpca import fit_arrays
 from reportgen.fpca.design import Sample
 from reportgen.fpca.frame import arrays_from_frame
 from reportgen.fpca.groups import (
-    compare_groups,
-    group_mean,
     permutation_count,
     permutation_test,
     pillai_trace,
 )
 from reportgen.fpca.options import FPCAOptions
+
+from .parts import compare_groups_of, group_mean
 
 
 @pytest.fixture(scope="module")
@@ -120,7 +120,7 @@ def test_group_mean_at_a_huge_bandwidth_is_ols_with_cluster_robust_errors(
 def test_compare_groups_orders_labels_and_counts(dietox: pd.DataFrame, fitted) -> None:  # type: ignore[no-untyped-def]
     codes, t, y, labels, fit = fitted
     per_pig = dietox.drop_duplicates("Pig").set_index("Pig").Evit.reindex(labels).to_numpy()
-    g = compare_groups(fit, codes, t, y, per_pig.astype(str))
+    g = compare_groups_of(fit, codes, t, y, per_pig.astype(str))
     assert g.labels == ("Evit000", "Evit100", "Evit200")
     assert g.n_subjects.tolist() == [int((per_pig == x).sum()) for x in g.labels]
     for i, label in enumerate(g.labels):

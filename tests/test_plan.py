@@ -20,12 +20,13 @@ from reportgen.errors import EstimationError
 from reportgen.fpca import FPCAOptions, fit_arrays
 from reportgen.fpca.design import Sample
 from reportgen.fpca.fit import fit_parts
-from reportgen.fpca.plan import InProcess, Partitioned, split_parts, tree_sum
+from reportgen.fpca.plan import InProcess, Partitioned, tree_sum
 from reportgen.fpca.result import FPCAFit
 from reportgen.fpca.smoothing import BinGrid
 
 from .counting import numbers_in
 from .designs import yao_design
+from .parts import compare_groups_of, split_parts
 
 OPTIONS = FPCAOptions(n_grid=41, band="corrected", bootstrap_replicates=4, seed=3)
 N_PARTS = 5
@@ -311,7 +312,7 @@ def test_the_diagnostics_bring_back_no_more_with_more_readings() -> None:
                                fit.predictor, CHOSEN)
         kept = int(found.readings["time"].size)
         assert "part_checks" not in counting.returned  # kept, not brought back
-        returned.append(counting.returned["_small"] - 5 * kept)
+        returned.append(counting.returned["checked_found"] - 5 * kept)
     assert returned[0] == returned[1]
 
 
@@ -327,13 +328,13 @@ def _groups_of(n: int) -> np.ndarray:
 
 def test_group_means_over_parts_are_those_of_the_whole_sample(readings: tuple,
                                                               in_process: tuple) -> None:
-    from reportgen.fpca.groups import compare_groups, compare_groups_on
+    from reportgen.fpca.groups import compare_groups
 
     codes, t, y, _ = readings
     fit, parts, _, _ = in_process
     groups = _groups_of(fit.n_subjects)
-    many = compare_groups_on(Partitioned.local(parts), fit, groups)
-    whole = compare_groups(fit, codes, t, y, groups)
+    many = compare_groups(Partitioned.local(parts), fit, groups)
+    whole = compare_groups_of(fit, codes, t, y, groups)
     assert many.labels == whole.labels == ("a", "b", "c")
     # sums added in another order: rounding only (common practice, no source)
     np.testing.assert_allclose(many.means, whole.means, rtol=1e-10)
@@ -343,12 +344,12 @@ def test_group_means_over_parts_are_those_of_the_whole_sample(readings: tuple,
 
 def test_group_means_on_a_dask_cluster_give_the_same_bits(on_dask: object, in_process: tuple
                                                           ) -> None:
-    from reportgen.fpca.groups import compare_groups_on
+    from reportgen.fpca.groups import compare_groups
 
     fit, parts, _, _ = in_process
     groups = _groups_of(fit.n_subjects)
-    here = compare_groups_on(Partitioned.local(parts), fit, groups)
-    there = compare_groups_on(Partitioned.of(on_dask, on_dask.place(parts)),  # type: ignore[attr-defined]
+    here = compare_groups(Partitioned.local(parts), fit, groups)
+    there = compare_groups(Partitioned.of(on_dask, on_dask.place(parts)),  # type: ignore[attr-defined]
                               fit, groups)
     assert here.means.tobytes() == there.means.tobytes()
     assert here.mean_se.tobytes() == there.mean_se.tobytes()

@@ -12,10 +12,9 @@ from reportgen.fpca.smoothing import (
     gaussian,
     local_linear_binned_1d,
     local_linear_binned_2d,
-    local_linear_exact_1d,
-    local_linear_exact_2d,
     local_quadratic_diagonal_2d,
 )
+from tests.reference.exact_smoothers import local_linear_exact_1d, local_linear_exact_2d
 
 
 @pytest.fixture

@@ -14,8 +14,8 @@ import pandas as pd
 from ..errors import EstimationError
 from ..fpca._kernels import compiled_on_disk
 from ..fpca.fit import fit_parts
-from ..fpca.groups import GroupComparison, compare_groups_on
-from ..fpca.plan import Kept, Partitioned
+from ..fpca.groups import GroupComparison, compare_groups
+from ..fpca.plan import Partitioned, PartResults
 from ..fpca.result import FPCAFit, Labels
 from ..inputs.loader import Dataset
 from ..inputs.spec import Spec
@@ -46,7 +46,7 @@ class AnalysisResult:
     sensitivity: tuple[SensitivityRun, ...]
     readings: ReadingView  # what the report holds of the readings
     subjects_view: SubjectView  # what the report holds of every subject's results
-    residual_sums: Kept  # per subject: sums of the residuals and squared standardized ones
+    residual_sums: PartResults  # per subject: sums of the residuals and squared standardized ones
     shown_subjects: tuple[str, ...]
     trajectories: pd.DataFrame  # of the shown subjects, in the fit's order (FPCAFit.trajectories)
     caveats: tuple[str, ...]
@@ -68,7 +68,7 @@ class AnalysisResult:
         return replace(self, dataset=replace(self.dataset, readings=None),
                        fit=self.fit.without_subjects(), sensitivity=runs,
                        readings=self.readings.empty(), subjects_view=self.subjects_view.empty(),
-                       residual_sums=Kept.of_arrays(np.zeros(0), np.zeros(0)),
+                       residual_sums=PartResults.of_arrays(np.zeros(0), np.zeros(0)),
                        subject_parts=())
 
     @property
@@ -157,7 +157,7 @@ def analyse(spec: Spec, ds: Dataset, progress: Progress = lambda _: None,
         progress("groups")
         assert held.groups is not None  # by code: fit.subjects' order
         subject_groups = tuple(str(g) for g in held.groups)
-        groups = compare_groups_on(data, fit, np.asarray(subject_groups),
+        groups = compare_groups(data, fit, np.asarray(subject_groups),
                                    tested=(drawn, drawn_scores))
         lap("groups")
     shown = _shown(fit, spec)

@@ -11,7 +11,7 @@ import numpy as np
 import pandas as pd
 
 from ..fpca.diagnostics import distances, residual_summary
-from ..fpca.plan import Kept
+from ..fpca.plan import PartResults
 from ..fpca.result import FPCAFit, Labels
 from .analyse import AnalysisResult
 
@@ -54,7 +54,7 @@ def subject_frames(fit: FPCAFit, ids: Labels, groups: np.ndarray | None, n_obs: 
                               "rms_standardized": rms})
     tables = {"scores": table, "residuals_by_subject": residuals}
     if curves:
-        held = replace(fit, subjects=ids, kept_scores=Kept.of_arrays(scores, cov))
+        held = replace(fit, subjects=ids, kept_scores=PartResults.of_arrays(scores, cov))
         tables["all_trajectories"] = _trajectory_table(held, groups)
     return tables
 

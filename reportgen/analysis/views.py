@@ -23,7 +23,7 @@ from ..fpca.diagnostics import (
     part_largest_rms,
     residual_summary,
 )
-from ..fpca.plan import Kept, Partitioned
+from ..fpca.plan import Partitioned, PartResults
 from ..fpca.result import FPCAFit
 
 # The residual diagnostics (figure, spread trend) use the readings of at most this many
@@ -138,7 +138,7 @@ class SubjectView:
 
 
 def reading_view(data: Partitioned, fit: FPCAFit, shown: np.ndarray
-                 ) -> tuple[ReadingView, Kept, pd.DataFrame]:
+                 ) -> tuple[ReadingView, PartResults, pd.DataFrame]:
     """The pass that holds the fit against every reading (``fpca.diagnostics``): what the
     report shows of the readings, the per-subject residual sums (kept with the parts), and
     the trajectories of the shown subjects (``shown``: their codes, increasing) from their
@@ -177,7 +177,7 @@ def _largest(frame: pd.DataFrame, column: str, n: int) -> pd.DataFrame:
     return frame.iloc[order[:n]].reset_index(drop=True)
 
 
-def subject_view(fit: FPCAFit, sums: Kept, quantile: float, sampled: np.ndarray,
+def subject_view(fit: FPCAFit, sums: PartResults, quantile: float, sampled: np.ndarray,
                  sampled_scores: np.ndarray) -> SubjectView:
     """What the report shows of every subject: the sample's values (``sampled``, with
     their ``sampled_scores``) and two passes over the kept results, for the farthest
@@ -185,24 +185,24 @@ def subject_view(fit: FPCAFit, sums: Kept, quantile: float, sampled: np.ndarray,
     cut = flag_cut(fit.n_components, quantile)
     kept = fit.kept_scores
     found = kept.map(part_farthest, shared=(fit.eigenvalues, cut, NAMED_FLAGGED))
-    codes = np.concatenate([c[f[1]] for c, f in zip(kept.subjects, found, strict=True)])
-    d2 = np.concatenate([f[2] for f in found])
+    codes = np.concatenate([c[f.rows] for c, f in zip(kept.subjects, found, strict=True)])
+    d2 = np.concatenate([f.distance2 for f in found])
     order = np.lexsort((codes, -d2))[:NAMED_FLAGGED]
     farthest = pd.DataFrame({"code": codes[order], "subject": fit.subjects[codes[order]],
                              "distance2": d2[order]})
-    top = np.concatenate([f[3] for f in found])[order]
+    top = np.concatenate([f.scores for f in found])[order]
     for k in range(fit.n_components):
         farthest[f"score_{k + 1}"] = top[:, k]
     worst = sums.map(part_largest_rms, [(fit.n_obs[c],) for c in sums.subjects],
                      (WORST_SHOWN,))
-    codes = np.concatenate([c[w[0]] for c, w in zip(sums.subjects, worst, strict=True)])
+    codes = np.concatenate([c[w.rows] for c, w in zip(sums.subjects, worst, strict=True)])
     candidates = pd.DataFrame({"subject": fit.subjects[codes], "n_obs": fit.n_obs[codes],
-                               "mean_residual": np.concatenate([w[1] for w in worst]),
-                               "rms_standardized": np.concatenate([w[2] for w in worst])})
+                               "mean_residual": np.concatenate([w.mean_residual for w in worst]),
+                               "rms_standardized": np.concatenate([w.rms for w in worst])})
     _, rms = residual_summary(sums.pick(sampled), fit.n_obs[sampled])
     return SubjectView(fit.n_subjects, sampled, sampled_scores,
                        distances(sampled_scores, fit.eigenvalues), rms, cut,
-                       sum(f[0] for f in found), farthest,
+                       sum(f.n_beyond for f in found), farthest,
                        _largest(candidates, "rms_standardized", WORST_SHOWN))
 
 

@@ -9,13 +9,13 @@ sample for the residual diagnostics and the few subjects a report shows).
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Any
+from typing import NamedTuple
 
 import numpy as np
 
 from .arrays import FloatArray, IntArray
 from .components import evaluate_at
-from .plan import Kept, Part, Partitioned, in_code_order
+from .plan import Part, Partitioned, PartResults, in_code_order
 from .predictor import Predictor
 
 # Cells of the density of all readings (time x value).
@@ -68,9 +68,26 @@ def axis(lo: float, hi: float, cells: int) -> tuple[float, float, int]:
     return (lo, hi, cells) if hi > lo else (lo - 0.5, hi + 0.5, cells)
 
 
+class Found(NamedTuple):
+    """What the pass brings back of a part: the density of its readings, and the readings
+    of the chosen subjects (``readings``: time, value, fitted, residual, standardized) with
+    each one's reading count."""
+
+    density: IntArray
+    sizes: IntArray
+    readings: tuple[FloatArray, ...]
+
+
+class Checked(NamedTuple):
+    """The pass's result on a part, kept there: per subject, the sums of its residuals and
+    of its squared standardized residuals; and what comes back (``found``)."""
+
+    sums: tuple[FloatArray, FloatArray]
+    found: Found
+
+
 def part_checks(part: Part, kept: tuple[FloatArray, FloatArray], rows: IntArray,
-                model: Predictor, edges: tuple[tuple[float, float, int], ...]
-                ) -> tuple[Any, ...]:
+                model: Predictor, edges: tuple[tuple[float, float, int], ...]) -> Checked:
     """The pass, over a part and its kept scores and covariances (``kept``): per subject of
     the part, the sums of its residuals and of its squared standardized residuals; the
     density of the part's readings; and the readings of its subjects at ``rows`` (time,
@@ -83,15 +100,15 @@ def part_checks(part: Part, kept: tuple[FloatArray, FloatArray], rows: IntArray,
     sums = np.bincount(s.subject, resid, n), np.bincount(s.subject, std * std, n)
     index, _, sizes = s.reading_index(rows)
     kept_readings = tuple(a[index] for a in (s.t, s.y, fitted, resid, std))
-    return sums, cell_counts(s.t, s.y, edges), sizes, kept_readings
+    return Checked(sums, Found(cell_counts(s.t, s.y, edges), sizes, kept_readings))
 
 
-def _sums(checked: tuple[Any, ...]) -> tuple[FloatArray, FloatArray]:
-    return checked[0]
+def checked_sums(checked: Checked) -> tuple[FloatArray, FloatArray]:
+    return checked.sums
 
 
-def _small(checked: tuple[Any, ...]) -> tuple[Any, ...]:
-    return checked[1:]
+def checked_found(checked: Checked) -> Found:
+    return checked.found
 
 
 @dataclass(frozen=True)
@@ -100,7 +117,7 @@ class ReadingChecks:
 
     Attributes
     ----------
-    sums : Kept
+    sums : PartResults
         Per subject, the sum of its residuals and of its squared standardized residuals,
         kept where the pass computed them.
     density : ndarray of shape DENSITY_CELLS
@@ -112,7 +129,7 @@ class ReadingChecks:
         ``value``, ``fitted``, ``residual``, ``standardized``.
     """
 
-    sums: Kept
+    sums: PartResults
     density: IntArray
     time_axis: tuple[float, float, int]
     value_axis: tuple[float, float, int]
@@ -120,26 +137,26 @@ class ReadingChecks:
     readings: dict[str, np.ndarray]
 
 
-def check_readings(data: Partitioned, scores: Kept, model: Predictor, chosen: IntArray
+def check_readings(data: Partitioned, scores: PartResults, model: Predictor, chosen: IntArray
                    ) -> ReadingChecks:
     """One pass over ``data`` and its subjects' kept ``scores`` (scores and covariances):
     residual sums of every subject (kept with the parts), the density of all readings,
     and the readings of the subjects ``chosen`` (increasing codes)."""
     edges = (axis(data.t_min, data.t_max, DENSITY_CELLS[0]),
              axis(data.y_min, data.y_max, DENSITY_CELLS[1]))
-    rows = data.rows_of(chosen)
+    rows = data.rows_in_parts(chosen)
     run = data.executor
     checked = run.keep(part_checks, data.parts,
                        [(h, r) for h, r in zip(scores.handles, rows, strict=True)], (model, edges))
-    found = run.map(_small, checked)
-    sums = Kept(run, tuple(run.keep(_sums, checked)), data.subjects)
-    density = sum((f[0] for f in found), np.zeros(DENSITY_CELLS, dtype=np.intp))
+    found = run.map(checked_found, checked)
+    sums = PartResults(run, tuple(run.keep(checked_sums, checked)), data.subjects)
+    density = sum((f.density for f in found), np.zeros(DENSITY_CELLS, dtype=np.intp))
     # the chosen subjects' readings, from the parts' order into code order
     owner = np.concatenate([codes[r] for codes, r in zip(data.subjects, rows, strict=True)])
-    index, sizes = in_code_order(owner, np.concatenate([f[1] for f in found]))
+    index, sizes = in_code_order(owner, np.concatenate([f.sizes for f in found]))
     kept = np.sort(owner)
     names = ("time", "value", "fitted", "residual", "standardized")
-    readings = {name: np.concatenate([f[2][k] for f in found])[index]
+    readings = {name: np.concatenate([f.readings[k] for f in found])[index]
                 for k, name in enumerate(names)}
     readings = {"subject": np.repeat(kept, sizes), **readings}
     return ReadingChecks(sums, density, *edges, kept, readings)
@@ -163,15 +180,25 @@ def _top(values: FloatArray, n: int) -> IntArray:
     return np.flatnonzero(values >= cut).astype(np.intp)
 
 
+class Farthest(NamedTuple):
+    """How many of a part's subjects are beyond the cut, and the rows, squared distances
+    and scores of its farthest ones."""
+
+    n_beyond: int
+    rows: IntArray
+    distance2: FloatArray
+    scores: FloatArray
+
+
 def part_farthest(kept: tuple[FloatArray, FloatArray], eigenvalues: FloatArray, cut: float,
-                  n: int) -> tuple[int, IntArray, FloatArray, FloatArray]:
+                  n: int) -> Farthest:
     """Pass over a part's kept scores: how many of its subjects are beyond ``cut``, and the
     rows, distances and scores of the ``n`` farthest of those."""
     scores = kept[0]
     d2 = distances(scores, eigenvalues)
     beyond = np.flatnonzero(d2 > cut)
     rows = beyond[_top(d2[beyond], n)]
-    return int(beyond.size), rows, d2[rows], scores[rows]
+    return Farthest(int(beyond.size), rows, d2[rows], scores[rows])
 
 
 def residual_summary(sums: tuple[FloatArray, ...], n_obs: IntArray
@@ -181,13 +208,22 @@ def residual_summary(sums: tuple[FloatArray, ...], n_obs: IntArray
     return residual_sum / n_obs, np.sqrt(squared_sum / n_obs)
 
 
+class LargestRms(NamedTuple):
+    """A part's subjects with the largest RMS standardized residual: rows, mean residuals,
+    RMS standardized residuals."""
+
+    rows: IntArray
+    mean_residual: FloatArray
+    rms: FloatArray
+
+
 def part_largest_rms(kept: tuple[FloatArray, FloatArray], n_obs: IntArray, n: int
-                     ) -> tuple[IntArray, FloatArray, FloatArray]:
+                     ) -> LargestRms:
     """Pass over a part's kept residual sums (``n_obs``: its subjects' reading counts): the
     rows, mean residuals and RMS standardized residuals of the ``n`` largest RMS."""
     mean, rms = residual_summary(kept, n_obs)
     rows = _top(rms, n)
-    return rows, mean[rows], rms[rows]
+    return LargestRms(rows, mean[rows], rms[rows])
 
 
 def part_group_sums(kept: tuple[FloatArray, FloatArray], groups: IntArray, n_groups: int

@@ -1,6 +1,6 @@
 """Who runs a pass over parts of the data, and how their sums are added.
 
-Kept apart from ``plan`` (which loads the compiled kernels) so that reading and checking
+PartResults apart from ``plan`` (which loads the compiled kernels) so that reading and checking
 the data, which also runs as passes over files, loads nothing compiled.
 """
 

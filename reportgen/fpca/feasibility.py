@@ -124,24 +124,11 @@ def add_design(a: DesignCounts, b: DesignCounts) -> DesignCounts:
                         a.pairs + b.pairs)
 
 
-def problems(subject: IntArray, t: FloatArray, y: FloatArray,
-             options: FPCAOptions = FPCAOptions()) -> list[str]:
-    """Every reason the fit of these readings would stop, in the fit's words; [] if none.
-
-    ``subject`` holds codes 0 .. n_subjects - 1.
-    """
-    if t.size == 0:
-        return ["no readings"]
-    domain = options.fitted_domain(float(t.min()), float(t.max()))
-    n_obs = np.bincount(subject)
-    counts = count_design(subject, t, domain, options, int(np.count_nonzero(n_obs >= 2)) >= 2)
-    return problems_from(counts, n_obs, domain, float(np.ptp(y)) == 0.0, options)
-
-
 def problems_from(counts: DesignCounts, n_obs: IntArray, domain: tuple[float, float],
                   constant: bool, options: FPCAOptions) -> list[str]:
-    """``problems`` from the counts of all readings (``n_obs``: readings per subject;
-    ``constant``: every reading has the same value)."""
+    """Every reason the fit of these readings would stop, in the fit's words ([] if none),
+    from the counts of all readings (``n_obs``: readings per subject; ``constant``: every
+    reading has the same value)."""
     lo, hi = domain
     out: list[str] = []
     if counts.outside:

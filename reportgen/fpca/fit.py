@@ -42,7 +42,7 @@ from .components import (
 from .design import BinnedStats, PairStats, Sample, assign_folds, seeded_sample
 from .likelihood import LikelihoodFit, maximise, starting_error_variance
 from .options import FPCAOptions
-from .plan import Kept, Part, Partitioned
+from .plan import Part, Partitioned, PartResults, ResidualSize
 from .predictor import Predictor
 from .result import FPCAFit, Labels, as_labels, frozen
 from .scores import sample_terms
@@ -137,15 +137,14 @@ def _error_variance(
     return raw, level
 
 
-def _check_variation(check: FloatArray) -> None:
+def _check_variation(found: ResidualSize) -> None:
     """Readings that do not vary around the mean leave nothing to decompose.
 
-    ``check`` holds (max |y|, sum of squared residuals, number of readings). "Do not vary"
-    is relative to the size of the values (1e-10 of the largest absolute value): constant
-    data give residuals at rounding level, whose covariance would otherwise yield
-    components made of rounding noise.
+    "Do not vary" is relative to the size of the values (1e-10 of the largest absolute
+    value): constant data give residuals at rounding level, whose covariance would
+    otherwise yield components made of rounding noise.
     """
-    size, ss, n = (float(x) for x in check)
+    size, ss, n = found.largest, found.squares, found.n
     rms = float(np.sqrt(ss / n))
     if not rms > 1e-10 * size:
         raise EstimationError(
@@ -247,8 +246,8 @@ def _fit(data: Partitioned, labels: Labels, options: FPCAOptions, population_onl
 
     # 2. covariance surface, and the variance of single readings on its own bandwidth
     cbins = BinGrid(lo, hi, options.covariance_bins)
-    pstats, check = data.residual_sums(folds, fine, mbins, cbins, n_folds)
-    _check_variation(check)
+    pstats, size = data.residual_sums(folds, fine, mbins, cbins, n_folds)
+    _check_variation(size)
     cov_choice = _choose_bandwidth(
         options.covariance_bandwidth, pstats.offdiag, cbins, n_subjects, 2, method,
         kernel, grid, "covariance",
@@ -327,7 +326,7 @@ def _fit(data: Partitioned, labels: Labels, options: FPCAOptions, population_onl
     if per_subject:
         kept = data.keep_scores(fine, mbins, grid, funcs, values, lik.error_variance)
     else:  # not computed: the fit is returned without its subjects (below)
-        kept = Kept.of_arrays(np.zeros((0, k)), np.zeros((0, k, k)))
+        kept = PartResults.of_arrays(np.zeros((0, k)), np.zeros((0, k, k)))
     fit = FPCAFit(
         grid=predictor.grid, mean=frozen(mean), mean_se=frozen(mean_se),
         covariance=frozen(cov), diagonal_variance=frozen(diag_var),

@@ -27,7 +27,7 @@ from .arrays import FloatArray, IntArray
 from .design import BinnedStats, PairStats, Sample, mean_stats, pair_stats
 from .diagnostics import part_group_sums
 from .fit import mean_covariance
-from .plan import Part, Partitioned, add_binned, add_pair_stats, split_parts, tree_sum
+from .plan import Part, Partitioned, add_binned, add_pair_stats, tree_sum
 from .result import FPCAFit
 from .smoothing import BinGrid, get_kernel, local_linear_binned_1d
 
@@ -60,7 +60,7 @@ class GroupComparison:
     seed : int
     tested : int
         Subjects whose scores the test permuted: every subject, or a seeded sample of
-        them (``compare_groups_on``'s ``tested``).
+        them (``compare_groups``' ``tested``).
     """
 
     labels: tuple[str, ...]
@@ -187,27 +187,7 @@ def group_means(data: Partitioned, fit: FPCAFit, groups: IntArray, n_groups: int
     return np.stack(means), np.stack(ses)
 
 
-def group_mean(sample: Sample, fit: FPCAFit) -> tuple[FloatArray, FloatArray]:
-    """One group's mean on the fit's grid and its cluster-robust standard error (the
-    readings of its subjects, in one part)."""
-    data = Partitioned.local([Part(sample, np.arange(sample.n_subjects, dtype=np.intp))])
-    means, ses = group_means(data, fit, np.zeros(sample.n_subjects, dtype=np.intp), 1)
-    return means[0], ses[0]
-
-
-def compare_groups(fit: FPCAFit, subject: IntArray, t: FloatArray, y: FloatArray,
-                   subject_group: np.ndarray, permutations: int = PERMUTATIONS
-                   ) -> GroupComparison:
-    """Group means and the test of equal mean scores, from readings in one part.
-
-    ``subject`` holds codes into ``fit.subjects`` (one per reading); ``subject_group`` the
-    group label of each of ``fit.subjects``.
-    """
-    data = Partitioned.local(split_parts(np.asarray(subject, dtype=np.intp), t, y, None))
-    return compare_groups_on(data, fit, subject_group, permutations)
-
-
-def compare_groups_on(data: Partitioned, fit: FPCAFit, subject_group: np.ndarray,
+def compare_groups(data: Partitioned, fit: FPCAFit, subject_group: np.ndarray,
                       permutations: int = PERMUTATIONS,
                       tested: tuple[IntArray, FloatArray] | None = None) -> GroupComparison:
     """Group means (passes over ``data``, the fit's readings as parts), the average scores

@@ -12,12 +12,12 @@ An :class:`Executor` runs the passes: :class:`InProcess` here, one part after an
 the Dask engine (``reportgen.analysis.engine``) on a cluster. A data set that is one part gives
 exactly the sums of the whole sample (the tree of one part is that part).
 
-Passes of a fit: (0) ``summary`` (subject codes and reading counts, time and value
+Passes of a fit: (0) ``part_summary`` (subject codes and reading counts, time and value
 ranges); (1) ``reading_sums`` (binned readings per fold, for the mean); (2)
 ``residual_sums`` (binned raw covariances against the mean, and the sums that check the
 residuals' size); then, on a seeded sample of subjects, ``gather`` (their readings, for the
 likelihood); (3) ``part_scores`` (each subject's conditional expectation, kept where it
-was computed: :class:`Kept`; later passes read it there). Resampled parts
+was computed: :class:`PartResults`; later passes read it there). Resampled parts
 for corrected bands are made where the parts live (``resampled``). After the fit, the
 report's diagnostics are one more pass (``diagnostics.check_readings``).
 """
@@ -27,7 +27,7 @@ from __future__ import annotations
 from collections.abc import Sequence
 from dataclasses import dataclass
 from functools import cached_property
-from typing import Any, TypeVar
+from typing import Any, NamedTuple, TypeVar
 
 import numpy as np
 
@@ -63,28 +63,6 @@ class Part:
         return Part(Sample(*(np.array(a) for a in arrays)), np.array(self.subjects))
 
 
-def split_parts(codes: IntArray, t: FloatArray, y: FloatArray, part: IntArray | None,
-                n_parts: int = 1) -> list[Part]:
-    """The readings (subject codes 0 .. n - 1) as parts; ``part`` gives each reading's part
-    (None: one part). A subject must lie in one part (the loader checks it). A part left
-    with no readings (a file whose rows the checks dropped) is left out."""
-    codes = np.asarray(codes, dtype=np.intp)
-    if part is None or n_parts == 1:
-        sample = Sample.from_arrays(codes, t, y)
-        return [Part(sample, np.arange(sample.n_subjects, dtype=np.intp))]
-    out = []
-    order = np.argsort(part, kind="stable")
-    bounds = np.searchsorted(part[order], np.arange(n_parts + 1))
-    for p in range(n_parts):
-        rows = order[bounds[p]:bounds[p + 1]]
-        if rows.size == 0:
-            continue
-        subjects, local = np.unique(codes[rows], return_inverse=True)
-        out.append(Part(Sample.from_arrays(local.astype(np.intp), t[rows], y[rows]),
-                        subjects.astype(np.intp)))
-    return out
-
-
 def in_code_order(owner: IntArray, held: IntArray) -> tuple[IntArray, IntArray]:
     """Readings gathered from the parts, subject after subject in the parts' order
     (``owner``: each subject's code, ``held``: its reading count), put in code order: the
@@ -106,21 +84,59 @@ def add_pair_stats(a: PairStats, b: PairStats) -> PairStats:
                      a.cross + b.cross)
 
 
-def _add_pairs(a: tuple[PairStats, FloatArray], b: tuple[PairStats, FloatArray]
-               ) -> tuple[PairStats, FloatArray]:
-    (pa, ca), (pb, cb) = a, b
-    check = np.array([max(ca[0], cb[0]), ca[1] + cb[1], ca[2] + cb[2]])
-    return add_pair_stats(pa, pb), check
+class ResidualSize(NamedTuple):
+    """How large the readings and their residuals are: the largest |value|, the sum of the
+    squared residuals and the number of readings (to tell variation from rounding)."""
+
+    largest: float
+    squares: float
+    n: float
+
+
+class ResidualSums(NamedTuple):
+    """Pass 2's result: binned raw covariances per fold, and the residuals' size."""
+
+    pairs: PairStats
+    size: ResidualSize
+
+
+def _add_pairs(a: ResidualSums, b: ResidualSums) -> ResidualSums:
+    sa, sb = a.size, b.size
+    return ResidualSums(add_pair_stats(a.pairs, b.pairs),
+                        ResidualSize(max(sa.largest, sb.largest), sa.squares + sb.squares,
+                                     sa.n + sb.n))
+
+
+class PartSummary(NamedTuple):
+    """Pass 0's result: a part's subject codes, their reading counts, and its time and
+    value ranges."""
+
+    subjects: IntArray
+    n_obs: IntArray
+    t_min: float
+    t_max: float
+    y_min: float
+    y_max: float
+
+
+class Gathered(NamedTuple):
+    """The readings of chosen subjects of a part: times, values, residuals, and each
+    subject's reading count."""
+
+    t: FloatArray
+    y: FloatArray
+    resid: FloatArray
+    sizes: IntArray
 
 
 # --- the passes (module-level functions: a cluster ships them by name) -------------------
 
 
-def summary(part: Part) -> tuple[IntArray, IntArray, float, float, float, float]:
+def part_summary(part: Part) -> PartSummary:
     """Pass 0: the part's subject codes, their reading counts, its time and value ranges."""
     t, y = part.sample.t, part.sample.y
-    return (part.subjects, part.sample.n_obs, float(t.min()), float(t.max()), float(y.min()),
-            float(y.max()))
+    return PartSummary(part.subjects, part.sample.n_obs, float(t.min()), float(t.max()),
+                       float(y.min()), float(y.max()))
 
 
 def outside(part: Part, lo: float, hi: float) -> int:
@@ -148,24 +164,22 @@ def _minus_mean(t: FloatArray, y: FloatArray, fine: FloatArray, mean_grid: BinGr
 
 
 def residual_sums(part: Part, folds: IntArray, fine: FloatArray, mean_grid: BinGrid,
-                  grid: BinGrid, n_folds: int) -> tuple[PairStats, FloatArray]:
-    """Pass 2: binned raw covariances of the residuals per fold, and (max |y|, sum r^2, n)."""
+                  grid: BinGrid, n_folds: int) -> ResidualSums:
+    """Pass 2: binned raw covariances of the residuals per fold, and the residuals' size."""
     part = part.writable()
     resid = residuals(part, fine, mean_grid)
     stats = pair_stats(part.sample, resid, grid, folds, n_folds)
-    check = np.array([float(np.max(np.abs(part.sample.y))), float(np.sum(resid * resid)),
-                      float(resid.size)])
-    return stats, check
+    return ResidualSums(stats, ResidualSize(float(np.max(np.abs(part.sample.y))),
+                                            float(np.sum(resid * resid)), float(resid.size)))
 
 
-def gather(part: Part, rows: IntArray, fine: FloatArray, mean_grid: BinGrid
-           ) -> tuple[FloatArray, FloatArray, FloatArray, IntArray]:
+def gather(part: Part, rows: IntArray, fine: FloatArray, mean_grid: BinGrid) -> Gathered:
     """Readings and residuals of the part's subjects at ``rows`` (in that order), and
     their reading counts."""
     part = part.writable()
     index, _, sizes = part.sample.reading_index(rows)
     t, y = part.sample.t[index], part.sample.y[index]
-    return t, y, _minus_mean(t, y, fine, mean_grid), sizes  # of these readings only
+    return Gathered(t, y, _minus_mean(t, y, fine, mean_grid), sizes)  # of these readings only
 
 
 def part_scores(part: Part, fine: FloatArray, mean_grid: BinGrid, grid: FloatArray,
@@ -214,7 +228,7 @@ def as_they_are(kept: tuple[np.ndarray, ...]) -> tuple[np.ndarray, ...]:
 
 
 @dataclass(frozen=True, eq=False)
-class Kept:
+class PartResults:
     """Per-subject results of a pass, left where the pass computed them (on a cluster, in
     the workers' memory): for each part, a tuple of arrays whose rows are the part's
     subjects in code order (``subjects``: their codes). Passes over them take the
@@ -227,7 +241,7 @@ class Kept:
     subjects: tuple[IntArray, ...]
 
     @classmethod
-    def of_arrays(cls, *arrays: np.ndarray) -> Kept:
+    def of_arrays(cls, *arrays: np.ndarray) -> PartResults:
         """Arrays of every subject (rows by code) held here, as one part."""
         n = arrays[0].shape[0]
         return cls(InProcess(), (tuple(arrays),), (np.arange(n, dtype=np.intp),))
@@ -296,8 +310,8 @@ class Partitioned:
     @classmethod
     def of(cls, executor: Executor, parts: Sequence[Any]) -> Partitioned:
         """Pass 0 over ``parts``."""
-        found = executor.map(summary, parts)
-        n_subjects = sum(int(codes.size) for codes, *_ in found)
+        found = executor.map(part_summary, parts)
+        n_subjects = sum(int(f.subjects.size) for f in found)
         n_obs = np.zeros(n_subjects, dtype=np.intp)
         seen = np.zeros(n_subjects, dtype=np.intp)
         for codes, counts, *_ in found:
@@ -309,9 +323,9 @@ class Partitioned:
             code = int(np.flatnonzero(seen != 1)[0])
             raise EstimationError(f"subject code {code} is in {int(seen[code])} parts: each "
                                   "subject's readings must lie in exactly one part")
-        return cls(executor, parts, tuple(f[0] for f in found), n_obs,
-                   min(f[2] for f in found), max(f[3] for f in found),
-                   min(f[4] for f in found), max(f[5] for f in found))
+        return cls(executor, parts, tuple(f.subjects for f in found), n_obs,
+                   min(f.t_min for f in found), max(f.t_max for f in found),
+                   min(f.y_min for f in found), max(f.y_max for f in found))
 
     @classmethod
     def local(cls, parts: list[Part]) -> Partitioned:
@@ -336,13 +350,13 @@ class Partitioned:
         return tree_sum(found, add_binned)
 
     def residual_sums(self, folds: IntArray, fine: FloatArray, mean_grid: BinGrid,
-                      grid: BinGrid, n_folds: int) -> tuple[PairStats, FloatArray]:
-        """Pair sums, and (max |y|, sum r^2, n) over all readings."""
+                      grid: BinGrid, n_folds: int) -> ResidualSums:
+        """Pair sums, and the residuals' size over all readings."""
         found = self.executor.map(residual_sums, self.parts, self._each(folds),
                                   (fine, mean_grid, grid, n_folds))
         return tree_sum(found, _add_pairs)
 
-    def rows_of(self, chosen: IntArray) -> list[IntArray]:
+    def rows_in_parts(self, chosen: IntArray) -> list[IntArray]:
         """Each part's rows of those of the subjects ``chosen`` (increasing codes) that it
         holds."""
         return rows_in_parts(self.subjects, chosen)
@@ -351,22 +365,22 @@ class Partitioned:
                ) -> tuple[Sample, FloatArray]:
         """The readings and residuals of the subjects ``chosen`` (increasing codes), as a
         sample coded 0 .. len(chosen) - 1 in that order."""
-        rows = self.rows_of(chosen)
+        rows = self.rows_in_parts(chosen)
         found = self.executor.map(gather, self.parts, [(r,) for r in rows], (fine, mean_grid))
         owner = np.concatenate([codes[r] for codes, r in zip(self.subjects, rows, strict=True)])
-        index, sizes = in_code_order(owner, np.concatenate([f[3] for f in found]))
-        t, y, r = (np.concatenate([f[k] for f in found])[index] for k in range(3))
+        index, sizes = in_code_order(owner, np.concatenate([f.sizes for f in found]))
+        t, y, r = (np.concatenate([f[k] for f in found])[index] for k in range(3))  # t, y, resid
         starts = (np.cumsum(sizes) - sizes).astype(np.intp)
         sample = Sample(np.repeat(np.arange(chosen.size), sizes), t, y, starts, sizes)
         return sample, r
 
     def keep_scores(self, fine: FloatArray, mean_grid: BinGrid, grid: FloatArray,
-                    functions: FloatArray, values: FloatArray, sigma2: float) -> Kept:
+                    functions: FloatArray, values: FloatArray, sigma2: float) -> PartResults:
         """Pass 3: each subject's scores and their error covariance, kept where each part's
         were computed (nothing per subject comes back)."""
         handles = self.executor.keep(part_scores, self.parts,
                                      shared=(fine, mean_grid, grid, functions, values, sigma2))
-        return Kept(self.executor, tuple(handles), self.subjects)
+        return PartResults(self.executor, tuple(handles), self.subjects)
 
     @cached_property
     def _homes(self) -> tuple[IntArray, IntArray]:

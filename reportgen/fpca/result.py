@@ -21,7 +21,7 @@ from .design import Sample
 from .frame import arrays_from_frame
 from .likelihood import LikelihoodFit
 from .options import FPCAOptions
-from .plan import Kept
+from .plan import PartResults
 from .predictor import BandKind, Predictor
 
 # Subject labels: an array, or a pandas Index (immutable) of text kept as it came.
@@ -103,7 +103,7 @@ class FPCAFit:
         came as one (the ids of many files, held as Arrow text: about 30 bytes a subject
         where an array of Python strings takes about 70).
     n_obs : ndarray of shape (n_subjects,)
-    kept_scores : Kept
+    kept_scores : PartResults
         Each subject's scores (n_subjects, n_components) and their error covariance
         (n_subjects, n_components, n_components), by code, where the scores pass left them
         (``fpca.plan``; on a cluster, on the workers). ``score_values`` and ``score_cov``
@@ -147,7 +147,7 @@ class FPCAFit:
     selection: ComponentSelection
     subjects: Labels
     n_obs: IntArray
-    kept_scores: Kept
+    kept_scores: PartResults
     pair_counts: FloatArray
     pair_grid: FloatArray
     n_readings: int
@@ -178,7 +178,7 @@ class FPCAFit:
         summary figure needs). ``n_obs`` stays: the design summaries use it."""
         k = self.n_components
         return replace(self, _sample=None, replicates=(), subjects=self.subjects[:0],
-                       kept_scores=Kept.of_arrays(np.zeros((0, k)), np.zeros((0, k, k))))
+                       kept_scores=PartResults.of_arrays(np.zeros((0, k)), np.zeros((0, k, k))))
 
     # --- the subjects' scores --------------------------------------------------------------
 

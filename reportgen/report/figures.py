@@ -24,7 +24,7 @@ from ..analysis.analyse import AnalysisResult
 from ..analysis.views import density
 
 PALETTE = ("#1f5f8b", "#c0632b", "#3f8f4f", "#8a3f8f", "#7a7a2a", "#2a7a7a")
-STYLE = {
+PLOT_RC = {
     "font.size": 9, "axes.titlesize": 10, "axes.labelsize": 9, "axes.grid": True,
     "grid.color": "#dde2ea", "grid.linewidth": 0.6, "axes.edgecolor": "#5b6578",
     "axes.prop_cycle": cycler(color=PALETTE), "svg.hashsalt": "reportgen",
@@ -95,7 +95,7 @@ def make_figures(result: AnalysisResult, names: Sequence[str] | None = None
     drawn in another process with the same bytes."""
     wanted = list(FIGURES) if names is None else [n for n in FIGURES if n in names]
     out = {}
-    with plt.rc_context(cast(Any, STYLE)):
+    with plt.rc_context(cast(Any, PLOT_RC)):
         for name in wanted:
             drawn = FIGURES[name](result)
             if drawn is None:  # not part of this report (e.g. no groups)

@@ -43,7 +43,7 @@ def _warm_up() -> None:
     measured too: the figures came 0.5 s sooner, the PDF 1 s later.)"""
     import weasyprint  # noqa: F401
 
-    from . import figures, render  # noqa: F401
+    from . import figures, pdf  # noqa: F401
 
 
 def _draw(result: AnalysisResult, names: tuple[str, ...]) -> dict[str, tuple[str, str, str]]:
@@ -53,7 +53,7 @@ def _draw(result: AnalysisResult, names: tuple[str, ...]) -> dict[str, tuple[str
 
 
 def _pdf(html: bytes, spec_bytes: bytes, record_bytes: bytes, stamp: str) -> bytes:
-    from .render import render_pdf
+    from .pdf import render_pdf
 
     return render_pdf(html, spec_bytes, record_bytes, stamp)
 
@@ -73,7 +73,7 @@ _TASKS: dict[str, Callable[..., Any]] = {"draw": _draw, "pdf": _pdf, "csv": _csv
 
 def serve(inbox: BinaryIO | None = None, outbox: BinaryIO | None = None) -> None:
     """The worker's loop: unpickle (task, args) from stdin, pickle ("ok", result) or
-    ("error", text) to stdout, until stdin closes. Started by :class:`RenderWorker` as
+    ("error", text) to stdout, until stdin closes. Started by :class:`RenderProcess` as
     ``python -c "from reportgen.report.render_process import serve; serve()"``: a fresh
     interpreter that imports nothing of the caller's (unlike multiprocessing's spawn, which
     re-runs the caller's main script when it has no ``if __name__ == "__main__"`` guard)."""
@@ -102,7 +102,7 @@ class _Pending:
     """A task sent to the worker; ``result`` waits for its reply (None if the worker failed).
     Several may be pending at once, and their results read in any order."""
 
-    def __init__(self, worker: RenderWorker, task: str, args: tuple[Any, ...]) -> None:
+    def __init__(self, worker: RenderProcess, task: str, args: tuple[Any, ...]) -> None:
         self._worker = worker
         self._number: int | None = None  # the task's place in the worker's queue
         self._sent = threading.Thread(target=self._send, args=(task, args), daemon=True)
@@ -116,7 +116,7 @@ class _Pending:
         return None if self._number is None else self._worker._reply(self._number)
 
 
-class RenderWorker:
+class RenderProcess:
     """The worker process, started at once; ``close`` ends it. Tasks run one at a time, in
     the order sent; replies are read in the same order."""
 

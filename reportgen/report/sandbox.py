@@ -100,7 +100,7 @@ def environment(sources: dict[str, str]) -> jinja2.Environment:
     return env
 
 
-def check_output(html: str) -> None:
+def refuse_unsafe_markup(html: str) -> None:
     """Refuse a page that refers outside itself or carries active content. Only markup is
     inspected (tags, their attributes, style sheets); escaped text cannot form either."""
     for tag in _TAG.finditer(html):
@@ -155,7 +155,7 @@ def render_here(sources: dict[str, str], entry: str, context: dict[str, Any],
     except Exception as e:  # a template can raise anything (a filter on a wrong type, ...)
         raise TemplateFailure(f"the template failed: {type(e).__name__}: {e}") from e
     html = "".join(parts)
-    check_output(html)
+    refuse_unsafe_markup(html)
     return html
 
 

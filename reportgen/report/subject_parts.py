@@ -21,6 +21,7 @@ from __future__ import annotations
 import hashlib
 import io
 import json
+from collections.abc import Iterator
 from dataclasses import asdict, dataclass, replace
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -37,7 +38,7 @@ if TYPE_CHECKING:
     from ..fpca.executor import Executor
     from ..fpca.result import FPCAFit
 
-MANIFEST = "parts.json"
+PART_LIST = "parts.json"
 COMPRESSION = "zstd"
 
 
@@ -58,8 +59,9 @@ def part_file(table: str, index: int) -> str:
     return f"tables/{table}/part-{index + 1:05d}.parquet"
 
 
-def manifest_file(table: str) -> str:
-    return f"tables/{table}/{MANIFEST}"
+def part_list_file(table: str) -> str:
+    """The run-relative name of a table's list of parts (parts.json)."""
+    return f"tables/{table}/{PART_LIST}"
 
 
 def parquet_bytes(frame: pd.DataFrame) -> bytes:
@@ -131,17 +133,13 @@ def _batches(sizes: list[int], per_subject: int) -> list[range]:
     return out
 
 
-def write_subject_parts(result: AnalysisResult, run: Path, executor: Executor | None = None
-                        ) -> dict[str, list[PartEntry]]:
-    """Write every part of every table of subjects under ``run`` (the run directory being
-    built); returns each table's entries, in part order. The parts are formatted and
-    hashed by tasks of ``executor`` (here by default), in batches of ``BATCH_ROWS`` output
-    rows; this process writes the bytes."""
-    from ..fpca.executor import InProcess
-
-    run_on = executor or InProcess()
+def subject_parts(result: AnalysisResult, run_on: Executor
+                  ) -> Iterator[tuple[str, PartEntry, bytes]]:
+    """Every part of every table of subjects: its table, its entry (run-relative file, rows,
+    sizes, digests) and its Parquet bytes, in batches of ``BATCH_ROWS`` output rows made by
+    the tasks of ``run_on`` (the engine's executor, where the fit's results are kept); the
+    caller writes each batch's bytes before the next is made."""
     names = subject_table_names(result)
-    written: dict[str, list[PartEntry]] = {name: [] for name in names}
     parts, fit = result.subject_parts, result.fit
     scores, sums = fit.kept_scores, result.residual_sums
     curves = result.spec.subjects.all_trajectories
@@ -161,15 +159,11 @@ def write_subject_parts(result: AnalysisResult, run: Path, executor: Executor | 
         for index, tables in zip(indices, made, strict=True):
             for name in names:
                 data, rows, csv_bytes, csv_sha256 = tables[name]
-                target = run / part_file(name, index)
-                target.parent.mkdir(parents=True, exist_ok=True)
-                target.write_bytes(data)
-                written[name].append(PartEntry(part_file(name, index), rows, len(data),
-                                               _sha256(data), csv_bytes, csv_sha256))
-    return written
+                yield name, PartEntry(part_file(name, index), rows, len(data), _sha256(data),
+                                      csv_bytes, csv_sha256), data
 
 
-def manifest_bytes(table: str, entries: list[PartEntry]) -> bytes:
+def part_list_bytes(table: str, entries: list[PartEntry]) -> bytes:
     """A table's parts.json: its parts in order, with their sizes and digests."""
     content: dict[str, Any] = {
         "table": table,
@@ -181,14 +175,14 @@ def manifest_bytes(table: str, entries: list[PartEntry]) -> bytes:
     return (json.dumps(content, indent=1, sort_keys=True) + "\n").encode("utf-8")
 
 
-def read_manifest(run: Path, table: str) -> list[PartEntry]:
+def read_part_list(run: Path, table: str) -> list[PartEntry]:
     """The entries of a run's parts.json for ``table`` (ValueError when unreadable)."""
     try:
-        content = json.loads((run / manifest_file(table)).read_text("utf-8"))
+        content = json.loads((run / part_list_file(table)).read_text("utf-8"))
         return [PartEntry(**{**p, "file": f"tables/{table}/{p['file']}"})
                 for p in content["parts"]]
     except (OSError, KeyError, TypeError, json.JSONDecodeError) as e:
-        raise ValueError(f"{manifest_file(table)} cannot be read: {e}") from e
+        raise ValueError(f"{part_list_file(table)} cannot be read: {e}") from e
 
 
 def _sha256(data: bytes) -> str:

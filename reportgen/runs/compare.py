@@ -29,13 +29,13 @@ def _table(run_dir: Path, name: str, columns: list[str] | None = None) -> pd.Dat
     path = run_dir / "tables" / f"{name}.csv"
     if path.is_file():
         return pd.read_csv(path, dtype={"subject": str}, usecols=columns)
-    from ..report.subject_parts import manifest_file, read_manifest
+    from ..report.subject_parts import part_list_file, read_part_list
 
-    if (run_dir / manifest_file(name)).is_file():
+    if (run_dir / part_list_file(name)).is_file():
         import pyarrow.parquet as pq
 
         try:
-            files = [run_dir / e.file for e in read_manifest(run_dir, name)]
+            files = [run_dir / e.file for e in read_part_list(run_dir, name)]
             return pd.concat([pq.read_table(f, columns=columns).to_pandas() for f in files],
                              ignore_index=True)
         except (ValueError, OSError) as e:

@@ -57,7 +57,7 @@ def run_files(run: Path) -> list[str]:
     return sorted(p.relative_to(run).as_posix() for p in run.rglob("*") if p.is_file())
 
 
-def check_integrity(run: Path, recorded_outputs: dict[str, str] | None
+def integrity_findings(run: Path, recorded_outputs: dict[str, str] | None
                     ) -> tuple[int, list[FileFinding]]:
     """Check every file of ``run`` against its SHA256SUMS; returns (files checked, findings).
 

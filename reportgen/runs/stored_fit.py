@@ -23,7 +23,7 @@ from ..fpca.predictor import Predictor
 from ..inputs.files import read_path
 from ..inputs.loader import load_file, require_passed
 from ..inputs.spec import Spec, spec_from_bytes
-from .integrity import check_integrity
+from .integrity import integrity_findings
 from .record import load_record
 
 OUTPUT_SUFFIXES = (".csv", ".parquet")
@@ -76,7 +76,7 @@ def load_fit(run_dir: str | Path) -> StoredFit:
     """
     run = Path(run_dir)
     record = load_record(run)
-    _, findings = check_integrity(run, record["outputs"])
+    _, findings = integrity_findings(run, record["outputs"])
     if findings:
         listed = "; ".join(f"{f.name}: {f.kind}" + (f" ({f.detail})" if f.detail else "")
                            for f in findings[:5])
@@ -123,6 +123,6 @@ def write_table(frame: pd.DataFrame, out: str | Path) -> Path:
     return path
 
 
-def summary(frame: pd.DataFrame) -> tuple[int, int]:
+def prediction_size(frame: pd.DataFrame) -> tuple[int, int]:
     """(subjects, rows) of a prediction table."""
     return int(pd.unique(frame.subject).size), len(frame)

@@ -3,7 +3,7 @@
 Each part has its own verdict, so that an auditor can tell a changed file from a changed
 input, a changed result, or only a different rendering environment:
 
-- integrity: every file of the run against SHA256SUMS (``integrity.check_integrity``);
+- integrity: every file of the run against SHA256SUMS (``integrity.integrity_findings``);
 - inputs: the spec and each recorded input file against the record's hashes; an input is
   found beside the recorded spec, or by name in ``--inputs DIR``;
 - numbers: the recorded spec re-run on the inputs; the results digest compared exactly and
@@ -21,7 +21,7 @@ import tempfile
 from collections.abc import Callable
 from dataclasses import dataclass, field, replace
 from pathlib import Path
-from typing import Any
+from typing import Any, Literal
 
 import numpy as np
 import pandas as pd
@@ -30,11 +30,11 @@ from ..analysis.subjects import subject_table_names
 from ..errors import ReportgenError
 from ..inputs.files import current_sha256, sha256_bytes, sha256_file
 from ..inputs.spec import spec_from_bytes
-from ..report.render import render_pdf
-from ..report.subject_parts import MANIFEST, csv_of_part, read_manifest
-from .integrity import check_integrity
+from ..report.pdf import render_pdf
+from ..report.subject_parts import PART_LIST, csv_of_part, read_part_list
+from .integrity import integrity_findings
 from .record import environment, load_record
-from .writer import Built, build_outputs
+from .writer import RunOutputs, build_outputs
 
 Progress = Callable[[str], None]
 RTOL = 1e-6  # relative tolerance for numbers re-computed on another machine
@@ -49,13 +49,25 @@ class Row:
     ok: bool
 
 
+Outcome = Literal["ok", "explained", "finding", "not checked"]
+
+
+@dataclass(frozen=True)
+class Verdict:
+    """A part's verdict: ``ok``; ``explained`` (rendered bytes differ and the recorded
+    environment explains it); ``finding`` (a difference); ``not checked`` (and why)."""
+
+    outcome: Outcome
+    text: str
+
+
 @dataclass
 class Verification:
     rows: list[Row] = field(default_factory=list)
-    verdicts: dict[str, str] = field(default_factory=dict)
+    verdicts: dict[str, Verdict] = field(default_factory=dict)
     problems: list[str] = field(default_factory=list)
     notes: list[str] = field(default_factory=list)
-    rebuilt: Built | None = None
+    rebuilt: RunOutputs | None = None
 
     def add(self, part: str, item: str, recorded: str, now: str, ok: bool) -> None:
         self.rows.append(Row(part, item, recorded, now, ok))
@@ -95,11 +107,11 @@ def tables_match(a: bytes, b: bytes) -> tuple[bool, str]:
     return True, f"equal within {RTOL:g} (largest relative difference {worst:.2g})"
 
 
-def _compare_parts(run: Path, table: str, built: Built, scratch: Path) -> tuple[bool, str]:
+def _compare_parts(run: Path, table: str, built: RunOutputs, scratch: Path) -> tuple[bool, str]:
     """A table in parts against its re-run: the parts' canonical CSV digests, and where one
     differs, the two parts as numbers (``tables_match``)."""
     try:
-        recorded = read_manifest(run, table)
+        recorded = read_part_list(run, table)
     except ValueError as e:
         return False, str(e)
     now = [e for name, e in sorted(built.parts.items()) if name.startswith(f"tables/{table}/")]
@@ -134,8 +146,13 @@ def environment_diff(recorded: dict[str, Any]) -> list[str]:
     return out
 
 
-def verify_run(run_dir: str | Path, inputs: str | Path | None = None, render: bool = False,
-               strict: bool = False, progress: Progress = lambda _: None) -> Verification:
+def verify_run(
+    run_dir: str | Path,
+    inputs: str | Path | None = None,
+    render: bool = False,
+    strict: bool = False,
+    progress: Progress = lambda _: None,
+) -> Verification:
     """Check a run directory; see the module docstring. Raises RecordError (exit 2) when
     the run has no usable record and nothing else shows tampering."""
     run = Path(run_dir)
@@ -147,32 +164,52 @@ def verify_run(run_dir: str | Path, inputs: str | Path | None = None, render: bo
         if not (run / "SHA256SUMS").is_file() or not run.is_dir():
             raise
         record, damage = None, e
-    checked, findings = check_integrity(run, record["outputs"] if record else None)
+    checked, findings = integrity_findings(run, record["outputs"] if record else None)
     for f in findings:
-        out.add("integrity", f"file {f.name}", "listed" if f.kind != "extra" else "-",
-                f"{f.kind}: {f.detail}", False)
-    out.verdicts["integrity"] = (f"ok: all {checked} files match SHA256SUMS" if not findings
-                                 else f"FAILED: {len(findings)} file problem(s)")
+        out.add(
+            "integrity",
+            f"file {f.name}",
+            "listed" if f.kind != "extra" else "-",
+            f"{f.kind}: {f.detail}",
+            False,
+        )
+    out.verdicts["integrity"] = (
+        Verdict("ok", f"ok: all {checked} files match SHA256SUMS")
+        if not findings
+        else Verdict("finding", f"FAILED: {len(findings)} file problem(s)")
+    )
     if damage is not None:
         if not findings:  # the checksum list vouches for an unreadable record: exit 2
             raise damage
         for part in ("inputs", "numbers"):
-            out.verdicts[part] = f"not checked: {damage}"
+            out.verdicts[part] = Verdict("not checked", f"not checked: {damage}")
         return out
     assert record is not None
-    _inputs_and_numbers(run, record, out, None if inputs is None else Path(inputs), render,
-                        progress)
+    _inputs_and_numbers(
+        run, record, out, None if inputs is None else Path(inputs), render, progress
+    )
     _rendering(run, record, out, render, strict)
     return out
 
 
-def _inputs_and_numbers(run: Path, record: dict[str, Any], out: Verification,
-                        inputs: Path | None, render: bool, progress: Progress) -> None:
+def _inputs_and_numbers(
+    run: Path,
+    record: dict[str, Any],
+    out: Verification,
+    inputs: Path | None,
+    render: bool,
+    progress: Progress,
+) -> None:
     spec_file = run / "spec.yaml"
     spec_bytes = spec_file.read_bytes() if spec_file.is_file() else b""
     spec_ok = record["spec"]["sha256"] == sha256_bytes(spec_bytes)
-    out.add("inputs", "spec sha256", record["spec"]["sha256"][:16], sha256_bytes(spec_bytes)[:16],
-            spec_ok)
+    out.add(
+        "inputs",
+        "spec sha256",
+        record["spec"]["sha256"][:16],
+        sha256_bytes(spec_bytes)[:16],
+        spec_ok,
+    )
     source = (run / str(record["spec"]["source"])).resolve()
     located: list[tuple[str, Path]] = []
     changed: list[tuple[str, Path]] = []
@@ -181,54 +218,89 @@ def _inputs_and_numbers(run: Path, record: dict[str, Any], out: Verification,
         path = _locate_input(entry, source, inputs)
         # a folder or pattern of files (it has a manifest): the digest of all of them
         now = current_sha256(path, str(entry["path"]), "manifest" in entry)
-        out.add("inputs", f"input {entry['path']}", entry["sha256"][:16], now[:16],
-                now == entry["sha256"])
+        out.add(
+            "inputs",
+            f"input {entry['path']}",
+            entry["sha256"][:16],
+            now[:16],
+            now == entry["sha256"],
+        )
         (missing if now == "absent" else changed if now != entry["sha256"] else located).append(
-            (str(entry["path"]), path))
+            (str(entry["path"]), path)
+        )
     if missing:
         where = "in --inputs" if inputs is not None else "beside the recorded spec"
-        out.verdicts["inputs"] = (f"MISSING: {', '.join(str(m[0]) for m in missing)} not found "
-                                  f"{where} ({missing[0][1]}); give --inputs DIR")
+        out.verdicts["inputs"] = Verdict(
+            "finding",
+            (
+                f"MISSING: {', '.join(str(m[0]) for m in missing)} not found "
+                f"{where} ({missing[0][1]}); give --inputs DIR"
+            ),
+        )
     elif changed:
-        out.verdicts["inputs"] = (f"CHANGED: input files differ from those the run used "
-                                  f"({', '.join(str(c[0]) for c in changed)}): refreshed or "
-                                  "edited since the run")
+        out.verdicts["inputs"] = Verdict(
+            "finding",
+            (
+                f"CHANGED: input files differ from those the run used "
+                f"({', '.join(str(c[0]) for c in changed)}): refreshed or "
+                "edited since the run"
+            ),
+        )
     elif spec_ok:
-        out.verdicts["inputs"] = "ok: the spec and every input file match the record"
+        out.verdicts["inputs"] = Verdict("ok", "ok: the spec and every input file match the record")
     else:
-        out.verdicts["inputs"] = "CHANGED: spec.yaml differs from the recorded spec"
+        out.verdicts["inputs"] = Verdict(
+            "finding", "CHANGED: spec.yaml differs from the recorded spec"
+        )
     if missing or changed or not spec_ok:
-        out.verdicts["numbers"] = "not checked: the inputs are not those of the run"
+        out.verdicts["numbers"] = Verdict(
+            "not checked", "not checked: the inputs are not those of the run"
+        )
         return
     try:
         spec = spec_from_bytes(spec_bytes, source)
     except ReportgenError as e:
         out.add("numbers", "recorded spec", "valid", f"invalid: {e}", False)
-        out.verdicts["numbers"] = "FAILED: the recorded spec no longer validates"
+        out.verdicts["numbers"] = Verdict(
+            "finding", "FAILED: the recorded spec no longer validates"
+        )
         return
     if inputs is not None:
         spec = replace(spec, locations=dict(located))
     progress("re-running the recorded spec")
     with tempfile.TemporaryDirectory(prefix="reportgen-verify-") as scratch:
-        built = build_outputs(spec, int(record["run"]["version"]), str(record["run"]["started"]),
-                              progress, render=render, parts_to=Path(scratch))
+        built = build_outputs(
+            spec,
+            int(record["run"]["version"]),
+            str(record["run"]["started"]),
+            progress,
+            render=render,
+            parts_to=Path(scratch),
+        )
         out.rebuilt = built
         _numbers(run, record, out, built, Path(scratch))
 
 
-def _numbers(run: Path, record: dict[str, Any], out: Verification, built: Built,
-             scratch: Path) -> None:
+def _numbers(
+    run: Path, record: dict[str, Any], out: Verification, built: RunOutputs, scratch: Path
+) -> None:
     """The re-run's tables against the run's (its parts re-written under ``scratch``)."""
     same_digest = built.results_sha256 == record["results_sha256"]
-    out.add("numbers", "results sha256 (exact)", record["results_sha256"][:16],
-            built.results_sha256[:16], True)
+    out.add(
+        "numbers",
+        "results sha256 (exact)",
+        record["results_sha256"][:16],
+        built.results_sha256[:16],
+        True,
+    )
     bad = 0
     for name in sorted(n for n in built.files if n.startswith("tables/")):
-        if name.endswith("/" + MANIFEST):  # a table in parts: compared part by part below
+        if name.endswith("/" + PART_LIST):  # a table in parts: compared part by part below
             continue
         stored = run / name
-        ok, detail = tables_match(stored.read_bytes() if stored.is_file() else b"",
-                                    built.files[name])
+        ok, detail = tables_match(
+            stored.read_bytes() if stored.is_file() else b"", built.files[name]
+        )
         bad += not ok
         out.add("numbers", f"table {name.removeprefix('tables/')}", "recorded", detail, ok)
     if built.parts:
@@ -237,26 +309,48 @@ def _numbers(run: Path, record: dict[str, Any], out: Verification, built: Built,
             bad += not ok
             out.add("numbers", f"table {table} (parts)", "recorded", detail, ok)
     if bad:
-        out.verdicts["numbers"] = f"CHANGED: {bad} table(s) differ beyond {RTOL:g}"
+        out.verdicts["numbers"] = Verdict(
+            "finding", f"CHANGED: {bad} table(s) differ beyond {RTOL:g}"
+        )
     elif same_digest:
-        out.verdicts["numbers"] = "ok: re-run gives byte-identical tables (same results digest)"
+        out.verdicts["numbers"] = Verdict(
+            "ok", "ok: re-run gives byte-identical tables (same results digest)"
+        )
     else:
-        out.verdicts["numbers"] = (f"ok: re-run tables equal within relative {RTOL:g}; the "
-                                   "digest differs in the last digits (another machine or "
-                                   "library)")
+        out.verdicts["numbers"] = Verdict(
+            "ok",
+            (
+                f"ok: re-run tables equal within relative {RTOL:g}; the "
+                "digest differs in the last digits (another machine or "
+                "library)"
+            ),
+        )
 
 
-def _rendering(run: Path, record: dict[str, Any], out: Verification, render: bool,
-               strict: bool) -> None:
+def _rendering(
+    run: Path, record: dict[str, Any], out: Verification, render: bool, strict: bool
+) -> None:
     built = out.rebuilt
     if not render or built is None:
-        out.verdicts["rendering"] = ("not checked (add --render to rebuild the HTML, figures "
-                                     "and PDF)" if not render else "not checked")
+        out.verdicts["rendering"] = Verdict(
+            "not checked",
+            (
+                "not checked (add --render to rebuild the HTML, figures and PDF)"
+                if not render
+                else "not checked"
+            ),
+        )
         return
-    pdf = render_pdf(built.files["report.html"], (run / "spec.yaml").read_bytes(),
-                     (run / "record.json").read_bytes(), str(record["run"]["finished"]))
-    rebuilt = {**{n: d for n, d in built.files.items() if not n.startswith("tables/")},
-               "report.pdf": pdf}
+    pdf = render_pdf(
+        built.files["report.html"],
+        (run / "spec.yaml").read_bytes(),
+        (run / "record.json").read_bytes(),
+        str(record["run"]["finished"]),
+    )
+    rebuilt = {
+        **{n: d for n, d in built.files.items() if not n.startswith("tables/")},
+        "report.pdf": pdf,
+    }
     differing = []
     for name in sorted(rebuilt):
         stored = run / name
@@ -264,22 +358,37 @@ def _rendering(run: Path, record: dict[str, Any], out: Verification, render: boo
         before = sha256_file(stored) if stored.is_file() else "absent"
         if now != before:
             differing.append(name)
-        out.rows.append(Row("rendering", f"re-rendered {name}", before[:16], now[:16],
-                            now == before))
+        out.rows.append(
+            Row("rendering", f"re-rendered {name}", before[:16], now[:16], now == before)
+        )
     if not differing:
-        out.verdicts["rendering"] = "ok: HTML, figures and PDF re-render byte-identical"
+        out.verdicts["rendering"] = Verdict(
+            "ok", "ok: HTML, figures and PDF re-render byte-identical"
+        )
         return
     env = environment_diff(record.get("environment", {}))
-    numbers_ok = out.verdicts.get("numbers", "").startswith("ok")
+    numbers = out.verdicts.get("numbers")
+    numbers_ok = numbers is not None and numbers.outcome == "ok"
     if env and numbers_ok:
-        out.verdicts["rendering"] = (f"differs only in rendering ({len(differing)} file(s)); "
-                                     "the environment differs from the recorded one: "
-                                     + "; ".join(env))
-        out.notes.append("rendered bytes depend on the fonts and library versions; the numbers "
-                         "match" + ("" if not strict else " (--strict: counted as a finding)"))
+        out.verdicts["rendering"] = Verdict(
+            "explained",
+            (
+                f"differs only in rendering ({len(differing)} file(s)); "
+                "the environment differs from the recorded one: " + "; ".join(env)
+            ),
+        )
+        out.notes.append(
+            "rendered bytes depend on the fonts and library versions; the numbers "
+            "match" + ("" if not strict else " (--strict: counted as a finding)")
+        )
         if strict:
             out.problems.extend(f"re-rendered {n}" for n in differing)
     else:
-        out.verdicts["rendering"] = (f"CHANGED: {len(differing)} file(s) re-render differently "
-                                     "in the recorded environment")
+        out.verdicts["rendering"] = Verdict(
+            "finding",
+            (
+                f"CHANGED: {len(differing)} file(s) re-render differently "
+                "in the recorded environment"
+            ),
+        )
         out.problems.extend(f"re-rendered {n}" for n in differing)

@@ -23,14 +23,15 @@ from pathlib import Path
 from .._version import __version__
 from ..analysis.analyse import AnalysisResult, analyse
 from ..analysis.engine import Engine, local_engine, open_engine
+from ..analysis.subjects import subject_table_names
 from ..errors import DataError, OutputError
 from ..inputs.files import current_sha256, sha256_bytes
 from ..inputs.loader import Dataset, load_dataset, require_passed
 from ..inputs.spec import Spec, load_spec
-from ..report.render import render_html
-from ..report.render_process import RenderWorker
+from ..report.html import render_html
+from ..report.render_process import RenderProcess
 from ..report.styles import InputFile, load_style
-from ..report.subject_parts import PartEntry, manifest_bytes, manifest_file, write_subject_parts
+from ..report.subject_parts import PartEntry, part_list_bytes, part_list_file, subject_parts
 from ..report.tables import build_tables, canonical_bytes, results_digest
 from .integrity import SUMS, checksum_list
 from .record import build_record, dump_record, environment
@@ -46,7 +47,7 @@ def _timestamp() -> str:
 
 
 @dataclass(frozen=True)
-class Built:
+class RunOutputs:
     """Every output file of a run except record.json, and the record's ingredients."""
 
     files: dict[str, bytes]
@@ -78,8 +79,8 @@ class Timer:
 
 def build_outputs(spec: Spec, version: int, started: str,
                   progress: Progress = lambda _: None, timer: Timer | None = None,
-                  render: bool = True, worker: RenderWorker | None = None,
-                  engine: Engine | None = None, parts_to: Path | None = None) -> Built:
+                  render: bool = True, worker: RenderProcess | None = None,
+                  engine: Engine | None = None, parts_to: Path | None = None) -> RunOutputs:
     """Every output except record.json and report.pdf (which depend on the record).
 
     With ``render=False`` only the tables (and spec.yaml) are built: what ``verify``
@@ -103,14 +104,18 @@ def build_outputs(spec: Spec, version: int, started: str,
     if spec.subjects.tables == "parquet":
         if parts_to is None:
             raise ValueError("subjects.tables: parquet needs a folder to write the parts to")
-        for name, entries in write_subject_parts(result, parts_to, run_on.executor).items():
-            listed[manifest_file(name)] = manifest_bytes(name, entries)
+        written: dict[str, list[PartEntry]] = {n: [] for n in subject_table_names(result)}
+        for name, entry, data in subject_parts(result, run_on.executor):
+            _write(parts_to / entry.file, data)
+            written[name].append(entry)
+        for name, entries in written.items():
+            listed[part_list_file(name)] = part_list_bytes(name, entries)
             parts.update((e.file, e) for e in entries)
         clock.lap("tables of subjects")
     sums = {name: (e.csv_bytes, e.csv_sha256) for name, e in parts.items()}
     if style is None:
         tables = canonical_bytes(frames)
-        return Built({**tables, **listed, "spec.yaml": spec.raw}, results_digest(tables, sums),
+        return RunOutputs({**tables, **listed, "spec.yaml": spec.raw}, results_digest(tables, sums),
                      result, parts=parts)
     progress("figures")
     if worker is not None:  # the worker writes the large tables while figures are drawn
@@ -154,7 +159,7 @@ def build_outputs(spec: Spec, version: int, started: str,
         # The standalone file needs the namespace that the inline copy does without.
         standalone = svg.replace("<svg ", '<svg xmlns="http://www.w3.org/2000/svg" ', 1)
         files[f"figures/{name}.svg"] = standalone.encode("utf-8")
-    return Built(files, digest, result, style.inputs, parts)
+    return RunOutputs(files, digest, result, style.inputs, parts)
 
 
 def _next_version(folder: Path) -> int:
@@ -213,7 +218,7 @@ def _run(spec: Spec, out: str | Path, progress: Progress, timer: Timer | None,
         version, building = _reserve(folder)
     except OSError as e:
         raise OutputError(f"cannot create the run folder in {str(out)!r}: {e.strerror}") from e
-    worker = RenderWorker()  # loads the rendering libraries while this process fits
+    worker = RenderProcess()  # loads the rendering libraries while this process fits
     # Load matplotlib here too, in a thread: the fit's compiled steps release the GIL, so
     # most of the import overlaps them (measured: 0.7 s of 1 s off the critical path).
     threading.Thread(target=importlib.import_module, args=("reportgen.report.figures",),

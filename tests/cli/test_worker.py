@@ -9,7 +9,7 @@ import pytest
 
 import reportgen.report.render_process
 import reportgen.runs.writer
-from reportgen.report.render_process import RenderWorker
+from reportgen.report.render_process import RenderProcess
 from reportgen.report.tables import canonical_bytes
 from reportgen.runs.writer import run_spec
 
@@ -25,16 +25,16 @@ def test_worker_alone_and_dead_worker_write_the_same_bytes(
     monkeypatch.setattr(reportgen.report.render_process, "LARGE_TABLE_ROWS", 10)
     with_worker = _files(run_spec(study, tmp_path / "a"))
 
-    monkeypatch.setattr(reportgen.runs.writer, "RenderWorker", lambda: RenderWorker(start=False))
+    monkeypatch.setattr(reportgen.runs.writer, "RenderProcess", lambda: RenderProcess(start=False))
     alone = _files(run_spec(study, tmp_path / "b"))
 
-    def dying() -> RenderWorker:
-        worker = RenderWorker()
+    def dying() -> RenderProcess:
+        worker = RenderProcess()
         assert worker._proc is not None
         worker._proc.kill()  # gone before its first task: every task falls back
         return worker
 
-    monkeypatch.setattr(reportgen.runs.writer, "RenderWorker", dying)
+    monkeypatch.setattr(reportgen.runs.writer, "RenderProcess", dying)
     dead = _files(run_spec(study, tmp_path / "c"))
     assert "report.pdf" in with_worker and len(with_worker) > 20
     assert with_worker == alone == dead
@@ -42,7 +42,7 @@ def test_worker_alone_and_dead_worker_write_the_same_bytes(
 
 def test_replies_are_claimed_in_any_order() -> None:
     frames = [{"a": pd.DataFrame({"x": [1.5, 2.0]})}, {"b": pd.DataFrame({"y": ["p", "q"]})}]
-    worker = RenderWorker()
+    worker = RenderProcess()
     try:
         first, second = (worker._submit("csv", f) for f in frames)
         assert first is not None and second is not None

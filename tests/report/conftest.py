@@ -45,7 +45,8 @@ def styled(regenerated: dict[str, Path]) -> dict[tuple[str, str], tuple[bytes, b
     from reportgen.inputs.loader import load_dataset
     from reportgen.inputs.spec import load_spec
     from reportgen.report.figures import make_figures
-    from reportgen.report.render import render_html, render_pdf
+    from reportgen.report.html import render_html
+    from reportgen.report.pdf import render_pdf
     from reportgen.report.styles import load_style
 
     out = {}

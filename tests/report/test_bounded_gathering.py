@@ -21,7 +21,7 @@ from reportgen.fpca import fit as fit_module
 from reportgen.fpca.plan import InProcess
 from reportgen.inputs.loader import load_dataset
 from reportgen.inputs.spec import load_spec
-from reportgen.report.subject_parts import write_subject_parts
+from reportgen.report.subject_parts import subject_parts
 
 from ..counting import numbers_in
 from ..designs import yao_design
@@ -61,9 +61,9 @@ def _run(tmp_path: Path, n: int) -> tuple[_Counting, Any]:
     spec = load_spec(folder / "s.yaml")
     counting = _Counting()
     result = analyse(spec, load_dataset(spec, counting, for_fit=True))
-    written = write_subject_parts(result, folder / "run", counting)
+    written = [entry for name, entry, _ in subject_parts(result, counting) if name == "scores"]
     assert result.fit.n_subjects == n and result.groups is not None
-    assert sum(e.rows for e in written["scores"]) == n
+    assert sum(e.rows for e in written) == n
     assert result.subjects_view.sampled.size == CAP
     return counting, result
 
@@ -79,8 +79,8 @@ def capped(monkeypatch: pytest.MonkeyPatch) -> None:
 def test_the_report_gathers_nothing_per_subject(tmp_path: Path, capped: None) -> None:
     small, _ = _run(tmp_path, N_SUBJECTS)
     large, result = _run(tmp_path, 2 * N_SUBJECTS)
-    passes = set(large.largest) - {"summary", "made_part"}
-    assert {"part_farthest", "part_largest_rms", "part_group_sums", "_small",
+    passes = set(large.largest) - {"part_summary", "made_part"}
+    assert {"part_farthest", "part_largest_rms", "part_group_sums", "checked_found",
             "take_rows"} <= passes
     # a per-subject return would grow by N_SUBJECTS numbers or more; the sampled subjects'
     # readings vary a little with their reading counts
@@ -97,7 +97,7 @@ def test_the_report_says_where_it_uses_the_sample(tmp_path: Path, capped: None) 
     from dataclasses import asdict
 
     from reportgen.report.figures import make_figures
-    from reportgen.report.render import build_sections
+    from reportgen.report.sections import build_sections
 
     _, result = _run(tmp_path, N_SUBJECTS)
     words = f"a seeded sample of {CAP} of the {N_SUBJECTS:,} subjects"

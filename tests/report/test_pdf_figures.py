@@ -6,8 +6,8 @@ from pathlib import Path
 
 import pytest
 
-import reportgen.report.render
-from reportgen.report.render import render_pdf
+import reportgen.report.pdf
+from reportgen.report.pdf import render_pdf
 
 ROOT = Path(__file__).resolve().parents[2]
 
@@ -20,6 +20,6 @@ def test_figures_as_images_leave_the_pdf_unchanged(report: str,
     assert html.count(b"<svg ") >= 10
     args = (b"spec", b"{}", "2026-12-01T00:00:00Z")
     as_images = render_pdf(html, *args)
-    monkeypatch.setattr(reportgen.report.render, "_figures_as_images", lambda text: text)
+    monkeypatch.setattr(reportgen.report.pdf, "_figures_as_images", lambda text: text)
     inline = render_pdf(html, *args)
     assert as_images == inline

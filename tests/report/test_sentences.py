@@ -145,7 +145,7 @@ def test_flagged_subjects_named_up_to_the_cap(base: AnalysisResult) -> None:
     from dataclasses import asdict, replace
 
     from reportgen.analysis.views import NAMED_FLAGGED, subject_view
-    from reportgen.report.render import build_sections
+    from reportgen.report.sections import build_sections
 
     fit = base.fit
     view = subject_view(fit, base.residual_sums, 0.5, base.subjects_view.sampled,
@@ -171,7 +171,7 @@ def test_residual_diagnostics_over_a_sample_say_so(base: AnalysisResult, tmp_pat
     from scipy.stats import spearmanr
 
     from reportgen.analysis import views as analysis
-    from reportgen.report.render import _over_sample
+    from reportgen.report.sections import _over_sample
 
     assert base.readings.n_sampled == base.fit.n_subjects and _over_sample(base) == ""
     monkeypatch.setattr(analysis, "DIAGNOSTIC_MAX_SUBJECTS", 40)

@@ -12,7 +12,7 @@ import pytest
 
 from reportgen.cli import main
 from reportgen.inputs.spec import load_spec
-from reportgen.report.render import render_pdf
+from reportgen.report.pdf import render_pdf
 from reportgen.runs.writer import build_outputs
 
 ROOT = Path(__file__).resolve().parents[2]

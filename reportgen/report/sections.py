@@ -1,30 +1,21 @@
-"""AnalysisResult (+ figures) -> HTML via jinja2 (autoescape on) -> PDF/A via weasyprint."""
+"""The report's sections (a registry of small functions) built from an analysis: numbered
+tables and figures, text and lists, in the order the spec asks for. What each section says
+is read off the analysis result; nothing here computes a number of the model."""
 
 from __future__ import annotations
 
-import base64
-import contextlib
-import os
-import re
-import warnings
-from collections.abc import Callable, Iterator, Sequence
-from dataclasses import asdict, dataclass, field
-from datetime import UTC, datetime
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass, field
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
-# NAMED_FLAGGED: flagged subjects named in the text, farthest first; a large study flags
-# thousands (6558 of 10^6 at the 0.99 quantile: 25 PDF pages of ids), and the table holds
-# them all.
 from ..analysis.analyse import AnalysisResult
 from ..analysis.caveats import STANDARD_CAUTIONS
 from ..analysis.views import NAMED_FLAGGED
-from ..errors import TemplateError
-from ..fpca import BandwidthChoice
 
 if TYPE_CHECKING:
-    from .styles import Style
+    from ..fpca.bandwidth import BandwidthChoice
 
 
 @dataclass
@@ -427,139 +418,3 @@ def build_sections(result: AnalysisResult, record_view: dict[str, Any],
     for name in (order or SECTIONS):
         SECTIONS[name](context)
     return context.b.sections
-
-
-def render_html(result: AnalysisResult, version: int, record_view: dict[str, Any],
-                figures: dict[str, tuple[str, str, str]], style: Style) -> bytes:
-    """The report page, in the spec's style (``style.load_style``).
-
-    A shipped style renders in this process; the spec's own template in a sandboxed child
-    process with time, memory and output limits (``sandbox``). Raises TemplateError.
-    """
-    from markupsafe import Markup
-
-    from .sandbox import USER, TemplateFailure, render_here, render_in_child, shipped_sources
-
-    spec = result.spec
-    sections = build_sections(result, record_view, figures, style.numbering, style.sections)
-    header = " · ".join(x for x in (style.header, f"{spec.report_id} v{version:03d}") if x)
-    context = {
-        "title": spec.report.title, "report_id": spec.report_id, "version": version,
-        "authors": list(spec.report.authors), "description": spec.report.description,
-        "sections": [asdict(x) for x in sections], "css": Markup(style.css),
-        "logo": style.logo, "header_text": header, "footer_text": style.footer,
-        "numbering": style.numbering, "started": _record_item(record_view, "run started"),
-        "tool": _record_item(record_view, "tool"),
-    }
-    sources = shipped_sources()
-    try:
-        if style.user_template is None:
-            html = render_here(sources, f"{style.name}/report.html.j2", context)
-        else:
-            html = render_in_child({**sources, USER: style.user_template}, USER, context)
-    except TemplateFailure as e:
-        which = (f"report.template {spec.report.template!r}"
-                 if style.user_template is not None else f"the {style.name} style")
-        raise TemplateError(f"{which}: {e}") from e
-    return html.encode("utf-8")
-
-
-def _record_item(record_view: dict[str, Any], prefix: str) -> str:
-    return next((str(v) for k, v in record_view.get("items", []) if k.startswith(prefix)), "")
-
-
-def _offline_fetcher() -> Any:
-    """A weasyprint URL fetcher that refuses every URL except inline ``data:`` ones.
-
-    The HTML is self-contained (inline CSS and SVG; raster parts of figures are ``data:``
-    URIs that the renderer itself wrote); a spec or data value that looks like a URL or a
-    path must never make the renderer read a file or open a connection. Refused URLs are
-    kept in ``.refused``.
-    """
-    import weasyprint
-
-    class OfflineFetcher(weasyprint.URLFetcher):
-        def __init__(self) -> None:
-            super().__init__(allowed_protocols={"data"}, fail_on_errors=False)
-            self.refused: list[str] = []
-
-        def fetch(self, url: str, headers: Any = None) -> Any:
-            if not url.startswith("data:"):
-                self.refused.append(url)
-                raise ValueError(f"reportgen renders offline; refused to fetch {url!r}")
-            return super().fetch(url, headers)
-
-    return OfflineFetcher()
-
-
-@contextlib.contextmanager
-def _source_date(when: datetime) -> Iterator[None]:
-    """Set SOURCE_DATE_EPOCH to ``when`` while the PDF is written, then restore it.
-
-    Without the HarfBuzz-subset library weasyprint subsets fonts with fontTools, which
-    stamps each subset font with the current time unless SOURCE_DATE_EPOCH is set
-    (reproducible-builds.org convention). The run's one clock is the recorded finish time.
-    """
-    key = "SOURCE_DATE_EPOCH"
-    before = os.environ.get(key)
-    os.environ[key] = str(int(when.replace(tzinfo=UTC).timestamp()))
-    try:
-        yield
-    finally:
-        if before is None:
-            del os.environ[key]
-        else:
-            os.environ[key] = before
-
-
-def _figures_as_images(html: str) -> str:
-    """The report's inline SVG figures as ``<img>`` elements with ``data:`` URIs, sized as
-    the SVG says.
-
-    The PDF comes out byte-identical (measured on both examples), but the renderer then
-    parses each figure as SVG only, instead of also as HTML elements that the page's CSS
-    cascade visits: 0.7 s of 4 s for the clinic report.
-    """
-    def image(match: re.Match[str]) -> str:
-        svg = match.group(0).replace("<svg ", '<svg xmlns="http://www.w3.org/2000/svg" ', 1)
-        head = svg[:svg.index(">")]
-        size = ";".join(f"{k}:{v}" for k, v in re.findall(r'\b(width|height)="([^"]+)"', head))
-        data = base64.b64encode(svg.encode("utf-8")).decode("ascii")
-        return f'<img alt="" style="{size}" src="data:image/svg+xml;base64,{data}">'
-
-    return re.sub(r"<svg .*?</svg>", image, html, flags=re.S)
-
-
-def render_pdf(html: bytes, spec_bytes: bytes, record_bytes: bytes, stamp: str) -> bytes:
-    """PDF/A-3b from the report HTML with spec.yaml and record.json attached.
-
-    PDF/A-3 is the archival variant that allows embedded files. The result is a pure
-    function of its inputs (the attachments' dates are ``stamp``, the run's finish time in
-    UTC as ``YYYY-MM-DDTHH:MM:SSZ``; fixed identifier), so ``verify`` can re-render it and
-    compare bytes.
-    """
-    import logging
-
-    import weasyprint
-
-    logging.getLogger("weasyprint").setLevel(logging.ERROR)
-    fetcher = _offline_fetcher()
-    when = datetime.strptime(stamp, "%Y-%m-%dT%H:%M:%SZ")
-    attachments = [
-        weasyprint.Attachment(string=spec_bytes, name="spec.yaml",
-                              description="The spec of this run, as given", url_fetcher=fetcher,
-                              created=when, modified=when),
-        weasyprint.Attachment(string=record_bytes, name="record.json",
-                              description="The hashed record of this run", url_fetcher=fetcher,
-                              created=when, modified=when),
-    ]
-    document = weasyprint.HTML(string=_figures_as_images(html.decode("utf-8")), base_url=None,
-                               url_fetcher=fetcher)
-    with warnings.catch_warnings(), _source_date(when):
-        # weasyprint 70 opens its bundled sRGB profile (PDF/A output intent) without closing
-        # it; the file is dropped, with its warning, before write_pdf returns.
-        warnings.filterwarnings("ignore", message=r"unclosed file .*sRGB2014\.icc",
-                                category=ResourceWarning)
-        pdf = document.write_pdf(pdf_variant="pdf/a-3b", attachments=attachments,
-                                 pdf_identifier=b"reportgen", uncompressed_pdf=False)
-    return bytes(pdf)
