@@ -333,8 +333,8 @@ def entry() -> None:
     """The installed ``reportgen`` command: ``main`` and a quick exit.
 
     After the command has finished and its output is flushed, the interpreter's own
-    teardown (finalising numba, matplotlib and pandas) took another second of the run's
-    wall time; every file of a run is written and closed by then, so it is skipped.
+    teardown (finalising numba, matplotlib and pandas) would add wall time; every file of
+    a run is written and closed by then, so it is skipped.
     """
     code = main()
     sys.stdout.flush()

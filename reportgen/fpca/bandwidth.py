@@ -9,11 +9,9 @@ number of subjects at the usual local linear rate (n^(-1/5) for the mean, n^(-1/
 the covariance surface; Fan & Gijbels 1996, sec. 3.2.2 and 7.8) down to no less than two
 bin widths, up to half the domain. When the criterion is smallest there, the search goes
 on upwards to twice the length of the domain (``EXTEND_TO``), where the local linear fit is
-close to a global straight line or plane. Measured over 12 seeds of the designs in
-``tests/reference/accuracy.py``: the covariance criterion was smallest at the top of the
-old range in 8 of 12 fits of design D (a bilinear covariance) and 3 of 12 of C; the
-extended search brackets the minimum in all of them, and the median estimates of sigma^2,
-the eigenvalues and the eigenfunctions moved by less than 1%. A candidate is infeasible
+close to a global straight line or plane (a covariance criterion often falls all the way
+to half the domain when the true surface is nearly bilinear; benchmarks/CHOICES.md). A
+candidate is infeasible
 when the local design is singular at any evaluation point or any bin holding data;
 infeasible candidates score ``nan`` and are never chosen. After the first pass, the
 neighbourhood of the best candidate is searched once more on a finer geometric grid.

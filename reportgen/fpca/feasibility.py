@@ -22,6 +22,7 @@ from typing import Any
 
 import numpy as np
 
+from . import refusals
 from .arrays import FloatArray, IntArray
 from .bandwidth import candidate_bandwidths
 from .options import FPCAOptions
@@ -42,8 +43,7 @@ def pair_counts(subject: IntArray, t: FloatArray, bins: BinGrid) -> FloatArray:
     Per subject, the pairs' weights are the outer product of the readings' bin weights
     minus each reading's product with itself. When the fit's compiled kernels are loaded
     already (``run``, not ``check``), their pair pass counts instead: the same numbers to
-    rounding (``tests/test_fast_paths.py``), 0.2 s against 1.1-2.9 s at 4.5 million
-    readings.
+    rounding (``tests/fpca/test_fast_paths.py``), several times faster.
     """
     kernels = sys.modules.get("reportgen.fpca._kernels")
     if kernels is not None and subject.size:
@@ -132,13 +132,12 @@ def problems_from(counts: DesignCounts, n_obs: IntArray, domain: tuple[float, fl
     lo, hi = domain
     out: list[str] = []
     if counts.outside:
-        out.append(f"{counts.outside} readings lie outside the domain [{lo:.6g}, {hi:.6g}]")
+        out.append(refusals.outside_domain(counts.outside, lo, hi))
     n_multi = int(np.count_nonzero(n_obs >= 2))
     if n_multi < 2:
-        out.append("the covariance needs at least two subjects with two or more readings; "
-                   f"found {n_multi} among {n_obs.size} subjects")
+        out.append(refusals.too_few_pairs(n_multi, int(n_obs.size)))
     if not hi > lo:
-        out.append(f"all readings are at one time ({lo:.6g}): a curve cannot be estimated")
+        out.append(refusals.one_time(lo))
         return out
     if constant:
         out.append("every reading has the same value: there is nothing to decompose")
@@ -166,8 +165,8 @@ def problems_from(counts: DesignCounts, n_obs: IntArray, domain: tuple[float, fl
                                          kernel, symmetric=True)
         if not np.all(np.isfinite(surface)):
             bad = np.flatnonzero(~np.all(np.isfinite(surface), axis=1))
-            out.append(_message("covariance", h, options.covariance_bandwidth, grid[bad],
-                                grid.size))
+            out.append(refusals.smoother_undefined(
+                "covariance", h, options.covariance_bandwidth != "auto", grid[bad], grid.size))
     return out
 
 
@@ -175,16 +174,5 @@ def _gap(what: str, h: float, setting: float | str, evals: FloatArray, bins: Bin
          counts: FloatArray, kernel: object) -> str:
     est = local_linear_binned_1d(evals, bins.centers, counts, np.zeros_like(counts), h,
                                  kernel)  # type: ignore[arg-type]
-    return _message(what, h, setting, np.sort(evals[~np.isfinite(est)]), evals.size)
-
-
-def _message(what: str, h: float, setting: float | str, bad: FloatArray, n: int) -> str:
-    where = (f"at {bad.size} of {n} points" if bad.size > 1 else "at 1 point") + (
-        f" between times {bad[0]:.4g} and {bad[-1]:.4g}" if bad.size > 1 else
-        f", time {bad[0]:.4g}")
-    if setting != "auto":
-        return (f"the fixed {what} bandwidth {h:.4g} is too small for this design: the "
-                f"{what} smoother is undefined {where} (too few readings nearby)")
-    return (f"no bandwidth up to {h:.4g} gives a defined {what}: the smoother is undefined "
-            f"{where} (too few readings nearby); narrow the domain or give a larger fixed "
-            "bandwidth")
+    return refusals.smoother_undefined(what, h, setting != "auto",
+                                       np.sort(evals[~np.isfinite(est)]), evals.size)

@@ -16,7 +16,7 @@ Steps (Yao, Müller & Wang 2005, JASA 100:577-590, doi:10.1198/01621450400000174
    (``selection``);
 6. scores and their error covariance by conditional expectation (``plan`` pass 3, the
    formulas in ``scores``), kept where they were computed; with ``band: corrected`` the
-   population quantities refitted on resampled subjects (``bootstrap``).
+   population quantities refitted on resampled subjects (``predictor.corrected_variance``).
 
 Every step that touches readings is a pass over the data's parts (``plan``), so that the
 same fit runs in this process or on a cluster with the same bits. Every number is computed
@@ -32,6 +32,7 @@ from scipy.special import ndtri
 
 from .._threads import one_blas_thread
 from ..errors import EstimationError
+from . import refusals
 from .arrays import FloatArray, IntArray
 from .bandwidth import EXTEND_TO, BandwidthChoice, candidate_bandwidths, select_bandwidth
 from .components import (
@@ -85,11 +86,9 @@ def _choose_bandwidth(
         total = stats.total()
         est = smooth(eval_points, total.counts[0], total.sums[0], h)
         if not np.all(np.isfinite(est)):
-            raise EstimationError(
-                f"the fixed {what} bandwidth {h:.4g} is too small for this design: some grid "
-                "points have fewer readings in their window than a local linear fit needs; "
-                'use a larger value or "auto"'
-            )
+            bad = ~np.isfinite(est) if est.ndim == 1 else ~np.all(np.isfinite(est), axis=1)
+            raise EstimationError(refusals.smoother_undefined(
+                what, h, True, np.sort(eval_points[bad]), eval_points.size))
         return BandwidthChoice(h, "fixed")
     span = bins.upper - bins.lower
     candidates = candidate_bandwidths(span, bins.width, n_subjects, dim)
@@ -156,20 +155,12 @@ def _check_variation(found: ResidualSize) -> None:
 def _check_design(data: Partitioned, lo: float, hi: float) -> None:
     outside = data.count_outside(lo, hi)
     if outside:
-        raise EstimationError(
-            f"{outside} readings lie outside the domain [{lo:.6g}, {hi:.6g}]; leave them out "
-            "or widen the domain (they would otherwise be counted at its ends)"
-        )
+        raise EstimationError(refusals.outside_domain(outside, lo, hi))
     n_multi = int(np.count_nonzero(data.n_obs >= 2))
     if n_multi < 2:
-        raise EstimationError(
-            "the covariance needs at least two subjects with two or more readings; "
-            f"found {n_multi} among {data.n_subjects} subjects"
-        )
+        raise EstimationError(refusals.too_few_pairs(n_multi, data.n_subjects))
     if not hi > lo:
-        raise EstimationError(
-            f"all readings are at one time ({lo:.6g}): a curve cannot be estimated"
-        )
+        raise EstimationError(refusals.one_time(lo))
 
 
 def fit_arrays(
@@ -357,7 +348,7 @@ def _fit(data: Partitioned, labels: Labels, options: FPCAOptions, population_onl
 
 
 def _with_replicates(fit: FPCAFit, data: Partitioned) -> FPCAFit:
-    """Refit the population quantities on resampled subjects (``fpca.bootstrap``).
+    """Refit the population quantities on resampled subjects (``predictor.corrected_variance``).
 
     Each replicate keeps the main fit's three bandwidths, domain and number of components;
     a resample on which that fit is impossible (too few positive eigenvalues) is skipped
@@ -395,10 +386,8 @@ def _with_replicates(fit: FPCAFit, data: Partitioned) -> FPCAFit:
 
 # Components refined by likelihood: those reaching this share of the surface's positive
 # variance (capped at max_components); the ones beyond the chosen K absorb variance outside
-# the retained span, so that it does not land in sigma^2. Measured over seeds
-# (tests/reference/accuracy.py): 0.99 left sigma^2 at 1.6x the truth in the sparsest design
-# (an oversmoothed surface misses a component, whose variance then goes to sigma^2); all
-# positive components pulled sigma^2 down to 0.5x in some fits of another; 0.999 did neither.
+# the retained span, so that it does not land in sigma^2 (0.99 and "all" were worse over
+# seeds: benchmarks/CHOICES.md).
 REFINED_FVE = 0.999
 
 
@@ -416,9 +405,8 @@ def _refined_count(eig: Eigen, options: FPCAOptions) -> int:
     return k
 
 
-# The likelihood refinement uses at most this many subjects (a seeded sample above it).
-# Measured at 10^6 subjects: 20 000 give sigma^2 within 0.1% and the eigenvalues within
-# 0.5% of the maximum over all subjects, at a few percent of its cost.
+# The likelihood refinement uses at most this many subjects (a seeded sample above it):
+# close to the maximum over all subjects at a few percent of its cost (CHOICES.md).
 REFINE_MAX_SUBJECTS = 20000
 
 
@@ -448,7 +436,7 @@ def _sup_multiplier(cov: FloatArray, level: float, seed: int, draws: int = 20000
     values, vectors = np.linalg.eigh(0.5 * (corr + corr.T))
     root = vectors * np.sqrt(np.maximum(values, 0.0))
     # Single precision: the draws' rounding (~1e-7) is far below their Monte Carlo error
-    # (~1e-3 for the quantile), and it makes this step 2.5x faster.
+    # (~1e-3 for the quantile), and the step is faster.
     z = np.random.default_rng(seed).standard_normal((draws, values.size), dtype=np.float32)
     z = z @ root.T.astype(np.float32)
     return float(np.quantile(np.max(np.abs(z), axis=1).astype(np.float64), level))

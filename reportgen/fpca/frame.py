@@ -5,6 +5,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
+from .._text import plain
 from ..errors import DataError
 from .arrays import FloatArray, IntArray
 
@@ -18,7 +19,7 @@ def _numeric(frame: pd.DataFrame, column: str, role: str) -> FloatArray:
             row = int(np.flatnonzero(bad.to_numpy())[0])
             raise DataError(
                 f"{role} column {column!r} must be numeric; row {row + 1} holds "
-                f"{_plain(series.iloc[row])}"
+                f"{plain(series.iloc[row])}"
             )
         series = converted
     values = series.to_numpy(dtype=np.float64, na_value=np.nan)
@@ -29,13 +30,6 @@ def _numeric(frame: pd.DataFrame, column: str, role: str) -> FloatArray:
             f"(first at row {bad_rows[0] + 1}); drop them before fitting"
         )
     return values
-
-
-def _plain(value: object) -> str:
-    """A cell as the user would write it: 'x' or 3, not np.str_('x') or np.float64(3.0)."""
-    if isinstance(value, np.generic):
-        value = value.item()
-    return f"'{value}'" if isinstance(value, str) else str(value)
 
 
 def arrays_from_frame(

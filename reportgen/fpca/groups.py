@@ -33,8 +33,8 @@ from .smoothing import BinGrid, get_kernel, local_linear_binned_1d
 
 PERMUTATIONS = 1999
 MIN_PERMUTATIONS = 199
-# Permutation x subject cells (~70 ns each): 1999 permutations up to 10^5 subjects, fewer
-# beyond (199 at 10^6: about 14 s); the report states the number used.
+# Permutation x subject cells: 1999 permutations up to 10^5 subjects, fewer beyond (the
+# time per cell is in CHOICES.md); the report states the number used.
 CELL_BUDGET = 2 * 10**8
 _BLOCK = 2_000_000  # permutation x subject cells per block (memory ~ 8 bytes each x 2)
 

@@ -21,7 +21,7 @@ class FPCAOptions:
     ``"aic"``, ``"bic"``, ``"cv"`` (leave-one-reading-out prediction error) or ``"fixed"``
     (``n_components``). ``band`` is ``"plugin"`` (the population quantities taken as
     known) or ``"corrected"`` (``bootstrap_replicates`` refits on subjects resampled with
-    replacement add the uncertainty of the population quantities; ``fpca.bootstrap``).
+    replacement add the uncertainty of the population quantities; ``predictor.corrected_variance``).
     """
 
     n_grid: int = 101

@@ -153,7 +153,7 @@ def reading_sums(part: Part, folds: IntArray, grid: BinGrid, n_folds: int) -> Bi
 
 def residuals(part: Part, fine: FloatArray, mean_grid: BinGrid) -> FloatArray:
     """Readings minus the mean (``fine``: the mean on ``mean_grid``'s centres). Each pass
-    that needs them computes them again (0.03 s at 4.5 million readings): a part keeps no
+    that needs them computes them again (a small cost beside the pass): a part keeps no
     state between passes, and a kept copy would add a third to its memory."""
     return _minus_mean(part.sample.t, part.sample.y, fine, mean_grid)
 

@@ -7,7 +7,7 @@ components leave out, the level, the degrees of freedom of the simultaneous band
 caller goes through it: a fit's trajectories (``FPCAFit`` holds its predictor), prediction
 for new subjects in memory and from a stored run (``tables/model.csv``, read back by
 ``reportgen predict``), the residual diagnostics, and each resample of a corrected band
-(a replicate is a predictor of its own; ``bootstrap``).
+(a replicate is a predictor of its own; :func:`corrected_variance`).
 
 The fit's passes over the data (``plan``) compute the same residuals with the compiled
 twin of :meth:`Predictor.mean_at` (``_kernels.interpolate_columns``, the same linear
@@ -133,7 +133,7 @@ class Predictor:
         time, fitted, lower, upper (pointwise), lower_simultaneous, upper_simultaneous.
 
         ``variance``: the curves' variance when it is not the plug-in one (a corrected
-        band's, ``bootstrap.corrected_variance``).
+        band's, :func:`corrected_variance`).
         """
         fitted = self.fitted(scores)
         var = self.curve_variance(cov) if variance is None else variance
@@ -163,8 +163,6 @@ class Predictor:
                 f"{outside.size} readings lie outside the run's time domain [{lo:g}, {hi:g}] "
                 f"(first: subject {labels[sample.subject[outside[0]]]}, time "
                 f"{sample.t[outside[0]]:g}); the fit says nothing there: leave them out")
-        from .bootstrap import corrected_variance
-
         scores, cov = self.scores(sample)
         variance = corrected_variance(tuple(replicates), sample) if replicates else None
         out = self.trajectories(labels, scores, cov, level, variance)
@@ -217,3 +215,35 @@ class Predictor:
             raise EstimationError("the stored model table is inconsistent (sizes differ)")
         return out
 
+
+def corrected_variance(replicates: tuple[Predictor, ...], sample: Sample) -> FloatArray:
+    """Corrected variance of each subject's trajectory on the grid, (n_subjects, n_grid).
+
+    A plug-in band treats the mean, the eigenfunctions, the eigenvalues and the error
+    variance as known. Goldsmith, Greven & Crainiceanu (2013, Biometrics 69:41-51,
+    "corrected confidence bands") resample subjects, refit the population quantities on
+    each resample, recompute every subject's conditional expectation and its variance under
+    each refit, and combine the two by the law of total variance:
+
+        Var(X_i(t) | Y_i) ~ mean_b Var_b(X_i(t) | Y_i) + var_b E_b(X_i(t) | Y_i)
+
+    Each resample's refit is a :class:`Predictor` of its own (its mean on the main grid),
+    keeping the main fit's bandwidths and number of components (``fit``). The band stays
+    centred on the main fit's trajectory.
+    """
+    grid = replicates[0].grid
+    total = np.zeros((sample.n_subjects, grid.size))
+    first = np.zeros_like(total)
+    second = np.zeros_like(total)
+    for rep in replicates:
+        scores, cov = rep.scores(sample)
+        fitted = rep.fitted(scores)
+        phi = rep.eigenfunctions
+        total += np.einsum("gk,nkl,gl->ng", phi, cov, phi)
+        total += rep.truncation_variance[None, :]
+        first += fitted
+        second += fitted * fitted
+    b = len(replicates)
+    spread = np.maximum(second / b - (first / b) ** 2, 0.0) * b / max(b - 1, 1)
+    out: FloatArray = total / b + spread
+    return out

@@ -15,14 +15,13 @@ import pandas as pd
 from ..errors import EstimationError
 from .arrays import FloatArray, IntArray
 from .bandwidth import BandwidthChoice
-from .bootstrap import corrected_variance
 from .components import ComponentSelection, choose
 from .design import Sample
 from .frame import arrays_from_frame
 from .likelihood import LikelihoodFit
 from .options import FPCAOptions
 from .plan import PartResults
-from .predictor import BandKind, Predictor
+from .predictor import BandKind, Predictor, corrected_variance
 
 # Subject labels: an array, or a pandas Index (immutable) of text kept as it came.
 Labels = np.ndarray | pd.Index
@@ -120,7 +119,7 @@ class FPCAFit:
         Starting-point problems, dropped eigenvalues, bandwidths at the end of their range.
     replicates : tuple of Predictor
         The population quantities refitted on resampled subjects (empty for plug-in
-        bands); with them, bands are corrected ones (``fpca.bootstrap``).
+        bands); with them, bands are corrected ones (``predictor.corrected_variance``).
     options : FPCAOptions
     """
 

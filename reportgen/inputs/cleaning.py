@@ -8,8 +8,9 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
+from .._text import plain
 from .findings import Check, Status, Tally, first_example, totals
-from .readers import Table, plain
+from .readers import Table
 from .spec import ChecksSection, Spec
 
 
@@ -88,8 +89,7 @@ def duplicate_mask(codes: np.ndarray, t: np.ndarray) -> np.ndarray:
     Each row's pair is hashed to 64 bits and the hashes sorted (a vectorised sort of
     integers): rows with a unique hash are unique. The few rows whose hash repeats (true
     duplicates, or a collision: about n^2 / 2^65, 5e-7 at 4.5 million rows) are compared
-    exactly. A sort of integers instead of hashing pairs of values in pandas: about ten
-    times faster at millions of rows (benchmarks/RESULTS.md).
+    exactly. A sort of integers, where pandas would hash pairs of values (CHOICES.md).
     """
     mask = np.zeros(codes.size, dtype=bool)
     bits = (np.asarray(t, dtype=np.float64) + 0.0).view(np.uint64)  # -0.0 + 0.0 is 0.0

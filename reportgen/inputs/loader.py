@@ -33,13 +33,14 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from .._text import plain
 from ..errors import DataError
 from ..fpca.executor import Executor, InProcess, tree_sum
 from .checks import FileChecks, column_check, column_labels, file_checks, merged_steps
 from .design_checks import DesignSums, add_design_sums, design_checks, design_sums
 from .files import DataFile, digest, is_many, list_files, read_path, sha256_bytes
 from .findings import Check, Tally
-from .readers import detect_format, parse_table, plain
+from .readers import detect_format, parse_table
 from .spec import Spec
 
 
@@ -62,8 +63,8 @@ class Source:
 class CleanedReadings:
     """A file's cleaned readings, compact: each reading's subject as a code into ``ids``
     (the file's distinct subjects, sorted), its time and value; each subject's group (None
-    without groups). About 24 bytes a reading where the cleaned table took about 35 (the
-    id's text, per reading); the fit's part then uses these arrays as they are."""
+    without groups): the id's text once per subject, not per reading; the fit's part then
+    uses these arrays as they are."""
 
     codes: np.ndarray
     t: np.ndarray
@@ -384,8 +385,8 @@ def require_passed(dataset: Dataset) -> None:
 
 
 def _release_arrow_memory() -> None:
-    """Hand back to the system what Arrow's allocator keeps after reading: it holds on to
-    freed blocks (0.2 GB after loading 4.5 million readings) for the whole run."""
+    """Hand back to the system what Arrow's allocator keeps after reading: it would hold on
+    to freed blocks for the whole run."""
     import pyarrow
 
     pyarrow.default_memory_pool().release_unused()

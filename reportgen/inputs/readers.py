@@ -16,7 +16,6 @@ import io
 from dataclasses import dataclass, field
 from typing import Any
 
-import numpy as np
 import pandas as pd
 
 from ..errors import DataError
@@ -134,17 +133,3 @@ def looks_like_dates(series: pd.Series, sample: int = 50) -> bool:
         return False
     parsed = pd.to_datetime(values, errors="coerce", format="mixed")
     return bool(parsed.notna().all())
-
-
-def plain(value: Any) -> str:
-    """A value as a reader would write it: 0 and 'ALB', not np.float64(0.0) or a repr."""
-    if value is None or (isinstance(value, float) and np.isnan(value)):
-        return "(empty)"
-    if isinstance(value, np.generic):
-        value = value.item()
-    if isinstance(value, float):
-        return f"{value:g}"
-    if isinstance(value, pd.Timestamp):
-        return value.isoformat()
-    text = str(value)
-    return f"'{text}'" if isinstance(value, str) else text

@@ -54,9 +54,8 @@ _KEEPS_TEXT = {"text", "tspan", "style", "title"}
 
 def _flatten(text: str) -> str:
     """Splice out the groups that carry nothing but an unreferenced id (matplotlib wraps
-    every artist in one: 1390 of them in the clinic report), and drop whitespace between
-    elements. The drawing is unchanged; the HTML and PDF renderers have far fewer elements
-    to style (measured: the PDF of the clinic report renders 2x faster)."""
+    every artist in one), and drop whitespace between elements. The drawing is unchanged;
+    the HTML and PDF renderers have far fewer elements to style."""
     referenced = set(re.findall(r'(?:url\(#|href="#)([^)"]+)', text))
     root = ElementTree.fromstring(text)
 

@@ -1,7 +1,7 @@
-"""A second process for the rendering half of a run, so that a 2-core laptop uses both cores.
+"""A second process for the rendering half of a run, so that a 2-core laptop uses both cores
+(loading the plotting and PDF libraries, drawing and the PDF are single-core Python; the
+times are in benchmarks/CHOICES.md).
 
-Measured on the clinic example: loading matplotlib and weasyprint costs about 2 s, drawing
-the figures 3.4 s and the PDF 4 s, all in Python code that one process runs on one core.
 The worker is started before the data are read; it loads the rendering libraries while the
 main process fits. It then draws the figures that need only summaries of the fit (the main
 process draws the ones that need every reading, in the same time), and renders the PDF.
@@ -31,16 +31,14 @@ if TYPE_CHECKING:
     from ..analysis.analyse import AnalysisResult
 
 # Figures that need the fit's summaries only (not the readings or per-subject results),
-# drawn by the worker from a slim copy of the analysis. The worker is ready about 2 s after
-# the main process could start drawing (measured on the clinic example), so it takes about
-# a third of the drawing time: these four, 1.3 s of 3.4 s.
+# drawn by the worker from a slim copy of the analysis: about the third of the drawing that
+# the worker, ready later than the main process, can take (benchmarks/CHOICES.md).
 SUMMARY_FIGURES = ("design", "covariance", "bandwidths", "eigenvalues")
 
 
 def _warm_up() -> None:
     """Load what the tasks need; runs once, at the worker's start, while the main process
-    reads the data and fits. (Loading weasyprint only after the figures were drawn was
-    measured too: the figures came 0.5 s sooner, the PDF 1 s later.)"""
+    reads the data and fits."""
     import weasyprint  # noqa: F401
 
     from . import figures, pdf  # noqa: F401
@@ -65,7 +63,7 @@ def _csv(frames: dict[str, pd.DataFrame]) -> dict[str, bytes]:
 
 
 # Tables with more rows than this are written by the worker while the main process draws
-# the figures (at 10^6 subjects: 4.3 s of CSV formatting beside 4.5 s of drawing).
+# the figures (at large sizes the two take about as long).
 LARGE_TABLE_ROWS = 50_000
 
 _TASKS: dict[str, Callable[..., Any]] = {"draw": _draw, "pdf": _pdf, "csv": _csv}
@@ -184,7 +182,7 @@ class RenderProcess:
 
     def close(self) -> None:
         """End the worker. It holds nothing but loaded libraries, so it is killed rather
-        than asked to exit (its interpreter teardown took 0.9 s of the run)."""
+        than asked to exit (its interpreter's teardown would cost the run time)."""
         self._kill()
 
     def _submit(self, task: str, *args: Any) -> _Pending | None:

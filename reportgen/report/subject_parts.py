@@ -111,9 +111,8 @@ def made_part(given: PartInput, scores: tuple[FloatArray, FloatArray],
 
 
 # Output rows made per call of the executor (at least two parts a call: two workers):
-# their Parquet bytes come back together. At 10^7 subjects in 64 files, six parts of
-# scores and residuals a call (about 7 MB of Parquet a part); with all_trajectories at
-# 10^6 subjects in 32 files, two parts a call (about 120 MB a part).
+# their Parquet bytes come back together (sizes at 10^6 and 10^7 subjects in
+# benchmarks/ENGINES.md).
 BATCH_ROWS = 2_000_000
 
 

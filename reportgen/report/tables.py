@@ -21,11 +21,10 @@ def to_csv_bytes(frame: pd.DataFrame) -> bytes:
     """The canonical CSV bytes of ``frame``: what ``frame.to_csv(index=False,
     float_format="%.10g", lineterminator="\n")`` writes, built column by column.
 
-    pandas formats every cell through its own per-value machinery (3.2 us a cell: 29 s of
-    the run at 10^6 subjects); formatting each column with one list comprehension and
-    joining the rows once takes 1.3 us. Rows go in blocks of ``CSV_BLOCK_ROWS``, so that
-    the cells' Python strings never all exist at once (0.4 GB for the scores of 10^6
-    subjects). Columns of other kinds (dates, categories) go through pandas.
+    pandas formats every cell through its own per-value machinery; formatting each column
+    with one list comprehension and joining the rows once takes less than half the time
+    (CHOICES.md). Rows go in blocks of ``CSV_BLOCK_ROWS``, so that the cells' Python
+    strings never all exist at once. Columns of other kinds (dates, categories) go through pandas.
     ``tests/test_tables.py`` holds the two byte for byte against each other.
     """
     header = ",".join(_quoted(str(c)) for c in frame.columns)
