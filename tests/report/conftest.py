@@ -58,7 +58,7 @@ def styled(regenerated: dict[str, Path]) -> dict[tuple[str, str], tuple[bytes, b
                                                                "2025-12-01T00:00:00Z")],
                        "commands": "reportgen run SPEC"}
         for style in STYLES:
-            report = {**spec.report, **STYLE_FIELDS, "template": style}
+            report = replace(spec.report, **STYLE_FIELDS, template=style)
             styled_spec = replace(spec, report=report)
             html = render_html(replace(result, spec=styled_spec), 1, record_view, figures,
                                load_style(styled_spec))
