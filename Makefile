@@ -1,11 +1,17 @@
-# make test : create .venv when missing, install reportgen with its test extras, lint, type-check, test
-# make demo : create .venv when missing, install, run the first example spec and print the report path
+# make test      : create .venv when missing, install reportgen with its test extras, lint,
+#                  type-check, then the whole suite on every core (what CI runs)
+# make test-fast : the suite without the slow and rendering tests (about a minute)
+# make lint      : ruff (lint and format check) and mypy; needs no system library
+# make format    : ruff format and ruff's import sorting, in place
+# make demo      : run the first example spec and print the report path
+# One test:        .venv/bin/python -m pytest tests/fpca/test_plan.py::test_one_part_is_the_whole_sample
 PYTHON ?= python3
 VENV   ?= .venv
 BIN    := $(VENV)/bin
 STAMP  := $(VENV)/.installed
+PYTEST := $(BIN)/python -m pytest -q -n auto --dist loadfile
 
-.PHONY: test demo lint bench clean syscheck
+.PHONY: test test-fast demo lint format bench clean syscheck
 
 $(STAMP): pyproject.toml constraints.txt
 	test -x $(BIN)/python || $(PYTHON) -m venv $(VENV)
@@ -15,12 +21,20 @@ $(STAMP): pyproject.toml constraints.txt
 syscheck: $(STAMP)
 	@$(BIN)/python -m reportgen.syscheck
 
-lint: syscheck
-	$(BIN)/ruff check reportgen tests benchmarks
+lint: $(STAMP)
+	$(BIN)/ruff check reportgen tests benchmarks specs
+	$(BIN)/ruff format --check reportgen tests benchmarks specs
 	$(BIN)/mypy
 
-test: lint
-	$(BIN)/python -m pytest -q
+format: $(STAMP)
+	$(BIN)/ruff check --select I --fix reportgen tests benchmarks specs
+	$(BIN)/ruff format reportgen tests benchmarks specs
+
+test: lint syscheck
+	$(PYTEST)
+
+test-fast: $(STAMP)
+	$(PYTEST) -m "not slow and not render"
 
 demo: syscheck
 	$(BIN)/reportgen demo

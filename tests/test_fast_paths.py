@@ -101,7 +101,7 @@ def test_a_fit_without_scores_has_the_same_population_parts() -> None:
 
 def test_pair_counts_numpy_and_compiled_agree(monkeypatch: pytest.MonkeyPatch) -> None:
     # the two ways of counting pairs (numpy for check, the fit's kernel in run); the
-    # kernel's pair sums are checked against explicit enumeration in tests/test_design.py
+    # kernel's pair sums are checked against explicit enumeration in tests/fpca/test_design.py
     import sys
 
     import reportgen.fpca._kernels  # noqa: F401  (the compiled path needs it loaded)

@@ -140,7 +140,7 @@ def test_no_import_cycle() -> None:
         for nxt in sorted(graph.get(node, ())):
             if state.get(nxt) == 1:
                 raise AssertionError("import cycle: " + " -> ".join(
-                    stack[stack.index(nxt):] + [nxt]))
+                    [*stack[stack.index(nxt):], nxt]))
             if state.get(nxt) is None:
                 visit(nxt, [*stack, nxt])
         state[node] = 2

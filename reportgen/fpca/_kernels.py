@@ -8,7 +8,7 @@ groupby over the same rows at 10^6 subjects (see benchmarks/RESULTS.md).
 Linear binning as in ``smoothing.BinGrid.locate``: a reading at ``x`` gives weight
 ``1 - f`` to bin ``i`` and ``f`` to bin ``i + 1``, with ``i`` and ``f`` from
 ``pos = clip((x - lower) / width, 0, n_bins - 1)``, ``i = min(floor(pos), n_bins - 2)``.
-``tests/test_design.py`` checks the results against explicit enumeration of the pairs.
+``tests/fpca/test_design.py`` checks the results against explicit enumeration of the pairs.
 """
 
 from __future__ import annotations

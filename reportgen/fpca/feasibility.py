@@ -43,7 +43,7 @@ def pair_counts(subject: IntArray, t: FloatArray, bins: BinGrid) -> FloatArray:
     Per subject, the pairs' weights are the outer product of the readings' bin weights
     minus each reading's product with itself. When the fit's compiled kernels are loaded
     already (``run``, not ``check``), their pair pass counts instead: the same numbers to
-    rounding (``tests/fpca/test_fast_paths.py``), several times faster.
+    rounding (``tests/test_fast_paths.py``), several times faster.
     """
     kernels = sys.modules.get("reportgen.fpca._kernels")
     if kernels is not None and subject.size:

@@ -30,7 +30,7 @@ with ``tr S^-1 = (n - tr(Omega G) / sigma^2) / sigma^2``, ``S^-1 Phi = Phi (I - 
 sigma^2) / sigma^2`` and ``tr S^-2 = (n - 2 tr(Omega G) / sigma^2 + tr((Omega G)^2) /
 sigma^4) / sigma^4``. A variance of 0 is an ordinary point of these formulas, so the bound
 lambda_k >= 0 is handled as an active set (Fisher scoring for variance components with
-non-negativity; common practice, no source). ``tests/test_likelihood.py`` checks the
+non-negativity; common practice, no source). ``tests/fpca/test_likelihood.py`` checks the
 log-likelihood against scipy's dense multivariate normal and the score against finite
 differences.
 """

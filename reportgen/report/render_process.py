@@ -7,7 +7,7 @@ main process fits. It then draws the figures that need only summaries of the fit
 process draws the ones that need every reading, in the same time), and renders the PDF.
 
 Every figure and the PDF are pure functions of what they are given, so the bytes are the
-same whichever process made them (``tests/cli/test_worker.py`` compares a run made with
+same whichever process made them (``tests/report/test_render_process.py`` compares a run made with
 the worker to one made without it, and to one whose worker died). Should the worker be
 unavailable or die, the main process does the work itself: slower, never different.
 """

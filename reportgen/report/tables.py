@@ -25,7 +25,7 @@ def to_csv_bytes(frame: pd.DataFrame) -> bytes:
     with one list comprehension and joining the rows once takes less than half the time
     (CHOICES.md). Rows go in blocks of ``CSV_BLOCK_ROWS``, so that the cells' Python
     strings never all exist at once. Columns of other kinds (dates, categories) go through pandas.
-    ``tests/test_tables.py`` holds the two byte for byte against each other.
+    ``tests/report/test_tables.py`` holds the two byte for byte against each other.
     """
     header = ",".join(_quoted(str(c)) for c in frame.columns)
     if header == "" and len(frame.columns) == 1:

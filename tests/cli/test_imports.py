@@ -9,7 +9,7 @@ from pathlib import Path
 
 import pytest
 
-from .conftest import ROOT
+from tests.helpers import ROOT
 
 HEAVY = ("numba", "scipy", "matplotlib", "weasyprint", "reportgen.fpca.fit")
 PROBE = """

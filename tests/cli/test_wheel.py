@@ -18,7 +18,9 @@ from pathlib import Path
 
 import pytest
 
-from .conftest import ROOT
+from tests.helpers import ROOT
+
+pytestmark = pytest.mark.slow
 
 
 def _run(args: list[str], cwd: Path, env: dict[str, str]) -> subprocess.CompletedProcess[str]:

@@ -2,7 +2,7 @@
 
 Run: .venv/bin/python -m tests.reference.yao_spread
 Prints, over 20 seeds with n = 400 subjects, the range of each estimate; the tolerances
-in tests/test_fit_reference.py are set from these figures (see the comments there).
+in tests/fpca/test_fit_reference.py are set from these figures (see the comments there).
 """
 
 from __future__ import annotations

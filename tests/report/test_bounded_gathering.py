@@ -22,9 +22,8 @@ from reportgen.fpca.plan import InProcess
 from reportgen.inputs.loader import load_dataset
 from reportgen.inputs.spec import load_spec
 from reportgen.report.subject_parts import subject_parts
-
-from ..counting import numbers_in
-from ..designs import yao_design
+from tests.counting import numbers_in
+from tests.designs import yao_design
 
 ROOT = Path(__file__).resolve().parents[2]
 N_SUBJECTS = 4000

@@ -18,6 +18,8 @@ from urllib.parse import urlsplit
 
 import pytest
 
+pytestmark = pytest.mark.render
+
 CHROMIUM = shutil.which("chromium") or shutil.which("chromium-browser")
 BROWSER_SERVICES = (".google.com", ".googleapis.com", ".gvt1.com", ".gstatic.com")
 

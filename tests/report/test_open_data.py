@@ -16,6 +16,8 @@ import pytest
 from reportgen.analysis.views import NAMED_FLAGGED
 from reportgen.runs.writer import run_spec
 
+pytestmark = pytest.mark.render
+
 CASES = {
     # name: (package, dataset, subject, time, value, time unit, value unit, extra spec)
     "phenobarb": ("nlme", "Phenobarb", "Subject", "time", "conc", "hours", "ug/L",

@@ -9,6 +9,8 @@ import pytest
 import reportgen.report.pdf
 from reportgen.report.pdf import render_pdf
 
+pytestmark = pytest.mark.render
+
 ROOT = Path(__file__).resolve().parents[2]
 
 

@@ -15,6 +15,8 @@ from reportgen.runs.writer import build_outputs
 
 from .conftest import ROOT
 
+pytestmark = pytest.mark.render
+
 SECTIONS = ["summary", "checks", "mean", "covariance", "components", "scores", "trajectories",
             "residuals", "sensitivity", "caveats", "reproducibility"]
 FIGURES = 12

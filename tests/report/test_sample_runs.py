@@ -15,6 +15,8 @@ from reportgen.runs.verify import environment_diff, tables_match
 
 from .conftest import ROOT
 
+pytestmark = pytest.mark.render
+
 SAMPLES = ROOT / "sample_runs"
 EXAMPLES = [("clinic_visits", "clinic-visits"), ("pump_service", "pump-service")]
 

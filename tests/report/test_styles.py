@@ -14,15 +14,18 @@ import re
 import shutil
 import subprocess
 from pathlib import Path
+from typing import Any
 
 import pytest
 
 from reportgen.cli import main
-from reportgen.errors import SpecError
+from reportgen.errors import SpecError, TemplateError
 from reportgen.inputs.spec import load_spec
 from reportgen.report import sandbox
 
 from .conftest import EXAMPLES, ROOT, STYLES
+
+pytestmark = pytest.mark.render
 
 
 def _pdf_text(pdf: bytes) -> list[str]:
@@ -169,12 +172,35 @@ HOSTILE = {
 
 
 @pytest.mark.parametrize("case", sorted(HOSTILE))
-def test_hostile_templates_stop_with_a_message_and_no_run(
-        tmp_path: Path, capsys: pytest.CaptureFixture[str], monkeypatch: pytest.MonkeyPatch,
+def test_hostile_templates_are_refused_with_a_message(
+        tmp_path: Path, monkeypatch: pytest.MonkeyPatch, analysed: dict[str, Any],
         case: str) -> None:
+    # Rendered as a run renders them (render_html: the sandboxed child process), from the
+    # session's analysis of the example.
+    from dataclasses import replace
+
+    from reportgen.report.html import render_html
+    from reportgen.report.styles import load_style
+
+    from .conftest import RECORD_VIEW
+
     monkeypatch.setattr(sandbox, "TEMPLATE_SECONDS", 3.0)
     monkeypatch.setattr(sandbox, "MAX_OUTPUT_BYTES", 50 * 2**20)
     body, message = HOSTILE[case]
+    spec = load_spec(_study(tmp_path, "  template: evil.j2\n",
+                            {"evil.j2": '{% extends "default" %}{% block end %}' + body
+                                        + "{% endblock %}"}))
+    result, figures = analysed["clinic_visits"]
+    with pytest.raises(TemplateError) as refused:
+        render_html(replace(result, spec=spec), 1, RECORD_VIEW, figures, load_style(spec))
+    assert "report.template 'evil.j2'" in str(refused.value)
+    assert message in str(refused.value), refused.value
+
+
+def test_a_hostile_template_stops_the_run_and_leaves_no_run(
+        tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    # The whole command: the refusal is exit 2 with the message, and no version is left.
+    body, message = HOSTILE["script"]
     spec = _study(tmp_path, "  template: evil.j2\n",
                   {"evil.j2": '{% extends "default" %}{% block end %}' + body
                               + "{% endblock %}"})

@@ -1,27 +1,13 @@
+"""What tests share: the repository's root, the real command line in a subprocess, and the
+second example split into Parquet files."""
+
 from __future__ import annotations
 
-import shutil
 import subprocess
 import sys
 from pathlib import Path
 
-import pytest
-
-ROOT = Path(__file__).resolve().parents[2]
-
-
-@pytest.fixture(autouse=True)
-def _isolated_env(monkeypatch: pytest.MonkeyPatch) -> None:
-    monkeypatch.setenv("SOURCE_DATE_EPOCH", "1764547200")
-    monkeypatch.setenv("CI", "true")
-
-
-@pytest.fixture
-def study(tmp_path: Path) -> Path:
-    """A copy of the first example spec and its data in a temporary folder."""
-    for name in ("clinic_visits.yaml", "clinic_visits.csv"):
-        shutil.copy(ROOT / "specs" / name, tmp_path / name)
-    return tmp_path / "clinic_visits.yaml"
+ROOT = Path(__file__).resolve().parents[1]
 
 
 def cli(*args: str, cwd: Path | None = None) -> subprocess.CompletedProcess[str]:

@@ -15,8 +15,7 @@ from reportgen.analysis.analyse import analyse
 from reportgen.fpca._kernels import compiled_on_disk
 from reportgen.inputs.loader import load_dataset
 from reportgen.inputs.spec import load_spec
-
-from .conftest import ROOT
+from tests.helpers import ROOT
 
 
 def test_cache_locator_sees_the_kernels_after_a_fit() -> None:

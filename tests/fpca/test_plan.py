@@ -23,10 +23,9 @@ from reportgen.fpca.fit import fit_parts
 from reportgen.fpca.plan import InProcess, Partitioned, tree_sum
 from reportgen.fpca.result import FPCAFit
 from reportgen.fpca.smoothing import BinGrid
-
-from .counting import numbers_in
-from .designs import yao_design
-from .parts import compare_groups_of, split_parts
+from tests.counting import numbers_in
+from tests.designs import yao_design
+from tests.parts import compare_groups_of, split_parts
 
 OPTIONS = FPCAOptions(n_grid=41, band="corrected", bootstrap_replicates=4, seed=3)
 N_PARTS = 5

@@ -13,8 +13,9 @@ from pathlib import Path
 import pytest
 
 from reportgen.errors import EngineError
+from tests.helpers import ROOT, cli
 
-from .conftest import ROOT, cli, pump_folder
+pytestmark = pytest.mark.slow
 
 
 @pytest.fixture(scope="module")
@@ -29,11 +30,10 @@ def scheduler() -> Iterator[str]:
                                                    ("pump_service", "option")])
 def test_an_example_on_a_cluster_is_the_local_run(example: str, named_by: str,
                                                   scheduler: str, tmp_path: Path,
-                                                  monkeypatch: pytest.MonkeyPatch) -> None:
+                                                  monkeypatch: pytest.MonkeyPatch,
+                                                  regenerated: dict[str, Path]) -> None:
+    # the local run: the session's run of the example, with the same time stamp
     monkeypatch.setenv("SOURCE_DATE_EPOCH", "1764547200")  # the same stamp in both HTMLs
-    local = cli("run", str(ROOT / "specs" / f"{example}.yaml"), "--out",
-                str(tmp_path / "local"), "--quiet")
-    assert local.returncode == 0, local.stdout + local.stderr
     args = ["run", str(ROOT / "specs" / f"{example}.yaml"), "--out", str(tmp_path / "dask"),
             "--engine", "dask", "--quiet"]
     if named_by == "environment":
@@ -44,7 +44,7 @@ def test_an_example_on_a_cluster_is_the_local_run(example: str, named_by: str,
     done = cli(*args)
     assert done.returncode == 0, done.stdout + done.stderr
     run = next((tmp_path / "dask").glob("*/v001"))
-    sample = next((tmp_path / "local").glob("*/v001"))
+    sample = regenerated[example]
     tables = sorted(p.name for p in (sample / "tables").iterdir())
     assert sorted(p.name for p in (run / "tables").iterdir()) == tables
     for name in tables:
@@ -92,24 +92,25 @@ def test_a_cluster_that_fails_during_the_run_is_an_error(scheduler: str) -> None
         raise CommClosedError("the scheduler went away")
 
 
-def test_worker_processes_read_a_folder_as_this_process_does(scheduler: str,
-                                                            tmp_path: Path) -> None:
+def test_worker_processes_read_a_folder_as_this_process_does(
+        scheduler: str, tmp_path: Path, pump_folder_run: tuple[Path, Path]) -> None:
     # The pump example (groups) split by pump into three Parquet files: the workers read,
     # check and clean the files; the tables are those of the local engine's run.
+    import shutil
+
     import pandas as pd
 
-    spec = pump_folder(tmp_path)
-    runs = {}
-    for engine in ("local", "dask"):
-        extra = ["--scheduler", scheduler] if engine == "dask" else []
-        done = cli("run", str(spec), "--out", str(tmp_path / engine), "--engine", engine,
-                   "--quiet", *extra)
-        assert done.returncode == 0, done.stdout + done.stderr
-        runs[engine] = next((tmp_path / engine).glob("*/v001"))
-    for path in sorted((runs["local"] / "tables").iterdir()):
-        assert (runs["dask"] / "tables" / path.name).read_bytes() == path.read_bytes(), \
-            path.name
+    shared, local = pump_folder_run
+    done = cli("run", str(shared), "--out", str(tmp_path / "dask"), "--engine", "dask",
+               "--quiet", "--scheduler", scheduler)
+    assert done.returncode == 0, done.stdout + done.stderr
+    on_dask = next((tmp_path / "dask").glob("*/v001"))
+    for path in sorted((local / "tables").iterdir()):
+        assert (on_dask / "tables" / path.name).read_bytes() == path.read_bytes(), path.name
     # a file that a worker cannot use stops the run with the file named, nothing written
+    shutil.copytree(shared.parent / "pumps", tmp_path / "pumps")
+    spec = tmp_path / "pumps.yaml"
+    shutil.copy(shared, spec)
     part = pd.read_parquet(tmp_path / "pumps" / "part-1.parquet")
     part.drop(columns="vibration").to_parquet(tmp_path / "pumps" / "part-1.parquet")
     done = cli("run", str(spec), "--out", str(tmp_path / "refused"), "--engine", "dask",

@@ -15,6 +15,8 @@ from reportgen.inputs.spec import load_spec
 from reportgen.report.pdf import render_pdf
 from reportgen.runs.writer import build_outputs
 
+pytestmark = pytest.mark.render
+
 ROOT = Path(__file__).resolve().parents[2]
 SPEC = (ROOT / "specs" / "clinic_visits.yaml").read_text()
 

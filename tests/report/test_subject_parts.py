@@ -24,8 +24,9 @@ import pytest
 from reportgen.report.subject_parts import csv_of_part, parquet_bytes
 from reportgen.report.tables import to_csv_bytes
 from reportgen.runs.writer import run_spec
+from tests.helpers import ROOT, cli, pump_folder
 
-from .conftest import ROOT, cli, pump_folder
+pytestmark = pytest.mark.slow
 
 TABLES = ("residuals_by_subject", "scores")
 ALL = "  all_trajectories: true\n"

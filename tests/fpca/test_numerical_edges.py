@@ -12,8 +12,7 @@ import pytest
 
 from reportgen import EstimationError, fit_sparse_fpca
 from reportgen.cli import main
-
-from ..designs import yao_design
+from tests.designs import yao_design
 
 
 def _frame(n: int = 60, seed: int = 1) -> pd.DataFrame:

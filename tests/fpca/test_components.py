@@ -7,8 +7,7 @@ import pytest
 
 from reportgen.errors import EstimationError
 from reportgen.fpca.components import choose, eigen_decompose, trapezoid_weights
-
-from .designs import YAO_EIGENVALUES, l2_inner, yao_eigenfunctions
+from tests.designs import YAO_EIGENVALUES, l2_inner, yao_eigenfunctions
 
 
 @pytest.mark.parametrize("n_grid", [31, 51, 101, 201])

@@ -13,6 +13,8 @@ from reportgen.report.render_process import RenderProcess
 from reportgen.report.tables import canonical_bytes
 from reportgen.runs.writer import run_spec
 
+pytestmark = pytest.mark.render
+
 
 def _files(run: Path) -> dict[str, bytes]:
     return {str(p.relative_to(run)): p.read_bytes() for p in sorted(run.rglob("*"))

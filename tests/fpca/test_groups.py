@@ -22,8 +22,7 @@ from reportgen.fpca.groups import (
     pillai_trace,
 )
 from reportgen.fpca.options import FPCAOptions
-
-from .parts import compare_groups_of, group_mean
+from tests.parts import compare_groups_of, group_mean
 
 
 @pytest.fixture(scope="module")

@@ -7,8 +7,7 @@ import pandas as pd
 import pytest
 
 from reportgen import EstimationError, fit_sparse_fpca
-
-from .designs import YAO_EIGENVALUES, l2_inner, yao_design, yao_eigenfunctions, yao_mean
+from tests.designs import YAO_EIGENVALUES, l2_inner, yao_design, yao_eigenfunctions, yao_mean
 
 
 @pytest.fixture(scope="module")

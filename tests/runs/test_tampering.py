@@ -16,6 +16,8 @@ from reportgen.inputs.files import sha256_file
 from reportgen.runs.integrity import checksum_list, parse_checksum_list
 from reportgen.runs.writer import run_spec
 
+pytestmark = pytest.mark.slow
+
 ROOT = Path(__file__).resolve().parents[2]
 
 

@@ -17,6 +17,8 @@ import pytest
 from reportgen.cli import main
 from reportgen.runs import writer as runner
 
+pytestmark = pytest.mark.slow
+
 ROOT = Path(__file__).resolve().parents[2]
 
 

@@ -18,6 +18,8 @@ from reportgen import load_fit
 from reportgen.cli import main
 from reportgen.errors import RecordError
 
+pytestmark = pytest.mark.slow
+
 
 @pytest.fixture(scope="module")
 def study(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Path]:
