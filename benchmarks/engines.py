@@ -55,18 +55,27 @@ class Timed:
     def place(self, parts: list[Part]) -> Sequence[Any]:
         return self.inner.place(parts)
 
-    def map(self, fn: Callable[..., Any], parts: Sequence[Any],
-            per_part: Sequence[tuple[Any, ...]] | None = None, shared: tuple[Any, ...] = ()
-            ) -> list[Any]:
+    def map(
+        self,
+        fn: Callable[..., Any],
+        parts: Sequence[Any],
+        per_part: Sequence[tuple[Any, ...]] | None = None,
+        shared: tuple[Any, ...] = (),
+    ) -> list[Any]:
         return self._timed(self.inner.map, fn, parts, per_part, shared)
 
-    def keep(self, fn: Callable[..., Any], parts: Sequence[Any],
-             per_part: Sequence[tuple[Any, ...]] | None = None, shared: tuple[Any, ...] = ()
-             ) -> list[Any]:
+    def keep(
+        self,
+        fn: Callable[..., Any],
+        parts: Sequence[Any],
+        per_part: Sequence[tuple[Any, ...]] | None = None,
+        shared: tuple[Any, ...] = (),
+    ) -> list[Any]:
         return self._timed(self.inner.keep, fn, parts, per_part, shared)
 
-    def _timed(self, run: Callable[..., list[Any]], fn: Callable[..., Any], *args: Any
-               ) -> list[Any]:
+    def _timed(
+        self, run: Callable[..., list[Any]], fn: Callable[..., Any], *args: Any
+    ) -> list[Any]:
         start = time.perf_counter()
         out = run(fn, *args)
         self.seconds[fn.__name__] += time.perf_counter() - start
@@ -88,8 +97,12 @@ def make_part(p: int, n: int, n_parts: int, seed: int) -> Part:
     t = rng.uniform(0, 1, local.size)
     xi = rng.normal(size=(stop - first, 2)) * [1.0, 0.5]
     phi1, phi2 = np.sqrt(2) * np.cos(np.pi * t), np.sqrt(2) * np.sin(np.pi * t)
-    y = (np.sin(2 * np.pi * t) + xi[local, 0] * phi1 + xi[local, 1] * phi2
-         + rng.normal(0, 0.3, t.size))
+    y = (
+        np.sin(2 * np.pi * t)
+        + xi[local, 0] * phi1
+        + xi[local, 1] * phi2
+        + rng.normal(0, 0.3, t.size)
+    )
     return Part(Sample.from_arrays(local, t, y), np.arange(first, stop, dtype=np.intp))
 
 
@@ -102,15 +115,19 @@ def write_files(folder: Path, n: int, n_parts: int, seed: int) -> Path:
         s = part.sample
         ids = np.char.add("u", np.char.zfill(part.subjects[s.subject].astype(str), 9))
         pd.DataFrame({"unit": ids, "t": s.t, "y": s.y}).to_parquet(
-            folder / f"part-{p:03d}.parquet", index=False)
+            folder / f"part-{p:03d}.parquet", index=False
+        )
     spec = folder.parent / "engines.yaml"
-    spec.write_text(f"report: {{id: engines, title: '{n} simulated subjects'}}\n"
-                    f"data: {{file: {folder.name}, subject: unit, time: t, value: y}}\n")
+    spec.write_text(
+        f"report: {{id: engines, title: '{n} simulated subjects'}}\n"
+        f"data: {{file: {folder.name}, subject: unit, time: t, value: y}}\n"
+    )
     return spec
 
 
-def _fit(executor: Executor, n: int, n_parts: int, spec: Path | None
-         ) -> tuple[bytes, dict[str, float], float]:
+def _fit(
+    executor: Executor, n: int, n_parts: int, spec: Path | None
+) -> tuple[bytes, dict[str, float], float]:
     """The fit, then the report's passes after it: the diagnostics (as a run makes them:
     the seeded sample of 20,000 subjects and six shown ones) and the means of three groups
     (subject code modulo 3). With ``spec``, the parts are its Parquet files, read, checked
@@ -127,8 +144,10 @@ def _fit(executor: Executor, n: int, n_parts: int, spec: Path | None
     data = Partitioned.of(timed, parts)
     del parts
     fit = fit_parts(data, np.arange(n), FPCAOptions())
-    chosen = np.union1d(seeded_sample(n, DIAGNOSTIC_MAX_SUBJECTS, fit.options.seed),
-                        np.linspace(0, n - 1, 6).astype(np.intp))
+    chosen = np.union1d(
+        seeded_sample(n, DIAGNOSTIC_MAX_SUBJECTS, fit.options.seed),
+        np.linspace(0, n - 1, 6).astype(np.intp),
+    )
     checks = check_readings(data, fit.kept_scores, fit.predictor, chosen)
     means, ses = group_means(data, fit, (np.arange(n) % 3).astype(np.intp), 3)
     total = time.perf_counter() - start
@@ -136,8 +155,7 @@ def _fit(executor: Executor, n: int, n_parts: int, spec: Path | None
     if spec is None:  # with Dask, keep() returns at once: the time is the first pass's
         seconds["make_part"] = made
     seconds["client steps"] = total - sum(seconds.values())
-    extra = (*checks.sums.every(), checks.density,
-             *checks.readings.values(), means, ses)
+    extra = (*checks.sums.every(), checks.density, *checks.readings.values(), means, ses)
     return _numbers(fit, extra), seconds, total
 
 
@@ -145,8 +163,16 @@ def _numbers(fit: FPCAFit, extra: Sequence[np.ndarray]) -> bytes:
     """The SHA-256 of every number (a digest, not a copy: copies of the scores would
     count in the client's peak memory)."""
     h = hashlib.sha256()
-    for a in (fit.mean, fit.covariance, fit.eigenvalues, fit.eigenfunctions,
-              np.array([fit.error_variance]), fit.score_values, fit.score_cov, *extra):
+    for a in (
+        fit.mean,
+        fit.covariance,
+        fit.eigenvalues,
+        fit.eigenfunctions,
+        np.array([fit.error_variance]),
+        fit.score_values,
+        fit.score_cov,
+        *extra,
+    ):
         h.update(np.ascontiguousarray(a).data)
     return h.digest()
 
@@ -155,9 +181,13 @@ def main() -> None:
     parser = argparse.ArgumentParser()
     parser.add_argument("--subjects", type=int, default=1_000_000)
     parser.add_argument("--files", type=int, default=32)
-    parser.add_argument("--read", type=Path, metavar="FOLDER",
-                        help="write the readings as Parquet files in FOLDER (a new folder) "
-                        "and read them through reportgen's checks, on each engine")
+    parser.add_argument(
+        "--read",
+        type=Path,
+        metavar="FOLDER",
+        help="write the readings as Parquet files in FOLDER (a new folder) "
+        "and read them through reportgen's checks, on each engine",
+    )
     parser.add_argument("--write", action="store_true")
     args = parser.parse_args()
     import distributed
@@ -167,18 +197,27 @@ def main() -> None:
     n, files = args.subjects, args.files
     spec = write_files(args.read / "readings", n, files, 3) if args.read else None
     warm_up()  # the compiled kernels, loaded here as each worker loads them
-    fit_parts(Partitioned.local(InProcess().map(make_part, [0], shared=(2000, 1, 0))),
-              np.arange(2000), FPCAOptions())  # and every first-use cost of the client steps
+    fit_parts(
+        Partitioned.local(InProcess().map(make_part, [0], shared=(2000, 1, 0))),
+        np.arange(2000),
+        FPCAOptions(),
+    )  # and every first-use cost of the client steps
     # The peak of this process only grows: the engine that keeps the data out of it first.
     results: dict[str, tuple[dict[str, float], float, str, str]] = {}
     found: dict[str, bytes] = {}
     for name, processes in (("Dask, 2 processes", True), ("Dask, 2 threads", False)):
-        with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=processes,
-                                      dashboard_address=":0") as cluster, \
-                distributed.Client(cluster) as client:
+        with (
+            distributed.LocalCluster(
+                n_workers=2, threads_per_worker=1, processes=processes, dashboard_address=":0"
+            ) as cluster,
+            distributed.Client(cluster) as client,
+        ):
             numbers, seconds, total = _fit(OnDask(client), n, files, spec)
-            workers = ("in this process" if not processes else ", ".join(
-                f"{mb:,.0f}" for mb in client.run(_peak_mb).values()))
+            workers = (
+                "in this process"
+                if not processes
+                else ", ".join(f"{mb:,.0f}" for mb in client.run(_peak_mb).values())
+            )
             results[name] = (seconds, total, f"{_peak_mb():,.0f}", workers)
             found[name] = numbers
         print(name, f"{total:.1f} s", flush=True)
@@ -187,36 +226,74 @@ def main() -> None:
     print("in this process", f"{total:.1f} s", flush=True)
     same = {name: found[name] == numbers for name in found}
 
-    steps = (["read_and_check", "file_facts", "file_design_sums", "as_part"] if spec
-             else ["make_part"])
-    steps += ["summary", "outside", "reading_sums", "residual_sums", "gather",
-             "part_scores", "part_checks", "_small", "group_reading_sums", "group_pair_sums",
-             "client steps"]
-    rows = [[name, *(f"{r[0].get(s, 0.0):.2f}" for s in steps), f"{r[1]:.1f}", r[2], r[3],
-             "yes" if same.get(name, True) else "NO"] for name, r in results.items()]
-    made_where = ("each a Parquet file read, checked and cleaned where it is to live "
-                  "(`read_and_check` .. `as_part`)" if spec else
-                  "each simulated where it is to live (as a worker reads its file)")
-    text = (f"Machine: {machine()}\nDate: {time.strftime('%Y-%m-%d')}\n\n"
-            f"{n:,} subjects (about {4.5 * n:,.0f} readings) in {files} parts, {made_where}; "
-            "the fit with automatic bandwidths (5-fold cross-validation), FVE rule and "
-            "scores, then the report's diagnostics pass (`part_checks`) and the means of three "
-            "groups. Seconds per pass over the parts (summed over the fit's calls; with Dask a "
-            "pass whose results stay on the workers returns at once, and its time shows in the "
-            "pass that waits for them: `make_part` and `as_part` in `summary`, "
-            "`read_and_check` in `file_facts`, `part_scores` and `part_checks` in `_small`, the "
-            "first pass that brings back some of the diagnostics' results), the steps in the "
-            "client between passes, the total (the comparison of bits, which gathers every "
-            "subject's scores, comes after it), and peak resident memory.\n\n"
-            + table(["engine", *steps, "total s", "client peak MB", "worker peak MB",
-                     "same bits as in this process"], rows))
+    steps = (
+        ["read_and_check", "file_facts", "file_design_sums", "as_part"] if spec else ["make_part"]
+    )
+    steps += [
+        "summary",
+        "outside",
+        "reading_sums",
+        "residual_sums",
+        "gather",
+        "part_scores",
+        "part_checks",
+        "_small",
+        "group_reading_sums",
+        "group_pair_sums",
+        "client steps",
+    ]
+    rows = [
+        [
+            name,
+            *(f"{r[0].get(s, 0.0):.2f}" for s in steps),
+            f"{r[1]:.1f}",
+            r[2],
+            r[3],
+            "yes" if same.get(name, True) else "NO",
+        ]
+        for name, r in results.items()
+    ]
+    made_where = (
+        "each a Parquet file read, checked and cleaned where it is to live "
+        "(`read_and_check` .. `as_part`)"
+        if spec
+        else "each simulated where it is to live (as a worker reads its file)"
+    )
+    text = (
+        f"Machine: {machine()}\nDate: {time.strftime('%Y-%m-%d')}\n\n"
+        f"{n:,} subjects (about {4.5 * n:,.0f} readings) in {files} parts, {made_where}; "
+        "the fit with automatic bandwidths (5-fold cross-validation), FVE rule and "
+        "scores, then the report's diagnostics pass (`part_checks`) and the means of three "
+        "groups. Seconds per pass over the parts (summed over the fit's calls; with Dask a "
+        "pass whose results stay on the workers returns at once, and its time shows in the "
+        "pass that waits for them: `make_part` and `as_part` in `summary`, "
+        "`read_and_check` in `file_facts`, `part_scores` and `part_checks` in `_small`, the "
+        "first pass that brings back some of the diagnostics' results), the steps in the "
+        "client between passes, the total (the comparison of bits, which gathers every "
+        "subject's scores, comes after it), and peak resident memory.\n\n"
+        + table(
+            [
+                "engine",
+                *steps,
+                "total s",
+                "client peak MB",
+                "worker peak MB",
+                "same bits as in this process",
+            ],
+            rows,
+        )
+    )
     base = results["in this process"][1]
     text += "\n\nTotal relative to the in-process engine: " + ", ".join(
-        f"{name} {r[1] / base:.2f}" for name, r in results.items() if name != "in this process")
+        f"{name} {r[1] / base:.2f}" for name, r in results.items() if name != "in this process"
+    )
     print(text)
     if args.write:
-        write_section(ROOT / "benchmarks" / "ENGINES.md",
-                      f"{n:,} subjects" + (" read from Parquet files" if spec else ""), text)
+        write_section(
+            ROOT / "benchmarks" / "ENGINES.md",
+            f"{n:,} subjects" + (" read from Parquet files" if spec else ""),
+            text,
+        )
 
 
 HEAD = """# The fit's plan on the two engines
@@ -233,8 +310,9 @@ def write_section(path: Path, title: str, text: str) -> None:
     sections = dict(part.split("\n", 1) for part in rest)
     sections[title] = "\n" + text + "\n"
     ordered = sorted(sections, key=lambda t: int(t.split()[0].replace(",", "")))
-    path.write_text(head.rstrip("\n") + "\n" + "".join(
-        f"\n## {t}\n{sections[t].rstrip()}\n" for t in ordered))
+    path.write_text(
+        head.rstrip("\n") + "\n" + "".join(f"\n## {t}\n{sections[t].rstrip()}\n" for t in ordered)
+    )
 
 
 if __name__ == "__main__":

@@ -45,21 +45,45 @@ def launch(command: list[str]) -> None:
     """Run ``command``; print its exit code, wall time and the peak of its process tree."""
     start = time.perf_counter()
     done = subprocess.run(command, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
-    print(json.dumps({"code": done.returncode, "wall": time.perf_counter() - start,
-                      "peak": resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024,
-                      "error": done.stderr.decode()[-500:]}))
+    print(
+        json.dumps(
+            {
+                "code": done.returncode,
+                "wall": time.perf_counter() - start,
+                "peak": resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024,
+                "error": done.stderr.decode()[-500:],
+            }
+        )
+    )
 
 
 def run_on_cluster(spec: Path, out: Path) -> dict[str, object]:
     import distributed
 
-    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
-                                  dashboard_address=":0") as cluster, \
-            distributed.Client(cluster) as client:
-        command = [REPORTGEN, "run", str(spec), "--out", str(out), "--engine", "dask",
-                   "--scheduler", cluster.scheduler_address, "--quiet"]
-        done = subprocess.run([sys.executable, __file__, "--launch", "--", *command],
-                              capture_output=True, text=True, check=True)
+    with (
+        distributed.LocalCluster(
+            n_workers=2, threads_per_worker=1, processes=True, dashboard_address=":0"
+        ) as cluster,
+        distributed.Client(cluster) as client,
+    ):
+        command = [
+            REPORTGEN,
+            "run",
+            str(spec),
+            "--out",
+            str(out),
+            "--engine",
+            "dask",
+            "--scheduler",
+            cluster.scheduler_address,
+            "--quiet",
+        ]
+        done = subprocess.run(
+            [sys.executable, __file__, "--launch", "--", *command],
+            capture_output=True,
+            text=True,
+            check=True,
+        )
         found = json.loads(done.stdout.strip().splitlines()[-1])
         found["workers"] = sorted(client.run(_peak_mb).values())
     if found["code"] != 0:
@@ -90,29 +114,41 @@ def main() -> None:
     for label, setting in settings.items():
         name = f"whole-{len(runs)}"
         spec = base / f"{name}.yaml"
-        spec.write_text(f"report: {{id: {name}, title: '{n} simulated subjects'}}\n"
-                        "data: {file: readings, subject: unit, time: t, value: y}\n"
-                        f"subjects: {{{setting}}}\n")
+        spec.write_text(
+            f"report: {{id: {name}, title: '{n} simulated subjects'}}\n"
+            "data: {file: readings, subject: unit, time: t, value: y}\n"
+            f"subjects: {{{setting}}}\n"
+        )
         out = Path(tempfile.mkdtemp(prefix="reportgen-whole-runs-"))
         found = run_on_cluster(spec, out)
         runs[label] = out / name / "v001"
         size = sum(p.stat().st_size for p in (runs[label] / "tables").rglob("*") if p.is_file())
-        rows.append([label, f"{found['wall']:.1f}", f"{found['peak']:,.0f}",
-                     ", ".join(f"{mb:,.0f}" for mb in found["workers"]),  # type: ignore[attr-defined]
-                     f"{size / 2**20:,.0f}"])
+        rows.append(
+            [
+                label,
+                f"{found['wall']:.1f}",
+                f"{found['peak']:,.0f}",
+                ", ".join(f"{mb:,.0f}" for mb in found["workers"]),  # type: ignore[attr-defined]
+                f"{size / 2**20:,.0f}",
+            ]
+        )
         print(rows[-1], flush=True)
-    same = all((runs["csv"] / "tables" / name).read_bytes()
-               == (run / "tables" / name).read_bytes() for name in SAME for run in runs.values())
-    text = (f"Machine: {machine()}\nDate: {time.strftime('%Y-%m-%d')}\n\n"
-            f"`reportgen run` (report, PDF and tables) of {n:,} subjects in {files} Parquet "
-            "files on a LocalCluster of 2 worker processes (`benchmarks/whole_runs.py`); "
-            "`subjects.tables` as CSV files or as Parquet parts. Peak resident memory of the "
-            "`reportgen` process (or its rendering worker, whichever is larger) and of each "
-            "worker; the size of the run's tables.\n\n"
-            + table(["subjects", "wall s", "reportgen peak MB", "worker peaks MB",
-                     "tables MB"], rows)
-            + f"\n\nPopulation tables ({', '.join(SAME)}) byte-identical between the runs: "
-            + ("yes" if same else "NO"))
+    same = all(
+        (runs["csv"] / "tables" / name).read_bytes() == (run / "tables" / name).read_bytes()
+        for name in SAME
+        for run in runs.values()
+    )
+    text = (
+        f"Machine: {machine()}\nDate: {time.strftime('%Y-%m-%d')}\n\n"
+        f"`reportgen run` (report, PDF and tables) of {n:,} subjects in {files} Parquet "
+        "files on a LocalCluster of 2 worker processes (`benchmarks/whole_runs.py`); "
+        "`subjects.tables` as CSV files or as Parquet parts. Peak resident memory of the "
+        "`reportgen` process (or its rendering worker, whichever is larger) and of each "
+        "worker; the size of the run's tables.\n\n"
+        + table(["subjects", "wall s", "reportgen peak MB", "worker peaks MB", "tables MB"], rows)
+        + f"\n\nPopulation tables ({', '.join(SAME)}) byte-identical between the runs: "
+        + ("yes" if same else "NO")
+    )
     print(text)
     if args.write:
         write_section(ROOT / "benchmarks" / "ENGINES.md", f"{n:,} subjects, whole runs", text)

@@ -15,7 +15,12 @@ from .inputs.schema import make_options
 
 
 def fit_sparse_fpca(
-    frame: pd.DataFrame, *, subject: str, time: str, value: str, out_of_domain: str = "fail",
+    frame: pd.DataFrame,
+    *,
+    subject: str,
+    time: str,
+    value: str,
+    out_of_domain: str = "fail",
     **options: Any,
 ) -> FPCAFit:
     """Functional PCA of sparse, irregularly timed readings by conditional expectation.
@@ -69,7 +74,7 @@ def fit_sparse_fpca(
         if outside.size and out_of_domain == "fail":
             raise DataError(
                 f"{outside.size} readings lie outside the domain [{lo:g}, {hi:g}] (first at "
-                f"row {outside[0] + 1}, time {t[outside[0]]:g}); pass out_of_domain=\"drop\" "
+                f'row {outside[0] + 1}, time {t[outside[0]]:g}); pass out_of_domain="drop" '
                 "to leave them out"
             )
         if outside.size:

@@ -74,8 +74,9 @@ def _progress(quiet: bool):  # type: ignore[no-untyped-def]
 def _cmd_run(args: argparse.Namespace) -> int:
     from .runs.writer import run_spec
 
-    run_dir = run_spec(args.spec, args.out, _progress(args.quiet), engine=args.engine,
-                       scheduler=args.scheduler)
+    run_dir = run_spec(
+        args.spec, args.out, _progress(args.quiet), engine=args.engine, scheduler=args.scheduler
+    )
     print(f"run written: {run_dir}")
     print(f"report: {run_dir / 'report.html'}")
     print(f"pdf: {run_dir / 'report.pdf'}")
@@ -126,11 +127,11 @@ def _summary(command: str, problems: list[str], ok_text: str) -> int:
 def _cmd_verify(args: argparse.Namespace) -> int:
     from .runs.verify import verify_run
 
-    result = verify_run(args.run_dir, args.inputs, args.render, args.strict,
-                        _progress(args.quiet))
-    _print_rows(("part", "item", "recorded", "now", "match"),
-                [(r.part, r.item, r.recorded, r.now, "yes" if r.ok else "NO")
-                 for r in result.rows])
+    result = verify_run(args.run_dir, args.inputs, args.render, args.strict, _progress(args.quiet))
+    _print_rows(
+        ("part", "item", "recorded", "now", "match"),
+        [(r.part, r.item, r.recorded, r.now, "yes" if r.ok else "NO") for r in result.rows],
+    )
     print()
     for part in ("integrity", "inputs", "numbers", "rendering"):
         verdict = result.verdicts.get(part)
@@ -146,11 +147,16 @@ def _compare(run_a: Path, run_b: Path) -> int:
     from .runs.compare import compare_runs
 
     spec_file = run_b / "spec.yaml"
-    gates = (spec_from_bytes(spec_file.read_bytes(), spec_file).gates if spec_file.is_file()
-             else GatesSection())
+    gates = (
+        spec_from_bytes(spec_file.read_bytes(), spec_file).gates
+        if spec_file.is_file()
+        else GatesSection()
+    )
     findings = compare_runs(run_a, run_b, gates)
-    _print_rows(("item", "A", "B", "gate"),
-                [(f.item, f.a, f.b, "CROSSED" if f.crossed else "") for f in findings])
+    _print_rows(
+        ("item", "A", "B", "gate"),
+        [(f.item, f.a, f.b, "CROSSED" if f.crossed else "") for f in findings],
+    )
     crossed = [f.item for f in findings if f.crossed]
     return _summary("compare", [f"gate crossed: {c}" for c in crossed], "within the gates")
 
@@ -188,26 +194,41 @@ def _cmd_init(args: argparse.Namespace) -> int:
     table = parse_table(raw, fmt, str(data), nrows=500)
     cols = [str(c) for c in table.frame.columns]
     if len(cols) < 3:
-        sep = (" (CSV fields are read as separated by "
-               f"{table.describe_delimiter()}; is another separator used?)"
-               if fmt == "csv" else "")
-        raise DataError(f"{str(data)!r} has {len(cols)} column(s){sep}; a subject, a time and "
-                        "a value column are needed")
+        sep = (
+            " (CSV fields are read as separated by "
+            f"{table.describe_delimiter()}; is another separator used?)"
+            if fmt == "csv"
+            else ""
+        )
+        raise DataError(
+            f"{str(data)!r} has {len(cols)} column(s){sep}; a subject, a time and "
+            "a value column are needed"
+        )
     try:
         guess = guess_columns(table)
     except ValueError as e:
         raise DataError(f"{str(data)!r}: {e}; the columns are {', '.join(cols)}") from e
     rel = os.path.relpath(data.resolve(), target.resolve().parent)
     rid = "".join(ch if ch.isalnum() or ch in "._-" else "-" for ch in data.stem)[:60] or "study"
-    text = STARTER.format(name=target.name, rid=rid, title=f"Appendix: {data.stem}", file=rel,
-                          subject=guess.subject, time=guess.time, value=guess.value,
-                          data_name=data.name, listing=column_listing(guess),
-                          time_lines=DATE_LINES if guess.time_is_date else NUMBER_LINES)
+    text = STARTER.format(
+        name=target.name,
+        rid=rid,
+        title=f"Appendix: {data.stem}",
+        file=rel,
+        subject=guess.subject,
+        time=guess.time,
+        value=guess.value,
+        data_name=data.name,
+        listing=column_listing(guess),
+        time_lines=DATE_LINES if guess.time_is_date else NUMBER_LINES,
+    )
     target.write_text(text, encoding="utf-8")
     print(f"starter spec written: {target}")
-    print(f"guessed: subject {guess.subject!r}, time {guess.time!r}"
-          + (" (dates: time_origin first, in days)" if guess.time_is_date else "")
-          + f", value {guess.value!r}")
+    print(
+        f"guessed: subject {guess.subject!r}, time {guess.time!r}"
+        + (" (dates: time_origin first, in days)" if guess.time_is_date else "")
+        + f", value {guess.value!r}"
+    )
     print(f"columns: {', '.join(cols)}")
     return 0
 
@@ -221,8 +242,10 @@ def _cmd_predict(args: argparse.Namespace) -> int:
     subjects, rows = prediction_size(frame)
     transform = fit.spec.data.transform
     scale = "" if transform == "none" else f", on the {transform} scale the run analysed"
-    print(f"predictions written: {path} ({subjects} subjects, {rows} rows; scores and "
-          f"trajectories with {fit.predictor.band_level:.0%} bands on the run's grid{scale})")
+    print(
+        f"predictions written: {path} ({subjects} subjects, {rows} rows; scores and "
+        f"trajectories with {fit.predictor.band_level:.0%} bands on the run's grid{scale})"
+    )
     return 0
 
 
@@ -246,8 +269,10 @@ def _cmd_demo(args: argparse.Namespace) -> int:
 
 
 def build_parser() -> argparse.ArgumentParser:
-    p = argparse.ArgumentParser(prog="reportgen", description="Study appendices for sparse "
-                                "longitudinal data from one YAML spec.")
+    p = argparse.ArgumentParser(
+        prog="reportgen",
+        description="Study appendices for sparse longitudinal data from one YAML spec.",
+    )
     p.add_argument("--version", action="version", version=f"reportgen {__version__}")
     sub = p.add_subparsers(dest="command", required=True)
 
@@ -259,28 +284,54 @@ def build_parser() -> argparse.ArgumentParser:
     sp = add("run", "fit, render and write a new run directory OUT/<report id>/vNNN")
     sp.add_argument("spec")
     sp.add_argument("--out", default="runs", help="folder of the runs (default: runs)")
-    sp.add_argument("--against-previous", action="store_true", help="after writing the run, "
-                    "compare it with the previous version under the spec's gates; exit 1 "
-                    "when a gate is crossed (for CI on a data refresh)")
-    sp.add_argument("--engine", choices=("local", "dask"), default="local",
-                    help="where the fits' passes over the data run: in this process "
-                    "(default) or on a Dask cluster; the results are the same bits")
-    sp.add_argument("--scheduler", metavar="ADDRESS", help="with --engine dask: the "
-                    "scheduler's address (default: DASK_SCHEDULER_ADDRESS, else a cluster "
-                    "started in this process)")
+    sp.add_argument(
+        "--against-previous",
+        action="store_true",
+        help="after writing the run, "
+        "compare it with the previous version under the spec's gates; exit 1 "
+        "when a gate is crossed (for CI on a data refresh)",
+    )
+    sp.add_argument(
+        "--engine",
+        choices=("local", "dask"),
+        default="local",
+        help="where the fits' passes over the data run: in this process "
+        "(default) or on a Dask cluster; the results are the same bits",
+    )
+    sp.add_argument(
+        "--scheduler",
+        metavar="ADDRESS",
+        help="with --engine dask: the "
+        "scheduler's address (default: DASK_SCHEDULER_ADDRESS, else a cluster "
+        "started in this process)",
+    )
     sp.set_defaults(func=_cmd_run)
     sp = add("check", "validate the spec and the data; fit nothing")
     sp.add_argument("spec")
     sp.set_defaults(func=_cmd_check)
-    sp = add("verify", "check a run's files against SHA256SUMS, its inputs against the "
-             "record, and re-run it; exit 1 on any mismatch")
+    sp = add(
+        "verify",
+        "check a run's files against SHA256SUMS, its inputs against the "
+        "record, and re-run it; exit 1 on any mismatch",
+    )
     sp.add_argument("run_dir")
-    sp.add_argument("--inputs", metavar="DIR", help="folder holding the run's input files "
-                    "(found by name); default: beside the recorded spec")
-    sp.add_argument("--render", action="store_true", help="also rebuild the HTML, figures and "
-                    "PDF and compare their bytes")
-    sp.add_argument("--strict", action="store_true", help="with --render: a rendering "
-                    "difference explained by another environment is a finding too")
+    sp.add_argument(
+        "--inputs",
+        metavar="DIR",
+        help="folder holding the run's input files "
+        "(found by name); default: beside the recorded spec",
+    )
+    sp.add_argument(
+        "--render",
+        action="store_true",
+        help="also rebuild the HTML, figures and PDF and compare their bytes",
+    )
+    sp.add_argument(
+        "--strict",
+        action="store_true",
+        help="with --render: a rendering "
+        "difference explained by another environment is a finding too",
+    )
     sp.set_defaults(func=_cmd_verify)
     sp = add("compare", "what changed from RUN_A to RUN_B; exit 1 when a gate is crossed")
     sp.add_argument("run_a")
@@ -290,11 +341,15 @@ def build_parser() -> argparse.ArgumentParser:
     sp.add_argument("data")
     sp.add_argument("spec", nargs="?", default="spec.yaml")
     sp.set_defaults(func=_cmd_init)
-    sp = add("predict", "scores and trajectories for the subjects in DATA from the fit "
-             "stored in RUN_DIR (checked against its SHA256SUMS first)")
+    sp = add(
+        "predict",
+        "scores and trajectories for the subjects in DATA from the fit "
+        "stored in RUN_DIR (checked against its SHA256SUMS first)",
+    )
     sp.add_argument("run_dir")
-    sp.add_argument("data", help="a data file with the run's columns, read as the run's spec "
-                    "reads its data")
+    sp.add_argument(
+        "data", help="a data file with the run's columns, read as the run's spec reads its data"
+    )
     sp.add_argument("--out", required=True, help="output file: .csv or .parquet")
     sp.set_defaults(func=_cmd_predict)
     sp = add("schema", "print the JSON Schema of a spec")

@@ -50,4 +50,3 @@ class EngineError(ReportgenError):
 
 class RecordError(ReportgenError):
     """A run directory's record.json is missing, unreadable or structurally damaged."""
-

@@ -9,9 +9,11 @@ from __future__ import annotations
 import re
 import sys
 
-PACKAGES = ("Debian/Ubuntu: apt-get install libpango-1.0-0 libpangoft2-1.0-0 libharfbuzz0b "
-            "fonts-dejavu-core; Fedora: dnf install pango harfbuzz dejavu-sans-fonts; "
-            "macOS: brew install pango")
+PACKAGES = (
+    "Debian/Ubuntu: apt-get install libpango-1.0-0 libpangoft2-1.0-0 libharfbuzz0b "
+    "fonts-dejavu-core; Fedora: dnf install pango harfbuzz dejavu-sans-fonts; "
+    "macOS: brew install pango"
+)
 
 
 def main() -> int:
@@ -20,8 +22,11 @@ def main() -> int:
     except OSError as e:  # cffi's dlopen failure names the library it looked for
         found = re.search(r"'([^']+)'", str(e))
         name = found.group(1) if found else str(e).splitlines()[0]
-        print(f"reportgen: the system library {name} is missing (needed for the PDF). "
-              f"Install it: {PACKAGES}.", file=sys.stderr)
+        print(
+            f"reportgen: the system library {name} is missing (needed for the PDF). "
+            f"Install it: {PACKAGES}.",
+            file=sys.stderr,
+        )
         return 1
     return 0
 

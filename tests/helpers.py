@@ -12,8 +12,13 @@ ROOT = Path(__file__).resolve().parents[1]
 
 def cli(*args: str, cwd: Path | None = None) -> subprocess.CompletedProcess[str]:
     """Run the real entry point in a subprocess."""
-    return subprocess.run([sys.executable, "-m", "reportgen.cli", *args], cwd=cwd,
-                          capture_output=True, text=True, timeout=600)
+    return subprocess.run(
+        [sys.executable, "-m", "reportgen.cli", *args],
+        cwd=cwd,
+        capture_output=True,
+        text=True,
+        timeout=600,
+    )
 
 
 def pump_folder(base: Path) -> Path:
@@ -28,7 +33,10 @@ def pump_folder(base: Path) -> Path:
     for k, part in data.groupby(key):
         part.to_parquet(base / "pumps" / f"part-{k}.parquet", index=False)
     spec = base / "pumps.yaml"
-    spec.write_text((ROOT / "specs" / "pump_service.yaml").read_text()
-                    .replace("file: pump_service.csv", "file: pumps")
-                    .replace("logo: fleet_logo.svg", ""))
+    spec.write_text(
+        (ROOT / "specs" / "pump_service.yaml")
+        .read_text()
+        .replace("file: pump_service.csv", "file: pumps")
+        .replace("logo: fleet_logo.svg", "")
+    )
     return spec

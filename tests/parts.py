@@ -12,8 +12,9 @@ from reportgen.fpca.plan import Part, Partitioned
 from reportgen.fpca.result import FPCAFit
 
 
-def split_parts(codes: IntArray, t: FloatArray, y: FloatArray, part: IntArray | None,
-                n_parts: int = 1) -> list[Part]:
+def split_parts(
+    codes: IntArray, t: FloatArray, y: FloatArray, part: IntArray | None, n_parts: int = 1
+) -> list[Part]:
     """The readings (subject codes 0 .. n - 1) as parts; ``part`` gives each reading's part
     (None: one part). A subject must lie in one part (the loader checks it). A part left
     with no readings (a file whose rows the checks dropped) is left out."""
@@ -25,12 +26,16 @@ def split_parts(codes: IntArray, t: FloatArray, y: FloatArray, part: IntArray | 
     order = np.argsort(part, kind="stable")
     bounds = np.searchsorted(part[order], np.arange(n_parts + 1))
     for p in range(n_parts):
-        rows = order[bounds[p]:bounds[p + 1]]
+        rows = order[bounds[p] : bounds[p + 1]]
         if rows.size == 0:
             continue
         subjects, local = np.unique(codes[rows], return_inverse=True)
-        out.append(Part(Sample.from_arrays(local.astype(np.intp), t[rows], y[rows]),
-                        subjects.astype(np.intp)))
+        out.append(
+            Part(
+                Sample.from_arrays(local.astype(np.intp), t[rows], y[rows]),
+                subjects.astype(np.intp),
+            )
+        )
     return out
 
 
@@ -42,9 +47,14 @@ def group_mean(sample: Sample, fit: FPCAFit) -> tuple[FloatArray, FloatArray]:
     return means[0], ses[0]
 
 
-def compare_groups_of(fit: FPCAFit, subject: IntArray, t: FloatArray, y: FloatArray,
-                      subject_group: np.ndarray, permutations: int = 1999
-                      ) -> GroupComparison:
+def compare_groups_of(
+    fit: FPCAFit,
+    subject: IntArray,
+    t: FloatArray,
+    y: FloatArray,
+    subject_group: np.ndarray,
+    permutations: int = 1999,
+) -> GroupComparison:
     """Group means and the test of equal mean scores, from readings in one part.
 
     ``subject`` holds codes into ``fit.subjects`` (one per reading); ``subject_group`` the

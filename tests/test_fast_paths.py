@@ -18,8 +18,11 @@ from reportgen.fpca import FPCAOptions, fit_arrays
 from reportgen.inputs.cleaning import duplicate_mask
 
 # few subjects and few distinct times, so that ties are common; -0.0 beside 0.0
-ROWS = st.lists(st.tuples(st.integers(0, 4), st.sampled_from([0.0, -0.0, 1.5, 2.0, 7.25])),
-                min_size=1, max_size=40)
+ROWS = st.lists(
+    st.tuples(st.integers(0, 4), st.sampled_from([0.0, -0.0, 1.5, 2.0, 7.25])),
+    min_size=1,
+    max_size=40,
+)
 
 
 def _pandas(codes: np.ndarray, t: np.ndarray) -> np.ndarray:
@@ -77,9 +80,11 @@ def test_spread_trend_is_spearman(n: int) -> None:
 # Python's sorted over (readings, id as text) tuples: the order's definition
 def test_order_by_readings_then_id() -> None:
     rng = np.random.default_rng(1)
-    for labels in (np.array(sorted(map(str, range(3000))), dtype=object),
-                   rng.permutation(3000),
-                   np.array([f"s{i}" for i in rng.permutation(3000)], dtype=object)):
+    for labels in (
+        np.array(sorted(map(str, range(3000))), dtype=object),
+        rng.permutation(3000),
+        np.array([f"s{i}" for i in rng.permutation(3000)], dtype=object),
+    ):
         n = rng.integers(1, 6, labels.size)
         expected = [s for _, s in sorted(zip(n, map(str, labels), strict=True))]
         assert [str(labels[i]) for i in _by_readings_then_id(n, labels)] == expected

@@ -18,9 +18,19 @@ import pytest
 
 PACKAGE = Path(__file__).resolve().parents[1] / "reportgen"
 FLOORS = {
-    "_version": 0, "_threads": 0, "_text": 0, "errors": 0,
-    "fpca": 1, "inputs": 2, "analysis": 3, "report": 4, "runs": 5,
-    "api": 6, "cli": 6, "__init__": 6, "syscheck": 6,
+    "_version": 0,
+    "_threads": 0,
+    "_text": 0,
+    "errors": 0,
+    "fpca": 1,
+    "inputs": 2,
+    "analysis": 3,
+    "report": 4,
+    "runs": 5,
+    "api": 6,
+    "cli": 6,
+    "__init__": 6,
+    "syscheck": 6,
 }
 # The report may not call the numerics at run time: it reads finished results.
 FORBIDDEN = {("report", "fpca")}
@@ -82,11 +92,14 @@ def violations(path: Path, package: Path = PACKAGE) -> list[str]:
         if theirs is None:  # "from reportgen import x" names a module below: checked there
             continue
         if theirs[1] > mine[1]:
-            out.append(f"{here} (floor {mine[0]}) imports {name} (floor {theirs[0]}) at "
-                       f"line {line}")
+            out.append(
+                f"{here} (floor {mine[0]}) imports {name} (floor {theirs[0]}) at line {line}"
+            )
         elif not typing_only and (mine[0], theirs[0]) in FORBIDDEN:
-            out.append(f"{here} calls into {theirs[0]} at line {line}: the report reads "
-                       "finished results from the analysis")
+            out.append(
+                f"{here} calls into {theirs[0]} at line {line}: the report reads "
+                "finished results from the analysis"
+            )
     return out
 
 
@@ -110,11 +123,13 @@ def test_the_rule_fails_on_a_violation(tmp_path: Path) -> None:
     (package / "report" / "calls.py").write_text("from ..fpca.fit import fit_parts\n")
     (package / "report" / "types.py").write_text(
         "from typing import TYPE_CHECKING\nif TYPE_CHECKING:\n"
-        "    from ..fpca.result import FPCAFit\n")
+        "    from ..fpca.result import FPCAFit\n"
+    )
     assert violations(package / "fpca" / "bad.py", package) == [
         "reportgen.fpca.bad (floor fpca) imports reportgen.runs.writer (floor runs) at line 2",
         "reportgen.fpca.bad (floor fpca) imports reportgen.runs.writer.run_spec (floor runs) "
-        "at line 2"]
+        "at line 2",
+    ]
     assert len(violations(package / "report" / "calls.py", package)) == 2
     assert violations(package / "report" / "types.py", package) == []
 
@@ -139,8 +154,9 @@ def test_no_import_cycle() -> None:
         state[node] = 1
         for nxt in sorted(graph.get(node, ())):
             if state.get(nxt) == 1:
-                raise AssertionError("import cycle: " + " -> ".join(
-                    [*stack[stack.index(nxt):], nxt]))
+                raise AssertionError(
+                    "import cycle: " + " -> ".join([*stack[stack.index(nxt) :], nxt])
+                )
             if state.get(nxt) is None:
                 visit(nxt, [*stack, nxt])
         state[node] = 2

@@ -7,7 +7,15 @@ import reportgen
 
 def test_all_is_sorted_and_complete() -> None:
     public = {n for n in dir(reportgen) if not n.startswith("_")} - {
-        "api", "errors", "fpca", "cli", "inputs", "analysis", "report", "runs", "syscheck",
+        "api",
+        "errors",
+        "fpca",
+        "cli",
+        "inputs",
+        "analysis",
+        "report",
+        "runs",
+        "syscheck",
         "styles",
     }
     assert sorted(reportgen.__all__) == reportgen.__all__

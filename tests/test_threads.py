@@ -26,7 +26,8 @@ def _frame() -> pd.DataFrame:
 
 
 def test_fit_runs_on_one_blas_thread_whatever_the_caller_allows(
-        monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
     # threadpoolctl's own report of the loaded BLAS libraries (general-purpose library):
     # inside the likelihood step every BLAS has one thread, though the caller allowed two.
     seen: list[list[int]] = []
@@ -53,8 +54,9 @@ def test_results_do_not_depend_on_the_callers_thread_count() -> None:
     np.testing.assert_array_equal(results[0][2], results[1][2])
 
 
-def test_numeric_commands_pin_the_whole_command(monkeypatch: pytest.MonkeyPatch,
-                                                 tmp_path: Any) -> None:
+def test_numeric_commands_pin_the_whole_command(
+    monkeypatch: pytest.MonkeyPatch, tmp_path: Any
+) -> None:
     # `reportgen run` holds one BLAS thread around everything it computes, not only the fit.
     import reportgen.runs.writer
     from reportgen.cli import main

@@ -63,13 +63,20 @@ class AnalysisResult:
         """The analysis without its per-reading and per-subject parts: what the figures of
         the fit's summaries need, at a size that does not grow with the data, and nothing
         of the engine's (it can be sent to another process)."""
-        runs = tuple(replace(r, fit=r.fit.without_subjects()) if r.fit is not None else r
-                     for r in self.sensitivity)
-        return replace(self, dataset=replace(self.dataset, readings=None),
-                       fit=self.fit.without_subjects(), sensitivity=runs,
-                       readings=self.readings.empty(), subjects_view=self.subjects_view.empty(),
-                       residual_sums=PartResults.of_arrays(np.zeros(0), np.zeros(0)),
-                       subject_parts=())
+        runs = tuple(
+            replace(r, fit=r.fit.without_subjects()) if r.fit is not None else r
+            for r in self.sensitivity
+        )
+        return replace(
+            self,
+            dataset=replace(self.dataset, readings=None),
+            fit=self.fit.without_subjects(),
+            sensitivity=runs,
+            readings=self.readings.empty(),
+            subjects_view=self.subjects_view.empty(),
+            residual_sums=PartResults.of_arrays(np.zeros(0), np.zeros(0)),
+            subject_parts=(),
+        )
 
     @property
     def time_label(self) -> str:
@@ -126,8 +133,9 @@ def _increasing(ids: pd.Index) -> bool:
     return not pc.any(pc.less(text[1:], text[:-1])).as_py()
 
 
-def analyse(spec: Spec, ds: Dataset, progress: Progress = lambda _: None,
-            lap: Progress = lambda _: None) -> AnalysisResult:
+def analyse(
+    spec: Spec, ds: Dataset, progress: Progress = lambda _: None, lap: Progress = lambda _: None
+) -> AnalysisResult:
     """The main fit, the sensitivity fits, diagnostics and caveats.
 
     ``ds`` must hold its readings (``load_dataset(..., for_fit=True)``); the fits' passes
@@ -138,8 +146,10 @@ def analyse(spec: Spec, ds: Dataset, progress: Progress = lambda _: None,
     if ds.readings is None:
         raise ValueError("the dataset holds no readings: load it with for_fit=True")
     if not compiled_on_disk():
-        progress("compiling the numerical kernels (once, about half a minute on 2 cores; "
-                 "later runs load them from the cache)")
+        progress(
+            "compiling the numerical kernels (once, about half a minute on 2 cores; "
+            "later runs load them from the cache)"
+        )
     progress("fit")
     held = ds.readings
     data = Partitioned.of(held.executor, held.parts)
@@ -157,23 +167,31 @@ def analyse(spec: Spec, ds: Dataset, progress: Progress = lambda _: None,
         progress("groups")
         assert held.groups is not None  # by code: fit.subjects' order
         subject_groups = tuple(str(g) for g in held.groups)
-        groups = compare_groups(data, fit, np.asarray(subject_groups),
-                                   tested=(drawn, drawn_scores))
+        groups = compare_groups(data, fit, np.asarray(subject_groups), tested=(drawn, drawn_scores))
         lap("groups")
     shown = _shown(fit, spec)
     progress("diagnostics")
     view, sums, trajectories = reading_view(data, fit, np.sort(fit.rows_of_ids(shown)))
     sampled = view.residuals
     rho = spread_trend(sampled)
-    found = (caveats(spec, ds, fit, runs, stable, len(sampled), rho)
-             + group_caveats(groups, fit))
+    found = caveats(spec, ds, fit, runs, stable, len(sampled), rho) + group_caveats(groups, fit)
     subjects = subject_view(fit, sums, spec.subjects.outlier_quantile, drawn, drawn_scores)
     lap("diagnostics")
     return AnalysisResult(
-        spec=spec, dataset=replace(ds, readings=None), fit=fit, sensitivity=tuple(runs),
-        readings=view, subjects_view=subjects, residual_sums=sums,
+        spec=spec,
+        dataset=replace(ds, readings=None),
+        fit=fit,
+        sensitivity=tuple(runs),
+        readings=view,
+        subjects_view=subjects,
+        residual_sums=sums,
         trajectories=trajectories,
-        shown_subjects=shown, caveats=tuple(found), stable=tuple(stable),
-        factors_note=factors_note, spread=rho, groups=groups, subject_groups=subject_groups,
+        shown_subjects=shown,
+        caveats=tuple(found),
+        stable=tuple(stable),
+        factors_note=factors_note,
+        spread=rho,
+        groups=groups,
+        subject_groups=subject_groups,
         subject_parts=data.subjects,
     )

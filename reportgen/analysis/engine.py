@@ -49,9 +49,11 @@ class OnDask:
         try:
             found = client.run(prepare_worker)
         except Exception as e:  # a worker without reportgen fails to unpickle the task
-            raise EngineError(f"the Dask workers cannot run reportgen's tasks "
-                              f"({type(e).__name__}: {e}); install reportgen {__version__} "
-                              "on every worker") from None
+            raise EngineError(
+                f"the Dask workers cannot run reportgen's tasks "
+                f"({type(e).__name__}: {e}); install reportgen {__version__} "
+                "on every worker"
+            ) from None
         check_versions(found, versions())
 
     def place(self, parts: list[Part]) -> list[Any]:
@@ -59,16 +61,26 @@ class OnDask:
         # sending them
         return list(self.client.scatter(parts, hash=False))
 
-    def keep(self, fn: Callable[..., Any], parts: Sequence[Any],
-             per_part: Sequence[tuple[Any, ...]] | None = None, shared: tuple[Any, ...] = ()
-             ) -> list[Any]:
+    def keep(
+        self,
+        fn: Callable[..., Any],
+        parts: Sequence[Any],
+        per_part: Sequence[tuple[Any, ...]] | None = None,
+        shared: tuple[Any, ...] = (),
+    ) -> list[Any]:
         extra = per_part if per_part is not None else [()] * len(parts)
-        return [self.client.submit(fn, p, *e, *shared, pure=False)
-                for p, e in zip(parts, extra, strict=True)]
+        return [
+            self.client.submit(fn, p, *e, *shared, pure=False)
+            for p, e in zip(parts, extra, strict=True)
+        ]
 
-    def map(self, fn: Callable[..., T], parts: Sequence[Any],
-            per_part: Sequence[tuple[Any, ...]] | None = None, shared: tuple[Any, ...] = ()
-            ) -> list[T]:
+    def map(
+        self,
+        fn: Callable[..., T],
+        parts: Sequence[Any],
+        per_part: Sequence[tuple[Any, ...]] | None = None,
+        shared: tuple[Any, ...] = (),
+    ) -> list[T]:
         return list(self.client.gather(self.keep(fn, parts, per_part, shared)))
 
 
@@ -80,8 +92,13 @@ def versions() -> dict[str, str]:
     import pandas
     import pyarrow
 
-    return {"reportgen": __version__, "numpy": numpy.__version__, "numba": numba.__version__,
-            "pandas": pandas.__version__, "pyarrow": pyarrow.__version__}
+    return {
+        "reportgen": __version__,
+        "numpy": numpy.__version__,
+        "numba": numba.__version__,
+        "pandas": pandas.__version__,
+        "pyarrow": pyarrow.__version__,
+    }
 
 
 def prepare_worker() -> dict[str, str]:
@@ -94,12 +111,17 @@ def check_versions(found: dict[str, dict[str, str]], here: dict[str, str]) -> No
     """Refuse workers whose reportgen, numpy, numba, pandas or pyarrow differ from this
     process's."""
     for worker, versions in sorted(found.items()):
-        differ = [f"{name} {versions.get(name)} (here {v})" for name, v in here.items()
-                  if versions.get(name) != v]
+        differ = [
+            f"{name} {versions.get(name)} (here {v})"
+            for name, v in here.items()
+            if versions.get(name) != v
+        ]
         if differ:
-            raise EngineError(f"Dask worker {worker} runs {', '.join(differ)}: every worker "
-                              "needs the versions of this process, or the results could "
-                              "differ")
+            raise EngineError(
+                f"Dask worker {worker} runs {', '.join(differ)}: every worker "
+                "needs the versions of this process, or the results could "
+                "differ"
+            )
 
 
 def local_engine() -> Engine:
@@ -129,19 +151,25 @@ def open_engine(name: str = "local", scheduler: str | None = None) -> Iterator[E
     address = scheduler or dask.config.get("scheduler-address", None)
     try:
         if address:
-            with _connected(Client, address, "--scheduler" if scheduler else
-                            "DASK_SCHEDULER_ADDRESS") as (client, n):
+            with _connected(
+                Client, address, "--scheduler" if scheduler else "DASK_SCHEDULER_ADDRESS"
+            ) as (client, n):
                 on = OnDask(client)
                 yield Engine(on, f"dask (scheduler {address}, {n} workers)")
             return
         workers = os.cpu_count() or 1
-        with LocalCluster(n_workers=workers, threads_per_worker=1, processes=False,
-                          dashboard_address=":0") as cluster, Client(cluster) as client:
+        with (
+            LocalCluster(
+                n_workers=workers, threads_per_worker=1, processes=False, dashboard_address=":0"
+            ) as cluster,
+            Client(cluster) as client,
+        ):
             on = OnDask(client)
             yield Engine(on, f"dask (a cluster in this process, {workers} workers)")
     except (KilledWorker, OSError, TimeoutError) as e:  # CommClosedError is an OSError
-        raise EngineError(f"the Dask cluster failed during the run ({type(e).__name__}: "
-                          f"{e}); nothing was written") from None
+        raise EngineError(
+            f"the Dask cluster failed during the run ({type(e).__name__}: {e}); nothing was written"
+        ) from None
 
 
 @contextmanager
@@ -150,15 +178,18 @@ def _connected(client_type: Any, address: str, named_by: str) -> Iterator[tuple[
     try:
         client = client_type(address, timeout=CONNECT_TIMEOUT)
     except (OSError, TimeoutError) as e:
-        raise EngineError(f"cannot reach the Dask scheduler at {address!r} ({named_by}): "
-                          f"{e}") from None
+        raise EngineError(
+            f"cannot reach the Dask scheduler at {address!r} ({named_by}): {e}"
+        ) from None
     try:
         try:
             client.wait_for_workers(1, timeout=WAIT_FOR_WORKERS)
         except TimeoutError:
-            raise EngineError(f"the Dask scheduler at {address!r} ({named_by}) has no workers "
-                              f"(waited {WAIT_FOR_WORKERS:g} s); start some with "
-                              f"`dask worker {address}`") from None
+            raise EngineError(
+                f"the Dask scheduler at {address!r} ({named_by}) has no workers "
+                f"(waited {WAIT_FOR_WORKERS:g} s); start some with "
+                f"`dask worker {address}`"
+            ) from None
         yield client, len(client.scheduler_info(n_workers=-1).get("workers", {}))
     finally:
         client.close()

@@ -38,10 +38,16 @@ def similarity(grid: np.ndarray, a: np.ndarray, b: np.ndarray) -> float:
 def _smallest_feasible_factor(fit: FPCAFit) -> float:
     """The smallest factor at which every automatically chosen bandwidth stays feasible:
     the largest ratio of a smoother's smallest feasible candidate to its chosen bandwidth."""
-    ratios = [min(h for h, c in zip(ch.candidates, ch.criterion, strict=True)
-                  if np.isfinite(c)) / ch.value
-              for ch in (fit.mean_bandwidth_choice, fit.covariance_bandwidth_choice,
-                         fit.diagonal_bandwidth_choice) if ch.candidates]
+    ratios = [
+        min(h for h, c in zip(ch.candidates, ch.criterion, strict=True) if np.isfinite(c))
+        / ch.value
+        for ch in (
+            fit.mean_bandwidth_choice,
+            fit.covariance_bandwidth_choice,
+            fit.diagonal_bandwidth_choice,
+        )
+        if ch.candidates
+    ]
     return max(ratios, default=0.0)
 
 
@@ -59,15 +65,23 @@ def sensitivity_factors(spec: Spec, fit: FPCAFit) -> tuple[list[float], str]:
     factors = sorted({math.ceil(max(f, floor) * 100) / 100 if f < 1 else f for f in wanted})
     factors = [f for f in factors if f != 1.0]
     raised = [f for f in wanted if f < floor]
-    note = ("Default factors 0.5, 0.75, 1.5 and 2" + (
-        f"; {', '.join(f'{f:g}' for f in raised)} raised to {floor:.2f}, the smallest factor "
-        "at which every automatically chosen bandwidth stays at or above its smallest "
-        "feasible candidate" if raised else "") + ".")
+    note = (
+        "Default factors 0.5, 0.75, 1.5 and 2"
+        + (
+            f"; {', '.join(f'{f:g}' for f in raised)} raised to {floor:.2f}, the smallest factor "
+            "at which every automatically chosen bandwidth stays at or above its smallest "
+            "feasible candidate"
+            if raised
+            else ""
+        )
+        + "."
+    )
     return factors, note
 
 
-def run_sensitivity(data: Partitioned, labels: Labels, fit: FPCAFit, factors: list[float],
-                    progress: Progress) -> list[SensitivityRun]:
+def run_sensitivity(
+    data: Partitioned, labels: Labels, fit: FPCAFit, factors: list[float], progress: Progress
+) -> list[SensitivityRun]:
     """Refit at each bandwidth factor, keeping the main fit's number of components so that
     every component can be compared (the number the rule would pick is reported too)."""
     runs = []
@@ -76,33 +90,39 @@ def run_sensitivity(data: Partitioned, labels: Labels, fit: FPCAFit, factors: li
         hd = factor * fit.diagonal_bandwidth
         progress(f"sensitivity: bandwidths x {factor:g}")
         # Plug-in bands: the sensitivity fits are compared by their estimates, not bands.
-        options = replace(with_bandwidths(fit.options, hm, hc, hd), band="plugin",
-                          component_rule="fixed",
-                          n_components=fit.n_components)
+        options = replace(
+            with_bandwidths(fit.options, hm, hc, hd),
+            band="plugin",
+            component_rule="fixed",
+            n_components=fit.n_components,
+        )
         # only the population parts are compared: the refit's scores and readings would
         # double the memory of the run at large sizes
         try:
             try:
                 other = fit_parts(data, labels, options, per_subject=False)
             except EstimationError:  # fewer positive eigenvalues than the main fit's K
-                other = fit_parts(data, labels, replace(options, component_rule="fve"),
-                                  per_subject=False)
+                other = fit_parts(
+                    data, labels, replace(options, component_rule="fve"), per_subject=False
+                )
         except EstimationError as e:
             runs.append(SensitivityRun(factor, hm, hc, hd, None, (), str(e)))
             continue
         sims = tuple(
             similarity(fit.grid, fit.eigenfunctions[:, k], other.eigenfunctions[:, k])
-            if k < other.n_components else float("nan")
+            if k < other.n_components
+            else float("nan")
             for k in range(fit.n_components)
         )
         runs.append(SensitivityRun(factor, hm, hc, hd, other, sims))
     return runs
 
 
-def stability(runs: list[SensitivityRun], n_components: int, threshold: float
-              ) -> list[bool | None]:
+def stability(runs: list[SensitivityRun], n_components: int, threshold: float) -> list[bool | None]:
     """Per component: stable when every computed setting's similarity reaches
     ``threshold``; None when no setting could be computed."""
     computed = [r for r in runs if r.fit is not None]
-    return [all(np.nan_to_num(r.similarity[k]) >= threshold for r in computed)
-            if computed else None for k in range(n_components)]
+    return [
+        all(np.nan_to_num(r.similarity[k]) >= threshold for r in computed) if computed else None
+        for k in range(n_components)
+    ]

@@ -28,14 +28,30 @@ def every_subject_frames(result: AnalysisResult) -> dict[str, pd.DataFrame]:
     scores, covariances and residual sums are gathered from the parts."""
     fit = result.fit
     scores, cov = fit.kept_scores.every()
-    return subject_frames(fit, fit.subjects, subject_groups(result, None), fit.n_obs, scores,
-                          cov, result.residual_sums.every(), result.subjects_view.cut,
-                          result.spec.subjects.all_trajectories)
+    return subject_frames(
+        fit,
+        fit.subjects,
+        subject_groups(result, None),
+        fit.n_obs,
+        scores,
+        cov,
+        result.residual_sums.every(),
+        result.subjects_view.cut,
+        result.spec.subjects.all_trajectories,
+    )
 
 
-def subject_frames(fit: FPCAFit, ids: Labels, groups: np.ndarray | None, n_obs: np.ndarray,
-                   scores: np.ndarray, cov: np.ndarray, sums: tuple[np.ndarray, ...],
-                   cut: float, curves: bool) -> dict[str, pd.DataFrame]:
+def subject_frames(
+    fit: FPCAFit,
+    ids: Labels,
+    groups: np.ndarray | None,
+    n_obs: np.ndarray,
+    scores: np.ndarray,
+    cov: np.ndarray,
+    sums: tuple[np.ndarray, ...],
+    cut: float,
+    curves: bool,
+) -> dict[str, pd.DataFrame]:
     """The tables of the subjects ``ids`` (with their ``groups``, reading counts, scores,
     score covariances and residual sums): scores (with the outlier distances: flagged
     beyond ``cut``), residuals_by_subject, and all_trajectories when ``curves``. ``fit``
@@ -50,8 +66,9 @@ def subject_frames(fit: FPCAFit, ids: Labels, groups: np.ndarray | None, n_obs: 
     table["distance2"] = d2
     table["flagged"] = d2 > cut
     mean, rms = residual_summary(sums, n_obs)
-    residuals = pd.DataFrame({"subject": ids, "n_obs": n_obs, "mean_residual": mean,
-                              "rms_standardized": rms})
+    residuals = pd.DataFrame(
+        {"subject": ids, "n_obs": n_obs, "mean_residual": mean, "rms_standardized": rms}
+    )
     tables = {"scores": table, "residuals_by_subject": residuals}
     if curves:
         held = replace(fit, subjects=ids, kept_scores=PartResults.of_arrays(scores, cov))

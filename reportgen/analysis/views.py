@@ -81,8 +81,10 @@ class ReadingView:
         every subject)."""
         if self.n_sampled == n_subjects:
             return ""
-        return (f"the {len(self.residuals):,} readings of a seeded sample of "
-                f"{self.n_sampled:,} of the {n_subjects:,} subjects")
+        return (
+            f"the {len(self.residuals):,} readings of a seeded sample of "
+            f"{self.n_sampled:,} of the {n_subjects:,} subjects"
+        )
 
 
 @dataclass(frozen=True)
@@ -133,12 +135,18 @@ class SubjectView:
         return f"a seeded sample of {self.sampled.size:,} of the {self.n_subjects:,} subjects"
 
     def empty(self) -> SubjectView:
-        return replace(self, sampled=self.sampled[:0], scores=self.scores[:0],
-                       distance2=self.distance2[:0], rms=self.rms[:0])
+        return replace(
+            self,
+            sampled=self.sampled[:0],
+            scores=self.scores[:0],
+            distance2=self.distance2[:0],
+            rms=self.rms[:0],
+        )
 
 
-def reading_view(data: Partitioned, fit: FPCAFit, shown: np.ndarray
-                 ) -> tuple[ReadingView, PartResults, pd.DataFrame]:
+def reading_view(
+    data: Partitioned, fit: FPCAFit, shown: np.ndarray
+) -> tuple[ReadingView, PartResults, pd.DataFrame]:
     """The pass that holds the fit against every reading (``fpca.diagnostics``): what the
     report shows of the readings, the per-subject residual sums (kept with the parts), and
     the trajectories of the shown subjects (``shown``: their codes, increasing) from their
@@ -147,13 +155,18 @@ def reading_view(data: Partitioned, fit: FPCAFit, shown: np.ndarray
     chosen = np.union1d(sampled, shown).astype(np.intp)
     found = check_readings(data, fit.kept_scores, fit.predictor, chosen)
     codes = found.readings["subject"]
-    frame = pd.DataFrame({**found.readings, "subject": fit.subjects[codes],
-                          "sampled": np.isin(codes, sampled)})
-    view = ReadingView(fit.n_readings, int(sampled.size), frame, found.density,
-                       found.time_axis, found.value_axis)
+    frame = pd.DataFrame(
+        {**found.readings, "subject": fit.subjects[codes], "sampled": np.isin(codes, sampled)}
+    )
+    view = ReadingView(
+        fit.n_readings, int(sampled.size), frame, found.density, found.time_axis, found.value_axis
+    )
     mine = np.isin(codes, shown)
-    readings = Sample.from_arrays(np.searchsorted(shown, codes[mine]),
-                                  found.readings["time"][mine], found.readings["value"][mine])
+    readings = Sample.from_arrays(
+        np.searchsorted(shown, codes[mine]),
+        found.readings["time"][mine],
+        found.readings["value"][mine],
+    )
     trajectories = fit.trajectories(list(fit.subjects[shown]), readings=readings)
     return view, found.sums, trajectories
 
@@ -177,8 +190,13 @@ def _largest(frame: pd.DataFrame, column: str, n: int) -> pd.DataFrame:
     return frame.iloc[order[:n]].reset_index(drop=True)
 
 
-def subject_view(fit: FPCAFit, sums: PartResults, quantile: float, sampled: np.ndarray,
-                 sampled_scores: np.ndarray) -> SubjectView:
+def subject_view(
+    fit: FPCAFit,
+    sums: PartResults,
+    quantile: float,
+    sampled: np.ndarray,
+    sampled_scores: np.ndarray,
+) -> SubjectView:
     """What the report shows of every subject: the sample's values (``sampled``, with
     their ``sampled_scores``) and two passes over the kept results, for the farthest
     flagged subjects and the largest RMS standardized residuals."""
@@ -188,30 +206,42 @@ def subject_view(fit: FPCAFit, sums: PartResults, quantile: float, sampled: np.n
     codes = np.concatenate([c[f.rows] for c, f in zip(kept.subjects, found, strict=True)])
     d2 = np.concatenate([f.distance2 for f in found])
     order = np.lexsort((codes, -d2))[:NAMED_FLAGGED]
-    farthest = pd.DataFrame({"code": codes[order], "subject": fit.subjects[codes[order]],
-                             "distance2": d2[order]})
+    farthest = pd.DataFrame(
+        {"code": codes[order], "subject": fit.subjects[codes[order]], "distance2": d2[order]}
+    )
     top = np.concatenate([f.scores for f in found])[order]
     for k in range(fit.n_components):
         farthest[f"score_{k + 1}"] = top[:, k]
-    worst = sums.map(part_largest_rms, [(fit.n_obs[c],) for c in sums.subjects],
-                     (WORST_SHOWN,))
+    worst = sums.map(part_largest_rms, [(fit.n_obs[c],) for c in sums.subjects], (WORST_SHOWN,))
     codes = np.concatenate([c[w.rows] for c, w in zip(sums.subjects, worst, strict=True)])
-    candidates = pd.DataFrame({"subject": fit.subjects[codes], "n_obs": fit.n_obs[codes],
-                               "mean_residual": np.concatenate([w.mean_residual for w in worst]),
-                               "rms_standardized": np.concatenate([w.rms for w in worst])})
+    candidates = pd.DataFrame(
+        {
+            "subject": fit.subjects[codes],
+            "n_obs": fit.n_obs[codes],
+            "mean_residual": np.concatenate([w.mean_residual for w in worst]),
+            "rms_standardized": np.concatenate([w.rms for w in worst]),
+        }
+    )
     _, rms = residual_summary(sums.pick(sampled), fit.n_obs[sampled])
-    return SubjectView(fit.n_subjects, sampled, sampled_scores,
-                       distances(sampled_scores, fit.eigenvalues), rms, cut,
-                       sum(f.n_beyond for f in found), farthest,
-                       _largest(candidates, "rms_standardized", WORST_SHOWN))
+    return SubjectView(
+        fit.n_subjects,
+        sampled,
+        sampled_scores,
+        distances(sampled_scores, fit.eigenvalues),
+        rms,
+        cut,
+        sum(f.n_beyond for f in found),
+        farthest,
+        _largest(candidates, "rms_standardized", WORST_SHOWN),
+    )
 
 
-def density(x: np.ndarray, y: np.ndarray, cells: tuple[int, int]
-            ) -> tuple[np.ndarray, tuple[tuple[float, float, int], ...]]:
+def density(
+    x: np.ndarray, y: np.ndarray, cells: tuple[int, int]
+) -> tuple[np.ndarray, tuple[tuple[float, float, int], ...]]:
     """Counts of the points (x, y) in ``cells`` equal cells over their range, and the two
     axes (low, high, cells): how the report draws many points as an image."""
-    axes = tuple(axis(float(v.min()), float(v.max()), n) for v, n in ((x, cells[0]),
-                                                                        (y, cells[1])))
+    axes = tuple(axis(float(v.min()), float(v.max()), n) for v, n in ((x, cells[0]), (y, cells[1])))
     return cell_counts(x, y, axes), axes
 
 
@@ -219,8 +249,10 @@ def spread_trend(residuals: pd.DataFrame) -> float:
     """Spearman correlation of |standardized residual| with the fitted value: the Pearson
     correlation of their average ranks (its definition; pandas' own method="spearman"
     imports scipy.stats, a second of start-up for one number)."""
-    columns = (np.abs(residuals.standardized.to_numpy(dtype=np.float64)),
-               residuals.fitted.to_numpy(dtype=np.float64))
+    columns = (
+        np.abs(residuals.standardized.to_numpy(dtype=np.float64)),
+        residuals.fitted.to_numpy(dtype=np.float64),
+    )
     if columns[0].size > 100_000:  # numpy sorts without the GIL: two cores, half the time
         from concurrent.futures import ThreadPoolExecutor
 

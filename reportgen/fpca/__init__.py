@@ -25,8 +25,13 @@ __all__ = [
     "with_bandwidths",
 ]
 
-_HOMES = {"BandwidthChoice": "bandwidth", "ComponentSelection": "components",
-          "FPCAFit": "result", "fit_arrays": "fit", "with_bandwidths": "fit"}
+_HOMES = {
+    "BandwidthChoice": "bandwidth",
+    "ComponentSelection": "components",
+    "FPCAFit": "result",
+    "fit_arrays": "fit",
+    "with_bandwidths": "fit",
+}
 
 
 def __getattr__(name: str) -> Any:

@@ -35,9 +35,16 @@ def _locate(x: float, lower: float, width: float, n_bins: int) -> tuple[int, flo
 
 
 @njit(cache=True, nogil=True)
-def bin_readings(t: FloatArray, y: FloatArray, subject: np.ndarray, folds: np.ndarray,
-                 lower: float, width: float, n_bins: int, n_folds: int
-                 ) -> tuple[FloatArray, FloatArray, FloatArray, FloatArray]:
+def bin_readings(
+    t: FloatArray,
+    y: FloatArray,
+    subject: np.ndarray,
+    folds: np.ndarray,
+    lower: float,
+    width: float,
+    n_bins: int,
+    n_folds: int,
+) -> tuple[FloatArray, FloatArray, FloatArray, FloatArray]:
     """Per fold: binned counts and sums of y, sum of y^2 and the number of readings."""
     counts = np.zeros((n_folds, n_bins))
     sums = np.zeros((n_folds, n_bins))
@@ -57,10 +64,18 @@ def bin_readings(t: FloatArray, y: FloatArray, subject: np.ndarray, folds: np.nd
 
 
 @njit(cache=True, nogil=True)
-def bin_pairs(starts: np.ndarray, t: FloatArray, resid: FloatArray, folds: np.ndarray,
-              lower: float, width: float, n_bins: int, n_folds: int
-              ) -> tuple[FloatArray, FloatArray, FloatArray, FloatArray, FloatArray,
-                         FloatArray, FloatArray, FloatArray]:
+def bin_pairs(
+    starts: np.ndarray,
+    t: FloatArray,
+    resid: FloatArray,
+    folds: np.ndarray,
+    lower: float,
+    width: float,
+    n_bins: int,
+    n_folds: int,
+) -> tuple[
+    FloatArray, FloatArray, FloatArray, FloatArray, FloatArray, FloatArray, FloatArray, FloatArray
+]:
     """Binned raw covariances of all within-subject pairs j != l, per fold.
 
     Returns the pair sums and counts (n_folds, bins, bins), the readings' own terms
@@ -120,8 +135,9 @@ def bin_pairs(starts: np.ndarray, t: FloatArray, resid: FloatArray, folds: np.nd
 
 
 @njit(cache=True, nogil=True)
-def subject_sums(starts: np.ndarray, resid: FloatArray, phi: FloatArray
-                 ) -> tuple[FloatArray, FloatArray]:
+def subject_sums(
+    starts: np.ndarray, resid: FloatArray, phi: FloatArray
+) -> tuple[FloatArray, FloatArray]:
     """Per subject: Phi_i' Phi_i, shape (n, K, K), and Phi_i' r_i, shape (n, K)."""
     n_subj, k = starts.size, phi.shape[1]
     gram = np.zeros((n_subj, k, k))
@@ -163,8 +179,9 @@ def order_within_subjects(starts: np.ndarray, t: FloatArray, y: FloatArray) -> n
         for i in range(a + 1, b):
             p = perm[i]
             j = i
-            while j > a and (t[perm[j - 1]] > t[p]
-                             or (t[perm[j - 1]] == t[p] and y[perm[j - 1]] > y[p])):
+            while j > a and (
+                t[perm[j - 1]] > t[p] or (t[perm[j - 1]] == t[p] and y[perm[j - 1]] > y[p])
+            ):
                 perm[j] = perm[j - 1]
                 j -= 1
             perm[j] = p
@@ -172,8 +189,9 @@ def order_within_subjects(starts: np.ndarray, t: FloatArray, y: FloatArray) -> n
 
 
 @njit(cache=True, nogil=True)
-def interpolate_columns(t: FloatArray, values: FloatArray, lower: float, width: float
-                        ) -> FloatArray:
+def interpolate_columns(
+    t: FloatArray, values: FloatArray, lower: float, width: float
+) -> FloatArray:
     """Columns of ``values`` (on a regular grid from ``lower`` with step ``width``) at ``t``,
     by linear interpolation; times beyond the ends take the end values. Shape (n, K)."""
     n_bins, k = values.shape
@@ -192,9 +210,15 @@ LIKELIHOOD_BLOCK = 64
 
 
 @njit(cache=True, nogil=True, error_model="numpy")
-def likelihood_sums(gram_t: FloatArray, cross_t: FloatArray, rr: FloatArray,
-                    n_obs: FloatArray, lam: FloatArray, s2: float, derivatives: bool
-                    ) -> tuple[float, FloatArray, FloatArray, bool]:
+def likelihood_sums(
+    gram_t: FloatArray,
+    cross_t: FloatArray,
+    rr: FloatArray,
+    n_obs: FloatArray,
+    lam: FloatArray,
+    s2: float,
+    derivatives: bool,
+) -> tuple[float, FloatArray, FloatArray, bool]:
     """Log-likelihood, score and Fisher information of the reduced-rank model, summed over
     subjects (the formulas are in ``likelihood``'s module docstring).
 
@@ -351,8 +375,9 @@ def likelihood_sums(gram_t: FloatArray, cross_t: FloatArray, rr: FloatArray,
     n_tot = 0.0
     for i in range(n_subj):
         n_tot += n_obs[i]
-    loglik = -0.5 * (n_tot * (np.log(2.0 * np.pi) + np.log(s2)) + np.sum(acc_logdet)
-                     + np.sum(acc_quad))
+    loglik = -0.5 * (
+        n_tot * (np.log(2.0 * np.pi) + np.log(s2)) + np.sum(acc_logdet) + np.sum(acc_quad)
+    )
     if derivatives:
         for a in range(k):
             score[a] = 0.5 * np.sum(acc_cross[a]) + np.sum(acc_score[a])
@@ -367,8 +392,14 @@ def likelihood_sums(gram_t: FloatArray, cross_t: FloatArray, rr: FloatArray,
     return loglik, score, info, True
 
 
-KERNELS: tuple[Any, ...] = (bin_readings, bin_pairs, subject_sums, interpolate_columns,
-                            likelihood_sums, order_within_subjects)
+KERNELS: tuple[Any, ...] = (
+    bin_readings,
+    bin_pairs,
+    subject_sums,
+    interpolate_columns,
+    likelihood_sums,
+    order_within_subjects,
+)
 
 
 def compiled_on_disk() -> bool:

@@ -73,13 +73,20 @@ def _sse(stats: BinnedStats, est: FloatArray) -> tuple[FloatArray, bool]:
     defined = bool(np.all(np.isfinite(est) | ~has_data))
     safe = np.where(has_data, est, 0.0)
     axes = tuple(range(1, est.ndim))
-    sse = (stats.sumsq - 2.0 * np.sum(stats.sums * safe, axis=axes)
-           + np.sum(stats.counts * safe * safe, axis=axes))
+    sse = (
+        stats.sumsq
+        - 2.0 * np.sum(stats.sums * safe, axis=axes)
+        + np.sum(stats.counts * safe * safe, axis=axes)
+    )
     return sse, defined
 
 
 def _criterion(
-    stats: BinnedStats, h: float, method: str, smooth: Smoother, hat: HatDiagonal,
+    stats: BinnedStats,
+    h: float,
+    method: str,
+    smooth: Smoother,
+    hat: HatDiagonal,
     eval_points: FloatArray,
 ) -> float:
     total = stats.total()
@@ -130,8 +137,11 @@ def select_bandwidth(
     # A minimum at the top candidate is no minimum: go on upwards, by the grid's own ratio,
     # until the criterion rises or the limit is reached.
     ratio = float(candidates[-1] / candidates[-2]) if candidates.size > 1 else 2.0
-    while (np.any(np.isfinite(scores)) and int(np.nanargmin(scores)) == hs.size - 1
-           and hs[-1] < extend_to * (1 - 1e-9)):
+    while (
+        np.any(np.isfinite(scores))
+        and int(np.nanargmin(scores)) == hs.size - 1
+        and hs[-1] < extend_to * (1 - 1e-9)
+    ):
         run(np.minimum(hs[-1] * ratio ** np.arange(1, 4), extend_to))
         hs = np.array(sorted(tried))
         scores = np.array([tried[h] for h in hs])

@@ -38,8 +38,7 @@ def evaluate_at(t: FloatArray, grid: FloatArray, funcs: FloatArray) -> FloatArra
     t = np.asarray(t, dtype=np.float64)
     step = np.diff(grid)
     if grid.size > 1 and np.allclose(step, step[0], rtol=1e-9, atol=0.0):
-        return interpolate_columns(t, np.ascontiguousarray(funcs), float(grid[0]),
-                                   float(step[0]))
+        return interpolate_columns(t, np.ascontiguousarray(funcs), float(grid[0]), float(step[0]))
     out = np.empty((t.size, funcs.shape[1]))
     for k in range(funcs.shape[1]):
         out[:, k] = np.interp(t, grid, funcs[:, k])
@@ -85,7 +84,9 @@ def eigen_decompose(grid: FloatArray, cov: FloatArray) -> Eigen:
     phi = vectors[:, keep] / root[:, None]
     negative = values[~keep]
     return Eigen(
-        values[keep], _orient(grid, w, phi), int((~keep).sum()),
+        values[keep],
+        _orient(grid, w, phi),
+        int((~keep).sum()),
         float(np.abs(negative[negative < 0]).sum()),
     )
 
@@ -119,8 +120,14 @@ class ComponentSelection:
 
 
 def choose(
-    rule: str, k_max: int, cumulative_fve: FloatArray, aic: FloatArray, bic: FloatArray,
-    cv: FloatArray, fve_threshold: float, n_components: int | None,
+    rule: str,
+    k_max: int,
+    cumulative_fve: FloatArray,
+    aic: FloatArray,
+    bic: FloatArray,
+    cv: FloatArray,
+    fve_threshold: float,
+    n_components: int | None,
 ) -> int:
     """Apply ``rule`` to the criteria; returns the number of components (>= 1)."""
     if rule == "fixed":

@@ -118,8 +118,10 @@ class BinnedStats:
 
     def total(self) -> BinnedStats:
         return BinnedStats(
-            self.counts.sum(axis=0, keepdims=True), self.sums.sum(axis=0, keepdims=True),
-            self.sumsq.sum(keepdims=True), self.n.sum(keepdims=True),
+            self.counts.sum(axis=0, keepdims=True),
+            self.sums.sum(axis=0, keepdims=True),
+            self.sumsq.sum(keepdims=True),
+            self.n.sum(keepdims=True),
         )
 
     def training(self) -> BinnedStats:
@@ -132,8 +134,9 @@ class BinnedStats:
 
 def mean_stats(sample: Sample, grid: BinGrid, folds: IntArray, n_folds: int) -> BinnedStats:
     """Binned pooled readings per fold (input of the mean smoother), in one pass."""
-    counts, sums, sumsq, n = bin_readings(sample.t, sample.y, sample.subject, folds,
-                                          grid.lower, grid.width, grid.n_bins, n_folds)
+    counts, sums, sumsq, n = bin_readings(
+        sample.t, sample.y, sample.subject, folds, grid.lower, grid.width, grid.n_bins, n_folds
+    )
     return BinnedStats(counts, sums, sumsq, n)
 
 
@@ -159,7 +162,11 @@ class PairStats:
 
 
 def pair_stats(
-    sample: Sample, resid: FloatArray, grid: BinGrid, folds: IntArray, n_folds: int,
+    sample: Sample,
+    resid: FloatArray,
+    grid: BinGrid,
+    folds: IntArray,
+    n_folds: int,
 ) -> PairStats:
     """Bin all within-subject pairs of residuals, per fold, in one pass over the readings.
 
@@ -168,7 +175,8 @@ def pair_stats(
     transpose. Work is sum_i n_i^2 / 2 pairs, with no per-subject bin vectors.
     """
     sums, counts, own, dcounts, dsums, sumsq, r4, n_read = bin_pairs(
-        sample.starts, sample.t, resid, folds, grid.lower, grid.width, grid.n_bins, n_folds)
+        sample.starts, sample.t, resid, folds, grid.lower, grid.width, grid.n_bins, n_folds
+    )
     n_pairs = np.bincount(folds, (sample.n_obs * (sample.n_obs - 1)).astype(np.float64), n_folds)
     offdiag = BinnedStats(counts, sums, sumsq, n_pairs)
     diag = BinnedStats(dcounts, dsums, r4, n_read)

@@ -22,9 +22,14 @@ from .predictor import Predictor
 DENSITY_CELLS = (60, 40)
 
 
-def standardized_residuals(t: FloatArray, y: FloatArray, rows: IntArray, scores: FloatArray,
-                           cov: FloatArray, model: Predictor
-                           ) -> tuple[FloatArray, FloatArray, FloatArray]:
+def standardized_residuals(
+    t: FloatArray,
+    y: FloatArray,
+    rows: IntArray,
+    scores: FloatArray,
+    cov: FloatArray,
+    model: Predictor,
+) -> tuple[FloatArray, FloatArray, FloatArray]:
     """Fitted values, residuals and standardized residuals of readings ``(t, y)`` whose
     subjects have ``scores[rows]`` and score error covariances ``cov[rows]``.
 
@@ -35,8 +40,9 @@ def standardized_residuals(t: FloatArray, y: FloatArray, rows: IntArray, scores:
     in-sample residuals are shrunk by design, so sigma alone would understate them.
     """
     phi = evaluate_at(t, model.grid, model.eigenfunctions)
-    fitted = (np.interp(t, model.mean_time, model.mean_value)
-              + np.einsum("nk,nk->n", phi, scores[rows]))
+    fitted = np.interp(t, model.mean_time, model.mean_value) + np.einsum(
+        "nk,nk->n", phi, scores[rows]
+    )
     resid = y - fitted
     # phi' Omega phi term by term: never an (n_readings, K, K) copy of the covariances
     quad = np.zeros_like(t)
@@ -51,16 +57,16 @@ def standardized_residuals(t: FloatArray, y: FloatArray, rows: IntArray, scores:
     return fitted, resid, resid / sd
 
 
-def cell_counts(x: FloatArray, y: FloatArray, edges: tuple[tuple[float, float, int], ...]
-                ) -> IntArray:
+def cell_counts(
+    x: FloatArray, y: FloatArray, edges: tuple[tuple[float, float, int], ...]
+) -> IntArray:
     """Counts of the points (x, y) in equal cells: ``edges`` gives (low, high, cells) of
     each axis; points on or past the high end fall in the last cell."""
     index = np.zeros(x.size, dtype=np.intp)
     for values, (lo, hi, n) in zip((x, y), edges, strict=True):
         cell = np.clip(((values - lo) * (n / (hi - lo))).astype(np.intp), 0, n - 1)
         index = index * n + cell
-    return np.bincount(index, minlength=edges[0][2] * edges[1][2]).reshape(
-        edges[0][2], edges[1][2])
+    return np.bincount(index, minlength=edges[0][2] * edges[1][2]).reshape(edges[0][2], edges[1][2])
 
 
 def axis(lo: float, hi: float, cells: int) -> tuple[float, float, int]:
@@ -86,8 +92,13 @@ class Checked(NamedTuple):
     found: Found
 
 
-def part_checks(part: Part, kept: tuple[FloatArray, FloatArray], rows: IntArray,
-                model: Predictor, edges: tuple[tuple[float, float, int], ...]) -> Checked:
+def part_checks(
+    part: Part,
+    kept: tuple[FloatArray, FloatArray],
+    rows: IntArray,
+    model: Predictor,
+    edges: tuple[tuple[float, float, int], ...],
+) -> Checked:
     """The pass, over a part and its kept scores and covariances (``kept``): per subject of
     the part, the sums of its residuals and of its squared standardized residuals; the
     density of the part's readings; and the readings of its subjects at ``rows`` (time,
@@ -137,17 +148,24 @@ class ReadingChecks:
     readings: dict[str, np.ndarray]
 
 
-def check_readings(data: Partitioned, scores: PartResults, model: Predictor, chosen: IntArray
-                   ) -> ReadingChecks:
+def check_readings(
+    data: Partitioned, scores: PartResults, model: Predictor, chosen: IntArray
+) -> ReadingChecks:
     """One pass over ``data`` and its subjects' kept ``scores`` (scores and covariances):
     residual sums of every subject (kept with the parts), the density of all readings,
     and the readings of the subjects ``chosen`` (increasing codes)."""
-    edges = (axis(data.t_min, data.t_max, DENSITY_CELLS[0]),
-             axis(data.y_min, data.y_max, DENSITY_CELLS[1]))
+    edges = (
+        axis(data.t_min, data.t_max, DENSITY_CELLS[0]),
+        axis(data.y_min, data.y_max, DENSITY_CELLS[1]),
+    )
     rows = data.rows_in_parts(chosen)
     run = data.executor
-    checked = run.keep(part_checks, data.parts,
-                       [(h, r) for h, r in zip(scores.handles, rows, strict=True)], (model, edges))
+    checked = run.keep(
+        part_checks,
+        data.parts,
+        [(h, r) for h, r in zip(scores.handles, rows, strict=True)],
+        (model, edges),
+    )
     found = run.map(checked_found, checked)
     sums = PartResults(run, tuple(run.keep(checked_sums, checked)), data.subjects)
     density = sum((f.density for f in found), np.zeros(DENSITY_CELLS, dtype=np.intp))
@@ -156,8 +174,9 @@ def check_readings(data: Partitioned, scores: PartResults, model: Predictor, cho
     index, sizes = in_code_order(owner, np.concatenate([f.sizes for f in found]))
     kept = np.sort(owner)
     names = ("time", "value", "fitted", "residual", "standardized")
-    readings = {name: np.concatenate([f.readings[k] for f in found])[index]
-                for k, name in enumerate(names)}
+    readings = {
+        name: np.concatenate([f.readings[k] for f in found])[index] for k, name in enumerate(names)
+    }
     readings = {"subject": np.repeat(kept, sizes), **readings}
     return ReadingChecks(sums, density, *edges, kept, readings)
 
@@ -190,8 +209,9 @@ class Farthest(NamedTuple):
     scores: FloatArray
 
 
-def part_farthest(kept: tuple[FloatArray, FloatArray], eigenvalues: FloatArray, cut: float,
-                  n: int) -> Farthest:
+def part_farthest(
+    kept: tuple[FloatArray, FloatArray], eigenvalues: FloatArray, cut: float, n: int
+) -> Farthest:
     """Pass over a part's kept scores: how many of its subjects are beyond ``cut``, and the
     rows, distances and scores of the ``n`` farthest of those."""
     scores = kept[0]
@@ -201,8 +221,9 @@ def part_farthest(kept: tuple[FloatArray, FloatArray], eigenvalues: FloatArray, 
     return Farthest(int(beyond.size), rows, d2[rows], scores[rows])
 
 
-def residual_summary(sums: tuple[FloatArray, ...], n_obs: IntArray
-                     ) -> tuple[FloatArray, FloatArray]:
+def residual_summary(
+    sums: tuple[FloatArray, ...], n_obs: IntArray
+) -> tuple[FloatArray, FloatArray]:
     """Each subject's mean residual and RMS standardized residual from its sums."""
     residual_sum, squared_sum = sums
     return residual_sum / n_obs, np.sqrt(squared_sum / n_obs)
@@ -217,8 +238,7 @@ class LargestRms(NamedTuple):
     rms: FloatArray
 
 
-def part_largest_rms(kept: tuple[FloatArray, FloatArray], n_obs: IntArray, n: int
-                     ) -> LargestRms:
+def part_largest_rms(kept: tuple[FloatArray, FloatArray], n_obs: IntArray, n: int) -> LargestRms:
     """Pass over a part's kept residual sums (``n_obs``: its subjects' reading counts): the
     rows, mean residuals and RMS standardized residuals of the ``n`` largest RMS."""
     mean, rms = residual_summary(kept, n_obs)
@@ -226,8 +246,9 @@ def part_largest_rms(kept: tuple[FloatArray, FloatArray], n_obs: IntArray, n: in
     return LargestRms(rows, mean[rows], rms[rows])
 
 
-def part_group_sums(kept: tuple[FloatArray, FloatArray], groups: IntArray, n_groups: int
-                    ) -> FloatArray:
+def part_group_sums(
+    kept: tuple[FloatArray, FloatArray], groups: IntArray, n_groups: int
+) -> FloatArray:
     """Pass over a part's kept scores: the sum of each group's scores, (n_groups, K)."""
     scores = kept[0]
     return np.stack([scores[groups == k].sum(axis=0) for k in range(n_groups)])

@@ -20,13 +20,21 @@ class Executor(Protocol):
 
     def place(self, parts: list[Any]) -> Sequence[Any]: ...
 
-    def map(self, fn: Callable[..., T], parts: Sequence[Any],
-            per_part: Sequence[tuple[Any, ...]] | None = None, shared: tuple[Any, ...] = ()
-            ) -> list[T]: ...
+    def map(
+        self,
+        fn: Callable[..., T],
+        parts: Sequence[Any],
+        per_part: Sequence[tuple[Any, ...]] | None = None,
+        shared: tuple[Any, ...] = (),
+    ) -> list[T]: ...
 
-    def keep(self, fn: Callable[..., Any], parts: Sequence[Any],
-             per_part: Sequence[tuple[Any, ...]] | None = None, shared: tuple[Any, ...] = ()
-             ) -> list[Any]: ...
+    def keep(
+        self,
+        fn: Callable[..., Any],
+        parts: Sequence[Any],
+        per_part: Sequence[tuple[Any, ...]] | None = None,
+        shared: tuple[Any, ...] = (),
+    ) -> list[Any]: ...
 
 
 class InProcess:
@@ -35,9 +43,13 @@ class InProcess:
     def place(self, parts: list[Any]) -> list[Any]:
         return list(parts)
 
-    def map(self, fn: Callable[..., T], parts: Sequence[Any],
-            per_part: Sequence[tuple[Any, ...]] | None = None, shared: tuple[Any, ...] = ()
-            ) -> list[T]:
+    def map(
+        self,
+        fn: Callable[..., T],
+        parts: Sequence[Any],
+        per_part: Sequence[tuple[Any, ...]] | None = None,
+        shared: tuple[Any, ...] = (),
+    ) -> list[T]:
         extra = per_part if per_part is not None else [()] * len(parts)
         return [fn(p, *e, *shared) for p, e in zip(parts, extra, strict=True)]
 
@@ -51,6 +63,8 @@ def tree_sum(items: Sequence[T], add: Callable[[T, T], T]) -> T:
     if not level:
         raise ValueError("nothing to add")
     while len(level) > 1:
-        level = [add(level[i], level[i + 1]) if i + 1 < len(level) else level[i]
-                 for i in range(0, len(level), 2)]
+        level = [
+            add(level[i], level[i + 1]) if i + 1 < len(level) else level[i]
+            for i in range(0, len(level), 2)
+        ]
     return level[0]

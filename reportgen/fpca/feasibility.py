@@ -33,8 +33,7 @@ _CHUNK = 20_000  # subjects per block of the pair counts (memory ~ chunk x bins 
 
 def _reading_counts(t: FloatArray, bins: BinGrid) -> FloatArray:
     left, f = bins.locate(t)
-    return (np.bincount(left, 1.0 - f, bins.n_bins)
-            + np.bincount(left + 1, f, bins.n_bins))
+    return np.bincount(left, 1.0 - f, bins.n_bins) + np.bincount(left + 1, f, bins.n_bins)
 
 
 def pair_counts(subject: IntArray, t: FloatArray, bins: BinGrid) -> FloatArray:
@@ -60,8 +59,10 @@ def pair_counts(subject: IntArray, t: FloatArray, bins: BinGrid) -> FloatArray:
             continue
         s = subject[lo:hi] - subject[lo]
         m = int(s[-1]) + 1
-        w = (np.bincount(s * b + left[lo:hi], 1.0 - f[lo:hi], m * b)
-             + np.bincount(s * b + left[lo:hi] + 1, f[lo:hi], m * b)).reshape(m, b)
+        w = (
+            np.bincount(s * b + left[lo:hi], 1.0 - f[lo:hi], m * b)
+            + np.bincount(s * b + left[lo:hi] + 1, f[lo:hi], m * b)
+        ).reshape(m, b)
         out += w.T @ w
     own = np.zeros(b * b)
     for da, wa in ((0, 1.0 - f), (1, f)):
@@ -70,21 +71,28 @@ def pair_counts(subject: IntArray, t: FloatArray, bins: BinGrid) -> FloatArray:
     return np.maximum(out - own.reshape(b, b), 0.0)
 
 
-def _compiled_pair_counts(kernels: Any, subject: IntArray, t: FloatArray,
-                          bins: BinGrid) -> FloatArray:
+def _compiled_pair_counts(
+    kernels: Any, subject: IntArray, t: FloatArray, bins: BinGrid
+) -> FloatArray:
     order = np.argsort(subject, kind="stable")
     sorted_codes = subject[order]
     n_subjects = int(sorted_codes[-1]) + 1
     starts = np.searchsorted(sorted_codes, np.arange(n_subjects)).astype(np.intp)
     times = np.ascontiguousarray(t[order], dtype=np.float64)
-    counts = kernels.bin_pairs(starts, times, np.zeros_like(times),
-                               np.zeros(n_subjects, dtype=np.intp), bins.lower, bins.width,
-                               bins.n_bins, 1)[1]
+    counts = kernels.bin_pairs(
+        starts,
+        times,
+        np.zeros_like(times),
+        np.zeros(n_subjects, dtype=np.intp),
+        bins.lower,
+        bins.width,
+        bins.n_bins,
+        1,
+    )[1]
     return np.asarray(counts[0])
 
 
-def _largest(setting: float | str, span: float, bins: BinGrid, n_subjects: int,
-             dim: int) -> float:
+def _largest(setting: float | str, span: float, bins: BinGrid, n_subjects: int, dim: int) -> float:
     if setting != "auto":
         return float(setting)
     return float(candidate_bandwidths(span, bins.width, n_subjects, dim)[-1])
@@ -103,8 +111,13 @@ class DesignCounts:
     pairs: FloatArray
 
 
-def count_design(subject: IntArray, t: FloatArray, domain: tuple[float, float],
-                 options: FPCAOptions, pairs: bool = True) -> DesignCounts:
+def count_design(
+    subject: IntArray,
+    t: FloatArray,
+    domain: tuple[float, float],
+    options: FPCAOptions,
+    pairs: bool = True,
+) -> DesignCounts:
     """The counts of these readings (``subject``: codes 0 .. m - 1)."""
     lo, hi = domain
     outside = int(np.count_nonzero((t < lo) | (t > hi)))
@@ -114,18 +127,27 @@ def count_design(subject: IntArray, t: FloatArray, domain: tuple[float, float],
     inside = (t >= lo) & (t <= hi)
     subject, t = subject[inside], t[inside]
     cbins = BinGrid(lo, hi, b)
-    return DesignCounts(outside, _reading_counts(t, BinGrid(lo, hi, options.mean_bins)),
-                        _reading_counts(t, cbins),
-                        pair_counts(subject, t, cbins) if pairs else np.zeros((b, b)))
+    return DesignCounts(
+        outside,
+        _reading_counts(t, BinGrid(lo, hi, options.mean_bins)),
+        _reading_counts(t, cbins),
+        pair_counts(subject, t, cbins) if pairs else np.zeros((b, b)),
+    )
 
 
 def add_design(a: DesignCounts, b: DesignCounts) -> DesignCounts:
-    return DesignCounts(a.outside + b.outside, a.mean + b.mean, a.diagonal + b.diagonal,
-                        a.pairs + b.pairs)
+    return DesignCounts(
+        a.outside + b.outside, a.mean + b.mean, a.diagonal + b.diagonal, a.pairs + b.pairs
+    )
 
 
-def problems_from(counts: DesignCounts, n_obs: IntArray, domain: tuple[float, float],
-                  constant: bool, options: FPCAOptions) -> list[str]:
+def problems_from(
+    counts: DesignCounts,
+    n_obs: IntArray,
+    domain: tuple[float, float],
+    constant: bool,
+    options: FPCAOptions,
+) -> list[str]:
     """Every reason the fit of these readings would stop, in the fit's words ([] if none),
     from the counts of all readings (``n_obs``: readings per subject; ``constant``: every
     reading has the same value)."""
@@ -149,30 +171,48 @@ def problems_from(counts: DesignCounts, n_obs: IntArray, domain: tuple[float, fl
     counts_m = counts.mean
     h = _largest(options.mean_bandwidth, span, mbins, n, 1)
     evals = np.concatenate([grid, mbins.centers])
-    if not np.all(np.isfinite(local_linear_binned_1d(evals, mbins.centers, counts_m,
-                                                     np.zeros_like(counts_m), h, kernel))):
+    if not np.all(
+        np.isfinite(
+            local_linear_binned_1d(
+                evals, mbins.centers, counts_m, np.zeros_like(counts_m), h, kernel
+            )
+        )
+    ):
         out.append(_gap("mean", h, options.mean_bandwidth, evals, mbins, counts_m, kernel))
     dcounts = counts.diagonal
     h = _largest(options.diagonal_bandwidth, span, cbins, n, 1)
-    if not np.all(np.isfinite(local_linear_binned_1d(grid, cbins.centers, dcounts,
-                                                     np.zeros_like(dcounts), h, kernel))):
-        out.append(_gap("diagonal", h, options.diagonal_bandwidth, grid, cbins, dcounts,
-                        kernel))
+    if not np.all(
+        np.isfinite(
+            local_linear_binned_1d(grid, cbins.centers, dcounts, np.zeros_like(dcounts), h, kernel)
+        )
+    ):
+        out.append(_gap("diagonal", h, options.diagonal_bandwidth, grid, cbins, dcounts, kernel))
     if n_multi >= 2:
         pairs = counts.pairs
         h = _largest(options.covariance_bandwidth, span, cbins, n, 2)
-        surface = local_linear_binned_2d(grid, cbins.centers, pairs, np.zeros_like(pairs), h,
-                                         kernel, symmetric=True)
+        surface = local_linear_binned_2d(
+            grid, cbins.centers, pairs, np.zeros_like(pairs), h, kernel, symmetric=True
+        )
         if not np.all(np.isfinite(surface)):
             bad = np.flatnonzero(~np.all(np.isfinite(surface), axis=1))
-            out.append(refusals.smoother_undefined(
-                "covariance", h, options.covariance_bandwidth != "auto", grid[bad], grid.size))
+            out.append(
+                refusals.smoother_undefined(
+                    "covariance", h, options.covariance_bandwidth != "auto", grid[bad], grid.size
+                )
+            )
     return out
 
 
-def _gap(what: str, h: float, setting: float | str, evals: FloatArray, bins: BinGrid,
-         counts: FloatArray, kernel: object) -> str:
-    est = local_linear_binned_1d(evals, bins.centers, counts, np.zeros_like(counts), h,
-                                 kernel)  # type: ignore[arg-type]
-    return refusals.smoother_undefined(what, h, setting != "auto",
-                                       np.sort(evals[~np.isfinite(est)]), evals.size)
+def _gap(
+    what: str,
+    h: float,
+    setting: float | str,
+    evals: FloatArray,
+    bins: BinGrid,
+    counts: FloatArray,
+    kernel: object,
+) -> str:
+    est = local_linear_binned_1d(evals, bins.centers, counts, np.zeros_like(counts), h, kernel)  # type: ignore[arg-type]
+    return refusals.smoother_undefined(
+        what, h, setting != "auto", np.sort(evals[~np.isfinite(est)]), evals.size
+    )

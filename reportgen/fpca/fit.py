@@ -63,20 +63,31 @@ from .smoothing import (
 
 
 def _choose_bandwidth(
-    setting: float | str, stats: BinnedStats, bins: BinGrid, n_subjects: int, dim: int,
-    method: str, kernel: Kernel, eval_points: np.ndarray, what: str,
+    setting: float | str,
+    stats: BinnedStats,
+    bins: BinGrid,
+    n_subjects: int,
+    dim: int,
+    method: str,
+    kernel: Kernel,
+    eval_points: np.ndarray,
+    what: str,
 ) -> BandwidthChoice:
     if dim == 1:
+
         def smooth(ev: FloatArray | None, c: FloatArray, s: FloatArray, h: float) -> FloatArray:
             return local_linear_binned_1d(
-                bins.centers if ev is None else ev, bins.centers, c, s, h, kernel)
+                bins.centers if ev is None else ev, bins.centers, c, s, h, kernel
+            )
 
         def hat(c: FloatArray, h: float) -> FloatArray:
             return hat_diagonal_1d(bins.centers, c, h, kernel)
     else:
+
         def smooth(ev: FloatArray | None, c: FloatArray, s: FloatArray, h: float) -> FloatArray:
             return local_linear_binned_2d(
-                bins.centers if ev is None else ev, bins.centers, c, s, h, kernel, True)
+                bins.centers if ev is None else ev, bins.centers, c, s, h, kernel, True
+            )
 
         def hat(c: FloatArray, h: float) -> FloatArray:
             return hat_diagonal_2d(bins.centers, c, h, kernel, True)
@@ -87,27 +98,36 @@ def _choose_bandwidth(
         est = smooth(eval_points, total.counts[0], total.sums[0], h)
         if not np.all(np.isfinite(est)):
             bad = ~np.isfinite(est) if est.ndim == 1 else ~np.all(np.isfinite(est), axis=1)
-            raise EstimationError(refusals.smoother_undefined(
-                what, h, True, np.sort(eval_points[bad]), eval_points.size))
+            raise EstimationError(
+                refusals.smoother_undefined(
+                    what, h, True, np.sort(eval_points[bad]), eval_points.size
+                )
+            )
         return BandwidthChoice(h, "fixed")
     span = bins.upper - bins.lower
     candidates = candidate_bandwidths(span, bins.width, n_subjects, dim)
-    return select_bandwidth(stats, candidates, method, smooth, hat, eval_points, what,
-                            extend_to=EXTEND_TO * span)
+    return select_bandwidth(
+        stats, candidates, method, smooth, hat, eval_points, what, extend_to=EXTEND_TO * span
+    )
 
 
 def _edge_warning(choice: BandwidthChoice, what: str) -> list[str]:
     if choice.method == "fixed" or not choice.candidates:
         return []
-    feasible = [h for h, c in zip(choice.candidates, choice.criterion, strict=True)
-                if np.isfinite(c)]
+    feasible = [
+        h for h, c in zip(choice.candidates, choice.criterion, strict=True) if np.isfinite(c)
+    ]
     if choice.value == min(feasible) and len(feasible) > 1:
-        return [f"the {what} bandwidth {choice.value:.4g} is the smallest feasible candidate; "
-                "the criterion may prefer a still smaller one"]
+        return [
+            f"the {what} bandwidth {choice.value:.4g} is the smallest feasible candidate; "
+            "the criterion may prefer a still smaller one"
+        ]
     if choice.value == max(feasible) and len(feasible) > 1:
-        return [f"the {what} bandwidth {choice.value:.4g} is the largest candidate ("
-                f"{EXTEND_TO:g} x the length of the domain): the smoother is close to a global "
-                "straight line or plane; the data show little structure at smaller scales"]
+        return [
+            f"the {what} bandwidth {choice.value:.4g} is the largest candidate ("
+            f"{EXTEND_TO:g} x the length of the domain): the smoother is close to a global "
+            "straight line or plane; the data show little structure at smaller scales"
+        ]
     return []
 
 
@@ -164,8 +184,13 @@ def _check_design(data: Partitioned, lo: float, hi: float) -> None:
 
 
 def fit_arrays(
-    subject: IntArray, t: FloatArray, y: FloatArray, labels: np.ndarray,
-    options: FPCAOptions = FPCAOptions(), *, population_only: bool = False,
+    subject: IntArray,
+    t: FloatArray,
+    y: FloatArray,
+    labels: np.ndarray,
+    options: FPCAOptions = FPCAOptions(),
+    *,
+    population_only: bool = False,
     per_subject: bool = True,
 ) -> FPCAFit:
     """Fit sparse FPCA to readings given as arrays.
@@ -194,8 +219,14 @@ def fit_arrays(
         return _fit(data, labels, options, population_only, per_subject, sample)
 
 
-def fit_parts(data: Partitioned, labels: Labels, options: FPCAOptions = FPCAOptions(),
-              *, per_subject: bool = True, sample: Sample | None = None) -> FPCAFit:
+def fit_parts(
+    data: Partitioned,
+    labels: Labels,
+    options: FPCAOptions = FPCAOptions(),
+    *,
+    per_subject: bool = True,
+    sample: Sample | None = None,
+) -> FPCAFit:
     """Fit sparse FPCA to readings held in parts (``fpca.plan``), whoever executes the passes.
 
     ``labels[code]`` is the id of the subject with that code. The result depends on the
@@ -208,14 +239,23 @@ def fit_parts(data: Partitioned, labels: Labels, options: FPCAOptions = FPCAOpti
         return _fit(data, labels, options, False, per_subject, sample)
 
 
-def _fit(data: Partitioned, labels: Labels, options: FPCAOptions, population_only: bool,
-         per_subject: bool = True, sample: Sample | None = None) -> FPCAFit:
+def _fit(
+    data: Partitioned,
+    labels: Labels,
+    options: FPCAOptions,
+    population_only: bool,
+    per_subject: bool = True,
+    sample: Sample | None = None,
+) -> FPCAFit:
     lo, hi = options.fitted_domain(data.t_min, data.t_max)
     _check_design(data, lo, hi)
     kernel = get_kernel(options.kernel)
     grid = np.linspace(lo, hi, options.n_grid)
-    auto = "auto" in (options.mean_bandwidth, options.covariance_bandwidth,
-                      options.diagonal_bandwidth)
+    auto = "auto" in (
+        options.mean_bandwidth,
+        options.covariance_bandwidth,
+        options.diagonal_bandwidth,
+    )
     n_subjects = data.n_subjects
     n_folds = min(options.cv_folds, n_subjects) if auto else 1
     method = options.bandwidth_method
@@ -226,8 +266,15 @@ def _fit(data: Partitioned, labels: Labels, options: FPCAOptions, population_onl
     mbins = BinGrid(lo, hi, options.mean_bins)
     mstats = data.reading_sums(folds, mbins, n_folds)
     mean_choice = _choose_bandwidth(
-        options.mean_bandwidth, mstats, mbins, n_subjects, 1, method, kernel,
-        np.concatenate([grid, mbins.centers]), "mean",
+        options.mean_bandwidth,
+        mstats,
+        mbins,
+        n_subjects,
+        1,
+        method,
+        kernel,
+        np.concatenate([grid, mbins.centers]),
+        "mean",
     )
     total = mstats.total()
     fine = local_linear_binned_1d(
@@ -240,22 +287,40 @@ def _fit(data: Partitioned, labels: Labels, options: FPCAOptions, population_onl
     pstats, size = data.residual_sums(folds, fine, mbins, cbins, n_folds)
     _check_variation(size)
     cov_choice = _choose_bandwidth(
-        options.covariance_bandwidth, pstats.offdiag, cbins, n_subjects, 2, method,
-        kernel, grid, "covariance",
+        options.covariance_bandwidth,
+        pstats.offdiag,
+        cbins,
+        n_subjects,
+        2,
+        method,
+        kernel,
+        grid,
+        "covariance",
     )
     diag_choice = _choose_bandwidth(
-        options.diagonal_bandwidth, pstats.diag, cbins, n_subjects, 1, method,
-        kernel, grid, "diagonal",
+        options.diagonal_bandwidth,
+        pstats.diag,
+        cbins,
+        n_subjects,
+        1,
+        method,
+        kernel,
+        grid,
+        "diagonal",
     )
-    cov, diag_var, ridge = _surfaces(pstats, cbins, grid, cov_choice.value, diag_choice.value,
-                                     kernel)
+    cov, diag_var, ridge = _surfaces(
+        pstats, cbins, grid, cov_choice.value, diag_choice.value, kernel
+    )
     mean_cov = mean_covariance(pstats, cbins, grid, mean_choice.value, kernel)
     mean_se = np.sqrt(np.maximum(np.diag(mean_cov), 0.0))
 
     # 3. eigen-decomposition; smoothing estimate of the error variance (a starting point)
     eig = eigen_decompose(grid, cov)
-    messages += (_edge_warning(mean_choice, "mean") + _edge_warning(cov_choice, "covariance")
-                 + _edge_warning(diag_choice, "diagonal"))
+    messages += (
+        _edge_warning(mean_choice, "mean")
+        + _edge_warning(cov_choice, "covariance")
+        + _edge_warning(diag_choice, "diagonal")
+    )
     # Smoothing always leaves some small negative eigenvalues; warn when they are material.
     if eig.dropped_sum > 0.01 * eig.values.sum():
         messages.append(
@@ -269,8 +334,9 @@ def _fit(data: Partitioned, labels: Labels, options: FPCAOptions, population_onl
     k_ref = _refined_count(eig, options)
     used = seeded_sample(n_subjects, REFINE_MAX_SUBJECTS, options.seed)
     chosen, chosen_resid = data.gather(used, fine, mbins)
-    terms = sample_terms(chosen, np.arange(used.size, dtype=np.intp), chosen_resid, grid,
-                         eig.functions[:, :k_ref])
+    terms = sample_terms(
+        chosen, np.arange(used.size, dtype=np.intp), chosen_resid, grid, eig.functions[:, :k_ref]
+    )
     start = starting_error_variance(sigma2_smooth, level)
     if start != sigma2_smooth:
         messages.append(
@@ -281,8 +347,10 @@ def _fit(data: Partitioned, labels: Labels, options: FPCAOptions, population_onl
     lik = maximise(terms.sums, eig.values[:k_ref], start)
     _check_refined(lik, level)
     if not lik.converged:
-        messages.append(f"the likelihood refinement stopped after {lik.iterations} "
-                        "iterations without meeting its convergence tolerance")
+        messages.append(
+            f"the likelihood refinement stopped after {lik.iterations} "
+            "iterations without meeting its convergence tolerance"
+        )
     # Components the likelihood gives no variance (lambda = 0) leave the refined set.
     order = np.argsort(-lik.eigenvalues, kind="stable")
     order = order[lik.eigenvalues[order] > 0]
@@ -309,9 +377,17 @@ def _fit(data: Partitioned, labels: Labels, options: FPCAOptions, population_onl
     # the components that enter a band's variance: the retained ones, plus the left-out
     # refined ones when they carry variance (the simultaneous band's degrees of freedom)
     dof = int(lik.eigenvalues.size if np.any(truncation > 0) else k)
-    predictor = Predictor(frozen(grid), frozen(mbins.centers), frozen(fine), frozen(funcs),
-                          frozen(values), lik.error_variance, frozen(truncation),
-                          options.band_level, dof)
+    predictor = Predictor(
+        frozen(grid),
+        frozen(mbins.centers),
+        frozen(fine),
+        frozen(funcs),
+        frozen(values),
+        lik.error_variance,
+        frozen(truncation),
+        options.band_level,
+        dof,
+    )
 
     # 6. scores
     if per_subject:
@@ -319,26 +395,45 @@ def _fit(data: Partitioned, labels: Labels, options: FPCAOptions, population_onl
     else:  # not computed: the fit is returned without its subjects (below)
         kept = PartResults.of_arrays(np.zeros((0, k)), np.zeros((0, k, k)))
     fit = FPCAFit(
-        grid=predictor.grid, mean=frozen(mean), mean_se=frozen(mean_se),
-        covariance=frozen(cov), diagonal_variance=frozen(diag_var),
-        eigenvalues=predictor.eigenvalues, eigenfunctions=predictor.eigenfunctions,
-        all_eigenvalues=frozen(all_values), surface_eigenvalues=frozen(surface_values),
-        fve=frozen(fve), error_variance=lik.error_variance,
-        smoothing_error_variance=sigma2_smooth, likelihood=lik,
+        grid=predictor.grid,
+        mean=frozen(mean),
+        mean_se=frozen(mean_se),
+        covariance=frozen(cov),
+        diagonal_variance=frozen(diag_var),
+        eigenvalues=predictor.eigenvalues,
+        eigenfunctions=predictor.eigenfunctions,
+        all_eigenvalues=frozen(all_values),
+        surface_eigenvalues=frozen(surface_values),
+        fve=frozen(fve),
+        error_variance=lik.error_variance,
+        smoothing_error_variance=sigma2_smooth,
+        likelihood=lik,
         truncation_variance=predictor.truncation_variance,
-        mean_simultaneous_multiplier=np.nan if population_only else _sup_multiplier(
-            mean_cov, options.band_level, options.seed),
-        diagonal_support=frozen(design_conditioning_2d(
-            grid, cbins.centers, pstats.offdiag.total().counts[0], cov_choice.value, kernel)),
-        n_components=k, mean_bandwidth_choice=mean_choice,
-        covariance_bandwidth_choice=cov_choice, diagonal_bandwidth_choice=diag_choice,
+        mean_simultaneous_multiplier=np.nan
+        if population_only
+        else _sup_multiplier(mean_cov, options.band_level, options.seed),
+        diagonal_support=frozen(
+            design_conditioning_2d(
+                grid, cbins.centers, pstats.offdiag.total().counts[0], cov_choice.value, kernel
+            )
+        ),
+        n_components=k,
+        mean_bandwidth_choice=mean_choice,
+        covariance_bandwidth_choice=cov_choice,
+        diagonal_bandwidth_choice=diag_choice,
         selection=selection,
-        subjects=as_labels(labels), n_obs=frozen(data.n_obs),
+        subjects=as_labels(labels),
+        n_obs=frozen(data.n_obs),
         kept_scores=kept,
-        pair_counts=frozen(pstats.offdiag.counts.sum(axis=0)), pair_grid=frozen(cbins.centers),
-        n_readings=data.n_readings, dropped_eigenvalues=eig.n_dropped,
+        pair_counts=frozen(pstats.offdiag.counts.sum(axis=0)),
+        pair_grid=frozen(cbins.centers),
+        n_readings=data.n_readings,
+        dropped_eigenvalues=eig.n_dropped,
         dropped_negative_sum=eig.dropped_sum,
-        warnings=tuple(messages), options=options, predictor=predictor, _sample=sample,
+        warnings=tuple(messages),
+        options=options,
+        predictor=predictor,
+        _sample=sample,
     )
     if not per_subject:
         return fit.without_subjects()
@@ -355,10 +450,13 @@ def _with_replicates(fit: FPCAFit, data: Partitioned) -> FPCAFit:
     and counted in a warning.
     """
     opts = replace(
-        with_bandwidths(fit.options, fit.mean_bandwidth, fit.covariance_bandwidth,
-                        fit.diagonal_bandwidth),
-        domain=(float(fit.grid[0]), float(fit.grid[-1])), component_rule="fixed",
-        n_components=fit.n_components, band="plugin",
+        with_bandwidths(
+            fit.options, fit.mean_bandwidth, fit.covariance_bandwidth, fit.diagonal_bandwidth
+        ),
+        domain=(float(fit.grid[0]), float(fit.grid[-1])),
+        component_rule="fixed",
+        n_components=fit.n_components,
+        band="plugin",
     )
     rng = np.random.default_rng([fit.options.seed, 1])
     n = data.n_subjects
@@ -376,11 +474,14 @@ def _with_replicates(fit: FPCAFit, data: Partitioned) -> FPCAFit:
         reps.append(replace(rf.predictor, mean_time=rf.grid, mean_value=rf.mean))
     notes = list(fit.warnings)
     if skipped:
-        notes.append(f"{skipped} of {fit.options.bootstrap_replicates} resamples for the "
-                     "corrected bands could not be fitted and were skipped")
+        notes.append(
+            f"{skipped} of {fit.options.bootstrap_replicates} resamples for the "
+            "corrected bands could not be fitted and were skipped"
+        )
     if len(reps) < 2:
-        raise EstimationError("the corrected bands need at least two resamples that can be "
-                              f"fitted; {len(reps)} could")
+        raise EstimationError(
+            f"the corrected bands need at least two resamples that can be fitted; {len(reps)} could"
+        )
     return replace(fit, replicates=tuple(reps), warnings=tuple(notes))
 
 
@@ -443,24 +544,26 @@ def _sup_multiplier(cov: FloatArray, level: float, seed: int, draws: int = 20000
 
 
 def _surfaces(
-    pstats: PairStats, cbins: BinGrid, grid: FloatArray, h: float, h_diag: float,
+    pstats: PairStats,
+    cbins: BinGrid,
+    grid: FloatArray,
+    h: float,
+    h_diag: float,
     kernel: Kernel,
 ) -> tuple[FloatArray, FloatArray, FloatArray]:
     """Covariance surface, variance of single readings, and the surface's diagonal (ridge)."""
     off, dg = pstats.offdiag.total(), pstats.diag.total()
-    cov = local_linear_binned_2d(grid, cbins.centers, off.counts[0], off.sums[0], h, kernel,
-                                 symmetric=True)
+    cov = local_linear_binned_2d(
+        grid, cbins.centers, off.counts[0], off.sums[0], h, kernel, symmetric=True
+    )
     cov = 0.5 * (cov + cov.T)
-    diag_var = local_linear_binned_1d(grid, cbins.centers, dg.counts[0], dg.sums[0], h_diag,
-                                      kernel)
+    diag_var = local_linear_binned_1d(grid, cbins.centers, dg.counts[0], dg.sums[0], h_diag, kernel)
     if not np.all(np.isfinite(diag_var)):
         raise EstimationError(
             f"the variance of single readings cannot be smoothed at bandwidth {h_diag:.4g}: "
             "some grid points have too few readings nearby"
         )
-    ridge = local_quadratic_diagonal_2d(
-        grid, cbins.centers, off.counts[0], off.sums[0], h, kernel
-    )
+    ridge = local_quadratic_diagonal_2d(grid, cbins.centers, off.counts[0], off.sums[0], h, kernel)
     # Where the quadratic is undetermined (thin data at the corners), use the plane's value.
     ridge = np.where(np.isfinite(ridge), ridge, np.diag(cov))
     return cov, diag_var, ridge
@@ -483,8 +586,10 @@ def mean_covariance(
     return 0.5 * (out + out.T)
 
 
-def with_bandwidths(options: FPCAOptions, mean_h: float, cov_h: float, diag_h: float
-                    ) -> FPCAOptions:
+def with_bandwidths(
+    options: FPCAOptions, mean_h: float, cov_h: float, diag_h: float
+) -> FPCAOptions:
     """The same options with the three bandwidths fixed (used by the sensitivity runs)."""
-    return replace(options, mean_bandwidth=mean_h, covariance_bandwidth=cov_h,
-                   diagonal_bandwidth=diag_h)
+    return replace(
+        options, mean_bandwidth=mean_h, covariance_bandwidth=cov_h, diagonal_bandwidth=diag_h
+    )

@@ -87,8 +87,10 @@ def _whitened(scores: FloatArray) -> FloatArray:
     total = centred.T @ centred
     values, vectors = np.linalg.eigh(total)
     if values.size == 0 or not values[0] > 1e-12 * max(float(values[-1]), 1e-300):
-        raise EstimationError("the scores do not vary in every retained component; the "
-                              "group test needs a total covariance that can be inverted")
+        raise EstimationError(
+            "the scores do not vary in every retained component; the "
+            "group test needs a total covariance that can be inverted"
+        )
     result: FloatArray = centred @ (vectors / np.sqrt(values))
     return result
 
@@ -112,8 +114,13 @@ def permutation_count(n_subjects: int, requested: int = PERMUTATIONS) -> int:
     return int(min(requested, max(MIN_PERMUTATIONS, affordable)))
 
 
-def permutation_test(scores: FloatArray, group: IntArray, n_groups: int,
-                     permutations: int = PERMUTATIONS, seed: int = 0) -> tuple[float, float]:
+def permutation_test(
+    scores: FloatArray,
+    group: IntArray,
+    n_groups: int,
+    permutations: int = PERMUTATIONS,
+    seed: int = 0,
+) -> tuple[float, float]:
     """Pillai's trace and its permutation p-value (labels permuted over subjects)."""
     z = _whitened(scores)
     observed = float(_statistics(z, group[None, :], n_groups)[0])
@@ -134,17 +141,21 @@ def _by_group(sample: Sample, groups: IntArray, n_groups: int) -> list[Sample]:
     return [sample.subset(np.flatnonzero(groups == k).astype(np.intp)) for k in range(n_groups)]
 
 
-def group_reading_sums(part: Part, groups: IntArray, n_groups: int, mbins: BinGrid
-                       ) -> list[BinnedStats]:
+def group_reading_sums(
+    part: Part, groups: IntArray, n_groups: int, mbins: BinGrid
+) -> list[BinnedStats]:
     """Pass: each group's binned readings (``groups``: the group of each of the part's
     subjects)."""
     part = part.writable()
-    return [mean_stats(s, mbins, np.zeros(s.n_subjects, dtype=np.intp), 1)
-            for s in _by_group(part.sample, groups, n_groups)]
+    return [
+        mean_stats(s, mbins, np.zeros(s.n_subjects, dtype=np.intp), 1)
+        for s in _by_group(part.sample, groups, n_groups)
+    ]
 
 
-def group_pair_sums(part: Part, groups: IntArray, n_groups: int, fine: FloatArray,
-                    mbins: BinGrid, cbins: BinGrid) -> list[PairStats]:
+def group_pair_sums(
+    part: Part, groups: IntArray, n_groups: int, fine: FloatArray, mbins: BinGrid, cbins: BinGrid
+) -> list[PairStats]:
     """Pass: each group's binned raw covariances against its own mean (``fine``: the
     groups' means on ``mbins``' centres, one row a group)."""
     part = part.writable()
@@ -155,8 +166,9 @@ def group_pair_sums(part: Part, groups: IntArray, n_groups: int, fine: FloatArra
     return out
 
 
-def group_means(data: Partitioned, fit: FPCAFit, groups: IntArray, n_groups: int
-                ) -> tuple[FloatArray, FloatArray]:
+def group_means(
+    data: Partitioned, fit: FPCAFit, groups: IntArray, n_groups: int
+) -> tuple[FloatArray, FloatArray]:
     """Each group's mean on the fit's grid and its cluster-robust standard error, shape
     (n_groups, n_grid) each: the common mean's estimator applied to the group's subjects
     (``groups``: the group of each subject, by code), in two passes over ``data``."""
@@ -170,14 +182,20 @@ def group_means(data: Partitioned, fit: FPCAFit, groups: IntArray, n_groups: int
     means, fines = [], []
     for k in range(n_groups):
         total = tree_sum([f[k] for f in found], add_binned).total()
-        fine = local_linear_binned_1d(mbins.centers, mbins.centers, total.counts[0],
-                                      total.sums[0], h, kernel)
-        means.append(local_linear_binned_1d(fit.grid, mbins.centers, total.counts[0],
-                                            total.sums[0], h, kernel))
-        fines.append(np.where(np.isfinite(fine), fine,
-                              np.interp(mbins.centers, fit.grid, fit.mean)))
-    found_pairs = data.executor.map(group_pair_sums, data.parts, each,
-                                    (n_groups, np.stack(fines), mbins, cbins))
+        fine = local_linear_binned_1d(
+            mbins.centers, mbins.centers, total.counts[0], total.sums[0], h, kernel
+        )
+        means.append(
+            local_linear_binned_1d(
+                fit.grid, mbins.centers, total.counts[0], total.sums[0], h, kernel
+            )
+        )
+        fines.append(
+            np.where(np.isfinite(fine), fine, np.interp(mbins.centers, fit.grid, fit.mean))
+        )
+    found_pairs = data.executor.map(
+        group_pair_sums, data.parts, each, (n_groups, np.stack(fines), mbins, cbins)
+    )
     ses = []
     for k, mean in enumerate(means):
         pstats = tree_sum([f[k] for f in found_pairs], add_pair_stats)
@@ -187,9 +205,13 @@ def group_means(data: Partitioned, fit: FPCAFit, groups: IntArray, n_groups: int
     return np.stack(means), np.stack(ses)
 
 
-def compare_groups(data: Partitioned, fit: FPCAFit, subject_group: np.ndarray,
-                      permutations: int = PERMUTATIONS,
-                      tested: tuple[IntArray, FloatArray] | None = None) -> GroupComparison:
+def compare_groups(
+    data: Partitioned,
+    fit: FPCAFit,
+    subject_group: np.ndarray,
+    permutations: int = PERMUTATIONS,
+    tested: tuple[IntArray, FloatArray] | None = None,
+) -> GroupComparison:
     """Group means (passes over ``data``, the fit's readings as parts), the average scores
     of each group (a pass over the fit's kept scores) and the test of equal mean scores.
     ``subject_group``: the group label of each of ``fit.subjects``. ``tested``: the codes
@@ -205,11 +227,22 @@ def compare_groups(data: Partitioned, fit: FPCAFit, subject_group: np.ndarray,
     kept = fit.kept_scores
     sums = kept.map(part_group_sums, [(code[c],) for c in kept.subjects], (g,))
     score_means = tree_sum(sums, np.add) / counts[:, None]
-    codes, scores = tested if tested is not None else (
-        np.arange(fit.n_subjects, dtype=np.intp), fit.score_values)
+    codes, scores = (
+        tested
+        if tested is not None
+        else (np.arange(fit.n_subjects, dtype=np.intp), fit.score_values)
+    )
     permutations = permutation_count(codes.size, permutations)
-    statistic, p_value = permutation_test(scores, code[codes], g, permutations,
-                                          fit.options.seed)
-    return GroupComparison(tuple(str(x) for x in labels), counts.astype(np.intp), means, ses,
-                           score_means, statistic, p_value, permutations, fit.options.seed,
-                           int(codes.size))
+    statistic, p_value = permutation_test(scores, code[codes], g, permutations, fit.options.seed)
+    return GroupComparison(
+        tuple(str(x) for x in labels),
+        counts.astype(np.intp),
+        means,
+        ses,
+        score_means,
+        statistic,
+        p_value,
+        permutations,
+        fit.options.seed,
+        int(codes.size),
+    )

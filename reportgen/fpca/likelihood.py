@@ -72,8 +72,12 @@ class SubjectSums:
 
     def leading(self, k: int) -> SubjectSums:
         """The sums of the first ``k`` components only."""
-        return SubjectSums(np.ascontiguousarray(self.gram[:, :k, :k]),
-                           np.ascontiguousarray(self.cross[:, :k]), self.rr, self.n_obs)
+        return SubjectSums(
+            np.ascontiguousarray(self.gram[:, :k, :k]),
+            np.ascontiguousarray(self.cross[:, :k]),
+            self.rr,
+            self.n_obs,
+        )
 
 
 @dataclass(frozen=True)
@@ -100,8 +104,9 @@ class LikelihoodFit:
     n_subjects: int
 
 
-def evaluate(sums: SubjectSums, lam: FloatArray, s2: float, derivatives: bool = True
-             ) -> tuple[float, FloatArray, FloatArray]:
+def evaluate(
+    sums: SubjectSums, lam: FloatArray, s2: float, derivatives: bool = True
+) -> tuple[float, FloatArray, FloatArray]:
     """Log-likelihood, score and Fisher information in (lambda_1..K, sigma^2).
 
     Returns
@@ -112,7 +117,8 @@ def evaluate(sums: SubjectSums, lam: FloatArray, s2: float, derivatives: bool = 
     """
     lam = np.ascontiguousarray(lam, dtype=np.float64)
     loglik, score, info, ok = likelihood_sums(
-        sums.gram_t, sums.cross_t, sums.rr, sums.n_obs, lam, float(s2), derivatives)
+        sums.gram_t, sums.cross_t, sums.rr, sums.n_obs, lam, float(s2), derivatives
+    )
     if not ok:
         raise np.linalg.LinAlgError("I + D G D / sigma^2 is not positive definite")
     if not derivatives:
@@ -120,8 +126,14 @@ def evaluate(sums: SubjectSums, lam: FloatArray, s2: float, derivatives: bool = 
     return float(loglik), score, info
 
 
-def maximise(sums: SubjectSums, lam0: FloatArray, s2_0: float, max_iter: int = 100,
-             tol: float = 1e-10, gain_tol: float = 1e-12) -> LikelihoodFit:
+def maximise(
+    sums: SubjectSums,
+    lam0: FloatArray,
+    s2_0: float,
+    max_iter: int = 100,
+    tol: float = 1e-10,
+    gain_tol: float = 1e-12,
+) -> LikelihoodFit:
     """Fisher scoring over lambda >= 0 and sigma^2 > 0, with step halving.
 
     An eigenvalue at 0 whose score points down stays there (active set); the step is cut so

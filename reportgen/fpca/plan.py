@@ -71,7 +71,8 @@ def in_code_order(owner: IntArray, held: IntArray) -> tuple[IntArray, IntArray]:
     sizes = held[order].astype(np.intp)
     first = (np.cumsum(held) - held).astype(np.intp)
     index = np.repeat(first[order] - (np.cumsum(sizes) - sizes), sizes) + np.arange(
-        int(sizes.sum()))
+        int(sizes.sum())
+    )
     return index, sizes
 
 
@@ -80,8 +81,9 @@ def add_binned(a: BinnedStats, b: BinnedStats) -> BinnedStats:
 
 
 def add_pair_stats(a: PairStats, b: PairStats) -> PairStats:
-    return PairStats(add_binned(a.offdiag, b.offdiag), add_binned(a.diag, b.diag),
-                     a.cross + b.cross)
+    return PairStats(
+        add_binned(a.offdiag, b.offdiag), add_binned(a.diag, b.diag), a.cross + b.cross
+    )
 
 
 class ResidualSize(NamedTuple):
@@ -102,9 +104,10 @@ class ResidualSums(NamedTuple):
 
 def _add_pairs(a: ResidualSums, b: ResidualSums) -> ResidualSums:
     sa, sb = a.size, b.size
-    return ResidualSums(add_pair_stats(a.pairs, b.pairs),
-                        ResidualSize(max(sa.largest, sb.largest), sa.squares + sb.squares,
-                                     sa.n + sb.n))
+    return ResidualSums(
+        add_pair_stats(a.pairs, b.pairs),
+        ResidualSize(max(sa.largest, sb.largest), sa.squares + sb.squares, sa.n + sb.n),
+    )
 
 
 class PartSummary(NamedTuple):
@@ -135,8 +138,14 @@ class Gathered(NamedTuple):
 def part_summary(part: Part) -> PartSummary:
     """Pass 0: the part's subject codes, their reading counts, its time and value ranges."""
     t, y = part.sample.t, part.sample.y
-    return PartSummary(part.subjects, part.sample.n_obs, float(t.min()), float(t.max()),
-                       float(y.min()), float(y.max()))
+    return PartSummary(
+        part.subjects,
+        part.sample.n_obs,
+        float(t.min()),
+        float(t.max()),
+        float(y.min()),
+        float(y.max()),
+    )
 
 
 def outside(part: Part, lo: float, hi: float) -> int:
@@ -158,19 +167,23 @@ def residuals(part: Part, fine: FloatArray, mean_grid: BinGrid) -> FloatArray:
     return _minus_mean(part.sample.t, part.sample.y, fine, mean_grid)
 
 
-def _minus_mean(t: FloatArray, y: FloatArray, fine: FloatArray, mean_grid: BinGrid
-                ) -> FloatArray:
+def _minus_mean(t: FloatArray, y: FloatArray, fine: FloatArray, mean_grid: BinGrid) -> FloatArray:
     return y - interpolate_columns(t, fine[:, None], mean_grid.lower, mean_grid.width)[:, 0]
 
 
-def residual_sums(part: Part, folds: IntArray, fine: FloatArray, mean_grid: BinGrid,
-                  grid: BinGrid, n_folds: int) -> ResidualSums:
+def residual_sums(
+    part: Part, folds: IntArray, fine: FloatArray, mean_grid: BinGrid, grid: BinGrid, n_folds: int
+) -> ResidualSums:
     """Pass 2: binned raw covariances of the residuals per fold, and the residuals' size."""
     part = part.writable()
     resid = residuals(part, fine, mean_grid)
     stats = pair_stats(part.sample, resid, grid, folds, n_folds)
-    return ResidualSums(stats, ResidualSize(float(np.max(np.abs(part.sample.y))),
-                                            float(np.sum(resid * resid)), float(resid.size)))
+    return ResidualSums(
+        stats,
+        ResidualSize(
+            float(np.max(np.abs(part.sample.y))), float(np.sum(resid * resid)), float(resid.size)
+        ),
+    )
 
 
 def gather(part: Part, rows: IntArray, fine: FloatArray, mean_grid: BinGrid) -> Gathered:
@@ -182,9 +195,15 @@ def gather(part: Part, rows: IntArray, fine: FloatArray, mean_grid: BinGrid) -> 
     return Gathered(t, y, _minus_mean(t, y, fine, mean_grid), sizes)  # of these readings only
 
 
-def part_scores(part: Part, fine: FloatArray, mean_grid: BinGrid, grid: FloatArray,
-                functions: FloatArray, values: FloatArray, sigma2: float
-                ) -> tuple[FloatArray, FloatArray]:
+def part_scores(
+    part: Part,
+    fine: FloatArray,
+    mean_grid: BinGrid,
+    grid: FloatArray,
+    functions: FloatArray,
+    values: FloatArray,
+    sigma2: float,
+) -> tuple[FloatArray, FloatArray]:
     """Pass 3: each subject's conditional expectation of its scores, and its covariance."""
     part = part.writable()
     resid = residuals(part, fine, mean_grid)
@@ -250,8 +269,12 @@ class PartResults:
     def n_subjects(self) -> int:
         return sum(int(c.size) for c in self.subjects)
 
-    def map(self, fn: Any, per_part: Sequence[tuple[Any, ...]] | None = None,
-            shared: tuple[Any, ...] = ()) -> list[Any]:
+    def map(
+        self,
+        fn: Any,
+        per_part: Sequence[tuple[Any, ...]] | None = None,
+        shared: tuple[Any, ...] = (),
+    ) -> list[Any]:
         """A pass over the kept results (``fn(kept, *per_part[i], *shared)`` per part)."""
         return self.executor.map(fn, self.handles, per_part, shared)
 
@@ -261,8 +284,7 @@ class PartResults:
         found = self.map(take_rows, [(r,) for r in rows])
         owner = np.concatenate([c[r] for c, r in zip(self.subjects, rows, strict=True)])
         order = np.argsort(owner, kind="stable")
-        return tuple(np.concatenate([f[j] for f in found])[order]
-                     for j in range(len(found[0])))
+        return tuple(np.concatenate([f[j] for f in found])[order] for j in range(len(found[0])))
 
     def every(self) -> tuple[np.ndarray, ...]:
         """The rows of every subject, by code (one part in code order: its own arrays)."""
@@ -321,11 +343,20 @@ class Partitioned:
             seen[codes] += 1
         if np.any(seen != 1):
             code = int(np.flatnonzero(seen != 1)[0])
-            raise EstimationError(f"subject code {code} is in {int(seen[code])} parts: each "
-                                  "subject's readings must lie in exactly one part")
-        return cls(executor, parts, tuple(f.subjects for f in found), n_obs,
-                   min(f.t_min for f in found), max(f.t_max for f in found),
-                   min(f.y_min for f in found), max(f.y_max for f in found))
+            raise EstimationError(
+                f"subject code {code} is in {int(seen[code])} parts: each "
+                "subject's readings must lie in exactly one part"
+            )
+        return cls(
+            executor,
+            parts,
+            tuple(f.subjects for f in found),
+            n_obs,
+            min(f.t_min for f in found),
+            max(f.t_max for f in found),
+            min(f.y_min for f in found),
+            max(f.y_max for f in found),
+        )
 
     @classmethod
     def local(cls, parts: list[Part]) -> Partitioned:
@@ -349,11 +380,13 @@ class Partitioned:
         found = self.executor.map(reading_sums, self.parts, self._each(folds), (grid, n_folds))
         return tree_sum(found, add_binned)
 
-    def residual_sums(self, folds: IntArray, fine: FloatArray, mean_grid: BinGrid,
-                      grid: BinGrid, n_folds: int) -> ResidualSums:
+    def residual_sums(
+        self, folds: IntArray, fine: FloatArray, mean_grid: BinGrid, grid: BinGrid, n_folds: int
+    ) -> ResidualSums:
         """Pair sums, and the residuals' size over all readings."""
-        found = self.executor.map(residual_sums, self.parts, self._each(folds),
-                                  (fine, mean_grid, grid, n_folds))
+        found = self.executor.map(
+            residual_sums, self.parts, self._each(folds), (fine, mean_grid, grid, n_folds)
+        )
         return tree_sum(found, _add_pairs)
 
     def rows_in_parts(self, chosen: IntArray) -> list[IntArray]:
@@ -361,8 +394,9 @@ class Partitioned:
         holds."""
         return rows_in_parts(self.subjects, chosen)
 
-    def gather(self, chosen: IntArray, fine: FloatArray, mean_grid: BinGrid
-               ) -> tuple[Sample, FloatArray]:
+    def gather(
+        self, chosen: IntArray, fine: FloatArray, mean_grid: BinGrid
+    ) -> tuple[Sample, FloatArray]:
         """The readings and residuals of the subjects ``chosen`` (increasing codes), as a
         sample coded 0 .. len(chosen) - 1 in that order."""
         rows = self.rows_in_parts(chosen)
@@ -374,12 +408,20 @@ class Partitioned:
         sample = Sample(np.repeat(np.arange(chosen.size), sizes), t, y, starts, sizes)
         return sample, r
 
-    def keep_scores(self, fine: FloatArray, mean_grid: BinGrid, grid: FloatArray,
-                    functions: FloatArray, values: FloatArray, sigma2: float) -> PartResults:
+    def keep_scores(
+        self,
+        fine: FloatArray,
+        mean_grid: BinGrid,
+        grid: FloatArray,
+        functions: FloatArray,
+        values: FloatArray,
+        sigma2: float,
+    ) -> PartResults:
         """Pass 3: each subject's scores and their error covariance, kept where each part's
         were computed (nothing per subject comes back)."""
-        handles = self.executor.keep(part_scores, self.parts,
-                                     shared=(fine, mean_grid, grid, functions, values, sigma2))
+        handles = self.executor.keep(
+            part_scores, self.parts, shared=(fine, mean_grid, grid, functions, values, sigma2)
+        )
         return PartResults(self.executor, tuple(handles), self.subjects)
 
     @cached_property
@@ -400,8 +442,17 @@ class Partitioned:
         masks = (where == p for p in range(len(self.parts)))
         asks = [(local[drawn[m]], np.flatnonzero(m).astype(np.intp)) for m in masks]
         kept = [i for i, (rows, _) in enumerate(asks) if rows.size]
-        parts = self.executor.keep(resampled, [self.parts[i] for i in kept],
-                                   [asks[i] for i in kept])
+        parts = self.executor.keep(
+            resampled, [self.parts[i] for i in kept], [asks[i] for i in kept]
+        )
         # the ranges are the original's (a resample is fitted on a fixed domain)
-        return Partitioned(self.executor, parts, tuple(asks[i][1] for i in kept),
-                           self.n_obs[drawn], self.t_min, self.t_max, self.y_min, self.y_max)
+        return Partitioned(
+            self.executor,
+            parts,
+            tuple(asks[i][1] for i in kept),
+            self.n_obs[drawn],
+            self.t_min,
+            self.t_max,
+            self.y_min,
+            self.y_max,
+        )

@@ -98,11 +98,11 @@ class Predictor:
         """The eigenfunctions at times ``t`` (linear interpolation), shape (n, K)."""
         return evaluate_at(np.asarray(t, dtype=np.float64), self.grid, self.eigenfunctions)
 
-    def band_multiplier(self, kind: BandKind = "pointwise", level: float | None = None
-                        ) -> float:
+    def band_multiplier(self, kind: BandKind = "pointwise", level: float | None = None) -> float:
         """:func:`band_multiplier` at ``level`` (default: the stored one)."""
-        return band_multiplier(self.band_level if level is None else level, kind,
-                               self.simultaneous_dof)
+        return band_multiplier(
+            self.band_level if level is None else level, kind, self.simultaneous_dof
+        )
 
     # --- subjects ---------------------------------------------------------------------------
 
@@ -110,8 +110,13 @@ class Predictor:
         """BLUP scores and their prediction-error covariance for the sample's subjects,
         shapes (n, K) and (n, K, K)."""
         resid = sample.y - self.mean_at(sample.t)
-        return conditional_scores(sample.starts, resid, self.eigenfunctions_at(sample.t),
-                                  self.eigenvalues, self.error_variance)
+        return conditional_scores(
+            sample.starts,
+            resid,
+            self.eigenfunctions_at(sample.t),
+            self.eigenvalues,
+            self.error_variance,
+        )
 
     def fitted(self, scores: FloatArray) -> FloatArray:
         """Each subject's curve on the grid, (n, n_grid)."""
@@ -122,13 +127,19 @@ class Predictor:
         """The plug-in variance of each curve on the grid, (n, n_grid): the scores'
         prediction error along the eigenfunctions, plus what K components leave out."""
         phi = self.eigenfunctions
-        out: FloatArray = (np.einsum("gk,nkl,gl->ng", phi, cov, phi)
-                           + self.truncation_variance[None, :])
+        out: FloatArray = (
+            np.einsum("gk,nkl,gl->ng", phi, cov, phi) + self.truncation_variance[None, :]
+        )
         return out
 
-    def trajectories(self, labels: Sequence[object] | np.ndarray | pd.Index, scores: FloatArray,
-                     cov: FloatArray, level: float | None = None,
-                     variance: FloatArray | None = None) -> pd.DataFrame:
+    def trajectories(
+        self,
+        labels: Sequence[object] | np.ndarray | pd.Index,
+        scores: FloatArray,
+        cov: FloatArray,
+        level: float | None = None,
+        variance: FloatArray | None = None,
+    ) -> pd.DataFrame:
         """Curves on the grid and their bands, one row per subject and grid time: subject,
         time, fitted, lower, upper (pointwise), lower_simultaneous, upper_simultaneous.
 
@@ -141,17 +152,25 @@ class Predictor:
         half = self.band_multiplier("pointwise", level) * sd
         wide = self.band_multiplier("simultaneous", level) * sd
         labels = np.asarray(labels) if not isinstance(labels, pd.Index) else labels
-        return pd.DataFrame({
-            "subject": np.repeat(labels, self.grid.size),
-            "time": np.tile(self.grid, len(labels)),
-            "fitted": fitted.ravel(), "lower": (fitted - half).ravel(),
-            "upper": (fitted + half).ravel(), "lower_simultaneous": (fitted - wide).ravel(),
-            "upper_simultaneous": (fitted + wide).ravel(),
-        })
+        return pd.DataFrame(
+            {
+                "subject": np.repeat(labels, self.grid.size),
+                "time": np.tile(self.grid, len(labels)),
+                "fitted": fitted.ravel(),
+                "lower": (fitted - half).ravel(),
+                "upper": (fitted + half).ravel(),
+                "lower_simultaneous": (fitted - wide).ravel(),
+                "upper_simultaneous": (fitted + wide).ravel(),
+            }
+        )
 
-    def predict(self, sample: Sample, labels: np.ndarray,
-                replicates: Sequence[Predictor] = (), level: float | None = None
-                ) -> pd.DataFrame:
+    def predict(
+        self,
+        sample: Sample,
+        labels: np.ndarray,
+        replicates: Sequence[Predictor] = (),
+        level: float | None = None,
+    ) -> pd.DataFrame:
         """Scores and curves of the sample's subjects (coded 0 .. n - 1; ``labels`` their
         ids): subject, n_obs, score_1..K, then :meth:`trajectories`' columns. With
         ``replicates`` (a corrected band's resamples) the bands are corrected ones.
@@ -162,7 +181,8 @@ class Predictor:
             raise EstimationError(
                 f"{outside.size} readings lie outside the run's time domain [{lo:g}, {hi:g}] "
                 f"(first: subject {labels[sample.subject[outside[0]]]}, time "
-                f"{sample.t[outside[0]]:g}); the fit says nothing there: leave them out")
+                f"{sample.t[outside[0]]:g}); the fit says nothing there: leave them out"
+            )
         scores, cov = self.scores(sample)
         variance = corrected_variance(tuple(replicates), sample) if replicates else None
         out = self.trajectories(labels, scores, cov, level, variance)
@@ -182,11 +202,15 @@ class Predictor:
             *(("eigenfunction", j + 1, self.grid, self.eigenfunctions[:, j]) for j in range(k)),
             ("truncation_variance", 0, self.grid, self.truncation_variance),
             ("eigenvalue", np.arange(1, k + 1), np.full(k, np.nan), self.eigenvalues),
-            *((name, 0, np.full(1, np.nan), np.array([float(getattr(self, name))]))
-              for name in SCALARS),
+            *(
+                (name, 0, np.full(1, np.nan), np.array([float(getattr(self, name))]))
+                for name in SCALARS
+            ),
         ]
-        frames = [pd.DataFrame({"quantity": q, "component": c, "time": t, "value": v})
-                  for q, c, t, v in parts]
+        frames = [
+            pd.DataFrame({"quantity": q, "component": c, "time": t, "value": v})
+            for q, c, t, v in parts
+        ]
         return pd.concat(frames, ignore_index=True)
 
     @classmethod
@@ -202,16 +226,24 @@ class Predictor:
             ev = by["eigenvalue"].sort_values("component", kind="stable")
             trunc = by["truncation_variance"].sort_values("time", kind="stable")
             scalar = {name: float(by[name].value.iloc[0]) for name in SCALARS}
-            out = cls(grid, mean.time.to_numpy(dtype=np.float64),
-                      mean.value.to_numpy(dtype=np.float64), np.ascontiguousarray(phi),
-                      ev.value.to_numpy(dtype=np.float64), scalar["error_variance"],
-                      trunc.value.to_numpy(dtype=np.float64), scalar["band_level"],
-                      int(scalar["simultaneous_dof"]))
+            out = cls(
+                grid,
+                mean.time.to_numpy(dtype=np.float64),
+                mean.value.to_numpy(dtype=np.float64),
+                np.ascontiguousarray(phi),
+                ev.value.to_numpy(dtype=np.float64),
+                scalar["error_variance"],
+                trunc.value.to_numpy(dtype=np.float64),
+                scalar["band_level"],
+                int(scalar["simultaneous_dof"]),
+            )
         except (KeyError, ValueError, AttributeError) as e:
-            raise EstimationError(f"the stored model table is incomplete or damaged ({e})"
-                                  ) from e
-        if out.eigenvalues.size != k or out.truncation_variance.size != grid.size or \
-                not np.all(np.isfinite(out.eigenfunctions)):
+            raise EstimationError(f"the stored model table is incomplete or damaged ({e})") from e
+        if (
+            out.eigenvalues.size != k
+            or out.truncation_variance.size != grid.size
+            or not np.all(np.isfinite(out.eigenfunctions))
+        ):
             raise EstimationError("the stored model table is inconsistent (sizes differ)")
         return out
 

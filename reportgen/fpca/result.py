@@ -176,8 +176,13 @@ class FPCAFit:
         that does not grow with the number of subjects (what a comparison of fits or a
         summary figure needs). ``n_obs`` stays: the design summaries use it."""
         k = self.n_components
-        return replace(self, _sample=None, replicates=(), subjects=self.subjects[:0],
-                       kept_scores=PartResults.of_arrays(np.zeros((0, k)), np.zeros((0, k, k))))
+        return replace(
+            self,
+            _sample=None,
+            replicates=(),
+            subjects=self.subjects[:0],
+            kept_scores=PartResults.of_arrays(np.zeros((0, k)), np.zeros((0, k, k))),
+        )
 
     # --- the subjects' scores --------------------------------------------------------------
 
@@ -232,8 +237,16 @@ class FPCAFit:
         if rule == "fixed":
             return self.n_components
         sel = self.selection
-        return choose(rule, int(sel.k.size), sel.cumulative_fve, sel.aic, sel.bic, sel.cv,
-                      self.options.fve_threshold, None)
+        return choose(
+            rule,
+            int(sel.k.size),
+            sel.cumulative_fve,
+            sel.aic,
+            sel.bic,
+            sel.cv,
+            self.options.fve_threshold,
+            None,
+        )
 
     @property
     def retained_covariance(self) -> FloatArray:
@@ -255,13 +268,14 @@ class FPCAFit:
         """Eigenfunctions at arbitrary times (linear interpolation), shape (n, K)."""
         return self.predictor.eigenfunctions_at(t)
 
-    def band_multiplier(self, level: float | None = None, kind: BandKind = "pointwise"
-                        ) -> float:
+    def band_multiplier(self, level: float | None = None, kind: BandKind = "pointwise") -> float:
         """Multiplier of the standard error for a two-sided band at ``level``."""
         return self.predictor.band_multiplier(kind, level)
 
     def trajectories(
-        self, subjects: list[Any] | None = None, level: float | None = None,
+        self,
+        subjects: list[Any] | None = None,
+        level: float | None = None,
         readings: Sample | None = None,
     ) -> pd.DataFrame:
         """Recovered trajectories on the grid: subject, time, fitted, the pointwise band
@@ -271,8 +285,10 @@ class FPCAFit:
         corrected bands need; by default the fit's own (a fit from parts holds none).
         """
         if readings is None and self._sample is None:
-            raise EstimationError("this fit holds no readings of its subjects (a fit "
-                                  "without_subjects, or one fitted from parts without them)")
+            raise EstimationError(
+                "this fit holds no readings of its subjects (a fit "
+                "without_subjects, or one fitted from parts without them)"
+            )
         if subjects is None:
             rows = np.arange(self.n_subjects)
         else:
@@ -284,8 +300,9 @@ class FPCAFit:
             assert self._sample is not None
             readings = self._sample.subset(rows)
         elif readings.n_subjects != rows.size:
-            raise EstimationError(f"readings of {readings.n_subjects} subjects given for "
-                                  f"{rows.size} trajectories")
+            raise EstimationError(
+                f"readings of {readings.n_subjects} subjects given for {rows.size} trajectories"
+            )
         scores, cov = self.scores_of(rows)
         variance = corrected_variance(self.replicates, readings) if self.replicates else None
         return self.predictor.trajectories(self.subjects[rows], scores, cov, level, variance)
@@ -305,5 +322,6 @@ class FPCAFit:
         the fit has resamples).
         """
         codes, t, y, labels = arrays_from_frame(frame, *self.columns)
-        return self.predictor.predict(Sample.from_arrays(codes, t, y), labels, self.replicates,
-                                      level)
+        return self.predictor.predict(
+            Sample.from_arrays(codes, t, y), labels, self.replicates, level
+        )

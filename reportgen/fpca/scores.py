@@ -30,7 +30,10 @@ from .likelihood import SubjectSums
 
 
 def conditional_scores(
-    starts: IntArray, resid: FloatArray, phi_obs: FloatArray, eigenvalues: FloatArray,
+    starts: IntArray,
+    resid: FloatArray,
+    phi_obs: FloatArray,
+    eigenvalues: FloatArray,
     sigma2: float,
 ) -> tuple[FloatArray, FloatArray]:
     """BLUP scores and their prediction-error covariance for every subject.
@@ -102,12 +105,21 @@ class SampleTerms:
     def reorder(self, order: IntArray) -> SampleTerms:
         """The same terms with the components taken in ``order``."""
         s = self.sums
-        return SampleTerms(SubjectSums(s.gram[:, order][:, :, order], s.cross[:, order], s.rr,
-                                       s.n_obs), self.phi[:, order], self.resid, self.owner)
+        return SampleTerms(
+            SubjectSums(s.gram[:, order][:, :, order], s.cross[:, order], s.rr, s.n_obs),
+            self.phi[:, order],
+            self.resid,
+            self.owner,
+        )
 
 
-def sample_terms(sample: Sample, subjects: IntArray, resid: FloatArray, grid: FloatArray,
-                 eigenfunctions: FloatArray) -> SampleTerms:
+def sample_terms(
+    sample: Sample,
+    subjects: IntArray,
+    resid: FloatArray,
+    grid: FloatArray,
+    eigenfunctions: FloatArray,
+) -> SampleTerms:
     """Per-subject sums Phi'Phi, Phi'r, r'r and n of ``subjects``, and the per-reading terms."""
     idx, first, n_i = sample.reading_index(subjects)
     owner = np.repeat(np.arange(subjects.size), n_i)

@@ -16,7 +16,10 @@ from .scores import SampleTerms, loo_errors
 
 
 def select_components(
-    terms: SampleTerms, lik: LikelihoodFit, fve: FloatArray, span: float,
+    terms: SampleTerms,
+    lik: LikelihoodFit,
+    fve: FloatArray,
+    span: float,
     options: FPCAOptions,
 ) -> ComponentSelection:
     """Every criterion for K = 1 .. K', each K with its own likelihood maximum.
@@ -36,8 +39,7 @@ def select_components(
     loglik = np.empty(k_max)
     for k in range(1, k_max + 1):
         left_out = float(np.sum(lik.eigenvalues[k:])) / span  # average of sum phi^2
-        fit_k = maximise(terms.sums.leading(k), lik.eigenvalues[:k],
-                         lik.error_variance + left_out)
+        fit_k = maximise(terms.sums.leading(k), lik.eigenvalues[:k], lik.error_variance + left_out)
         params.append((fit_k.eigenvalues, fit_k.error_variance))
         loglik[k - 1] = fit_k.loglik
     loo = loo_errors(terms, params)
@@ -46,7 +48,13 @@ def select_components(
     aic = -2.0 * loglik + 2.0 * (ks + 1)
     bic = -2.0 * loglik + (ks + 1) * np.log(n_crit)
     chosen = choose(
-        options.component_rule, k_max, cum, aic, bic, loo, options.fve_threshold,
+        options.component_rule,
+        k_max,
+        cum,
+        aic,
+        bic,
+        loo,
+        options.fve_threshold,
         options.n_components,
     )
     return ComponentSelection(options.component_rule, chosen, ks, cum, aic, bic, loo, n_crit)
@@ -57,5 +65,13 @@ def fixed_selection(k_max: int, fve: FloatArray, options: FPCAOptions) -> Compon
     if options.component_rule != "fixed" or options.n_components is None:
         raise EstimationError("population_only fits need a fixed number of components")
     none = np.full(k_max, np.nan)
-    return ComponentSelection("fixed", options.n_components, np.arange(1, k_max + 1),
-                              np.cumsum(fve)[:k_max], none, none, none, 0)
+    return ComponentSelection(
+        "fixed",
+        options.n_components,
+        np.arange(1, k_max + 1),
+        np.cumsum(fve)[:k_max],
+        none,
+        none,
+        none,
+        0,
+    )

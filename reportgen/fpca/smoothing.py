@@ -156,8 +156,13 @@ def hat_diagonal_1d(
 
 
 def _moments_2d(
-    eval_x: FloatArray, centers: FloatArray, counts: FloatArray, sums: FloatArray,
-    h: float, kernel: Kernel, symmetric: bool = False,
+    eval_x: FloatArray,
+    centers: FloatArray,
+    counts: FloatArray,
+    sums: FloatArray,
+    h: float,
+    kernel: Kernel,
+    symmetric: bool = False,
 ) -> tuple[FloatArray, ...]:
     """Product-kernel moments S_pq and T_pq on the evaluation grid, each (..., n_eval, n_eval).
 
@@ -181,7 +186,11 @@ def _moments_2d(
 
 
 def _cofactors(
-    s00: FloatArray, s10: FloatArray, s01: FloatArray, s20: FloatArray, s11: FloatArray,
+    s00: FloatArray,
+    s10: FloatArray,
+    s01: FloatArray,
+    s20: FloatArray,
+    s11: FloatArray,
     s02: FloatArray,
 ) -> tuple[FloatArray, FloatArray, FloatArray, FloatArray]:
     """First-row cofactors and determinant of the symmetric 3x3 local design matrix."""
@@ -216,7 +225,10 @@ def local_linear_binned_2d(
 
 
 def hat_diagonal_2d(
-    centers: FloatArray, counts: FloatArray, h: float, kernel: Kernel = epanechnikov,
+    centers: FloatArray,
+    counts: FloatArray,
+    h: float,
+    kernel: Kernel = epanechnikov,
     symmetric: bool = False,
 ) -> FloatArray:
     """2-D analogue of :func:`hat_diagonal_1d`: ``K(0)^2 [M^-1]_00`` at each bin."""
@@ -231,7 +243,10 @@ def hat_diagonal_2d(
 
 
 def design_conditioning_2d(
-    eval_x: FloatArray, centers: FloatArray, counts: FloatArray, h: float,
+    eval_x: FloatArray,
+    centers: FloatArray,
+    counts: FloatArray,
+    h: float,
     kernel: Kernel = epanechnikov,
 ) -> FloatArray:
     """How far from singular the 2-D local linear design is at each diagonal point (x, x).
@@ -242,8 +257,7 @@ def design_conditioning_2d(
     few, lopsided pairs and its estimate is unstable.
     """
     zeros = np.zeros_like(counts)
-    s00, s10, s01, s20, s11, s02, *_ = _moments_2d(eval_x, centers, counts, zeros, h, kernel,
-                                                    True)
+    s00, s10, s01, s20, s11, s02, *_ = _moments_2d(eval_x, centers, counts, zeros, h, kernel, True)
     *_, det = _cofactors(s00, s10, s01, s20, s11, s02)
     with np.errstate(divide="ignore", invalid="ignore"):
         ratio = np.diagonal(det / (s00 * s20 * s02))
@@ -251,7 +265,10 @@ def design_conditioning_2d(
 
 
 def equivalent_kernel_1d(
-    eval_x: FloatArray, centers: FloatArray, counts: FloatArray, h: float,
+    eval_x: FloatArray,
+    centers: FloatArray,
+    counts: FloatArray,
+    h: float,
     kernel: Kernel = epanechnikov,
 ) -> FloatArray:
     """Weights ``l(x, g)`` with ``estimate(x) = sum_g l(x, g) sums_g``, shape (n_eval, n_bins).
@@ -268,8 +285,9 @@ def equivalent_kernel_1d(
     return np.where(ok[:, None], weights, np.nan)
 
 
-def _poly_mul(f: dict[tuple[int, int], float], g: dict[tuple[int, int], float]
-              ) -> dict[tuple[int, int], float]:
+def _poly_mul(
+    f: dict[tuple[int, int], float], g: dict[tuple[int, int], float]
+) -> dict[tuple[int, int], float]:
     out: dict[tuple[int, int], float] = {}
     for (p1, q1), c1 in f.items():
         for (p2, q2), c2 in g.items():
@@ -289,7 +307,11 @@ _ROTATED_BASIS: tuple[dict[tuple[int, int], float], ...] = (
 
 
 def local_quadratic_diagonal_2d(
-    eval_x: FloatArray, centers: FloatArray, counts: FloatArray, sums: FloatArray, h: float,
+    eval_x: FloatArray,
+    centers: FloatArray,
+    counts: FloatArray,
+    sums: FloatArray,
+    h: float,
     kernel: Kernel = epanechnikov,
 ) -> FloatArray:
     """Surface value on the diagonal, G(x, x), from a rotated local fit to binned data.
@@ -313,8 +335,10 @@ def local_quadratic_diagonal_2d(
         return sum(c * np.sum(left[p] * powers[q], axis=1) for (p, q), c in poly.items())
 
     basis = _ROTATED_BASIS
-    m = np.stack([np.stack([moment(_poly_mul(f, g), left_c) for g in basis], axis=-1)
-                  for f in basis], axis=-2)
+    m = np.stack(
+        [np.stack([moment(_poly_mul(f, g), left_c) for g in basis], axis=-1) for f in basis],
+        axis=-2,
+    )
     rhs = np.stack([moment(f, left_s) for f in basis], axis=-1)
     scale = np.sqrt(np.abs(np.einsum("eii->ei", m)))
     scale[scale == 0] = 1.0

@@ -57,30 +57,39 @@ def column_check(table: Table, d: DataSection, shown: str) -> Check:
         have = ", ".join(map(str, frame.columns))
         hint = ""
         if len(frame.columns) == 1 and table.format == "csv":
-            hint = (" (the file has a single column: is it separated by something other than "
-                    "commas, semicolons, tabs or vertical bars?)")
+            hint = (
+                " (the file has a single column: is it separated by something other than "
+                "commas, semicolons, tabs or vertical bars?)"
+            )
         cols = ", ".join(repr(c) for _, c in missing)
         names = ", ".join(f for f, _ in missing)
-        raise DataError(f"column(s) {cols} not found in {shown!r} (named by {names}){hint}; "
-                        f"the file has {len(frame.columns)} column(s): {have}")
+        raise DataError(
+            f"column(s) {cols} not found in {shown!r} (named by {names}){hint}; "
+            f"the file has {len(frame.columns)} column(s): {have}"
+        )
     found = [d.subject, d.time, d.value] + ([d.group] if d.group else [])
     parts = []
     for c in found:
         label = table.labels.get(c)
         fmt = table.formats.get(c)
-        extra = "; ".join(x for x in (f"label {label!r}" if label else "",
-                                      f"format {fmt}" if fmt else "") if x)
+        extra = "; ".join(
+            x for x in (f"label {label!r}" if label else "", f"format {fmt}" if fmt else "") if x
+        )
         parts.append(f"{c} ({extra})" if extra else c)
-    sep = (f"; fields separated by {table.describe_delimiter()}"
-           if table.format == "csv" and table.delimiter != "," else "")
+    sep = (
+        f"; fields separated by {table.describe_delimiter()}"
+        if table.format == "csv" and table.delimiter != ","
+        else ""
+    )
     return Check("columns present", "pass", f"{', '.join(parts)} found ({table.format}{sep})")
 
 
 def column_labels(table: Table, d: DataSection) -> dict[str, str]:
     """The labels the file stores for the time and value columns."""
     named = {"time": d.time, "value": d.value}
-    return {role: table.labels[column] for role, column in named.items()
-            if table.labels.get(column)}
+    return {
+        role: table.labels[column] for role, column in named.items() if table.labels.get(column)
+    }
 
 
 @dataclass(frozen=True)
@@ -111,11 +120,13 @@ def file_checks(table: Table, spec: Spec) -> FileChecks:
     return FileChecks(tuple(found), long)
 
 
-_STEPS_THAT_STOP = {"row selection", "columns typed", "log transform", "missing values",
-                    "groups"}
+_STEPS_THAT_STOP = {"row selection", "columns typed", "log transform", "missing values", "groups"}
 _MERGE: dict[str, Callable[[list[Tally], Spec], Check | None]] = {
-    "row selection": selection_check, "columns typed": typed_check, "log transform": log_check,
-    "missing values": missing_check, "groups": groups_check,
+    "row selection": selection_check,
+    "columns typed": typed_check,
+    "log transform": log_check,
+    "missing values": missing_check,
+    "groups": groups_check,
     "duplicate readings": duplicates_check,
 }
 
@@ -123,9 +134,16 @@ _MERGE: dict[str, Callable[[list[Tally], Spec], Check | None]] = {
 def merged_steps(spec: Spec, tallies: list[tuple[Tally, ...]]) -> tuple[list[Check], bool]:
     """The files' tallies (one tuple per file, in manifest order) put together step by step,
     and whether a failed step stopped the later ones."""
-    steps = ["row selection", "columns typed", "log transform", "missing values", "groups",
-             "duplicate readings", "values in declared range",
-             *(name for name, _ in data_domains(spec))]
+    steps = [
+        "row selection",
+        "columns typed",
+        "log transform",
+        "missing values",
+        "groups",
+        "duplicate readings",
+        "values in declared range",
+        *(name for name, _ in data_domains(spec)),
+    ]
     checks = []
     for step in steps:
         these = [t for file in tallies for t in file if t.step == step]

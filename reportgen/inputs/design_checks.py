@@ -32,8 +32,14 @@ class DesignSums:
     fit: DesignCounts | None
 
 
-def design_sums(subject: np.ndarray, t: np.ndarray, observed: tuple[float, float],
-                domain: tuple[float, float], spec: Spec, fit: bool) -> DesignSums:
+def design_sums(
+    subject: np.ndarray,
+    t: np.ndarray,
+    observed: tuple[float, float],
+    domain: tuple[float, float],
+    spec: Spec,
+    fit: bool,
+) -> DesignSums:
     """The counts of these readings (``subject``: codes 0 .. m - 1)."""
     from ..fpca.feasibility import count_design
 
@@ -51,14 +57,20 @@ def design_sums(subject: np.ndarray, t: np.ndarray, observed: tuple[float, float
 def add_design_sums(a: DesignSums, b: DesignSums) -> DesignSums:
     from ..fpca.feasibility import add_design
 
-    return DesignSums(a.cells + b.cells, add_design(a.fit, b.fit)
-                      if a.fit is not None and b.fit is not None else None)
+    return DesignSums(
+        a.cells + b.cells,
+        add_design(a.fit, b.fit) if a.fit is not None and b.fit is not None else None,
+    )
 
 
-def design_checks(spec: Spec, n_obs: np.ndarray, t_range: tuple[float, float],
-                  constant: bool, sums: Callable[[tuple[float, float], tuple[float, float],
-                                                  bool], DesignSums],
-                  failed: bool) -> list[Check]:
+def design_checks(
+    spec: Spec,
+    n_obs: np.ndarray,
+    t_range: tuple[float, float],
+    constant: bool,
+    sums: Callable[[tuple[float, float], tuple[float, float], bool], DesignSums],
+    failed: bool,
+) -> list[Check]:
     """The checks on the design of all the readings: ``n_obs`` (readings per subject),
     their time range, whether every value is the same, and ``sums`` (observed range,
     domain, with the feasibility counts) that counts them; ``failed``: an earlier check
@@ -68,19 +80,30 @@ def design_checks(spec: Spec, n_obs: np.ndarray, t_range: tuple[float, float],
     c, out = spec.checks, []
     n_subj = int(n_obs.size)
     if n_subj < c.min_subjects:
-        out.append(Check("enough subjects", "fail",
-                         f"{n_subj} subjects; the spec asks for at least {c.min_subjects}"))
+        out.append(
+            Check(
+                "enough subjects",
+                "fail",
+                f"{n_subj} subjects; the spec asks for at least {c.min_subjects}",
+            )
+        )
     else:
-        out.append(Check("enough subjects", "pass",
-                         f"{n_subj} subjects, {int(n_obs.sum())} readings"))
+        out.append(
+            Check("enough subjects", "pass", f"{n_subj} subjects, {int(n_obs.sum())} readings")
+        )
     single = int((n_obs == 1).sum())
     multi = n_subj - single
     status: Status = "pass" if single <= n_subj / 2 else "warn"
     if multi < 2:
         status = "fail"
-    out.append(Check("subjects with one reading", status,
-                     f"{single} of {n_subj} subjects have a single reading (allowed; they "
-                     f"inform the mean, and get scores); {multi} have two or more"))
+    out.append(
+        Check(
+            "subjects with one reading",
+            status,
+            f"{single} of {n_subj} subjects have a single reading (allowed; they "
+            f"inform the mean, and get scores); {multi} have two or more",
+        )
+    )
     if multi < 2:
         return out
     failed = failed or any(x.status == "fail" for x in out)
@@ -88,13 +111,25 @@ def design_checks(spec: Spec, n_obs: np.ndarray, t_range: tuple[float, float],
     found = sums(t_range, domain, not failed)
     cover = float((found.cells > 0.5).mean()) if t_range[1] > t_range[0] else 0.0
     ok = cover >= c.min_pair_coverage
-    out.append(Check("time-pair coverage", "pass" if ok else "warn",
-                     f"{cover:.0%} of the {CELLS} x {CELLS} cells of the time-pair square "
-                     "hold pairs" + ("" if ok else "; the covariance elsewhere is extrapolated")))
+    out.append(
+        Check(
+            "time-pair coverage",
+            "pass" if ok else "warn",
+            f"{cover:.0%} of the {CELLS} x {CELLS} cells of the time-pair square "
+            "hold pairs" + ("" if ok else "; the covariance elsewhere is extrapolated"),
+        )
+    )
     if found.fit is not None:
         problems = problems_from(found.fit, n_obs, domain, constant, spec.options)
-        out.append(Check("fit feasible", "fail", "; ".join(problems)) if problems else
-                   Check("fit feasible", "pass", "the mean, diagonal and covariance smoothers "
-                         "are defined on the whole grid at the largest bandwidth the fit "
-                         "may use"))
+        out.append(
+            Check("fit feasible", "fail", "; ".join(problems))
+            if problems
+            else Check(
+                "fit feasible",
+                "pass",
+                "the mean, diagonal and covariance smoothers "
+                "are defined on the whole grid at the largest bandwidth the fit "
+                "may use",
+            )
+        )
     return out

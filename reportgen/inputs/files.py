@@ -92,14 +92,18 @@ def list_files(path: Path, named: str, what: str = "data.file") -> list[tuple[st
         base = _base(path)
         found = [Path(p) for p in glob.glob(str(path), recursive=True) if Path(p).is_file()]
     if not found and path.is_dir():
-        raise DataError(f"{what} {named!r} is a folder with no Parquet files in it (looked in "
-                        f"{str(base)!r}); give a data file, or a folder of Parquet files")
+        raise DataError(
+            f"{what} {named!r} is a folder with no Parquet files in it (looked in "
+            f"{str(base)!r}); give a data file, or a folder of Parquet files"
+        )
     if not found:
         raise DataError(f"{what} {named!r} names no Parquet files (looked in {str(base)!r})")
     odd = [p for p in found if p.suffix.lower() != ".parquet"]
     if odd:
-        raise DataError(f"{what} {named!r}: every file of a folder or pattern must be Parquet; "
-                        f"{odd[0].name!r} is not")
+        raise DataError(
+            f"{what} {named!r}: every file of a folder or pattern must be Parquet; "
+            f"{odd[0].name!r} is not"
+        )
     listed = [(p.relative_to(base).as_posix(), p) for p in found]
     return sorted(listed, key=lambda item: item[0].encode("utf-8"))
 

@@ -81,8 +81,13 @@ class CleanedReadings:
             some = np.empty(len(ids), dtype=np.intp)
             some[codes] = np.arange(len(codes))
             groups = np.asarray(long.group.to_numpy()[some], dtype=object)
-        return cls(codes.astype(np.intp), long.time.to_numpy(dtype=np.float64, copy=True),
-                   long.value.to_numpy(dtype=np.float64, copy=True), pd.Index(ids), groups)
+        return cls(
+            codes.astype(np.intp),
+            long.time.to_numpy(dtype=np.float64, copy=True),
+            long.value.to_numpy(dtype=np.float64, copy=True),
+            pd.Index(ids),
+            groups,
+        )
 
 
 @dataclass(frozen=True)
@@ -137,9 +142,13 @@ class PlacedReadings:
         readings that are few (new subjects to predict), gathered from the parts."""
         found = self.executor.map(_part_readings, self.parts)
         codes = np.concatenate([f[0] for f in found]).astype(np.intp)
-        out = pd.DataFrame({"subject": np.asarray(self.ids)[codes],
-                            "time": np.concatenate([f[1] for f in found]),
-                            "value": np.concatenate([f[2] for f in found])})
+        out = pd.DataFrame(
+            {
+                "subject": np.asarray(self.ids)[codes],
+                "time": np.concatenate([f[1] for f in found]),
+                "value": np.concatenate([f[2] for f in found]),
+            }
+        )
         if self.groups is not None:
             out["group"] = self.groups[codes]
         return out
@@ -186,8 +195,9 @@ def read_and_check(source: Source, raw: bytes | None, spec: Spec) -> FileRead:
     try:
         return _read_and_check(source, raw, spec)
     except DataError as e:
-        return FileRead(DataFile(source.rel, 0, ""), "", Check("", "pass", ""), {}, 0, (),
-                        None, str(e))
+        return FileRead(
+            DataFile(source.rel, 0, ""), "", Check("", "pass", ""), {}, 0, (), None, str(e)
+        )
 
 
 def _read_and_check(source: Source, raw: bytes | None, spec: Spec) -> FileRead:
@@ -195,16 +205,23 @@ def _read_and_check(source: Source, raw: bytes | None, spec: Spec) -> FileRead:
         raw = _read_listed(source)
     entry = DataFile(source.rel, len(raw), sha256_bytes(raw))
     text = tuple(x for x in (spec.data.subject, spec.data.group) if x)
-    table = replace(parse_table(raw, source.format, source.named, text_columns=text),
-                    file=source.rel)
+    table = replace(
+        parse_table(raw, source.format, source.named, text_columns=text), file=source.rel
+    )
     del raw
     if source.alone and len(table.frame) == 0:
         raise DataError(f"data.file {source.named!r} has a header but no rows")
     check = column_check(table, spec.data, source.named)  # first: it names a missing column
     found: FileChecks = file_checks(table, spec)
-    return FileRead(entry, ", ".join(map(str, table.frame.columns)), check,
-                    column_labels(table, spec.data), len(table.frame), found.tallies,
-                    None if found.long is None else CleanedReadings.of(found.long))
+    return FileRead(
+        entry,
+        ", ".join(map(str, table.frame.columns)),
+        check,
+        column_labels(table, spec.data),
+        len(table.frame),
+        found.tallies,
+        None if found.long is None else CleanedReadings.of(found.long),
+    )
 
 
 def _read_listed(source: Source) -> bytes:
@@ -215,11 +232,13 @@ def _read_listed(source: Source) -> bytes:
         if Path(source.full).exists():
             raise
         # it was there when the files were listed
-        raise DataError(f"data.file {source.named!r} is not at {source.full!r} on "
-                        f"{socket.gethostname()}, where its task ran, although it was listed "
-                        "when the run started: it was removed since, or (on a cluster) this "
-                        "worker does not see the data at the path that the reportgen process "
-                        "sees") from None
+        raise DataError(
+            f"data.file {source.named!r} is not at {source.full!r} on "
+            f"{socket.gethostname()}, where its task ran, although it was listed "
+            "when the run started: it was removed since, or (on a cluster) this "
+            "worker does not see the data at the path that the reportgen process "
+            "sees"
+        ) from None
 
 
 def file_facts(read: FileRead) -> FileFacts:
@@ -232,12 +251,29 @@ def file_facts(read: FileRead) -> FileFacts:
         counts = np.bincount(c.codes, minlength=len(ids))
         t_range = (float(c.t.min()), float(c.t.max()))
         y_range = (float(c.y.min()), float(c.y.max()))
-    return FileFacts(read.entry, read.columns, read.check, read.labels, read.rows_read,
-                     read.tallies, ids, counts, groups, t_range, y_range, read.problem)
+    return FileFacts(
+        read.entry,
+        read.columns,
+        read.check,
+        read.labels,
+        read.rows_read,
+        read.tallies,
+        ids,
+        counts,
+        groups,
+        t_range,
+        y_range,
+        read.problem,
+    )
 
 
-def file_design_sums(read: FileRead, observed: tuple[float, float],
-                     domain: tuple[float, float], spec: Spec, fit: bool) -> DesignSums:
+def file_design_sums(
+    read: FileRead,
+    observed: tuple[float, float],
+    domain: tuple[float, float],
+    spec: Spec,
+    fit: bool,
+) -> DesignSums:
     """Pass: the design checks' counts of a file's cleaned readings."""
     c = read.cleaned
     assert c is not None  # only files with readings are asked
@@ -259,8 +295,7 @@ def as_part(read: FileRead, subjects: np.ndarray) -> Any:
 # --- the orchestration ----------------------------------------------------------------------
 
 
-def load_dataset(spec: Spec, executor: Executor | None = None, for_fit: bool = False
-                 ) -> Dataset:
+def load_dataset(spec: Spec, executor: Executor | None = None, for_fit: bool = False) -> Dataset:
     """Read the data file (or files) and run every check; with ``for_fit`` and no failed
     check, the cleaned readings are placed on ``executor`` as the fit's parts
     (``Dataset.readings``). Raises DataError for a file that cannot be used; a failed check
@@ -269,8 +304,10 @@ def load_dataset(spec: Spec, executor: Executor | None = None, for_fit: bool = F
     d = spec.data
     if is_many(d.file, spec.data_path):
         if d.format not in ("auto", "parquet"):
-            raise DataError(f"data.file {d.file!r} names a folder or pattern, which is read "
-                            f"as Parquet files; data.format says {d.format}")
+            raise DataError(
+                f"data.file {d.file!r} names a folder or pattern, which is read "
+                f"as Parquet files; data.format says {d.format}"
+            )
         listed = list_files(spec.data_path, d.file)
         sources = [Source(str(full), rel, f"{d.file}: {rel}", "parquet") for rel, full in listed]
         reads = run_on.keep(read_and_check, sources, [(None,)] * len(sources), (spec,))
@@ -281,9 +318,15 @@ def load_dataset(spec: Spec, executor: Executor | None = None, for_fit: bool = F
     return dataset
 
 
-def load_file(spec: Spec, path: Path, shown: str, executor: Executor | None = None,
-              for_fit: bool = False, design: bool = True, raw: bytes | None = None
-              ) -> Dataset:
+def load_file(
+    spec: Spec,
+    path: Path,
+    shown: str,
+    executor: Executor | None = None,
+    for_fit: bool = False,
+    design: bool = True,
+    raw: bytes | None = None,
+) -> Dataset:
     """One data file at ``path`` (``shown``: how messages name it; ``raw``: its bytes, when
     read already), read here and checked as ``spec`` says; ``design=False`` leaves out the
     checks on the design (subject counts, pairs): for readings of new subjects scored with
@@ -297,8 +340,16 @@ def load_file(spec: Spec, path: Path, shown: str, executor: Executor | None = No
     return _dataset(spec, reads, here, executor or here, for_fit, design, path, shown)
 
 
-def _dataset(spec: Spec, reads: list[Any], read_on: Executor, fit_on: Executor,
-             for_fit: bool, design: bool, path: Path, shown: str) -> Dataset:
+def _dataset(
+    spec: Spec,
+    reads: list[Any],
+    read_on: Executor,
+    fit_on: Executor,
+    for_fit: bool,
+    design: bool,
+    path: Path,
+    shown: str,
+) -> Dataset:
     """The files' findings put together in manifest order, the design checks, and with
     ``for_fit`` (and no failed check) the readings placed on ``fit_on`` as parts.
     ``path`` and ``shown``: where data.file is and how messages name it."""
@@ -309,9 +360,11 @@ def _dataset(spec: Spec, reads: list[Any], read_on: Executor, fit_on: Executor,
     first = facts[0]
     for f in facts[1:]:
         if f.columns != first.columns:
-            raise DataError(f"data.file {shown!r}: {f.entry.path!r} has the columns "
-                            f"{f.columns}; the first file, {first.entry.path!r}, has "
-                            f"{first.columns}")
+            raise DataError(
+                f"data.file {shown!r}: {f.entry.path!r} has the columns "
+                f"{f.columns}; the first file, {first.entry.path!r}, has "
+                f"{first.columns}"
+            )
     rows_read = sum(f.rows_read for f in facts)
     if rows_read == 0:
         raise DataError(f"data.file {shown!r} has a header but no rows")
@@ -325,16 +378,40 @@ def _dataset(spec: Spec, reads: list[Any], read_on: Executor, fit_on: Executor,
     elif not stopped and for_fit and not any(c.status == "fail" for c in checks):
         readings = _placed(read_on, fit_on, reads, facts, *_union(facts, many)[1:])
     if many:
-        return Dataset(tuple(checks), path, shown, sum(f.entry.n_bytes for f in facts),
-                       digest([f.entry for f in facts]), rows_read, first.labels,
-                       tuple(f.entry for f in facts), readings)
-    return Dataset(tuple(checks), path, shown, first.entry.n_bytes, first.entry.sha256,
-                   rows_read, first.labels, (), readings)
+        return Dataset(
+            tuple(checks),
+            path,
+            shown,
+            sum(f.entry.n_bytes for f in facts),
+            digest([f.entry for f in facts]),
+            rows_read,
+            first.labels,
+            tuple(f.entry for f in facts),
+            readings,
+        )
+    return Dataset(
+        tuple(checks),
+        path,
+        shown,
+        first.entry.n_bytes,
+        first.entry.sha256,
+        rows_read,
+        first.labels,
+        (),
+        readings,
+    )
 
 
-def _design(spec: Spec, read_on: Executor, fit_on: Executor, reads: list[Any],
-            facts: list[FileFacts], checks: list[Check], for_fit: bool, many: bool
-            ) -> PlacedReadings | None:
+def _design(
+    spec: Spec,
+    read_on: Executor,
+    fit_on: Executor,
+    reads: list[Any],
+    facts: list[FileFacts],
+    checks: list[Check],
+    for_fit: bool,
+    many: bool,
+) -> PlacedReadings | None:
     """After the row-level checks: with many files, whether every subject's kept readings
     lie in one file (put first in ``checks``); the design checks over all files
     (appended); and, with ``for_fit`` and no check failed, the readings placed as parts."""
@@ -347,26 +424,35 @@ def _design(spec: Spec, read_on: Executor, fit_on: Executor, reads: list[Any],
     n_obs = np.zeros(len(ids), dtype=np.intp)
     for i, c in zip(kept, codes, strict=True):
         n_obs[c] = facts[i].counts
-    t_range = (min((facts[i].t_range[0] for i in kept), default=np.nan),
-               max((facts[i].t_range[1] for i in kept), default=np.nan))
+    t_range = (
+        min((facts[i].t_range[0] for i in kept), default=np.nan),
+        max((facts[i].t_range[1] for i in kept), default=np.nan),
+    )
     constant = bool(kept) and min(facts[i].y_range[0] for i in kept) == max(
-        facts[i].y_range[1] for i in kept)
+        facts[i].y_range[1] for i in kept
+    )
     with_readings = [reads[i] for i in kept]
 
-    def sums(observed: tuple[float, float], domain: tuple[float, float], fit: bool
-             ) -> DesignSums:
+    def sums(observed: tuple[float, float], domain: tuple[float, float], fit: bool) -> DesignSums:
         found = read_on.map(file_design_sums, with_readings, shared=(observed, domain, spec, fit))
         return tree_sum(found, add_design_sums)
 
-    checks += design_checks(spec, n_obs, t_range, constant, sums,
-                            any(x.status == "fail" for x in checks))
+    checks += design_checks(
+        spec, n_obs, t_range, constant, sums, any(x.status == "fail" for x in checks)
+    )
     if not for_fit or any(x.status == "fail" for x in checks):
         return None
     return _placed(read_on, fit_on, reads, facts, codes, ids)
 
 
-def _placed(read_on: Executor, fit_on: Executor, reads: list[Any], facts: list[FileFacts],
-            codes: list[np.ndarray], ids: pd.Index) -> PlacedReadings:
+def _placed(
+    read_on: Executor,
+    fit_on: Executor,
+    reads: list[Any],
+    facts: list[FileFacts],
+    codes: list[np.ndarray],
+    ids: pd.Index,
+) -> PlacedReadings:
     """The files' readings as the fit's parts: made where the files were read, and placed
     on ``fit_on`` when that is elsewhere (a single file read here, fitted on a cluster)."""
     kept = [i for i, f in enumerate(facts) if f.ids is not None]
@@ -421,11 +507,18 @@ def _union(facts: list[FileFacts], many: bool) -> tuple[Check, list[np.ndarray],
     which = np.repeat(np.arange(len(kept)), sizes)
     code = found[int(np.flatnonzero(split)[0])]  # the first met, in manifest order
     where = [kept[int(f)].entry.path for f in which[found == code]]
-    return Check("subjects whole in one file", "fail",
-                 f"{int((count > 1).sum())} subject(s) have kept readings in more than one of "
-                 f"the {n_files} files, e.g. subject {plain(ids[code])} in "
-                 f"{', '.join(where[:3])}; write the data partitioned by subject (all of a "
-                 "subject's readings in one file)"), [], ids
+    return (
+        Check(
+            "subjects whole in one file",
+            "fail",
+            f"{int((count > 1).sum())} subject(s) have kept readings in more than one of "
+            f"the {n_files} files, e.g. subject {plain(ids[code])} in "
+            f"{', '.join(where[:3])}; write the data partitioned by subject (all of a "
+            "subject's readings in one file)",
+        ),
+        [],
+        ids,
+    )
 
 
 def _sorted_union(indexes: list[pd.Index]) -> tuple[np.ndarray, pd.Index] | None:
@@ -447,8 +540,9 @@ def _sorted_union(indexes: list[pd.Index]) -> tuple[np.ndarray, pd.Index] | None
     except (pa.ArrowInvalid, pa.ArrowTypeError, pa.ArrowNotImplementedError, TypeError):
         return None
     kind = every.type
-    if every.null_count or not (pa.types.is_string(kind) or pa.types.is_large_string(kind)
-                                or pa.types.is_integer(kind)):
+    if every.null_count or not (
+        pa.types.is_string(kind) or pa.types.is_large_string(kind) or pa.types.is_integer(kind)
+    ):
         return None  # text and whole numbers only: no NaN, no two spellings of one value
     order = pc.sort_indices(every)
     ids = every.take(order)
@@ -461,12 +555,16 @@ def _sorted_union(indexes: list[pd.Index]) -> tuple[np.ndarray, pd.Index] | None
 
 
 def _whole(n_files: int) -> Check:
-    return Check("subjects whole in one file", "pass",
-                 f"{n_files} Parquet files; every subject's kept readings are in one of them")
+    return Check(
+        "subjects whole in one file",
+        "pass",
+        f"{n_files} Parquet files; every subject's kept readings are in one of them",
+    )
 
 
-def _groups(facts: list[FileFacts], kept: list[int], codes: list[np.ndarray], n: int
-            ) -> np.ndarray | None:
+def _groups(
+    facts: list[FileFacts], kept: list[int], codes: list[np.ndarray], n: int
+) -> np.ndarray | None:
     """Each subject's group, by code (None without groups)."""
     if not kept or facts[kept[0]].groups is None:
         return None

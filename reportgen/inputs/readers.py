@@ -21,8 +21,16 @@ import pandas as pd
 from ..errors import DataError
 
 SUFFIXES = {
-    ".csv": "csv", ".txt": "csv", ".tsv": "csv", ".parquet": "parquet", ".pq": "parquet",
-    ".xpt": "xpt", ".sas7bdat": "sas7bdat", ".dta": "dta", ".sav": "sav", ".zsav": "sav",
+    ".csv": "csv",
+    ".txt": "csv",
+    ".tsv": "csv",
+    ".parquet": "parquet",
+    ".pq": "parquet",
+    ".xpt": "xpt",
+    ".sas7bdat": "sas7bdat",
+    ".dta": "dta",
+    ".sav": "sav",
+    ".zsav": "sav",
 }
 FORMATS = ("csv", "parquet", "xpt", "sas7bdat", "dta", "sav")
 DELIMITERS = (",", ";", "\t", "|")
@@ -82,15 +90,19 @@ def sniff_delimiter(raw: bytes) -> str:
 def _statistical(raw: bytes, fmt: str, nrows: int | None) -> tuple[pd.DataFrame, Any]:
     import pyreadstat
 
-    reader: Any = {"xpt": pyreadstat.read_xport, "sas7bdat": pyreadstat.read_sas7bdat,
-              "dta": pyreadstat.read_dta, "sav": pyreadstat.read_sav}[fmt]
-    frame, meta = reader(io.BytesIO(raw), dates_as_pandas_datetime=True,
-                         row_limit=nrows or 0)
+    reader: Any = {
+        "xpt": pyreadstat.read_xport,
+        "sas7bdat": pyreadstat.read_sas7bdat,
+        "dta": pyreadstat.read_dta,
+        "sav": pyreadstat.read_sav,
+    }[fmt]
+    frame, meta = reader(io.BytesIO(raw), dates_as_pandas_datetime=True, row_limit=nrows or 0)
     return frame, meta
 
 
-def parse_table(raw: bytes, fmt: str, shown: str, text_columns: tuple[str, ...] = (),
-                nrows: int | None = None) -> Table:
+def parse_table(
+    raw: bytes, fmt: str, shown: str, text_columns: tuple[str, ...] = (), nrows: int | None = None
+) -> Table:
     """Parse ``raw`` as ``fmt``; ``text_columns`` of a CSV are read as text (subject ids).
 
     Raises :class:`DataError` naming the file for an empty or malformed file.
@@ -100,8 +112,13 @@ def parse_table(raw: bytes, fmt: str, shown: str, text_columns: tuple[str, ...] 
     try:
         if fmt == "csv":
             sep = sniff_delimiter(raw)
-            frame = pd.read_csv(io.BytesIO(raw), sep=sep, nrows=nrows,
-                                dtype=dict.fromkeys(text_columns, str), keep_default_na=True)
+            frame = pd.read_csv(
+                io.BytesIO(raw),
+                sep=sep,
+                nrows=nrows,
+                dtype=dict.fromkeys(text_columns, str),
+                keep_default_na=True,
+            )
             return Table(frame, fmt, delimiter=sep)
         if fmt == "parquet":
             frame = pd.read_parquet(io.BytesIO(raw))

@@ -86,8 +86,9 @@ class TimeOrigin:
 
     def describe(self) -> str:
         """The origin as the spec writes it (for messages)."""
-        return {"first": "first", "date": self.value, "column": f"{{column: {self.value}}}"
-                }[self.kind]
+        return {"first": "first", "date": self.value, "column": f"{{column: {self.value}}}"}[
+            self.kind
+        ]
 
 
 @dataclass(frozen=True)
@@ -210,11 +211,17 @@ class Spec:
         uu = f"({u})^2" if u and not u.isalnum() else (f"{u}^2" if u else "")
         root_t = f"sqrt({t})" if t else ""
         return {
-            "time": t, "value": u, "mean": u, "error variance": uu, "bandwidth": t,
+            "time": t,
+            "value": u,
+            "mean": u,
+            "error variance": uu,
+            "bandwidth": t,
             "eigenvalue": " x ".join(x for x in (uu, t) if x),
             "eigenfunction": f"1/{root_t}" if t else "",
             "score": " x ".join(x for x in (u, root_t) if x),
-            "covariance": uu, "residual": u, "standardized residual": "none (ratio)",
+            "covariance": uu,
+            "residual": u,
+            "standardized residual": "none (ratio)",
         }
 
     @property
@@ -241,8 +248,10 @@ def parse_spec_bytes(raw: bytes, where: str = "spec") -> dict[str, Any]:
         problem = getattr(e, "problem", None) or str(e).splitlines()[0]
         raise SpecError(f"{where} is not valid YAML{at}: {problem}") from e
     if not isinstance(content, dict):
-        raise SpecError(f"{where} must be a YAML mapping with report and data sections; "
-                        f"got {type(content).__name__}")
+        raise SpecError(
+            f"{where} must be a YAML mapping with report and data sections; "
+            f"got {type(content).__name__}"
+        )
     return content
 
 
@@ -299,17 +308,19 @@ def _time_origin(given: Any) -> TimeOrigin | None:
     try:
         datetime.fromisoformat(given)
     except ValueError:
-        raise SpecError(f"data.time_origin must be an ISO date such as 2024-01-31, first, or "
-                        f"{{column: NAME}}; got {given!r}.") from None
+        raise SpecError(
+            f"data.time_origin must be an ISO date such as 2024-01-31, first, or "
+            f"{{column: NAME}}; got {given!r}."
+        ) from None
     return TimeOrigin("date", str(given))
 
 
 def _condition(given: dict[str, Any]) -> RowCondition:
     kind: Literal["equals", "in", "between"] = next(
-        k for k in ("equals", "in", "between") if k in given)
+        k for k in ("equals", "in", "between") if k in given
+    )
     value = given[kind]
-    return RowCondition(str(given["column"]), kind,
-                        (value,) if kind == "equals" else tuple(value))
+    return RowCondition(str(given["column"]), kind, (value,) if kind == "equals" else tuple(value))
 
 
 def _pair(given: Any, where: str) -> tuple[float, float] | None:
@@ -337,21 +348,34 @@ def spec_from_bytes(raw: bytes, path: Path) -> Spec:
     if sections is not None:
         missing = [x for x in REQUIRED_SECTIONS if x not in sections]
         if missing:
-            raise SpecError(f"report.sections must keep {' and '.join(missing)}: the caveats "
-                            "(with the standing cautions) and the reproducibility record are "
-                            "in every report.")
-    report = ReportSection(**{**_known(ReportSection, given),
-                              "authors": tuple(given.get("authors", ())),
-                              "sections": None if sections is None else tuple(sections)})
+            raise SpecError(
+                f"report.sections must keep {' and '.join(missing)}: the caveats "
+                "(with the standing cautions) and the reproducibility record are "
+                "in every report."
+            )
+    report = ReportSection(
+        **{
+            **_known(ReportSection, given),
+            "authors": tuple(given.get("authors", ())),
+            "sections": None if sections is None else tuple(sections),
+        }
+    )
     given = content["data"]
-    data = DataSection(**{**_known(DataSection, given),
-                          "time_origin": _time_origin(given.get("time_origin")),
-                          "keep_rows": tuple(_condition(c) for c in given.get("keep_rows", ()))})
+    data = DataSection(
+        **{
+            **_known(DataSection, given),
+            "time_origin": _time_origin(given.get("time_origin")),
+            "keep_rows": tuple(_condition(c) for c in given.get("keep_rows", ())),
+        }
+    )
     given = content.get("checks", {})
-    checks = ChecksSection(**{**_known(ChecksSection, given),
-                              "value_range": _pair(given.get("value_range"),
-                                                   "checks.value_range"),
-                              "domain": _pair(given.get("domain"), "checks.domain")})
+    checks = ChecksSection(
+        **{
+            **_known(ChecksSection, given),
+            "value_range": _pair(given.get("value_range"), "checks.value_range"),
+            "domain": _pair(given.get("domain"), "checks.domain"),
+        }
+    )
     model = dict(content.get("model", {}))
     if "domain" not in model and checks.domain is not None:
         model["domain"] = list(checks.domain)
@@ -359,20 +383,32 @@ def spec_from_bytes(raw: bytes, path: Path) -> Spec:
     options = make_options(model, root="model")
     given = content.get("sensitivity", {})
     sensitivity = SensitivitySection(
-        tuple(float(f) for f in given.get("factors", DEFAULT_FACTORS)), "factors" in given,
-        float(given.get("similarity_threshold", 0.9)))
+        tuple(float(f) for f in given.get("factors", DEFAULT_FACTORS)),
+        "factors" in given,
+        float(given.get("similarity_threshold", 0.9)),
+    )
     given = content.get("subjects", {})
-    subjects = SubjectsSection(**{**_known(SubjectsSection, given),
-                                  "show": tuple(str(s) for s in given.get("show", ()))})
+    subjects = SubjectsSection(
+        **{**_known(SubjectsSection, given), "show": tuple(str(s) for s in given.get("show", ()))}
+    )
     if subjects.all_trajectories and options.band == "corrected":
-        raise SpecError("subjects.all_trajectories writes every subject's trajectory with the "
-                        "plug-in band; model.band is corrected, whose band needs each "
-                        "subject's readings in one place. Set model.band: plugin, or leave "
-                        "subjects.all_trajectories out (the shown subjects keep the corrected "
-                        "band).")
+        raise SpecError(
+            "subjects.all_trajectories writes every subject's trajectory with the "
+            "plug-in band; model.band is corrected, whose band needs each "
+            "subject's readings in one place. Set model.band: plugin, or leave "
+            "subjects.all_trajectories out (the shown subjects keep the corrected "
+            "band)."
+        )
     gates = GatesSection(**_known(GatesSection, content.get("gates", {})))
     return Spec(
-        path=path.resolve(), raw=raw, sha256=hashlib.sha256(raw).hexdigest(), report=report,
-        data=data, checks=checks, sensitivity=sensitivity, subjects=subjects, gates=gates,
+        path=path.resolve(),
+        raw=raw,
+        sha256=hashlib.sha256(raw).hexdigest(),
+        report=report,
+        data=data,
+        checks=checks,
+        sensitivity=sensitivity,
+        subjects=subjects,
+        gates=gates,
         options=options,
     )

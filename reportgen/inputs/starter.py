@@ -23,15 +23,24 @@ import pandas as pd
 
 from .readers import Table, is_date_column, looks_like_dates
 
-_ID = re.compile(r"(^|[^a-z])(id|ids|subj|subject|subjid|usubjid|patient|patid|pt|"
-                 r"participant|person|case|unit|device|pump|sensor|site_?id|animal|"
-                 r"rat|mouse|pig|chick|child|plant|tree|well|machine|serial)([^a-z]|$)", re.I)
-_TIME = re.compile(r"(^|[^a-z])(t|time|times|day|days|week|weeks|wk|month|months|year|years|"
-                   r"visit|avisitn|ady|date|dt|adt|age|hour|hours|hr|min|minute|minutes|"
-                   r"occasion|session|follow_?up|tte|elapsed)([^a-z]|$)", re.I)
-_VALUE = re.compile(r"(^|[^a-z])(value|val|aval|result|res|y|measure|measurement|response|"
-                    r"level|score|conc|concentration|reading|outcome|marker|weight|wt|"
-                    r"height|bp|count)([^a-z]|$)", re.I)
+_ID = re.compile(
+    r"(^|[^a-z])(id|ids|subj|subject|subjid|usubjid|patient|patid|pt|"
+    r"participant|person|case|unit|device|pump|sensor|site_?id|animal|"
+    r"rat|mouse|pig|chick|child|plant|tree|well|machine|serial)([^a-z]|$)",
+    re.I,
+)
+_TIME = re.compile(
+    r"(^|[^a-z])(t|time|times|day|days|week|weeks|wk|month|months|year|years|"
+    r"visit|avisitn|ady|date|dt|adt|age|hour|hours|hr|min|minute|minutes|"
+    r"occasion|session|follow_?up|tte|elapsed)([^a-z]|$)",
+    re.I,
+)
+_VALUE = re.compile(
+    r"(^|[^a-z])(value|val|aval|result|res|y|measure|measurement|response|"
+    r"level|score|conc|concentration|reading|outcome|marker|weight|wt|"
+    r"height|bp|count)([^a-z]|$)",
+    re.I,
+)
 
 
 @dataclass(frozen=True)
@@ -78,8 +87,7 @@ def _varies_within(frame: pd.DataFrame, subject: str, column: str) -> bool:
 def guess_columns(table: Table) -> Guess:
     """The guessed subject, time and value columns (raises ValueError when none fits)."""
     frame = table.frame
-    cols = [Column(str(c), _kind(frame[c]), table.labels.get(str(c), ""))
-            for c in frame.columns]
+    cols = [Column(str(c), _kind(frame[c]), table.labels.get(str(c), "")) for c in frame.columns]
     kinds = {c.name: c.kind for c in cols}
     names = [c.name for c in cols]
 
@@ -87,22 +95,28 @@ def guess_columns(table: Table) -> Guess:
         s = frame[n].dropna()
         return 1 < s.nunique() < len(s)
 
-    subject = (_first(names, lambda n: _ID.search(n) and kinds[n] != "date")
-               or _first(names, lambda n: kinds[n] in ("text", "whole number") and repeats(n))
-               or names[0])
+    subject = (
+        _first(names, lambda n: _ID.search(n) and kinds[n] != "date")
+        or _first(names, lambda n: kinds[n] in ("text", "whole number") and repeats(n))
+        or names[0]
+    )
     rest = [n for n in names if n != subject]
     numeric = ("number", "whole number")
-    time = (_first(rest, lambda n: _TIME.search(n) and kinds[n] in numeric)
-            or _first(rest, lambda n: kinds[n] == "date")
-            or _first(rest, lambda n: kinds[n] in numeric))
+    time = (
+        _first(rest, lambda n: _TIME.search(n) and kinds[n] in numeric)
+        or _first(rest, lambda n: kinds[n] == "date")
+        or _first(rest, lambda n: kinds[n] in numeric)
+    )
     if time is None:
         raise ValueError("no column holds numbers or dates that could be the time")
     rest = [n for n in rest if n != time]
     varies = {n: _varies_within(frame, subject, n) for n in rest if kinds[n] in numeric}
-    value = (_first(rest, lambda n: _VALUE.search(n) and varies.get(n))
-             or _first(rest, lambda n: kinds[n] == "number" and varies.get(n))
-             or _first(rest, lambda n: varies.get(n))
-             or _first(rest, lambda n: kinds[n] in numeric))
+    value = (
+        _first(rest, lambda n: _VALUE.search(n) and varies.get(n))
+        or _first(rest, lambda n: kinds[n] == "number" and varies.get(n))
+        or _first(rest, lambda n: varies.get(n))
+        or _first(rest, lambda n: kinds[n] in numeric)
+    )
     if value is None:
         raise ValueError("no column besides the time holds numbers that could be the value")
     return Guess(subject, time, value, kinds[time] == "date", tuple(cols))

@@ -5,11 +5,8 @@ Dense data are drawn as densities (binned images), never one mark per reading.
 
 from __future__ import annotations
 
-import io
-import re
 from collections.abc import Callable, Sequence
 from typing import Any, cast
-from xml.etree import ElementTree
 
 import matplotlib
 import matplotlib.ticker
@@ -22,73 +19,31 @@ from scipy.special import ndtri
 
 from ..analysis.analyse import AnalysisResult
 from ..analysis.views import density
+from .svg import figure_svg
 
 PALETTE = ("#1f5f8b", "#c0632b", "#3f8f4f", "#8a3f8f", "#7a7a2a", "#2a7a7a")
 PLOT_RC = {
-    "font.size": 9, "axes.titlesize": 10, "axes.labelsize": 9, "axes.grid": True,
-    "grid.color": "#dde2ea", "grid.linewidth": 0.6, "axes.edgecolor": "#5b6578",
-    "axes.prop_cycle": cycler(color=PALETTE), "svg.hashsalt": "reportgen",
-    "svg.fonttype": "none", "font.family": "DejaVu Sans", "figure.dpi": 100,
+    "font.size": 9,
+    "axes.titlesize": 10,
+    "axes.labelsize": 9,
+    "axes.grid": True,
+    "grid.color": "#dde2ea",
+    "grid.linewidth": 0.6,
+    "axes.edgecolor": "#5b6578",
+    "axes.prop_cycle": cycler(color=PALETTE),
+    "svg.hashsalt": "reportgen",
+    "svg.fonttype": "none",
+    "font.family": "DejaVu Sans",
+    "figure.dpi": 100,
     "lines.linewidth": 1.6,
 }
 MAX_POINTS = 4000  # above this, scatter plots become densities
 MAX_MARKS = 200  # above this many, marked points (flagged subjects) are drawn as an image
 
 
-def inline_svg(text: str, prefix: str) -> str:
-    """Make matplotlib's SVG fit for inlining in HTML: no prolog, comments, RDF metadata or
-    namespace URIs (inline SVG needs none), plain ``href``, and ids prefixed so that several
-    figures in one page never share an id."""
-    text = text[text.index("<svg"):]
-    text = re.sub(r"<!--.*?-->", "", text, flags=re.S)
-    text = re.sub(r"\s*<metadata>.*?</metadata>", "", text, flags=re.S)
-    text = re.sub(r'\s+xmlns(:\w+)?="[^"]*"', "", text)
-    text = text.replace("xlink:href=", "href=")
-    text = re.sub(r'\bid="', f'id="{prefix}-', text)
-    text = text.replace("url(#", f"url(#{prefix}-").replace('href="#', f'href="#{prefix}-')
-    return _flatten(text)
-
-
-_KEEPS_TEXT = {"text", "tspan", "style", "title"}
-
-
-def _flatten(text: str) -> str:
-    """Splice out the groups that carry nothing but an unreferenced id (matplotlib wraps
-    every artist in one), and drop whitespace between elements. The drawing is unchanged;
-    the HTML and PDF renderers have far fewer elements to style."""
-    referenced = set(re.findall(r'(?:url\(#|href="#)([^)"]+)', text))
-    root = ElementTree.fromstring(text)
-
-    def walk(node: ElementTree.Element) -> None:
-        kept: list[ElementTree.Element] = []
-        for child in node:
-            walk(child)
-            if (child.tag == "g" and set(child.attrib) <= {"id"}
-                    and child.get("id") not in referenced):
-                kept.extend(child)
-            else:
-                kept.append(child)
-        node[:] = kept
-        if node.tag not in _KEEPS_TEXT and node.text is not None and not node.text.strip():
-            node.text = None
-        for child in node:
-            if child.tail is not None and not child.tail.strip():
-                child.tail = None
-
-    walk(root)
-    return ElementTree.tostring(root, encoding="unicode")
-
-
-def _svg(fig: plt.Figure, name: str) -> str:
-    buf = io.StringIO()
-    fig.tight_layout()
-    fig.savefig(buf, format="svg", metadata={"Date": None, "Creator": None}, dpi=150)
-    plt.close(fig)
-    return inline_svg(buf.getvalue(), name)
-
-
-def make_figures(result: AnalysisResult, names: Sequence[str] | None = None
-                 ) -> dict[str, tuple[str, str, str]]:
+def make_figures(
+    result: AnalysisResult, names: Sequence[str] | None = None
+) -> dict[str, tuple[str, str, str]]:
     """name -> (svg, caption, alt text), for ``names`` (default: every figure) in the
     order of ``FIGURES``. Each figure depends on ``result`` only, so any subset can be
     drawn in another process with the same bytes."""
@@ -100,7 +55,7 @@ def make_figures(result: AnalysisResult, names: Sequence[str] | None = None
             if drawn is None:  # not part of this report (e.g. no groups)
                 continue
             fig, caption, alt = drawn
-            out[name] = (_svg(fig, name), caption, alt)
+            out[name] = (figure_svg(fig, name), caption, alt)
     return out
 
 
@@ -127,22 +82,33 @@ def _readings_per_subject(r: AnalysisResult) -> Figure:
     ax.bar(np.arange(counts.size), counts, color=PALETTE[0])
     ax.set_xlabel("readings per subject")
     ax.set_ylabel("subjects")
-    return (fig, "Readings per subject.",
-            "Bar chart of the number of subjects by readings per subject.")
+    return (
+        fig,
+        "Readings per subject.",
+        "Bar chart of the number of subjects by readings per subject.",
+    )
 
 
 def _design(r: AnalysisResult) -> Figure:
     g, tl = r.fit.grid, _time_label(r)
     fig, ax = plt.subplots(figsize=(4.2, 3.6))
     pc = r.fit.pair_counts
-    img = ax.imshow(np.log1p(np.maximum(pc, 0)).T, origin="lower", cmap="Blues",
-                    extent=(g[0], g[-1], g[0], g[-1]), aspect="auto")
+    img = ax.imshow(
+        np.log1p(np.maximum(pc, 0)).T,
+        origin="lower",
+        cmap="Blues",
+        extent=(g[0], g[-1], g[0], g[-1]),
+        aspect="auto",
+    )
     fig.colorbar(img, ax=ax, label="log(1 + pairs)")
     ax.set_xlabel(tl)
     ax.set_ylabel(tl)
-    return (fig, "Design: where pairs of readings (t_j, t_l) of one subject fall; white "
-            "areas have no support for the covariance.",
-            "Heat map of the density of within-subject time pairs.")
+    return (
+        fig,
+        "Design: where pairs of readings (t_j, t_l) of one subject fall; white "
+        "areas have no support for the covariance.",
+        "Heat map of the density of within-subject time pairs.",
+    )
 
 
 def _density(ax: Any, x: np.ndarray, y: np.ndarray, cells: tuple[int, int]) -> None:
@@ -153,8 +119,7 @@ def _density(ax: Any, x: np.ndarray, y: np.ndarray, cells: tuple[int, int]) -> N
     _draw_counts(ax, counts, axes)
 
 
-def _draw_counts(ax: Any, counts: np.ndarray, axes: tuple[tuple[float, float, int], ...]
-                 ) -> None:
+def _draw_counts(ax: Any, counts: np.ndarray, axes: tuple[tuple[float, float, int], ...]) -> None:
     """Counts in equal cells (each axis: low, high, cells) as a grey image, empty cells
     white."""
     shown = counts.astype(float)
@@ -173,23 +138,48 @@ def _mean(r: AnalysisResult) -> Figure:
         drawn = "the density of all readings (grey cells; darker holds more)"
     else:  # then every subject is in the residual sample: the frame holds every reading
         frame = view.residuals
-        ax.scatter(frame.time, frame.value, s=5, color="#777", alpha=0.5, linewidths=0,
-                   rasterized=True, label=f"readings ({n:,})")
+        ax.scatter(
+            frame.time,
+            frame.value,
+            s=5,
+            color="#777",
+            alpha=0.5,
+            linewidths=0,
+            rasterized=True,
+            label=f"readings ({n:,})",
+        )
         drawn = "every reading (grey points)"
     z, zs = fit.band_multiplier(), fit.mean_simultaneous_multiplier
     level = _level(r)
-    ax.fill_between(g, fit.mean - zs * fit.mean_se, fit.mean + zs * fit.mean_se,
-                    color=PALETTE[1], alpha=0.15, linewidth=0, label=f"simultaneous {level}")
-    ax.fill_between(g, fit.mean - z * fit.mean_se, fit.mean + z * fit.mean_se,
-                    color=PALETTE[1], alpha=0.3, linewidth=0, label=f"pointwise {level}")
+    ax.fill_between(
+        g,
+        fit.mean - zs * fit.mean_se,
+        fit.mean + zs * fit.mean_se,
+        color=PALETTE[1],
+        alpha=0.15,
+        linewidth=0,
+        label=f"simultaneous {level}",
+    )
+    ax.fill_between(
+        g,
+        fit.mean - z * fit.mean_se,
+        fit.mean + z * fit.mean_se,
+        color=PALETTE[1],
+        alpha=0.3,
+        linewidth=0,
+        label=f"pointwise {level}",
+    )
     ax.plot(g, fit.mean, color=PALETTE[1], label="mean")
     ax.set_xlabel(_time_label(r))
     ax.set_ylabel(_value_label(r))
     ax.legend(fontsize=7)
-    return (fig, f"Mean curve with a pointwise {level} band (inner) and a simultaneous "
-            f"{level} band (outer; holds at every time at once), both cluster-robust over "
-            f"subjects and without smoothing bias, over {drawn}.",
-            "Grey density of readings against time with the mean curve and its two bands.")
+    return (
+        fig,
+        f"Mean curve with a pointwise {level} band (inner) and a simultaneous "
+        f"{level} band (outer; holds at every time at once), both cluster-robust over "
+        f"subjects and without smoothing bias, over {drawn}.",
+        "Grey density of readings against time with the mean curve and its two bands.",
+    )
 
 
 def _covariance(r: AnalysisResult) -> Figure:
@@ -200,9 +190,10 @@ def _covariance(r: AnalysisResult) -> Figure:
     with np.errstate(divide="ignore", invalid="ignore"):
         corr = np.where(np.outer(sd, sd) > 0, cov / np.outer(sd, sd), np.nan)
     for ax, surf, title, levels in (
-            (axes[0], cov, "covariance (retained)", 12),
-            (axes[1], np.clip(corr, -1, 1), "correlation (retained)", np.linspace(-1, 1, 21)),
-            (axes[2], fit.covariance, "raw smooth (diagnostic)", 12)):
+        (axes[0], cov, "covariance (retained)", 12),
+        (axes[1], np.clip(corr, -1, 1), "correlation (retained)", np.linspace(-1, 1, 21)),
+        (axes[2], fit.covariance, "raw smooth (diagnostic)", 12),
+    ):
         cs = ax.contourf(g, g, surf, levels=levels, cmap="RdBu_r")
         cs.set_rasterized(True)
         fig.colorbar(cs, ax=ax)
@@ -210,21 +201,29 @@ def _covariance(r: AnalysisResult) -> Figure:
         ax.set_xlabel(tl)
     axes[0].set_ylabel(tl)
     dropped = 1.0 - float(fit.cumulative_fve[fit.n_components - 1])
-    return (fig, f"Covariance and correlation rebuilt from the {fit.n_components} retained "
-            f"components (positive semi-definite; they leave out {dropped:.1%} of the "
-            "variance), and the raw smoothed covariance surface, which need not be positive "
-            "semi-definite, as a diagnostic.",
-            "Three filled contour maps: the covariance and correlation from the retained "
-            "components, and the raw smoothed covariance.")
+    return (
+        fig,
+        f"Covariance and correlation rebuilt from the {fit.n_components} retained "
+        f"components (positive semi-definite; they leave out {dropped:.1%} of the "
+        "variance), and the raw smoothed covariance surface, which need not be positive "
+        "semi-definite, as a diagnostic.",
+        "Three filled contour maps: the covariance and correlation from the retained "
+        "components, and the raw smoothed covariance.",
+    )
 
 
 def _bandwidths(r: AnalysisResult) -> Figure:
     fit, unit = r.fit, r.spec.data.time_unit
     fig, axes = plt.subplots(1, 3, figsize=(7.4, 2.3))
-    for ax, (what, choice) in zip(axes, (("mean", fit.mean_bandwidth_choice),
-                                         ("covariance", fit.covariance_bandwidth_choice),
-                                         ("diagonal", fit.diagonal_bandwidth_choice)),
-                                  strict=True):
+    for ax, (what, choice) in zip(
+        axes,
+        (
+            ("mean", fit.mean_bandwidth_choice),
+            ("covariance", fit.covariance_bandwidth_choice),
+            ("diagonal", fit.diagonal_bandwidth_choice),
+        ),
+        strict=True,
+    ):
         if choice.candidates:
             ax.plot(choice.candidates, choice.criterion, "o-", markersize=3, color=PALETTE[0])
             ax.set_xscale("log")
@@ -235,10 +234,13 @@ def _bandwidths(r: AnalysisResult) -> Figure:
         ax.set_title(f"{what}: {choice.value:.3g} ({choice.method})", fontsize=8)
         ax.set_xlabel("bandwidth" + (f" ({unit})" if unit else ""))
     axes[0].set_ylabel("criterion")
-    return (fig, "Bandwidth choice: the criterion at each candidate bandwidth (lower is "
-            "better), the chosen one dashed; a fixed bandwidth shows no curve.",
-            "Three line plots of the bandwidth criterion against the candidate bandwidths for "
-            "the mean, the covariance surface and the variance of single readings.")
+    return (
+        fig,
+        "Bandwidth choice: the criterion at each candidate bandwidth (lower is "
+        "better), the chosen one dashed; a fixed bandwidth shows no curve.",
+        "Three line plots of the bandwidth criterion against the candidate bandwidths for "
+        "the mean, the covariance surface and the variance of single readings.",
+    )
 
 
 def _eigenvalues(r: AnalysisResult) -> Figure:
@@ -246,21 +248,33 @@ def _eigenvalues(r: AnalysisResult) -> Figure:
     fig, ax = plt.subplots(figsize=(6, 2.8))
     n_show = min(fit.all_eigenvalues.size, 10)
     ks = np.arange(1, n_show + 1)
-    ax.bar(ks, fit.fve[:n_show], color=[PALETTE[0] if k <= fit.n_components else "#b8c2d1"
-                                         for k in ks], label="FVE of the component")
+    ax.bar(
+        ks,
+        fit.fve[:n_show],
+        color=[PALETTE[0] if k <= fit.n_components else "#b8c2d1" for k in ks],
+        label="FVE of the component",
+    )
     ax.plot(ks, fit.cumulative_fve[:n_show], "o-", color=PALETTE[1], label="cumulative FVE")
     if fit.selection.rule == "fve":
-        ax.axhline(fit.options.fve_threshold, color="#888", linestyle="--", linewidth=0.8,
-                   label=f"threshold {fit.options.fve_threshold:g}")
+        ax.axhline(
+            fit.options.fve_threshold,
+            color="#888",
+            linestyle="--",
+            linewidth=0.8,
+            label=f"threshold {fit.options.fve_threshold:g}",
+        )
     ax.set_xticks(ks)
     ax.set_ylim(0, 1.05)
     ax.set_xlabel("component")
     ax.set_ylabel("fraction of variance")
     ax.legend(fontsize=7, loc="center right")
-    return (fig, "Fraction of variance explained by each component (bars; the retained ones "
-            "dark) and cumulatively (line).",
-            "Bar chart of each component's fraction of variance explained with a line of the "
-            "cumulative fraction.")
+    return (
+        fig,
+        "Fraction of variance explained by each component (bars; the retained ones "
+        "dark) and cumulatively (line).",
+        "Bar chart of each component's fraction of variance explained with a line of the "
+        "cumulative fraction.",
+    )
 
 
 def _eigenfunctions(r: AnalysisResult) -> Figure:
@@ -273,8 +287,11 @@ def _eigenfunctions(r: AnalysisResult) -> Figure:
     ef_unit = r.spec.units()["eigenfunction"]
     ax.set_ylabel("eigenfunction" + (f" ({ef_unit})" if ef_unit else ""))
     ax.legend(fontsize=8)
-    return (fig, "Eigenfunctions of the retained components.",
-            "Line plot of each retained eigenfunction against time.")
+    return (
+        fig,
+        "Eigenfunctions of the retained components.",
+        "Line plot of each retained eigenfunction against time.",
+    )
 
 
 def _effects(r: AnalysisResult) -> Figure:
@@ -291,10 +308,12 @@ def _effects(r: AnalysisResult) -> Figure:
         ax.set_xlabel(_time_label(r))
     axes[0, 0].set_ylabel(_value_label(r))
     axes[0, 0].legend(fontsize=7)
-    return (fig, "Effect of each component: the mean plus and minus two times "
-            "sqrt(eigenvalue) times the eigenfunction.",
-            "Mean curve with curves two standard deviations above and below along each "
-            "component.")
+    return (
+        fig,
+        "Effect of each component: the mean plus and minus two times "
+        "sqrt(eigenvalue) times the eigenfunction.",
+        "Mean curve with curves two standard deviations above and below along each component.",
+    )
 
 
 def _trajectories(r: AnalysisResult) -> Figure:
@@ -306,8 +325,9 @@ def _trajectories(r: AnalysisResult) -> Figure:
     n = max(len(shown), 1)
     cols = min(n, 3)
     rows = int(np.ceil(n / cols))
-    fig, axes = plt.subplots(rows, cols, figsize=(2.1 * cols + 0.3, 1.9 * rows),
-                             squeeze=False, sharex=True)
+    fig, axes = plt.subplots(
+        rows, cols, figsize=(2.1 * cols + 0.3, 1.9 * rows), squeeze=False, sharex=True
+    )
     for i, sid in enumerate(shown):
         ax = axes[i // cols, i % cols]
         if i % cols == 0:
@@ -316,17 +336,26 @@ def _trajectories(r: AnalysisResult) -> Figure:
             ax.set_xlabel(tl, fontsize=7)
         tr = traj[traj.subject.astype(str) == sid]
         obs = readings[readings.subject.astype(str) == sid]
-        ax.fill_between(tr.time, tr.lower_simultaneous, tr.upper_simultaneous,
-                        color=PALETTE[0], alpha=0.12, linewidth=0)
+        ax.fill_between(
+            tr.time,
+            tr.lower_simultaneous,
+            tr.upper_simultaneous,
+            color=PALETTE[0],
+            alpha=0.12,
+            linewidth=0,
+        )
         ax.fill_between(tr.time, tr.lower, tr.upper, color=PALETTE[0], alpha=0.25, linewidth=0)
         ax.plot(tr.time, tr.fitted, color=PALETTE[0])
         ax.plot(obs.time, obs.value, "o", color=PALETTE[1], markersize=3)
         ax.set_title(f"subject {sid}", fontsize=8)
     for j in range(len(shown), rows * cols):
         axes[j // cols, j % cols].set_visible(False)
-    return (fig, f"Recovered trajectories with pointwise {level} bands (inner) and "
-            f"simultaneous {level} bands (outer), and the subjects' readings.",
-            "Small multiples: each selected subject's fitted curve, band and readings.")
+    return (
+        fig,
+        f"Recovered trajectories with pointwise {level} bands (inner) and "
+        f"simultaneous {level} bands (outer), and the subjects' readings.",
+        "Small multiples: each selected subject's fitted curve, band and readings.",
+    )
 
 
 def _residuals(r: AnalysisResult) -> Figure:
@@ -336,8 +365,15 @@ def _residuals(r: AnalysisResult) -> Figure:
         if len(res) > MAX_POINTS:
             _density(ax, res[xcol].to_numpy(), res.standardized.to_numpy(), (50, 35))
         else:
-            ax.scatter(res[xcol], res.standardized, s=5, color=PALETTE[0], alpha=0.5,
-                       linewidths=0, rasterized=True)
+            ax.scatter(
+                res[xcol],
+                res.standardized,
+                s=5,
+                color=PALETTE[0],
+                alpha=0.5,
+                linewidths=0,
+                rasterized=True,
+            )
         ax.axhline(0, color="#888", linewidth=0.8)
         ax.set_xlabel(xl)
         ax.set_ylabel("standardized residual")
@@ -351,18 +387,19 @@ def _residuals(r: AnalysisResult) -> Figure:
     axes[2].set_ylabel("residual quantile")
     words = r.readings.sample_words(r.fit.n_subjects)
     of = f" Drawn from {words}." if words else ""
-    return (fig, "Standardized residuals (reading minus fitted trajectory, over its own "
-            "standard deviation under the fitted model) against time and fitted value, and a "
-            "normal quantile plot." + of,
-            "Three panels: residuals against time, against fitted values, and a normal "
-            "quantile plot.")
+    return (
+        fig,
+        "Standardized residuals (reading minus fitted trajectory, over its own "
+        "standard deviation under the fitted model) against time and fitted value, and a "
+        "normal quantile plot." + of,
+        "Three panels: residuals against time, against fitted values, and a normal quantile plot.",
+    )
 
 
 def _sensitivity(r: AnalysisResult) -> Figure:
     fit, g = r.fit, r.fit.grid
     k_show = min(fit.n_components, 2)
-    fig, axes = plt.subplots(1, 1 + k_show, figsize=(2.1 * (1 + k_show) + 0.3, 2.4),
-                             squeeze=False)
+    fig, axes = plt.subplots(1, 1 + k_show, figsize=(2.1 * (1 + k_show) + 0.3, 2.4), squeeze=False)
     axes[0, 0].plot(g, fit.mean, color="#222", label="main")
     for j, run in enumerate(r.sensitivity):
         if run.fit is None:
@@ -377,8 +414,11 @@ def _sensitivity(r: AnalysisResult) -> Figure:
         axes[0, 1 + k].set_title(f"phi_{k + 1}")
     axes[0, 0].set_title("mean")
     axes[0, 0].legend(fontsize=7)
-    return (fig, "Mean and eigenfunctions at each bandwidth factor (black: main fit).",
-            "Overlaid curves of the mean and eigenfunctions under each bandwidth setting.")
+    return (
+        fig,
+        "Mean and eigenfunctions at each bandwidth factor (black: main fit).",
+        "Overlaid curves of the mean and eigenfunctions under each bandwidth setting.",
+    )
 
 
 def _scores_figure(r: AnalysisResult) -> Figure:
@@ -393,39 +433,67 @@ def _scores_figure(r: AnalysisResult) -> Figure:
     named = view.farthest.iloc[:10]  # the ten farthest flagged subjects, of every subject
     labels = named.subject.astype(str).tolist()
     at = named[[f"score_{k + 1}" for k in range(min(2, fit.n_components))]].to_numpy()
-    over = f" ({view.sample_words()}; the labelled ones of every subject)" \
-        if view.sample_words() else ""
+    over = (
+        f" ({view.sample_words()}; the labelled ones of every subject)"
+        if view.sample_words()
+        else ""
+    )
     fig, ax = plt.subplots(figsize=(4.6, 3.6))
     if fit.n_components == 1:
         ax.hist(sc[:, 0], bins=min(40, max(10, len(sc) // 10)), color=PALETTE[0])
-        ax.plot(sc[flagged, 0], np.zeros(int(flagged.sum())), "o", markersize=6,
-                markerfacecolor="none", color=PALETTE[1], label="flagged",
-                rasterized=bool(flagged.sum() > MAX_MARKS))
+        ax.plot(
+            sc[flagged, 0],
+            np.zeros(int(flagged.sum())),
+            "o",
+            markersize=6,
+            markerfacecolor="none",
+            color=PALETTE[1],
+            label="flagged",
+            rasterized=bool(flagged.sum() > MAX_MARKS),
+        )
         for label, (x,) in zip(labels, at, strict=True):
-            ax.annotate(label, (x, 0), textcoords="offset points",
-                        xytext=(0, 6), fontsize=6, rotation=90, ha="center")
+            ax.annotate(
+                label,
+                (x, 0),
+                textcoords="offset points",
+                xytext=(0, 6),
+                fontsize=6,
+                rotation=90,
+                ha="center",
+            )
         ax.set_xlabel("score 1" + unit)
         ax.set_ylabel("subjects")
-        caption = ("Distribution of the scores of the single retained component; flagged "
-                   f"subjects circled on the axis and labelled by id{over}.")
+        caption = (
+            "Distribution of the scores of the single retained component; flagged "
+            f"subjects circled on the axis and labelled by id{over}."
+        )
         alt = "Histogram of the subjects' scores with flagged subjects marked."
     else:
         if len(sc) > MAX_POINTS:
             _density(ax, sc[:, 0], sc[:, 1], (50, 40))
         else:
-            ax.scatter(sc[:, 0], sc[:, 1], s=8, color=PALETTE[0], alpha=0.6, linewidths=0,
-                       rasterized=True)
+            ax.scatter(
+                sc[:, 0], sc[:, 1], s=8, color=PALETTE[0], alpha=0.6, linewidths=0, rasterized=True
+            )
         # Many flagged subjects (large studies) are drawn as one image, like the density:
         # the figure's size must not grow with the number of subjects.
-        ax.scatter(sc[flagged, 0], sc[flagged, 1], s=18, facecolors="none",
-                   edgecolors=PALETTE[1], label="flagged",
-                   rasterized=bool(flagged.sum() > MAX_MARKS))
+        ax.scatter(
+            sc[flagged, 0],
+            sc[flagged, 1],
+            s=18,
+            facecolors="none",
+            edgecolors=PALETTE[1],
+            label="flagged",
+            rasterized=bool(flagged.sum() > MAX_MARKS),
+        )
         for label, (x, y) in zip(labels, at, strict=True):
             ax.annotate(label, (x, y), textcoords="offset points", xytext=(3, 3), fontsize=6)
         ax.set_xlabel("score 1" + unit)
         ax.set_ylabel("score 2" + unit)
-        caption = ("Scores of the first two components; flagged subjects circled and labelled "
-                   f"by id{over}.")
+        caption = (
+            "Scores of the first two components; flagged subjects circled and labelled "
+            f"by id{over}."
+        )
         alt = "Scatter of subjects' first two scores with flagged subjects circled."
     if flagged.any():
         ax.legend(fontsize=7)
@@ -442,18 +510,28 @@ def _group_means(r: AnalysisResult) -> Figure | None:
     for i, label in enumerate(g.labels):
         color = PALETTE[i % len(PALETTE)]
         style = ("-", "--", ":", "-.")[(i // len(PALETTE)) % 4]
-        ax.fill_between(fit.grid, g.means[i] - z * g.mean_se[i], g.means[i] + z * g.mean_se[i],
-                        color=color, alpha=0.18, linewidth=0)
-        ax.plot(fit.grid, g.means[i], style, color=color,
-                label=f"{label} ({g.n_subjects[i]} subjects)")
+        ax.fill_between(
+            fit.grid,
+            g.means[i] - z * g.mean_se[i],
+            g.means[i] + z * g.mean_se[i],
+            color=color,
+            alpha=0.18,
+            linewidth=0,
+        )
+        ax.plot(
+            fit.grid, g.means[i], style, color=color, label=f"{label} ({g.n_subjects[i]} subjects)"
+        )
     ax.set_xlabel(_time_label(r))
     ax.set_ylabel(_value_label(r))
     ax.legend(fontsize=7)
-    return (fig, f"Mean curve of each group with a pointwise {level} band (cluster-robust over "
-            "the group's subjects, without smoothing bias), each smoothed at the common mean "
-            f"bandwidth {fit.mean_bandwidth:.4g}. Descriptive: not adjusted for multiple "
-            "comparisons.",
-            "One mean curve per group with a shaded band, on one set of axes.")
+    return (
+        fig,
+        f"Mean curve of each group with a pointwise {level} band (cluster-robust over "
+        "the group's subjects, without smoothing bias), each smoothed at the common mean "
+        f"bandwidth {fit.mean_bandwidth:.4g}. Descriptive: not adjusted for multiple "
+        "comparisons.",
+        "One mean curve per group with a shaded band, on one set of axes.",
+    )
 
 
 def _group_scores(r: AnalysisResult) -> Figure | None:
@@ -466,25 +544,30 @@ def _group_scores(r: AnalysisResult) -> Figure | None:
     codes = {label: i for i, label in enumerate(g.labels)}
     view = r.subjects_view
     member = np.array([codes[r.subject_groups[i]] for i in view.sampled.tolist()])
-    fig, axes = plt.subplots(1, shown, figsize=(min(7.4, 2.4 * shown + 1.2), 2.8),
-                             squeeze=False)
+    fig, axes = plt.subplots(1, shown, figsize=(min(7.4, 2.4 * shown + 1.2), 2.8), squeeze=False)
     for k in range(shown):
         ax = axes[0, k]
         data = [view.scores[member == i, k] for i in range(len(g.labels))]
         # Whiskers at the 5th and 95th percentiles and no per-subject marks: the figure's
         # size does not grow with the number of subjects.
         ax.boxplot(data, whis=(5, 95), showfliers=False, widths=0.6)
-        ax.set_xticks(range(1, len(g.labels) + 1), list(g.labels), fontsize=7,
-                      rotation=30 if len(g.labels) > 3 else 0)
+        ax.set_xticks(
+            range(1, len(g.labels) + 1),
+            list(g.labels),
+            fontsize=7,
+            rotation=30 if len(g.labels) > 3 else 0,
+        )
         ax.set_title(f"score {k + 1}", fontsize=8)
         ax.axhline(0.0, color="#999", linewidth=0.8)
     axes[0, 0].set_ylabel("score" + (f" ({su})" if su else ""))
-    more = (f" (the first 4 of {fit.n_components} components)"
-            if fit.n_components > shown else "")
+    more = f" (the first 4 of {fit.n_components} components)" if fit.n_components > shown else ""
     over = f" ({view.sample_words()})" if view.sample_words() else ""
-    return (fig, f"Scores by group{more}{over}: boxes span the quartiles, whiskers the 5th to "
-            "95th percentiles, the line is the median.",
-            "Box plots of the subjects' scores, one panel per component, one box per group.")
+    return (
+        fig,
+        f"Scores by group{more}{over}: boxes span the quartiles, whiskers the 5th to "
+        "95th percentiles, the line is the median.",
+        "Box plots of the subjects' scores, one panel per component, one box per group.",
+    )
 
 
 # The report's figures, in report order: name -> drawing function (None: not in this report).

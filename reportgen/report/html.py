@@ -14,8 +14,13 @@ if TYPE_CHECKING:
     from .styles import Style
 
 
-def render_html(result: AnalysisResult, version: int, record_view: dict[str, Any],
-                figures: dict[str, tuple[str, str, str]], style: Style) -> bytes:
+def render_html(
+    result: AnalysisResult,
+    version: int,
+    record_view: dict[str, Any],
+    figures: dict[str, tuple[str, str, str]],
+    style: Style,
+) -> bytes:
     """The report page, in the spec's style (``style.load_style``).
 
     A shipped style renders in this process; the spec's own template in a sandboxed child
@@ -29,11 +34,18 @@ def render_html(result: AnalysisResult, version: int, record_view: dict[str, Any
     sections = build_sections(result, record_view, figures, style.numbering, style.sections)
     header = " · ".join(x for x in (style.header, f"{spec.report_id} v{version:03d}") if x)
     context = {
-        "title": spec.report.title, "report_id": spec.report_id, "version": version,
-        "authors": list(spec.report.authors), "description": spec.report.description,
-        "sections": [asdict(x) for x in sections], "css": Markup(style.css),
-        "logo": style.logo, "header_text": header, "footer_text": style.footer,
-        "numbering": style.numbering, "started": _record_item(record_view, "run started"),
+        "title": spec.report.title,
+        "report_id": spec.report_id,
+        "version": version,
+        "authors": list(spec.report.authors),
+        "description": spec.report.description,
+        "sections": [asdict(x) for x in sections],
+        "css": Markup(style.css),
+        "logo": style.logo,
+        "header_text": header,
+        "footer_text": style.footer,
+        "numbering": style.numbering,
+        "started": _record_item(record_view, "run started"),
         "tool": _record_item(record_view, "tool"),
     }
     sources = shipped_sources()
@@ -43,8 +55,11 @@ def render_html(result: AnalysisResult, version: int, record_view: dict[str, Any
         else:
             html = render_in_child({**sources, USER: style.user_template}, USER, context)
     except TemplateFailure as e:
-        which = (f"report.template {spec.report.template!r}"
-                 if style.user_template is not None else f"the {style.name} style")
+        which = (
+            f"report.template {spec.report.template!r}"
+            if style.user_template is not None
+            else f"the {style.name} style"
+        )
         raise TemplateError(f"{which}: {e}") from e
     return html.encode("utf-8")
 

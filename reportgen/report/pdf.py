@@ -65,9 +65,10 @@ def _figures_as_images(html: str) -> str:
     then parses each figure as SVG only, instead of also as HTML elements that the page's
     CSS cascade visits.
     """
+
     def image(match: re.Match[str]) -> str:
         svg = match.group(0).replace("<svg ", '<svg xmlns="http://www.w3.org/2000/svg" ', 1)
-        head = svg[:svg.index(">")]
+        head = svg[: svg.index(">")]
         size = ";".join(f"{k}:{v}" for k, v in re.findall(r'\b(width|height)="([^"]+)"', head))
         data = base64.b64encode(svg.encode("utf-8")).decode("ascii")
         return f'<img alt="" style="{size}" src="data:image/svg+xml;base64,{data}">'
@@ -91,20 +92,36 @@ def render_pdf(html: bytes, spec_bytes: bytes, record_bytes: bytes, stamp: str) 
     fetcher = _offline_fetcher()
     when = datetime.strptime(stamp, "%Y-%m-%dT%H:%M:%SZ")
     attachments = [
-        weasyprint.Attachment(string=spec_bytes, name="spec.yaml",
-                              description="The spec of this run, as given", url_fetcher=fetcher,
-                              created=when, modified=when),
-        weasyprint.Attachment(string=record_bytes, name="record.json",
-                              description="The hashed record of this run", url_fetcher=fetcher,
-                              created=when, modified=when),
+        weasyprint.Attachment(
+            string=spec_bytes,
+            name="spec.yaml",
+            description="The spec of this run, as given",
+            url_fetcher=fetcher,
+            created=when,
+            modified=when,
+        ),
+        weasyprint.Attachment(
+            string=record_bytes,
+            name="record.json",
+            description="The hashed record of this run",
+            url_fetcher=fetcher,
+            created=when,
+            modified=when,
+        ),
     ]
-    document = weasyprint.HTML(string=_figures_as_images(html.decode("utf-8")), base_url=None,
-                               url_fetcher=fetcher)
+    document = weasyprint.HTML(
+        string=_figures_as_images(html.decode("utf-8")), base_url=None, url_fetcher=fetcher
+    )
     with warnings.catch_warnings(), _source_date(when):
         # weasyprint 70 opens its bundled sRGB profile (PDF/A output intent) without closing
         # it; the file is dropped, with its warning, before write_pdf returns.
-        warnings.filterwarnings("ignore", message=r"unclosed file .*sRGB2014\.icc",
-                                category=ResourceWarning)
-        pdf = document.write_pdf(pdf_variant="pdf/a-3b", attachments=attachments,
-                                 pdf_identifier=b"reportgen", uncompressed_pdf=False)
+        warnings.filterwarnings(
+            "ignore", message=r"unclosed file .*sRGB2014\.icc", category=ResourceWarning
+        )
+        pdf = document.write_pdf(
+            pdf_variant="pdf/a-3b",
+            attachments=attachments,
+            pdf_identifier=b"reportgen",
+            uncompressed_pdf=False,
+        )
     return bytes(pdf)

@@ -135,8 +135,11 @@ class RenderProcess:
         try:
             self._proc = subprocess.Popen(
                 [sys.executable, "-c", SERVE],
-                stdin=subprocess.PIPE, stdout=subprocess.PIPE, stderr=subprocess.DEVNULL,
-                env=env)
+                stdin=subprocess.PIPE,
+                stdout=subprocess.PIPE,
+                stderr=subprocess.DEVNULL,
+                env=env,
+            )
         except OSError:
             self._proc = None
             return
@@ -147,8 +150,11 @@ class RenderProcess:
         process draws the rest."""
         from .figures import FIGURES, make_figures
 
-        pending = (self._submit("draw", result.without_subjects(), SUMMARY_FIGURES)
-                   if self._proc is not None else None)
+        pending = (
+            self._submit("draw", result.without_subjects(), SUMMARY_FIGURES)
+            if self._proc is not None
+            else None
+        )
         local = make_figures(result, [n for n in FIGURES if n not in SUMMARY_FIGURES])
         remote = pending.result() if pending is not None else None
         if remote is None:

@@ -42,10 +42,15 @@ _TAG = re.compile(r"<[A-Za-z][^>]*>")
 _STYLE = re.compile(r"<style[^>]*>(.*?)</style>", re.S | re.I)
 _EXTERNAL_ATTR = re.compile(
     r"""\b(?:src|href|xlink:href|srcset|action|formaction|poster|data|background)\s*=\s*"""
-    r"""["']?\s*(?!data:|\#|["'\s>])""", re.I)
+    r"""["']?\s*(?!data:|\#|["'\s>])""",
+    re.I,
+)
 _EXTERNAL_CSS = re.compile(r"""url\(\s*["']?\s*(?!data:|\#)|@import""", re.I)
-_ACTIVE_TAG = re.compile(r"^<\s*(?:script|iframe|frame|object|embed|link|base|form)\b"
-                         r"|^<\s*meta\b[^>]*http-equiv|\son[a-z]+\s*=", re.I)
+_ACTIVE_TAG = re.compile(
+    r"^<\s*(?:script|iframe|frame|object|embed|link|base|form)\b"
+    r"|^<\s*meta\b[^>]*http-equiv|\son[a-z]+\s*=",
+    re.I,
+)
 
 
 class TemplateFailure(Exception):
@@ -71,8 +76,9 @@ def shipped_css(name: str) -> str:
 def css_string(value: Any) -> Markup:
     """A value as a quoted CSS string (for ``content:`` in page rules), safe in <style>."""
     text = str(value)
-    escaped = "".join(ch if ch.isalnum() or ch in " .,:;-_/()[]+=" else f"\\{ord(ch):x} "
-                      for ch in text)
+    escaped = "".join(
+        ch if ch.isalnum() or ch in " .,:;-_/()[]+=" else f"\\{ord(ch):x} " for ch in text
+    )
     return Markup(f'"{escaped}"')
 
 
@@ -94,8 +100,12 @@ class _Environment(ImmutableSandboxedEnvironment):
 
 
 def environment(sources: dict[str, str]) -> jinja2.Environment:
-    env = _Environment(loader=jinja2.DictLoader(sources), autoescape=True,
-                       undefined=jinja2.StrictUndefined, keep_trailing_newline=True)
+    env = _Environment(
+        loader=jinja2.DictLoader(sources),
+        autoescape=True,
+        undefined=jinja2.StrictUndefined,
+        keep_trailing_newline=True,
+    )
     env.filters["css_string"] = css_string
     return env
 
@@ -106,23 +116,30 @@ def refuse_unsafe_markup(html: str) -> None:
     for tag in _TAG.finditer(html):
         text = tag.group(0)
         if _ACTIVE_TAG.search(text):
-            raise TemplateFailure(f"the rendered report contains active content "
-                                  f"({text[:80]!r}); scripts, frames, embedded objects, "
-                                  "forms, links and event handlers are not allowed")
+            raise TemplateFailure(
+                f"the rendered report contains active content "
+                f"({text[:80]!r}); scripts, frames, embedded objects, "
+                "forms, links and event handlers are not allowed"
+            )
         if _EXTERNAL_ATTR.search(text) or _EXTERNAL_CSS.search(text):
-            raise TemplateFailure(f"the rendered report refers to something outside itself "
-                                  f"({text[:80]!r}); a report may use only data: URIs and "
-                                  "in-page links")
+            raise TemplateFailure(
+                f"the rendered report refers to something outside itself "
+                f"({text[:80]!r}); a report may use only data: URIs and "
+                "in-page links"
+            )
     for sheet in _STYLE.finditer(html):
         found = _EXTERNAL_CSS.search(sheet.group(1))
         if found:
-            near = sheet.group(1)[max(found.start() - 20, 0):found.end() + 40]
-            raise TemplateFailure(f"the report's style sheet refers to something outside the "
-                                  f"page (near {near!r}); only data: URIs are allowed")
+            near = sheet.group(1)[max(found.start() - 20, 0) : found.end() + 40]
+            raise TemplateFailure(
+                f"the report's style sheet refers to something outside the "
+                f"page (near {near!r}); only data: URIs are allowed"
+            )
 
 
-def render_here(sources: dict[str, str], entry: str, context: dict[str, Any],
-                max_bytes: int | None = None) -> str:
+def render_here(
+    sources: dict[str, str], entry: str, context: dict[str, Any], max_bytes: int | None = None
+) -> str:
     """Render ``entry`` in this process (the shipped styles)."""
     max_bytes = MAX_OUTPUT_BYTES if max_bytes is None else max_bytes
     try:
@@ -137,17 +154,22 @@ def render_here(sources: dict[str, str], entry: str, context: dict[str, Any],
     except TemplateFailure:
         raise
     except SecurityError as e:
-        raise TemplateFailure(f"the template did something a sandboxed template may not: "
-                              f"{e}") from e
+        raise TemplateFailure(
+            f"the template did something a sandboxed template may not: {e}"
+        ) from e
     except jinja2.TemplateNotFound as e:
-        raise TemplateFailure(f"the template refers to {e.name!r}, which is neither a shipped "
-                              f"style ({', '.join(STYLES)}) nor the spec's template") from e
+        raise TemplateFailure(
+            f"the template refers to {e.name!r}, which is neither a shipped "
+            f"style ({', '.join(STYLES)}) nor the spec's template"
+        ) from e
     except jinja2.TemplateSyntaxError as e:
-        raise TemplateFailure(f"the template has a syntax error at line {e.lineno}: "
-                              f"{e.message}") from e
+        raise TemplateFailure(
+            f"the template has a syntax error at line {e.lineno}: {e.message}"
+        ) from e
     except jinja2.UndefinedError as e:
-        raise TemplateFailure(f"the template uses a name the report does not provide: "
-                              f"{e.message}") from e
+        raise TemplateFailure(
+            f"the template uses a name the report does not provide: {e.message}"
+        ) from e
     except MemoryError as e:
         raise TemplateFailure("the template needed more memory than a report may use") from e
     except RecursionError as e:
@@ -159,25 +181,38 @@ def render_here(sources: dict[str, str], entry: str, context: dict[str, Any],
     return html
 
 
-def render_in_child(sources: dict[str, str], entry: str, context: dict[str, Any],
-                    seconds: float | None = None, max_bytes: int | None = None) -> str:
+def render_in_child(
+    sources: dict[str, str],
+    entry: str,
+    context: dict[str, Any],
+    seconds: float | None = None,
+    max_bytes: int | None = None,
+) -> str:
     """Render ``entry`` in a child process with time, memory and output limits."""
     limit = TEMPLATE_SECONDS if seconds is None else seconds
     max_bytes = MAX_OUTPUT_BYTES if max_bytes is None else max_bytes
     payload = pickle.dumps((sources, entry, context, max_bytes), protocol=pickle.HIGHEST_PROTOCOL)
     code = "from reportgen.report.sandbox import _child; _child()"
     try:
-        done = subprocess.run([sys.executable, "-c", code], input=payload, capture_output=True,
-                              timeout=limit, check=False)
+        done = subprocess.run(
+            [sys.executable, "-c", code],
+            input=payload,
+            capture_output=True,
+            timeout=limit,
+            check=False,
+        )
     except subprocess.TimeoutExpired:
-        raise TemplateFailure(f"the template did not finish within {limit:g} s (a loop that "
-                              "does not end, or far too much work for a report)") from None
+        raise TemplateFailure(
+            f"the template did not finish within {limit:g} s (a loop that "
+            "does not end, or far too much work for a report)"
+        ) from None
     try:
         status, value = pickle.loads(done.stdout)
     except Exception:
-        raise TemplateFailure("the template's renderer stopped without a result (it may have "
-                              f"run out of its {MAX_MEMORY_BYTES // 2**30} GiB of memory)"
-                              ) from None
+        raise TemplateFailure(
+            "the template's renderer stopped without a result (it may have "
+            f"run out of its {MAX_MEMORY_BYTES // 2**30} GiB of memory)"
+        ) from None
     if status != "ok":
         raise TemplateFailure(str(value))
     return str(value)

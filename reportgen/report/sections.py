@@ -45,9 +45,11 @@ def _fmt(x: Any) -> str:
 
 
 def _how(choice: BandwidthChoice) -> str:
-    method = {"cv": "chosen by K-fold cross-validation over subjects",
-              "gcv": "chosen by generalized cross-validation (GCV)",
-              "fixed": "fixed in the spec"}[choice.method]
+    method = {
+        "cv": "chosen by K-fold cross-validation over subjects",
+        "gcv": "chosen by generalized cross-validation (GCV)",
+        "fixed": "fixed in the spec",
+    }[choice.method]
     return f"{choice.value:.4g}, {method}"
 
 
@@ -67,8 +69,15 @@ class _Builder:
 
     def table(self, s: Section, caption: str, header: list[str], rows: list[list[Any]]) -> None:
         self.n.table += 1
-        s.blocks.append({"kind": "table", "number": self.label(self.n.table), "caption": caption,
-                         "header": header, "rows": [[_fmt(c) for c in r] for r in rows]})
+        s.blocks.append(
+            {
+                "kind": "table",
+                "number": self.label(self.n.table),
+                "caption": caption,
+                "header": header,
+                "rows": [[_fmt(c) for c in r] for r in rows],
+            }
+        )
 
     def text(self, s: Section, text: str, kind: str = "text") -> None:
         """A paragraph (``kind="text"``) or preformatted text (``kind="pre"``)."""
@@ -79,8 +88,15 @@ class _Builder:
 
     def figure(self, s: Section, svg: str, caption: str, alt: str) -> None:
         self.n.figure += 1
-        s.blocks.append({"kind": "figure", "number": self.label(self.n.figure), "svg": svg,
-                         "caption": caption, "alt": alt})
+        s.blocks.append(
+            {
+                "kind": "figure",
+                "number": self.label(self.n.figure),
+                "svg": svg,
+                "caption": caption,
+                "alt": alt,
+            }
+        )
 
 
 @dataclass
@@ -111,35 +127,53 @@ def _section_summary(c: _Context) -> None:
     unit = c.unit
     tu = c.unit("time")
     s = b.section("summary", "Summary", "The key numbers of this analysis at a glance.")
-    b.text(s, "Method: functional principal component analysis of sparse longitudinal data by "
-           "conditional expectation (Yao, Müller and Wang 2005, Journal of the American "
-           "Statistical Association 100, 577-590). The mean is a local linear smooth of all "
-           "readings; the covariance is a two-dimensional local linear smooth of the products "
-           "of residuals at two different readings of a subject, with the readings' own "
-           "squares smoothed separately to estimate the measurement-error variance; "
-           "the eigenvalues and the error variance are then refined by maximising the "
-           "marginal Gaussian likelihood of the readings with the eigenfunctions held fixed "
-           f"(over {fit.likelihood.n_subjects} subjects and {fit.likelihood.eigenvalues.size} "
-           "components); each subject's scores and trajectory follow by conditional "
-           "expectation, which works with a single reading. Bands for trajectories add the "
-           "variance of the components left out. Bandwidths: mean "
-           f"{_how(fit.mean_bandwidth_choice)}, covariance "
-           f"{_how(fit.covariance_bandwidth_choice)}, variance of single readings "
-           f"{_how(fit.diagonal_bandwidth_choice)} ({fit.options.kernel} kernel).")
+    b.text(
+        s,
+        "Method: functional principal component analysis of sparse longitudinal data by "
+        "conditional expectation (Yao, Müller and Wang 2005, Journal of the American "
+        "Statistical Association 100, 577-590). The mean is a local linear smooth of all "
+        "readings; the covariance is a two-dimensional local linear smooth of the products "
+        "of residuals at two different readings of a subject, with the readings' own "
+        "squares smoothed separately to estimate the measurement-error variance; "
+        "the eigenvalues and the error variance are then refined by maximising the "
+        "marginal Gaussian likelihood of the readings with the eigenfunctions held fixed "
+        f"(over {fit.likelihood.n_subjects} subjects and {fit.likelihood.eigenvalues.size} "
+        "components); each subject's scores and trajectory follow by conditional "
+        "expectation, which works with a single reading. Bands for trajectories add the "
+        "variance of the components left out. Bandwidths: mean "
+        f"{_how(fit.mean_bandwidth_choice)}, covariance "
+        f"{_how(fit.covariance_bandwidth_choice)}, variance of single readings "
+        f"{_how(fit.diagonal_bandwidth_choice)} ({fit.options.kernel} kernel).",
+    )
     per = fit.n_obs
-    b.table(s, "Key estimates.", ["quantity", "value"], [
-        ["subjects", fit.n_subjects], ["readings", fit.n_readings],
-        ["readings per subject (min / median / max)",
-         f"{per.min()} / {np.median(per):g} / {per.max()}"],
-        ["components chosen", f"{fit.n_components} (rule: {fit.selection.rule})"],
-        ["FVE of the chosen components", f"{fit.cumulative_fve[fit.n_components - 1]:.3f}"],
-        ["error variance, maximum likelihood" + unit("error variance"), fit.error_variance],
-        ["error variance, smoothing estimate (starting point)" + unit("error variance"),
-         fit.smoothing_error_variance],
-        ["mean bandwidth" + tu, f"{fit.mean_bandwidth:.4g} ({fit.mean_bandwidth_choice.method})"],
-        ["covariance bandwidth" + tu,
-         f"{fit.covariance_bandwidth:.4g} ({fit.covariance_bandwidth_choice.method})"],
-    ])
+    b.table(
+        s,
+        "Key estimates.",
+        ["quantity", "value"],
+        [
+            ["subjects", fit.n_subjects],
+            ["readings", fit.n_readings],
+            [
+                "readings per subject (min / median / max)",
+                f"{per.min()} / {np.median(per):g} / {per.max()}",
+            ],
+            ["components chosen", f"{fit.n_components} (rule: {fit.selection.rule})"],
+            ["FVE of the chosen components", f"{fit.cumulative_fve[fit.n_components - 1]:.3f}"],
+            ["error variance, maximum likelihood" + unit("error variance"), fit.error_variance],
+            [
+                "error variance, smoothing estimate (starting point)" + unit("error variance"),
+                fit.smoothing_error_variance,
+            ],
+            [
+                "mean bandwidth" + tu,
+                f"{fit.mean_bandwidth:.4g} ({fit.mean_bandwidth_choice.method})",
+            ],
+            [
+                "covariance bandwidth" + tu,
+                f"{fit.covariance_bandwidth:.4g} ({fit.covariance_bandwidth_choice.method})",
+            ],
+        ],
+    )
 
 
 def _section_checks(c: _Context) -> None:
@@ -147,8 +181,12 @@ def _section_checks(c: _Context) -> None:
     ds = c.result.dataset
     fig = c.fig
     s = b.section("checks", "Data checks", "What was checked in the data before fitting.")
-    b.table(s, f"Checks of {ds.relpath}.", ["check", "status", "detail"],
-            [[chk.name, chk.status, chk.detail] for chk in ds.checks])
+    b.table(
+        s,
+        f"Checks of {ds.relpath}.",
+        ["check", "status", "detail"],
+        [[chk.name, chk.status, chk.detail] for chk in ds.checks],
+    )
     fig(s, "readings_per_subject")
     fig(s, "design")
 
@@ -157,16 +195,23 @@ def _section_mean(c: _Context) -> None:
     b = c.b
     fit = c.result.fit
     fig = c.fig
-    s = b.section("mean", "Mean curve", "The average curve over all subjects, with pointwise "
-                  f"and simultaneous {fit.options.band_level:.0%} bands.")
+    s = b.section(
+        "mean",
+        "Mean curve",
+        "The average curve over all subjects, with pointwise "
+        f"and simultaneous {fit.options.band_level:.0%} bands.",
+    )
     fig(s, "mean")
 
 
 def _section_covariance(c: _Context) -> None:
     b = c.b
     fig = c.fig
-    s = b.section("covariance", "Covariance and correlation", "How readings at two times vary "
-                  "together across subjects.")
+    s = b.section(
+        "covariance",
+        "Covariance and correlation",
+        "How readings at two times vary together across subjects.",
+    )
     fig(s, "covariance")
 
 
@@ -176,47 +221,81 @@ def _section_components(c: _Context) -> None:
     units = c.units
     unit = c.unit
     fig = c.fig
-    s = b.section("components", "Components", "The main modes of variation and how many were "
-                  "kept.")
+    s = b.section("components", "Components", "The main modes of variation and how many were kept.")
     n_ref = fit.likelihood.eigenvalues.size
-    b.table(s, f"Eigenvalues and fraction of variance explained (FVE). The first {n_ref} are "
-            "maximum likelihood estimates (the surface's values beside them); the rest are "
-            "the surface's.",
-            ["component", "eigenvalue" + unit("eigenvalue"),
-             "surface eigenvalue" + unit("eigenvalue"), "FVE", "cumulative FVE"],
-            [[k + 1, fit.all_eigenvalues[k], fit.surface_eigenvalues[k], fit.fve[k],
-              fit.cumulative_fve[k]] for k in range(min(fit.all_eigenvalues.size, 10))])
+    b.table(
+        s,
+        f"Eigenvalues and fraction of variance explained (FVE). The first {n_ref} are "
+        "maximum likelihood estimates (the surface's values beside them); the rest are "
+        "the surface's.",
+        [
+            "component",
+            "eigenvalue" + unit("eigenvalue"),
+            "surface eigenvalue" + unit("eigenvalue"),
+            "FVE",
+            "cumulative FVE",
+        ],
+        [
+            [
+                k + 1,
+                fit.all_eigenvalues[k],
+                fit.surface_eigenvalues[k],
+                fit.fve[k],
+                fit.cumulative_fve[k],
+            ]
+            for k in range(min(fit.all_eigenvalues.size, 10))
+        ],
+    )
     span = float(fit.grid[-1] - fit.grid[0])
-    b.text(s, "An eigenvalue is the variance of a component's score. The eigenfunctions have "
-           "unit norm over the whole time domain, so eigenvalues scale with its length "
-           f"({span:.4g}{' ' + units['time'] if units['time'] else ''}): eigenvalue / "
-           "domain length is the average variance the component adds to a single reading"
-           f"{unit('error variance')}; for the first component here "
-           f"{fit.eigenvalues[0] / span:.4g}, beside an error variance of "
-           f"{fit.error_variance:.4g}.")
-    b.text(s, f"{fit.all_eigenvalues.size} eigenvalues of the smoothed surface are positive; "
-           f"{fit.dropped_eigenvalues} negative or numerically zero ones were dropped (the "
-           f"negative ones sum to {fit.dropped_negative_sum:.3g}, "
-           f"{fit.dropped_negative_sum / fit.all_eigenvalues.sum():.1%} of the positive "
-           "total). FVE is relative to the positive total.")
+    b.text(
+        s,
+        "An eigenvalue is the variance of a component's score. The eigenfunctions have "
+        "unit norm over the whole time domain, so eigenvalues scale with its length "
+        f"({span:.4g}{' ' + units['time'] if units['time'] else ''}): eigenvalue / "
+        "domain length is the average variance the component adds to a single reading"
+        f"{unit('error variance')}; for the first component here "
+        f"{fit.eigenvalues[0] / span:.4g}, beside an error variance of "
+        f"{fit.error_variance:.4g}.",
+    )
+    b.text(
+        s,
+        f"{fit.all_eigenvalues.size} eigenvalues of the smoothed surface are positive; "
+        f"{fit.dropped_eigenvalues} negative or numerically zero ones were dropped (the "
+        f"negative ones sum to {fit.dropped_negative_sum:.3g}, "
+        f"{fit.dropped_negative_sum / fit.all_eigenvalues.sum():.1%} of the positive "
+        "total). FVE is relative to the positive total.",
+    )
     sel = fit.selection
-    b.table(s, f"Component selection: every criterion; the rule used was {sel.rule}. AIC, BIC "
-            f"and cv were computed over {sel.n_subjects_used} subjects, each K with its own "
-            "likelihood maximum (K eigenvalues and the error variance counted as parameters).",
-            ["K", "cumulative FVE", "AIC", "BIC", "cv error", "chosen"],
-            [[int(k), sel.cumulative_fve[i], sel.aic[i], sel.bic[i], sel.cv[i],
-              "chosen" if k == sel.chosen else ""] for i, k in enumerate(sel.k)])
+    b.table(
+        s,
+        f"Component selection: every criterion; the rule used was {sel.rule}. AIC, BIC "
+        f"and cv were computed over {sel.n_subjects_used} subjects, each K with its own "
+        "likelihood maximum (K eigenvalues and the error variance counted as parameters).",
+        ["K", "cumulative FVE", "AIC", "BIC", "cv error", "chosen"],
+        [
+            [
+                int(k),
+                sel.cumulative_fve[i],
+                sel.aic[i],
+                sel.bic[i],
+                sel.cv[i],
+                "chosen" if k == sel.chosen else "",
+            ]
+            for i, k in enumerate(sel.k)
+        ],
+    )
     fig(s, "eigenvalues")
     fig(s, "eigenfunctions")
     fig(s, "effects")
 
 
-
 def _subject_table(result: AnalysisResult, name: str) -> str:
     """Where a table of subjects is in the run directory."""
     if result.spec.subjects.tables == "parquet":
-        return (f"tables/{name}/, {len(result.subject_parts)} Parquet part(s) listed in "
-                f"tables/{name}/parts.json")
+        return (
+            f"tables/{name}/, {len(result.subject_parts)} Parquet part(s) listed in "
+            f"tables/{name}/parts.json"
+        )
     return f"tables/{name}.csv"
 
 
@@ -229,14 +308,19 @@ def _section_scores(c: _Context) -> None:
     s = b.section("scores", "Scores", "Where each subject sits on the components.")
     view = result.subjects_view
     first = view.farthest.iloc[:NAMED_FLAGGED]
-    named = ", ".join(f"{sid} ({d2:.3g})" for sid, d2 in
-                      zip(first.subject.astype(str), first.distance2, strict=True))
+    named = ", ".join(
+        f"{sid} ({d2:.3g})"
+        for sid, d2 in zip(first.subject.astype(str), first.distance2, strict=True)
+    )
     which = "" if view.n_flagged <= NAMED_FLAGGED else f"; the {NAMED_FLAGGED} farthest"
-    b.text(s, f"Rule: a subject is flagged when its squared Mahalanobis distance of the scores "
-           f"exceeds the {spec.subjects.outlier_quantile:g} quantile of the "
-           f"chi-square({fit.n_components}) distribution; {view.n_flagged} subject(s) flagged"
-           + (f"{which}: {named} (squared distance in brackets)" if named else "")
-           + f". Distances and flags of every subject: {_subject_table(result, 'scores')}.")
+    b.text(
+        s,
+        f"Rule: a subject is flagged when its squared Mahalanobis distance of the scores "
+        f"exceeds the {spec.subjects.outlier_quantile:g} quantile of the "
+        f"chi-square({fit.n_components}) distribution; {view.n_flagged} subject(s) flagged"
+        + (f"{which}: {named} (squared distance in brackets)" if named else "")
+        + f". Distances and flags of every subject: {_subject_table(result, 'scores')}.",
+    )
     fig(s, "scores")
 
 
@@ -246,23 +330,35 @@ def _section_trajectories(c: _Context) -> None:
     fit = c.result.fit
     spec = c.result.spec
     fig = c.fig
-    s = b.section("trajectories", "Trajectories", "Recovered curves of selected subjects with "
-                  "their readings and bands.")
+    s = b.section(
+        "trajectories",
+        "Trajectories",
+        "Recovered curves of selected subjects with their readings and bands.",
+    )
     chosen = list(spec.subjects.show)
-    b.text(s, "Subjects shown: " + (f"{', '.join(chosen)} as listed in subjects.show; then "
-                                    if chosen else "")
-           + "the rest of the "
-           f"{spec.subjects.count} at even steps through all subjects ordered by number of "
-           "readings, then id (from the fewest readings to the most), so that sparse and dense "
-           f"subjects both appear: {', '.join(result.shown_subjects)}. Inner band: pointwise "
-           f"{fit.options.band_level:.0%} ("
-           + ("corrected for the estimation of the population quantities by "
-              f"{len(fit.replicates)} resamples of subjects" if fit.replicates else
-              "plug-in: mean, eigenfunctions and variances taken as known")
-           + "); outer band: simultaneous over the whole curve."
-           + (" The trajectory of every subject, with plug-in bands: "
-              f"{_subject_table(result, 'all_trajectories')}."
-              if spec.subjects.all_trajectories else ""))
+    b.text(
+        s,
+        "Subjects shown: "
+        + (f"{', '.join(chosen)} as listed in subjects.show; then " if chosen else "")
+        + "the rest of the "
+        f"{spec.subjects.count} at even steps through all subjects ordered by number of "
+        "readings, then id (from the fewest readings to the most), so that sparse and dense "
+        f"subjects both appear: {', '.join(result.shown_subjects)}. Inner band: pointwise "
+        f"{fit.options.band_level:.0%} ("
+        + (
+            "corrected for the estimation of the population quantities by "
+            f"{len(fit.replicates)} resamples of subjects"
+            if fit.replicates
+            else "plug-in: mean, eigenfunctions and variances taken as known"
+        )
+        + "); outer band: simultaneous over the whole curve."
+        + (
+            " The trajectory of every subject, with plug-in bands: "
+            f"{_subject_table(result, 'all_trajectories')}."
+            if spec.subjects.all_trajectories
+            else ""
+        ),
+    )
     fig(s, "trajectories")
 
 
@@ -270,8 +366,11 @@ def _section_residuals(c: _Context) -> None:
     b = c.b
     result = c.result
     fig = c.fig
-    s = b.section("residuals", "Residual diagnostics", "Whether the readings scatter around the "
-                  "fitted curves as the model assumes.")
+    s = b.section(
+        "residuals",
+        "Residual diagnostics",
+        "Whether the readings scatter around the fitted curves as the model assumes.",
+    )
     fig(s, "residuals")
     import pandas as pd  # loaded already: the analysis made it
 
@@ -279,19 +378,24 @@ def _section_residuals(c: _Context) -> None:
     worst = view.worst
     rms = pd.Series(view.rms)
     over = view.sample_words()
-    b.text(s, "Each residual (reading minus fitted trajectory) is divided by its own standard "
-           "deviation under the fitted model, which is smaller than the error standard "
-           "deviation because the trajectory was fitted to the same readings; so about 1 is "
-           "expected when the model fits. Per subject, the root mean square of the "
-           f"standardized residuals has median {rms.median():.3g} and 90th percentile "
-           f"{rms.quantile(0.9):.3g}{f' (over {over})' if over else ''}; the Spearman "
-           "correlation of their size with the fitted "
-           f"value is {result.spread:.2f} (near 0 expected{_over_sample(result)}). The full "
-           f"list is {_subject_table(result, 'residuals_by_subject')}.")
-    b.table(s, f"The {len(worst)} subjects with the largest RMS standardized residual.",
-            ["subject", "readings", "mean residual", "RMS standardized"],
-            [[r.subject, r.n_obs, r.mean_residual, r.rms_standardized]
-             for r in worst.itertuples()])
+    b.text(
+        s,
+        "Each residual (reading minus fitted trajectory) is divided by its own standard "
+        "deviation under the fitted model, which is smaller than the error standard "
+        "deviation because the trajectory was fitted to the same readings; so about 1 is "
+        "expected when the model fits. Per subject, the root mean square of the "
+        f"standardized residuals has median {rms.median():.3g} and 90th percentile "
+        f"{rms.quantile(0.9):.3g}{f' (over {over})' if over else ''}; the Spearman "
+        "correlation of their size with the fitted "
+        f"value is {result.spread:.2f} (near 0 expected{_over_sample(result)}). The full "
+        f"list is {_subject_table(result, 'residuals_by_subject')}.",
+    )
+    b.table(
+        s,
+        f"The {len(worst)} subjects with the largest RMS standardized residual.",
+        ["subject", "readings", "mean residual", "RMS standardized"],
+        [[r.subject, r.n_obs, r.mean_residual, r.rms_standardized] for r in worst.itertuples()],
+    )
 
 
 def _tested(result: AnalysisResult) -> str:
@@ -314,31 +418,58 @@ def _section_sensitivity(c: _Context) -> None:
     fit = c.result.fit
     spec = c.result.spec
     fig = c.fig
-    s = b.section("sensitivity", "Sensitivity to the bandwidths", "How the estimates move when "
-                  "both bandwidths are multiplied by a factor.")
+    s = b.section(
+        "sensitivity",
+        "Sensitivity to the bandwidths",
+        "How the estimates move when both bandwidths are multiplied by a factor.",
+    )
     thr = spec.sensitivity.similarity_threshold
     rows = []
     rule = fit.options.component_rule
     for run in result.sensitivity:
-        rows.append([run.factor, run.mean_bandwidth, run.covariance_bandwidth,
-                     run.diagonal_bandwidth,
-                     run.fit.rule_picks(rule) if run.fit else "—",
-                     run.fit.error_variance if run.fit else float("nan"),
-                     ", ".join(_fmt(x) if np.isfinite(x) else "absent"
-                               for x in run.similarity)
-                     or f"not computed: {run.error}"])
-    b.table(s, "Key estimates per bandwidth setting: K is the number of components the rule "
-            f"({rule}) picks at that setting; similarity is |inner product| of each of the main "
-            "fit's eigenfunctions with the same component of that setting (absent: that "
-            "setting's fit gives the component no variance; counted as not stable).",
-            ["factor", "mean bw", "covariance bw", "diagonal bw", "K", "error variance",
-             "similarity"], rows)
-    b.text(s, result.factors_note + " A setting that could not be computed is shown as not "
-           "computed with its reason and does not enter the verdict.")
-    b.table(s, f"Verdict per component (stable when every similarity of the computed settings "
-            f"is at least {thr:g}).", ["component", "verdict"],
-            [[k + 1, {True: "stable", False: "not stable", None: "not assessed (no setting "
-                      "could be computed)"}[ok]] for k, ok in enumerate(result.stable)])
+        rows.append(
+            [
+                run.factor,
+                run.mean_bandwidth,
+                run.covariance_bandwidth,
+                run.diagonal_bandwidth,
+                run.fit.rule_picks(rule) if run.fit else "—",
+                run.fit.error_variance if run.fit else float("nan"),
+                ", ".join(_fmt(x) if np.isfinite(x) else "absent" for x in run.similarity)
+                or f"not computed: {run.error}",
+            ]
+        )
+    b.table(
+        s,
+        "Key estimates per bandwidth setting: K is the number of components the rule "
+        f"({rule}) picks at that setting; similarity is |inner product| of each of the main "
+        "fit's eigenfunctions with the same component of that setting (absent: that "
+        "setting's fit gives the component no variance; counted as not stable).",
+        ["factor", "mean bw", "covariance bw", "diagonal bw", "K", "error variance", "similarity"],
+        rows,
+    )
+    b.text(
+        s,
+        result.factors_note + " A setting that could not be computed is shown as not "
+        "computed with its reason and does not enter the verdict.",
+    )
+    b.table(
+        s,
+        f"Verdict per component (stable when every similarity of the computed settings "
+        f"is at least {thr:g}).",
+        ["component", "verdict"],
+        [
+            [
+                k + 1,
+                {
+                    True: "stable",
+                    False: "not stable",
+                    None: "not assessed (no setting could be computed)",
+                }[ok],
+            ]
+            for k, ok in enumerate(result.stable)
+        ],
+    )
     fig(s, "sensitivity")
     fig(s, "bandwidths")
 
@@ -346,8 +477,9 @@ def _section_sensitivity(c: _Context) -> None:
 def _section_caveats(c: _Context) -> None:
     b = c.b
     result = c.result
-    s = b.section("caveats", "Caveats", "What could be wrong with these results, and how to "
-                  "use them.")
+    s = b.section(
+        "caveats", "Caveats", "What could be wrong with these results, and how to use them."
+    )
     b.items(s, list(result.caveats) + list(STANDARD_CAUTIONS))
 
 
@@ -355,12 +487,18 @@ def _section_reproducibility(c: _Context) -> None:
     b = c.b
     spec = c.result.spec
     record_view = c.record_view
-    s = b.section("reproducibility", "Reproducibility", "How to re-run this analysis and "
-                  "confirm by hash that nothing changed.")
+    s = b.section(
+        "reproducibility",
+        "Reproducibility",
+        "How to re-run this analysis and confirm by hash that nothing changed.",
+    )
     b.table(s, "Record.", ["item", "value"], [[k, v] for k, v in record_view["items"]])
-    b.text(s, "Across machines the numbers reproduce (verify compares every table within a "
-           "relative 1e-6); the rendered HTML, figures and PDF reproduce byte for byte only "
-           "with the same fonts and library versions (the environment above).")
+    b.text(
+        s,
+        "Across machines the numbers reproduce (verify compares every table within a "
+        "relative 1e-6); the rendered HTML, figures and PDF reproduce byte for byte only "
+        "with the same fonts and library versions (the environment above).",
+    )
     b.text(s, record_view["commands"], kind="pre")
     b.text(s, spec.raw.decode("utf-8"), kind="pre")
 
@@ -370,21 +508,32 @@ def _section_groups(c: _Context) -> None:
     if g is None:
         return
     su = spec.units()["score"]
-    s = b.section("groups", "Groups", f"The subjects by {spec.data.group}: mean curves, "
-                  "scores and a test of equal mean scores.")
+    s = b.section(
+        "groups",
+        "Groups",
+        f"The subjects by {spec.data.group}: mean curves, scores and a test of equal mean scores.",
+    )
     k = fit.n_components
-    b.table(s, "Subjects and average scores per group (descriptive).",
-            ["group", "subjects"] + [f"mean score {j + 1}" + (f" ({su})" if su else "")
-                                     for j in range(k)],
-            [[label, int(n), *g.score_means[i]]
-             for i, (label, n) in enumerate(zip(g.labels, g.n_subjects, strict=True))])
+    b.table(
+        s,
+        "Subjects and average scores per group (descriptive).",
+        ["group", "subjects"]
+        + [f"mean score {j + 1}" + (f" ({su})" if su else "") for j in range(k)],
+        [
+            [label, int(n), *g.score_means[i]]
+            for i, (label, n) in enumerate(zip(g.labels, g.n_subjects, strict=True))
+        ],
+    )
     resolution = 1 / (1 + g.permutations)
-    b.text(s, f"Test of equal mean scores across the {len(g.labels)} groups, on the {k} "
-           "retained component(s) together: Pillai's trace of a one-way MANOVA of the scores "
-           f"is {g.statistic:.4g}; its p-value by {g.permutations} random permutations of the "
-           f"group labels over {_tested(c.result)} (seed {g.seed}) is {g.p_value:.4g} (the "
-           f"smallest p-value this number of permutations can give is {resolution:.2g}). The "
-           "scores come from one model fitted to all groups together; see the caveats.")
+    b.text(
+        s,
+        f"Test of equal mean scores across the {len(g.labels)} groups, on the {k} "
+        "retained component(s) together: Pillai's trace of a one-way MANOVA of the scores "
+        f"is {g.statistic:.4g}; its p-value by {g.permutations} random permutations of the "
+        f"group labels over {_tested(c.result)} (seed {g.seed}) is {g.p_value:.4g} (the "
+        f"smallest p-value this number of permutations can give is {resolution:.2g}). The "
+        "scores come from one model fitted to all groups together; see the caveats.",
+    )
     c.fig(s, "group_means")
     c.fig(s, "group_scores")
 
@@ -408,13 +557,17 @@ SECTIONS: dict[str, Callable[[_Context], None]] = {
 }
 
 
-def build_sections(result: AnalysisResult, record_view: dict[str, Any],
-                   figures: dict[str, tuple[str, str, str]], numbering: str = "",
-                   order: Sequence[str] | None = None) -> list[Section]:
+def build_sections(
+    result: AnalysisResult,
+    record_view: dict[str, Any],
+    figures: dict[str, tuple[str, str, str]],
+    numbering: str = "",
+    order: Sequence[str] | None = None,
+) -> list[Section]:
     """Sections in report order (``order``: names from SECTIONS; default all of them).
     ``figures`` maps a name to (svg, caption, alt); tables and figures are numbered
     ``numbering.1``, ``numbering.2``, ... when a prefix is given."""
     context = _Context(_Builder(numbering), result, record_view, figures)
-    for name in (order or SECTIONS):
+    for name in order or SECTIONS:
         SECTIONS[name](context)
     return context.b.sections

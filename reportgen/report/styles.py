@@ -55,12 +55,14 @@ def _read(spec: Spec, field: str, limit: int) -> InputFile:
         if not path.is_file():
             raise SpecError(f"report.{field} {relpath!r} is not a regular file")
         if size > limit:
-            raise SpecError(f"report.{field} {relpath!r} is {size} bytes; at most {limit} "
-                            "are allowed")
+            raise SpecError(
+                f"report.{field} {relpath!r} is {size} bytes; at most {limit} are allowed"
+            )
         data = path.read_bytes()
     except FileNotFoundError:
-        raise SpecError(f"report.{field} {relpath!r} does not exist (looked for "
-                        f"{str(path)!r})") from None
+        raise SpecError(
+            f"report.{field} {relpath!r} does not exist (looked for {str(path)!r})"
+        ) from None
     except OSError as e:
         raise SpecError(f"report.{field} {relpath!r} cannot be read: {e.strerror}") from e
     return InputFile(field, relpath, data)
@@ -70,20 +72,25 @@ def _text(file: InputFile) -> str:
     try:
         return file.data.decode("utf-8")
     except UnicodeDecodeError as e:
-        raise SpecError(f"report.{file.role} {file.path!r} is not UTF-8 text (byte "
-                        f"{e.start})") from e
+        raise SpecError(
+            f"report.{file.role} {file.path!r} is not UTF-8 text (byte {e.start})"
+        ) from e
 
 
 def _stylesheet(file: InputFile) -> str:
     text = _text(file)
     lowered = text.lower()
     if "<" in text:
-        raise SpecError(f"report.stylesheet {file.path!r} contains '<': a style sheet holds "
-                        "CSS only")
-    if "@import" in lowered or any(not rest.lstrip(" '\"").startswith(("data:", "#"))
-                                   for rest in lowered.split("url(")[1:]):
-        raise SpecError(f"report.stylesheet {file.path!r} refers to other files or URLs "
-                        "(@import or url()); only data: URIs are allowed, nothing is fetched")
+        raise SpecError(
+            f"report.stylesheet {file.path!r} contains '<': a style sheet holds CSS only"
+        )
+    if "@import" in lowered or any(
+        not rest.lstrip(" '\"").startswith(("data:", "#")) for rest in lowered.split("url(")[1:]
+    ):
+        raise SpecError(
+            f"report.stylesheet {file.path!r} refers to other files or URLs "
+            "(@import or url()); only data: URIs are allowed, nothing is fetched"
+        )
     return text
 
 
@@ -94,8 +101,9 @@ def _logo(file: InputFile) -> str:
     elif file.path.lower().endswith(".svg") and b"<svg" in data[:4096]:
         mime = "image/svg+xml"
     else:
-        raise SpecError(f"report.logo {file.path!r} must be a PNG or SVG file (by its name "
-                        "and its content)")
+        raise SpecError(
+            f"report.logo {file.path!r} must be a PNG or SVG file (by its name and its content)"
+        )
     return f"data:{mime};base64,{base64.b64encode(data).decode('ascii')}"
 
 
@@ -112,8 +120,10 @@ def load_style(spec: Spec) -> Style:
         inputs.append(file)
         user, name = _text(file), "user"
     else:
-        raise SpecError(f"report.template must be a shipped style ({', '.join(STYLES)}) or a "
-                        f".j2 or .html file relative to the spec; got {template!r}.")
+        raise SpecError(
+            f"report.template must be a shipped style ({', '.join(STYLES)}) or a "
+            f".j2 or .html file relative to the spec; got {template!r}."
+        )
     base = "default" if name == "user" else name
     css = shipped_css("default") + ("" if base == "default" else "\n" + shipped_css(base))
     if r.stylesheet:
@@ -125,5 +135,6 @@ def load_style(spec: Spec) -> Style:
         file = _read(spec, "logo", MAX_LOGO_BYTES)
         inputs.append(file)
         logo = _logo(file)
-    return Style(name, user, css, logo, r.header, r.footer, r.numbering, r.sections or None,
-                 tuple(inputs))
+    return Style(
+        name, user, css, logo, r.header, r.footer, r.numbering, r.sections or None, tuple(inputs)
+    )

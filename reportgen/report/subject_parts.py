@@ -94,15 +94,19 @@ class PartInput:
     n_obs: np.ndarray
 
 
-def made_part(given: PartInput, scores: tuple[FloatArray, FloatArray],
-              sums: tuple[FloatArray, FloatArray], model: FPCAFit, cut: float, curves: bool
-              ) -> dict[str, tuple[bytes, int, int, str]]:
+def made_part(
+    given: PartInput,
+    scores: tuple[FloatArray, FloatArray],
+    sums: tuple[FloatArray, FloatArray],
+    model: FPCAFit,
+    cut: float,
+    curves: bool,
+) -> dict[str, tuple[bytes, int, int, str]]:
     """A task: one part's tables of subjects as Parquet bytes, with their rows and the
     length and SHA-256 of their canonical CSV (the text itself stays where it was made).
     ``scores``: the part's kept scores and covariances; ``sums``: its kept residual sums;
     ``model``: the fit without its subjects; ``cut``: the flagging distance."""
-    frames = subject_frames(model, given.ids, given.groups, given.n_obs, *scores, sums, cut,
-                            curves)
+    frames = subject_frames(model, given.ids, given.groups, given.n_obs, *scores, sums, cut, curves)
     out = {}
     for name, frame in frames.items():
         text = to_csv_bytes(frame)
@@ -123,8 +127,9 @@ def _batches(sizes: list[int], per_subject: int) -> list[range]:
     first = 0
     while first < len(sizes):
         last, rows = first, 0
-        while last < len(sizes) and (last < first + 2 or
-                                     rows + sizes[last] * per_subject <= BATCH_ROWS):
+        while last < len(sizes) and (
+            last < first + 2 or rows + sizes[last] * per_subject <= BATCH_ROWS
+        ):
             rows += sizes[last] * per_subject
             last += 1
         out.append(range(first, last))
@@ -132,8 +137,9 @@ def _batches(sizes: list[int], per_subject: int) -> list[range]:
     return out
 
 
-def subject_parts(result: AnalysisResult, run_on: Executor
-                  ) -> Iterator[tuple[str, PartEntry, bytes]]:
+def subject_parts(
+    result: AnalysisResult, run_on: Executor
+) -> Iterator[tuple[str, PartEntry, bytes]]:
     """Every part of every table of subjects: its table, its entry (run-relative file, rows,
     sizes, digests) and its Parquet bytes, in batches of ``BATCH_ROWS`` output rows made by
     the tasks of ``run_on`` (the engine's executor, where the fit's results are kept); the
@@ -146,20 +152,35 @@ def subject_parts(result: AnalysisResult, run_on: Executor
     model = replace(fit.without_subjects(), n_obs=fit.n_obs[:0])
     per_subject = 2 + (fit.grid.size if curves else 0)
     for indices in _batches([p.size for p in parts], per_subject):
-        given = [PartInput(fit.subjects[parts[i]], subject_groups(result, parts[i]),
-                           fit.n_obs[parts[i]]) for i in indices]
+        given = [
+            PartInput(fit.subjects[parts[i]], subject_groups(result, parts[i]), fit.n_obs[parts[i]])
+            for i in indices
+        ]
         # placed first: arrays sent inside a task make a large task graph (Dask warns)
         placed = run_on.place(given)
         del given
-        made = run_on.map(made_part, placed,
-                          [(scores.handles[i], sums.handles[i]) for i in indices],
-                          (model, result.subjects_view.cut, curves))
+        made = run_on.map(
+            made_part,
+            placed,
+            [(scores.handles[i], sums.handles[i]) for i in indices],
+            (model, result.subjects_view.cut, curves),
+        )
         del placed
         for index, tables in zip(indices, made, strict=True):
             for name in names:
                 data, rows, csv_bytes, csv_sha256 = tables[name]
-                yield name, PartEntry(part_file(name, index), rows, len(data), _sha256(data),
-                                      csv_bytes, csv_sha256), data
+                yield (
+                    name,
+                    PartEntry(
+                        part_file(name, index),
+                        rows,
+                        len(data),
+                        _sha256(data),
+                        csv_bytes,
+                        csv_sha256,
+                    ),
+                    data,
+                )
 
 
 def part_list_bytes(table: str, entries: list[PartEntry]) -> bytes:
@@ -167,7 +188,7 @@ def part_list_bytes(table: str, entries: list[PartEntry]) -> bytes:
     content: dict[str, Any] = {
         "table": table,
         "format": f"Parquet ({COMPRESSION}); one part per data file holding readings, in "
-                  "the input manifest's order; subjects in code order within a part",
+        "the input manifest's order; subjects in code order within a part",
         "rows": sum(e.rows for e in entries),
         "parts": [{**asdict(e), "file": Path(e.file).name} for e in entries],
     }
@@ -178,8 +199,7 @@ def read_part_list(run: Path, table: str) -> list[PartEntry]:
     """The entries of a run's parts.json for ``table`` (ValueError when unreadable)."""
     try:
         content = json.loads((run / part_list_file(table)).read_text("utf-8"))
-        return [PartEntry(**{**p, "file": f"tables/{table}/{p['file']}"})
-                for p in content["parts"]]
+        return [PartEntry(**{**p, "file": f"tables/{table}/{p['file']}"}) for p in content["parts"]]
     except (OSError, KeyError, TypeError, json.JSONDecodeError) as e:
         raise ValueError(f"{part_list_file(table)} cannot be read: {e}") from e
 

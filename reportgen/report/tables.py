@@ -32,7 +32,7 @@ def to_csv_bytes(frame: pd.DataFrame) -> bytes:
         header = '""'
     parts = [(header + "\n").encode("utf-8")]
     for start in range(0, len(frame), CSV_BLOCK_ROWS):
-        block = frame.iloc[start:start + CSV_BLOCK_ROWS]
+        block = frame.iloc[start : start + CSV_BLOCK_ROWS]
         maybe = [_column_text(block[c]) for c in block.columns]
         columns = [col for col in maybe if col is not None]
         if len(columns) < len(maybe):
@@ -71,8 +71,10 @@ def _column_text(series: pd.Series) -> list[str] | None:
         return [str(v) for v in series.tolist()]
     if (isinstance(dtype, np.dtype) and dtype.kind == "O") or isinstance(dtype, pd.StringDtype):
         cells = series.tolist()
-        if not all(isinstance(v, str) or v is None or (isinstance(v, float) and v != v)
-                   or v is pd.NA for v in cells):
+        if not all(
+            isinstance(v, str) or v is None or (isinstance(v, float) and v != v) or v is pd.NA
+            for v in cells
+        ):
             return None
         text = ["" if not isinstance(v, str) else v for v in cells]
         joined = "\x00".join(text)  # one scan for the characters that need quoting
@@ -87,20 +89,29 @@ def build_tables(result: AnalysisResult) -> dict[str, pd.DataFrame]:
     k = fit.n_components
     tables: dict[str, pd.DataFrame] = {}
     z, zs = fit.band_multiplier(), fit.mean_simultaneous_multiplier
-    tables["mean"] = pd.DataFrame({
-        "time": fit.grid, "mean": fit.mean, "standard_error": fit.mean_se,
-        "lower": fit.mean - z * fit.mean_se, "upper": fit.mean + z * fit.mean_se,
-        "lower_simultaneous": fit.mean - zs * fit.mean_se,
-        "upper_simultaneous": fit.mean + zs * fit.mean_se,
-    })
+    tables["mean"] = pd.DataFrame(
+        {
+            "time": fit.grid,
+            "mean": fit.mean,
+            "standard_error": fit.mean_se,
+            "lower": fit.mean - z * fit.mean_se,
+            "upper": fit.mean + z * fit.mean_se,
+            "lower_simultaneous": fit.mean - zs * fit.mean_se,
+            "upper_simultaneous": fit.mean + zs * fit.mean_se,
+        }
+    )
     n_all = fit.all_eigenvalues.size
-    tables["components"] = pd.DataFrame({
-        "component": np.arange(1, n_all + 1),
-        "eigenvalue": fit.all_eigenvalues, "fve": fit.fve, "cumulative_fve": fit.cumulative_fve,
-        "retained": np.arange(n_all) < k,
-        "refined": np.arange(n_all) < fit.likelihood.eigenvalues.size,
-        "surface_eigenvalue": fit.surface_eigenvalues,
-    })
+    tables["components"] = pd.DataFrame(
+        {
+            "component": np.arange(1, n_all + 1),
+            "eigenvalue": fit.all_eigenvalues,
+            "fve": fit.fve,
+            "cumulative_fve": fit.cumulative_fve,
+            "retained": np.arange(n_all) < k,
+            "refined": np.arange(n_all) < fit.likelihood.eigenvalues.size,
+            "surface_eigenvalue": fit.surface_eigenvalues,
+        }
+    )
     ef = pd.DataFrame({"time": fit.grid})
     for j in range(k):
         ef[f"phi_{j + 1}"] = fit.eigenfunctions[:, j]
@@ -116,36 +127,61 @@ def build_tables(result: AnalysisResult) -> dict[str, pd.DataFrame]:
     )
     sel = fit.selection
     tables["bandwidths"] = pd.DataFrame(
-        [(what, h, c, h == choice.value) for what, choice in (
-            ("mean", fit.mean_bandwidth_choice), ("covariance", fit.covariance_bandwidth_choice),
-            ("diagonal", fit.diagonal_bandwidth_choice))
-         for h, c in zip(choice.candidates or (choice.value,),
-                         choice.criterion or (np.nan,), strict=True)],
-        columns=["smoother", "bandwidth", "criterion", "chosen"])
-    tables["selection"] = pd.DataFrame({
-        "components": sel.k, "cumulative_fve": sel.cumulative_fve, "aic": sel.aic,
-        "bic": sel.bic, "cv_error": sel.cv, "chosen": sel.k == sel.chosen,
-    })
+        [
+            (what, h, c, h == choice.value)
+            for what, choice in (
+                ("mean", fit.mean_bandwidth_choice),
+                ("covariance", fit.covariance_bandwidth_choice),
+                ("diagonal", fit.diagonal_bandwidth_choice),
+            )
+            for h, c in zip(
+                choice.candidates or (choice.value,), choice.criterion or (np.nan,), strict=True
+            )
+        ],
+        columns=["smoother", "bandwidth", "criterion", "chosen"],
+    )
+    tables["selection"] = pd.DataFrame(
+        {
+            "components": sel.k,
+            "cumulative_fve": sel.cumulative_fve,
+            "aic": sel.aic,
+            "bic": sel.bic,
+            "cv_error": sel.cv,
+            "chosen": sel.k == sel.chosen,
+        }
+    )
     rows = []
     for run in result.sensitivity:
-        row: dict[str, object] = {"factor": run.factor, "mean_bandwidth": run.mean_bandwidth,
-                                  "covariance_bandwidth": run.covariance_bandwidth,
-                                  "diagonal_bandwidth": run.diagonal_bandwidth}
+        row: dict[str, object] = {
+            "factor": run.factor,
+            "mean_bandwidth": run.mean_bandwidth,
+            "covariance_bandwidth": run.covariance_bandwidth,
+            "diagonal_bandwidth": run.diagonal_bandwidth,
+        }
         if run.fit is None:
             row.update({"n_components": np.nan, "error_variance": np.nan, "note": run.error})
         else:
-            row.update({"n_components": run.fit.rule_picks(result.spec.options.component_rule),
-                        "error_variance": run.fit.error_variance, "note": ""})
+            row.update(
+                {
+                    "n_components": run.fit.rule_picks(result.spec.options.component_rule),
+                    "error_variance": run.fit.error_variance,
+                    "note": "",
+                }
+            )
         for j in range(k):
-            ev = run.fit.all_eigenvalues[j] if run.fit is not None and \
-                j < run.fit.all_eigenvalues.size else np.nan
+            ev = (
+                run.fit.all_eigenvalues[j]
+                if run.fit is not None and j < run.fit.all_eigenvalues.size
+                else np.nan
+            )
             row[f"eigenvalue_{j + 1}"] = ev
             row[f"similarity_{j + 1}"] = run.similarity[j] if run.similarity else np.nan
         rows.append(row)
     tables["sensitivity"] = pd.DataFrame(rows)
     tables["model"] = fit.predictor.to_frame()
-    tables["units"] = pd.DataFrame(sorted(result.spec.units().items()),
-                                   columns=["quantity", "unit"])
+    tables["units"] = pd.DataFrame(
+        sorted(result.spec.units().items()), columns=["quantity", "unit"]
+    )
     return tables
 
 
@@ -162,11 +198,16 @@ def group_tables(result: AnalysisResult) -> dict[str, pd.DataFrame]:
     summary["permutations"] = g.permutations
     summary["seed"] = g.seed
     n_grid = fit.grid.size
-    means = pd.DataFrame({
-        "group": np.repeat(list(g.labels), n_grid), "time": np.tile(fit.grid, len(g.labels)),
-        "mean": g.means.ravel(), "standard_error": g.mean_se.ravel(),
-        "lower": (g.means - z * g.mean_se).ravel(), "upper": (g.means + z * g.mean_se).ravel(),
-    })
+    means = pd.DataFrame(
+        {
+            "group": np.repeat(list(g.labels), n_grid),
+            "time": np.tile(fit.grid, len(g.labels)),
+            "mean": g.means.ravel(),
+            "standard_error": g.mean_se.ravel(),
+            "lower": (g.means - z * g.mean_se).ravel(),
+            "upper": (g.means + z * g.mean_se).ravel(),
+        }
+    )
     return {"groups": summary, "group_means": means}
 
 
@@ -174,8 +215,9 @@ def canonical_bytes(tables: dict[str, pd.DataFrame]) -> dict[str, bytes]:
     return {f"tables/{name}.csv": to_csv_bytes(frame) for name, frame in sorted(tables.items())}
 
 
-def results_digest(canonical: dict[str, bytes],
-                   parts: dict[str, tuple[int, str]] | None = None) -> str:
+def results_digest(
+    canonical: dict[str, bytes], parts: dict[str, tuple[int, str]] | None = None
+) -> str:
     """SHA-256 over the canonical tables: name, length and bytes of each, in name order.
     A table written in parts (``parts``: each part's run-relative name -> the length and
     SHA-256 of its canonical CSV) enters as each part's name, length and SHA-256 (hex)."""

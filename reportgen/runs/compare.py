@@ -36,8 +36,9 @@ def _table(run_dir: Path, name: str, columns: list[str] | None = None) -> pd.Dat
 
         try:
             files = [run_dir / e.file for e in read_part_list(run_dir, name)]
-            return pd.concat([pq.read_table(f, columns=columns).to_pandas() for f in files],
-                             ignore_index=True)
+            return pd.concat(
+                [pq.read_table(f, columns=columns).to_pandas() for f in files], ignore_index=True
+            )
         except (ValueError, OSError) as e:
             raise RecordError(f"{str(run_dir)!r}: tables/{name} cannot be read: {e}") from e
     raise RecordError(f"{str(run_dir)!r} has no tables/{name}.csv")
@@ -52,8 +53,9 @@ def _units(run_dir: Path) -> tuple[str, str]:
         raise RecordError(f"{str(run_dir)!r} has no spec.yaml")
     data = parse_spec_bytes(path.read_bytes(), f"{run_dir}/spec.yaml").get("data", {})
     data = data if isinstance(data, dict) else {}
-    return str(data.get("time_unit", "")), value_unit(str(data.get("value_unit", "")),
-                                                      str(data.get("transform", "none")))
+    return str(data.get("time_unit", "")), value_unit(
+        str(data.get("value_unit", "")), str(data.get("transform", "none"))
+    )
 
 
 def _same_report(a: Path, b: Path, ra: dict[str, Any], rb: dict[str, Any]) -> None:
@@ -68,8 +70,11 @@ def _same_report(a: Path, b: Path, ra: dict[str, Any], rb: dict[str, Any]) -> No
     if va != vb:
         problems.append(f"value units {va!r} and {vb!r}")
     if problems:
-        raise RecordError("these runs belong to different reports and cannot be compared: "
-                          + "; ".join(problems) + ". Compare versions of one report.")
+        raise RecordError(
+            "these runs belong to different reports and cannot be compared: "
+            + "; ".join(problems)
+            + ". Compare versions of one report."
+        )
 
 
 def compare_runs(a: Path, b: Path, gates: GatesSection) -> list[Finding]:
@@ -81,8 +86,13 @@ def compare_runs(a: Path, b: Path, gates: GatesSection) -> list[Finding]:
     ib = {i["path"]: i["sha256"] for i in rb["inputs"]}
     for path in sorted(set(ia) | set(ib)):
         same = ia.get(path) == ib.get(path)
-        out.append(Finding(f"input {path}", (ia.get(path) or "absent")[:12],
-                           (ib.get(path) or "absent")[:12] + ("" if same else " (changed)")))
+        out.append(
+            Finding(
+                f"input {path}",
+                (ia.get(path) or "absent")[:12],
+                (ib.get(path) or "absent")[:12] + ("" if same else " (changed)"),
+            )
+        )
     out.append(Finding("spec", ra["spec"]["sha256"][:12], rb["spec"]["sha256"][:12]))
     sa, sb = (_table(r, "scores", ["subject", "n_obs"]) for r in (a, b))
     added = sorted(set(sb.subject) - set(sa.subject))
@@ -93,31 +103,54 @@ def compare_runs(a: Path, b: Path, gates: GatesSection) -> list[Finding]:
     for key in ("mean_bandwidth", "covariance_bandwidth"):
         out.append(Finding(key, f"{seta[key]['value']:.4g}", f"{setb[key]['value']:.4g}"))
     ka, kb = seta["n_components"], setb["n_components"]
-    out.append(Finding("components", str(ka), str(kb),
-                       bool(gates.same_components) and ka != kb))
+    out.append(Finding("components", str(ka), str(kb), bool(gates.same_components) and ka != kb))
     ca, cb = _table(a, "components"), _table(b, "components")
     for k in range(min(ka, kb)):
         la, lb = ca.eigenvalue[k], cb.eigenvalue[k]
         rel = abs(lb - la) / abs(la)
-        out.append(Finding(f"eigenvalue {k + 1}", f"{la:.4g}", f"{lb:.4g} ({rel:+.1%})",
-                           rel > gates.max_eigenvalue_change))
+        out.append(
+            Finding(
+                f"eigenvalue {k + 1}",
+                f"{la:.4g}",
+                f"{lb:.4g} ({rel:+.1%})",
+                rel > gates.max_eigenvalue_change,
+            )
+        )
         out.append(Finding(f"FVE {k + 1}", f"{ca.fve[k]:.3f}", f"{cb.fve[k]:.3f}"))
     va, vb = seta["error_variance"], setb["error_variance"]
     rel = abs(vb - va) / abs(va)
-    out.append(Finding("error variance", f"{va:.4g}", f"{vb:.4g} ({rel:+.1%})",
-                       rel > gates.max_error_variance_change))
+    out.append(
+        Finding(
+            "error variance",
+            f"{va:.4g}",
+            f"{vb:.4g} ({rel:+.1%})",
+            rel > gates.max_error_variance_change,
+        )
+    )
     ma, mb = _table(a, "mean"), _table(b, "mean")
     grid = ma.time.to_numpy()
     mb_on_a = np.interp(grid, mb.time.to_numpy(), mb["mean"].to_numpy())
     span = float(np.ptp(ma["mean"])) or 1.0
     change = float(np.max(np.abs(mb_on_a - ma["mean"].to_numpy())))
-    out.append(Finding("largest mean change", "", f"{change:.4g} ({change / span:.1%} of range)",
-                       change / span > gates.max_mean_change))
+    out.append(
+        Finding(
+            "largest mean change",
+            "",
+            f"{change:.4g} ({change / span:.1%} of range)",
+            change / span > gates.max_mean_change,
+        )
+    )
     ea, eb = _table(a, "eigenfunctions"), _table(b, "eigenfunctions")
     w = trapezoid_weights(grid)
     for k in range(min(ka, kb)):
         fb = np.interp(grid, eb.time.to_numpy(), eb[f"phi_{k + 1}"].to_numpy())
         sim = float(abs(np.sum(w * ea[f"phi_{k + 1}"].to_numpy() * fb)))
-        out.append(Finding(f"eigenfunction {k + 1} similarity", "", f"{sim:.3f}",
-                           sim < gates.min_eigenfunction_similarity))
+        out.append(
+            Finding(
+                f"eigenfunction {k + 1} similarity",
+                "",
+                f"{sim:.3f}",
+                sim < gates.min_eigenfunction_similarity,
+            )
+        )
     return out

@@ -57,8 +57,9 @@ def run_files(run: Path) -> list[str]:
     return sorted(p.relative_to(run).as_posix() for p in run.rglob("*") if p.is_file())
 
 
-def integrity_findings(run: Path, recorded_outputs: dict[str, str] | None
-                    ) -> tuple[int, list[FileFinding]]:
+def integrity_findings(
+    run: Path, recorded_outputs: dict[str, str] | None
+) -> tuple[int, list[FileFinding]]:
     """Check every file of ``run`` against its SHA256SUMS; returns (files checked, findings).
 
     Where the record's own list of outputs agrees with the file and disagrees with
@@ -68,8 +69,7 @@ def integrity_findings(run: Path, recorded_outputs: dict[str, str] | None
     if not path.is_file():
         return 0, [FileFinding(SUMS, "missing", "the run has no checksum list")]
     entries, bad = parse_checksum_list(path.read_bytes())
-    findings = [FileFinding(SUMS, "changed", f"line {n} is not '<sha256>  <file>'")
-                for n in bad]
+    findings = [FileFinding(SUMS, "changed", f"line {n} is not '<sha256>  <file>'") for n in bad]
     present = set(run_files(run)) - {SUMS}
     recorded = recorded_outputs or {}
     for name in sorted(set(entries) | present):

@@ -78,14 +78,19 @@ def load_fit(run_dir: str | Path) -> StoredFit:
     record = load_record(run)
     _, findings = integrity_findings(run, record["outputs"])
     if findings:
-        listed = "; ".join(f"{f.name}: {f.kind}" + (f" ({f.detail})" if f.detail else "")
-                           for f in findings[:5])
-        raise RecordError(f"the run {str(run)!r} fails its integrity check ({listed}); "
-                          "predictions from it would not be those of the recorded analysis")
+        listed = "; ".join(
+            f"{f.name}: {f.kind}" + (f" ({f.detail})" if f.detail else "") for f in findings[:5]
+        )
+        raise RecordError(
+            f"the run {str(run)!r} fails its integrity check ({listed}); "
+            "predictions from it would not be those of the recorded analysis"
+        )
     model = run / "tables" / "model.csv"
     if not model.is_file():
-        raise RecordError(f"the run {str(run)!r} has no tables/model.csv (made by an earlier "
-                          "version of reportgen); re-run its spec to predict from it")
+        raise RecordError(
+            f"the run {str(run)!r} has no tables/model.csv (made by an earlier "
+            "version of reportgen); re-run its spec to predict from it"
+        )
     spec = spec_from_bytes((run / "spec.yaml").read_bytes(), run / "spec.yaml")
     try:
         predictor = Predictor.from_frame(pd.read_csv(model))

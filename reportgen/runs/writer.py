@@ -60,8 +60,10 @@ class RunOutputs:
     @property
     def outputs(self) -> dict[str, str]:
         """SHA-256 of every file built so far (the parts as written)."""
-        return {**{name: sha256_bytes(data) for name, data in self.files.items()},
-                **{name: e.sha256 for name, e in self.parts.items()}}
+        return {
+            **{name: sha256_bytes(data) for name, data in self.files.items()},
+            **{name: e.sha256 for name, e in self.parts.items()},
+        }
 
 
 class Timer:
@@ -77,10 +79,17 @@ class Timer:
         self._last = now
 
 
-def build_outputs(spec: Spec, version: int, started: str,
-                  progress: Progress = lambda _: None, timer: Timer | None = None,
-                  render: bool = True, worker: RenderProcess | None = None,
-                  engine: Engine | None = None, parts_to: Path | None = None) -> RunOutputs:
+def build_outputs(
+    spec: Spec,
+    version: int,
+    started: str,
+    progress: Progress = lambda _: None,
+    timer: Timer | None = None,
+    render: bool = True,
+    worker: RenderProcess | None = None,
+    engine: Engine | None = None,
+    parts_to: Path | None = None,
+) -> RunOutputs:
     """Every output except record.json and report.pdf (which depend on the record).
 
     With ``render=False`` only the tables (and spec.yaml) are built: what ``verify``
@@ -115,8 +124,12 @@ def build_outputs(spec: Spec, version: int, started: str,
     sums = {name: (e.csv_bytes, e.csv_sha256) for name, e in parts.items()}
     if style is None:
         tables = canonical_bytes(frames)
-        return RunOutputs({**tables, **listed, "spec.yaml": spec.raw}, results_digest(tables, sums),
-                     result, parts=parts)
+        return RunOutputs(
+            {**tables, **listed, "spec.yaml": spec.raw},
+            results_digest(tables, sums),
+            result,
+            parts=parts,
+        )
     progress("figures")
     if worker is not None:  # the worker writes the large tables while figures are drawn
         collect = worker.tables(frames)
@@ -130,24 +143,32 @@ def build_outputs(spec: Spec, version: int, started: str,
     digest = results_digest(tables, sums)
     clock.lap("tables and figures")
     env = environment()
-    packages = ", ".join(f"{name} {env['packages'][name]}" for name in
-                         ("numpy", "scipy", "pandas", "matplotlib", "weasyprint"))
+    packages = ", ".join(
+        f"{name} {env['packages'][name]}"
+        for name in ("numpy", "scipy", "pandas", "matplotlib", "weasyprint")
+    )
     record_view = {
         "items": [
             ("tool", f"reportgen {__version__}"),
             ("run started (UTC)", started),
             ("environment", f"Python {env['python']} on {env['platform']}; {packages}"),
             ("spec sha256", spec.sha256),
-            (f"data sha256 ({dataset.relpath})" if not dataset.files else
-             f"data manifest sha256 ({dataset.relpath}, {len(dataset.files)} Parquet files; "
-             "each file in record.json)", dataset.sha256),
+            (
+                f"data sha256 ({dataset.relpath})"
+                if not dataset.files
+                else f"data manifest sha256 ({dataset.relpath}, {len(dataset.files)} Parquet "
+                "files; each file in record.json)",
+                dataset.sha256,
+            ),
             ("data bytes / rows", f"{dataset.n_bytes} / {dataset.rows_read}"),
             *((f"{f.role} sha256 ({f.path})", f.sha256) for f in style.inputs),
             ("results sha256 (tables)", digest),
         ],
-        "commands": (f"reportgen run {spec.path.name} --out RUNS\n"
-                     f"reportgen verify RUNS/{spec.report_id}/v{version:03d}\n"
-                     "(RUNS: the folder that holds the runs; run from the spec's folder)"),
+        "commands": (
+            f"reportgen run {spec.path.name} --out RUNS\n"
+            f"reportgen verify RUNS/{spec.report_id}/v{version:03d}\n"
+            "(RUNS: the folder that holds the runs; run from the spec's folder)"
+        ),
     }
     progress("html")
     html = render_html(result, version, record_view, figures, style)
@@ -189,14 +210,21 @@ def _still_the_same(dataset: Dataset) -> None:
     """Refuse to publish a run whose data file (or any of its files) changed while the run
     read it: its record would vouch for bytes it did not analyse."""
     if current_sha256(dataset.path, dataset.relpath, bool(dataset.files)) != dataset.sha256:
-        raise DataError(f"data.file {dataset.relpath!r} changed while the run read it (its "
-                        "SHA-256 differs from the bytes analysed); no run was written, run "
-                        "again when the data are complete")
+        raise DataError(
+            f"data.file {dataset.relpath!r} changed while the run read it (its "
+            "SHA-256 differs from the bytes analysed); no run was written, run "
+            "again when the data are complete"
+        )
 
 
-def run_spec(spec_path: str | Path, out: str | Path, progress: Progress = lambda _: None,
-             timer: Timer | None = None, engine: str = "local", scheduler: str | None = None
-             ) -> Path:
+def run_spec(
+    spec_path: str | Path,
+    out: str | Path,
+    progress: Progress = lambda _: None,
+    timer: Timer | None = None,
+    engine: str = "local",
+    scheduler: str | None = None,
+) -> Path:
     """Run a spec; returns the new run directory ``out/<id>/vNNN``.
 
     record.json lists the hash of every file except itself and report.pdf (the PDF carries
@@ -208,8 +236,9 @@ def run_spec(spec_path: str | Path, out: str | Path, progress: Progress = lambda
         return _run(spec, out, progress, timer, run_on)
 
 
-def _run(spec: Spec, out: str | Path, progress: Progress, timer: Timer | None,
-         engine: Engine) -> Path:
+def _run(
+    spec: Spec, out: str | Path, progress: Progress, timer: Timer | None, engine: Engine
+) -> Path:
     if engine.description != "local":
         progress(f"the fits' passes run on {engine.description}")
     folder = Path(out) / spec.report_id
@@ -221,21 +250,33 @@ def _run(spec: Spec, out: str | Path, progress: Progress, timer: Timer | None,
     worker = RenderProcess()  # loads the rendering libraries while this process fits
     # Load matplotlib here too, in a thread: the fit's compiled steps release the GIL, so
     # most of the import overlaps them.
-    threading.Thread(target=importlib.import_module, args=("reportgen.report.figures",),
-                     daemon=True).start()
+    threading.Thread(
+        target=importlib.import_module, args=("reportgen.report.figures",), daemon=True
+    ).start()
     try:
         final = folder / f"v{version:03d}"
         source = os.path.relpath(spec.path, final.resolve())
         started = _timestamp()
-        built = build_outputs(spec, version, started, progress, timer, worker=worker,
-                              engine=engine, parts_to=building)
+        built = build_outputs(
+            spec, version, started, progress, timer, worker=worker, engine=engine, parts_to=building
+        )
         for name, data in built.files.items():
             _write(building / name, data)
         outputs = built.outputs
         finished = _timestamp()
-        record = dump_record(build_record(built.result, version, started, finished, source,
-                                          built.results_sha256, outputs, built.inputs,
-                                          engine.description))
+        record = dump_record(
+            build_record(
+                built.result,
+                version,
+                started,
+                finished,
+                source,
+                built.results_sha256,
+                outputs,
+                built.inputs,
+                engine.description,
+            )
+        )
         progress("pdf")
         pdf = worker.pdf(built.files["report.html"], spec.raw, record, finished)
         if timer is not None:

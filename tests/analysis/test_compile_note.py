@@ -25,14 +25,14 @@ def test_cache_locator_sees_the_kernels_after_a_fit() -> None:
     subj = np.repeat(np.arange(40), 4)
     t = rng.uniform(0, 1, subj.size)
     y = rng.normal(0, 1, 40)[subj] + rng.normal(0, 0.3, subj.size)
-    fit_sparse_fpca(pd.DataFrame({"id": subj, "t": t, "y": y}), subject="id", time="t",
-                    value="y")
+    fit_sparse_fpca(pd.DataFrame({"id": subj, "t": t, "y": y}), subject="id", time="t", value="y")
     assert compiled_on_disk()
 
 
 @pytest.mark.parametrize("warm", [True, False])
-def test_compile_note_only_when_the_cache_is_cold(warm: bool, tmp_path: Path,
-                                                  monkeypatch: pytest.MonkeyPatch) -> None:
+def test_compile_note_only_when_the_cache_is_cold(
+    warm: bool, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
     for name in ("clinic_visits.yaml", "clinic_visits.csv"):
         shutil.copy(ROOT / "specs" / name, tmp_path / name)
     monkeypatch.setattr(reportgen.analysis.analyse, "compiled_on_disk", lambda: warm)

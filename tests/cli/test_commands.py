@@ -28,8 +28,15 @@ def test_run_twice_is_reproducible_and_verify_passes(study: Path, tmp_path: Path
     assert r1["run"]["version"] == 1 and r2["run"]["version"] == 2
     for table in sorted((v1 / "tables").iterdir()):
         assert table.read_bytes() == (v2 / "tables" / table.name).read_bytes(), table.name
-    assert sorted(r1) == ["environment", "inputs", "outputs", "results_sha256", "run", "spec",
-                          "tool"]
+    assert sorted(r1) == [
+        "environment",
+        "inputs",
+        "outputs",
+        "results_sha256",
+        "run",
+        "spec",
+        "tool",
+    ]
     assert r1["spec"]["settings"]["n_components"] >= 1
     assert r1["inputs"][0]["path"] == "clinic_visits.csv"
     verify = cli("verify", str(v1))
@@ -106,8 +113,9 @@ def test_parquet_data_file(study: Path) -> None:
     frame = pd.read_csv(study.parent / "clinic_visits.csv")
     frame.to_parquet(study.parent / "clinic_visits.parquet")
     parquet_spec = study.parent / "parquet.yaml"
-    parquet_spec.write_text(study.read_text().replace("file: clinic_visits.csv",
-                                                      "file: clinic_visits.parquet"))
+    parquet_spec.write_text(
+        study.read_text().replace("file: clinic_visits.csv", "file: clinic_visits.parquet")
+    )
     res = cli("check", str(parquet_spec))
     assert res.returncode == 0, res.stderr
     assert "160 subjects, 742 readings" in res.stdout
@@ -122,9 +130,15 @@ def test_installed_entry_point_keeps_exit_codes_and_output(study: Path) -> None:
 
     exe = shutil.which("reportgen", path=str(Path(sys.executable).parent))
     assert exe is not None
-    ok = subprocess.run([exe, "check", study.name], cwd=study.parent, capture_output=True,
-                        text=True, timeout=300)
+    ok = subprocess.run(
+        [exe, "check", study.name], cwd=study.parent, capture_output=True, text=True, timeout=300
+    )
     assert ok.returncode == 0 and ok.stdout.rstrip().endswith("spec and data are usable")
-    bad = subprocess.run([exe, "check", "missing.yaml"], cwd=study.parent,
-                         capture_output=True, text=True, timeout=300)
+    bad = subprocess.run(
+        [exe, "check", "missing.yaml"],
+        cwd=study.parent,
+        capture_output=True,
+        text=True,
+        timeout=300,
+    )
     assert bad.returncode == 2 and "reportgen check: error:" in bad.stderr

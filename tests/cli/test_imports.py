@@ -21,17 +21,21 @@ print(json.dumps({"code": code, "loaded": sorted(m for m in HEAVY if m in sys.mo
 
 
 def _loaded(*args: str, cwd: Path) -> dict[str, object]:
-    out = subprocess.run([sys.executable, "-c", PROBE, *args], cwd=cwd, capture_output=True,
-                         text=True, timeout=300)
+    out = subprocess.run(
+        [sys.executable, "-c", PROBE, *args], cwd=cwd, capture_output=True, text=True, timeout=300
+    )
     return json.loads(out.stdout.strip().splitlines()[-1])
 
 
-@pytest.mark.parametrize("args", [
-    ("schema",),
-    ("check", "clinic_visits.yaml"),
-    ("compare", "RUN", "RUN"),
-    ("init", "clinic_visits.csv", "new.yaml"),
-])
+@pytest.mark.parametrize(
+    "args",
+    [
+        ("schema",),
+        ("check", "clinic_visits.yaml"),
+        ("compare", "RUN", "RUN"),
+        ("init", "clinic_visits.csv", "new.yaml"),
+    ],
+)
 def test_light_commands_import_no_numerical_library(args: tuple[str, ...], study: Path) -> None:
     # The module list of the interpreter itself (sys.modules) after the command ran.
     run = ROOT / "sample_runs" / "clinic-visits" / "v001"
@@ -48,6 +52,9 @@ def test_checking_a_folder_of_files_imports_no_numerical_library(tmp_path: Path)
     (tmp_path / "readings").mkdir()
     for k, part in data.groupby(data.patient.str[-1]):
         part.to_parquet(tmp_path / "readings" / f"part-{k}.parquet", index=False)
-    (tmp_path / "folder.yaml").write_text((ROOT / "specs" / "clinic_visits.yaml").read_text()
-                                          .replace("file: clinic_visits.csv", "file: readings"))
+    (tmp_path / "folder.yaml").write_text(
+        (ROOT / "specs" / "clinic_visits.yaml")
+        .read_text()
+        .replace("file: clinic_visits.csv", "file: readings")
+    )
     assert _loaded("check", "folder.yaml", cwd=tmp_path) == {"code": 0, "loaded": []}

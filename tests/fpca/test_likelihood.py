@@ -9,22 +9,27 @@ from scipy.stats import multivariate_normal
 from reportgen.fpca.likelihood import SubjectSums, evaluate, maximise
 
 
-def _subjects(rng: np.random.Generator, sizes: list[int], k: int
-              ) -> tuple[list[np.ndarray], list[np.ndarray]]:
+def _subjects(
+    rng: np.random.Generator, sizes: list[int], k: int
+) -> tuple[list[np.ndarray], list[np.ndarray]]:
     phis, rs = [], []
     for m in sizes:
         t = rng.uniform(0, 1, m)
-        basis = np.column_stack([np.ones(m), np.sqrt(3) * (2 * t - 1),
-                                 np.sqrt(5) * (6 * t**2 - 6 * t + 1)])[:, :k]
+        basis = np.column_stack(
+            [np.ones(m), np.sqrt(3) * (2 * t - 1), np.sqrt(5) * (6 * t**2 - 6 * t + 1)]
+        )[:, :k]
         phis.append(basis)
         rs.append(rng.normal(size=m) * 1.3)
     return phis, rs
 
 
 def _sums(phis: list[np.ndarray], rs: list[np.ndarray]) -> SubjectSums:
-    return SubjectSums(np.stack([p.T @ p for p in phis]), np.stack([p.T @ r for p, r in
-                                                                   zip(phis, rs, strict=True)]),
-                       np.array([r @ r for r in rs]), np.array([r.size for r in rs], float))
+    return SubjectSums(
+        np.stack([p.T @ p for p in phis]),
+        np.stack([p.T @ r for p, r in zip(phis, rs, strict=True)]),
+        np.array([r @ r for r in rs]),
+        np.array([r.size for r in rs], float),
+    )
 
 
 def test_loglik_equals_dense_multivariate_normal() -> None:
@@ -33,9 +38,12 @@ def test_loglik_equals_dense_multivariate_normal() -> None:
     rng = np.random.default_rng(3)
     phis, rs = _subjects(rng, [1, 2, 5, 3, 8, 1, 4], 3)
     lam, s2 = np.array([2.0, 0.7, 0.2]), 0.35
-    ref = sum(multivariate_normal(np.zeros(r.size), p @ np.diag(lam) @ p.T
-                                  + s2 * np.eye(r.size)).logpdf(r)
-              for p, r in zip(phis, rs, strict=True))
+    ref = sum(
+        multivariate_normal(np.zeros(r.size), p @ np.diag(lam) @ p.T + s2 * np.eye(r.size)).logpdf(
+            r
+        )
+        for p, r in zip(phis, rs, strict=True)
+    )
     ll, _, _ = evaluate(_sums(phis, rs), lam, s2)
     assert ll == pytest.approx(ref, rel=1e-12)
 
@@ -54,8 +62,10 @@ def test_score_equals_finite_differences() -> None:
             up, down = p.copy(), p.copy()
             up[j] += h
             down[j] -= h if p[j] > 0 else 0.0
-            fd = (evaluate(sums, up[:-1], float(up[-1]), False)[0]
-                  - evaluate(sums, down[:-1], float(down[-1]), False)[0]) / (up[j] - down[j])
+            fd = (
+                evaluate(sums, up[:-1], float(up[-1]), False)[0]
+                - evaluate(sums, down[:-1], float(down[-1]), False)[0]
+            ) / (up[j] - down[j])
             tol = 1e-8 if p[j] > 0 else 1e-4  # one-sided: error of order h
             assert score[j] == pytest.approx(fd, rel=tol, abs=tol)
 
@@ -70,8 +80,10 @@ def test_information_equals_expected_outer_product_of_scores() -> None:
     draws = []
     _, _, info = evaluate(_sums(phis, [np.zeros(p.shape[0]) for p in phis]), lam, s2)
     for _ in range(4000):
-        rs = [p @ (rng.normal(size=2) * np.sqrt(lam)) + rng.normal(size=p.shape[0]) *
-              np.sqrt(s2) for p in phis]
+        rs = [
+            p @ (rng.normal(size=2) * np.sqrt(lam)) + rng.normal(size=p.shape[0]) * np.sqrt(s2)
+            for p in phis
+        ]
         draws.append(evaluate(_sums(phis, rs), lam, s2)[1])
     emp = np.cov(np.array(draws).T)
     np.testing.assert_allclose(emp, info, atol=0.08 * np.max(np.abs(info)))
@@ -84,8 +96,10 @@ def test_maximise_recovers_simulated_variances() -> None:
     sizes = rng.integers(1, 8, 2000).tolist()
     phis, _ = _subjects(rng, sizes, 2)
     lam, s2 = np.array([2.0, 0.5]), 0.25
-    rs = [p @ (rng.normal(size=2) * np.sqrt(lam)) + rng.normal(size=p.shape[0]) * np.sqrt(s2)
-          for p in phis]
+    rs = [
+        p @ (rng.normal(size=2) * np.sqrt(lam)) + rng.normal(size=p.shape[0]) * np.sqrt(s2)
+        for p in phis
+    ]
     sums = _sums(phis, rs)
     fit = maximise(sums, np.array([0.3, 3.0]), 2.0)
     assert fit.converged
@@ -103,8 +117,7 @@ def test_a_component_without_variance_goes_to_zero() -> None:
     rng = np.random.default_rng(5)
     sizes = rng.integers(2, 6, 1500).tolist()
     phis, _ = _subjects(rng, sizes, 2)
-    rs = [p[:, 0] * rng.normal() * np.sqrt(1.5) + rng.normal(size=p.shape[0]) * 0.5
-          for p in phis]
+    rs = [p[:, 0] * rng.normal() * np.sqrt(1.5) + rng.normal(size=p.shape[0]) * 0.5 for p in phis]
     sums = _sums(phis, rs)
     fit = maximise(sums, np.array([1.0, 0.3]), 1.0)
     assert fit.converged and fit.iterations < 50

@@ -40,8 +40,13 @@ def test_all_subjects_one_reading() -> None:
 def test_two_subjects_fit_or_say_why() -> None:
     rng = np.random.default_rng(3)
     t = np.tile(np.linspace(0, 10, 12), 2)
-    frame = pd.DataFrame({"id": np.repeat([1, 2], 12), "t": t,
-                          "y": np.sin(t) + np.repeat([-1.0, 1.0], 12) + rng.normal(0, .1, 24)})
+    frame = pd.DataFrame(
+        {
+            "id": np.repeat([1, 2], 12),
+            "t": t,
+            "y": np.sin(t) + np.repeat([-1.0, 1.0], 12) + rng.normal(0, 0.1, 24),
+        }
+    )
     try:
         fit = fit_sparse_fpca(frame, subject="id", time="t", value="y")
     except EstimationError as e:  # a clear reason is acceptable, a crash is not
@@ -57,8 +62,7 @@ def test_extreme_value_scales(scale: float) -> None:
     # the eigenvalues by a^2, with the same automatically chosen bandwidths.
     frame = _frame(200)
     base = fit_sparse_fpca(frame, subject="id", time="t", value="y")
-    scaled = fit_sparse_fpca(frame.assign(y=frame.y * scale), subject="id", time="t",
-                             value="y")
+    scaled = fit_sparse_fpca(frame.assign(y=frame.y * scale), subject="id", time="t", value="y")
     assert scaled.mean_bandwidth == pytest.approx(base.mean_bandwidth)
     assert scaled.covariance_bandwidth == pytest.approx(base.covariance_bandwidth)
     np.testing.assert_allclose(scaled.mean, base.mean * scale, rtol=1e-8)
@@ -69,8 +73,7 @@ def test_extreme_value_scales(scale: float) -> None:
 def test_extreme_time_scales(scale: float) -> None:
     frame = _frame(200)
     base = fit_sparse_fpca(frame, subject="id", time="t", value="y")
-    scaled = fit_sparse_fpca(frame.assign(t=frame.t * scale), subject="id", time="t",
-                             value="y")
+    scaled = fit_sparse_fpca(frame.assign(t=frame.t * scale), subject="id", time="t", value="y")
     assert scaled.mean_bandwidth == pytest.approx(base.mean_bandwidth * scale)
     np.testing.assert_allclose(scaled.mean, base.mean, rtol=1e-8, atol=1e-8)
     # eigenvalues of the integral operator scale with the length of the domain
@@ -83,8 +86,9 @@ def test_heavy_ties() -> None:
     ids = np.repeat(np.arange(n), 6)
     t = np.tile(np.arange(6.0), n)  # everyone at the same six visit times
     xi = rng.normal(size=n)
-    frame = pd.DataFrame({"id": ids, "t": t, "y": t + xi[ids] * (1 + t / 5)
-                          + rng.normal(0, .3, ids.size)})
+    frame = pd.DataFrame(
+        {"id": ids, "t": t, "y": t + xi[ids] * (1 + t / 5) + rng.normal(0, 0.3, ids.size)}
+    )
     fit = fit_sparse_fpca(frame, subject="id", time="t", value="y")
     assert np.all(np.isfinite(fit.covariance)) and fit.n_components >= 1
 
@@ -95,8 +99,13 @@ def test_ill_conditioned_rank_one_with_tiny_noise() -> None:
     ids = np.repeat(np.arange(n), 5)
     t = rng.uniform(0, 1, ids.size)
     xi = rng.normal(size=n)
-    frame = pd.DataFrame({"id": ids, "t": t, "y": xi[ids] * np.sqrt(2) * np.sin(np.pi * t)
-                          + rng.normal(0, 1e-9, ids.size)})
+    frame = pd.DataFrame(
+        {
+            "id": ids,
+            "t": t,
+            "y": xi[ids] * np.sqrt(2) * np.sin(np.pi * t) + rng.normal(0, 1e-9, ids.size),
+        }
+    )
     fit = fit_sparse_fpca(frame, subject="id", time="t", value="y")
     assert fit.error_variance > 0
     assert np.all(np.isfinite(fit.score_values)) and np.all(np.isfinite(fit.score_cov))
@@ -119,12 +128,14 @@ def _dates_frame() -> pd.DataFrame:
     return frame.assign(when=when.dt.strftime("%Y-%m-%d"), days=(frame.t * 30).round())
 
 
-def test_dates_converted_with_the_stated_unit(tmp_path: Path,
-                                              capsys: pytest.CaptureFixture[str]) -> None:
+def test_dates_converted_with_the_stated_unit(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
     frame = _dates_frame()
     frame.to_csv(tmp_path / "d.csv", index=False)
-    (tmp_path / "s.yaml").write_text(SPEC.format(
-        extra=", time_origin: '2024-01-01', time_scale: months"))
+    (tmp_path / "s.yaml").write_text(
+        SPEC.format(extra=", time_origin: '2024-01-01', time_scale: months")
+    )
     assert main(["run", str(tmp_path / "s.yaml"), "--out", str(tmp_path / "runs")]) == 0
     run = next((tmp_path / "runs").glob("edge/v001"))
     mean = pd.read_csv(run / "tables" / "mean.csv")
@@ -138,8 +149,9 @@ def test_dates_converted_with_the_stated_unit(tmp_path: Path,
             assert "nan" not in table.read_text().lower(), table.name
 
 
-def test_dates_without_a_unit_are_a_clear_error(tmp_path: Path,
-                                                capsys: pytest.CaptureFixture[str]) -> None:
+def test_dates_without_a_unit_are_a_clear_error(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
     _dates_frame().to_csv(tmp_path / "d.csv", index=False)
     (tmp_path / "s.yaml").write_text(SPEC.format(extra=""))
     assert main(["run", str(tmp_path / "s.yaml"), "--out", str(tmp_path / "runs")]) == 2

@@ -42,19 +42,38 @@ def readings() -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
 
 def _numbers(fit: FPCAFit) -> dict[str, np.ndarray]:
     """Every number of a fit that a table or figure may show."""
-    out = {name: np.asarray(getattr(fit, name), dtype=float) for name in (
-        "grid", "mean", "mean_se", "covariance", "diagonal_variance", "eigenvalues",
-        "eigenfunctions", "all_eigenvalues", "fve", "error_variance",
-        "smoothing_error_variance", "truncation_variance", "mean_simultaneous_multiplier",
-        "diagonal_support", "score_values", "score_cov", "pair_counts", "n_obs")}
+    out = {
+        name: np.asarray(getattr(fit, name), dtype=float)
+        for name in (
+            "grid",
+            "mean",
+            "mean_se",
+            "covariance",
+            "diagonal_variance",
+            "eigenvalues",
+            "eigenfunctions",
+            "all_eigenvalues",
+            "fve",
+            "error_variance",
+            "smoothing_error_variance",
+            "truncation_variance",
+            "mean_simultaneous_multiplier",
+            "diagonal_support",
+            "score_values",
+            "score_cov",
+            "pair_counts",
+            "n_obs",
+        )
+    }
     for what in ("mean", "covariance", "diagonal"):
         choice = getattr(fit, f"{what}_bandwidth_choice")
         out[f"{what} bandwidth"] = np.array([choice.value, *choice.criterion])
     sel = fit.selection
     out["criteria"] = np.concatenate([sel.aic, sel.bic, sel.cv, [sel.chosen]])
     for i, rep in enumerate(fit.replicates):
-        out[f"replicate {i}"] = np.concatenate([rep.mean_value, rep.eigenfunctions.ravel(),
-                                                rep.eigenvalues, [rep.error_variance]])
+        out[f"replicate {i}"] = np.concatenate(
+            [rep.mean_value, rep.eigenfunctions.ravel(), rep.eigenvalues, [rep.error_variance]]
+        )
     return out
 
 
@@ -90,8 +109,9 @@ def test_one_part_is_the_whole_sample_exactly(readings: tuple) -> None:
     _same_bits(whole, _fit_on(InProcess(), parts, labels, parts[0].sample))
 
 
-def test_many_parts_differ_from_one_only_in_the_last_bits(readings: tuple, in_process: tuple
-                                                          ) -> None:
+def test_many_parts_differ_from_one_only_in_the_last_bits(
+    readings: tuple, in_process: tuple
+) -> None:
     codes, t, y, _ = readings
     whole = fit_arrays(codes, t, y, np.arange(codes.max() + 1), OPTIONS)
     many = _numbers(in_process[0])
@@ -120,16 +140,22 @@ def test_gathered_subjects_are_their_readings(in_process: tuple) -> None:
     assert np.array_equal(resid, want.y)  # the mean given is zero
 
 
-@pytest.fixture(scope="module", params=[(False, 1), (False, 3), (True, 2)],
-                ids=["threads-1-worker", "threads-3-workers", "processes-2-workers"])
+@pytest.fixture(
+    scope="module",
+    params=[(False, 1), (False, 3), (True, 2)],
+    ids=["threads-1-worker", "threads-3-workers", "processes-2-workers"],
+)
 def on_dask(request: pytest.FixtureRequest) -> Iterator[object]:
     distributed = pytest.importorskip("distributed")
     from reportgen.analysis.engine import OnDask
 
     processes, workers = request.param
-    with distributed.LocalCluster(n_workers=workers, threads_per_worker=1,
-                                  processes=processes, dashboard_address=":0") as cluster, \
-            distributed.Client(cluster) as client:
+    with (
+        distributed.LocalCluster(
+            n_workers=workers, threads_per_worker=1, processes=processes, dashboard_address=":0"
+        ) as cluster,
+        distributed.Client(cluster) as client,
+    ):
         yield OnDask(client)
 
 
@@ -138,15 +164,22 @@ def test_a_dask_cluster_gives_the_same_bits(on_dask: object, in_process: tuple) 
     _same_bits(fit, _fit_on(on_dask, parts, labels, sample))
 
 
-def test_the_sensitivity_refits_give_the_same_bits(on_dask: object, in_process: tuple
-                                                  ) -> None:
+def test_the_sensitivity_refits_give_the_same_bits(on_dask: object, in_process: tuple) -> None:
     fit, parts, labels, _ = in_process
-    options = replace(OPTIONS, band="plugin", mean_bandwidth=fit.mean_bandwidth * 1.5,
-                      covariance_bandwidth=fit.covariance_bandwidth * 1.5,
-                      diagonal_bandwidth=fit.diagonal_bandwidth * 1.5)
+    options = replace(
+        OPTIONS,
+        band="plugin",
+        mean_bandwidth=fit.mean_bandwidth * 1.5,
+        covariance_bandwidth=fit.covariance_bandwidth * 1.5,
+        diagonal_bandwidth=fit.diagonal_bandwidth * 1.5,
+    )
     here = fit_parts(Partitioned.local(parts), labels, options, per_subject=False)
-    there = fit_parts(Partitioned.of(on_dask, on_dask.place(parts)),  # type: ignore[attr-defined]
-                      labels, options, per_subject=False)
+    there = fit_parts(
+        Partitioned.of(on_dask, on_dask.place(parts)),  # type: ignore[attr-defined]
+        labels,
+        options,
+        per_subject=False,
+    )
     _same_bits(here, there)
 
 
@@ -187,8 +220,7 @@ def _parts_of(low: int, high: int) -> list:
     return split_parts(codes, data.t.to_numpy(), data.y.to_numpy(), codes % N_PARTS, N_PARTS)
 
 
-def test_what_comes_back_does_not_grow_with_the_readings(monkeypatch: pytest.MonkeyPatch
-                                                         ) -> None:
+def test_what_comes_back_does_not_grow_with_the_readings(monkeypatch: pytest.MonkeyPatch) -> None:
     # A fit gathers from its parts per subject (codes, counts, scores) and per bin (the
     # sums); readings only of the likelihood's sampled subjects (capped). Twice the
     # readings per subject, same subjects: everything else comes back at the same size.
@@ -199,8 +231,11 @@ def test_what_comes_back_does_not_grow_with_the_readings(monkeypatch: pytest.Mon
     for low, high in ((2, 5), (6, 12)):
         parts = _parts_of(low, high)
         counting = _Counting()
-        fit_parts(Partitioned.of(counting, parts), np.arange(300),
-                  replace(OPTIONS, band="plugin", component_rule="fixed", n_components=2))
+        fit_parts(
+            Partitioned.of(counting, parts),
+            np.arange(300),
+            replace(OPTIONS, band="plugin", component_rule="fixed", n_components=2),
+        )
         returned.append(counting.returned)
     few, many = returned
     assert few.keys() == many.keys()
@@ -217,8 +252,10 @@ def test_the_order_of_the_rows_does_not_change_a_bit(readings: tuple) -> None:
     labels = np.arange(codes.max() + 1)
     shuffled = np.random.default_rng(5).permutation(codes.size)
     options = replace(OPTIONS, band="plugin")
-    _same_bits(fit_arrays(codes, t, y, labels, options),
-               fit_arrays(codes[shuffled], t[shuffled], y[shuffled], labels, options))
+    _same_bits(
+        fit_arrays(codes, t, y, labels, options),
+        fit_arrays(codes[shuffled], t[shuffled], y[shuffled], labels, options),
+    )
 
 
 def test_readings_are_ordered_by_time_then_value_within_a_subject() -> None:
@@ -235,8 +272,9 @@ def test_readings_are_ordered_by_time_then_value_within_a_subject() -> None:
 
 def test_no_subjects_gathered_is_an_empty_sample(in_process: tuple) -> None:
     _, parts, _, sample = in_process
-    got, resid = Partitioned.local(parts).gather(np.zeros(0, dtype=np.intp), np.zeros(11),
-                                                 BinGrid(0.0, 10.0, 11))
+    got, resid = Partitioned.local(parts).gather(
+        np.zeros(0, dtype=np.intp), np.zeros(11), BinGrid(0.0, 10.0, 11)
+    )
     assert got.n_subjects == 0 and got.t.size == 0 and resid.size == 0
     assert sample.subset(np.zeros(0, dtype=np.intp)).n_subjects == 0
 
@@ -263,8 +301,11 @@ def test_the_diagnostics_pass_gives_the_definitions(in_process: tuple) -> None:
     codes, t, y = sample.subject, sample.t, sample.y
     phi = fit.eigenfunctions_at(t)
     fitted = fit.mean_at(t) + np.einsum("nk,nk->n", phi, fit.score_values[codes])
-    var = (fit.error_variance - np.einsum("nk,nkl,nl->n", phi, fit.score_cov[codes], phi)
-           + np.interp(t, fit.grid, fit.truncation_variance))
+    var = (
+        fit.error_variance
+        - np.einsum("nk,nkl,nl->n", phi, fit.score_cov[codes], phi)
+        + np.interp(t, fit.grid, fit.truncation_variance)
+    )
     std = (y - fitted) / np.sqrt(var)
     # pandas groupby: the per-subject summary's definition
     by = pd.DataFrame({"s": codes, "r": y - fitted, "q": std**2}).groupby("s")
@@ -274,8 +315,9 @@ def test_the_diagnostics_pass_gives_the_definitions(in_process: tuple) -> None:
     # numpy.histogram2d over the data's range: the density's definition
     (t0, t1, nt), (y0, y1, ny) = got.time_axis, got.value_axis
     assert (t0, t1, y0, y1) == (t.min(), t.max(), y.min(), y.max())
-    ref, _, _ = np.histogram2d(t, y, bins=(np.linspace(t0, t1, nt + 1),
-                                           np.linspace(y0, y1, ny + 1)))
+    ref, _, _ = np.histogram2d(
+        t, y, bins=(np.linspace(t0, t1, nt + 1), np.linspace(y0, y1, ny + 1))
+    )
     assert np.array_equal(got.density, ref)
     # the chosen subjects' readings, in code order
     index, _, _ = sample.reading_index(CHOSEN)
@@ -304,11 +346,15 @@ def test_the_diagnostics_bring_back_no_more_with_more_readings() -> None:
     returned = []
     for low, high in ((2, 5), (6, 12)):
         parts = _parts_of(low, high)
-        fit = fit_parts(Partitioned.local(parts), np.arange(300),
-                        replace(OPTIONS, band="plugin", component_rule="fixed", n_components=2))
+        fit = fit_parts(
+            Partitioned.local(parts),
+            np.arange(300),
+            replace(OPTIONS, band="plugin", component_rule="fixed", n_components=2),
+        )
         counting = _Counting()
-        found = check_readings(Partitioned.of(counting, parts), fit.kept_scores,
-                               fit.predictor, CHOSEN)
+        found = check_readings(
+            Partitioned.of(counting, parts), fit.kept_scores, fit.predictor, CHOSEN
+        )
         kept = int(found.readings["time"].size)
         assert "part_checks" not in counting.returned  # kept, not brought back
         returned.append(counting.returned["checked_found"] - 5 * kept)
@@ -321,12 +367,16 @@ def test_the_diagnostics_bring_back_no_more_with_more_readings() -> None:
 def _groups_of(n: int) -> np.ndarray:
     # three groups; "c" holds subjects of one part only, so the other parts have none of it
     part = (np.arange(n) * 7 + np.arange(n) // 13) % N_PARTS
-    return np.where(part == 0, np.where(np.arange(n) % 2 == 0, "c", "a"),
-                    np.where(np.arange(n) % 3 == 0, "a", "b"))
+    return np.where(
+        part == 0,
+        np.where(np.arange(n) % 2 == 0, "c", "a"),
+        np.where(np.arange(n) % 3 == 0, "a", "b"),
+    )
 
 
-def test_group_means_over_parts_are_those_of_the_whole_sample(readings: tuple,
-                                                              in_process: tuple) -> None:
+def test_group_means_over_parts_are_those_of_the_whole_sample(
+    readings: tuple, in_process: tuple
+) -> None:
     from reportgen.fpca.groups import compare_groups
 
     codes, t, y, _ = readings
@@ -341,14 +391,18 @@ def test_group_means_over_parts_are_those_of_the_whole_sample(readings: tuple,
     assert (many.statistic, many.p_value) == (whole.statistic, whole.p_value)
 
 
-def test_group_means_on_a_dask_cluster_give_the_same_bits(on_dask: object, in_process: tuple
-                                                          ) -> None:
+def test_group_means_on_a_dask_cluster_give_the_same_bits(
+    on_dask: object, in_process: tuple
+) -> None:
     from reportgen.fpca.groups import compare_groups
 
     fit, parts, _, _ = in_process
     groups = _groups_of(fit.n_subjects)
     here = compare_groups(Partitioned.local(parts), fit, groups)
-    there = compare_groups(Partitioned.of(on_dask, on_dask.place(parts)),  # type: ignore[attr-defined]
-                              fit, groups)
+    there = compare_groups(
+        Partitioned.of(on_dask, on_dask.place(parts)),  # type: ignore[attr-defined]
+        fit,
+        groups,
+    )
     assert here.means.tobytes() == there.means.tobytes()
     assert here.mean_se.tobytes() == there.mean_se.tobytes()

@@ -35,7 +35,7 @@ def test_scores_equal_gaussian_conditioning() -> None:
     r = rng.normal(size=n)
     scores, cov = conditional_scores(starts, r, phi, lam, sigma2)
     for i, (s0, m) in enumerate(zip(starts, sizes, strict=True)):
-        ref_xi, ref_cov = _reference(phi[s0:s0 + m], lam, sigma2, r[s0:s0 + m])
+        ref_xi, ref_cov = _reference(phi[s0 : s0 + m], lam, sigma2, r[s0 : s0 + m])
         np.testing.assert_allclose(scores[i], ref_xi, rtol=1e-10, atol=1e-12)
         np.testing.assert_allclose(cov[i], ref_cov, rtol=1e-10, atol=1e-12)
 
@@ -72,8 +72,7 @@ def test_criteria_equal_direct_gaussian_likelihood_and_loo() -> None:
     # over each subject's readings, in which order does not matter
     terms = sample_terms(sample, np.arange(sizes.size), sample.y, grid, funcs)
     loo = loo_errors(terms, [(lam[:1], s2), (lam[:2], s2)])
-    loglik = [evaluate(terms.sums.leading(k), lam[:k], s2, False)[0]
-              for k in (1, 2)]
+    loglik = [evaluate(terms.sums.leading(k), lam[:k], s2, False)[0] for k in (1, 2)]
     for k in (1, 2):
         phi = np.column_stack([np.ones_like(t), np.sqrt(3) * (2 * t - 1)])[:, :k]
         ref_ll, errs = 0.0, []

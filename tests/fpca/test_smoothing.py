@@ -82,7 +82,8 @@ def test_local_polynomials_reproduce_their_degree() -> None:
     ev = np.linspace(0, 2, 9)
     np.testing.assert_allclose(
         local_linear_binned_2d(ev, c, counts, plane, 0.4),
-        1.0 + 2.0 * ev[:, None] - 0.5 * ev[None, :], atol=1e-10,
+        1.0 + 2.0 * ev[:, None] - 0.5 * ev[None, :],
+        atol=1e-10,
     )
     # The rotated fit is linear along the diagonal and quadratic across it.
     ridge = 1.0 + (s + t) - 0.4 * (s - t) ** 2

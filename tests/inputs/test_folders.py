@@ -71,8 +71,11 @@ def runs(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Path]:
 
 def _spec_one(base: Path) -> Path:
     path = base / "one.yaml"
-    path.write_text(SPEC.replace("file: clinic_visits.csv", "file: one.parquet")
-                    .replace("id: clinic-visits", "id: one-file"))
+    path.write_text(
+        SPEC.replace("file: clinic_visits.csv", "file: one.parquet").replace(
+            "id: clinic-visits", "id: one-file"
+        )
+    )
     return path
 
 
@@ -83,8 +86,9 @@ def _same_to_rounding(expected: Path, got: Path) -> None:
     assert list(a.columns) == list(b.columns) and len(a) == len(b), got.name
     for column in a:
         if pd.api.types.is_float_dtype(a[column]):
-            np.testing.assert_allclose(b[column], a[column], rtol=1e-8, atol=1e-10,
-                                       err_msg=f"{got.name}: {column}")
+            np.testing.assert_allclose(
+                b[column], a[column], rtol=1e-8, atol=1e-10, err_msg=f"{got.name}: {column}"
+            )
         else:
             assert a[column].tolist() == b[column].tolist(), f"{got.name}: {column}"
 
@@ -113,8 +117,8 @@ def test_the_dask_engine_gives_the_same_bits(runs: dict[str, Path]) -> None:
 
 
 def test_engine_options_that_cannot_work_are_refused(
-        tmp_path: Path, capsys: pytest.CaptureFixture[str],
-        monkeypatch: pytest.MonkeyPatch) -> None:
+    tmp_path: Path, capsys: pytest.CaptureFixture[str], monkeypatch: pytest.MonkeyPatch
+) -> None:
     from reportgen.analysis import engine
     from reportgen.cli import main
 
@@ -124,8 +128,10 @@ def test_engine_options_that_cannot_work_are_refused(
     assert main(["run", spec, "--out", out, "--scheduler", "tcp://127.0.0.1:8786"]) == 2
     lone = capsys.readouterr().err
     assert "--scheduler is for --engine dask" in lone
-    assert main(["run", spec, "--out", out, "--engine", "dask", "--scheduler",
-                 "tcp://127.0.0.1:9"]) == 2  # the discard port: nothing listens there
+    assert (
+        main(["run", spec, "--out", out, "--engine", "dask", "--scheduler", "tcp://127.0.0.1:9"])
+        == 2
+    )  # the discard port: nothing listens there
     away = capsys.readouterr().err
     assert "cannot reach the Dask scheduler at 'tcp://127.0.0.1:9' (--scheduler)" in away
     assert "Traceback" not in lone + away
@@ -142,7 +148,8 @@ def test_the_record_carries_the_manifest_and_its_digest(runs: dict[str, Path]) -
         assert m["sha256"] == hashlib.sha256(p.read_bytes()).hexdigest()
         assert m["bytes"] == p.stat().st_size
     text = "reportgen-manifest-v1\n" + "".join(
-        f"{m['path']}\t{m['bytes']}\t{m['sha256']}\n" for m in entry["manifest"])
+        f"{m['path']}\t{m['bytes']}\t{m['sha256']}\n" for m in entry["manifest"]
+    )
     assert entry["sha256"] == hashlib.sha256(text.encode()).hexdigest()
     assert entry["bytes"] == sum(m["bytes"] for m in entry["manifest"])
     html = (runs["folder"] / "report.html").read_text()
@@ -164,8 +171,7 @@ def test_the_digest_ignores_listing_order_and_sees_every_change(tmp_path: Path) 
     assert len({before, renamed, added}) == 3
 
 
-def test_verify_checks_every_file_of_the_folder(runs: dict[str, Path],
-                                                tmp_path: Path) -> None:
+def test_verify_checks_every_file_of_the_folder(runs: dict[str, Path], tmp_path: Path) -> None:
     ok = cli("verify", str(runs["folder"]))
     assert ok.returncode == 0, ok.stdout + ok.stderr
     copy = tmp_path / "copy"
@@ -235,8 +241,9 @@ def test_missing_ids_are_not_a_split_subject(tmp_path: Path) -> None:
     assert checks["missing values"].detail.startswith("2 of ")
 
 
-def test_groups_over_files_on_either_engine(tmp_path: Path,
-                                           pump_folder_run: tuple[Path, Path]) -> None:
+def test_groups_over_files_on_either_engine(
+    tmp_path: Path, pump_folder_run: tuple[Path, Path]
+) -> None:
     # The other invented example (three depots compared) split by pump into three files:
     # the group means are passes over the files; the committed one-file run is the
     # reference for the numbers, and the Dask engine gives the same bits as the local one.
@@ -260,8 +267,16 @@ def _held_readings(spec: Path) -> pd.DataFrame:
 
     held = load_dataset(load_spec(spec), for_fit=True).readings
     assert held is not None
-    frames = [pd.DataFrame({"subject": held.ids[p.subjects[p.sample.subject]],
-                            "time": p.sample.t, "value": p.sample.y}) for p in held.parts]
+    frames = [
+        pd.DataFrame(
+            {
+                "subject": held.ids[p.subjects[p.sample.subject]],
+                "time": p.sample.t,
+                "value": p.sample.y,
+            }
+        )
+        for p in held.parts
+    ]
     return _ordered(pd.concat(frames, ignore_index=True))
 
 
@@ -291,8 +306,7 @@ def _messy(tmp_path: Path, **checks: str) -> tuple[Path, Path]:
             frame.loc[7, "marker"] = 500.0
             frame.loc[8, "week"] = 130.0
         frame.to_parquet(path, index=False)
-    pd.concat(pd.read_parquet(p) for p in paths).to_parquet(tmp_path / "one.parquet",
-                                                            index=False)
+    pd.concat(pd.read_parquet(p) for p in paths).to_parquet(tmp_path / "one.parquet", index=False)
     specs = []
     for name in ("readings", "one.parquet"):
         spec = yaml.safe_load(SPEC)
@@ -324,8 +338,9 @@ def test_a_step_that_fails_in_some_files_fails_over_all(tmp_path: Path) -> None:
     (here, _), (there, _) = _checks_of(folder), _checks_of(one)
     # the one file's text, with its row of the first missing value named in its file
     before = len(pd.read_parquet(tmp_path / "readings" / "part-0.parquet"))
-    expected = there["missing values"][1].replace(f"data row {before + 6} of the table",
-                                                  "data row 6 of part-1.parquet")
+    expected = there["missing values"][1].replace(
+        f"data row {before + 6} of the table", "data row 6 of part-1.parquet"
+    )
     assert here["missing values"] == ("fail", expected)
     assert expected.startswith("2 of ")
     assert "duplicate readings" not in here  # the failed step stopped the later ones
@@ -342,7 +357,8 @@ def test_a_group_per_file_is_no_single_group(tmp_path: Path) -> None:
     text = (ROOT / "specs" / "pump_service.yaml").read_text()
     for name in ("depots", "one.parquet"):
         (tmp_path / f"{name}.yaml").write_text(
-            text.replace("file: pump_service.csv", f"file: {name}"))
+            text.replace("file: pump_service.csv", f"file: {name}")
+        )
     here, _ = _checks_of(tmp_path / "depots.yaml")
     there, _ = _checks_of(tmp_path / "one.parquet.yaml")
     assert here["groups"] == there["groups"] and here["groups"][0] == "pass"
@@ -358,8 +374,9 @@ def test_files_that_disagree_on_the_kind_of_time_are_refused(tmp_path: Path) -> 
     here, _ = _checks_of(_spec(tmp_path, "readings"))
     status, detail = here["columns typed"]
     assert status == "fail"
-    assert detail.startswith("column 'week' holds numbers in part-0.parquet but dates in "
-                             "part-1.parquet")
+    assert detail.startswith(
+        "column 'week' holds numbers in part-0.parquet but dates in part-1.parquet"
+    )
 
 
 def test_reading_many_files_brings_back_nothing_per_reading(tmp_path: Path) -> None:
@@ -385,7 +402,7 @@ def test_reading_many_files_brings_back_nothing_per_reading(tmp_path: Path) -> N
         _split(folder)
         for path in folder.iterdir():
             frame = pd.read_parquet(path)
-            frame = pd.concat([frame.assign(week=frame.week * 0.999 ** k) for k in range(copies)])
+            frame = pd.concat([frame.assign(week=frame.week * 0.999**k) for k in range(copies)])
             frame.to_parquet(path, index=False)
         counting = Counting()
         ds = load_dataset(load_spec(_spec(tmp_path, folder.name)), counting, for_fit=True)
@@ -415,8 +432,7 @@ def test_files_left_without_readings_change_no_number(tmp_path: Path) -> None:
     plain_run = tables()
     frame = pd.read_parquet(tmp_path / "readings" / "part-0.parquet")
     frame.iloc[:0].to_parquet(tmp_path / "readings" / "part-00-empty.parquet", index=False)
-    frame.assign(usable=False).to_parquet(tmp_path / "readings" / "part-3.parquet",
-                                          index=False)
+    frame.assign(usable=False).to_parquet(tmp_path / "readings" / "part-3.parquet", index=False)
     more = tables()
     assert sorted(more) == sorted(plain_run) and len(more) > 8
     for name, data in plain_run.items():
@@ -425,7 +441,8 @@ def test_files_left_without_readings_change_no_number(tmp_path: Path) -> None:
     checks = pd.read_csv(io.BytesIO(more["tables/checks.csv"])).set_index("check")
     n = len(pd.read_csv(ROOT / "specs" / "clinic_visits.csv"))
     assert checks.loc["row selection", "detail"] == (
-        f"{n + len(frame)} rows read; usable equals True: {len(frame)} dropped; {n} kept")
+        f"{n + len(frame)} rows read; usable equals True: {len(frame)} dropped; {n} kept"
+    )
     assert checks.loc["subjects whole in one file", "detail"].startswith("5 Parquet files")
 
 
@@ -437,9 +454,9 @@ def _selecting(tmp_path: Path, named: str) -> Path:
     return path
 
 
-def test_a_file_a_task_cannot_find_is_named_with_the_likely_cause(tmp_path: Path,
-                                                                  monkeypatch: pytest.MonkeyPatch
-                                                                  ) -> None:
+def test_a_file_a_task_cannot_find_is_named_with_the_likely_cause(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
     # Listed by the reportgen process, gone where the task runs (as on a worker that does
     # not mount the data): the error names the file and says what workers need.
     from reportgen.inputs import loader as folder
@@ -451,26 +468,32 @@ def test_a_file_a_task_cannot_find_is_named_with_the_likely_cause(tmp_path: Path
         return [*listed(path, named), ("part-9.parquet", tmp_path / "elsewhere" / "p.parquet")]
 
     monkeypatch.setattr(folder, "list_files", also_missing)
-    with pytest.raises(DataError, match=r"'readings: part-9.parquet' is not at .* this worker "
-                                        "does not see the data"):
+    with pytest.raises(
+        DataError,
+        match=r"'readings: part-9.parquet' is not at .* this worker "
+        "does not see the data",
+    ):
         run_spec(_spec(tmp_path, "readings"), tmp_path / "runs")
     assert not (tmp_path / "runs").exists() or not any((tmp_path / "runs").rglob("v0*"))
 
 
 @pytest.mark.parametrize("engine", ["local", "dask"])
-def test_a_file_that_cannot_be_used_is_a_message_not_a_failed_task(tmp_path: Path,
-                                                                   engine: str) -> None:
+def test_a_file_that_cannot_be_used_is_a_message_not_a_failed_task(
+    tmp_path: Path, engine: str
+) -> None:
     # The value column missing from one file: one line naming the file, on either engine
     # (a cluster in the process logs to this terminal: no task failure, no traceback).
     _split(tmp_path / "readings")
     path = tmp_path / "readings" / "part-1.parquet"
     pd.read_parquet(path).drop(columns="marker").to_parquet(path, index=False)
-    done = cli("run", str(_spec(tmp_path, "readings")), "--out", str(tmp_path / "runs"),
-               "--engine", engine)
+    done = cli(
+        "run", str(_spec(tmp_path, "readings")), "--out", str(tmp_path / "runs"), "--engine", engine
+    )
     assert done.returncode == 2, done.stdout + done.stderr
     assert done.stderr.strip() == (
         "reportgen run: error: column(s) 'marker' not found in 'readings: part-1.parquet' "
-        "(named by data.value); the file has 2 column(s): patient, week")
+        "(named by data.value); the file has 2 column(s): patient, week"
+    )
 
 
 def test_the_union_of_the_files_ids_is_pandas_factorize() -> None:
@@ -484,12 +507,16 @@ def test_the_union_of_the_files_ids_is_pandas_factorize() -> None:
     words = np.array(["b", "a", "ä", "Z", "a1", "a10", "a2", "ß", "b ", "€x", "10", "9"])
     for values in (words, np.array([7, -3, 12, 0, 5, 100, 2, 41])):
         values = values[rng.permutation(values.size)]
-        files = [pd.Index(np.sort(part)).astype(pd.Series(values).convert_dtypes().dtype
-                                                 if values.dtype.kind == "i" else "str")
-                 for part in np.split(values, [3, 4])]
+        files = [
+            pd.Index(np.sort(part)).astype(
+                pd.Series(values).convert_dtypes().dtype if values.dtype.kind == "i" else "str"
+            )
+            for part in np.split(values, [3, 4])
+        ]
         codes, ids = _sorted_union(files)  # type: ignore[misc]
-        want_codes, want_ids = pd.factorize(pd.concat([pd.Series(f) for f in files],
-                                                      ignore_index=True), sort=True)
+        want_codes, want_ids = pd.factorize(
+            pd.concat([pd.Series(f) for f in files], ignore_index=True), sort=True
+        )
         assert codes.tolist() == want_codes.tolist()
         assert ids.equals(pd.Index(want_ids)) and ids.dtype == files[0].dtype
     # an id in two files, or ids that are not text or whole numbers: the caller factorizes

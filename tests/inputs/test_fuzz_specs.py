@@ -21,15 +21,26 @@ from reportgen.cli import main
 ROOT = Path(__file__).resolve().parents[2]
 BASE_SPEC = yaml.safe_load((ROOT / "specs" / "clinic_visits.yaml").read_text())
 
-scalars = st.one_of(st.none(), st.booleans(), st.integers(-10**6, 10**6),
-                    st.floats(allow_nan=True, allow_infinity=True), st.text(max_size=30))
-documents = st.recursive(scalars, lambda inner: st.one_of(
-    st.lists(inner, max_size=4), st.dictionaries(st.text(max_size=12), inner, max_size=4)),
-    max_leaves=20)
+scalars = st.one_of(
+    st.none(),
+    st.booleans(),
+    st.integers(-(10**6), 10**6),
+    st.floats(allow_nan=True, allow_infinity=True),
+    st.text(max_size=30),
+)
+documents = st.recursive(
+    scalars,
+    lambda inner: st.one_of(
+        st.lists(inner, max_size=4), st.dictionaries(st.text(max_size=12), inner, max_size=4)
+    ),
+    max_leaves=20,
+)
 
-FUZZ = settings(max_examples=60, deadline=None,
-                suppress_health_check=[HealthCheck.function_scoped_fixture,
-                                       HealthCheck.too_slow])
+FUZZ = settings(
+    max_examples=60,
+    deadline=None,
+    suppress_health_check=[HealthCheck.function_scoped_fixture, HealthCheck.too_slow],
+)
 
 
 @pytest.fixture
@@ -52,8 +63,7 @@ def _check(workdir: Path, text: str | bytes, capsys: pytest.CaptureFixture[str])
 
 @FUZZ
 @given(doc=documents)
-def test_random_yaml_documents(workdir: Path, capsys: pytest.CaptureFixture[str],
-                               doc: Any) -> None:
+def test_random_yaml_documents(workdir: Path, capsys: pytest.CaptureFixture[str], doc: Any) -> None:
     _check(workdir, yaml.safe_dump(doc, allow_unicode=True), capsys)
 
 
@@ -76,8 +86,9 @@ def _paths(doc: Any, prefix: tuple[Any, ...] = ()) -> list[tuple[Any, ...]]:
 
 @FUZZ
 @given(data=st.data())
-def test_mutations_of_the_example_spec(workdir: Path, capsys: pytest.CaptureFixture[str],
-                                       data: st.DataObject) -> None:
+def test_mutations_of_the_example_spec(
+    workdir: Path, capsys: pytest.CaptureFixture[str], data: st.DataObject
+) -> None:
     doc = copy.deepcopy(BASE_SPEC)
     for _ in range(data.draw(st.integers(1, 3))):
         paths = [p for p in _paths(doc) if p]

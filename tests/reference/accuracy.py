@@ -51,8 +51,11 @@ class Design:
         t = rng.uniform(self.lo, self.hi, subj.size)
         xi = rng.normal(size=(self.n, len(self.eigenvalues))) * np.sqrt(self.eigenvalues)
         phi = np.column_stack([f(t) for f in self.functions])
-        y = (self.mean(t) + np.sum(xi[subj] * phi, axis=1)
-             + rng.normal(0, np.sqrt(self.sigma2), t.size))
+        y = (
+            self.mean(t)
+            + np.sum(xi[subj] * phi, axis=1)
+            + rng.normal(0, np.sqrt(self.sigma2), t.size)
+        )
         return pd.DataFrame({"id": subj, "t": t, "y": y}), xi
 
     def truth(self, grid: np.ndarray, xi: np.ndarray) -> np.ndarray:
@@ -66,22 +69,58 @@ def _cos(k: int) -> Fn:
 
 COS3 = (_cos(1), _cos(2), _cos(3))
 DESIGNS = {
-    "A": Design("A", "[0,1], sqrt2 cos(k pi t) k=1..3, lambda (2, 1, 0.5), sigma^2 0.25, "
-                "mean 2t + sin 2 pi t, 1-5 readings, n 200", 0.0, 1.0,
-                lambda t: 2 * t + np.sin(2 * np.pi * t), COS3, (2.0, 1.0, 0.5), 0.25, (1, 5), 200),
-    "B": Design("B", "as A with 5-15 readings, n 2000", 0.0, 1.0,
-                lambda t: 2 * t + np.sin(2 * np.pi * t), COS3, (2.0, 1.0, 0.5), 0.25, (5, 15),
-                2000),
-    "C": Design("C", "[0,100], intercept sd 6 + sd 2.5 x sqrt2 cos(pi t/100) (lambda 3600, "
-                "625 for the unit-norm functions), sigma^2 1, mean 50 + 0.05t, 1-5 readings, "
-                "n 2000", 0.0, 100.0, lambda t: 50 + 0.05 * t,
-                (lambda t: np.full_like(t, 0.1),
-                 lambda t: np.sqrt(2 / 100) * np.cos(np.pi * t / 100)),
-                (3600.0, 625.0), 1.0, (1, 5), 2000),
-    "D": Design("D", "[0,1], modes 1 and sqrt3 (2t - 1), lambda (1, 0.5), sigma^2 1, "
-                "mean 1 - t^2, 5-15 readings, n 200", 0.0, 1.0, lambda t: 1 - t**2,
-                (lambda t: np.ones_like(t), lambda t: np.sqrt(3) * (2 * t - 1)), (1.0, 0.5), 1.0,
-                (5, 15), 200),
+    "A": Design(
+        "A",
+        "[0,1], sqrt2 cos(k pi t) k=1..3, lambda (2, 1, 0.5), sigma^2 0.25, "
+        "mean 2t + sin 2 pi t, 1-5 readings, n 200",
+        0.0,
+        1.0,
+        lambda t: 2 * t + np.sin(2 * np.pi * t),
+        COS3,
+        (2.0, 1.0, 0.5),
+        0.25,
+        (1, 5),
+        200,
+    ),
+    "B": Design(
+        "B",
+        "as A with 5-15 readings, n 2000",
+        0.0,
+        1.0,
+        lambda t: 2 * t + np.sin(2 * np.pi * t),
+        COS3,
+        (2.0, 1.0, 0.5),
+        0.25,
+        (5, 15),
+        2000,
+    ),
+    "C": Design(
+        "C",
+        "[0,100], intercept sd 6 + sd 2.5 x sqrt2 cos(pi t/100) (lambda 3600, "
+        "625 for the unit-norm functions), sigma^2 1, mean 50 + 0.05t, 1-5 readings, "
+        "n 2000",
+        0.0,
+        100.0,
+        lambda t: 50 + 0.05 * t,
+        (lambda t: np.full_like(t, 0.1), lambda t: np.sqrt(2 / 100) * np.cos(np.pi * t / 100)),
+        (3600.0, 625.0),
+        1.0,
+        (1, 5),
+        2000,
+    ),
+    "D": Design(
+        "D",
+        "[0,1], modes 1 and sqrt3 (2t - 1), lambda (1, 0.5), sigma^2 1, "
+        "mean 1 - t^2, 5-15 readings, n 200",
+        0.0,
+        1.0,
+        lambda t: 1 - t**2,
+        (lambda t: np.ones_like(t), lambda t: np.sqrt(3) * (2 * t - 1)),
+        (1.0, 0.5),
+        1.0,
+        (5, 15),
+        200,
+    ),
 }
 
 
@@ -93,8 +132,11 @@ def _coverage(fit: FPCAFit, truth: np.ndarray) -> dict[str, float]:
     shi = traj.upper_simultaneous.to_numpy().reshape(shape)
     inside = (truth >= lo) & (truth <= hi)
     whole = np.all((truth >= slo) & (truth <= shi), axis=1)
-    return {"pointwise": float(inside.mean()), "simultaneous_whole": float(whole.mean()),
-            "pointwise_whole": float(np.all(inside, axis=1).mean())}
+    return {
+        "pointwise": float(inside.mean()),
+        "simultaneous_whole": float(whole.mean()),
+        "pointwise_whole": float(np.all(inside, axis=1).mean()),
+    }
 
 
 def _mean_coverage(fit: FPCAFit, design: Design) -> tuple[float, float]:
@@ -119,25 +161,38 @@ def run_design(design: Design, seeds: int) -> dict[str, object]:
         frame, xi = design.sample(seed)
         fit = _fit(frame)
         truth_k = len(design.eigenvalues)
-        lam = [fit.all_eigenvalues[k] / design.eigenvalues[k] if k < fit.all_eigenvalues.size
-               else np.nan for k in range(truth_k)]
+        lam = [
+            fit.all_eigenvalues[k] / design.eigenvalues[k]
+            if k < fit.all_eigenvalues.size
+            else np.nan
+            for k in range(truth_k)
+        ]
         sel = fit.selection
-        picks = {rule: int(sel.k[np.nanargmin(crit)]) for rule, crit in
-                 (("aic", sel.aic), ("bic", sel.bic), ("cv", sel.cv))}
+        picks = {
+            rule: int(sel.k[np.nanargmin(crit)])
+            for rule, crit in (("aic", sel.aic), ("bic", sel.bic), ("cv", sel.cv))
+        }
         cov = _coverage(fit, design.truth(fit.grid, xi))
         if design.n <= CORRECTED_MAX_N:
             corrected = _coverage(_fit(frame, band="corrected"), design.truth(fit.grid, xi))
             cov.update({f"corrected_{k}": v for k, v in corrected.items()})
         mp, ms = _mean_coverage(fit, design)
-        rows.append({"sigma2": fit.error_variance / design.sigma2,
-                     "smooth": fit.smoothing_error_variance / design.sigma2,
-                     "not_positive": fit.smoothing_error_variance <= 0,
-                     **{f"lambda{k + 1}": v for k, v in enumerate(lam)},
-                     "K_fve": fit.n_components, **{f"K_{r}": v for r, v in picks.items()},
-                     **cov, "mean_pointwise": mp, "mean_simultaneous": ms,
-                     "h_cov": fit.covariance_bandwidth / (design.hi - design.lo),
-                     "h_cov_top": fit.covariance_bandwidth >= 0.999 * max(
-                         fit.covariance_bandwidth_choice.candidates or (np.inf,))})
+        rows.append(
+            {
+                "sigma2": fit.error_variance / design.sigma2,
+                "smooth": fit.smoothing_error_variance / design.sigma2,
+                "not_positive": fit.smoothing_error_variance <= 0,
+                **{f"lambda{k + 1}": v for k, v in enumerate(lam)},
+                "K_fve": fit.n_components,
+                **{f"K_{r}": v for r, v in picks.items()},
+                **cov,
+                "mean_pointwise": mp,
+                "mean_simultaneous": ms,
+                "h_cov": fit.covariance_bandwidth / (design.hi - design.lo),
+                "h_cov_top": fit.covariance_bandwidth
+                >= 0.999 * max(fit.covariance_bandwidth_choice.candidates or (np.inf,)),
+            }
+        )
     return {"design": design, "rows": pd.DataFrame(rows)}
 
 
@@ -159,17 +214,21 @@ def sensitivity_c(seeds: int) -> dict[float, pd.Series]:
         frame, _ = design.sample(seed)
         base = _fit(frame)
         for f in out:
-            fit = _fit(frame, mean_bandwidth=f * base.mean_bandwidth,
-                       covariance_bandwidth=f * base.covariance_bandwidth,
-                       diagonal_bandwidth=f * base.diagonal_bandwidth)
+            fit = _fit(
+                frame,
+                mean_bandwidth=f * base.mean_bandwidth,
+                covariance_bandwidth=f * base.covariance_bandwidth,
+                diagonal_bandwidth=f * base.diagonal_bandwidth,
+            )
             out[f].append(fit.error_variance / design.sigma2)
     return {f: pd.Series(v) for f, v in out.items()}
 
 
 def clinic() -> tuple[float, float]:
     frame = pd.read_csv(ROOT / "specs" / "clinic_visits.csv")
-    fit = fit_sparse_fpca(frame, subject="patient", time="week", value="marker", n_grid=53,
-                          domain=[0.0, 104.0])
+    fit = fit_sparse_fpca(
+        frame, subject="patient", time="week", value="marker", n_grid=53, domain=[0.0, 104.0]
+    )
     return fit.error_variance, fit.smoothing_error_variance
 
 
@@ -203,17 +262,21 @@ NOTES = [
 
 def main(seeds: int = 20, write: bool = False) -> str:
     start = time.perf_counter()
-    lines = ["# Accuracy against known truth", "",
-             f"Made by `python -m tests.reference.accuracy --seeds {seeds} --write` "
-             "(default options). Each cell: median [10th, 90th percentile] over "
-             f"{seeds} seeds of estimate / truth, unless it says otherwise.", "",
-             "| design | sigma^2 (refined) | sigma^2 (smoothing) | not positive | "
-             + "lambda_1 | lambda_2 | lambda_3 | K by fve / aic / bic / cv | "
-             "plug-in band: pointwise | plug-in: whole curve in pointwise | plug-in: whole "
-             "curve in simultaneous | corrected band: pointwise | corrected: whole curve in "
-             "simultaneous | mean: pointwise | mean: whole curve in simultaneous | "
-             "cov. bandwidth / domain length | cov. bandwidth at the limit |",
-             "|" + "---|" * 18]
+    lines = [
+        "# Accuracy against known truth",
+        "",
+        f"Made by `python -m tests.reference.accuracy --seeds {seeds} --write` "
+        "(default options). Each cell: median [10th, 90th percentile] over "
+        f"{seeds} seeds of estimate / truth, unless it says otherwise.",
+        "",
+        "| design | sigma^2 (refined) | sigma^2 (smoothing) | not positive | "
+        + "lambda_1 | lambda_2 | lambda_3 | K by fve / aic / bic / cv | "
+        "plug-in band: pointwise | plug-in: whole curve in pointwise | plug-in: whole "
+        "curve in simultaneous | corrected band: pointwise | corrected: whole curve in "
+        "simultaneous | mean: pointwise | mean: whole curve in simultaneous | "
+        "cov. bandwidth / domain length | cov. bandwidth at the limit |",
+        "|" + "---|" * 18,
+    ]
     details = []
     for key, design in DESIGNS.items():
         res = run_design(design, seeds)
@@ -225,20 +288,38 @@ def main(seeds: int = 20, write: bool = False) -> str:
             f"| {key} | {_q(r.sigma2)} | {_q(r.smooth)} | {int(r.not_positive.sum())} | "
             f"{' | '.join(lam)} | {ks} | {_q(r.pointwise)} | {_q(r.pointwise_whole)} | "
             f"{_q(r.simultaneous_whole)} | "
-            + (f"{_q(r.corrected_pointwise)} | {_q(r.corrected_simultaneous_whole)} | "
-               if "corrected_pointwise" in r else "not run | not run | ")
+            + (
+                f"{_q(r.corrected_pointwise)} | {_q(r.corrected_simultaneous_whole)} | "
+                if "corrected_pointwise" in r
+                else "not run | not run | "
+            )
             + f"{_q(r.mean_pointwise)} | "
-            f"{r.mean_simultaneous.mean():.2f} | {_q(r.h_cov)} | {int(r.h_cov_top.sum())} |")
+            f"{r.mean_simultaneous.mean():.2f} | {_q(r.h_cov)} | {int(r.h_cov_top.sum())} |"
+        )
         details.append(f"- {key}: {design.text}; true K = {len(design.eigenvalues)}.")
     sens = sensitivity_c(seeds)
-    lines += ["", "Designs:", *details, "",
-              "Design C with all three bandwidths fixed at a factor times the chosen ones "
-              "(refined sigma^2 / truth):", "", "| factor | sigma^2 |", "|---|---|"]
+    lines += [
+        "",
+        "Designs:",
+        *details,
+        "",
+        "Design C with all three bandwidths fixed at a factor times the chosen ones "
+        "(refined sigma^2 / truth):",
+        "",
+        "| factor | sigma^2 |",
+        "|---|---|",
+    ]
     lines += [f"| {f:g} | {_q(v)} |" for f, v in sens.items()]
     est, smooth = clinic()
-    lines += ["", f"Clinic example (specs/clinic_visits.yaml; generating sigma^2 2.25): refined "
-              f"{est:.3f}, smoothing estimate {smooth:.3f}.", "",
-              f"Wall time {time.perf_counter() - start:.0f} s.", "", *NOTES]
+    lines += [
+        "",
+        f"Clinic example (specs/clinic_visits.yaml; generating sigma^2 2.25): refined "
+        f"{est:.3f}, smoothing estimate {smooth:.3f}.",
+        "",
+        f"Wall time {time.perf_counter() - start:.0f} s.",
+        "",
+        *NOTES,
+    ]
     text = "\n".join(lines) + "\n"
     if write:
         (ROOT / "benchmarks" / "ACCURACY.md").write_text(text, encoding="utf-8")

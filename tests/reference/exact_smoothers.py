@@ -17,8 +17,12 @@ from reportgen.fpca.smoothing import (
 
 
 def local_linear_exact_1d(
-    eval_x: FloatArray, x: FloatArray, y: FloatArray, h: float,
-    kernel: Kernel = epanechnikov, weights: FloatArray | None = None,
+    eval_x: FloatArray,
+    x: FloatArray,
+    y: FloatArray,
+    h: float,
+    kernel: Kernel = epanechnikov,
+    weights: FloatArray | None = None,
 ) -> FloatArray:
     """Unbinned local linear estimate at ``eval_x`` (O(n_eval x n_obs) memory; for tests)."""
     w, wd, wdd = _weight_matrices(eval_x, np.asarray(x, dtype=np.float64), h, kernel)
@@ -32,7 +36,11 @@ def local_linear_exact_1d(
 
 
 def local_linear_exact_2d(
-    eval_x: FloatArray, x1: FloatArray, x2: FloatArray, y: FloatArray, h: float,
+    eval_x: FloatArray,
+    x1: FloatArray,
+    x2: FloatArray,
+    y: FloatArray,
+    h: float,
     kernel: Kernel = epanechnikov,
 ) -> FloatArray:
     """Unbinned local linear surface on ``eval_x x eval_x`` from scattered (x1, x2, y).

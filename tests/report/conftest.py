@@ -9,12 +9,17 @@ from tests.conftest import EXAMPLES
 from tests.helpers import ROOT  # noqa: F401
 
 STYLES = ("default", "journal", "submission")
-STYLE_FIELDS = {"header": "Study XY-123 (fictional)", "footer": "Confidential: test only",
-                "numbering": "14.2"}
+STYLE_FIELDS = {
+    "header": "Study XY-123 (fictional)",
+    "footer": "Confidential: test only",
+    "numbering": "14.2",
+}
 
 
-RECORD_VIEW = {"items": [("tool", "reportgen test"), ("run started (UTC)", "2025-12-01T00:00:00Z")],
-               "commands": "reportgen run SPEC"}
+RECORD_VIEW = {
+    "items": [("tool", "reportgen test"), ("run started (UTC)", "2025-12-01T00:00:00Z")],
+    "commands": "reportgen run SPEC",
+}
 
 
 @pytest.fixture(scope="session")
@@ -34,8 +39,9 @@ def analysed(regenerated: dict[str, Path]) -> dict[str, tuple[Any, dict[str, Any
 
 
 @pytest.fixture(scope="session")
-def styled(analysed: dict[str, tuple[Any, dict[str, Any]]]
-           ) -> dict[tuple[str, str], tuple[bytes, bytes]]:
+def styled(
+    analysed: dict[str, tuple[Any, dict[str, Any]]],
+) -> dict[tuple[str, str], tuple[bytes, bytes]]:
     """(example, style) -> (HTML, PDF) of both examples in every shipped style, with a
     running header, a footer and a numbering prefix."""
     from dataclasses import replace
@@ -51,8 +57,9 @@ def styled(analysed: dict[str, tuple[Any, dict[str, Any]]]
         for style in STYLES:
             report = replace(spec.report, **STYLE_FIELDS, template=style)
             styled_spec = replace(spec, report=report)
-            html = render_html(replace(result, spec=styled_spec), 1, RECORD_VIEW, figures,
-                               load_style(styled_spec))
+            html = render_html(
+                replace(result, spec=styled_spec), 1, RECORD_VIEW, figures, load_style(styled_spec)
+            )
             pdf = render_pdf(html, spec.raw, b"{}", "2025-12-01T00:00:00Z")
             out[(name, style)] = (html, pdf)
     return out

@@ -46,13 +46,15 @@ class _Counting(InProcess):
 
 def _run(tmp_path: Path, n: int) -> tuple[_Counting, Any]:
     data = yao_design(n, seed=5)
-    data = data.assign(patient=[f"S{i:05d}" for i in data.id], week=data.t * 10.0,
-                       marker=100.0 + 10.0 * data.y,
-                       arm=np.where(data.id % 3 == 0, "a", "b"))
+    data = data.assign(
+        patient=[f"S{i:05d}" for i in data.id],
+        week=data.t * 10.0,
+        marker=100.0 + 10.0 * data.y,
+        arm=np.where(data.id % 3 == 0, "a", "b"),
+    )
     folder = tmp_path / str(n)
     folder.mkdir()
-    data[["patient", "week", "marker", "arm"]].to_csv(folder / "clinic_visits.csv",
-                                                      index=False)
+    data[["patient", "week", "marker", "arm"]].to_csv(folder / "clinic_visits.csv", index=False)
     text = (ROOT / "specs" / "clinic_visits.yaml").read_text()
     text = text.replace("  value: marker\n", "  value: marker\n  group: arm\n")
     text = text.replace("subjects:\n  count: 6\n", "subjects:\n  count: 6\n  tables: parquet\n")
@@ -70,8 +72,11 @@ def _run(tmp_path: Path, n: int) -> tuple[_Counting, Any]:
 @pytest.fixture
 def capped(monkeypatch: pytest.MonkeyPatch) -> None:
     """The report's samples (scores, residual readings, likelihood) capped at CAP subjects."""
-    for module, name in ((analysis, "SUBJECT_SAMPLE_MAX"), (analysis, "DIAGNOSTIC_MAX_SUBJECTS"),
-                         (fit_module, "REFINE_MAX_SUBJECTS")):
+    for module, name in (
+        (analysis, "SUBJECT_SAMPLE_MAX"),
+        (analysis, "DIAGNOSTIC_MAX_SUBJECTS"),
+        (fit_module, "REFINE_MAX_SUBJECTS"),
+    ):
         monkeypatch.setattr(module, name, CAP)
 
 
@@ -79,8 +84,13 @@ def test_the_report_gathers_nothing_per_subject(tmp_path: Path, capped: None) ->
     small, _ = _run(tmp_path, N_SUBJECTS)
     large, result = _run(tmp_path, 2 * N_SUBJECTS)
     passes = set(large.largest) - {"part_summary", "made_part"}
-    assert {"part_farthest", "part_largest_rms", "part_group_sums", "checked_found",
-            "take_rows"} <= passes
+    assert {
+        "part_farthest",
+        "part_largest_rms",
+        "part_group_sums",
+        "checked_found",
+        "take_rows",
+    } <= passes
     # a per-subject return would grow by N_SUBJECTS numbers or more; the sampled subjects'
     # readings vary a little with their reading counts
     for name in sorted(passes):
@@ -104,9 +114,15 @@ def test_the_report_says_where_it_uses_the_sample(tmp_path: Path, capped: None) 
     for name in ("scores", "group_scores"):
         assert words in figures[name][1], name
     empty = {name: ("<svg></svg>", "c", "a") for name in ("residuals", "group_means")}
-    text = "".join(str(asdict(s)) for s in build_sections(
-        result, {}, {**figures, **empty}, order=["residuals", "groups", "scores"]))
-    assert f"90th percentile {pd.Series(result.subjects_view.rms).quantile(0.9):.3g} " \
-           f"(over {words})" in text
+    text = "".join(
+        str(asdict(s))
+        for s in build_sections(
+            result, {}, {**figures, **empty}, order=["residuals", "groups", "scores"]
+        )
+    )
+    assert (
+        f"90th percentile {pd.Series(result.subjects_view.rms).quantile(0.9):.3g} "
+        f"(over {words})" in text
+    )
     assert f"group labels over {words} (seed" in text
     assert f"{result.subjects_view.n_flagged} subject(s) flagged" in text

@@ -57,15 +57,24 @@ def _server(page: bytes, seen: list[str]) -> ThreadingHTTPServer:
     return server
 
 
-@pytest.mark.skipif(CHROMIUM is None, reason="chromium is not installed (.ci/run installs the "
-                    "Debian package; locally: apt-get install chromium)")
+@pytest.mark.skipif(
+    CHROMIUM is None,
+    reason="chromium is not installed (.ci/run installs the "
+    "Debian package; locally: apt-get install chromium)",
+)
 @pytest.mark.parametrize("style", ["run", "default", "journal", "submission"])
 def test_report_loads_offline_without_errors(
-        regenerated: dict[str, Path], styled: dict[tuple[str, str], tuple[bytes, bytes]],
-        tmp_path: Path, style: str) -> None:
+    regenerated: dict[str, Path],
+    styled: dict[tuple[str, str], tuple[bytes, bytes]],
+    tmp_path: Path,
+    style: str,
+) -> None:
     # "run": the committed example as run; the others: each shipped style
-    page = ((regenerated["clinic_visits"] / "report.html").read_bytes() if style == "run"
-            else styled[("clinic_visits", style)][0])
+    page = (
+        (regenerated["clinic_visits"] / "report.html").read_bytes()
+        if style == "run"
+        else styled[("clinic_visits", style)][0]
+    )
     seen: list[str] = []
     server = _server(page, seen)
     port = server.server_address[1]
@@ -73,13 +82,28 @@ def test_report_loads_offline_without_errors(
     try:
         with tempfile.TemporaryDirectory() as profile:
             proc = subprocess.run(
-                [str(CHROMIUM), "--headless", "--no-sandbox", "--disable-gpu", "--disable-quic",
-                 "--no-first-run", "--disable-background-networking",
-                 "--disable-component-update", "--disable-sync", f"--user-data-dir={profile}",
-                 f"--proxy-server=http://127.0.0.1:{port}", "--proxy-bypass-list=<-loopback>",
-                 "--enable-logging=stderr", "--v=0", "--window-size=1000,3000",
-                 f"--screenshot={shot}", f"http://127.0.0.1:{port}/report.html"],
-                capture_output=True, text=True, timeout=180,
+                [
+                    str(CHROMIUM),
+                    "--headless",
+                    "--no-sandbox",
+                    "--disable-gpu",
+                    "--disable-quic",
+                    "--no-first-run",
+                    "--disable-background-networking",
+                    "--disable-component-update",
+                    "--disable-sync",
+                    f"--user-data-dir={profile}",
+                    f"--proxy-server=http://127.0.0.1:{port}",
+                    "--proxy-bypass-list=<-loopback>",
+                    "--enable-logging=stderr",
+                    "--v=0",
+                    "--window-size=1000,3000",
+                    f"--screenshot={shot}",
+                    f"http://127.0.0.1:{port}/report.html",
+                ],
+                capture_output=True,
+                text=True,
+                timeout=180,
             )
     finally:
         server.shutdown()

@@ -20,11 +20,18 @@ pytestmark = pytest.mark.render
 
 CASES = {
     # name: (package, dataset, subject, time, value, time unit, value unit, extra spec)
-    "phenobarb": ("nlme", "Phenobarb", "Subject", "time", "conc", "hours", "ug/L",
-                  "model: {domain: [0, 200]}\nchecks: {domain: [0, 400]}\n"),
+    "phenobarb": (
+        "nlme",
+        "Phenobarb",
+        "Subject",
+        "time",
+        "conc",
+        "hours",
+        "ug/L",
+        "model: {domain: [0, 200]}\nchecks: {domain: [0, 400]}\n",
+    ),
     "dietox": ("geepack", "dietox", "Pig", "Time", "Weight", "weeks", "kg", ""),
-    "blackmore": ("carData", "Blackmore", "subject", "age", "exercise", "years", "hours/week",
-                  ""),
+    "blackmore": ("carData", "Blackmore", "subject", "age", "exercise", "years", "hours/week", ""),
 }
 
 
@@ -48,7 +55,8 @@ def runs(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Path]:
         (base / f"{key}.yaml").write_text(
             f"report: {{id: {key}, title: {name}}}\n"
             f"data: {{file: {path.name}, subject: {subj}, time: {time}, value: {value}, "
-            f"time_unit: {tu}, value_unit: \"{vu}\"}}\n" + extra)
+            f'time_unit: {tu}, value_unit: "{vu}"}}\n' + extra
+        )
         out[key] = run_spec(base / f"{key}.yaml", base / "runs")
     return out
 
@@ -70,8 +78,9 @@ def test_units_are_stated(runs: dict[str, Path], key: str) -> None:
 
 
 @pytest.mark.parametrize("key", sorted(CASES))
-def test_sensitivity_verdicts_follow_the_computed_similarities(runs: dict[str, Path],
-                                                               key: str) -> None:
+def test_sensitivity_verdicts_follow_the_computed_similarities(
+    runs: dict[str, Path], key: str
+) -> None:
     sens = pd.read_csv(runs[key] / "tables" / "sensitivity.csv")
     html = _html(runs[key])
     # Default factors are chosen to be feasible: every setting was computed.

@@ -15,8 +15,9 @@ ROOT = Path(__file__).resolve().parents[2]
 
 
 @pytest.mark.parametrize("report", ["clinic-visits", "pump-service"])
-def test_figures_as_images_leave_the_pdf_unchanged(report: str,
-                                                   monkeypatch: pytest.MonkeyPatch) -> None:
+def test_figures_as_images_leave_the_pdf_unchanged(
+    report: str, monkeypatch: pytest.MonkeyPatch
+) -> None:
     # Reference: weasyprint rendering the same HTML with the SVG figures inline.
     html = (ROOT / "sample_runs" / report / "v001" / "report.html").read_bytes()
     assert html.count(b"<svg ") >= 10

@@ -17,12 +17,12 @@ pytestmark = pytest.mark.render
 
 
 def _files(run: Path) -> dict[str, bytes]:
-    return {str(p.relative_to(run)): p.read_bytes() for p in sorted(run.rglob("*"))
-            if p.is_file()}
+    return {str(p.relative_to(run)): p.read_bytes() for p in sorted(run.rglob("*")) if p.is_file()}
 
 
 def test_worker_alone_and_dead_worker_write_the_same_bytes(
-        study: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    study: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
     # the example's per-subject tables count as large: the worker writes them
     monkeypatch.setattr(reportgen.report.render_process, "LARGE_TABLE_ROWS", 10)
     with_worker = _files(run_spec(study, tmp_path / "a"))

@@ -17,8 +17,19 @@ from .conftest import ROOT
 
 pytestmark = pytest.mark.render
 
-SECTIONS = ["summary", "checks", "mean", "covariance", "components", "scores", "trajectories",
-            "residuals", "sensitivity", "caveats", "reproducibility"]
+SECTIONS = [
+    "summary",
+    "checks",
+    "mean",
+    "covariance",
+    "components",
+    "scores",
+    "trajectories",
+    "residuals",
+    "sensitivity",
+    "caveats",
+    "reproducibility",
+]
 FIGURES = 12
 
 
@@ -63,9 +74,11 @@ def test_sections_figures_alt_text(regenerated: dict[str, Path], example: str) -
     for n in range(1, n_figures + 1):
         assert f"Figure {prefix}{n}." in html
     assert re.search(r"https?:", html) is None  # no network reference at all
-    for caution in ("not for decisions about an individual",
-                    "statistical analysis plan take precedence",
-                    "under the model&#39;s assumptions"):
+    for caution in (
+        "not for decisions about an individual",
+        "statistical analysis plan take precedence",
+        "under the model&#39;s assumptions",
+    ):
         assert caution in html
     assert "<script" not in html
 
@@ -77,8 +90,9 @@ def test_text_from_the_spec_is_escaped(tmp_path: Path) -> None:
         'title: "<script>alert(1)</script> & <b>bold</b>"',
     ).replace('authors: ["Example Analyst"]', 'authors: ["<img src=x onerror=alert(2)>"]')
     (tmp_path / "s.yaml").write_text(spec_text)
-    (tmp_path / "clinic_visits.csv").write_bytes((ROOT / "specs" / "clinic_visits.csv")
-                                                 .read_bytes())
+    (tmp_path / "clinic_visits.csv").write_bytes(
+        (ROOT / "specs" / "clinic_visits.csv").read_bytes()
+    )
     built = build_outputs(load_spec(tmp_path / "s.yaml"), 1, "2026-01-01T00:00:00Z")
     html = built.files["report.html"].decode()
     assert "<script" not in html and "<img" not in html

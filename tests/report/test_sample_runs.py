@@ -22,32 +22,39 @@ EXAMPLES = [("clinic_visits", "clinic-visits"), ("pump_service", "pump-service")
 
 
 @pytest.mark.parametrize(("example", "report_id"), EXAMPLES)
-def test_sample_run_tables_reproduce_as_numbers(regenerated: dict[str, Path], example: str,
-                                                report_id: str) -> None:
+def test_sample_run_tables_reproduce_as_numbers(
+    regenerated: dict[str, Path], example: str, report_id: str
+) -> None:
     committed = SAMPLES / report_id / "v001"
     fresh = regenerated[example]
     names = sorted(p.name for p in (committed / "tables").iterdir())
     assert len(names) > 8 and sorted(p.name for p in (fresh / "tables").iterdir()) == names
     for name in names:
-        ok, how = tables_match((committed / "tables" / name).read_bytes(),
-                               (fresh / "tables" / name).read_bytes())
+        ok, how = tables_match(
+            (committed / "tables" / name).read_bytes(), (fresh / "tables" / name).read_bytes()
+        )
         assert ok, f"{name}: {how}"
 
 
 @pytest.mark.parametrize(("example", "report_id"), EXAMPLES)
-def test_sample_run_regenerates_identically(regenerated: dict[str, Path], example: str,
-                                            report_id: str) -> None:
+def test_sample_run_regenerates_identically(
+    regenerated: dict[str, Path], example: str, report_id: str
+) -> None:
     committed = SAMPLES / report_id / "v001"
     differs = environment_diff(json.loads((committed / "record.json").read_text())["environment"])
     if differs:
-        pytest.skip("rendered bytes reproduce only in the environment that made the sample "
-                    f"run, and this one differs ({'; '.join(differs)}); the tables are "
-                    "compared as numbers above")
+        pytest.skip(
+            "rendered bytes reproduce only in the environment that made the sample "
+            f"run, and this one differs ({'; '.join(differs)}); the tables are "
+            "compared as numbers above"
+        )
     fresh = regenerated[example]
     assert fresh.name == "v001"
-    names = ["report.html", *sorted(str(p.relative_to(committed))
-                                    for p in (committed / "tables").iterdir()),
-             *sorted(str(p.relative_to(committed)) for p in (committed / "figures").iterdir())]
+    names = [
+        "report.html",
+        *sorted(str(p.relative_to(committed)) for p in (committed / "tables").iterdir()),
+        *sorted(str(p.relative_to(committed)) for p in (committed / "figures").iterdir()),
+    ]
     assert len(names) > 15
     for name in names:
         assert (fresh / name).read_bytes() == (committed / name).read_bytes(), name

@@ -21,8 +21,12 @@ from reportgen.inputs.spec import load_spec
 ROOT = Path(__file__).resolve().parents[2]
 
 
-def _analyse(tmp_path: Path, name: str, spec_edit: tuple[str, str] = ("", ""),
-             data: pd.DataFrame | None = None) -> AnalysisResult:
+def _analyse(
+    tmp_path: Path,
+    name: str,
+    spec_edit: tuple[str, str] = ("", ""),
+    data: pd.DataFrame | None = None,
+) -> AnalysisResult:
     folder = tmp_path / name
     folder.mkdir()
     text = (ROOT / "specs" / "clinic_visits.yaml").read_text()
@@ -44,8 +48,9 @@ def base(tmp_path_factory: pytest.TempPathFactory) -> AnalysisResult:
 
 
 def test_setting_not_computed_is_said_with_its_reason(tmp_path: Path) -> None:
-    res = _analyse(tmp_path, "infeasible",
-                   ("factors: [0.5, 0.75, 1.5, 2.0]", "factors: [0.02, 1.5]"))
+    res = _analyse(
+        tmp_path, "infeasible", ("factors: [0.5, 0.75, 1.5, 2.0]", "factors: [0.02, 1.5]")
+    )
     failed = [r for r in res.sensitivity if r.fit is None]
     assert [r.factor for r in failed] == [0.02]
     caveat = next(c for c in res.caveats if c.startswith("Sensitivity settings not computed"))
@@ -91,8 +96,9 @@ def test_stability_sentence_quotes_the_similarities(base: AnalysisResult) -> Non
         for quoted in re.findall(r"x([0-9.]+): ([0-9.]+)", " ".join(sentence)):
             run = next(r for r in base.sensitivity if f"{r.factor:g}" == quoted[0])
             assert f"{run.similarity[k]:.3f}" == quoted[1]
-        for factor, n in re.findall(r"x([0-9.]+): absent, that fit has (\d+) components",
-                                    " ".join(sentence)):
+        for factor, n in re.findall(
+            r"x([0-9.]+): absent, that fit has (\d+) components", " ".join(sentence)
+        ):
             run = next(r for r in base.sensitivity if f"{r.factor:g}" == factor)
             assert np.isnan(run.similarity[k]) and run.fit.n_components == int(n) <= k
 
@@ -113,8 +119,10 @@ def test_time_pair_coverage_sentence(base: AnalysisResult, tmp_path: Path) -> No
     assert (any(c.startswith(claim) for c in base.caveats)) == (check.status == "warn")
     data = pd.read_csv(ROOT / "specs" / "clinic_visits.csv")
     early = sorted(data.patient.unique())[::2]  # half the patients seen only early, half late
-    data = data[(data.patient.isin(early) & (data.week < 70))
-                | (~data.patient.isin(early) & (data.week > 30))]  # no (early, late) pairs
+    data = data[
+        (data.patient.isin(early) & (data.week < 70))
+        | (~data.patient.isin(early) & (data.week > 30))
+    ]  # no (early, late) pairs
     res = _analyse(tmp_path, "split", data=data)
     check = next(c for c in res.dataset.checks if c.name == "time-pair coverage")
     assert check.status == "warn"
@@ -148,23 +156,28 @@ def test_flagged_subjects_named_up_to_the_cap(base: AnalysisResult) -> None:
     from reportgen.report.sections import build_sections
 
     fit = base.fit
-    view = subject_view(fit, base.residual_sums, 0.5, base.subjects_view.sampled,
-                        base.subjects_view.scores)
+    view = subject_view(
+        fit, base.residual_sums, 0.5, base.subjects_view.sampled, base.subjects_view.scores
+    )
     d2 = np.sum(fit.score_values**2 / fit.eigenvalues, axis=1)
     assert view.n_flagged == int(np.sum(d2 > view.cut)) > NAMED_FLAGGED
     top = np.argsort(-d2, kind="stable")[:NAMED_FLAGGED]
     assert view.farthest.subject.tolist() == list(fit.subjects[top])
     np.testing.assert_array_equal(view.farthest.distance2, d2[top])
     result = replace(base, subjects_view=view)
-    text = str(asdict(build_sections(result, {}, {"scores": ("<svg></svg>", "c", "a")},
-                                     order=["scores"])[0]))
+    text = str(
+        asdict(
+            build_sections(result, {}, {"scores": ("<svg></svg>", "c", "a")}, order=["scores"])[0]
+        )
+    )
     assert f"{view.n_flagged} subject(s) flagged; the {NAMED_FLAGGED} farthest: " in text
     named = re.findall(r"(\w+) \(([\d.e+-]+)\)", text.split("farthest: ")[1].split(" (squared")[0])
     assert [s for s, _ in named] == [str(x) for x in fit.subjects[top]]
 
 
-def test_residual_diagnostics_over_a_sample_say_so(base: AnalysisResult, tmp_path: Path,
-                                                   monkeypatch: pytest.MonkeyPatch) -> None:
+def test_residual_diagnostics_over_a_sample_say_so(
+    base: AnalysisResult, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
     # Above DIAGNOSTIC_MAX_SUBJECTS the spread trend and the residual figure use a seeded
     # sample of subjects: the sentence names it, and the number is Spearman's rho of that
     # sample's readings (reference: scipy.stats.spearmanr). At or below it, every subject.
@@ -183,13 +196,15 @@ def test_residual_diagnostics_over_a_sample_say_so(base: AnalysisResult, tmp_pat
     assert counts.tolist() == res.fit.scores.n_obs.loc[counts.index].tolist()  # all readings
     expected = spearmanr(np.abs(sampled.standardized), sampled.fitted).statistic
     assert res.spread == pytest.approx(expected, rel=1e-12)
-    assert _over_sample(res) == (f"; over the {len(sampled):,} readings of a seeded sample "
-                                 f"of 40 of the {n:,} subjects")
+    assert _over_sample(res) == (
+        f"; over the {len(sampled):,} readings of a seeded sample of 40 of the {n:,} subjects"
+    )
     # the per-subject table covers every subject, as does the summary's sample here
     from reportgen.analysis.subjects import every_subject_frames as subject_tables
 
     table = subject_tables(res)["residuals_by_subject"]
     assert len(table) == n and res.subjects_view.sample_words() == ""
-    np.testing.assert_array_equal(table.rms_standardized,
-                                  subject_tables(base)["residuals_by_subject"].rms_standardized)
+    np.testing.assert_array_equal(
+        table.rms_standardized, subject_tables(base)["residuals_by_subject"].rms_standardized
+    )
     np.testing.assert_array_equal(res.subjects_view.rms, table.rms_standardized)

@@ -41,7 +41,8 @@ def _pdf_text(pdf: bytes) -> list[str]:
 @pytest.mark.parametrize("example", EXAMPLES)
 @pytest.mark.parametrize("style", STYLES)
 def test_every_style_prints_header_footer_numbering_and_sections(
-        styled: dict[tuple[str, str], tuple[bytes, bytes]], example: str, style: str) -> None:
+    styled: dict[tuple[str, str], tuple[bytes, bytes]], example: str, style: str
+) -> None:
     html, pdf = styled[(example, style)]
     text = html.decode("utf-8")
     pages = _pdf_text(pdf)
@@ -59,21 +60,38 @@ def test_every_style_prints_header_footer_numbering_and_sections(
     assert ("Sign-off" in text) == (style == "submission")
     if style == "submission":
         assert "Prepared by" in pages[0] and "Reviewed by" in pages[-1]
-    for caution in ("not for decisions about an individual",
-                    "statistical analysis plan take precedence"):
+    for caution in (
+        "not for decisions about an individual",
+        "statistical analysis plan take precedence",
+    ):
         assert caution in text
 
 
-@pytest.mark.skipif(shutil.which("pdftoppm") is None, reason="poppler (pdftoppm) is not "
-                    "installed")
+@pytest.mark.skipif(shutil.which("pdftoppm") is None, reason="poppler (pdftoppm) is not installed")
 def test_the_submission_title_page_is_a_page_of_its_own(
-        styled: dict[tuple[str, str], tuple[bytes, bytes]], tmp_path: Path) -> None:
+    styled: dict[tuple[str, str], tuple[bytes, bytes]], tmp_path: Path
+) -> None:
     from PIL import Image
 
     _, pdf = styled[("clinic_visits", "submission")]
     (tmp_path / "r.pdf").write_bytes(pdf)
-    subprocess.run(["pdftoppm", "-f", "1", "-l", "2", "-r", "30", "-gray", "-png",
-                    str(tmp_path / "r.pdf"), str(tmp_path / "p")], check=True, timeout=120)
+    subprocess.run(
+        [
+            "pdftoppm",
+            "-f",
+            "1",
+            "-l",
+            "2",
+            "-r",
+            "30",
+            "-gray",
+            "-png",
+            str(tmp_path / "r.pdf"),
+            str(tmp_path / "p"),
+        ],
+        check=True,
+        timeout=120,
+    )
     import numpy as np
 
     def load(path: Path) -> np.ndarray:
@@ -84,14 +102,13 @@ def test_the_submission_title_page_is_a_page_of_its_own(
 
     def ink(img: np.ndarray, top: float, bottom: float) -> float:
         h = img.shape[0]
-        return float(np.mean(img[int(top * h):int(bottom * h)] < 128))
+        return float(np.mean(img[int(top * h) : int(bottom * h)] < 128))
 
     # title page: the upper third is empty (the title sits lower); page 2 starts at once
     assert ink(first, 0.08, 0.22) < 0.001 < ink(second, 0.08, 0.22)
 
 
-def _study(tmp_path: Path, report_extra: str = "", files: dict[str, str] | None = None
-           ) -> Path:
+def _study(tmp_path: Path, report_extra: str = "", files: dict[str, str] | None = None) -> Path:
     shutil.copy(ROOT / "specs" / "clinic_visits.csv", tmp_path / "clinic_visits.csv")
     text = (ROOT / "specs" / "clinic_visits.yaml").read_text()
     text = text.replace("report:\n", f"report:\n{report_extra}", 1)
@@ -102,24 +119,28 @@ def _study(tmp_path: Path, report_extra: str = "", files: dict[str, str] | None 
 
 
 def test_a_template_of_ones_own_extends_the_default_by_blocks(
-        tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
     # the README's worked example
-    template = ('{% extends "default" %}\n'
-                '{% block heading %}<header><h1>{{ title }}</h1>'
-                '<p class="sponsor">Prepared for the steering committee</p></header>'
-                '{% endblock %}\n'
-                '{% block end %}<p>End of appendix {{ report_id }}.</p>{% endblock %}\n')
-    spec = _study(tmp_path, '  template: committee.html.j2\n  stylesheet: extra.css\n'
-                  '  sections: [summary, mean, caveats, reproducibility]\n',
-                  {"committee.html.j2": template,
-                   "extra.css": ".sponsor { color: #225; }\n"})
+    template = (
+        '{% extends "default" %}\n'
+        "{% block heading %}<header><h1>{{ title }}</h1>"
+        '<p class="sponsor">Prepared for the steering committee</p></header>'
+        "{% endblock %}\n"
+        "{% block end %}<p>End of appendix {{ report_id }}.</p>{% endblock %}\n"
+    )
+    spec = _study(
+        tmp_path,
+        "  template: committee.html.j2\n  stylesheet: extra.css\n"
+        "  sections: [summary, mean, caveats, reproducibility]\n",
+        {"committee.html.j2": template, "extra.css": ".sponsor { color: #225; }\n"},
+    )
     assert main(["run", str(spec), "--out", str(tmp_path / "runs"), "--quiet"]) == 0
     run = tmp_path / "runs" / "clinic-visits" / "v001"
     html = (run / "report.html").read_text("utf-8")
     assert "Prepared for the steering committee" in html and "End of appendix" in html
     assert ".sponsor { color: #225; }" in html
-    sections = [line.split('"')[1] for line in html.splitlines()
-                if line.startswith("<section id=")]
+    sections = [line.split('"')[1] for line in html.splitlines() if line.startswith("<section id=")]
     assert sections == ["summary", "mean", "caveats", "reproducibility"]
     record = (run / "record.json").read_text()
     assert '"role": "template"' in record and '"role": "stylesheet"' in record
@@ -136,17 +157,29 @@ def test_caveats_and_reproducibility_cannot_be_left_out(tmp_path: Path) -> None:
         load_spec(spec)
 
 
-@pytest.mark.parametrize(("field", "name", "content", "message"), [
-    ("logo", "logo.png", "not an image", "must be a PNG or SVG file"),
-    ("stylesheet", "x.css", "body { background: url(http://example.org/x.png) }",
-     "refers to other files or URLs"),
-    ("stylesheet", "y.css", "@import 'other.css';", "refers to other files or URLs"),
-    ("stylesheet", "z.css", "</style><p>injected</p>", "contains '<'"),
-    ("template", "missing.j2", None, "does not exist"),
-])
+@pytest.mark.parametrize(
+    ("field", "name", "content", "message"),
+    [
+        ("logo", "logo.png", "not an image", "must be a PNG or SVG file"),
+        (
+            "stylesheet",
+            "x.css",
+            "body { background: url(http://example.org/x.png) }",
+            "refers to other files or URLs",
+        ),
+        ("stylesheet", "y.css", "@import 'other.css';", "refers to other files or URLs"),
+        ("stylesheet", "z.css", "</style><p>injected</p>", "contains '<'"),
+        ("template", "missing.j2", None, "does not exist"),
+    ],
+)
 def test_bad_style_files_are_refused_before_anything_is_written(
-        tmp_path: Path, capsys: pytest.CaptureFixture[str], field: str, name: str,
-        content: str | None, message: str) -> None:
+    tmp_path: Path,
+    capsys: pytest.CaptureFixture[str],
+    field: str,
+    name: str,
+    content: str | None,
+    message: str,
+) -> None:
     spec = _study(tmp_path, f"  {field}: {name}\n", {name: content} if content else {})
     assert main(["run", str(spec), "--out", str(tmp_path / "runs"), "--quiet"]) == 2
     err = capsys.readouterr().err
@@ -155,15 +188,20 @@ def test_bad_style_files_are_refused_before_anything_is_written(
 
 
 HOSTILE = {
-    "internals": ("{{ ''.__class__.__mro__[1].__subclasses__() }}",
-                  "did something a sandboxed template may not"),
-    "globals": ("{{ self._TemplateReference__context }}",
-                "did something a sandboxed template may not"),
+    "internals": (
+        "{{ ''.__class__.__mro__[1].__subclasses__() }}",
+        "did something a sandboxed template may not",
+    ),
+    "globals": (
+        "{{ self._TemplateReference__context }}",
+        "did something a sandboxed template may not",
+    ),
     "include": ('{% include "/etc/passwd" %}', "refers to '/etc/passwd', which is neither"),
-    "loop": ("{% for i in range(100000) %}{% for j in range(100000) %}{% endfor %}"
-             "{% endfor %}", "did not finish within 3 s"),
-    "huge": ("{% for i in range(100000) %}{{ 'x' * 2000 }}{% endfor %}",
-             "output passed"),
+    "loop": (
+        "{% for i in range(100000) %}{% for j in range(100000) %}{% endfor %}{% endfor %}",
+        "did not finish within 3 s",
+    ),
+    "huge": ("{% for i in range(100000) %}{{ 'x' * 2000 }}{% endfor %}", "output passed"),
     "repeat": ("{{ 'x' * 10000000000 }}", "may not build values longer than"),
     "fetch": ('<img src="http://example.org/track.png">', "refers to something outside"),
     "script": ("<script>alert(1)</script>", "contains active content"),
@@ -173,8 +211,8 @@ HOSTILE = {
 
 @pytest.mark.parametrize("case", sorted(HOSTILE))
 def test_hostile_templates_are_refused_with_a_message(
-        tmp_path: Path, monkeypatch: pytest.MonkeyPatch, analysed: dict[str, Any],
-        case: str) -> None:
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch, analysed: dict[str, Any], case: str
+) -> None:
     # Rendered as a run renders them (render_html: the sandboxed child process), from the
     # session's analysis of the example.
     from dataclasses import replace
@@ -187,9 +225,13 @@ def test_hostile_templates_are_refused_with_a_message(
     monkeypatch.setattr(sandbox, "TEMPLATE_SECONDS", 3.0)
     monkeypatch.setattr(sandbox, "MAX_OUTPUT_BYTES", 50 * 2**20)
     body, message = HOSTILE[case]
-    spec = load_spec(_study(tmp_path, "  template: evil.j2\n",
-                            {"evil.j2": '{% extends "default" %}{% block end %}' + body
-                                        + "{% endblock %}"}))
+    spec = load_spec(
+        _study(
+            tmp_path,
+            "  template: evil.j2\n",
+            {"evil.j2": '{% extends "default" %}{% block end %}' + body + "{% endblock %}"},
+        )
+    )
     result, figures = analysed["clinic_visits"]
     with pytest.raises(TemplateError) as refused:
         render_html(replace(result, spec=spec), 1, RECORD_VIEW, figures, load_style(spec))
@@ -198,12 +240,15 @@ def test_hostile_templates_are_refused_with_a_message(
 
 
 def test_a_hostile_template_stops_the_run_and_leaves_no_run(
-        tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
     # The whole command: the refusal is exit 2 with the message, and no version is left.
     body, message = HOSTILE["script"]
-    spec = _study(tmp_path, "  template: evil.j2\n",
-                  {"evil.j2": '{% extends "default" %}{% block end %}' + body
-                              + "{% endblock %}"})
+    spec = _study(
+        tmp_path,
+        "  template: evil.j2\n",
+        {"evil.j2": '{% extends "default" %}{% block end %}' + body + "{% endblock %}"},
+    )
     assert main(["run", str(spec), "--out", str(tmp_path / "runs"), "--quiet"]) == 2
     err = capsys.readouterr().err
     assert "report.template 'evil.j2'" in err and message in err, err

@@ -44,13 +44,15 @@ def runs(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Path]:
     folder = pump_folder(base)
     one = base / "one-plain.yaml"
     shutil.copy(ROOT / "specs" / "pump_service.csv", base / "pump_service.csv")
-    one.write_text((ROOT / "specs" / "pump_service.yaml").read_text()
-                   .replace("logo: fleet_logo.svg", ""))
+    one.write_text(
+        (ROOT / "specs" / "pump_service.yaml").read_text().replace("logo: fleet_logo.svg", "")
+    )
     parts = _with(folder, "folder-parts.yaml", "  tables: parquet\n" + ALL)
     return {
         "one csv": run_spec(_with(one, "one.yaml", ALL), base / "one"),
-        "one parts": run_spec(_with(one, "one-parts.yaml", "  tables: parquet\n" + ALL),
-                              base / "one"),
+        "one parts": run_spec(
+            _with(one, "one-parts.yaml", "  tables: parquet\n" + ALL), base / "one"
+        ),
         "folder csv": run_spec(folder, base / "folder"),
         "folder parts": run_spec(parts, base / "folder"),
         "dask parts": run_spec(parts, base / "dask", engine="dask"),
@@ -77,15 +79,13 @@ def test_one_file_gives_one_part_equal_to_the_csv_table(runs: dict[str, Path]) -
         assert entry["rows"] == manifest["rows"] == expected.count(b"\n") - 1
 
 
-def test_a_folder_gives_one_part_per_file_holding_its_subjects(runs: dict[str, Path]
-                                                                ) -> None:
+def test_a_folder_gives_one_part_per_file_holding_its_subjects(runs: dict[str, Path]) -> None:
     csv, parts = runs["folder csv"], runs["folder parts"]
     files = sorted((parts.parents[2] / "pumps").iterdir())
     for table in TABLES:
         entries = _manifest(parts, table)["parts"]
         assert len(entries) == len(files) == 3
-        frames = [pq.read_table(parts / "tables" / table / e["file"]).to_pandas()
-                  for e in entries]
+        frames = [pq.read_table(parts / "tables" / table / e["file"]).to_pandas() for e in entries]
         for frame, file, entry in zip(frames, files, entries, strict=True):
             assert frame.subject.tolist() == sorted(pd.read_parquet(file).pump.unique())
             assert entry["rows"] == len(frame)
@@ -94,10 +94,13 @@ def test_a_folder_gives_one_part_per_file_holding_its_subjects(runs: dict[str, P
         assert to_csv_bytes(pd.concat(frames, ignore_index=True)) == whole
     # every subject's trajectory: a grid's rows each; the shown subjects' as trajectories.csv
     grid = len(pd.read_csv(csv / "tables" / "mean.csv"))
-    curves = [pq.read_table(parts / "tables" / "all_trajectories" / e["file"]).to_pandas()
-              for e in _manifest(parts, "all_trajectories")["parts"]]
-    assert [len(c) for c in curves] == [e["rows"] * grid
-                                         for e in _manifest(parts, "scores")["parts"]]
+    curves = [
+        pq.read_table(parts / "tables" / "all_trajectories" / e["file"]).to_pandas()
+        for e in _manifest(parts, "all_trajectories")["parts"]
+    ]
+    assert [len(c) for c in curves] == [
+        e["rows"] * grid for e in _manifest(parts, "scores")["parts"]
+    ]
     every = pd.concat(curves, ignore_index=True)
     shown = (parts / "tables" / "trajectories.csv").read_bytes()
     picked = every[every.subject.isin(pd.read_csv(io.BytesIO(shown), dtype=str).subject)]
@@ -179,8 +182,10 @@ def test_the_report_says_where_the_tables_of_subjects_are(runs: dict[str, Path])
     html = (runs["folder parts"] / "report.html").read_text()
     assert "tables/scores/, 3 Parquet part(s) listed in tables/scores/parts.json" in html
     assert "tables/scores.csv" not in html
-    assert ("The trajectory of every subject, with plug-in bands: tables/all_trajectories/, "
-            "3 Parquet part(s)") in html
+    assert (
+        "The trajectory of every subject, with plug-in bands: tables/all_trajectories/, "
+        "3 Parquet part(s)"
+    ) in html
     one = (runs["one csv"] / "report.html").read_text()
     assert "with plug-in bands: tables/all_trajectories.csv." in one
 
@@ -188,14 +193,20 @@ def test_the_report_says_where_the_tables_of_subjects_are(runs: dict[str, Path])
 def test_every_trajectory_needs_the_plugin_band(tmp_path: Path) -> None:
     spec = tmp_path / "pump.yaml"
     shutil.copy(ROOT / "specs" / "pump_service.csv", tmp_path / "pump_service.csv")
-    spec.write_text((ROOT / "specs" / "pump_service.yaml").read_text()
-                    .replace("logo: fleet_logo.svg", "")
-                    .replace("  count: 6\n", "  count: 6\n" + ALL)
-                    .replace("model:\n", "model:\n  band: corrected\n"))
+    spec.write_text(
+        (ROOT / "specs" / "pump_service.yaml")
+        .read_text()
+        .replace("logo: fleet_logo.svg", "")
+        .replace("  count: 6\n", "  count: 6\n" + ALL)
+        .replace("model:\n", "model:\n  band: corrected\n")
+    )
     done = cli("check", str(spec))
     assert done.returncode == 2, done.stdout + done.stderr
-    assert "subjects.all_trajectories writes every subject's trajectory with the plug-in band" \
-        in done.stderr and "Traceback" not in done.stderr
+    assert (
+        "subjects.all_trajectories writes every subject's trajectory with the plug-in band"
+        in done.stderr
+        and "Traceback" not in done.stderr
+    )
 
 
 def test_the_parts_go_in_batches_of_bounded_rows() -> None:

@@ -20,22 +20,20 @@ ROOT = Path(__file__).resolve().parents[1]
 
 
 def _pandas(frame: pd.DataFrame) -> bytes:
-    return frame.to_csv(index=False, float_format=FLOAT_FORMAT,
-                        lineterminator="\n").encode("utf-8")
+    return frame.to_csv(index=False, float_format=FLOAT_FORMAT, lineterminator="\n").encode("utf-8")
 
 
 TEXT = st.text(alphabet=st.sampled_from(list('ab,"\n\r x;é')), max_size=6)
 COLUMN = st.one_of(
     st.lists(st.floats(allow_nan=True, allow_infinity=True), min_size=3, max_size=3),
-    st.lists(st.integers(-10**12, 10**12), min_size=3, max_size=3),
+    st.lists(st.integers(-(10**12), 10**12), min_size=3, max_size=3),
     st.lists(st.booleans(), min_size=3, max_size=3),
     st.lists(st.one_of(TEXT, st.none()), min_size=3, max_size=3),
 )
 
 
 @settings(max_examples=300, deadline=None)
-@given(st.lists(st.tuples(TEXT, COLUMN), min_size=1, max_size=4,
-                unique_by=lambda c: c[0]))
+@given(st.lists(st.tuples(TEXT, COLUMN), min_size=1, max_size=4, unique_by=lambda c: c[0]))
 def test_any_frame_of_the_usual_kinds(columns: list[tuple[str, list[object]]]) -> None:
     frame = pd.DataFrame({name: values for name, values in columns})
     assert to_csv_bytes(frame) == _pandas(frame)
@@ -62,8 +60,10 @@ def test_the_committed_tables_are_written_back_identically() -> None:
 
 
 @settings(max_examples=100, deadline=None)
-@given(st.lists(st.tuples(TEXT, COLUMN), min_size=1, max_size=3, unique_by=lambda c: c[0]),
-       st.integers(1, 4))
+@given(
+    st.lists(st.tuples(TEXT, COLUMN), min_size=1, max_size=3, unique_by=lambda c: c[0]),
+    st.integers(1, 4),
+)
 def test_rows_written_in_blocks(columns: list[tuple[str, list[object]]], block: int) -> None:
     # three rows in blocks of 1 to 4 rows: every way a block boundary can fall
     frame = pd.DataFrame({name: values for name, values in columns})

@@ -34,12 +34,17 @@ def _visible_versions(out: Path) -> list[Path]:
 
 
 def _start(study: Path, out: Path) -> subprocess.Popen[str]:
-    return subprocess.Popen([sys.executable, "-m", "reportgen.cli", "run", str(study), "--out",
-                             str(out)], stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    return subprocess.Popen(
+        [sys.executable, "-m", "reportgen.cli", "run", str(study), "--out", str(out)],
+        stdout=subprocess.PIPE,
+        stderr=subprocess.PIPE,
+        text=True,
+    )
 
 
-def test_sigkill_leaves_no_visible_version_and_a_later_run_succeeds(study: Path,
-                                                                    tmp_path: Path) -> None:
+def test_sigkill_leaves_no_visible_version_and_a_later_run_succeeds(
+    study: Path, tmp_path: Path
+) -> None:
     out = tmp_path / "runs"
     killed = 0
     for delay in (0.5, 1.5, 2.5, 3.5):
@@ -60,8 +65,8 @@ def test_sigkill_leaves_no_visible_version_and_a_later_run_succeeds(study: Path,
 
 
 def test_disk_full_gives_a_clear_error_and_nothing_visible(
-        study: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch,
-        capsys: pytest.CaptureFixture[str]) -> None:
+    study: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture[str]
+) -> None:
     calls = {"n": 0}
     real_write = runner._write
 
@@ -79,9 +84,9 @@ def test_disk_full_gives_a_clear_error_and_nothing_visible(
     assert _visible_versions(out) == [] and list(out.glob("*/.v*")) == []
 
 
-def test_read_only_output_gives_a_clear_error(study: Path, tmp_path: Path,
-                                              monkeypatch: pytest.MonkeyPatch,
-                                              capsys: pytest.CaptureFixture[str]) -> None:
+def test_read_only_output_gives_a_clear_error(
+    study: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture[str]
+) -> None:
     blocker = tmp_path / "not-a-folder"
     blocker.write_text("a file where the output folder should be")
     assert main(["run", str(study), "--out", str(blocker / "runs")]) == 2
@@ -105,21 +110,23 @@ def test_two_concurrent_runs_get_distinct_versions(study: Path, tmp_path: Path) 
     assert [v.name for v in _visible_versions(out)] == ["v001", "v002"]
 
 
-def test_inputs_are_read_only_and_unchanged(study: Path, tmp_path: Path,
-                                            capsys: pytest.CaptureFixture[str]) -> None:
+def test_inputs_are_read_only_and_unchanged(
+    study: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
     data = study.parent / "clinic_visits.csv"
-    before = {p: (hashlib.sha256(p.read_bytes()).hexdigest(), p.stat().st_mtime_ns)
-              for p in (study, data)}
+    before = {
+        p: (hashlib.sha256(p.read_bytes()).hexdigest(), p.stat().st_mtime_ns) for p in (study, data)
+    }
     for p in before:
         os.chmod(p, 0o444)
     assert main(["run", str(study), "--out", str(tmp_path / "runs")]) == 0
-    after = {p: (hashlib.sha256(p.read_bytes()).hexdigest(), p.stat().st_mtime_ns)
-             for p in before}
+    after = {p: (hashlib.sha256(p.read_bytes()).hexdigest(), p.stat().st_mtime_ns) for p in before}
     assert after == before
 
 
-def test_missing_system_library_is_one_clear_line(monkeypatch: pytest.MonkeyPatch,
-                                                  capsys: pytest.CaptureFixture[str]) -> None:
+def test_missing_system_library_is_one_clear_line(
+    monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture[str]
+) -> None:
     # cffi's dlopen failure as weasyprint raises it when Pango is absent (message shape from
     # weasyprint's text/ffi.py); the check names the library and the packages, no traceback.
     import builtins
@@ -130,8 +137,10 @@ def test_missing_system_library_is_one_clear_line(monkeypatch: pytest.MonkeyPatc
 
     def fake(name: str, *args: object, **kwargs: object) -> object:
         if name == "weasyprint":
-            raise OSError("cannot load library 'libpango-1.0-0': libpango-1.0-0: cannot open "
-                          "shared object file: No such file or directory")
+            raise OSError(
+                "cannot load library 'libpango-1.0-0': libpango-1.0-0: cannot open "
+                "shared object file: No such file or directory"
+            )
         return real(name, *args, **kwargs)  # type: ignore[arg-type]
 
     monkeypatch.setattr(builtins, "__import__", fake)

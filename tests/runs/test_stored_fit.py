@@ -37,22 +37,27 @@ def study(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Path]:
     (folder / "s.yaml").write_text(
         "report: {id: pigs, title: Pig weights}\n"
         "data: {file: fitted.csv, subject: Pig, time: Time, value: Weight, time_unit: weeks, "
-        "value_unit: kg}\n")
+        "value_unit: kg}\n"
+    )
     assert main(["run", str(folder / "s.yaml"), "--out", str(folder / "runs"), "--quiet"]) == 0
     return {"folder": folder, "run": folder / "runs" / "pigs" / "v001"}
 
 
 def test_predicting_the_runs_own_subjects_gives_its_scores_and_bands(
-        study: dict[str, Path]) -> None:
+    study: dict[str, Path],
+) -> None:
     run = study["run"]
     pred = load_fit(run).predict_file(study["folder"] / "fitted.csv")
     scores = pd.read_csv(run / "tables" / "scores.csv", dtype={"subject": str})
     first = pred.drop_duplicates("subject").set_index("subject")
     cols = [c for c in scores.columns if c.startswith("score_")]
     # model.csv holds 10 significant digits: agreement to about 1e-9 of the scores' size
-    np.testing.assert_allclose(first.loc[scores.subject, cols].to_numpy(),
-                               scores[cols].to_numpy(), rtol=0,
-                               atol=1e-8 * float(np.abs(scores[cols]).max().max()))
+    np.testing.assert_allclose(
+        first.loc[scores.subject, cols].to_numpy(),
+        scores[cols].to_numpy(),
+        rtol=0,
+        atol=1e-8 * float(np.abs(scores[cols]).max().max()),
+    )
     traj = pd.read_csv(run / "tables" / "trajectories.csv", dtype={"subject": str})
     both = traj.merge(pred, on=["subject", "time"], suffixes=("", "_p"))
     assert len(both) == len(traj)
@@ -68,8 +73,9 @@ def test_new_subjects_get_the_conditional_expectation(study: dict[str, Path]) ->
     for pig, readings in new.groupby("Pig"):
         t = readings.Time.to_numpy(dtype=float)
         y = readings.Weight.to_numpy(dtype=float)
-        phi = np.stack([np.interp(t, p.grid, p.eigenfunctions[:, k])
-                        for k in range(p.n_components)], axis=1)
+        phi = np.stack(
+            [np.interp(t, p.grid, p.eigenfunctions[:, k]) for k in range(p.n_components)], axis=1
+        )
         lam = np.diag(p.eigenvalues)
         sigma = phi @ lam @ phi.T + p.error_variance * np.eye(t.size)
         xi = lam @ phi.T @ np.linalg.solve(sigma, y - np.interp(t, p.mean_time, p.mean_value))
@@ -81,7 +87,8 @@ def test_new_subjects_get_the_conditional_expectation(study: dict[str, Path]) ->
 
 
 def test_the_command_writes_csv_or_parquet_and_never_overwrites(
-        study: dict[str, Path], capsys: pytest.CaptureFixture[str]) -> None:
+    study: dict[str, Path], capsys: pytest.CaptureFixture[str]
+) -> None:
     folder, run = study["folder"], study["run"]
     out_csv, out_pq = folder / "p.csv", folder / "p.parquet"
     assert main(["predict", str(run), str(folder / "new.csv"), "--out", str(out_csv)]) == 0
@@ -93,12 +100,14 @@ def test_the_command_writes_csv_or_parquet_and_never_overwrites(
     assert main(["predict", str(run), str(folder / "new.csv"), "--out", str(out_csv)]) == 2
     assert "exists already" in capsys.readouterr().err
     assert out_csv.read_bytes() == before
-    assert main(["predict", str(run), str(folder / "new.csv"), "--out",
-                 str(folder / "p.xlsx")]) == 2
+    assert (
+        main(["predict", str(run), str(folder / "new.csv"), "--out", str(folder / "p.xlsx")]) == 2
+    )
 
 
 def test_readings_outside_the_domain_and_changed_runs_are_refused(
-        study: dict[str, Path], tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    study: dict[str, Path], tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
     folder, run = study["folder"], study["run"]
     late = pd.read_csv(folder / "new.csv")
     late.loc[late.index[0], "Time"] = 30.0

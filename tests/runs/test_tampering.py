@@ -53,9 +53,9 @@ def _verify(capsys: pytest.CaptureFixture[str], *args: str) -> tuple[int, str]:
     return code, capsys.readouterr().out
 
 
-def test_untouched_run_verifies_with_and_without_render(pristine: Path,
-                                                       capsys: pytest.CaptureFixture[str],
-                                                       monkeypatch: pytest.MonkeyPatch) -> None:
+def test_untouched_run_verifies_with_and_without_render(
+    pristine: Path, capsys: pytest.CaptureFixture[str], monkeypatch: pytest.MonkeyPatch
+) -> None:
     monkeypatch.delenv("SOURCE_DATE_EPOCH", raising=False)
     code, out = _verify(capsys, str(pristine))
     assert code == 0, out[-1500:]
@@ -72,8 +72,9 @@ def test_sha256sum_checks_every_run_without_reportgen(pristine: Path) -> None:
     # Reference: GNU coreutils manual, "md5sum invocation" (sha256sum shares it): with -c the
     # list's "<hex>  <name>" lines are read and each file is checked; exit 0 when all match.
     for run in [pristine, *sorted((ROOT / "sample_runs").glob("*/v*"))]:
-        res = subprocess.run(["sha256sum", "--strict", "-c", "SHA256SUMS"], cwd=run,
-                             capture_output=True, text=True)
+        res = subprocess.run(
+            ["sha256sum", "--strict", "-c", "SHA256SUMS"], cwd=run, capture_output=True, text=True
+        )
         assert res.returncode == 0, (run, res.stdout[-500:], res.stderr[-500:])
         listed, bad = parse_checksum_list((run / "SHA256SUMS").read_bytes())
         assert not bad and "report.pdf" in listed and "record.json" in listed
@@ -88,24 +89,33 @@ def _input(run: Path) -> None:
 def _sums(run: Path) -> None:
     text = (run / "SHA256SUMS").read_text()
     line = next(x for x in text.splitlines() if x.endswith("tables/mean.csv"))
-    (run / "SHA256SUMS").write_text(text.replace(line, ("0" if line[0] != "0" else "1")
-                                                 + line[1:]))
+    (run / "SHA256SUMS").write_text(text.replace(line, ("0" if line[0] != "0" else "1") + line[1:]))
 
 
-@pytest.mark.parametrize(("kind", "tamper", "named"), [
-    ("table", lambda r: _flip(r / "tables" / "components.csv"), "file tables/components.csv"),
-    ("figure", lambda r: _flip(r / "figures" / "mean.svg"), "file figures/mean.svg"),
-    ("html", lambda r: _flip(r / "report.html"), "file report.html"),
-    ("pdf", lambda r: _flip(r / "report.pdf"), "file report.pdf"),
-    ("record", lambda r: _flip(r / "record.json", 0.3), "file record.json"),
-    ("spec", lambda r: (r / "spec.yaml").write_bytes((r / "spec.yaml").read_bytes() + b"#\n"),
-     "file spec.yaml"),
-    ("sums", _sums, "file SHA256SUMS"),
-    ("extra", lambda r: (r / "notes.txt").write_text("x"), "file notes.txt"),
-])
-def test_each_kind_of_tampering_is_named(pristine: Path, capsys: pytest.CaptureFixture[str],
-                                         kind: str, tamper: Callable[[Path], None],
-                                         named: str) -> None:
+@pytest.mark.parametrize(
+    ("kind", "tamper", "named"),
+    [
+        ("table", lambda r: _flip(r / "tables" / "components.csv"), "file tables/components.csv"),
+        ("figure", lambda r: _flip(r / "figures" / "mean.svg"), "file figures/mean.svg"),
+        ("html", lambda r: _flip(r / "report.html"), "file report.html"),
+        ("pdf", lambda r: _flip(r / "report.pdf"), "file report.pdf"),
+        ("record", lambda r: _flip(r / "record.json", 0.3), "file record.json"),
+        (
+            "spec",
+            lambda r: (r / "spec.yaml").write_bytes((r / "spec.yaml").read_bytes() + b"#\n"),
+            "file spec.yaml",
+        ),
+        ("sums", _sums, "file SHA256SUMS"),
+        ("extra", lambda r: (r / "notes.txt").write_text("x"), "file notes.txt"),
+    ],
+)
+def test_each_kind_of_tampering_is_named(
+    pristine: Path,
+    capsys: pytest.CaptureFixture[str],
+    kind: str,
+    tamper: Callable[[Path], None],
+    named: str,
+) -> None:
     run = _copy(pristine, f"t-{kind}")
     tamper(run)
     code, out = _verify(capsys, str(run))
@@ -115,8 +125,7 @@ def test_each_kind_of_tampering_is_named(pristine: Path, capsys: pytest.CaptureF
     assert "integrity: FAILED" in out
 
 
-def test_changed_input_is_said_in_words(tmp_path: Path, capsys: pytest.CaptureFixture[str]
-                                        ) -> None:
+def test_changed_input_is_said_in_words(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     for name in ("clinic_visits.yaml", "clinic_visits.csv"):
         shutil.copy(ROOT / "specs" / name, tmp_path / name)
     run = run_spec(tmp_path / "clinic_visits.yaml", tmp_path / "runs")
@@ -127,8 +136,9 @@ def test_changed_input_is_said_in_words(tmp_path: Path, capsys: pytest.CaptureFi
     assert "numbers: not checked" in out and "input clinic_visits.csv" in out.split("verify:")[-1]
 
 
-def test_run_copied_elsewhere_verifies_with_inputs(pristine: Path, tmp_path: Path,
-                                                   capsys: pytest.CaptureFixture[str]) -> None:
+def test_run_copied_elsewhere_verifies_with_inputs(
+    pristine: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
     moved = tmp_path / "audit" / "run"
     shutil.copytree(pristine, moved)
     data = tmp_path / "handed-over"
@@ -140,9 +150,9 @@ def test_run_copied_elsewhere_verifies_with_inputs(pristine: Path, tmp_path: Pat
     assert code == 0, out[-1500:]
 
 
-def test_other_environment_explains_rendering_difference(pristine: Path,
-                                                         capsys: pytest.CaptureFixture[str]
-                                                         ) -> None:
+def test_other_environment_explains_rendering_difference(
+    pristine: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
     run = _copy(pristine, "other-env")
     record = json.loads((run / "record.json").read_text())
     record["environment"]["packages"]["weasyprint"] = "0.0-recorded-elsewhere"
