@@ -21,7 +21,8 @@ from typing import Any, TypeVar
 
 from .._version import __version__
 from ..errors import EngineError
-from ..fpca.plan import Executor, InProcess, Part, warm_up
+from ..fpca.executor import Executor, InProcess
+from ..fpca.plan import Part, warm_up
 
 T = TypeVar("T")
 ENGINES = ("local", "dask")

@@ -38,7 +38,6 @@ from .bandwidth import EXTEND_TO, BandwidthChoice, candidate_bandwidths, select_
 from .components import (
     Eigen,
     eigen_decompose,
-    trapezoid_weights,
 )
 from .design import BinnedStats, PairStats, Sample, assign_folds, seeded_sample
 from .likelihood import LikelihoodFit, maximise, starting_error_variance
@@ -59,6 +58,7 @@ from .smoothing import (
     local_linear_binned_1d,
     local_linear_binned_2d,
     local_quadratic_diagonal_2d,
+    trapezoid_weights,
 )
 
 

@@ -26,8 +26,9 @@ from ._kernels import interpolate_columns
 from .arrays import FloatArray, IntArray
 from .design import BinnedStats, PairStats, Sample, mean_stats, pair_stats
 from .diagnostics import part_group_sums
+from .executor import tree_sum
 from .fit import mean_covariance
-from .plan import Part, Partitioned, add_binned, add_pair_stats, tree_sum
+from .plan import Part, Partitioned, add_binned, add_pair_stats
 from .result import FPCAFit
 from .smoothing import BinGrid, get_kernel, local_linear_binned_1d
 

@@ -43,7 +43,8 @@ def epanechnikov(u: FloatArray) -> FloatArray:
 
 def gaussian(u: FloatArray) -> FloatArray:
     """Standard normal density; the bandwidth is its standard deviation."""
-    return np.exp(-0.5 * u * u) / np.sqrt(2.0 * np.pi)
+    out: FloatArray = np.exp(-0.5 * u * u) / np.sqrt(2.0 * np.pi)
+    return out
 
 
 KERNELS: dict[str, Kernel] = {"epanechnikov": epanechnikov, "gaussian": gaussian}
@@ -152,7 +153,8 @@ def hat_diagonal_1d(
     s0, s1, s2 = counts @ w.T, counts @ wd.T, counts @ wdd.T
     k0 = float(kernel(np.zeros(1))[0])
     with np.errstate(divide="ignore", invalid="ignore"):
-        return k0 * s2 / (s0 * s2 - s1 * s1)
+        out: FloatArray = k0 * s2 / (s0 * s2 - s1 * s1)
+    return out
 
 
 def _moments_2d(
@@ -332,7 +334,10 @@ def local_quadratic_diagonal_2d(
     left_s = [p @ sums for p in powers[:3]]
 
     def moment(poly: dict[tuple[int, int], float], left: list[FloatArray]) -> FloatArray:
-        return sum(c * np.sum(left[p] * powers[q], axis=1) for (p, q), c in poly.items())
+        total: FloatArray = sum(
+            c * np.sum(left[p] * powers[q], axis=1) for (p, q), c in poly.items()
+        )
+        return total
 
     basis = _ROTATED_BASIS
     m = np.stack(

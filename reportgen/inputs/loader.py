@@ -576,4 +576,5 @@ def _groups(
     labels = pd.Categorical(out)
     if np.any(labels.codes < 0):  # a missing group (not one string): as they came
         return out
-    return np.asarray(labels.categories, dtype=object)[labels.codes]
+    interned: np.ndarray = np.asarray(labels.categories, dtype=object)[labels.codes]
+    return interned

@@ -15,6 +15,7 @@ matplotlib.use("Agg")
 import matplotlib.pyplot as plt
 import numpy as np
 from cycler import cycler
+from matplotlib.figure import Figure as MplFigure
 from scipy.special import ndtri
 
 from ..analysis.analyse import AnalysisResult
@@ -59,7 +60,7 @@ def make_figures(
     return out
 
 
-Figure = tuple[plt.Figure, str, str]  # the figure, its caption, its alt text
+Drawn = tuple[MplFigure, str, str]  # the figure, its caption, its alt text
 
 
 def _time_label(r: AnalysisResult) -> str:
@@ -76,7 +77,7 @@ def _level(r: AnalysisResult) -> str:
     return f"{r.fit.options.band_level:.0%}"
 
 
-def _readings_per_subject(r: AnalysisResult) -> Figure:
+def _readings_per_subject(r: AnalysisResult) -> Drawn:
     fig, ax = plt.subplots(figsize=(6, 2.6))
     counts = np.bincount(r.fit.n_obs)
     ax.bar(np.arange(counts.size), counts, color=PALETTE[0])
@@ -89,7 +90,7 @@ def _readings_per_subject(r: AnalysisResult) -> Figure:
     )
 
 
-def _design(r: AnalysisResult) -> Figure:
+def _design(r: AnalysisResult) -> Drawn:
     g, tl = r.fit.grid, _time_label(r)
     fig, ax = plt.subplots(figsize=(4.2, 3.6))
     pc = r.fit.pair_counts
@@ -128,7 +129,7 @@ def _draw_counts(ax: Any, counts: np.ndarray, axes: tuple[tuple[float, float, in
     ax.pcolormesh(edges[0], edges[1], shown.T, cmap="Greys", shading="flat", rasterized=True)
 
 
-def _mean(r: AnalysisResult) -> Figure:
+def _mean(r: AnalysisResult) -> Drawn:
     fit, view, g = r.fit, r.readings, r.fit.grid
     fig, ax = plt.subplots(figsize=(6, 3.2))
     n = view.n_readings
@@ -182,7 +183,7 @@ def _mean(r: AnalysisResult) -> Figure:
     )
 
 
-def _covariance(r: AnalysisResult) -> Figure:
+def _covariance(r: AnalysisResult) -> Drawn:
     fit, g, tl = r.fit, r.fit.grid, _time_label(r)
     fig, axes = plt.subplots(1, 3, figsize=(7.4, 2.6))
     cov = fit.retained_covariance
@@ -212,7 +213,7 @@ def _covariance(r: AnalysisResult) -> Figure:
     )
 
 
-def _bandwidths(r: AnalysisResult) -> Figure:
+def _bandwidths(r: AnalysisResult) -> Drawn:
     fit, unit = r.fit, r.spec.data.time_unit
     fig, axes = plt.subplots(1, 3, figsize=(7.4, 2.3))
     for ax, (what, choice) in zip(
@@ -243,7 +244,7 @@ def _bandwidths(r: AnalysisResult) -> Figure:
     )
 
 
-def _eigenvalues(r: AnalysisResult) -> Figure:
+def _eigenvalues(r: AnalysisResult) -> Drawn:
     fit = r.fit
     fig, ax = plt.subplots(figsize=(6, 2.8))
     n_show = min(fit.all_eigenvalues.size, 10)
@@ -277,7 +278,7 @@ def _eigenvalues(r: AnalysisResult) -> Figure:
     )
 
 
-def _eigenfunctions(r: AnalysisResult) -> Figure:
+def _eigenfunctions(r: AnalysisResult) -> Drawn:
     fit, g = r.fit, r.fit.grid
     fig, ax = plt.subplots(figsize=(6, 3))
     for k in range(fit.n_components):
@@ -294,7 +295,7 @@ def _eigenfunctions(r: AnalysisResult) -> Figure:
     )
 
 
-def _effects(r: AnalysisResult) -> Figure:
+def _effects(r: AnalysisResult) -> Drawn:
     fit, g = r.fit, r.fit.grid
     k_show = min(fit.n_components, 3)
     fig, axes = plt.subplots(1, k_show, figsize=(2.1 * k_show + 0.4, 2.6), squeeze=False)
@@ -316,7 +317,7 @@ def _effects(r: AnalysisResult) -> Figure:
     )
 
 
-def _trajectories(r: AnalysisResult) -> Figure:
+def _trajectories(r: AnalysisResult) -> Drawn:
     frame = r.readings.frame
     tl, vl, level = _time_label(r), _value_label(r), _level(r)
     shown = list(r.shown_subjects)
@@ -358,7 +359,7 @@ def _trajectories(r: AnalysisResult) -> Figure:
     )
 
 
-def _residuals(r: AnalysisResult) -> Figure:
+def _residuals(r: AnalysisResult) -> Drawn:
     res, tl, vl = r.readings.residuals, _time_label(r), _value_label(r)
     fig, axes = plt.subplots(1, 3, figsize=(6.6, 2.4))
     for ax, xcol, xl in ((axes[0], "time", tl), (axes[1], "fitted", "fitted " + vl)):
@@ -396,7 +397,7 @@ def _residuals(r: AnalysisResult) -> Figure:
     )
 
 
-def _sensitivity(r: AnalysisResult) -> Figure:
+def _sensitivity(r: AnalysisResult) -> Drawn:
     fit, g = r.fit, r.fit.grid
     k_show = min(fit.n_components, 2)
     fig, axes = plt.subplots(1, 1 + k_show, figsize=(2.1 * (1 + k_show) + 0.3, 2.4), squeeze=False)
@@ -421,7 +422,7 @@ def _sensitivity(r: AnalysisResult) -> Figure:
     )
 
 
-def _scores_figure(r: AnalysisResult) -> Figure:
+def _scores_figure(r: AnalysisResult) -> Drawn:
     """Scores of the first two components (a histogram of the first when K = 1), with the
     flagged subjects marked and labelled by id (the ten farthest)."""
     fit = r.fit
@@ -500,7 +501,7 @@ def _scores_figure(r: AnalysisResult) -> Figure:
     return fig, caption, alt
 
 
-def _group_means(r: AnalysisResult) -> Figure | None:
+def _group_means(r: AnalysisResult) -> Drawn | None:
     g = r.groups
     if g is None:
         return None
@@ -534,7 +535,7 @@ def _group_means(r: AnalysisResult) -> Figure | None:
     )
 
 
-def _group_scores(r: AnalysisResult) -> Figure | None:
+def _group_scores(r: AnalysisResult) -> Drawn | None:
     g = r.groups
     if g is None:
         return None
@@ -571,7 +572,7 @@ def _group_scores(r: AnalysisResult) -> Figure | None:
 
 
 # The report's figures, in report order: name -> drawing function (None: not in this report).
-FIGURES: dict[str, Callable[[AnalysisResult], Figure | None]] = {
+FIGURES: dict[str, Callable[[AnalysisResult], Drawn | None]] = {
     "readings_per_subject": _readings_per_subject,
     "design": _design,
     "mean": _mean,

@@ -28,7 +28,8 @@ from importlib import resources
 from typing import Any
 
 import jinja2
-from jinja2.sandbox import ImmutableSandboxedEnvironment, SecurityError
+from jinja2.exceptions import SecurityError
+from jinja2.sandbox import ImmutableSandboxedEnvironment
 from markupsafe import Markup
 
 STYLES = ("default", "journal", "submission")

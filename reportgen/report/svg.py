@@ -9,6 +9,7 @@ import re
 from xml.etree import ElementTree
 
 import matplotlib.pyplot as plt
+from matplotlib.figure import Figure
 
 
 def inline_svg(text: str, prefix: str) -> str:
@@ -58,7 +59,7 @@ def _flatten(text: str) -> str:
     return ElementTree.tostring(root, encoding="unicode")
 
 
-def figure_svg(fig: plt.Figure, name: str) -> str:
+def figure_svg(fig: Figure, name: str) -> str:
     """A drawn figure as inline SVG (closed after), its ids prefixed with ``name``."""
     buf = io.StringIO()
     fig.tight_layout()

@@ -36,11 +36,12 @@ def _table(run_dir: Path, name: str, columns: list[str] | None = None) -> pd.Dat
 
         try:
             files = [run_dir / e.file for e in read_part_list(run_dir, name)]
-            return pd.concat(
+            frame: pd.DataFrame = pd.concat(
                 [pq.read_table(f, columns=columns).to_pandas() for f in files], ignore_index=True
             )
         except (ValueError, OSError) as e:
             raise RecordError(f"{str(run_dir)!r}: tables/{name} cannot be read: {e}") from e
+        return frame
     raise RecordError(f"{str(run_dir)!r} has no tables/{name}.csv")
 
 

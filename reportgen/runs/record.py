@@ -112,7 +112,7 @@ def build_record(
     outputs: dict[str, str],
     style_inputs: Sequence[InputFile] = (),
     engine: str = "local",
-) -> dict:
+) -> dict[str, Any]:
     """record.json's content. ``inputs`` lists the data file, then the files the spec's
     report section names (template, style sheet, logo), each with its role. Data given as
     many files carry their manifest; the entry's sha256 is then the manifest's digest
@@ -162,7 +162,7 @@ def build_record(
     }
 
 
-def dump_record(record: dict) -> bytes:
+def dump_record(record: dict[str, Any]) -> bytes:
     return (json.dumps(record, indent=2, sort_keys=False, ensure_ascii=False) + "\n").encode()
 
 
