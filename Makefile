@@ -4,7 +4,7 @@
 # make lint      : ruff (lint and format check) and mypy; needs no system library
 # make format    : ruff format and ruff's import sorting, in place
 # make demo      : run the first example spec and print the report path
-# One test:        .venv/bin/python -m pytest tests/fpca/test_plan.py::test_one_part_is_the_whole_sample
+# One test:        .venv/bin/python -m pytest tests/fpca/test_plan.py::test_one_part_is_the_whole_sample_exactly
 PYTHON ?= python3
 VENV   ?= .venv
 BIN    := $(VENV)/bin

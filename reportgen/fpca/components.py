@@ -19,6 +19,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from ..errors import EstimationError
+from . import refusals
 from ._kernels import interpolate_columns
 from .arrays import FloatArray
 from .smoothing import trapezoid_weights
@@ -134,10 +135,7 @@ def choose(
         if n_components is None:
             raise EstimationError('component_rule "fixed" needs n_components')
         if n_components > k_max:
-            raise EstimationError(
-                f"n_components={n_components} is more than the {k_max} positive "
-                "eigenvalues that the estimated covariance allows"
-            )
+            raise EstimationError(refusals.too_many_components(n_components, k_max))
         return n_components
     if rule == "fve":
         reached = np.flatnonzero(cumulative_fve >= fve_threshold - 1e-12)

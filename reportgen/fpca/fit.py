@@ -499,8 +499,7 @@ def _refined_count(eig: Eigen, options: FPCAOptions) -> int:
     if options.component_rule == "fixed" and options.n_components is not None:
         if options.n_components > eig.values.size:
             raise EstimationError(
-                f"n_components={options.n_components} is more than the {eig.values.size} "
-                "positive eigenvalues that the estimated covariance allows"
+                refusals.too_many_components(options.n_components, eig.values.size)
             )
         k = max(k, options.n_components)
     return k

@@ -43,3 +43,10 @@ def smoother_undefined(what: str, h: float, fixed: bool, bad: FloatArray, n: int
         f"{where} (too few readings nearby); narrow the domain or give a larger fixed "
         "bandwidth"
     )
+
+
+def too_many_components(asked: int, allowed: int) -> str:
+    return (
+        f"n_components={asked} is more than the {allowed} positive eigenvalues that the "
+        "estimated covariance allows"
+    )
