@@ -82,10 +82,14 @@ def _cmd_run(args: argparse.Namespace) -> int:
     print(f"pdf: {run_dir / 'report.pdf'}")
     if not args.against_previous:
         return 0
-    version = int(run_dir.name.removeprefix("v"))
-    previous = run_dir.parent / f"v{version - 1:03d}"
-    if version == 1 or not previous.is_dir():
-        print("against previous: this is the first version; nothing to compare")
+    from .runs.writer import previous_run
+
+    previous = previous_run(run_dir)
+    if previous is None:
+        print(
+            "against previous: this is the first version (no earlier completed one); nothing to "
+            "compare"
+        )
         return 0
     print(f"against previous: {previous.name} -> {run_dir.name}")
     return _compare(previous, run_dir)

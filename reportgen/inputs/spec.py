@@ -10,6 +10,7 @@ a dictionary.
 from __future__ import annotations
 
 import hashlib
+import math
 from dataclasses import dataclass, field, fields
 from datetime import date, datetime
 from pathlib import Path
@@ -43,6 +44,23 @@ class _NoAliasLoader(yaml.SafeLoader):
                 "a spec; write the value out"
             )
         return super().compose_node(parent, index)
+
+    def construct_mapping(self, node: Any, deep: bool = False) -> Any:
+        """A key given twice in one mapping is refused (YAML would keep the last silently)."""
+        seen: dict[Any, int] = {}
+        for key_node, _ in node.value:
+            key = self.construct_object(key_node, deep=deep)
+            line = key_node.start_mark.line + 1
+            try:
+                if key in seen:
+                    raise SpecError(
+                        f"line {line}: the key {key!r} is given twice in one mapping (first at "
+                        f"line {seen[key]}); a spec names each key once"
+                    )
+                seen[key] = line
+            except TypeError:  # an unhashable key: the mapping's own check refuses it
+                break
+        return super().construct_mapping(node, deep)
 
 
 # --- the sections -------------------------------------------------------------------------
@@ -294,8 +312,10 @@ def _json_safe(value: Any, path: str) -> None:
             _json_safe(v, f"{path}[{i}]")
     elif not (value is None or isinstance(value, str | int | float | bool)):
         raise SpecError(f"{path} must be plain text or a number; got {value!r}. Quote it.")
-    if isinstance(value, float) and value != value:
-        raise SpecError(f"{path} must be a number; got nan.")
+    if isinstance(value, float) and not math.isfinite(value):
+        raise SpecError(f"{path} must be a finite number; got {value}.")
+    if isinstance(value, str) and "\x00" in value:
+        raise SpecError(f"{path} contains a NUL character; a spec's text cannot hold one.")
 
 
 def _time_origin(given: Any) -> TimeOrigin | None:

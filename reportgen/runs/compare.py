@@ -13,6 +13,7 @@ import pandas as pd
 from ..errors import RecordError
 from ..fpca.smoothing import trapezoid_weights
 from ..inputs.spec import GatesSection
+from .integrity import integrity_findings
 from .record import load_record
 
 
@@ -81,6 +82,14 @@ def _same_report(a: Path, b: Path, ra: dict[str, Any], rb: dict[str, Any]) -> No
 def compare_runs(a: Path, b: Path, gates: GatesSection) -> list[Finding]:
     """What changed from run ``a`` to run ``b``; ``crossed`` marks a gate that fails."""
     ra, rb = load_record(a), load_record(b)
+    for run, record in ((a, ra), (b, rb)):
+        _, findings = integrity_findings(run, record["outputs"])
+        if findings:
+            listed = "; ".join(f"{f.name}: {f.kind} ({f.detail})" for f in findings[:5])
+            raise RecordError(
+                f"the run {str(run)!r} fails its integrity check ({listed}); a comparison "
+                "with it would not be one with the recorded analysis"
+            )
     _same_report(a, b, ra, rb)
     out: list[Finding] = []
     ia = {i["path"]: i["sha256"] for i in ra["inputs"]}

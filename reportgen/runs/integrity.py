@@ -52,38 +52,85 @@ class FileFinding:
     detail: str = ""
 
 
+# The files of a run that record.json does not list: itself, and the PDF that carries it.
+UNRECORDED = ("record.json", "report.pdf")
+
+
 def run_files(run: Path) -> list[str]:
-    """Every regular file of a run directory, as sorted relative paths with '/'."""
-    return sorted(p.relative_to(run).as_posix() for p in run.rglob("*") if p.is_file())
+    """Every regular file of a run directory (symbolic links left out), as sorted relative
+    paths with '/'."""
+    return sorted(
+        p.relative_to(run).as_posix() for p in run.rglob("*") if p.is_file() and not p.is_symlink()
+    )
+
+
+def odd_entries(run: Path) -> list[FileFinding]:
+    """What a run should not hold: symbolic links, pipes, sockets, devices, empty folders
+    (a run is regular files in folders; nothing is followed or opened)."""
+    out = []
+    for p in sorted(run.rglob("*")):
+        name = p.relative_to(run).as_posix()
+        if p.is_symlink():
+            out.append(FileFinding(name, "not a file", "a symbolic link"))
+        elif p.is_dir():
+            if not any(p.iterdir()):
+                out.append(FileFinding(name, "not a file", "an empty folder"))
+        elif not p.is_file():
+            out.append(FileFinding(name, "not a file", "a pipe, socket or device"))
+    return out
 
 
 def integrity_findings(
     run: Path, recorded_outputs: dict[str, str] | None
 ) -> tuple[int, list[FileFinding]]:
-    """Check every file of ``run`` against its SHA256SUMS; returns (files checked, findings).
+    """Check every file of ``run`` against its SHA256SUMS and against the hashes record.json
+    lists for the outputs (every file but the record and the PDF); returns (files checked,
+    findings), one finding per file.
 
-    Where the record's own list of outputs agrees with the file and disagrees with
-    SHA256SUMS, the list itself was altered, and the finding names SHA256SUMS.
+    A file edited and SHA256SUMS written again for it still differs from record.json; where
+    the record agrees with the file and SHA256SUMS does not, the list itself was altered,
+    and the finding names SHA256SUMS. Anything in the run that is not a regular file is a
+    finding too.
     """
     path = run / SUMS
     if not path.is_file():
         return 0, [FileFinding(SUMS, "missing", "the run has no checksum list")]
     entries, bad = parse_checksum_list(path.read_bytes())
     findings = [FileFinding(SUMS, "changed", f"line {n} is not '<sha256>  <file>'") for n in bad]
+    findings += odd_entries(run)
     present = set(run_files(run)) - {SUMS}
-    recorded = recorded_outputs or {}
-    for name in sorted(set(entries) | present):
+    recorded = recorded_outputs
+    names = set(entries) | present | (set(recorded) if recorded is not None else set())
+    for name in sorted(names):
         if name not in present:
-            findings.append(FileFinding(name, "missing", "listed in SHA256SUMS"))
+            where = " and ".join(
+                w
+                for w, listed in (
+                    ("SHA256SUMS", name in entries),
+                    ("record.json", recorded is not None and name in recorded),
+                )
+                if listed
+            )
+            findings.append(FileFinding(name, "missing", f"listed in {where}"))
             continue
         if name not in entries:
             findings.append(FileFinding(name, "extra", "not listed in SHA256SUMS"))
             continue
         now = sha256_file(run / name)
-        if now == entries[name]:
-            continue
-        if recorded.get(name) == now:
-            findings.append(FileFinding(SUMS, "changed", f"its line for {name} was altered"))
-        else:
-            findings.append(FileFinding(name, "changed", "differs from SHA256SUMS"))
+        in_record = recorded is not None and name not in UNRECORDED
+        if in_record and recorded is not None and name not in recorded:
+            findings.append(FileFinding(name, "extra", "not listed in record.json"))
+        elif now != entries[name]:
+            if in_record and recorded is not None and recorded.get(name) == now:
+                findings.append(FileFinding(SUMS, "changed", f"its line for {name} was altered"))
+            else:
+                findings.append(FileFinding(name, "changed", "differs from SHA256SUMS"))
+        elif in_record and recorded is not None and recorded.get(name) != now:
+            findings.append(
+                FileFinding(
+                    name,
+                    "changed",
+                    "differs from record.json (SHA256SUMS was written again after an edit)",
+                )
+            )
     return len(entries), findings

@@ -174,7 +174,7 @@ def verify_run(
             False,
         )
     out.verdicts["integrity"] = (
-        Verdict("ok", f"ok: all {checked} files match SHA256SUMS")
+        Verdict("ok", f"ok: all {checked} files match SHA256SUMS and record.json")
         if not findings
         else Verdict("finding", f"FAILED: {len(findings)} file problem(s)")
     )
@@ -294,6 +294,13 @@ def _numbers(
         True,
     )
     bad = 0
+    data = built.result.dataset
+    entry = record["inputs"][0] if record["inputs"] else {}
+    counts = 0  # what record.json says of the data against what the re-run read
+    for what, now in (("rows", data.rows_read), ("bytes", data.n_bytes)):
+        ok = str(entry.get(what)) == str(now)
+        counts += not ok
+        out.add("numbers", f"data {what} read", str(entry.get(what)), str(now), ok)
     for name in sorted(n for n in built.files if n.startswith("tables/")):
         if name.endswith("/" + PART_LIST):  # a table in parts: compared part by part below
             continue
@@ -308,7 +315,12 @@ def _numbers(
             ok, detail = _compare_parts(run, table, built, scratch)
             bad += not ok
             out.add("numbers", f"table {table} (parts)", "recorded", detail, ok)
-    if bad:
+    if counts:
+        out.verdicts["numbers"] = Verdict(
+            "finding",
+            "CHANGED: record.json's count of the data's rows or bytes is not what the data hold",
+        )
+    elif bad:
         out.verdicts["numbers"] = Verdict(
             "finding", f"CHANGED: {bad} table(s) differ beyond {RTOL:g}"
         )

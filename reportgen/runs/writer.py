@@ -183,6 +183,23 @@ def build_outputs(
     return RunOutputs(files, digest, result, style.inputs, parts)
 
 
+def previous_run(run_dir: Path) -> Path | None:
+    """The latest completed version of the report below ``run_dir``'s (a visible ``vNNN``
+    with its record; versions left unfinished or still being written are hidden), or None
+    when there is none."""
+    mine = int(run_dir.name.removeprefix("v"))
+    done = [
+        (int(m.group(1)), p)
+        for p in run_dir.parent.iterdir()
+        if (m := _VERSION.match(p.name))
+        and not m.group(2)
+        and not p.name.startswith(".")
+        and int(m.group(1)) < mine
+        and (p / "record.json").is_file()
+    ]
+    return max(done)[1] if done else None
+
+
 def _next_version(folder: Path) -> int:
     numbers = [int(m.group(1)) for p in folder.iterdir() if (m := _VERSION.match(p.name))]
     return max(numbers, default=0) + 1

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+import shutil
 from pathlib import Path
 
 import jsonschema
@@ -142,3 +143,19 @@ def test_installed_entry_point_keeps_exit_codes_and_output(study: Path) -> None:
         timeout=300,
     )
     assert bad.returncode == 2 and "reportgen check: error:" in bad.stderr
+
+
+def test_the_gate_compares_with_the_latest_completed_version(
+    study: Path, tmp_path: Path, regenerated: dict[str, Path], capsys: pytest.CaptureFixture[str]
+) -> None:
+    # An interrupted run left a hidden .v002.building; the new run is v003, and the gate
+    # compares it with v001 (never skipped as if it were the first).
+    from reportgen.cli import main
+
+    out = tmp_path / "runs"
+    (out / "clinic-visits").mkdir(parents=True)
+    shutil.copytree(regenerated["clinic_visits"], out / "clinic-visits" / "v001")
+    (out / "clinic-visits" / ".v002.building").mkdir()
+    assert main(["run", str(study), "--out", str(out), "--against-previous", "--quiet"]) == 0
+    said = capsys.readouterr().out
+    assert "against previous: v001 -> v003" in said and "compare: within the gates" in said

@@ -177,3 +177,93 @@ def test_damaged_record_is_reported(pristine: Path, capsys: pytest.CaptureFixtur
     assert main(["verify", str(run)]) == 2
     err = capsys.readouterr().err
     assert "record.json" in err and "damaged" in err and "Traceback" not in err
+
+
+def _rehash(run: Path) -> None:
+    """SHA256SUMS written again over the run as it now is: what `sha256sum` would write
+    (coreutils format), the list a tamperer controls."""
+    from reportgen.runs.integrity import run_files
+
+    names = [n for n in run_files(run) if n != "SHA256SUMS"]
+    (run / "SHA256SUMS").write_bytes(checksum_list({n: sha256_file(run / n) for n in names}))
+
+
+def test_an_edit_with_the_checksum_list_written_again_is_caught(pristine: Path) -> None:
+    # common practice, no source: a list the tamperer can rewrite proves nothing alone; the
+    # hashes record.json lists for the outputs are held against the files as well
+    from reportgen.runs.integrity import integrity_findings
+    from reportgen.runs.record import load_record
+
+    edits: dict[str, Callable[[Path], None]] = {
+        "tables/mean.csv": lambda run: _flip(run / "tables" / "mean.csv", 0.7),
+        "report.html": lambda run: _flip(run / "report.html", 0.4),
+        "figures/mean.svg": lambda run: _flip(run / "figures" / "mean.svg", 0.6),
+        "tables/model.csv": lambda run: _flip(run / "tables" / "model.csv", 0.5),
+        "figures/extra.html": lambda run: (run / "figures" / "extra.html").write_text("<p>x"),
+    }
+    for name, edit in edits.items():
+        run = _copy(pristine, f"rehashed-{name.replace('/', '-')}")
+        edit(run)
+        _rehash(run)
+        assert (
+            subprocess.run(
+                ["sha256sum", "-c", "--quiet", "SHA256SUMS"], cwd=run, capture_output=True
+            ).returncode
+            == 0
+        )  # the list is fooled
+        _, found = integrity_findings(run, load_record(run)["outputs"])
+        assert [(f.name, f.kind) for f in found] == [
+            (name, "extra" if name.endswith("extra.html") else "changed")
+        ], found
+        assert "record.json" in found[0].detail
+
+
+def test_a_rewritten_record_and_list_are_caught_by_the_re_run(
+    pristine: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    # record.json's own count of the data's rows, edited, and the list written again: the
+    # re-run reads the data and says the record is wrong (exit 1).
+    run = _copy(pristine, "rows-edited")
+    record = json.loads((run / "record.json").read_text())
+    record["inputs"][0]["rows"] += 1
+    (run / "record.json").write_text(json.dumps(record, indent=2))
+    _rehash(run)
+    code, out = _verify(capsys, str(run), "--quiet")
+    assert code == 1
+    assert "record.json's count of the data's rows or bytes is not what the data hold" in out
+
+
+def test_what_a_run_should_not_hold_is_named(pristine: Path) -> None:
+    import os
+
+    from reportgen.runs.integrity import integrity_findings
+    from reportgen.runs.record import load_record
+
+    run = _copy(pristine, "odd-entries")
+    os.mkfifo(run / "figures" / "pipe")
+    (run / "tables" / "link.csv").symlink_to(run / "tables" / "mean.csv")
+    (run / "figures" / "folder").symlink_to("/etc")
+    (run / "empty").mkdir()
+    _, found = integrity_findings(run, load_record(run)["outputs"])
+    assert {(f.name, f.detail) for f in found} == {
+        ("figures/pipe", "a pipe, socket or device"),
+        ("tables/link.csv", "a symbolic link"),
+        ("figures/folder", "a symbolic link"),
+        ("empty", "an empty folder"),
+    }
+
+
+def test_compare_and_predict_refuse_a_run_that_fails_its_integrity_check(
+    pristine: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    from reportgen.errors import RecordError
+    from reportgen.runs.stored_fit import load_fit
+
+    run = _copy(pristine, "model-shifted")
+    _flip(run / "tables" / "model.csv", 0.5)
+    _rehash(run)
+    assert main(["compare", str(pristine), str(run)]) == 2
+    err = capsys.readouterr().err
+    assert "fails its integrity check" in err and "tables/model.csv" in err
+    with pytest.raises(RecordError, match=r"tables/model\.csv"):
+        load_fit(run)
