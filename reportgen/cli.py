@@ -9,7 +9,9 @@ from __future__ import annotations
 import argparse
 import json
 import os
+import signal
 import sys
+import threading
 from collections.abc import Sequence
 from pathlib import Path
 
@@ -142,6 +144,12 @@ def _cmd_verify(args: argparse.Namespace) -> int:
         print(f"{part}: {verdict.text if verdict is not None else 'not checked'}")
     for note in result.notes:
         print(f"note: {note}")
+    if result.could_not_check and not result.problems:
+        print(
+            "verify: could not check the inputs and numbers (the inputs were not found); "
+            "nothing else differs"
+        )
+        return 3
     return _summary("verify", result.problems, "everything matches")
 
 
@@ -368,9 +376,20 @@ def build_parser() -> argparse.ArgumentParser:
 NUMERIC_COMMANDS = ("run", "verify", "demo", "predict")
 
 
+class Terminated(Exception):
+    """SIGTERM arrived: raised in the main thread, so that a run being written is removed
+    on the way out (the writer removes its hidden folder on any exception)."""
+
+
+def _on_sigterm(signum: int, frame: object) -> None:
+    raise Terminated
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
+    here = threading.current_thread() is threading.main_thread()
+    previous = signal.signal(signal.SIGTERM, _on_sigterm) if here else None
     try:
         if args.command in NUMERIC_COMMANDS:
             from ._threads import one_blas_thread
@@ -382,9 +401,12 @@ def main(argv: Sequence[str] | None = None) -> int:
     except ReportgenError as e:
         print(f"reportgen {args.command}: error: {e}", file=sys.stderr)
         code = 2
-    except KeyboardInterrupt:
+    except (KeyboardInterrupt, Terminated):
         print(f"reportgen {args.command}: interrupted; nothing was written", file=sys.stderr)
         code = 2
+    finally:
+        if here and previous is not None:
+            signal.signal(signal.SIGTERM, previous)
     return code
 
 

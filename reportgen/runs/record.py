@@ -131,6 +131,7 @@ def build_record(
         "spec": {
             "path": "spec.yaml",
             "source": source_spec,
+            "location": str(spec.path),  # where the spec was: a copied run can find it
             "sha256": spec.sha256,
             "settings": settings(result),
         },

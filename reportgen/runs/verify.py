@@ -67,12 +67,26 @@ class Verification:
     verdicts: dict[str, Verdict] = field(default_factory=dict)
     problems: list[str] = field(default_factory=list)
     notes: list[str] = field(default_factory=list)
+    could_not_check: bool = False  # the inputs were not found: nothing wrong was seen
     rebuilt: RunOutputs | None = None
 
     def add(self, part: str, item: str, recorded: str, now: str, ok: bool) -> None:
         self.rows.append(Row(part, item, recorded, now, ok))
         if not ok:
             self.problems.append(item)
+
+
+def _spec_places(run: Path, record: dict[str, Any], inputs: Path | None) -> list[Path]:
+    """Where the run's spec (beside which its inputs lie) may be, in the order tried:
+    ``--inputs`` DIR; else the recorded path from the run folder (a copy at the same
+    depth), then the spec's recorded location (a copy anywhere on the same machine)."""
+    if inputs is not None:
+        return [inputs / "spec.yaml"]
+    places = [(run / str(record["spec"]["source"])).resolve()]
+    location = record["spec"].get("location")
+    if isinstance(location, str) and Path(location) not in places:
+        places.append(Path(location))
+    return places
 
 
 def _locate_input(entry: dict[str, Any], source: Path, inputs: Path | None) -> Path:
@@ -210,32 +224,44 @@ def _inputs_and_numbers(
         sha256_bytes(spec_bytes)[:16],
         spec_ok,
     )
-    source = (run / str(record["spec"]["source"])).resolve()
+    places = _spec_places(run, record, inputs)
+    for source in places:  # the first place where every input is found
+        found = [
+            (entry, path, current_sha256(path, str(entry["path"]), "manifest" in entry))
+            for entry in record["inputs"]
+            for path in [_locate_input(entry, source, inputs)]
+        ]  # a folder or pattern of files (it has a manifest): the digest of all of them
+        if all(now != "absent" for _, _, now in found):
+            break
     located: list[tuple[str, Path]] = []
     changed: list[tuple[str, Path]] = []
     missing: list[tuple[str, Path]] = []
-    for entry in record["inputs"]:
-        path = _locate_input(entry, source, inputs)
-        # a folder or pattern of files (it has a manifest): the digest of all of them
-        now = current_sha256(path, str(entry["path"]), "manifest" in entry)
-        out.add(
+    for entry, path, now in found:
+        row = Row(
             "inputs",
             f"input {entry['path']}",
             entry["sha256"][:16],
             now[:16],
             now == entry["sha256"],
         )
+        out.rows.append(row)
+        if now != "absent" and not row.ok:
+            out.problems.append(row.item)
         (missing if now == "absent" else changed if now != entry["sha256"] else located).append(
             (str(entry["path"]), path)
         )
+    if not missing and len(places) > 1 and source != places[0]:
+        out.notes.append(
+            f"inputs found at the spec's recorded location ({source.parent}), "
+            "not beside the run's recorded path to it"
+        )
     if missing:
-        where = "in --inputs" if inputs is not None else "beside the recorded spec"
+        looked = "; ".join(str(p.parent) for p in places)
+        out.could_not_check = True
         out.verdicts["inputs"] = Verdict(
-            "finding",
-            (
-                f"MISSING: {', '.join(str(m[0]) for m in missing)} not found "
-                f"{where} ({missing[0][1]}); give --inputs DIR"
-            ),
+            "not checked",
+            f"COULD NOT CHECK: {', '.join(str(m[0]) for m in missing)} not found (looked in "
+            f"{looked}); give --inputs DIR",
         )
     elif changed:
         out.verdicts["inputs"] = Verdict(

@@ -64,6 +64,22 @@ def test_sigkill_leaves_no_visible_version_and_a_later_run_succeeds(
     assert len(_visible_versions(out)) == finished_before + 1
 
 
+def test_sigterm_removes_the_run_being_written(study: Path, tmp_path: Path) -> None:
+    # A polite stop (SIGTERM, what a CI runner or a scheduler sends) while the run is being
+    # written: one line, exit 2, and no folder left behind, hidden or visible.
+    out = tmp_path / "runs"
+    proc = _start(study, out)
+    deadline = time.monotonic() + 120
+    while not list(out.glob("*/.v*.building")) and time.monotonic() < deadline:
+        time.sleep(0.05)
+    time.sleep(0.5)  # inside the fit
+    proc.send_signal(signal.SIGTERM)
+    _, stderr = proc.communicate(timeout=120)
+    assert proc.returncode == 2, stderr
+    assert stderr == "reportgen run: interrupted; nothing was written\n"
+    assert not list(out.glob("*/.v*")) and not _visible_versions(out)
+
+
 def test_disk_full_gives_a_clear_error_and_nothing_visible(
     study: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture[str]
 ) -> None:

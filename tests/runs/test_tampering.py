@@ -139,13 +139,26 @@ def test_changed_input_is_said_in_words(tmp_path: Path, capsys: pytest.CaptureFi
 def test_run_copied_elsewhere_verifies_with_inputs(
     pristine: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]
 ) -> None:
-    moved = tmp_path / "audit" / "run"
+    # A copy at another depth finds its inputs at the spec's recorded location.
+    moved = tmp_path / "audit" / "deeper" / "run"
     shutil.copytree(pristine, moved)
+    code, out = _verify(capsys, str(moved))
+    assert code == 0 and "inputs found at the spec's recorded location" in out, out[-1500:]
+    # Where the inputs cannot be found, verify says it could not check (exit 3: no
+    # difference was seen), where it looked, and how to help it.
+    record = json.loads((moved / "record.json").read_text())
+    record["spec"]["location"] = str(tmp_path / "gone" / "clinic_visits.yaml")
+    (moved / "record.json").write_text(json.dumps(record, indent=2) + "\n")
+    listed, _ = parse_checksum_list((moved / "SHA256SUMS").read_bytes())
+    listed["record.json"] = sha256_file(moved / "record.json")
+    (moved / "SHA256SUMS").write_bytes(checksum_list(listed))
+    code, out = _verify(capsys, str(moved))
+    assert code == 3, out[-1500:]
+    assert "COULD NOT CHECK: clinic_visits.csv not found (looked in" in out
+    assert str(tmp_path / "gone") in out and "give --inputs DIR" in out
     data = tmp_path / "handed-over"
     data.mkdir()
     shutil.copy(ROOT / "specs" / "clinic_visits.csv", data / "clinic_visits.csv")
-    code, out = _verify(capsys, str(moved))
-    assert code == 1 and "give --inputs DIR" in out
     code, out = _verify(capsys, str(moved), "--inputs", str(data))
     assert code == 0, out[-1500:]
 
