@@ -79,18 +79,19 @@ def _text(file: InputFile) -> str:
 
 def _stylesheet(file: InputFile) -> str:
     text = _text(file)
-    lowered = text.lower()
     if "<" in text:
         raise SpecError(
             f"report.stylesheet {file.path!r} contains '<': a style sheet holds CSS only"
         )
-    if "@import" in lowered or any(
-        not rest.lstrip(" '\"").startswith(("data:", "#")) for rest in lowered.split("url(")[1:]
-    ):
+    from .markup import UnsafeMarkup, check_css
+
+    try:
+        check_css(text, f"report.stylesheet {file.path!r}")
+    except UnsafeMarkup as e:
         raise SpecError(
-            f"report.stylesheet {file.path!r} refers to other files or URLs "
-            "(@import or url()); only data: URIs are allowed, nothing is fetched"
-        )
+            f"{e}. It refers to other files or URLs (@import or url()); only "
+            "data: URIs are allowed, nothing is fetched"
+        ) from None
     return text
 
 

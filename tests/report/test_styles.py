@@ -168,6 +168,13 @@ def test_caveats_and_reproducibility_cannot_be_left_out(tmp_path: Path) -> None:
             "refers to other files or URLs",
         ),
         ("stylesheet", "y.css", "@import 'other.css';", "refers to other files or URLs"),
+        (
+            "stylesheet",
+            "e.css",
+            "p { background: \\75 rl(http://example.org/x.png) }",
+            "refers to other files or URLs",
+        ),
+        ("stylesheet", "i.css", "@\\69mport 'other.css';", "refers to other files or URLs"),
         ("stylesheet", "z.css", "</style><p>injected</p>", "contains '<'"),
         ("template", "missing.j2", None, "does not exist"),
     ],
@@ -206,7 +213,62 @@ HOSTILE = {
     "fetch": ('<img src="http://example.org/track.png">', "refers to something outside"),
     "script": ("<script>alert(1)</script>", "contains active content"),
     "handler": ('<p onclick="x()">hi</p>', "contains active content"),
+    # each of these passed the earlier check by regular expression (a '>' inside a quoted
+    # attribute ended the match early, or a character reference hid the scheme); the
+    # parser sees them
+    "quoted handler": (
+        '<p title=">" onmouseover="alert(1)">hi</p>',
+        "contains active content (an event handler, onmouseover)",
+    ),
+    "quoted script link": (
+        '<a title=">" href="javascript:alert(1)">x</a>',
+        "refers to something outside itself",
+    ),
+    "quoted image": (
+        '<img alt=">" src="http://example.org/x.png">',
+        "refers to something outside itself",
+    ),
+    "referenced scheme": (
+        '<a href="&#106;avascript:alert(1)">x</a>',
+        "refers to something outside itself",
+    ),
+    "refresh": (
+        '<meta http-equiv="refresh" content="0; url=http://example.org/">',
+        "<meta http-equiv> is not allowed",
+    ),
+    "svg animate": (
+        '<svg><a><animate attributeName="href" to="javascript:alert(1)"/></a></svg>',
+        "element a report may not hold: <animate>",
+    ),
+    "svg set": (
+        '<svg><set attributeName="href" to="javascript:alert(1)"/></svg>',
+        "element a report may not hold: <set>",
+    ),
+    "escaped url": (
+        "<style>p { background: \\75 rl(http://example.org/x.png) }</style>",
+        "refers outside the page: url(http://example.org/x.png)",
+    ),
+    "escaped import": ("<style>@\\69mport 'x.css';</style>", "refers to other files (@import)"),
+    "image set": (
+        "<p style=\"background-image: image-set('x.png' 1x)\">x</p>",
+        "refers outside the page: image-set(x.png)",
+    ),
+    "local font": (
+        '<style>@font-face { src: \\75 rl("file:///etc/hostname") }</style>',
+        "refers outside the page: url(file:///etc/hostname)",
+    ),
 }
+
+
+def test_a_page_without_the_content_security_policy_is_refused() -> None:
+    # the CSP makes a browser refuse whatever a check might miss; every page carries it
+    from reportgen.report.markup import CSP, UnsafeMarkup, check_page
+
+    page = '<html><head><meta charset="utf-8">{}</head><body><p>x</p></body></html>'
+    check_page(page.format(f'<meta http-equiv="Content-Security-Policy" content="{CSP}">'))
+    with pytest.raises(UnsafeMarkup, match="must carry the report's Content-Security-Policy"):
+        check_page(page.format(""))
+    assert f'content="{CSP}"' in (ROOT / "templates" / "default" / "report.html.j2").read_text()
 
 
 @pytest.mark.parametrize("case", sorted(HOSTILE))
