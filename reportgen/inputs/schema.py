@@ -3,7 +3,7 @@
 Every message names the path (``model.mean_bandwidth``), what is allowed (the schema's
 ``x-allowed`` text) and the value it got, for example::
 
-    model.mean_bandwidth must be a number > 0 or "auto"; got -1.
+    model.mean_bandwidth must be a number > 0 (at most 1e15) or "auto"; got -1.
 """
 
 from __future__ import annotations

@@ -39,7 +39,7 @@ CASES = [
         "negative bandwidth",
         BASE + "model:\n  mean_bandwidth: -1\n",
         None,
-        'model.mean_bandwidth must be a number > 0 or "auto"; got -1.',
+        'model.mean_bandwidth must be a number > 0 (at most 1e15) or "auto"; got -1.',
     ),
     (
         "text bandwidth",
