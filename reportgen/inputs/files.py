@@ -86,11 +86,21 @@ def _base(path: Path) -> Path:
 
 def list_files(path: Path, named: str, what: str = "data.file") -> list[tuple[str, Path]]:
     """(relative path, absolute path) of every file named, in manifest order."""
+    # pathlib's globbing never descends into a symbolic link to a folder (a link loop or a
+    # link to a system folder is not walked); glob.glob(recursive=True) would
     if path.is_dir():
         base, found = path, [p for p in path.rglob("*.parquet") if p.is_file()]
     else:
         base = _base(path)
-        found = [Path(p) for p in glob.glob(str(path), recursive=True) if Path(p).is_file()]
+        pattern = path.relative_to(base).as_posix() if path != base else "*"
+        found = [p for p in base.glob(pattern) if p.is_file()] if base.is_dir() else []
+    home = base.resolve()
+    leaving = [p for p in found if not p.resolve().is_relative_to(home)]
+    if leaving:
+        raise DataError(
+            f"{what} {named!r}: {leaving[0].relative_to(base).as_posix()!r} is a "
+            f"link to a file outside {str(base)!r}; give the files themselves"
+        )
     if not found and path.is_dir():
         raise DataError(
             f"{what} {named!r} is a folder with no Parquet files in it (looked in "

@@ -218,9 +218,27 @@ def _reserve(folder: Path) -> tuple[int, Path]:
 
 
 def _write(path: Path, data: bytes) -> None:
+    """Write and flush to the disk (fsync): the run is renamed to its visible name only
+    when every byte of it is stored."""
     path.parent.mkdir(parents=True, exist_ok=True)
     with open(path, "wb") as fh:
         fh.write(data)
+        fh.flush()
+        os.fsync(fh.fileno())
+
+
+def _sync_folder(folder: Path) -> None:
+    """fsync a folder, so that the names in it are stored too (where the system allows)."""
+    try:
+        fd = os.open(folder, os.O_RDONLY)
+    except OSError:
+        return
+    try:
+        os.fsync(fd)
+    except OSError:
+        pass
+    finally:
+        os.close(fd)
 
 
 def _still_the_same(dataset: Dataset) -> None:
@@ -303,7 +321,10 @@ def _run(
         listed = {**outputs, "report.pdf": sha256_bytes(pdf), "record.json": sha256_bytes(record)}
         _write(building / SUMS, checksum_list(listed))
         _still_the_same(built.result.dataset)
+        for folder in sorted({p for p in building.rglob("*") if p.is_dir()} | {building}):
+            _sync_folder(folder)
         os.rename(building, final)
+        _sync_folder(final.parent)
         return final
     except OSError as e:
         shutil.rmtree(building, ignore_errors=True)

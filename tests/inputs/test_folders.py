@@ -13,6 +13,7 @@ import hashlib
 import io
 import json
 import pickle
+import shutil
 from pathlib import Path
 
 import numpy as np
@@ -523,3 +524,29 @@ def test_the_union_of_the_files_ids_is_pandas_factorize() -> None:
     assert _sorted_union([pd.Index(["a", "b"]), pd.Index(["b", "c"])]) is None
     assert _sorted_union([pd.Index([0.5, 1.5]), pd.Index([2.5])]) is None
     assert _sorted_union([pd.Index(["a"]), pd.Index([1])]) is None
+
+
+def test_a_glob_walks_no_link_and_leaves_no_folder(tmp_path: Path) -> None:
+    # A link loop and a link to a system folder inside the data folder are not walked (a
+    # recursive glob that followed them ran for minutes); a link to a file outside the
+    # folder is refused, named (common practice, no source).
+    import time
+
+    from reportgen.errors import DataError
+    from reportgen.inputs.files import list_files
+
+    _split(tmp_path / "readings")
+    (tmp_path / "readings" / "loop").symlink_to(tmp_path / "readings")
+    (tmp_path / "readings" / "system").symlink_to("/usr")
+    start = time.monotonic()
+    listed = list_files(tmp_path / "readings" / "**" / "*.parquet", "readings/**/*.parquet")
+    assert time.monotonic() - start < 5
+    assert [rel for rel, _ in listed] == ["part-0.parquet", "part-1.parquet", "part-2.parquet"]
+    assert [rel for rel, _ in list_files(tmp_path / "readings", "readings")] == [
+        rel for rel, _ in listed
+    ]
+    outside = tmp_path / "elsewhere.parquet"
+    shutil.copy(tmp_path / "readings" / "part-0.parquet", outside)
+    (tmp_path / "readings" / "part-9.parquet").symlink_to(outside)
+    with pytest.raises(DataError, match=r"'part-9\.parquet' is a link to a file outside"):
+        list_files(tmp_path / "readings" / "*.parquet", "readings/*.parquet")

@@ -164,3 +164,29 @@ def test_missing_system_library_is_one_clear_line(
     err = capsys.readouterr().err.strip()
     assert len(err.splitlines()) == 1
     assert "libpango-1.0-0 is missing" in err and "apt-get install" in err
+
+
+def test_every_file_is_on_the_disk_before_the_run_is_named(
+    study: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # fsync of every file (and of the folders) before the rename that makes the run
+    # visible: a power cut leaves the hidden folder, never a visible half-stored run
+    import os
+
+    synced: list[int] = []
+    real = os.fsync
+    renamed: list[int] = []
+
+    def fsync(fd: int) -> None:
+        synced.append(fd)
+        real(fd)
+
+    def rename(a: object, b: object) -> None:
+        renamed.append(len(synced))
+        os.replace(a, b)  # type: ignore[arg-type]
+
+    monkeypatch.setattr(runner.os, "fsync", fsync)
+    monkeypatch.setattr(runner.os, "rename", rename)
+    run = runner.run_spec(study, tmp_path / "runs")
+    n_files = sum(1 for p in run.rglob("*") if p.is_file())
+    assert renamed and renamed[0] >= n_files  # every file synced before the rename
