@@ -30,7 +30,7 @@ import numpy as np
 import pandas as pd
 
 from ..analysis.subjects import subject_frames, subject_groups, subject_table_names
-from .tables import to_csv_bytes
+from .tables import neutralised, to_csv_bytes
 
 if TYPE_CHECKING:
     from ..analysis.analyse import AnalysisResult
@@ -109,6 +109,7 @@ def made_part(
     frames = subject_frames(model, given.ids, given.groups, given.n_obs, *scores, sums, cut, curves)
     out = {}
     for name, frame in frames.items():
+        frame = neutralised(frame)
         text = to_csv_bytes(frame)
         out[name] = (parquet_bytes(frame), len(frame), len(text), _sha256(text))
     return out

@@ -211,8 +211,34 @@ def group_tables(result: AnalysisResult) -> dict[str, pd.DataFrame]:
     return {"groups": summary, "group_means": means}
 
 
+# A text cell that starts with one of these is run as a formula by a spreadsheet that opens
+# the CSV; it is written with a leading apostrophe, which spreadsheets show as text
+# (common practice, no source).
+FORMULA_START = ("=", "+", "-", "@", "\t", "\r")
+
+
+def neutralised(frame: pd.DataFrame) -> pd.DataFrame:
+    """``frame`` with every text cell that a spreadsheet would run as a formula prefixed
+    with an apostrophe (numbers, even negative ones, are not text and stay as they are)."""
+    out = frame
+    for column in frame.columns:
+        series = frame[column]
+        if not (pd.api.types.is_object_dtype(series) or pd.api.types.is_string_dtype(series)):
+            continue
+        text = series.astype("string")
+        risky = text.str.startswith(FORMULA_START).fillna(False).to_numpy(dtype=bool)
+        if risky.any():
+            if out is frame:
+                out = frame.copy()
+            out[column] = series.where(~risky, "'" + text)
+    return out
+
+
 def canonical_bytes(tables: dict[str, pd.DataFrame]) -> dict[str, bytes]:
-    return {f"tables/{name}.csv": to_csv_bytes(frame) for name, frame in sorted(tables.items())}
+    return {
+        f"tables/{name}.csv": to_csv_bytes(neutralised(frame))
+        for name, frame in sorted(tables.items())
+    }
 
 
 def results_digest(

@@ -23,6 +23,7 @@ from ..fpca.predictor import Predictor
 from ..inputs.files import read_path
 from ..inputs.loader import load_file, require_passed
 from ..inputs.spec import Spec, spec_from_bytes
+from ..report.tables import neutralised
 from .integrity import integrity_findings
 from .record import load_record
 
@@ -109,7 +110,11 @@ def write_table(frame: pd.DataFrame, out: str | Path) -> Path:
     if path.exists():
         raise OutputError(f"{str(out)!r} exists already; choose another name")
     if suffix == ".csv":
-        data = frame.to_csv(index=False, float_format="%.10g", lineterminator="\n").encode()
+        data = (
+            neutralised(frame)
+            .to_csv(index=False, float_format="%.10g", lineterminator="\n")
+            .encode()
+        )
     else:
         buf = io.BytesIO()
         frame.to_parquet(buf, index=False)

@@ -73,3 +73,34 @@ def test_rows_written_in_blocks(columns: list[tuple[str, list[object]]], block: 
         assert to_csv_bytes(frame) == _pandas(frame)
     finally:
         tables.CSV_BLOCK_ROWS = saved
+
+
+def test_cells_a_spreadsheet_would_run_are_written_as_text() -> None:
+    # The usual neutralisation (common practice, no source): a text cell starting with =,
+    # +, -, @, a tab or a carriage return gets a leading apostrophe; numbers, negative ones
+    # included, and other text stay as they are.
+    from reportgen.report.tables import canonical_bytes, neutralised
+
+    frame = pd.DataFrame(
+        {
+            "subject": [
+                '=HYPERLINK("http://example.org","x")',
+                "=cmd|' /C calc'!A0",
+                "+1",
+                "@SUM(A1)",
+                "-7",
+                "\tx",
+                "P001",
+                None,
+            ],
+            "value": [-1.5, 2.0, -3.0, 4.0, 5.0, 6.0, 7.0, 8.0],
+        }
+    )
+    out = neutralised(frame)
+    assert out.subject.tolist()[:6] == ["'" + s for s in frame.subject.tolist()[:6]]
+    assert out.subject.tolist()[6] == "P001" and out.subject.isna().tolist()[7]
+    assert out.value.tolist() == frame.value.tolist()
+    assert frame.subject.tolist()[0].startswith("=")  # the caller's frame is not changed
+    text = canonical_bytes({"t": frame})["tables/t.csv"].decode()
+    assert "\n'=cmd|' /C calc'!A0,2\n" in text and "\n'-7,5\n" in text
+    assert "\nP001,7\n" in text and "\n'+1,-3\n" in text
