@@ -11,7 +11,7 @@ BIN    := $(VENV)/bin
 STAMP  := $(VENV)/.installed
 PYTEST := $(BIN)/python -m pytest -q -n auto --dist loadfile
 
-.PHONY: test test-fast demo lint format bench clean syscheck
+.PHONY: test test-fast demo lint format bench clean syscheck kernels
 
 $(STAMP): pyproject.toml constraints.txt
 	test -x $(BIN)/python || $(PYTHON) -m venv $(VENV)
@@ -20,6 +20,10 @@ $(STAMP): pyproject.toml constraints.txt
 
 syscheck: $(STAMP)
 	@$(BIN)/python -m reportgen.syscheck
+
+# numba's kernels compiled once, before the test workers start (each would compile them)
+kernels: $(STAMP)
+	@$(BIN)/python -m reportgen.fpca.warm
 
 lint: $(STAMP)
 	$(BIN)/ruff check reportgen tests benchmarks specs
@@ -30,10 +34,10 @@ format: $(STAMP)
 	$(BIN)/ruff check --select I --fix reportgen tests benchmarks specs
 	$(BIN)/ruff format reportgen tests benchmarks specs
 
-test: lint syscheck
+test: lint syscheck kernels
 	$(PYTEST)
 
-test-fast: $(STAMP)
+test-fast: kernels
 	$(PYTEST) -m "not slow and not render"
 
 demo: syscheck
