@@ -99,15 +99,14 @@ def integrity_findings(
     findings = [FileFinding(SUMS, "changed", f"line {n} is not '<sha256>  <file>'") for n in bad]
     findings += odd_entries(run)
     present = set(run_files(run)) - {SUMS}
-    recorded = recorded_outputs
-    names = set(entries) | present | (set(recorded) if recorded is not None else set())
-    for name in sorted(names):
+    recorded = recorded_outputs or {}  # what record.json lists (nothing when it is damaged)
+    for name in sorted(set(entries) | present | set(recorded)):
         if name not in present:
             where = " and ".join(
                 w
                 for w, listed in (
                     ("SHA256SUMS", name in entries),
-                    ("record.json", recorded is not None and name in recorded),
+                    ("record.json", name in recorded),
                 )
                 if listed
             )
@@ -117,15 +116,15 @@ def integrity_findings(
             findings.append(FileFinding(name, "extra", "not listed in SHA256SUMS"))
             continue
         now = sha256_file(run / name)
-        in_record = recorded is not None and name not in UNRECORDED
-        if in_record and recorded is not None and name not in recorded:
+        in_record = recorded_outputs is not None and name not in UNRECORDED
+        if in_record and name not in recorded:
             findings.append(FileFinding(name, "extra", "not listed in record.json"))
         elif now != entries[name]:
-            if in_record and recorded is not None and recorded.get(name) == now:
+            if in_record and recorded[name] == now:
                 findings.append(FileFinding(SUMS, "changed", f"its line for {name} was altered"))
             else:
                 findings.append(FileFinding(name, "changed", "differs from SHA256SUMS"))
-        elif in_record and recorded is not None and recorded.get(name) != now:
+        elif in_record and recorded[name] != now:
             findings.append(
                 FileFinding(
                     name,
