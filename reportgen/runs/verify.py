@@ -10,8 +10,10 @@ input, a changed result, or only a different rendering environment:
   every table compared as numbers within ``RTOL`` (a different BLAS or CPU moves the last
   digits, which is not a change of the analysis);
 - rendering (``render=True``): HTML, figures and PDF rebuilt and compared byte for byte;
-  where they differ while the numbers match and the recorded environment differs from the
-  current one, that is said, and it is not a finding unless ``strict``.
+  where the bytes differ, their words (``rendered_text``) are compared exactly: a changed
+  word is always a finding; the same words in other bytes, while the numbers match and the
+  recorded environment differs from the current one, is said, and is not a finding unless
+  ``strict``.
 """
 
 from __future__ import annotations
@@ -34,6 +36,7 @@ from ..report.pdf import render_pdf
 from ..report.subject_parts import PART_LIST, csv_of_part, read_part_list
 from .integrity import integrity_findings
 from .record import environment, load_record
+from .rendered_text import first_difference, words_of
 from .writer import RunOutputs, build_outputs
 
 Progress = Callable[[str], None]
@@ -389,13 +392,22 @@ def _rendering(
         **{n: d for n, d in built.files.items() if not n.startswith("tables/")},
         "report.pdf": pdf,
     }
-    differing = []
+    differing, reworded = [], []
     for name in sorted(rebuilt):
         stored = run / name
         now = sha256_bytes(rebuilt[name])
         before = sha256_file(stored) if stored.is_file() else "absent"
         if now != before:
             differing.append(name)
+            where = (
+                first_difference(words_of(name, stored.read_bytes()), words_of(name, rebuilt[name]))
+                if stored.is_file()
+                else "absent"
+            )
+            if where is not None:  # a changed word is a finding on any machine
+                reworded.append(name)
+                out.add("rendering", f"text of {name}", "recorded", "other words", False)
+                out.notes.append(f"the text of {name} differs {where}")
         out.rows.append(
             Row("rendering", f"re-rendered {name}", before[:16], now[:16], now == before)
         )
@@ -404,6 +416,14 @@ def _rendering(
             "ok", "ok: HTML, figures and PDF re-render byte-identical"
         )
         return
+    if reworded:
+        out.verdicts["rendering"] = Verdict(
+            "finding",
+            f"CHANGED: the text of {len(reworded)} file(s) differs from a re-render "
+            f"({', '.join(reworded[:3])}{', ...' if len(reworded) > 3 else ''})",
+        )
+        out.problems.extend(f"re-rendered {n}" for n in differing if n not in reworded)
+        return
     env = environment_diff(record.get("environment", {}))
     numbers = out.verdicts.get("numbers")
     numbers_ok = numbers is not None and numbers.outcome == "ok"
@@ -411,13 +431,13 @@ def _rendering(
         out.verdicts["rendering"] = Verdict(
             "explained",
             (
-                f"differs only in rendering ({len(differing)} file(s)); "
+                f"differs only in rendering ({len(differing)} file(s), the same words); "
                 "the environment differs from the recorded one: " + "; ".join(env)
             ),
         )
         out.notes.append(
-            "rendered bytes depend on the fonts and library versions; the numbers "
-            "match" + ("" if not strict else " (--strict: counted as a finding)")
+            "rendered bytes depend on the fonts and library versions; the words and the "
+            "numbers match" + ("" if not strict else " (--strict: counted as a finding)")
         )
         if strict:
             out.problems.extend(f"re-rendered {n}" for n in differing)
@@ -426,7 +446,7 @@ def _rendering(
             "finding",
             (
                 f"CHANGED: {len(differing)} file(s) re-render differently "
-                "in the recorded environment"
+                "in the recorded environment (the same words)"
             ),
         )
         out.problems.extend(f"re-rendered {n}" for n in differing)

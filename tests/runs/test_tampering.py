@@ -280,3 +280,72 @@ def test_compare_and_predict_refuse_a_run_that_fails_its_integrity_check(
     assert "fails its integrity check" in err and "tables/model.csv" in err
     with pytest.raises(RecordError, match=r"tables/model\.csv"):
         load_fit(run)
+
+
+def _forge(run: Path, name: str, data: bytes) -> None:
+    """``name`` replaced by ``data`` with every list that vouches for it written again: the
+    hash in record.json, a recorded environment that would explain other bytes, SHA256SUMS."""
+    (run / name).write_bytes(data)
+    record = json.loads((run / "record.json").read_text())
+    record["outputs"][name] = sha256_file(run / name)
+    record["environment"]["packages"]["weasyprint"] = "0.0-recorded-elsewhere"
+    (run / "record.json").write_text(json.dumps(record, indent=2) + "\n")
+    _rehash(run)
+
+
+def test_a_changed_word_is_a_finding_even_where_rendering_may_differ(
+    pristine: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    # The words of the HTML and the PDF are compared with a re-render, exactly: another
+    # environment may explain other bytes, never another word (common practice, no source).
+    from reportgen.report.pdf import render_pdf
+
+    html = (pristine / "report.html").read_bytes()
+    plain = b"Demonstration appendix on invented data; not a real study."
+    assert plain in html
+    forged = html.replace(plain, b"APPROVED FOR SUBMISSION.")
+    run = _copy(pristine, "approved-html")
+    _forge(run, "report.html", forged)
+    code, out = _verify(capsys, str(run), "--render")
+    assert code == 1, out[-1500:]
+    assert "rendering: CHANGED: the text of 1 file(s) differs from a re-render" in out
+    assert "note: the text of report.html differs from word" in out  # and where:
+    assert "APPROVED FOR SUBMISSION." in out
+
+    run = _copy(pristine, "approved-pdf")  # the HTML untouched, the PDF made from the forgery
+    record = json.loads((run / "record.json").read_text())
+    pdf = render_pdf(
+        forged,
+        (run / "spec.yaml").read_bytes(),
+        (run / "record.json").read_bytes(),
+        str(record["run"]["finished"]),
+    )
+    _forge(run, "report.pdf", pdf)
+    code, out = _verify(capsys, str(run), "--render")
+    assert code == 1, out[-1500:]
+    assert "differs from a re-render (report.pdf)" in out and "APPROVED" in out
+
+
+def test_page_furniture_is_not_a_word_that_changed() -> None:
+    # The same words on more pages (another font breaks pages elsewhere) are the same text:
+    # "page N of M" and the running lines depend on the page count. Reference: pypdf reads
+    # the text of PDFs that weasyprint writes here from two page sizes.
+    import weasyprint
+
+    from reportgen.runs.rendered_text import first_difference, pdf_words
+
+    body = "".join(f"<p>Paragraph {i} of the appendix, the same words.</p>" for i in range(120))
+    style = (
+        "<style>@page {{ size: {size}; @bottom-right {{ content: 'page ' counter(page) "
+        "' of ' counter(pages) }} @top-right {{ content: 'study-x v001' }} }}</style>"
+    )
+
+    def pdf(size: str, extra: str = "") -> bytes:
+        html = f"<html><head>{style.format(size=size)}</head><body>{body}{extra}</body></html>"
+        return bytes(weasyprint.HTML(string=html).write_pdf())
+
+    a4, a5 = pdf_words(pdf("A4")), pdf_words(pdf("A5"))
+    assert a4.running == a5.running == frozenset({"study-x v001"})
+    assert first_difference(a4, a5) is None
+    changed = pdf_words(pdf("A5", "<p>One more sentence.</p>"))
+    assert first_difference(a4, changed) is not None
