@@ -77,7 +77,12 @@ def _cmd_run(args: argparse.Namespace) -> int:
     from .runs.writer import run_spec
 
     run_dir = run_spec(
-        args.spec, args.out, _progress(args.quiet), engine=args.engine, scheduler=args.scheduler
+        args.spec,
+        args.out,
+        _progress(args.quiet),
+        engine=args.engine,
+        scheduler=args.scheduler,
+        sign_with=None if args.sign is None else Path(args.sign),
     )
     print(f"run written: {run_dir}")
     print(f"report: {run_dir / 'report.html'}")
@@ -133,13 +138,20 @@ def _summary(command: str, problems: list[str], ok_text: str) -> int:
 def _cmd_verify(args: argparse.Namespace) -> int:
     from .runs.verify import verify_run
 
-    result = verify_run(args.run_dir, args.inputs, args.render, args.strict, _progress(args.quiet))
+    result = verify_run(
+        args.run_dir,
+        args.inputs,
+        args.render,
+        args.strict,
+        _progress(args.quiet),
+        args.allowed_signers,
+    )
     _print_rows(
         ("part", "item", "recorded", "now", "match"),
         [(r.part, r.item, r.recorded, r.now, "yes" if r.ok else "NO") for r in result.rows],
     )
     print()
-    for part in ("integrity", "inputs", "numbers", "rendering"):
+    for part in ("integrity", "signature", "inputs", "numbers", "rendering"):
         verdict = result.verdicts.get(part)
         print(f"{part}: {verdict.text if verdict is not None else 'not checked'}")
     for note in result.notes:
@@ -317,6 +329,11 @@ def build_parser() -> argparse.ArgumentParser:
         "scheduler's address (default: DASK_SCHEDULER_ADDRESS, else a cluster "
         "started in this process)",
     )
+    sp.add_argument(
+        "--sign",
+        metavar="KEY",
+        help="sign SHA256SUMS with this SSH key (ssh-keygen -Y sign) into SHA256SUMS.sig",
+    )
     sp.set_defaults(func=_cmd_run)
     sp = add("check", "validate the spec and the data; fit nothing")
     sp.add_argument("spec")
@@ -343,6 +360,12 @@ def build_parser() -> argparse.ArgumentParser:
         action="store_true",
         help="with --render: a rendering "
         "difference explained by another environment is a finding too",
+    )
+    sp.add_argument(
+        "--allowed-signers",
+        metavar="FILE",
+        help="check SHA256SUMS.sig against this allowed-signers file (ssh-keygen -Y verify); "
+        "a run without a good signature by a key in it is a finding",
     )
     sp.set_defaults(func=_cmd_verify)
     sp = add("compare", "what changed from RUN_A to RUN_B; exit 1 when a gate is crossed")

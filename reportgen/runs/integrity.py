@@ -15,6 +15,7 @@ from pathlib import Path
 from ..inputs.files import sha256_file
 
 SUMS = "SHA256SUMS"
+SIGNATURE = "SHA256SUMS.sig"  # optional: the list signed (``signature``)
 _LINE = re.compile(r"^([0-9a-f]{64}) [ *](.+)$")
 
 
@@ -98,7 +99,7 @@ def integrity_findings(
     entries, bad = parse_checksum_list(path.read_bytes())
     findings = [FileFinding(SUMS, "changed", f"line {n} is not '<sha256>  <file>'") for n in bad]
     findings += odd_entries(run)
-    present = set(run_files(run)) - {SUMS}
+    present = set(run_files(run)) - {SUMS, SIGNATURE}  # the signature signs the list
     recorded = recorded_outputs or {}  # what record.json lists (nothing when it is damaged)
     for name in sorted(set(entries) | present | set(recorded)):
         if name not in present:

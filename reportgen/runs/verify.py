@@ -4,6 +4,8 @@ Each part has its own verdict, so that an auditor can tell a changed file from a
 input, a changed result, or only a different rendering environment:
 
 - integrity: every file of the run against SHA256SUMS (``integrity.integrity_findings``);
+- signature (with ``allowed_signers``): SHA256SUMS.sig against the allowed signers
+  (``signature``);
 - inputs: the spec and each recorded input file against the record's hashes; an input is
   found beside the recorded spec, or by name in ``--inputs DIR``;
 - numbers: the recorded spec re-run on the inputs; the results digest compared exactly and
@@ -34,9 +36,10 @@ from ..inputs.files import current_sha256, sha256_bytes, sha256_file
 from ..inputs.spec import spec_from_bytes
 from ..report.pdf import render_pdf
 from ..report.subject_parts import PART_LIST, csv_of_part, read_part_list
-from .integrity import integrity_findings
+from .integrity import SIGNATURE, SUMS, integrity_findings
 from .record import environment, load_record
 from .rendered_text import first_difference, words_of
+from .signature import check
 from .writer import RunOutputs, build_outputs
 
 Progress = Callable[[str], None]
@@ -169,6 +172,7 @@ def verify_run(
     render: bool = False,
     strict: bool = False,
     progress: Progress = lambda _: None,
+    allowed_signers: str | Path | None = None,
 ) -> Verification:
     """Check a run directory; see the module docstring. Raises RecordError (exit 2) when
     the run has no usable record and nothing else shows tampering."""
@@ -195,6 +199,7 @@ def verify_run(
         if not findings
         else Verdict("finding", f"FAILED: {len(findings)} file problem(s)")
     )
+    _signature(run, out, None if allowed_signers is None else Path(allowed_signers))
     if damage is not None:
         if not findings:  # the checksum list vouches for an unreadable record: exit 2
             raise damage
@@ -207,6 +212,38 @@ def verify_run(
     )
     _rendering(run, record, out, render, strict)
     return out
+
+
+def _signature(run: Path, out: Verification, allowed_signers: Path | None) -> None:
+    """SHA256SUMS.sig against the allowed signers: a run whose list was written again
+    after signing (or that lost its signature) fails, whatever the list says."""
+    signed = (run / SIGNATURE).is_file()
+    if allowed_signers is None:
+        out.verdicts["signature"] = Verdict(
+            "not checked",
+            "not checked: the run is signed; give --allowed-signers FILE to check it"
+            if signed
+            else "not checked: the run is not signed",
+        )
+        return
+    if not signed:
+        out.add("signature", SIGNATURE, "asked for", "absent", False)
+        out.verdicts["signature"] = Verdict(
+            "finding", f"FAILED: the run is not signed ({SIGNATURE} absent)"
+        )
+        return
+    sums = run / SUMS
+    found = check(
+        sums.read_bytes() if sums.is_file() else b"",
+        (run / SIGNATURE).read_bytes(),
+        allowed_signers,
+    )
+    out.add("signature", SIGNATURE, "signed", found.signer or "-", found.ok)
+    out.verdicts["signature"] = (
+        Verdict("ok", f"ok: SHA256SUMS signed by {found.signer} ({allowed_signers.name})")
+        if found.ok
+        else Verdict("finding", f"FAILED: {found.why}")
+    )
 
 
 def _inputs_and_numbers(

@@ -33,8 +33,9 @@ from ..report.render_process import RenderProcess
 from ..report.styles import InputFile, load_style
 from ..report.subject_parts import PartEntry, part_list_bytes, part_list_file, subject_parts
 from ..report.tables import build_tables, canonical_bytes, results_digest
-from .integrity import SUMS, checksum_list
+from .integrity import SIGNATURE, SUMS, checksum_list
 from .record import build_record, dump_record, environment
+from .signature import check_signing_key, sign
 
 Progress = Callable[[str], None]
 _VERSION = re.compile(r"^\.?v(\d{3,})(\.building)?$")
@@ -259,20 +260,29 @@ def run_spec(
     timer: Timer | None = None,
     engine: str = "local",
     scheduler: str | None = None,
+    sign_with: Path | None = None,
 ) -> Path:
     """Run a spec; returns the new run directory ``out/<id>/vNNN``.
 
     record.json lists the hash of every file except itself and report.pdf (the PDF carries
     record.json inside it); SHA256SUMS, written last, lists every other file of the run.
     ``engine`` and ``scheduler`` choose where the fits' passes run (``reportgen.analysis.engine``).
+    With ``sign_with`` (an SSH key), SHA256SUMS is signed into SHA256SUMS.sig (``signature``).
     """
     spec = load_spec(spec_path)
+    if sign_with is not None:
+        check_signing_key(sign_with)
     with open_engine(engine, scheduler) as run_on:
-        return _run(spec, out, progress, timer, run_on)
+        return _run(spec, out, progress, timer, run_on, sign_with)
 
 
 def _run(
-    spec: Spec, out: str | Path, progress: Progress, timer: Timer | None, engine: Engine
+    spec: Spec,
+    out: str | Path,
+    progress: Progress,
+    timer: Timer | None,
+    engine: Engine,
+    sign_with: Path | None = None,
 ) -> Path:
     if engine.description != "local":
         progress(f"the fits' passes run on {engine.description}")
@@ -319,7 +329,11 @@ def _run(
         _write(building / "report.pdf", pdf)
         _write(building / "record.json", record)
         listed = {**outputs, "report.pdf": sha256_bytes(pdf), "record.json": sha256_bytes(record)}
-        _write(building / SUMS, checksum_list(listed))
+        sums = checksum_list(listed)
+        _write(building / SUMS, sums)
+        if sign_with is not None:
+            progress("signing SHA256SUMS")
+            _write(building / SIGNATURE, sign(sums, sign_with))
         _still_the_same(built.result.dataset)
         for folder in sorted({p for p in building.rglob("*") if p.is_dir()} | {building}):
             _sync_folder(folder)
