@@ -13,8 +13,11 @@ free port).
 
 from __future__ import annotations
 
+import logging
 import os
+import time
 from collections.abc import Callable, Iterator, Sequence
+from concurrent.futures import CancelledError
 from contextlib import contextmanager
 from dataclasses import dataclass
 from typing import Any, TypeVar
@@ -28,6 +31,11 @@ T = TypeVar("T")
 ENGINES = ("local", "dask")
 CONNECT_TIMEOUT = "10s"
 WAIT_FOR_WORKERS = 10.0  # seconds
+# A pass whose cluster has had no worker for this long stops the run: the tasks would wait
+# for a worker forever. Long enough for a worker's restart by its nanny or by a
+# cluster manager; a pass with workers is never timed out, however long it takes.
+LOST_AFTER = 60.0  # seconds
+_POLL = 1.0  # seconds between looks at the cluster while a pass waits
 
 
 @dataclass(frozen=True)
@@ -58,9 +66,15 @@ class OnDask:
         check_versions(found, versions())
 
     def place(self, parts: list[Part]) -> list[Any]:
-        # hash=False: the parts need no content key, and hashing them costs more than
-        # sending them
-        return list(self.client.scatter(parts, hash=False))
+        with _cluster_failures(self.client):
+            if not self.client.scheduler_info(n_workers=-1).get("workers"):
+                try:  # scatter fails at once when no worker is there to hold the parts
+                    self.client.wait_for_workers(1, timeout=LOST_AFTER)
+                except TimeoutError:
+                    raise _lost() from None
+            # hash=False: the parts need no content key, and hashing them costs more than
+            # sending them
+            return list(self.client.scatter(parts, hash=False))
 
     def keep(
         self,
@@ -82,7 +96,63 @@ class OnDask:
         per_part: Sequence[tuple[Any, ...]] | None = None,
         shared: tuple[Any, ...] = (),
     ) -> list[T]:
-        return list(self.client.gather(self.keep(fn, parts, per_part, shared)))
+        with _cluster_failures(self.client):
+            futures = self.keep(fn, parts, per_part, shared)
+            self._wait(futures)
+            return list(self.client.gather(futures))
+
+    def _wait(self, futures: list[Any]) -> None:
+        """Wait for ``futures``; raise EngineError once the cluster has had no worker for
+        ``LOST_AFTER`` seconds (the scheduler keeps such tasks waiting, without an error)."""
+        from distributed import wait
+
+        alone_since: float | None = None
+        while True:
+            try:
+                wait(futures, timeout=_POLL)
+                return
+            except TimeoutError:
+                pass
+            if self.client.scheduler_info(n_workers=-1).get("workers"):
+                alone_since = None
+                continue
+            now = time.monotonic()
+            alone_since = now if alone_since is None else alone_since
+            if now - alone_since >= LOST_AFTER:
+                raise _lost()
+
+
+def _lost() -> EngineError:
+    return EngineError(
+        f"the Dask cluster lost its workers: none for {LOST_AFTER:g} s while the run "
+        "waited; nothing was written"
+    )
+
+
+_SCHEDULER_LOST = (
+    "the Dask cluster failed during the run: the connection to the scheduler was lost; "
+    "nothing was written"
+)
+
+
+@contextmanager
+def _cluster_failures(client: Any = None) -> Iterator[None]:
+    """A cluster's failure as EngineError, raised where it happens: the run around it
+    must not take a lost connection (an OSError) for a failure to write its files."""
+    from distributed import KilledWorker
+
+    try:
+        yield
+    except CancelledError:  # Dask cancels every task when the scheduler is gone
+        raise EngineError(_SCHEDULER_LOST) from None
+    except RuntimeError:  # a client that gave up on its scheduler has closed its connections
+        if client is None or client.status == "running":
+            raise
+        raise EngineError(_SCHEDULER_LOST) from None
+    except (KilledWorker, OSError) as e:  # CommClosedError and TimeoutError are OSErrors
+        raise EngineError(
+            f"the Dask cluster failed during the run ({type(e).__name__}: {e}); nothing was written"
+        ) from None
 
 
 def versions() -> dict[str, str]:
@@ -134,8 +204,9 @@ def local_engine() -> Engine:
 def open_engine(name: str = "local", scheduler: str | None = None) -> Iterator[Engine]:
     """The engine called ``name``, open for the duration of the block.
 
-    A Dask cluster that fails during the block (a worker lost, the scheduler gone) raises
-    EngineError; the run writes nothing then.
+    A Dask cluster that fails during the block (a task's worker killed too often, every
+    worker gone for ``LOST_AFTER`` seconds, the scheduler gone) raises EngineError; the run
+    writes nothing then.
     """
     if name == "local":
         if scheduler:
@@ -150,6 +221,10 @@ def open_engine(name: str = "local", scheduler: str | None = None) -> Iterator[E
     except ImportError:
         raise EngineError("--engine dask needs Dask: pip install 'reportgen[dask]'") from None
     address = scheduler or dask.config.get("scheduler-address", None)
+    # The client logs its lost scheduler as an error of its own; the run says it in one line.
+    client_log = logging.getLogger("distributed.client")
+    level = client_log.level
+    client_log.setLevel(logging.CRITICAL)
     try:
         if address:
             with _connected(
@@ -167,10 +242,11 @@ def open_engine(name: str = "local", scheduler: str | None = None) -> Iterator[E
         ):
             on = OnDask(client)
             yield Engine(on, f"dask (a cluster in this process, {workers} workers)")
-    except (KilledWorker, OSError, TimeoutError) as e:  # CommClosedError is an OSError
-        raise EngineError(
-            f"the Dask cluster failed during the run ({type(e).__name__}: {e}); nothing was written"
-        ) from None
+    except (CancelledError, KilledWorker, OSError):
+        with _cluster_failures():
+            raise
+    finally:
+        client_log.setLevel(level)
 
 
 @contextmanager

@@ -154,3 +154,109 @@ def test_worker_processes_read_a_folder_as_this_process_does(
     assert done.returncode == 2, done.stdout + done.stderr
     assert "part-1.parquet" in done.stderr and "Traceback" not in done.stderr
     assert not any((tmp_path / "refused").rglob("v0*"))
+
+
+# A run whose cluster dies under it: the engine is opened, then (a hook run just after the
+# engine connected, so that the loss falls between two passes every time) the last worker
+# or the scheduler is killed. The run must end by itself with one line and exit 2, and
+# leave no folder. LOST_AFTER is set to 3 s in the run's process to keep the test short.
+_KILL_AFTER_CONNECT = """
+import os, signal, sys
+import reportgen.analysis.engine as engine
+engine.LOST_AFTER = 3.0
+opened = engine.OnDask.__init__
+def kill_then_go_on(self, client):
+    opened(self, client)
+    os.kill(int(os.environ["VICTIM"]), signal.SIGKILL)
+engine.OnDask.__init__ = kill_then_go_on
+from reportgen.cli import main
+sys.exit(main(sys.argv[1:]))
+"""
+
+
+@pytest.mark.parametrize("victim", ["the last worker", "the scheduler"])
+def test_a_cluster_lost_mid_run_ends_the_run_cleanly(victim: str, tmp_path: Path) -> None:
+    import os
+    import socket
+    import subprocess
+    import sys
+    import time
+
+    pytest.importorskip("distributed")
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        port = s.getsockname()[1]
+    address = f"tcp://127.0.0.1:{port}"
+    quiet = {"stdout": subprocess.DEVNULL, "stderr": subprocess.DEVNULL}
+    scheduler = subprocess.Popen(
+        [
+            sys.executable,
+            "-m",
+            "distributed.cli.dask_scheduler",
+            "--host",
+            "127.0.0.1",
+            "--port",
+            str(port),
+            "--dashboard-address",
+            ":0",
+        ],
+        **quiet,
+    )
+    worker = subprocess.Popen(  # no nanny: a killed worker is not started again
+        [
+            sys.executable,
+            "-m",
+            "distributed.cli.dask_worker",
+            address,
+            "--no-nanny",
+            "--nthreads",
+            "1",
+            "--dashboard-address",
+            ":0",
+        ],
+        **quiet,
+    )
+    spec = str(ROOT / "specs" / "clinic_visits.yaml")
+    try:
+        out = tmp_path / "runs"
+        env = {
+            **os.environ,
+            "VICTIM": str((worker if victim == "the last worker" else scheduler).pid),
+        }
+        started = time.monotonic()
+        done = subprocess.run(
+            [
+                sys.executable,
+                "-c",
+                _KILL_AFTER_CONNECT,
+                "run",
+                spec,
+                "--out",
+                str(out),
+                "--quiet",
+                "--engine",
+                "dask",
+                "--scheduler",
+                address,
+            ],
+            env=env,
+            capture_output=True,
+            text=True,
+            timeout=240,
+        )
+        took = time.monotonic() - started
+    finally:
+        for p in (worker, scheduler):
+            p.kill()
+            p.wait()
+    assert done.returncode == 2, done.stderr[-2000:]
+    lines = done.stderr.strip().splitlines()
+    assert len(lines) == 1 and "Traceback" not in done.stderr, done.stderr[-2000:]
+    expected = (
+        "lost its workers: none for 3 s"
+        if victim == "the last worker"
+        else "the connection to the scheduler was lost"
+    )
+    assert expected in lines[0] and "nothing was written" in lines[0]
+    assert not list(out.glob("*/*")), list(out.glob("*/*"))  # no version, no .building
+    assert took < 120
