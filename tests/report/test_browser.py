@@ -57,24 +57,9 @@ def _server(page: bytes, seen: list[str]) -> ThreadingHTTPServer:
     return server
 
 
-@pytest.mark.skipif(
-    CHROMIUM is None,
-    reason="chromium is not installed (.ci/run installs the "
-    "Debian package; locally: apt-get install chromium)",
-)
-@pytest.mark.parametrize("style", ["run", "default", "journal", "submission"])
-def test_report_loads_offline_without_errors(
-    regenerated: dict[str, Path],
-    styled: dict[tuple[str, str], tuple[bytes, bytes]],
-    tmp_path: Path,
-    style: str,
-) -> None:
-    # "run": the committed example as run; the others: each shipped style
-    page = (
-        (regenerated["clinic_visits"] / "report.html").read_bytes()
-        if style == "run"
-        else styled[("clinic_visits", style)][0]
-    )
+def _load(page: bytes, tmp_path: Path) -> tuple[list[str], str, Path]:
+    """Chromium loads ``page`` through the logging proxy: (requests seen, the browser's
+    log, the screenshot)."""
     seen: list[str] = []
     server = _server(page, seen)
     port = server.server_address[1]
@@ -108,8 +93,79 @@ def test_report_loads_offline_without_errors(
     finally:
         server.shutdown()
         server.server_close()
-    assert shot.is_file() and shot.stat().st_size > 50_000, proc.stderr[-2000:]
-    page_requests = [r for r in seen if "favicon.ico" not in r and not _is_browser_service(r)]
-    assert len(page_requests) == 1 and "/report.html referer=" in page_requests[0], seen
-    console = [line for line in proc.stderr.splitlines() if ":CONSOLE(" in line]
+    return (
+        [r for r in seen if "favicon.ico" not in r and not _is_browser_service(r)],
+        proc.stderr,
+        shot,
+    )
+
+
+needs_chromium = pytest.mark.skipif(
+    CHROMIUM is None,
+    reason="chromium is not installed (.ci/run installs the "
+    "Debian package; locally: apt-get install chromium)",
+)
+
+
+@needs_chromium
+@pytest.mark.parametrize("style", ["run", "default", "journal", "submission"])
+def test_report_loads_offline_without_errors(
+    regenerated: dict[str, Path],
+    styled: dict[tuple[str, str], tuple[bytes, bytes]],
+    tmp_path: Path,
+    style: str,
+) -> None:
+    # "run": the committed example as run; the others: each shipped style
+    page = (
+        (regenerated["clinic_visits"] / "report.html").read_bytes()
+        if style == "run"
+        else styled[("clinic_visits", style)][0]
+    )
+    requests, log, shot = _load(page, tmp_path)
+    assert shot.is_file() and shot.stat().st_size > 50_000, log[-2000:]
+    assert len(requests) == 1 and "/report.html referer=" in requests[0], requests
+    console = [line for line in log.splitlines() if ":CONSOLE(" in line]
     assert console == [], console
+
+
+# What a template could smuggle in had the markup check missed it (each is refused by that
+# check: tests/report/test_styles.py): script, handlers, javascript: URLs, remote and
+# same-site fetches from elements and style sheets. The page's Content-Security-Policy must
+# make the browser refuse every one. (A meta refresh is outside what a CSP governs; the
+# check refuses it.)
+SLIPPED_THROUGH = """
+<script>console.log('SCRIPT-RAN'); fetch('/pwned-script');</script>
+<img alt=">" src="/pwned-img" onerror="console.log('SCRIPT-RAN'); fetch('/pwned-onerror')">
+<img alt="x" src="http://example.org/pwned-remote.png">
+<style>@import url(/pwned-import.css);</style>
+<style>
+@font-face { font-family: smuggled; src: url(/pwned-font.woff); }
+body { font-family: smuggled; background-image: url(/pwned-background.png); }
+p { background-image: image-set('/pwned-image-set.png' 1x); }
+</style>
+<link rel="stylesheet" href="/pwned-link.css">
+<iframe src="javascript:console.log('SCRIPT-RAN')"></iframe>
+<iframe src="/pwned-frame.html"></iframe>
+<object data="/pwned-object"></object>
+<svg width="10" height="10"><image href="/pwned-svg-image.png"/></svg>
+"""
+
+
+@needs_chromium
+def test_what_slips_past_the_check_is_refused_by_the_browser(
+    regenerated: dict[str, Path], tmp_path: Path
+) -> None:
+    # Reference: the Content-Security-Policy Level 3 specification (W3C): with
+    # default-src 'none' no script runs and nothing is fetched but what img-src and
+    # style-src allow. Chromium is the browser a reader would open the report in.
+    page = (regenerated["clinic_visits"] / "report.html").read_bytes()
+    assert page.count(b"</body>") == 1
+    hostile = page.replace(b"</body>", SLIPPED_THROUGH.encode() + b"</body>")
+    requests, log, shot = _load(hostile, tmp_path)
+    assert shot.is_file(), log[-2000:]
+    assert len(requests) == 1 and "/report.html referer=" in requests[0], requests
+    assert "SCRIPT-RAN" not in "".join(
+        line for line in log.splitlines() if ":CONSOLE(" in line and "Refused" not in line
+    )
+    refused = [line for line in log.splitlines() if "Content Security Policy" in line]
+    assert len(refused) >= 5, log[-3000:]  # the payloads were there, and were refused
