@@ -58,3 +58,14 @@ def test_sample_run_regenerates_identically(
     assert len(names) > 15
     for name in names:
         assert (fresh / name).read_bytes() == (committed / name).read_bytes(), name
+
+
+@pytest.mark.parametrize("report_id", [r for _, r in EXAMPLES])
+def test_committed_sample_runs_verify_here(report_id: str) -> None:
+    # what an auditor does with the runs shipped in the repository, wherever it is checked
+    # out: integrity, inputs (found beside the recorded spec) and numbers all pass
+    from tests.helpers import cli
+
+    done = cli("verify", str(SAMPLES / report_id / "v001"), "--quiet")
+    assert done.returncode == 0, done.stdout[-2000:] + done.stderr[-2000:]
+    assert "inputs: ok" in done.stdout and "numbers: ok" in done.stdout
