@@ -285,3 +285,16 @@ def average_ranks(x: np.ndarray) -> np.ndarray:
     last = np.append(first[1:], x.size) - 1
     ranks[order] = np.repeat((first + last) / 2.0 + 1.0, last - first + 1)
     return ranks
+
+
+def band_words(fit: FPCAFit) -> str:
+    """What the trajectories' bands are, in words for a caption (``fpca.result.BandChoice``)."""
+    band = fit.band
+    if band.kind == "corrected":
+        return (
+            "corrected for the estimation of the mean, eigenfunctions and variances "
+            f"({band.reason})"
+        )
+    if band.kind == "unavailable":
+        return f"not drawn: the corrected band is unavailable ({band.reason})"
+    return f"plug-in: the mean, eigenfunctions and variances taken as known ({band.reason})"

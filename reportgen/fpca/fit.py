@@ -16,7 +16,7 @@ Steps (Yao, Müller & Wang 2005, JASA 100:577-590, doi:10.1198/01621450400000174
    (``selection``);
 6. scores and their error covariance by conditional expectation (``plan`` pass 3, the
    formulas in ``scores``), kept where they were computed; with ``band: corrected`` the
-   population quantities refitted on resampled subjects (``predictor.corrected_variance``).
+   population quantities refitted on resampled subjects (``predictor.corrected_bands``).
 
 Every step that touches readings is a pass over the data's parts (``plan``), so that the
 same fit runs in this process or on a cluster with the same bits. Every number is computed
@@ -44,7 +44,7 @@ from .likelihood import LikelihoodFit, maximise, starting_error_variance
 from .options import FPCAOptions
 from .plan import Part, Partitioned, PartResults, ResidualSize
 from .predictor import Predictor
-from .result import FPCAFit, Labels, as_labels, frozen
+from .result import BandChoice, FPCAFit, Labels, as_labels, frozen
 from .scores import sample_terms
 from .selection import fixed_selection, select_components
 from .smoothing import (
@@ -437,52 +437,98 @@ def _fit(
     )
     if not per_subject:
         return fit.without_subjects()
-    if options.band == "corrected" and not population_only:
-        fit = _with_replicates(fit, data)
-    return fit
+    if population_only:
+        return fit
+    return _with_band(fit, data)
+
+
+# band: auto takes the corrected band up to this many subjects: its 50 refits then cost a
+# few seconds (benchmarks/ACCURACY.md, "cost"); above it, plug-in.
+AUTO_CORRECTED_MAX_SUBJECTS = 10000
+# Fewer fitted resamples than this and the corrected band is unavailable: the variance of
+# the band's variance estimate from B resamples is about 2/B of it squared (common
+# practice, no source), so at 20 the band's width is uncertain by about 16%.
+MIN_RESAMPLES = 20
+# A resample that cannot be smoothed at the main fit's bandwidths is refitted at these
+# multiples of all three (the rule is always defined: the last is wide enough for any
+# resample that the main fit's domain check would pass).
+WIDER = (1.5, 2.25, 3.375)
+
+
+def _with_band(fit: FPCAFit, data: Partitioned) -> FPCAFit:
+    asked = fit.options.band
+    n = data.n_subjects
+    if asked == "plugin" or (asked == "auto" and n > AUTO_CORRECTED_MAX_SUBJECTS):
+        reason = (
+            "asked for (model.band: plugin)"
+            if asked == "plugin"
+            else f"{n} subjects, above the {AUTO_CORRECTED_MAX_SUBJECTS} up to which "
+            "band: auto corrects the band"
+        )
+        return replace(fit, band=BandChoice("plugin", asked, reason))
+    return _with_replicates(fit, data)
 
 
 def _with_replicates(fit: FPCAFit, data: Partitioned) -> FPCAFit:
-    """Refit the population quantities on resampled subjects (``predictor.corrected_variance``).
+    """Refit the population quantities on resampled subjects (``predictor.corrected_bands``).
 
-    Each replicate keeps the main fit's three bandwidths, domain and number of components;
-    a resample on which that fit is impossible (too few positive eigenvalues) is skipped
-    and counted in a warning.
+    Each replicate keeps the main fit's domain and number of components, and its three
+    bandwidths; a resample that cannot be fitted at them is fitted at the multiples
+    ``WIDER`` of them (counted as widened). Fewer than ``MIN_RESAMPLES`` fitted and the
+    band is unavailable (``BandChoice``).
     """
     opts = replace(
-        with_bandwidths(
-            fit.options, fit.mean_bandwidth, fit.covariance_bandwidth, fit.diagonal_bandwidth
-        ),
+        fit.options,
         domain=(float(fit.grid[0]), float(fit.grid[-1])),
         component_rule="fixed",
         n_components=fit.n_components,
         band="plugin",
     )
+    hs = (fit.mean_bandwidth, fit.covariance_bandwidth, fit.diagonal_bandwidth)
     rng = np.random.default_rng([fit.options.seed, 1])
     n = data.n_subjects
     labels = np.arange(n)
     reps: list[Predictor] = []
-    skipped = 0
-    for _ in range(fit.options.bootstrap_replicates):
+    widened = 0
+    asked = fit.options.bootstrap_replicates
+    for _ in range(asked):
         drawn = data.resample(rng.integers(0, n, n))  # subjects with replacement
-        try:
-            rf = _fit(drawn, labels, opts, population_only=True)
-        except EstimationError:
-            skipped += 1
-            continue
-        # each resample's predictor, its mean on the main grid
-        reps.append(replace(rf.predictor, mean_time=rf.grid, mean_value=rf.mean))
-    notes = list(fit.warnings)
-    if skipped:
-        notes.append(
-            f"{skipped} of {fit.options.bootstrap_replicates} resamples for the "
-            "corrected bands could not be fitted and were skipped"
+        for factor in (1.0, *WIDER):
+            try:
+                rf = _fit(
+                    drawn,
+                    labels,
+                    with_bandwidths(opts, *(h * factor for h in hs)),
+                    population_only=True,
+                )
+            except EstimationError:
+                continue
+            widened += factor != 1.0
+            # each resample's predictor, its mean on the main grid
+            reps.append(replace(rf.predictor, mean_time=rf.grid, mean_value=rf.mean))
+            break
+    used = len(reps)
+    why = f"{used} of {asked} resamples of subjects fitted" + (
+        f" ({widened} at wider bandwidths)" if widened else ""
+    )
+    if fit.options.band == "auto":
+        why += f"; band: auto corrects up to {AUTO_CORRECTED_MAX_SUBJECTS} subjects"
+    if used < MIN_RESAMPLES:
+        notes = (
+            *fit.warnings,
+            f"the corrected band is unavailable: {why}, fewer than the {MIN_RESAMPLES} it "
+            "needs; no band is drawn rather than a thin one",
         )
-    if len(reps) < 2:
-        raise EstimationError(
-            f"the corrected bands need at least two resamples that can be fitted; {len(reps)} could"
+        return replace(
+            fit,
+            warnings=notes,
+            band=BandChoice("unavailable", fit.options.band, why, asked, used, widened),
         )
-    return replace(fit, replicates=tuple(reps), warnings=tuple(notes))
+    return replace(
+        fit,
+        replicates=tuple(reps),
+        band=BandChoice("corrected", fit.options.band, why, asked, used, widened),
+    )
 
 
 # Components refined by likelihood: those reaching this share of the surface's positive

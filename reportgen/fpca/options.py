@@ -20,8 +20,11 @@ class FPCAOptions:
     ``component_rule`` is one of ``"fve"`` (smallest K reaching ``fve_threshold``),
     ``"aic"``, ``"bic"``, ``"cv"`` (leave-one-reading-out prediction error) or ``"fixed"``
     (``n_components``). ``band`` is ``"plugin"`` (the population quantities taken as
-    known) or ``"corrected"`` (``bootstrap_replicates`` refits on subjects resampled with
-    replacement add the uncertainty of the population quantities; ``predictor.corrected_variance``).
+    known), ``"corrected"`` (``bootstrap_replicates`` refits on subjects resampled with
+    replacement add the uncertainty of the population quantities; ``predictor.corrected_bands``)
+    or ``"auto"`` (corrected up to ``fit.AUTO_CORRECTED_MAX_SUBJECTS`` subjects, plug-in
+    above, where the population quantities' estimation error is small and the refits cost
+    most).
     """
 
     n_grid: int = 101
@@ -40,7 +43,7 @@ class FPCAOptions:
     max_components: int = 8
     criteria_max_subjects: int = 5000
     band_level: float = 0.95
-    band: str = "plugin"
+    band: str = "auto"
     bootstrap_replicates: int = 50
     seed: int = 0
 

@@ -21,7 +21,7 @@ from .frame import arrays_from_frame
 from .likelihood import LikelihoodFit
 from .options import FPCAOptions
 from .plan import PartResults
-from .predictor import BandKind, Predictor, corrected_variance
+from .predictor import BAND_COLUMNS, BandKind, Predictor, corrected_bands
 
 # Subject labels: an array, or a pandas Index (immutable) of text kept as it came.
 Labels = np.ndarray | pd.Index
@@ -46,6 +46,25 @@ def rows_of(labels: Labels, wanted: Sequence[Any]) -> IntArray:
     hit = np.flatnonzero(ids.isin(list(wanted)))
     found = dict(zip(ids[hit].tolist(), hit.tolist(), strict=True))
     return np.array([found.get(w, -1) for w in wanted], dtype=np.intp)
+
+
+@dataclass(frozen=True)
+class BandChoice:
+    """Which band a fit's trajectories carry, and why.
+
+    ``kind``: ``"plugin"``, ``"corrected"`` or ``"unavailable"`` (corrected bands were asked
+    for and fewer than ``fit.MIN_RESAMPLES`` resamples could be fitted: no band is drawn
+    rather than a thin one). ``asked``: the option (plugin, corrected, auto). ``resamples``:
+    asked for; ``used``: fitted; ``widened``: fitted only with wider bandwidths (a resample
+    without the sparse end's few readings cannot be smoothed at the main fit's bandwidths).
+    """
+
+    kind: str = "plugin"
+    asked: str = "plugin"
+    reason: str = ""
+    resamples: int = 0
+    used: int = 0
+    widened: int = 0
 
 
 @dataclass(frozen=True)
@@ -119,7 +138,7 @@ class FPCAFit:
         Starting-point problems, dropped eigenvalues, bandwidths at the end of their range.
     replicates : tuple of Predictor
         The population quantities refitted on resampled subjects (empty for plug-in
-        bands); with them, bands are corrected ones (``predictor.corrected_variance``).
+        bands); with them, bands are corrected ones (``predictor.corrected_bands``).
     options : FPCAOptions
     """
 
@@ -158,6 +177,7 @@ class FPCAFit:
     _sample: Sample | None = field(repr=False)  # None in a fit without its subjects
     replicates: tuple[Predictor, ...] = ()
     columns: tuple[str, str, str] = ("subject", "time", "value")
+    band: BandChoice = BandChoice()
 
     @property
     def mean_bandwidth(self) -> float:
@@ -304,13 +324,39 @@ class FPCAFit:
                 f"readings of {readings.n_subjects} subjects given for {rows.size} trajectories"
             )
         scores, cov = self.scores_of(rows)
-        variance = corrected_variance(self.replicates, readings) if self.replicates else None
-        return self.predictor.trajectories(self.subjects[rows], scores, cov, level, variance)
+        variance, multipliers = None, None
+        if self.replicates:
+            variance, multipliers = corrected_bands(
+                self.replicates,
+                self.predictor.fitted(scores),
+                readings,
+                self.predictor.band_level if level is None else level,
+            )
+        return self._unless_unavailable(
+            self.predictor.trajectories(
+                self.subjects[rows], scores, cov, level, variance, multipliers
+            )
+        )
+
+    def _unless_unavailable(self, frame: pd.DataFrame) -> pd.DataFrame:
+        """No band (empty cells) where the corrected band was asked for and is unavailable
+        (``BandChoice``): a plug-in band in its place would be drawn too thin."""
+        if self.band.kind == "unavailable":
+            frame.loc[:, list(BAND_COLUMNS)] = np.nan
+        return frame
 
     def plugin_trajectories(self) -> pd.DataFrame:
         """Every subject's trajectory with plug-in bands, from the scores and their
-        covariances alone (no readings)."""
-        return self.predictor.trajectories(self.subjects, self.score_values, self.score_cov)
+        covariances alone (no readings). The simultaneous band of this bulk table is the
+        chi-square (Scheffé) bound, conservative: drawing each subject's whole-curve error
+        (``predictor.sup_multipliers``) would cost about a thousand curves per subject."""
+        scheffe = self.predictor.band_multiplier("simultaneous")
+        return self.predictor.trajectories(
+            self.subjects,
+            self.score_values,
+            self.score_cov,
+            simultaneous=np.full(self.n_subjects, scheffe),
+        )
 
     def predict(self, frame: pd.DataFrame, level: float | None = None) -> pd.DataFrame:
         """Scores and trajectories on the grid for the subjects in ``frame`` (new or not).
@@ -322,6 +368,6 @@ class FPCAFit:
         the fit has resamples).
         """
         codes, t, y, labels = arrays_from_frame(frame, *self.columns)
-        return self.predictor.predict(
-            Sample.from_arrays(codes, t, y), labels, self.replicates, level
+        return self._unless_unavailable(
+            self.predictor.predict(Sample.from_arrays(codes, t, y), labels, self.replicates, level)
         )

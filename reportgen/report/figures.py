@@ -19,7 +19,7 @@ from matplotlib.figure import Figure as MplFigure
 from scipy.special import ndtri
 
 from ..analysis.analyse import AnalysisResult
-from ..analysis.views import density
+from ..analysis.views import band_words, density
 from .svg import figure_svg
 
 PALETTE = ("#1f5f8b", "#c0632b", "#3f8f4f", "#8a3f8f", "#7a7a2a", "#2a7a7a")
@@ -353,8 +353,13 @@ def _trajectories(r: AnalysisResult) -> Drawn:
         axes[j // cols, j % cols].set_visible(False)
     return (
         fig,
-        f"Recovered trajectories with pointwise {level} bands (inner) and "
-        f"simultaneous {level} bands (outer), and the subjects' readings.",
+        (
+            f"Recovered trajectories and the subjects' readings; bands {band_words(r.fit)}."
+            if r.fit.band.kind == "unavailable"
+            else f"Recovered trajectories with pointwise {level} bands (inner) and "
+            f"simultaneous {level} bands (outer, the whole curve), and the subjects' readings. "
+            f"Bands {band_words(r.fit)}."
+        ),
         "Small multiples: each selected subject's fitted curve, band and readings.",
     )
 

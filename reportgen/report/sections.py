@@ -12,7 +12,7 @@ import numpy as np
 
 from ..analysis.analyse import AnalysisResult
 from ..analysis.caveats import STANDARD_CAUTIONS
-from ..analysis.views import NAMED_FLAGGED
+from ..analysis.views import NAMED_FLAGGED, band_words
 
 if TYPE_CHECKING:
     from ..fpca.bandwidth import BandwidthChoice
@@ -343,17 +343,17 @@ def _section_trajectories(c: _Context) -> None:
         + "the rest of the "
         f"{spec.subjects.count} at even steps through all subjects ordered by number of "
         "readings, then id (from the fewest readings to the most), so that sparse and dense "
-        f"subjects both appear: {', '.join(result.shown_subjects)}. Inner band: pointwise "
-        f"{fit.options.band_level:.0%} ("
+        f"subjects both appear: {', '.join(result.shown_subjects)}. Bands: "
+        f"{band_words(fit)}. Inner band: pointwise {fit.options.band_level:.0%}; outer band: "
+        "simultaneous over the whole curve, its multiplier for each subject the "
+        f"{fit.options.band_level:.0%} quantile of the curve's largest standardized "
+        "deviation over the grid, drawn from the band's own error distribution. Neither "
+        "accounts for the smoothing bias of the mean. The tables also give each time's band "
+        "for a new reading (lower_new_reading, upper_new_reading: the curve's variance plus "
+        "the error variance)."
         + (
-            "corrected for the estimation of the population quantities by "
-            f"{len(fit.replicates)} resamples of subjects"
-            if fit.replicates
-            else "plug-in: mean, eigenfunctions and variances taken as known"
-        )
-        + "); outer band: simultaneous over the whole curve."
-        + (
-            " The trajectory of every subject, with plug-in bands: "
+            " The trajectory of every subject, with plug-in bands (their simultaneous band "
+            "the conservative chi-square bound): "
             f"{_subject_table(result, 'all_trajectories')}."
             if spec.subjects.all_trajectories
             else ""

@@ -7,6 +7,7 @@ significant digits so that the digest does not depend on the last bits of a BLAS
 from __future__ import annotations
 
 import hashlib
+from dataclasses import asdict
 
 import numpy as np
 import pandas as pd
@@ -179,6 +180,17 @@ def build_tables(result: AnalysisResult) -> dict[str, pd.DataFrame]:
         rows.append(row)
     tables["sensitivity"] = pd.DataFrame(rows)
     tables["model"] = fit.predictor.to_frame()
+    tables["band"] = pd.DataFrame([asdict(fit.band)])
+    if fit.replicates:  # a corrected band: predictions from the run need its resamples
+        tables["model_resamples"] = pd.concat(
+            [
+                rep.to_frame().assign(resample=b + 1)[
+                    ["resample", "quantity", "component", "time", "value"]
+                ]
+                for b, rep in enumerate(fit.replicates)
+            ],
+            ignore_index=True,
+        )
     tables["units"] = pd.DataFrame(
         sorted(result.spec.units().items()), columns=["quantity", "unit"]
     )

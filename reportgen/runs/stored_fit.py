@@ -19,7 +19,7 @@ import pandas as pd
 from ..errors import DataError, EstimationError, OutputError, RecordError
 from ..fpca.design import Sample
 from ..fpca.frame import arrays_from_frame
-from ..fpca.predictor import Predictor
+from ..fpca.predictor import BAND_COLUMNS, Predictor
 from ..inputs.files import read_path
 from ..inputs.loader import load_file, require_passed
 from ..inputs.spec import Spec, spec_from_bytes
@@ -37,17 +37,23 @@ class StoredFit:
     run: Path
     spec: Spec
     predictor: Predictor
+    replicates: tuple[Predictor, ...] = ()  # a corrected band's resamples
+    band_unavailable: bool = False
 
     def predict(self, frame: pd.DataFrame) -> pd.DataFrame:
         """Predictions for the readings in ``frame`` (columns subject, time, value, already
         on the run's scale: times counted as the run counts them, values transformed).
 
         Returns one row per subject and grid time: subject, n_obs, score_1..K, time,
-        fitted, lower, upper, lower_simultaneous, upper_simultaneous (plug-in bands at the
-        run's level).
+        fitted, lower, upper, lower_simultaneous, upper_simultaneous, lower_new_reading,
+        upper_new_reading: the bands of the run (corrected by its stored resamples, or
+        plug-in; empty where the run's corrected band was unavailable), at the run's level;
+        the same numbers as the run's fit predicting in memory.
         """
         codes, t, y, labels = arrays_from_frame(frame, "subject", "time", "value")
-        out = self.predictor.predict(Sample.from_arrays(codes, t, y), labels)
+        out = self.predictor.predict(Sample.from_arrays(codes, t, y), labels, self.replicates)
+        if self.band_unavailable:
+            out.loc[:, list(BAND_COLUMNS)] = float("nan")
         if "group" in frame:
             per = frame.drop_duplicates("subject").set_index("subject")["group"]
             out.insert(1, "group", per.reindex(out.subject).to_numpy())
@@ -95,9 +101,20 @@ def load_fit(run_dir: str | Path) -> StoredFit:
     spec = spec_from_bytes((run / "spec.yaml").read_bytes(), run / "spec.yaml")
     try:
         predictor = Predictor.from_frame(pd.read_csv(model))
-    except EstimationError as e:
-        raise RecordError(f"{model}: {e}") from e
-    return StoredFit(run, spec, predictor)
+        resamples = run / "tables" / "model_resamples.csv"
+        replicates = (
+            tuple(
+                Predictor.from_frame(part.drop(columns="resample"))
+                for _, part in pd.read_csv(resamples).groupby("resample", sort=True)
+            )
+            if resamples.is_file()
+            else ()
+        )
+        band = run / "tables" / "band.csv"
+        unavailable = band.is_file() and pd.read_csv(band).kind.iloc[0] == "unavailable"
+    except (EstimationError, KeyError, AttributeError, IndexError, ValueError) as e:
+        raise RecordError(f"{model.parent}: a stored model table is damaged ({e})") from e
+    return StoredFit(run, spec, predictor, replicates, bool(unavailable))
 
 
 def write_table(frame: pd.DataFrame, out: str | Path) -> Path:

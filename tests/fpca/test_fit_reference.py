@@ -301,12 +301,12 @@ def test_corrected_band_adds_the_estimation_uncertainty() -> None:
     # the conditional mean, so on a small sparse design the band is wider on average than the
     # plug-in band, and each replicate keeps the main fit's K and bandwidths.
     frame = yao_design(150, seed=4)
-    plug = fit_sparse_fpca(frame, subject="id", time="t", value="y")
+    plug = fit_sparse_fpca(frame, subject="id", time="t", value="y", band="plugin")
     corr = fit_sparse_fpca(
-        frame, subject="id", time="t", value="y", band="corrected", bootstrap_replicates=12
+        frame, subject="id", time="t", value="y", band="corrected", bootstrap_replicates=24
     )
-    assert not plug.replicates and corr.replicates
-    assert 10 <= len(corr.replicates) <= 12  # a resample that cannot be fitted is skipped
+    assert not plug.replicates and plug.band.kind == "plugin"
+    assert len(corr.replicates) == 24 and corr.band.kind == "corrected"  # none skipped
     assert all(r.eigenfunctions.shape[1] == corr.n_components for r in corr.replicates)
     ids = list(plug.subjects[:20])
     wp, wc = plug.trajectories(ids), corr.trajectories(ids)
@@ -397,12 +397,27 @@ def test_rare_fit_sentences_appear_when_triggered(monkeypatch: pytest.MonkeyPatc
 
     monkeypatch.setattr(fitmod, "_fit", refuse_some)
     fit = fit_sparse_fpca(
-        frame, subject="id", time="t", value="y", band="corrected", bootstrap_replicates=12
+        frame, subject="id", time="t", value="y", band="corrected", bootstrap_replicates=24
     )
-    assert len(fit.replicates) == 8
-    assert any(
-        "4 of 12 resamples for the corrected bands could not be fitted" in w for w in fit.warnings
+    # every third refit refused: the resample is fitted again at wider bandwidths, none is
+    # skipped (calls 3, 6, 9, ... refused; each retry is the next call)
+    assert len(fit.replicates) == 24 and fit.band.used == 24 and fit.band.widened == 11
+    assert fit.band.reason.startswith("24 of 24 resamples of subjects fitted (11 at wider")
+
+    def refuse_all(*args: object, **kwargs: object) -> object:
+        if kwargs.get("population_only"):
+            raise EstimationError("refused for the test")
+        return real_fit(*args, **kwargs)  # type: ignore[arg-type]
+
+    monkeypatch.setattr(fitmod, "_fit", refuse_all)
+    fit = fit_sparse_fpca(
+        frame, subject="id", time="t", value="y", band="corrected", bootstrap_replicates=24
     )
+    assert fit.band.kind == "unavailable" and not fit.replicates
+    assert any("the corrected band is unavailable: 0 of 24" in w for w in fit.warnings)
+    drawn = fit.trajectories(list(fit.subjects[:3]))
+    assert drawn[["lower", "upper_simultaneous", "upper_new_reading"]].isna().all().all()
+    assert drawn.fitted.notna().all()  # the curve is drawn, without a band
 
 
 def test_bandwidth_search_goes_past_half_the_domain_when_the_criterion_still_falls() -> None:

@@ -61,7 +61,16 @@ def test_predicting_the_runs_own_subjects_gives_its_scores_and_bands(
     traj = pd.read_csv(run / "tables" / "trajectories.csv", dtype={"subject": str})
     both = traj.merge(pred, on=["subject", "time"], suffixes=("", "_p"))
     assert len(both) == len(traj)
-    for col in ("fitted", "lower", "upper", "lower_simultaneous", "upper_simultaneous"):
+    assert (run / "tables" / "model_resamples.csv").is_file()  # band: auto corrected it
+    for col in (
+        "fitted",
+        "lower",
+        "upper",
+        "lower_simultaneous",
+        "upper_simultaneous",
+        "lower_new_reading",
+        "upper_new_reading",
+    ):
         np.testing.assert_allclose(both[col + "_p"], both[col], rtol=1e-8)
 
 

@@ -1,0 +1,70 @@
+"""The bands' multipliers and columns, against facts of the normal distribution.
+
+Reference for the quantiles: scipy.stats (norm, chi2)."""
+
+from __future__ import annotations
+
+import numpy as np
+from scipy import stats
+
+from reportgen.fpca.predictor import Source, sup_multipliers
+
+
+def _one_mode(n_grid: int = 41) -> tuple[np.ndarray, np.ndarray]:
+    t = np.linspace(0, 1, n_grid)
+    return t, (np.sqrt(2) * np.cos(np.pi * t))[:, None]
+
+
+def test_a_rank_one_curve_error_has_the_normal_quantile_as_its_sup_multiplier() -> None:
+    # error(t) = phi(t) z: |error(t)| / sd(t) = |z| at every t, so the whole curve is inside
+    # m sd exactly when |z| <= m: the simultaneous multiplier is the pointwise one, 1.96.
+    # (common practice, no source)
+    t, phi = _one_mode()
+    cov = np.full((3, 1, 1), 2.0)
+    sd = np.sqrt(2.0) * np.abs(phi[:, 0])[None, :].repeat(3, axis=0)
+    m = sup_multipliers([Source(np.zeros_like(sd), cov, phi, np.zeros(t.size))], sd, 0.95)
+    assert np.allclose(m, m[0])  # the same draws for every subject
+    assert abs(m[0] - stats.norm.ppf(0.975)) < 0.1  # Monte Carlo error of 1000 draws
+
+
+def test_two_modes_lie_between_the_pointwise_and_the_chi_square_multipliers() -> None:
+    # With two orthogonal modes the sup over t of |a(t)'z| is at most |z| (Cauchy-Schwarz,
+    # the chi-square bound with 2 degrees of freedom) and at least the pointwise quantile.
+    t = np.linspace(0, 1, 81)
+    phi = np.column_stack([np.sqrt(2) * np.cos(np.pi * t), np.sqrt(2) * np.cos(2 * np.pi * t)])
+    cov = np.array([[[1.0, 0.0], [0.0, 0.5]]])
+    sd = np.sqrt(np.einsum("gk,nkl,gl->ng", phi, cov, phi))
+    m = sup_multipliers([Source(np.zeros_like(sd), cov, phi, np.zeros(t.size))], sd, 0.95)[0]
+    assert stats.norm.ppf(0.975) < m < np.sqrt(stats.chi2.ppf(0.95, 2))
+
+
+def test_an_offset_widens_the_multiplier_and_a_mixture_uses_every_source() -> None:
+    # A corrected band's mixture: one source shifted by 2 sd everywhere has its errors at
+    # |2 + z|, so the 95% quantile of the equal mixture lies well above the normal one.
+    t, phi = _one_mode()
+    cov = np.ones((1, 1, 1))
+    sd = np.abs(phi[:, 0])[None, :]
+    zero = Source(np.zeros_like(sd), cov, phi, np.zeros(t.size))
+    shifted = Source(2.0 * sd, cov, phi, np.zeros(t.size))
+    alone = sup_multipliers([zero], sd, 0.95)[0]
+    mixed = sup_multipliers([zero, shifted], sd, 0.95)[0]
+    assert mixed > alone + 1.0
+
+
+def test_the_band_for_a_new_reading_adds_the_error_variance() -> None:
+    # A new reading is the curve plus an independent error: its variance is the curve's plus
+    # sigma^2 (common practice, no source); the new-reading band is that at the pointwise
+    # quantile, on every predict path (in memory here; the stored run: tests/runs).
+    from reportgen import fit_sparse_fpca
+    from tests.designs import yao_design
+
+    frame = yao_design(150, seed=4)
+    for band in ("plugin", "corrected"):
+        fit = fit_sparse_fpca(frame, subject="id", time="t", value="y", band=band)
+        for got in (fit.trajectories(list(fit.subjects[:5])), fit.predict(frame.head(40))):
+            z = stats.norm.ppf(0.975)
+            curve_var = ((got.upper - got.fitted) / z) ** 2
+            expected = z * np.sqrt(curve_var + fit.error_variance)
+            np.testing.assert_allclose(got.upper_new_reading - got.fitted, expected, rtol=1e-9)
+            np.testing.assert_allclose(got.fitted - got.lower_new_reading, expected, rtol=1e-9)
+            assert np.all(got.upper_simultaneous >= got.upper - 1e-12)
