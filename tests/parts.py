@@ -39,12 +39,12 @@ def split_parts(
     return out
 
 
-def group_mean(sample: Sample, fit: FPCAFit) -> tuple[FloatArray, FloatArray]:
-    """One group's mean on the fit's grid and its cluster-robust standard error (the
-    readings of its subjects, in one part)."""
+def group_mean(sample: Sample, fit: FPCAFit) -> tuple[FloatArray, FloatArray, FloatArray]:
+    """One group's mean on the fit's grid, its band's centre and cluster-robust standard
+    error (the readings of its subjects, in one part)."""
     data = Partitioned.local([Part(sample, np.arange(sample.n_subjects, dtype=np.intp))])
-    means, ses = group_means(data, fit, np.zeros(sample.n_subjects, dtype=np.intp), 1)
-    return means[0], ses[0]
+    means, centres, ses = group_means(data, fit, np.zeros(sample.n_subjects, dtype=np.intp), 1)
+    return means[0], centres[0], ses[0]
 
 
 def compare_groups_of(

@@ -182,3 +182,24 @@ def pair_stats(
     diag = BinnedStats(dcounts, dsums, r4, n_read)
     # sum_i u_i u_i^T with u_i the subject's binned residuals: pairs plus the readings' own
     return PairStats(offdiag, diag, sums.sum(axis=0) + own)
+
+
+def subject_support(sample: Sample, grid: FloatArray, h: float) -> IntArray:
+    """How many subjects have a reading within ``h`` of each grid time, (n_grid,).
+
+    Each reading covers the grid times x with |x - t| < h; a subject counts once at x
+    however many of its readings cover it (the union of its readings' intervals, counted
+    with one difference array: readings are sorted by time within a subject).
+    """
+    t = sample.t
+    start = np.searchsorted(grid, t - h, side="right")
+    stop = np.searchsorted(grid, t + h, side="left")
+    same = np.zeros(t.size, dtype=bool)
+    same[1:] = sample.subject[1:] == sample.subject[:-1]
+    before = np.concatenate([[0], stop[:-1]])
+    begin = np.where(same, np.maximum(start, before), start)
+    counted = (begin < stop).astype(np.int64)
+    size = grid.size + 1
+    delta = np.bincount(begin, counted, size) - np.bincount(stop, counted, size)
+    out: IntArray = np.cumsum(delta)[: grid.size].round().astype(np.int64)
+    return out

@@ -52,6 +52,7 @@ from .smoothing import (
     Kernel,
     design_conditioning_2d,
     equivalent_kernel_1d,
+    equivalent_kernel_quadratic_1d,
     get_kernel,
     hat_diagonal_1d,
     hat_diagonal_2d,
@@ -311,8 +312,31 @@ def _fit(
     cov, diag_var, ridge = _surfaces(
         pstats, cbins, grid, cov_choice.value, diag_choice.value, kernel
     )
-    mean_cov = mean_covariance(pstats, cbins, grid, mean_choice.value, kernel)
+    band_centre, mean_cov, uncorrected = mean_band(
+        pstats, total.counts[0], total.sums[0], mbins, cbins, grid, mean_choice.value, kernel
+    )
     mean_se = np.sqrt(np.maximum(np.diag(mean_cov), 0.0))
+    # subjects behind the mean at each grid time; no band where fewer than MIN_SUPPORT
+    support = (
+        np.full(grid.size, n_subjects, dtype=np.int64)
+        if population_only
+        else data.support(grid, mean_choice.value)
+    )
+    supported = support >= MIN_SUPPORT
+    mean_se = np.where(supported, mean_se, np.nan)
+    if not np.all(supported):
+        messages.append(
+            f"fewer than {MIN_SUPPORT} subjects have a reading within the mean's bandwidth at "
+            f"{int(np.sum(~supported))} of {grid.size} grid times "
+            f"({_spans(grid, ~supported)}); no band is drawn there, for the mean or the "
+            "trajectories: a cluster-robust variance from so few subjects is too small"
+        )
+    if uncorrected:
+        messages.append(
+            f"the mean's band is not bias-corrected at {uncorrected} of {grid.size} grid times "
+            "(too few distinct reading times there for a local quadratic fit); it uses the "
+            "local linear fit and its variance there"
+        )
 
     # 3. eigen-decomposition; smoothing estimate of the error variance (a starting point)
     eig = eigen_decompose(grid, cov)
@@ -387,6 +411,7 @@ def _fit(
         frozen(truncation),
         options.band_level,
         dof,
+        None if population_only else frozen(supported.astype(np.float64)),
     )
 
     # 6. scores
@@ -398,6 +423,7 @@ def _fit(
         grid=predictor.grid,
         mean=frozen(mean),
         mean_se=frozen(mean_se),
+        mean_band_centre=frozen(band_centre),
         covariance=frozen(cov),
         diagonal_variance=frozen(diag_var),
         eigenvalues=predictor.eigenvalues,
@@ -410,8 +436,11 @@ def _fit(
         likelihood=lik,
         truncation_variance=predictor.truncation_variance,
         mean_simultaneous_multiplier=np.nan
-        if population_only
-        else _sup_multiplier(mean_cov, options.band_level, options.seed),
+        if population_only or not np.any(supported)
+        else _sup_multiplier(
+            mean_cov[np.ix_(supported, supported)], options.band_level, options.seed
+        ),
+        mean_support=frozen(support),
         diagonal_support=frozen(
             design_conditioning_2d(
                 grid, cbins.centers, pstats.offdiag.total().counts[0], cov_choice.value, kernel
@@ -440,6 +469,26 @@ def _fit(
     if population_only:
         return fit
     return _with_band(fit, data)
+
+
+# No band where fewer subjects than this have a reading within the mean's bandwidth: a
+# cluster-robust variance from G subjects has about G - 1 degrees of freedom and is biased
+# low with few of them, so that at 10 the normal quantile is already 13% short of the
+# t(9) one (Cameron & Miller 2015, J. Human Resources 50:317-372, on few clusters; from
+# memory).
+MIN_SUPPORT = 10
+
+
+def _spans(grid: FloatArray, mask: np.ndarray) -> str:
+    """The grid times in ``mask`` as ranges, e.g. "0-2.5, 9-10"."""
+    idx = np.flatnonzero(mask)
+    breaks = np.flatnonzero(np.diff(idx) > 1)
+    firsts = np.concatenate([[idx[0]], idx[breaks + 1]])
+    lasts = np.concatenate([idx[breaks], [idx[-1]]])
+    return ", ".join(
+        f"{grid[a]:.4g}" if a == b else f"{grid[a]:.4g}-{grid[b]:.4g}"
+        for a, b in zip(firsts, lasts, strict=True)
+    )
 
 
 # band: auto takes the corrected band up to this many subjects: its 50 refits then cost a
@@ -615,20 +664,59 @@ def _surfaces(
 
 
 def mean_covariance(
-    pstats: PairStats, cbins: BinGrid, grid: FloatArray, h: float, kernel: Kernel
+    pstats: PairStats,
+    cbins: BinGrid,
+    grid: FloatArray,
+    h: float,
+    kernel: Kernel,
+    weights: FloatArray | None = None,
 ) -> FloatArray:
-    """Cluster-robust covariance of the mean smoother on the grid, (n_grid, n_grid).
+    """Cluster-robust covariance of a linear smoother of the readings on the grid,
+    (n_grid, n_grid); by default the local linear mean's.
 
     With equivalent-kernel weights l(x) on the covariance bins, the estimate's deviation is
     sum_i l(x)' u_i over subjects (u_i: the subject's binned residuals), so its covariance
     is estimated by L (sum_i u_i u_i') L': the sandwich estimator with subjects as
     clusters (Liang & Zeger 1986, Biometrika 73:13-22; applied to a linear smoother).
-    Smoothing bias is not included.
     """
-    counts = pstats.diag.counts.sum(axis=0)
-    weights = equivalent_kernel_1d(grid, cbins.centers, counts, h, kernel)
+    if weights is None:
+        counts = pstats.diag.counts.sum(axis=0)
+        weights = equivalent_kernel_1d(grid, cbins.centers, counts, h, kernel)
     out: FloatArray = weights @ pstats.cross @ weights.T
     return 0.5 * (out + out.T)
+
+
+def mean_band(
+    pstats: PairStats,
+    counts: FloatArray,
+    sums: FloatArray,
+    mbins: BinGrid,
+    cbins: BinGrid,
+    grid: FloatArray,
+    h: float,
+    kernel: Kernel,
+) -> tuple[FloatArray, FloatArray, int]:
+    """The mean's band by robust bias correction: (its centre on the grid, its covariance,
+    grid times where it could not be corrected).
+
+    A band around the local linear mean leaves out its smoothing bias, largest where the
+    mean bends and readings are few. Robust bias correction (Calonico, Cattaneo & Farrell
+    2018, JASA 113:767-779) subtracts an estimate of that bias and widens the band for the
+    estimate's own variance; with the bias estimated at the same bandwidth (their rho = 1)
+    the bias-corrected estimate and its variance are those of the local quadratic fit at
+    that bandwidth (from memory), so the band is centred on the local quadratic fit, with
+    its cluster-robust variance. Where the quadratic fit is undefined (too few distinct
+    times in the window), the local linear fit and its variance are used.
+    """
+    linear = local_linear_binned_1d(grid, mbins.centers, counts, sums, h, kernel)
+    quad = equivalent_kernel_quadratic_1d(grid, mbins.centers, counts, h, kernel) @ sums
+    cbin_counts = pstats.diag.counts.sum(axis=0)
+    lw = equivalent_kernel_1d(grid, cbins.centers, cbin_counts, h, kernel)
+    qw = equivalent_kernel_quadratic_1d(grid, cbins.centers, cbin_counts, h, kernel)
+    bad = ~(np.isfinite(quad) & np.all(np.isfinite(qw), axis=1))
+    weights = np.where(bad[:, None], lw, qw)
+    centre = np.where(bad, linear, quad)
+    return centre, mean_covariance(pstats, cbins, grid, h, kernel, weights), int(bad.sum())
 
 
 def with_bandwidths(

@@ -24,10 +24,10 @@ import numpy as np
 from ..errors import EstimationError
 from ._kernels import interpolate_columns
 from .arrays import FloatArray, IntArray
-from .design import BinnedStats, PairStats, Sample, mean_stats, pair_stats
+from .design import BinnedStats, PairStats, Sample, mean_stats, pair_stats, subject_support
 from .diagnostics import part_group_sums
 from .executor import tree_sum
-from .fit import mean_covariance
+from .fit import MIN_SUPPORT, mean_band
 from .plan import Part, Partitioned, add_binned, add_pair_stats
 from .result import FPCAFit
 from .smoothing import BinGrid, get_kernel, local_linear_binned_1d
@@ -49,9 +49,9 @@ class GroupComparison:
     labels : tuple of str
         The groups, sorted.
     n_subjects : ndarray of shape (G,)
-    means, mean_se : ndarray of shape (G, n_grid)
-        Each group's mean curve on the fit's grid and its pointwise standard error (nan
-        where the group's readings do not define the smoother).
+    means, band_centres, mean_se : ndarray of shape (G, n_grid)
+        Each group's mean curve on the fit's grid, its band's centre and pointwise
+        standard error (``group_means``; the error nan where no band is drawn).
     score_means : ndarray of shape (G, K)
     statistic : float
         Pillai's trace of the retained scores by group.
@@ -67,6 +67,7 @@ class GroupComparison:
     labels: tuple[str, ...]
     n_subjects: IntArray
     means: FloatArray
+    band_centres: FloatArray
     mean_se: FloatArray
     score_means: FloatArray
     statistic: float
@@ -167,12 +168,24 @@ def group_pair_sums(
     return out
 
 
+def group_support(
+    part: Part, groups: IntArray, n_groups: int, grid: FloatArray, h: float
+) -> IntArray:
+    """Pass: each group's subjects with a reading within ``h`` of each grid time,
+    (n_groups, n_grid)."""
+    part = part.writable()
+    return np.stack([subject_support(s, grid, h) for s in _by_group(part.sample, groups, n_groups)])
+
+
 def group_means(
     data: Partitioned, fit: FPCAFit, groups: IntArray, n_groups: int
-) -> tuple[FloatArray, FloatArray]:
-    """Each group's mean on the fit's grid and its cluster-robust standard error, shape
-    (n_groups, n_grid) each: the common mean's estimator applied to the group's subjects
-    (``groups``: the group of each subject, by code), in two passes over ``data``."""
+) -> tuple[FloatArray, FloatArray, FloatArray]:
+    """Each group's mean on the fit's grid, its band's centre and standard error, shape
+    (n_groups, n_grid) each: the common mean's estimator and band (``fit.mean_band``:
+    robust bias correction, cluster-robust over subjects; no band, ``nan``, where fewer
+    than ``fit.MIN_SUPPORT`` of the group's subjects have a reading within the bandwidth)
+    applied to the group's subjects (``groups``: the group of each subject, by code), in
+    three passes over ``data``."""
     opts = fit.options
     lo, hi = float(fit.grid[0]), float(fit.grid[-1])
     kernel = get_kernel(opts.kernel)
@@ -180,9 +193,10 @@ def group_means(
     each = [(groups[codes],) for codes in data.subjects]
     found = data.executor.map(group_reading_sums, data.parts, each, (n_groups, mbins))
     h = fit.mean_bandwidth
-    means, fines = [], []
+    means, fines, totals = [], [], []
     for k in range(n_groups):
         total = tree_sum([f[k] for f in found], add_binned).total()
+        totals.append(total)
         fine = local_linear_binned_1d(
             mbins.centers, mbins.centers, total.counts[0], total.sums[0], h, kernel
         )
@@ -197,13 +211,20 @@ def group_means(
     found_pairs = data.executor.map(
         group_pair_sums, data.parts, each, (n_groups, np.stack(fines), mbins, cbins)
     )
-    ses = []
+    support = np.sum(
+        data.executor.map(group_support, data.parts, each, (n_groups, fit.grid, h)), axis=0
+    )
+    centres, ses = [], []
     for k, mean in enumerate(means):
         pstats = tree_sum([f[k] for f in found_pairs], add_pair_stats)
-        cov = mean_covariance(pstats, cbins, fit.grid, h, kernel)
+        centre, cov, _ = mean_band(
+            pstats, totals[k].counts[0], totals[k].sums[0], mbins, cbins, fit.grid, h, kernel
+        )
         se = np.sqrt(np.maximum(np.diag(cov), 0.0))
-        ses.append(np.where(np.isfinite(mean), se, np.nan))
-    return np.stack(means), np.stack(ses)
+        drawn = np.isfinite(mean) & (support[k] >= MIN_SUPPORT)
+        centres.append(centre)
+        ses.append(np.where(drawn, se, np.nan))
+    return np.stack(means), np.stack(centres), np.stack(ses)
 
 
 def compare_groups(
@@ -223,7 +244,7 @@ def compare_groups(
     g = labels.size
     if g < 2:
         raise EstimationError("a group comparison needs two or more groups")
-    means, ses = group_means(data, fit, code, g)
+    means, centres, ses = group_means(data, fit, code, g)
     counts = np.bincount(code, minlength=g)
     kept = fit.kept_scores
     sums = kept.map(part_group_sums, [(code[c],) for c in kept.subjects], (g,))
@@ -239,6 +260,7 @@ def compare_groups(
         tuple(str(x) for x in labels),
         counts.astype(np.intp),
         means,
+        centres,
         ses,
         score_means,
         statistic,

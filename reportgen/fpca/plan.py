@@ -36,7 +36,7 @@ from ..errors import EstimationError
 from ._kernels import interpolate_columns
 from .arrays import FloatArray, IntArray
 from .components import evaluate_at
-from .design import BinnedStats, PairStats, Sample, mean_stats, pair_stats
+from .design import BinnedStats, PairStats, Sample, mean_stats, pair_stats, subject_support
 from .executor import Executor, InProcess, tree_sum
 from .scores import conditional_scores
 from .smoothing import BinGrid
@@ -152,6 +152,11 @@ def outside(part: Part, lo: float, hi: float) -> int:
     """Readings outside [lo, hi]."""
     t = part.sample.t
     return int(np.count_nonzero((t < lo) | (t > hi)))
+
+
+def support(part: Part, grid: FloatArray, h: float) -> IntArray:
+    """Subjects with a reading within ``h`` of each grid time (``design.subject_support``)."""
+    return subject_support(part.sample, grid, h)
 
 
 def reading_sums(part: Part, folds: IntArray, grid: BinGrid, n_folds: int) -> BinnedStats:
@@ -375,6 +380,11 @@ class Partitioned:
 
     def count_outside(self, lo: float, hi: float) -> int:
         return sum(self.executor.map(outside, self.parts, shared=(lo, hi)))
+
+    def support(self, grid: FloatArray, h: float) -> IntArray:
+        found = self.executor.map(support, self.parts, shared=(grid, h))
+        total: IntArray = np.sum(found, axis=0)
+        return total
 
     def reading_sums(self, folds: IntArray, grid: BinGrid, n_folds: int) -> BinnedStats:
         found = self.executor.map(reading_sums, self.parts, self._each(folds), (grid, n_folds))

@@ -73,6 +73,9 @@ class Predictor:
     band_level : float
     simultaneous_dof : int
         Components entering a band's variance (degrees of freedom of the simultaneous one).
+    supported : ndarray of shape (n_grid,) or None
+        1 where at least ``MIN_SUPPORT`` subjects have a reading within the mean's bandwidth,
+        0 elsewhere: no band is drawn at the unsupported times (None: every time supported).
     """
 
     grid: FloatArray
@@ -84,6 +87,7 @@ class Predictor:
     truncation_variance: FloatArray
     band_level: float
     simultaneous_dof: int
+    supported: FloatArray | None = None
 
     @property
     def domain(self) -> tuple[float, float]:
@@ -168,6 +172,9 @@ class Predictor:
         half = z * sd
         wide = simultaneous[:, None] * sd
         reading = z * np.sqrt(np.maximum(var, 0.0) + self.error_variance)
+        if self.supported is not None:  # no band where too few subjects support the mean
+            gap = np.where(self.supported > 0, 0.0, np.nan)[None, :]
+            half, wide, reading = half + gap, wide + gap, reading + gap
         labels = np.asarray(labels) if not isinstance(labels, pd.Index) else labels
         return pd.DataFrame(
             {
@@ -233,6 +240,7 @@ class Predictor:
             ("mean", 0, self.mean_time, self.mean_value),
             *(("eigenfunction", j + 1, self.grid, self.eigenfunctions[:, j]) for j in range(k)),
             ("truncation_variance", 0, self.grid, self.truncation_variance),
+            *([("supported", 0, self.grid, self.supported)] if self.supported is not None else []),
             ("eigenvalue", np.arange(1, k + 1), np.full(k, np.nan), self.eigenvalues),
             *(
                 (name, 0, np.full(1, np.nan), np.array([float(getattr(self, name))]))
@@ -258,6 +266,12 @@ class Predictor:
             ev = by["eigenvalue"].sort_values("component", kind="stable")
             trunc = by["truncation_variance"].sort_values("time", kind="stable")
             scalar = {name: float(by[name].value.iloc[0]) for name in SCALARS}
+            held = by.get("supported")
+            supported = (
+                None
+                if held is None
+                else held.sort_values("time", kind="stable").value.to_numpy(dtype=np.float64)
+            )
             out = cls(
                 grid,
                 mean.time.to_numpy(dtype=np.float64),
@@ -268,6 +282,7 @@ class Predictor:
                 trunc.value.to_numpy(dtype=np.float64),
                 scalar["band_level"],
                 int(scalar["simultaneous_dof"]),
+                supported,
             )
         except (KeyError, ValueError, AttributeError) as e:
             raise EstimationError(f"the stored model table is incomplete or damaged ({e})") from e

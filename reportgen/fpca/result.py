@@ -76,7 +76,15 @@ class FPCAFit:
     grid : ndarray of shape (n_grid,)
     mean : ndarray of shape (n_grid,)
     mean_se : ndarray of shape (n_grid,)
-        Pointwise standard error of the mean, cluster-robust over subjects.
+        Pointwise standard error of the mean's band, cluster-robust over subjects (the
+        bias-corrected band's: ``fit.mean_band``).
+    mean_support : ndarray of shape (n_grid,)
+        Subjects with a reading within the mean's bandwidth of each grid time; no band
+        (``nan``) where fewer than ``fit.MIN_SUPPORT``.
+    mean_band_centre : ndarray of shape (n_grid,)
+        Centre of the mean's band: the mean corrected for its smoothing bias (robust bias
+        correction; the local quadratic fit at the mean's bandwidth). The band is
+        ``mean_band_centre +- multiplier x mean_se``.
     covariance : ndarray of shape (n_grid, n_grid)
         Smoothed covariance surface (off-diagonal raw covariances only); not positive
         semi-definite in general. ``retained_covariance`` is the display version.
@@ -145,6 +153,8 @@ class FPCAFit:
     grid: FloatArray
     mean: FloatArray
     mean_se: FloatArray
+    mean_band_centre: FloatArray
+    mean_support: IntArray
     covariance: FloatArray
     diagonal_variance: FloatArray
     eigenvalues: FloatArray

@@ -287,6 +287,36 @@ def equivalent_kernel_1d(
     return np.where(ok[:, None], weights, np.nan)
 
 
+def equivalent_kernel_quadratic_1d(
+    eval_x: FloatArray,
+    centers: FloatArray,
+    counts: FloatArray,
+    h: float,
+    kernel: Kernel = epanechnikov,
+) -> FloatArray:
+    """Local quadratic equivalent-kernel weights ``l(x, g)`` (estimate(x) = sum_g l(x, g)
+    sums_g), shape (n_eval, n_bins); rows are ``nan`` where the local design is singular.
+
+    With d = c_g - x: l(x, g) = K(d / h) (a0 + a1 u + a2 u^2), u = d / s, a = S^-1 e1 and
+    S the 3 x 3 matrix of the weighted moments sum_g counts_g K(d / h) u^(j+k) (Fan &
+    Gijbels 1996, sec. 3.1). The basis scale s = min(h, the bins' span) changes nothing
+    but the conditioning of S (the fitted value at x does not depend on it).
+    """
+    d = centers[None, :] - np.asarray(eval_x, dtype=np.float64)[:, None]
+    w = kernel(d / h)
+    u = d / min(h, max(float(np.ptp(centers)), 1e-300))
+    moments = [(w * u**j) @ counts for j in range(5)]
+    s = np.stack([np.stack(moments[j : j + 3], axis=-1) for j in range(3)], axis=-2)
+    ok = np.linalg.cond(s) < 1.0 / _SINGULAR_RTOL
+    a = np.full((s.shape[0], 3), np.nan)
+    if np.any(ok):
+        e1 = np.zeros((int(ok.sum()), 3, 1))
+        e1[:, 0, 0] = 1.0
+        a[ok] = np.linalg.solve(s[ok], e1)[..., 0]
+    out: FloatArray = w * (a[:, :1] + a[:, 1:2] * u + a[:, 2:3] * u * u)
+    return out
+
+
 def _poly_mul(
     f: dict[tuple[int, int], float], g: dict[tuple[int, int], float]
 ) -> dict[tuple[int, int], float]:

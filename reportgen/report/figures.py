@@ -154,8 +154,8 @@ def _mean(r: AnalysisResult) -> Drawn:
     level = _level(r)
     ax.fill_between(
         g,
-        fit.mean - zs * fit.mean_se,
-        fit.mean + zs * fit.mean_se,
+        fit.mean_band_centre - zs * fit.mean_se,
+        fit.mean_band_centre + zs * fit.mean_se,
         color=PALETTE[1],
         alpha=0.15,
         linewidth=0,
@@ -163,8 +163,8 @@ def _mean(r: AnalysisResult) -> Drawn:
     )
     ax.fill_between(
         g,
-        fit.mean - z * fit.mean_se,
-        fit.mean + z * fit.mean_se,
+        fit.mean_band_centre - z * fit.mean_se,
+        fit.mean_band_centre + z * fit.mean_se,
         color=PALETTE[1],
         alpha=0.3,
         linewidth=0,
@@ -178,7 +178,9 @@ def _mean(r: AnalysisResult) -> Drawn:
         fig,
         f"Mean curve with a pointwise {level} band (inner) and a simultaneous "
         f"{level} band (outer; holds at every time at once), both cluster-robust over "
-        f"subjects and without smoothing bias, over {drawn}.",
+        "subjects and corrected for the mean's smoothing bias (robust bias correction: "
+        "centred on a local quadratic fit at the mean's bandwidth, so a band may sit off "
+        f"the curve where it bends), over {drawn}.",
         "Grey density of readings against time with the mean curve and its two bands.",
     )
 
@@ -518,8 +520,8 @@ def _group_means(r: AnalysisResult) -> Drawn | None:
         style = ("-", "--", ":", "-.")[(i // len(PALETTE)) % 4]
         ax.fill_between(
             fit.grid,
-            g.means[i] - z * g.mean_se[i],
-            g.means[i] + z * g.mean_se[i],
+            g.band_centres[i] - z * g.mean_se[i],
+            g.band_centres[i] + z * g.mean_se[i],
             color=color,
             alpha=0.18,
             linewidth=0,

@@ -94,11 +94,12 @@ def build_tables(result: AnalysisResult) -> dict[str, pd.DataFrame]:
         {
             "time": fit.grid,
             "mean": fit.mean,
+            "band_centre": fit.mean_band_centre,
             "standard_error": fit.mean_se,
-            "lower": fit.mean - z * fit.mean_se,
-            "upper": fit.mean + z * fit.mean_se,
-            "lower_simultaneous": fit.mean - zs * fit.mean_se,
-            "upper_simultaneous": fit.mean + zs * fit.mean_se,
+            "lower": fit.mean_band_centre - z * fit.mean_se,
+            "upper": fit.mean_band_centre + z * fit.mean_se,
+            "lower_simultaneous": fit.mean_band_centre - zs * fit.mean_se,
+            "upper_simultaneous": fit.mean_band_centre + zs * fit.mean_se,
         }
     )
     n_all = fit.all_eigenvalues.size
@@ -215,9 +216,10 @@ def group_tables(result: AnalysisResult) -> dict[str, pd.DataFrame]:
             "group": np.repeat(list(g.labels), n_grid),
             "time": np.tile(fit.grid, len(g.labels)),
             "mean": g.means.ravel(),
+            "band_centre": g.band_centres.ravel(),
             "standard_error": g.mean_se.ravel(),
-            "lower": (g.means - z * g.mean_se).ravel(),
-            "upper": (g.means + z * g.mean_se).ravel(),
+            "lower": (g.band_centres - z * g.mean_se).ravel(),
+            "upper": (g.band_centres + z * g.mean_se).ravel(),
         }
     )
     return {"groups": summary, "group_means": means}

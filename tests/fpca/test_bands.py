@@ -68,3 +68,61 @@ def test_the_band_for_a_new_reading_adds_the_error_variance() -> None:
             np.testing.assert_allclose(got.upper_new_reading - got.fitted, expected, rtol=1e-9)
             np.testing.assert_allclose(got.fitted - got.lower_new_reading, expected, rtol=1e-9)
             assert np.all(got.upper_simultaneous >= got.upper - 1e-12)
+
+
+def test_the_local_quadratic_weights_are_weighted_least_squares() -> None:
+    # Reference: statsmodels WLS of y on (1, x - x0, (x - x0)^2) with Epanechnikov weights;
+    # its intercept is the local quadratic estimate at x0 (Fan & Gijbels 1996, sec. 3.1).
+    import statsmodels.api as sm
+
+    from reportgen.fpca.smoothing import epanechnikov, equivalent_kernel_quadratic_1d
+
+    rng = np.random.default_rng(0)
+    x = np.sort(rng.uniform(0, 1, 300))
+    y = np.sin(3 * x) + rng.normal(0, 0.1, 300)
+    at, h = np.array([0.0, 0.3, 0.5, 1.0]), 0.2
+    got = equivalent_kernel_quadratic_1d(at, x, np.ones_like(x), h) @ y
+    for x0, value in zip(at, got, strict=True):
+        w = epanechnikov((x - x0) / h)
+        m = w > 0
+        design = np.column_stack([np.ones(m.sum()), x[m] - x0, (x[m] - x0) ** 2])
+        ref = sm.WLS(y[m], design, weights=w[m]).fit().params[0]
+        assert abs(value - ref) < 1e-10
+
+
+def test_support_counts_each_subject_once_within_the_bandwidth() -> None:
+    # a direct count over subjects (common practice, no source)
+    from reportgen.fpca.design import Sample, subject_support
+
+    rng = np.random.default_rng(3)
+    codes = np.repeat(np.arange(40), rng.integers(1, 6, 40))
+    t = rng.uniform(0, 10, codes.size)
+    sample = Sample.from_arrays(codes, t, np.zeros_like(t))
+    grid, h = np.linspace(0, 10, 51), 1.3
+    direct = [
+        len({int(c) for c, tt in zip(sample.subject, sample.t, strict=True) if abs(tt - x) < h})
+        for x in grid
+    ]
+    np.testing.assert_array_equal(subject_support(sample, grid, h), direct)
+
+
+def test_no_band_where_too_few_subjects_support_the_mean() -> None:
+    # Readings of only three subjects after t = 0.8: the mean, the trajectories and the
+    # predictions carry no band there, and a caveat says where.
+    import pandas as pd
+
+    from reportgen import fit_sparse_fpca
+    from tests.designs import yao_design
+
+    frame = yao_design(150, seed=4)
+    late = frame.t > 0.8
+    keep = ~late | frame.id.isin(frame.id.unique()[:3])
+    fit = fit_sparse_fpca(frame[keep], subject="id", time="t", value="y", band="plugin")
+    thin = fit.mean_support < 10
+    assert thin.any() and np.all(np.isnan(fit.mean_se[thin]))
+    assert np.all(np.isfinite(fit.mean_se[~thin]))
+    assert any("fewer than 10 subjects have a reading" in w for w in fit.warnings)
+    traj = fit.trajectories(list(fit.subjects[:2]))
+    at_thin = traj.time.isin(fit.grid[thin])
+    assert traj.loc[at_thin, "upper"].isna().all() and traj.loc[~at_thin, "upper"].notna().all()
+    assert isinstance(fit.predict(frame[keep].head(30)), pd.DataFrame)

@@ -93,30 +93,38 @@ def test_permutations_shrink_only_for_very_many_subjects() -> None:
 
 def test_group_mean_is_the_common_mean_estimator(fitted) -> None:  # type: ignore[no-untyped-def]
     codes, t, y, _labels, fit = fitted
-    mean, se = group_mean(Sample.from_arrays(codes, t, y), fit)
+    mean, centre, se = group_mean(Sample.from_arrays(codes, t, y), fit)
     np.testing.assert_allclose(mean, fit.mean, rtol=1e-12)
+    np.testing.assert_allclose(centre, fit.mean_band_centre, rtol=1e-12)
     np.testing.assert_allclose(se, fit.mean_se, rtol=1e-10)
 
 
 def test_group_mean_at_a_huge_bandwidth_is_ols_with_cluster_robust_errors(
     dietox: pd.DataFrame,
 ) -> None:
-    # With every kernel weight equal, the local linear smoother is the least squares line
-    # and its cluster-robust variance is the sandwich of OLS clustered by subject
-    # (statsmodels, without the small-sample correction). Binning moves the line by
-    # (bin width)^2 terms, so the tolerance is loose.
+    # With every kernel weight equal, the local linear smoother is the least squares line,
+    # and the band's centre (robust bias correction at rho = 1: the local quadratic fit) is
+    # the least squares parabola (statsmodels OLS), its variance the sandwich clustered by
+    # subject, (X'X)^-1 X' (sum_i e_i e_i') X (X'X)^-1 with X the parabola's design and e
+    # the residuals about the mean curve (the line), written out with numpy. Binning moves
+    # the fits by (bin width)^2 terms, so the tolerances are loose.
     import statsmodels.api as sm
 
     codes, t, y, labels = arrays_from_frame(dietox, "Pig", "Time", "Weight")
     fit = fit_arrays(codes, t, y, labels, FPCAOptions(mean_bandwidth=1e7))
-    mean, se = group_mean(Sample.from_arrays(codes, t, y), fit)
-    ols = sm.OLS(y, sm.add_constant(t)).fit(
-        cov_type="cluster", cov_kwds={"groups": codes, "use_correction": False}
-    )
-    design = sm.add_constant(fit.grid)
-    np.testing.assert_allclose(mean, design @ ols.params, rtol=1e-4)
-    ref_se = np.sqrt(np.einsum("gi,ij,gj->g", design, ols.cov_params(), design))
-    np.testing.assert_allclose(se, ref_se, rtol=1e-3)
+    mean, centre, se = group_mean(Sample.from_arrays(codes, t, y), fit)
+    line = sm.OLS(y, sm.add_constant(t)).fit()
+    np.testing.assert_allclose(mean, sm.add_constant(fit.grid) @ line.params, rtol=1e-4)
+    quad = np.column_stack([np.ones_like(t), t, t * t])
+    parabola = sm.OLS(y, quad).fit()
+    design = np.column_stack([np.ones_like(fit.grid), fit.grid, fit.grid**2])
+    np.testing.assert_allclose(centre, design @ parabola.params, rtol=1e-4)
+    resid = y - line.fittedvalues
+    scores = np.stack([np.bincount(codes, quad[:, j] * resid) for j in range(3)], axis=1)
+    bread = np.linalg.inv(quad.T @ quad)
+    sandwich = bread @ (scores.T @ scores) @ bread
+    ref_se = np.sqrt(np.einsum("gi,ij,gj->g", design, sandwich, design))
+    np.testing.assert_allclose(se, ref_se, rtol=0.02)
 
 
 def test_compare_groups_orders_labels_and_counts(dietox: pd.DataFrame, fitted) -> None:  # type: ignore[no-untyped-def]

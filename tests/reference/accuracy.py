@@ -25,7 +25,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from reportgen import FPCAFit, fit_sparse_fpca
+from reportgen import EstimationError, FPCAFit, fit_sparse_fpca
 
 Fn = Callable[[np.ndarray], np.ndarray]
 ROOT = Path(__file__).resolve().parents[2]
@@ -43,20 +43,38 @@ class Design:
     sigma2: float
     readings: tuple[int, int]
     n: int
+    times: str = "uniform"  # or "early": Beta(1.2, 3) over the domain, few late readings
+    heavy_tails: bool = False  # errors t(4) and scores t(5), scaled to the same variances
+    read_until: float = 1.0  # readings only in the first share of the domain
+    fit_domain: bool = False  # the fit is told the whole domain (a planned study window)
+
+    def _times(self, rng: np.random.Generator, size: int) -> np.ndarray:
+        share = rng.beta(1.2, 3.0, size) if self.times == "early" else rng.uniform(0, 1, size)
+        return self.lo + (self.hi - self.lo) * self.read_until * share
+
+    def errors(self, rng: np.random.Generator, size: int) -> np.ndarray:
+        if self.heavy_tails:  # t(4) has variance 4 / 2
+            return np.sqrt(self.sigma2 / 2.0) * rng.standard_t(4, size)
+        return rng.normal(0, np.sqrt(self.sigma2), size)
 
     def sample(self, seed: int) -> tuple[pd.DataFrame, np.ndarray]:
         rng = np.random.default_rng(seed)
         m = rng.integers(self.readings[0], self.readings[1] + 1, self.n)
         subj = np.repeat(np.arange(self.n), m)
-        t = rng.uniform(self.lo, self.hi, subj.size)
-        xi = rng.normal(size=(self.n, len(self.eigenvalues))) * np.sqrt(self.eigenvalues)
-        phi = np.column_stack([f(t) for f in self.functions])
-        y = (
-            self.mean(t)
-            + np.sum(xi[subj] * phi, axis=1)
-            + rng.normal(0, np.sqrt(self.sigma2), t.size)
+        t = self._times(rng, subj.size)
+        k = len(self.eigenvalues)
+        raw = (
+            rng.standard_t(5, (self.n, k)) * np.sqrt(3 / 5)  # t(5) has variance 5 / 3
+            if self.heavy_tails
+            else rng.normal(size=(self.n, k))
         )
+        xi = raw * np.sqrt(self.eigenvalues)
+        phi = np.column_stack([f(t) for f in self.functions])
+        y = self.mean(t) + np.sum(xi[subj] * phi, axis=1) + self.errors(rng, t.size)
         return pd.DataFrame({"id": subj, "t": t, "y": y}), xi
+
+    def options(self) -> dict[str, object]:
+        return {"domain": [self.lo, self.hi]} if self.fit_domain else {}
 
     def truth(self, grid: np.ndarray, xi: np.ndarray) -> np.ndarray:
         phi = np.column_stack([f(grid) for f in self.functions])
@@ -65,6 +83,11 @@ class Design:
 
 def _cos(k: int) -> Fn:
     return lambda t: np.sqrt(2) * np.cos(k * np.pi * t)
+
+
+def _sin_half(k: int) -> Fn:
+    """sqrt2 sin((k - 1/2) pi t): orthonormal on [0, 1], largest at t = 1."""
+    return lambda t: np.sqrt(2) * np.sin((k - 0.5) * np.pi * t)
 
 
 COS3 = (_cos(1), _cos(2), _cos(3))
@@ -121,34 +144,130 @@ DESIGNS = {
         (5, 15),
         200,
     ),
+    # Three designs built to be hard for the bands:
+    "E": Design(
+        "E",
+        "[0,1], sqrt2 sin((k - 1/2) pi t) k=1..3 (largest at the late end), lambda (4, 2, 1), "
+        "sigma^2 0.5, mean 1 + t, 2-8 readings at Beta(1.2, 3) times (few late readings), "
+        "n 200",
+        0.0,
+        1.0,
+        lambda t: 1 + t,
+        (_sin_half(1), _sin_half(2), _sin_half(3)),
+        (4.0, 2.0, 1.0),
+        0.5,
+        (2, 8),
+        200,
+        times="early",
+    ),
+    "F": Design(
+        "F",
+        "as E with t(4) errors and t(5) scores (heavy tails, same variances)",
+        0.0,
+        1.0,
+        lambda t: 1 + t,
+        (_sin_half(1), _sin_half(2), _sin_half(3)),
+        (4.0, 2.0, 1.0),
+        0.5,
+        (2, 8),
+        200,
+        times="early",
+        heavy_tails=True,
+    ),
+    "G": Design(
+        "G",
+        "[0,40], a dominant intercept (constant mode, lambda 160: 96% of the variance) and "
+        "sqrt(2/40) cos(pi t/40) (lambda 6.67), sigma^2 0.5, mean 10 + 0.05 t, 1-6 readings, "
+        "n 300",
+        0.0,
+        40.0,
+        lambda t: 10 + 0.05 * t,
+        (
+            lambda t: np.full_like(t, 1 / np.sqrt(40)),
+            lambda t: np.sqrt(2 / 40) * np.cos(np.pi * t / 40),
+        ),
+        (160.0, 160.0 * 0.04 / 0.96),
+        0.5,
+        (1, 6),
+        300,
+    ),
+    "H": Design(
+        "H",
+        "as A, readings only in [0, 0.8], the fit told the domain [0, 1] (a planned window "
+        "wider than the readings)",
+        0.0,
+        1.0,
+        lambda t: 2 * t + np.sin(2 * np.pi * t),
+        COS3,
+        (2.0, 1.0, 0.5),
+        0.25,
+        (1, 5),
+        200,
+        read_until=0.8,
+        fit_domain=True,
+    ),
 }
 
 
-def _coverage(fit: FPCAFit, truth: np.ndarray) -> dict[str, float]:
+BAND_KINDS = ("default", "plugin")  # default: band auto (corrected up to 10,000 subjects)
+
+
+def _band_coverage(fit: FPCAFit, design: Design, truth: np.ndarray, seed: int) -> dict[str, float]:
+    """Coverage of the true curves by each band of ``fit`` (nan where no band is drawn)."""
     traj = fit.trajectories()
     shape = (fit.n_subjects, fit.grid.size)
-    lo, hi = traj.lower.to_numpy().reshape(shape), traj.upper.to_numpy().reshape(shape)
-    slo = traj.lower_simultaneous.to_numpy().reshape(shape)
-    shi = traj.upper_simultaneous.to_numpy().reshape(shape)
-    inside = (truth >= lo) & (truth <= hi)
-    whole = np.all((truth >= slo) & (truth <= shi), axis=1)
+
+    def col(name: str) -> np.ndarray:
+        return traj[name].to_numpy(dtype=float).reshape(shape)
+
+    lo, hi = col("lower"), col("upper")
+    drawn = ~np.isnan(lo[0])  # grid times with a band (enough subjects behind the mean)
+    if not np.any(drawn):
+        return {"drawn": 0.0}
+    inside = ((truth >= lo) & (truth <= hi))[:, drawn]
+    slo, shi = col("lower_simultaneous")[:, drawn], col("upper_simultaneous")[:, drawn]
+    whole = np.all((truth[:, drawn] >= slo) & (truth[:, drawn] <= shi), axis=1)
+    # a new reading per subject at a random grid time with a band: the true curve there
+    # plus an error from the design's distribution
+    rng = np.random.default_rng([seed, 99])
+    times = np.flatnonzero(drawn)
+    at = times[rng.integers(0, times.size, fit.n_subjects)]
+    rows = np.arange(fit.n_subjects)
+    new = truth[rows, at] + design.errors(rng, fit.n_subjects)
+    reading = (new >= col("lower_new_reading")[rows, at]) & (
+        new <= col("upper_new_reading")[rows, at]
+    )
+    thirds = np.array_split(np.arange(fit.grid.size), 3)
+    full = ((truth >= lo) & (truth <= hi)).astype(float)
+    full[:, ~drawn] = np.nan
     return {
+        "drawn": float(drawn.mean()),
         "pointwise": float(inside.mean()),
-        "simultaneous_whole": float(whole.mean()),
-        "pointwise_whole": float(np.all(inside, axis=1).mean()),
+        **{f"third{j + 1}": float(np.nanmean(full[:, idx])) for j, idx in enumerate(thirds)},
+        "whole": float(whole.mean()),
+        "new_reading": float(reading.mean()),
+        "width": float(np.nanmean(hi - lo)),
     }
 
 
 def _mean_coverage(fit: FPCAFit, design: Design) -> tuple[float, float]:
     true = design.mean(fit.grid)
     z = fit.band_multiplier()
-    point = np.abs(fit.mean - true) <= z * fit.mean_se
-    simul = np.all(np.abs(fit.mean - true) <= fit.mean_simultaneous_multiplier * fit.mean_se)
+    drawn = ~np.isnan(fit.mean_se)  # no band where too few subjects support the mean
+    gap = np.abs(fit.mean_band_centre - true)[drawn]
+    point = gap <= z * fit.mean_se[drawn]
+    simul = np.all(gap <= fit.mean_simultaneous_multiplier * fit.mean_se[drawn])
     return float(point.mean()), float(simul)
 
 
-# Corrected bands cost bootstrap_replicates (50) refits each: measured on the small designs.
-CORRECTED_MAX_N = 500
+def _l2_error(fit: FPCAFit, design: Design, k: int) -> float:
+    """L2 distance of the k-th estimated eigenfunction from the truth, sign-aligned."""
+    if k >= min(fit.n_components, len(design.functions)):
+        return np.nan
+    true = design.functions[k](fit.grid)
+    est = fit.eigenfunctions[:, k]
+    est = est if np.trapezoid(est * true, fit.grid) >= 0 else -est
+    return float(np.sqrt(np.trapezoid((est - true) ** 2, fit.grid)))
 
 
 def _fit(frame: pd.DataFrame, **options: object) -> FPCAFit:
@@ -156,10 +275,25 @@ def _fit(frame: pd.DataFrame, **options: object) -> FPCAFit:
 
 
 def run_design(design: Design, seeds: int) -> dict[str, object]:
-    rows = []
+    rows, bands = [], []
+    refused = 0
     for seed in range(seeds):
         frame, xi = design.sample(seed)
-        fit = _fit(frame)
+        fits = {}
+        for kind in BAND_KINDS:
+            extra = {} if kind == "default" else {"band": kind}
+            started = time.perf_counter()
+            try:
+                fits[kind] = _fit(frame, **design.options(), **extra)
+            except EstimationError:
+                refused += kind == "default"
+                continue
+            cover = _band_coverage(fits[kind], design, design.truth(fits[kind].grid, xi), seed)
+            cover["seconds"] = time.perf_counter() - started
+            bands.append({"kind": kind, "chosen": fits[kind].band.kind, **cover})
+        fit = fits.get("default")
+        if fit is None:
+            continue
         truth_k = len(design.eigenvalues)
         lam = [
             fit.all_eigenvalues[k] / design.eigenvalues[k]
@@ -172,10 +306,6 @@ def run_design(design: Design, seeds: int) -> dict[str, object]:
             rule: int(sel.k[np.nanargmin(crit)])
             for rule, crit in (("aic", sel.aic), ("bic", sel.bic), ("cv", sel.cv))
         }
-        cov = _coverage(fit, design.truth(fit.grid, xi))
-        if design.n <= CORRECTED_MAX_N:
-            corrected = _coverage(_fit(frame, band="corrected"), design.truth(fit.grid, xi))
-            cov.update({f"corrected_{k}": v for k, v in corrected.items()})
         mp, ms = _mean_coverage(fit, design)
         rows.append(
             {
@@ -183,9 +313,9 @@ def run_design(design: Design, seeds: int) -> dict[str, object]:
                 "smooth": fit.smoothing_error_variance / design.sigma2,
                 "not_positive": fit.smoothing_error_variance <= 0,
                 **{f"lambda{k + 1}": v for k, v in enumerate(lam)},
+                "phi2": _l2_error(fit, design, 1),
                 "K_fve": fit.n_components,
                 **{f"K_{r}": v for r, v in picks.items()},
-                **cov,
                 "mean_pointwise": mp,
                 "mean_simultaneous": ms,
                 "h_cov": fit.covariance_bandwidth / (design.hi - design.lo),
@@ -193,7 +323,12 @@ def run_design(design: Design, seeds: int) -> dict[str, object]:
                 >= 0.999 * max(fit.covariance_bandwidth_choice.candidates or (np.inf,)),
             }
         )
-    return {"design": design, "rows": pd.DataFrame(rows)}
+    return {
+        "design": design,
+        "rows": pd.DataFrame(rows),
+        "bands": pd.DataFrame(bands),
+        "refused": refused,
+    }
 
 
 def _q(col: pd.Series) -> str:
@@ -235,91 +370,160 @@ def clinic() -> tuple[float, float]:
 NOTES = [
     "How to read it:",
     "",
+    "- 'default' is the band a run draws with default options (band: auto: corrected up to "
+    "10,000 subjects, so corrected on every design here; 'chosen' says which it was); "
+    "'plugin' takes the mean, eigenfunctions and variances as known. Pointwise: the share "
+    "of grid times (over all subjects) where the true curve is inside the pointwise band, "
+    "and per third of the domain; whole curves: the share of subjects whose whole true curve "
+    "lies inside the simultaneous band; new reading: the share of new readings (one per "
+    "subject, at a random grid time, with the design's error) inside the new-reading band. "
+    "Seconds: one fit with its bands for every subject.",
     "- The smoothing estimate of sigma^2 (a difference of two smoothed curves) is only the "
     "starting point of the likelihood refinement; 'not positive' counts fits where it was 0 "
-    "or below. No fit is floored.",
+    "or below. No fit is floored. 'refused': seeds whose fit stopped with an error "
+    "(EstimationError) rather than give an answer.",
     "- 'K by ...' lists K:count over the seeds. AIC and cv pick more components than the "
     "designs have, BIC less so: the eigenfunctions are estimated from the same data, and "
     "extra ones absorb real variance their estimated shapes miss (cf. Li, Wang & Carroll "
-    "2013, JASA 108:1284-1294, on criteria for the number of components; from memory). FVE "
-    "stays the default rule; the report says when the rules disagree.",
-    "- Plug-in bands take the population quantities as known; corrected bands add their "
-    "estimation by refits on resampled subjects (Goldsmith, Greven & Crainiceanu 2013). "
-    "Simultaneous bands use the chi-square quantile over the components; the share of whole "
-    "curves inside them is their coverage. The default band is the plug-in one: it reaches "
-    "nominal pointwise coverage in B, C and D and 0.91 in the sparsest design A, at no cost; "
-    "the corrected band reaches 0.95 there for 50 refits.",
-    "- The mean's bands are cluster-robust but leave out smoothing bias, which shows in A "
-    "(a sin 2 pi t mean seen through 600 readings).",
+    "2013, JASA 108:1284-1294, on criteria for the number of components; from memory).",
+    "- The mean's bands are cluster-robust but leave out smoothing bias.",
     "- The candidate bandwidths reach half the domain; when the criterion is smallest there "
-    "the search continues up to twice the domain length (the limit). In D the true "
-    "covariance is bilinear in (s, t), which a wide local linear fit reproduces, and the "
-    "chosen covariance bandwidth is often above half the domain; in C the surface is nearly "
-    "flat. 'at the limit' counts fits whose criterion still fell at the limit. The refined "
-    "sigma^2 does not depend on that bandwidth (see the factors table).",
+    "the search continues up to twice the domain length (the limit). 'at the limit' counts "
+    "fits whose criterion still fell at the limit. The refined sigma^2 does not depend on "
+    "that bandwidth (see the factors table).",
 ]
 
+# The coverage targets the default band is held to (issue acceptance; common practice for a
+# nominal 95% band, no source).
+TARGETS = (
+    ("pointwise median in [0.93, 0.97]", lambda b, r: 0.93 <= b.pointwise.median() <= 0.97),
+    (
+        "each third's median >= 0.92",
+        lambda b, r: min(b[f"third{j}"].median() for j in (1, 2, 3)) >= 0.92,
+    ),
+    (
+        "whole curves: median >= 0.92, 10th percentile >= 0.80",
+        lambda b, r: b.whole.median() >= 0.92 and b.whole.quantile(0.1) >= 0.80,
+    ),
+    ("whole mean inside in >= 0.90 of seeds", lambda b, r: r.mean_simultaneous.mean() >= 0.90),
+    (
+        "new readings: median in [0.93, 0.97]",
+        lambda b, r: 0.93 <= b.new_reading.median() <= 0.97,
+    ),
+)
 
-def main(seeds: int = 20, write: bool = False) -> str:
+
+def _one(key: str, seeds: int) -> dict[str, object]:
+    out = run_design(DESIGNS[key], seeds)
+    del out["design"]  # its functions do not cross to another process
+    return out
+
+
+def main(seeds: int = 20, write: bool = False, only: str = "") -> str:
+    from concurrent.futures import ProcessPoolExecutor
+
     start = time.perf_counter()
+    keys = [k for k in DESIGNS if not only or k in only]
+    with ProcessPoolExecutor(max_workers=2) as pool:
+        results = dict(zip(keys, pool.map(_one, keys, [seeds] * len(keys)), strict=True))
     lines = [
         "# Accuracy against known truth",
         "",
         f"Made by `python -m tests.reference.accuracy --seeds {seeds} --write` "
         "(default options). Each cell: median [10th, 90th percentile] over "
-        f"{seeds} seeds of estimate / truth, unless it says otherwise.",
+        f"{seeds} seeds, of estimate / truth unless it says otherwise.",
         "",
-        "| design | sigma^2 (refined) | sigma^2 (smoothing) | not positive | "
-        + "lambda_1 | lambda_2 | lambda_3 | K by fve / aic / bic / cv | "
-        "plug-in band: pointwise | plug-in: whole curve in pointwise | plug-in: whole "
-        "curve in simultaneous | corrected band: pointwise | corrected: whole curve in "
-        "simultaneous | mean: pointwise | mean: whole curve in simultaneous | "
+        "## Bands",
+        "",
+        "| design | band (chosen) | grid with a band | pointwise | first third | middle third | "
+        "last third | whole curves in simultaneous | new reading in its band | mean width | "
+        "seconds |",
+        "|" + "---|" * 11,
+    ]
+    for key, res in results.items():
+        b = res["bands"]
+        assert isinstance(b, pd.DataFrame)
+        for kind in BAND_KINDS:
+            part = b[b.kind == kind] if len(b) else b
+            if not len(part):
+                continue
+            drawn = part[part.drawn > 0.0]
+            chosen = ", ".join(f"{c} {n}" for c, n in part.chosen.value_counts().items())
+            cells = (
+                [
+                    f"{drawn.drawn.median():.2f}",
+                    _q(drawn.pointwise),
+                    *(f"{drawn[f'third{j}'].median():.2f}" for j in (1, 2, 3)),
+                    _q(drawn.whole),
+                    _q(drawn.new_reading),
+                    f"{drawn.width.median():.3g}",
+                ]
+                if len(drawn)
+                else ["no band"] * 8
+            )
+            lines.append(
+                f"| {key} | {kind} ({chosen}) | {' | '.join(cells)} | {part.seconds.median():.2f} |"
+            )
+    lines += [
+        "",
+        "The default band against its targets:",
+        "",
+        "| design | " + " | ".join(name for name, _ in TARGETS) + " |",
+        "|" + "---|" * (len(TARGETS) + 1),
+    ]
+    for key, res in results.items():
+        b, r = res["bands"], res["rows"]
+        assert isinstance(b, pd.DataFrame) and isinstance(r, pd.DataFrame)
+        d = b[(b.kind == "default") & (b.drawn > 0.0)] if len(b) else b
+        verdicts = [
+            ("met" if len(d) and len(r) and test(d, r) else "NOT met") for _, test in TARGETS
+        ]
+        lines.append(f"| {key} | " + " | ".join(verdicts) + " |")
+    lines += [
+        "",
+        "## Estimates",
+        "",
+        "| design | refused | sigma^2 (refined) | sigma^2 (smoothing) | not positive | "
+        "lambda_1 | lambda_2 | lambda_3 | phi_2: L2 error | K by fve / aic / bic / cv | "
+        "mean: pointwise | mean: whole curve in simultaneous | "
         "cov. bandwidth / domain length | cov. bandwidth at the limit |",
-        "|" + "---|" * 18,
+        "|" + "---|" * 14,
     ]
     details = []
-    for key, design in DESIGNS.items():
-        res = run_design(design, seeds)
-        r = res["rows"]
-        assert isinstance(r, pd.DataFrame)
+    for key, res in results.items():
+        design, r = DESIGNS[key], res["rows"]
+        assert isinstance(r, pd.DataFrame) and isinstance(design, Design)
+        details.append(f"- {key}: {design.text}; true K = {len(design.eigenvalues)}.")
+        if not len(r):
+            lines.append(f"| {key} | {res['refused']} |" + " - |" * 12)
+            continue
         lam = [(_q(r[f"lambda{k + 1}"]) if f"lambda{k + 1}" in r else "-") for k in range(3)]
         ks = " / ".join(_counts(r[f"K_{x}"]) for x in ("fve", "aic", "bic", "cv"))
         lines.append(
-            f"| {key} | {_q(r.sigma2)} | {_q(r.smooth)} | {int(r.not_positive.sum())} | "
-            f"{' | '.join(lam)} | {ks} | {_q(r.pointwise)} | {_q(r.pointwise_whole)} | "
-            f"{_q(r.simultaneous_whole)} | "
-            + (
-                f"{_q(r.corrected_pointwise)} | {_q(r.corrected_simultaneous_whole)} | "
-                if "corrected_pointwise" in r
-                else "not run | not run | "
-            )
-            + f"{_q(r.mean_pointwise)} | "
-            f"{r.mean_simultaneous.mean():.2f} | {_q(r.h_cov)} | {int(r.h_cov_top.sum())} |"
+            f"| {key} | {res['refused']} | {_q(r.sigma2)} | {_q(r.smooth)} | "
+            f"{int(r.not_positive.sum())} | {' | '.join(lam)} | {_q(r.phi2)} | {ks} | "
+            f"{_q(r.mean_pointwise)} | {r.mean_simultaneous.mean():.2f} | {_q(r.h_cov)} | "
+            f"{int(r.h_cov_top.sum())} |"
         )
-        details.append(f"- {key}: {design.text}; true K = {len(design.eigenvalues)}.")
-    sens = sensitivity_c(seeds)
-    lines += [
-        "",
-        "Designs:",
-        *details,
-        "",
-        "Design C with all three bandwidths fixed at a factor times the chosen ones "
-        "(refined sigma^2 / truth):",
-        "",
-        "| factor | sigma^2 |",
-        "|---|---|",
-    ]
-    lines += [f"| {f:g} | {_q(v)} |" for f, v in sens.items()]
-    est, smooth = clinic()
-    lines += [
-        "",
-        f"Clinic example (specs/clinic_visits.yaml; generating sigma^2 2.25): refined "
-        f"{est:.3f}, smoothing estimate {smooth:.3f}.",
-        "",
-        f"Wall time {time.perf_counter() - start:.0f} s.",
-        "",
-        *NOTES,
-    ]
+    lines += ["", "Designs:", *details]
+    if not only:
+        sens = sensitivity_c(seeds)
+        lines += [
+            "",
+            "Design C with all three bandwidths fixed at a factor times the chosen ones "
+            "(refined sigma^2 / truth):",
+            "",
+            "| factor | sigma^2 |",
+            "|---|---|",
+        ]
+        lines += [f"| {f:g} | {_q(v)} |" for f, v in sens.items()]
+        est, smooth = clinic()
+        lines += [
+            "",
+            f"Clinic example (specs/clinic_visits.yaml; generating sigma^2 2.25): refined "
+            f"{est:.3f}, smoothing estimate {smooth:.3f}.",
+        ]
+    lines += ["", f"Wall time {time.perf_counter() - start:.0f} s (2 processes).", "", *NOTES]
     text = "\n".join(lines) + "\n"
     if write:
         (ROOT / "benchmarks" / "ACCURACY.md").write_text(text, encoding="utf-8")
@@ -330,5 +534,6 @@ if __name__ == "__main__":
     parser = argparse.ArgumentParser()
     parser.add_argument("--seeds", type=int, default=20)
     parser.add_argument("--write", action="store_true")
+    parser.add_argument("--only", default="", help="design letters, e.g. EFG (not written)")
     args = parser.parse_args()
-    print(main(args.seeds, args.write))
+    print(main(args.seeds, args.write and not args.only, args.only))
