@@ -35,7 +35,8 @@ def _numeric(frame: pd.DataFrame, column: str, role: str) -> FloatArray:
 def arrays_from_frame(
     frame: pd.DataFrame, subject: str, time: str, value: str
 ) -> tuple[IntArray, FloatArray, FloatArray, np.ndarray]:
-    """Subject codes, times, values and subject labels (sorted) from a long frame.
+    """Subject codes, times, values and subject labels (in the order of the ids' text) from a
+    long frame.
 
     Rows are numbered from 1 in messages, in the frame's order.
     """
@@ -54,8 +55,11 @@ def arrays_from_frame(
     if ids.isna().any():
         row = int(np.flatnonzero(ids.isna().to_numpy())[0])
         raise DataError(f"subject column {subject!r} is empty at row {row + 1}")
-    try:
-        codes, labels = pd.factorize(ids, sort=True)
-    except TypeError:  # mixed id types cannot be sorted; keep first-seen order
-        codes, labels = pd.factorize(ids, sort=False)
-    return codes.astype(np.intp), t, y, np.asarray(labels)
+    # Subjects are coded in the order of their ids' text, whatever their type, so that the
+    # same ids written as integers or as text get the same codes, hence the same folds,
+    # samples and resamples, and the same numbers (as the spec's reader, which reads ids
+    # as text). The labels keep the ids as given.
+    codes, _ = pd.factorize(ids.astype(str), sort=True)
+    first = np.zeros(int(codes.max()) + 1, dtype=np.intp)
+    first[codes[::-1]] = np.arange(codes.size - 1, -1, -1)
+    return codes.astype(np.intp), t, y, np.asarray(ids.to_numpy()[first])

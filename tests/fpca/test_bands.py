@@ -126,3 +126,24 @@ def test_no_band_where_too_few_subjects_support_the_mean() -> None:
     at_thin = traj.time.isin(fit.grid[thin])
     assert traj.loc[at_thin, "upper"].isna().all() and traj.loc[~at_thin, "upper"].notna().all()
     assert isinstance(fit.predict(frame[keep].head(30)), pd.DataFrame)
+
+
+def test_the_numbers_do_not_depend_on_how_the_ids_are_written() -> None:
+    # The same readings with ids as integers and as text: the same folds, resamples and
+    # numbers (common practice, no source: an analysis must not depend on a storage type).
+    from reportgen import fit_sparse_fpca
+    from tests.designs import yao_design
+
+    frame = yao_design(120, seed=8)
+    as_int = frame.assign(id=frame.id.astype(int) * 7 + 3)  # 3, 10, 17, ...: sorts apart
+    as_text = as_int.assign(id=as_int.id.astype(str))
+    a = fit_sparse_fpca(as_int, subject="id", time="t", value="y", bootstrap_replicates=20)
+    b = fit_sparse_fpca(as_text, subject="id", time="t", value="y", bootstrap_replicates=20)
+    assert a.n_components == b.n_components
+    assert (a.mean_bandwidth, a.covariance_bandwidth) == (b.mean_bandwidth, b.covariance_bandwidth)
+    np.testing.assert_array_equal(a.all_eigenvalues, b.all_eigenvalues)
+    assert a.error_variance == b.error_variance
+    assert [str(s) for s in a.subjects] == list(b.subjects)
+    np.testing.assert_array_equal(a.score_values, b.score_values)
+    ta, tb = a.trajectories([a.subjects[4]]), b.trajectories([b.subjects[4]])
+    np.testing.assert_array_equal(ta.upper_simultaneous, tb.upper_simultaneous)

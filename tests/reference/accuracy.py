@@ -288,7 +288,10 @@ def run_design(design: Design, seeds: int) -> dict[str, object]:
             except EstimationError:
                 refused += kind == "default"
                 continue
-            cover = _band_coverage(fits[kind], design, design.truth(fits[kind].grid, xi), seed)
+            # the fit's subjects are in the order of their ids' text: the truth likewise
+            order = np.asarray(fits[kind].subjects, dtype=int)
+            truth = design.truth(fits[kind].grid, xi[order])
+            cover = _band_coverage(fits[kind], design, truth, seed)
             cover["seconds"] = time.perf_counter() - started
             bands.append({"kind": kind, "chosen": fits[kind].band.kind, **cover})
         fit = fits.get("default")
