@@ -17,6 +17,7 @@ import pytest
 from reportgen import load_fit
 from reportgen.cli import main
 from reportgen.errors import RecordError
+from reportgen.fpca.predictor import BAND_COLUMNS
 
 pytestmark = pytest.mark.slow
 
@@ -62,15 +63,7 @@ def test_predicting_the_runs_own_subjects_gives_its_scores_and_bands(
     both = traj.merge(pred, on=["subject", "time"], suffixes=("", "_p"))
     assert len(both) == len(traj)
     assert (run / "tables" / "model_resamples.csv").is_file()  # band: auto corrected it
-    for col in (
-        "fitted",
-        "lower",
-        "upper",
-        "lower_simultaneous",
-        "upper_simultaneous",
-        "lower_new_reading",
-        "upper_new_reading",
-    ):
+    for col in ("fitted", *BAND_COLUMNS):
         np.testing.assert_allclose(both[col + "_p"], both[col], rtol=1e-8)
 
 
