@@ -322,14 +322,20 @@ def _fit(
         if population_only
         else data.support(grid, mean_choice.value)
     )
-    supported = support >= MIN_SUPPORT
+    inside = (grid >= data.t_min) & (grid <= data.t_max)  # beyond the readings: extrapolated
+    supported = (support >= MIN_SUPPORT) & inside
     mean_se = np.where(supported, mean_se, np.nan)
     if not np.all(supported):
         messages.append(
-            f"fewer than {MIN_SUPPORT} subjects have a reading within the mean's bandwidth at "
-            f"{int(np.sum(~supported))} of {grid.size} grid times "
-            f"({_spans(grid, ~supported)}); no band is drawn there, for the mean or the "
-            "trajectories: a cluster-robust variance from so few subjects is too small"
+            f"no band is drawn at {int(np.sum(~supported))} of {grid.size} grid times "
+            f"({_spans(grid, ~supported)}), for the mean or the trajectories: there fewer "
+            f"than {MIN_SUPPORT} subjects have a reading within the mean's bandwidth (a "
+            "cluster-robust variance from so few subjects is too small)"
+            + (
+                ", or the time lies outside the readings' range (the curves there are extrapolated)"
+                if not np.all(inside)
+                else ""
+            )
         )
     if uncorrected:
         messages.append(

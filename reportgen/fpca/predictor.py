@@ -74,7 +74,8 @@ class Predictor:
     simultaneous_dof : int
         Components entering a band's variance (degrees of freedom of the simultaneous one).
     supported : ndarray of shape (n_grid,) or None
-        1 where at least ``MIN_SUPPORT`` subjects have a reading within the mean's bandwidth,
+        1 where at least ``fit.MIN_SUPPORT`` subjects have a reading within the mean's bandwidth
+        and the time lies within the readings' range,
         0 elsewhere: no band is drawn at the unsupported times (None: every time supported).
     """
 

@@ -121,7 +121,10 @@ def test_no_band_where_too_few_subjects_support_the_mean() -> None:
     thin = fit.mean_support < 10
     assert thin.any() and np.all(np.isnan(fit.mean_se[thin]))
     assert np.all(np.isfinite(fit.mean_se[~thin]))
-    assert any("fewer than 10 subjects have a reading" in w for w in fit.warnings)
+    assert any(
+        "no band is drawn at" in w and "fewer than 10 subjects have a reading" in w
+        for w in fit.warnings
+    )
     traj = fit.trajectories(list(fit.subjects[:2]))
     at_thin = traj.time.isin(fit.grid[thin])
     assert traj.loc[at_thin, "upper"].isna().all() and traj.loc[~at_thin, "upper"].notna().all()
@@ -147,3 +150,20 @@ def test_the_numbers_do_not_depend_on_how_the_ids_are_written() -> None:
     np.testing.assert_array_equal(a.score_values, b.score_values)
     ta, tb = a.trajectories([a.subjects[4]]), b.trajectories([b.subjects[4]])
     np.testing.assert_array_equal(ta.upper_simultaneous, tb.upper_simultaneous)
+
+
+def test_no_band_beyond_the_readings_when_the_domain_is_wider() -> None:
+    # A planned window wider than the readings: the curves past the last reading are
+    # extrapolated, and no band claims to cover them (common practice, no source).
+    from reportgen import fit_sparse_fpca
+    from tests.reference.accuracy import DESIGNS
+
+    frame, _ = DESIGNS["H"].sample(0)  # readings in [0, 0.8] only
+    fit = fit_sparse_fpca(
+        frame, subject="id", time="t", value="y", band="plugin", domain=[0.0, 1.0]
+    )
+    beyond = fit.grid > frame.t.max()
+    assert beyond.any() and np.all(np.isnan(fit.mean_se[beyond]))
+    assert any("outside the readings' range" in w for w in fit.warnings)
+    traj = fit.trajectories(list(fit.subjects[:2]))
+    assert traj.loc[traj.time > frame.t.max(), "lower_simultaneous"].isna().all()
