@@ -322,7 +322,9 @@ def _fit(
         if population_only
         else data.support(grid, mean_choice.value)
     )
-    inside = (grid >= data.t_min) & (grid <= data.t_max)  # beyond the readings: extrapolated
+    # more than a grid step beyond the readings, the curves are extrapolated
+    step = (hi - lo) / max(grid.size - 1, 1)
+    inside = (grid >= data.t_min - step) & (grid <= data.t_max + step)
     supported = (support >= MIN_SUPPORT) & inside
     mean_se = np.where(supported, mean_se, np.nan)
     if not np.all(supported):
