@@ -43,7 +43,7 @@ from .design import BinnedStats, PairStats, Sample, assign_folds, seeded_sample
 from .likelihood import LikelihoodFit, maximise, starting_error_variance
 from .options import FPCAOptions
 from .plan import Part, Partitioned, PartResults, ResidualSize
-from .predictor import Predictor
+from .predictor import Predictor, corrected_bands
 from .result import BandChoice, FPCAFit, Labels, as_labels, frozen
 from .scores import sample_terms
 from .selection import fixed_selection, select_components
@@ -515,25 +515,58 @@ WIDER = (1.5, 2.25, 3.375)
 def _with_band(fit: FPCAFit, data: Partitioned) -> FPCAFit:
     asked = fit.options.band
     n = data.n_subjects
-    if asked == "plugin" or (asked == "auto" and n > AUTO_CORRECTED_MAX_SUBJECTS):
+    if asked == "plugin":
+        return replace(fit, band=BandChoice("plugin", asked, "asked for (model.band: plugin)"))
+    if asked == "auto" and n > AUTO_CORRECTED_MAX_SUBJECTS:
+        ratio = _width_ratio(fit, data)
         reason = (
-            "asked for (model.band: plugin)"
-            if asked == "plugin"
-            else f"{n} subjects, above the {AUTO_CORRECTED_MAX_SUBJECTS} up to which "
-            "band: auto corrects the band"
+            f"{n} subjects, above the {AUTO_CORRECTED_MAX_SUBJECTS} up to which band: auto "
+            f"corrects the band; measured here, the corrected band would be {ratio:.3f} times "
+            f"as wide ({WIDTH_REFITS} refits on resamples of {WIDTH_SAMPLE} subjects, the "
+            "added variance scaled by 1/n to the whole study)"
         )
-        return replace(fit, band=BandChoice("plugin", asked, reason))
+        return replace(fit, band=BandChoice("plugin", asked, reason, width_ratio=ratio))
     return _with_replicates(fit, data)
 
 
-def _with_replicates(fit: FPCAFit, data: Partitioned) -> FPCAFit:
-    """Refit the population quantities on resampled subjects (``predictor.corrected_bands``).
+# What band: auto measures when it draws the plug-in band: the corrected band's width over
+# the plug-in one, from refits on resamples of a seeded sample of subjects (a few seconds).
+WIDTH_SAMPLE = 2000
+WIDTH_REFITS = 10
+_WIDTH_SUBJECTS = 200  # the subjects whose bands are compared
 
-    Each replicate keeps the main fit's domain and number of components, and its three
-    bandwidths; a resample that cannot be fitted at them is fitted at the multiples
-    ``WIDER`` of them (counted as widened). Fewer than ``MIN_RESAMPLES`` fitted and the
-    band is unavailable (``BandChoice``).
+
+def _width_ratio(fit: FPCAFit, data: Partitioned) -> float:
+    """The corrected over the plug-in band's width (median over sampled subjects), scaled
+    to the study's size.
+
+    The refits' spread is the population quantities' estimation variance, of order 1/n:
+    measured on resamples of m subjects, the excess of the squared ratio over 1 is scaled
+    by m / n (``benchmarks/BANDS.md`` has the law checked at several sizes).
     """
+    n = data.n_subjects
+    chosen = seeded_sample(n, WIDTH_SAMPLE, fit.options.seed)
+    m = chosen.size
+    mbins = BinGrid(float(fit.grid[0]), float(fit.grid[-1]), fit.options.mean_bins)
+    sample, _ = data.gather(chosen, fit.predictor.mean_value, mbins)
+    sub = Partitioned.local([Part(sample, np.arange(m, dtype=np.intp))])
+    reps = _refits(fit, sub, WIDTH_REFITS)[0]
+    if len(reps) < 2:
+        return float("nan")
+    test = sample.subset(np.arange(min(_WIDTH_SUBJECTS, m), dtype=np.intp))
+    scores, cov = fit.predictor.scores(test)
+    plug = fit.predictor.curve_variance(cov)
+    corrected, _ = corrected_bands(
+        tuple(reps), fit.predictor.fitted(scores), test, fit.options.band_level
+    )
+    excess = float(np.median(np.mean(corrected, axis=1) / np.mean(plug, axis=1))) - 1.0
+    return float(np.sqrt(1.0 + max(excess, 0.0) * m / n))
+
+
+def _refits(fit: FPCAFit, data: Partitioned, count: int) -> tuple[list[Predictor], int]:
+    """``count`` refits of the population quantities on subjects of ``data`` resampled with
+    replacement, each at the main fit's domain, K and bandwidths, or at the multiples
+    ``WIDER`` of the bandwidths when those fail (returns the refits and how many widened)."""
     opts = replace(
         fit.options,
         domain=(float(fit.grid[0]), float(fit.grid[-1])),
@@ -547,8 +580,7 @@ def _with_replicates(fit: FPCAFit, data: Partitioned) -> FPCAFit:
     labels = np.arange(n)
     reps: list[Predictor] = []
     widened = 0
-    asked = fit.options.bootstrap_replicates
-    for _ in range(asked):
+    for _ in range(count):
         drawn = data.resample(rng.integers(0, n, n))  # subjects with replacement
         for factor in (1.0, *WIDER):
             try:
@@ -564,6 +596,19 @@ def _with_replicates(fit: FPCAFit, data: Partitioned) -> FPCAFit:
             # each resample's predictor, its mean on the main grid
             reps.append(replace(rf.predictor, mean_time=rf.grid, mean_value=rf.mean))
             break
+    return reps, widened
+
+
+def _with_replicates(fit: FPCAFit, data: Partitioned) -> FPCAFit:
+    """Refit the population quantities on resampled subjects (``predictor.corrected_bands``).
+
+    Each replicate keeps the main fit's domain and number of components, and its three
+    bandwidths; a resample that cannot be fitted at them is fitted at the multiples
+    ``WIDER`` of them (counted as widened). Fewer than ``MIN_RESAMPLES`` fitted and the
+    band is unavailable (``BandChoice``).
+    """
+    asked = fit.options.bootstrap_replicates
+    reps, widened = _refits(fit, data, asked)
     used = len(reps)
     why = f"{used} of {asked} resamples of subjects fitted" + (
         f" ({widened} at wider bandwidths)" if widened else ""

@@ -65,6 +65,7 @@ class BandChoice:
     resamples: int = 0
     used: int = 0
     widened: int = 0
+    width_ratio: float = float("nan")  # band auto, plug-in: the corrected band's width ratio
 
 
 @dataclass(frozen=True)

@@ -5,6 +5,7 @@ Reference for the quantiles: scipy.stats (norm, chi2)."""
 from __future__ import annotations
 
 import numpy as np
+import pytest
 from scipy import stats
 
 from reportgen.fpca.predictor import Source, sup_multipliers
@@ -168,3 +169,21 @@ def test_no_band_beyond_the_readings_when_the_domain_is_wider() -> None:
     assert any("outside the readings' range" in w for w in fit.warnings)
     traj = fit.trajectories(list(fit.subjects[:2]))
     assert traj.loc[traj.time > frame.t.max() + step, "lower_simultaneous"].isna().all()
+
+
+def test_band_auto_above_its_size_measures_the_width_ratio_it_gives_up(
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    # Above the size limit band: auto draws the plug-in band and states how much wider the
+    # corrected one would be: measured on refits of a sample, scaled by 1/n; at least 1.
+    import reportgen.fpca.fit as fitmod
+    from reportgen import fit_sparse_fpca
+    from tests.designs import yao_design
+
+    monkeypatch.setattr(fitmod, "AUTO_CORRECTED_MAX_SUBJECTS", 100)
+    monkeypatch.setattr(fitmod, "WIDTH_SAMPLE", 150)
+    frame = yao_design(300, seed=4)
+    fit = fit_sparse_fpca(frame, subject="id", time="t", value="y")
+    assert fit.band.kind == "plugin" and not fit.replicates
+    assert 1.0 <= fit.band.width_ratio < 1.5
+    assert f"would be {fit.band.width_ratio:.3f} times as wide" in fit.band.reason
