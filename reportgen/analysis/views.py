@@ -23,6 +23,7 @@ from ..fpca.diagnostics import (
     part_largest_rms,
     residual_summary,
 )
+from ..fpca.fit import MIN_SUPPORT as MIN_SUPPORT  # for captions: the report floor
 from ..fpca.plan import Partitioned, PartResults
 from ..fpca.result import FPCAFit
 

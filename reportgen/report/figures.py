@@ -19,7 +19,7 @@ from matplotlib.figure import Figure as MplFigure
 from scipy.special import ndtri
 
 from ..analysis.analyse import AnalysisResult
-from ..analysis.views import band_words, density
+from ..analysis.views import MIN_SUPPORT, band_words, density
 from .svg import figure_svg
 
 PALETTE = ("#1f5f8b", "#c0632b", "#3f8f4f", "#8a3f8f", "#7a7a2a", "#2a7a7a")
@@ -170,7 +170,9 @@ def _mean(r: AnalysisResult) -> Drawn:
         linewidth=0,
         label=f"pointwise {level}",
     )
-    ax.plot(g, fit.mean, color=PALETTE[1], label="mean")
+    banded = np.isfinite(fit.mean_se)
+    ax.plot(g, fit.mean, color=PALETTE[1], alpha=0.35, linewidth=0.8)
+    ax.plot(g, np.where(banded, fit.mean, np.nan), color=PALETTE[1], label="mean")
     ax.set_xlabel(_time_label(r))
     ax.set_ylabel(_value_label(r))
     ax.legend(fontsize=7)
@@ -180,7 +182,13 @@ def _mean(r: AnalysisResult) -> Drawn:
         f"{level} band (outer; holds at every time at once), both cluster-robust over "
         "subjects and corrected for the mean's smoothing bias (robust bias correction: "
         "centred on a local quadratic fit at the mean's bandwidth, so a band may sit off "
-        f"the curve where it bends), over {drawn}.",
+        f"the curve where it bends), over {drawn}"
+        + (
+            f". Where fewer than {MIN_SUPPORT} subjects have a reading within the mean's "
+            "bandwidth, or beyond the readings, the curve is drawn faint and without a band."
+            if not np.all(banded)
+            else "."
+        ),
         "Grey density of readings against time with the mean curve and its two bands.",
     )
 
@@ -526,8 +534,14 @@ def _group_means(r: AnalysisResult) -> Drawn | None:
             alpha=0.18,
             linewidth=0,
         )
+        banded = np.isfinite(g.mean_se[i])
+        ax.plot(fit.grid, g.means[i], style, color=color, alpha=0.35, linewidth=0.8)
         ax.plot(
-            fit.grid, g.means[i], style, color=color, label=f"{label} ({g.n_subjects[i]} subjects)"
+            fit.grid,
+            np.where(banded, g.means[i], np.nan),
+            style,
+            color=color,
+            label=f"{label} ({g.n_subjects[i]} subjects)",
         )
     ax.set_xlabel(_time_label(r))
     ax.set_ylabel(_value_label(r))
@@ -535,9 +549,10 @@ def _group_means(r: AnalysisResult) -> Drawn | None:
     return (
         fig,
         f"Mean curve of each group with a pointwise {level} band (cluster-robust over "
-        "the group's subjects, without smoothing bias), each smoothed at the common mean "
-        f"bandwidth {fit.mean_bandwidth:.4g}. Descriptive: not adjusted for multiple "
-        "comparisons.",
+        "the group's subjects and corrected for smoothing bias), each smoothed at the common "
+        f"mean bandwidth {fit.mean_bandwidth:.4g}. Where fewer than {MIN_SUPPORT} of a "
+        "group's subjects have a reading within that bandwidth the curve is drawn faint and "
+        "without a band. Descriptive: not adjusted for multiple comparisons.",
         "One mean curve per group with a shaded band, on one set of axes.",
     )
 
