@@ -367,16 +367,18 @@ NOTES = [
     "lies inside the simultaneous band; new reading: the share of new readings (one per "
     "subject, at a random grid time, with the design's error) inside the new-reading band. "
     "'grid with a band': the share of grid times where one is drawn (none where fewer than "
-    "10 subjects have a reading within the mean's bandwidth); coverage is measured there. "
+    "10 subjects have a reading within the mean's bandwidth, or past the readings); "
+    "coverage is measured there. "
     "Seconds: one fit with its bands for every subject.",
-    "- The plug-in band falls short wherever readings are few (A, E, F, H: 0.87-0.91 "
-    "pointwise, 0.11-0.73 of whole curves) and the corrected one holds; hence the default.",
-    "- Targets the default band still misses: the last third of E and F (0.91-0.92, few "
-    "late readings by design); G, where FVE keeps one component in most fits (the second "
-    "carries 4% of the variance) and its variance is only in the band as the left-out "
-    "components' variance; the whole mean in E, F (0.80 of seeds) and H (0.50: beyond 0.8 "
-    "the mean is extrapolated from the readings before it, which no band of a smoother "
-    "covers).",
+    "- The plug-in band falls short where readings are few (A, E, F, G: 0.88-0.92 "
+    "pointwise, 0.51-0.78 of whole curves; 0.80-0.81 in the last third of E and F) and the "
+    "corrected one holds there; hence the default.",
+    "- Targets the default band still misses: the last third of F (0.91; few late "
+    "readings and heavy tails by design); G, where FVE keeps one component in 16 of 20 "
+    "fits (the second carries 4% of the variance) and that mode enters the band only as "
+    "the left-out components' variance (0.92 pointwise, 0.89 of whole curves); the whole "
+    "mean in E (0.80 of seeds), G (0.85) and H (0.80). In H no band is drawn past the last "
+    "reading (0.8 of the domain), where the curves are extrapolated.",
     "- The mean's bands are cluster-robust and bias-corrected (robust bias correction, "
     "Calonico, Cattaneo & Farrell 2018: centred on the local quadratic fit at the mean's "
     "bandwidth); 'mean' columns are measured against that band.",
@@ -386,7 +388,7 @@ NOTES = [
     "(EstimationError) rather than give an answer.",
     "- 'K by ...' lists K:count over the seeds. FVE picks the true K most often over all "
     "designs (the count above) and stays the default rule; BIC is better where one mode "
-    "dominates (G) and worse in the sparse designs (A, E, F, H), AIC and cv pick too many: "
+    "dominates (G: 12 against 4 of 20) and worse in A, B, E and F; AIC and cv pick too many: "
     "the eigenfunctions are estimated from the same data, and extra ones absorb real "
     "variance their estimated shapes miss (cf. Li, Wang & Carroll 2013, JASA "
     "108:1284-1294, on criteria for the number of components; from memory). The report "
