@@ -526,6 +526,9 @@ def targets(
 
 NOTES = """## Notes on the targets
 
+- The 10^6-subject run draws the plug-in band (`band: auto` corrects up to 10,000
+  subjects) and states the width ratio of the corrected band it measured:
+  `benchmarks/BANDS.md` (`benchmarks/band_ratio.py`) has that run's figures.
 - Times are wall-clock on a shared machine; repeated runs vary by about 10%, and the pandas
   floor at 10^6 varied between 0.13 s and 0.25 s across runs of this script (its own
   allocations), so fit / floor at 10^6 has been between 4 and 8.
