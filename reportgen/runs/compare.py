@@ -117,24 +117,24 @@ def compare_runs(a: Path, b: Path, gates: GatesSection) -> list[Finding]:
     ca, cb = _table(a, "components"), _table(b, "components")
     for k in range(min(ka, kb)):
         la, lb = ca.eigenvalue[k], cb.eigenvalue[k]
-        rel = abs(lb - la) / abs(la)
+        rel = (lb - la) / abs(la)  # signed: a fall is a negative change
         out.append(
             Finding(
                 f"eigenvalue {k + 1}",
                 f"{la:.4g}",
                 f"{lb:.4g} ({rel:+.1%})",
-                rel > gates.max_eigenvalue_change,
+                abs(rel) > gates.max_eigenvalue_change,
             )
         )
         out.append(Finding(f"FVE {k + 1}", f"{ca.fve[k]:.3f}", f"{cb.fve[k]:.3f}"))
     va, vb = seta["error_variance"], setb["error_variance"]
-    rel = abs(vb - va) / abs(va)
+    rel = (vb - va) / abs(va)
     out.append(
         Finding(
             "error variance",
             f"{va:.4g}",
             f"{vb:.4g} ({rel:+.1%})",
-            rel > gates.max_error_variance_change,
+            abs(rel) > gates.max_error_variance_change,
         )
     )
     ma, mb = _table(a, "mean"), _table(b, "mean")
