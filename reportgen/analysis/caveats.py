@@ -44,20 +44,28 @@ def caveats(
             )
     out += selection_caveats(fit)
     out += thin_design_caveats(fit)
-    share = fit.error_variance / float(np.mean(fit.diagonal_variance))
+    average = float(np.mean(fit.diagonal_variance))
+    share = fit.error_variance / average
     if share < 0.1:
         out.append(
-            f"The error variance is {share:.1%} of the variance of single readings. It is "
-            "estimated as the difference of two smoothed variances, which is imprecise "
-            "when differences between subjects dominate: read it, and the width of the "
-            "bands, with the sensitivity table."
+            f"The error variance ({fit.error_variance:.4g}, maximum likelihood) is "
+            f"{share:.1%} of the average variance of single readings ({average:.4g}): where "
+            "differences between subjects dominate this much, measurement error and "
+            "differences between subjects are hard to tell apart; read it, and the width of "
+            "the bands, with the sensitivity table."
         )
     if rho > max(0.2, 3.0 / np.sqrt(n_residuals)):
         out.append(
             f"The spread of the residuals grows with the fitted value (Spearman "
             f"correlation of |standardized residual| with the fitted value {rho:.2f}): "
-            "the error is not of constant size. A log transform of the values "
-            "(data.transform: log) often makes it so; read the bands with care."
+            "the error is not of constant size"
+            + (
+                f" even on the log scale (data.transform: {spec.data.transform}); read the "
+                "bands with care."
+                if spec.data.transform != "none"
+                else ". A log transform of the values (data.transform: log) often makes it "
+                "so; read the bands with care."
+            )
         )
     single = int(np.sum(fit.n_obs == 1))
     if single > 0.2 * fit.n_subjects:

@@ -67,11 +67,41 @@ def test_all_settings_computed_no_not_computed_sentence(base: AnalysisResult) ->
 
 
 def test_error_variance_share_sentence(base: AnalysisResult) -> None:
+    # It names the estimate it reports (the likelihood one) and prints both numbers, so
+    # that its percentage reproduces from them.
     share = base.fit.error_variance / float(np.mean(base.fit.diagonal_variance))
-    sentence = [c for c in base.caveats if c.startswith("The error variance is")]
+    sentence = [c for c in base.caveats if c.startswith("The error variance (")]
     assert bool(sentence) == (share < 0.1)
     if sentence:
-        assert f"{share:.1%} of the variance of single readings" in sentence[0]
+        found = re.match(
+            r"The error variance \(([0-9.]+), maximum likelihood\) is ([0-9.]+)% of the "
+            r"average variance of single readings \(([0-9.]+)\)",
+            sentence[0],
+        )
+        assert found is not None, sentence[0]
+        ev, printed, average = (float(x) for x in found.groups())
+        assert ev == float(f"{base.fit.error_variance:.4g}")
+        assert f"{ev / average:.1%}" == f"{printed}%"
+        assert "difference of two smoothed" not in sentence[0]
+
+
+def test_no_log_transform_is_recommended_on_the_log_scale(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # The spread-trend caveat (its rho forced high) recommends data.transform: log only
+    # where the spec does not already apply it.
+    import reportgen.analysis.analyse as analyse_module
+
+    monkeypatch.setattr(analyse_module, "spread_trend", lambda frame: 0.9)
+    plain = _analyse(tmp_path, "plain")
+    logged = _analyse(
+        tmp_path, "logged", ("  value_unit: units\n", "  value_unit: units\n  transform: log\n")
+    )
+    said = [c for c in plain.caveats if "grows with the fitted value" in c]
+    assert len(said) == 1 and "(data.transform: log) often makes it so" in said[0]
+    said = [c for c in logged.caveats if "grows with the fitted value" in c]
+    assert len(said) == 1 and "often makes it so" not in said[0]
+    assert "even on the log scale (data.transform: log)" in said[0]
 
 
 def test_single_reading_sentence(base: AnalysisResult, tmp_path: Path) -> None:
@@ -110,7 +140,7 @@ def test_error_variance_share_sentence_absent_when_noise_is_large(tmp_path: Path
     res = _analyse(tmp_path, "noisy", data=data)
     share = res.fit.error_variance / float(np.mean(res.fit.diagonal_variance))
     assert share >= 0.1
-    assert not any(c.startswith("The error variance is") for c in res.caveats)
+    assert not any(c.startswith("The error variance (") for c in res.caveats)
 
 
 def test_time_pair_coverage_sentence(base: AnalysisResult, tmp_path: Path) -> None:
