@@ -262,8 +262,9 @@ def _section_components(c: _Context) -> None:
         f"{fit.all_eigenvalues.size} eigenvalues of the smoothed surface are positive; "
         f"{fit.dropped_eigenvalues} negative or numerically zero ones were dropped (the "
         f"negative ones sum to {fit.dropped_negative_sum:.3g}, "
-        f"{fit.dropped_negative_sum / fit.all_eigenvalues.sum():.1%} of the positive "
-        "total). FVE is relative to the positive total.",
+        f"{fit.dropped_negative_sum / fit.surface_eigenvalues.sum():.1%} of the positive "
+        "total). FVE is relative to the total of the positive eigenvalues, those of the "
+        "retained and refined components as refined by likelihood.",
     )
     sel = fit.selection
     b.table(

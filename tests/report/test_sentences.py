@@ -238,3 +238,19 @@ def test_residual_diagnostics_over_a_sample_say_so(
         table.rms_standardized, subject_tables(base)["residuals_by_subject"].rms_standardized
     )
     np.testing.assert_array_equal(res.subjects_view.rms, table.rms_standardized)
+
+
+def test_the_dropped_eigenvalues_share_is_the_same_in_components_and_caveats(
+    base: AnalysisResult,
+) -> None:
+    # One denominator (the surface's positive eigenvalues) wherever the share is printed.
+    from dataclasses import asdict
+
+    from reportgen.report.sections import build_sections
+
+    fit = base.fit
+    share = f"{fit.dropped_negative_sum / fit.surface_eigenvalues.sum():.1%} of the positive total"
+    text = " ".join(str(asdict(x)) for x in build_sections(base, {}, {}, order=["components"]))
+    assert share in text
+    caveat = [c for c in base.caveats if "non-positive eigenvalues" in c]
+    assert all(share in c for c in caveat)
