@@ -131,9 +131,12 @@ _MERGE: dict[str, Callable[[list[Tally], Spec], Check | None]] = {
 }
 
 
-def merged_steps(spec: Spec, tallies: list[tuple[Tally, ...]]) -> tuple[list[Check], bool]:
+def merged_steps(
+    spec: Spec, tallies: list[tuple[Tally, ...]], comparing: bool = True
+) -> tuple[list[Check], bool]:
     """The files' tallies (one tuple per file, in manifest order) put together step by step,
-    and whether a failed step stopped the later ones."""
+    and whether a failed step stopped the later ones. ``comparing=False``: readings of new
+    subjects to predict, where one group is no fault (nothing is compared)."""
     steps = [
         "row selection",
         "columns typed",
@@ -150,7 +153,12 @@ def merged_steps(spec: Spec, tallies: list[tuple[Tally, ...]]) -> tuple[list[Che
         if not these:
             continue
         merge = _MERGE.get(step)
-        check = merge(these, spec) if merge is not None else range_check(step, these, spec)
+        if step == "groups":
+            check: Check | None = groups_check(these, spec, comparing)
+        elif merge is not None:
+            check = merge(these, spec)
+        else:
+            check = range_check(step, these, spec)
         if check is not None:
             checks.append(check)
             if check.status == "fail" and step in _STEPS_THAT_STOP:

@@ -77,7 +77,7 @@ def _group_tally(long: pd.DataFrame) -> Tally:
     return Tally("groups", first=(multi,), sizes=tuple((str(g), int(n)) for g, n in sizes.items()))
 
 
-def groups_check(tallies: list[Tally], spec: Spec) -> Check:
+def groups_check(tallies: list[Tally], spec: Spec, comparing: bool = True) -> Check:
     multi = first_example(tallies, 0)
     if multi:
         return Check(
@@ -91,6 +91,10 @@ def groups_check(tallies: list[Tally], spec: Spec) -> Check:
         for g, n in t.sizes:
             sizes[g] = sizes.get(g, 0) + n
     labels = sorted(sizes)
+    if len(labels) < 2 and not comparing:  # readings to predict: nothing is compared
+        return Check(
+            "groups", "pass", f"one group ({plain(labels[0])}, {sizes[labels[0]]} subjects)"
+        )
     if len(labels) < 2:
         return Check(
             "groups",

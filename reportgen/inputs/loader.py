@@ -370,7 +370,7 @@ def _dataset(
         raise DataError(f"data.file {shown!r} has a header but no rows")
     many = bool(first.entry.path)
     checks = [first.check]
-    merged, stopped = merged_steps(spec, [f.tallies for f in facts])
+    merged, stopped = merged_steps(spec, [f.tallies for f in facts], comparing=design)
     checks += merged
     readings = None
     if not stopped and design:

@@ -18,6 +18,7 @@ from reportgen import load_fit
 from reportgen.cli import main
 from reportgen.errors import RecordError
 from reportgen.fpca.predictor import BAND_COLUMNS
+from tests.helpers import ROOT
 
 pytestmark = pytest.mark.slow
 
@@ -130,3 +131,16 @@ def test_readings_outside_the_domain_and_changed_runs_are_refused(
         load_fit(copy)
     assert main(["predict", str(copy), str(folder / "new.csv"), "--out", str(out)]) == 2
     assert not out.exists()
+
+
+def test_new_subjects_of_one_group_are_predicted(
+    regenerated: dict[str, Path], tmp_path: Path
+) -> None:
+    # A run that compares groups predicts new subjects all in one group: prediction
+    # compares nothing (the same data, run as a study, still need two groups).
+    data = pd.read_csv(ROOT / "specs" / "pump_service.csv")
+    one = data[data.depot == sorted(data.depot.unique())[0]]
+    one.to_csv(tmp_path / "one_depot.csv", index=False)
+    pred = load_fit(regenerated["pump_service"]).predict_file(tmp_path / "one_depot.csv")
+    assert set(pred.group) == {sorted(data.depot.unique())[0]}
+    assert pred.subject.nunique() == one.pump.nunique()
