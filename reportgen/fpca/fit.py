@@ -43,7 +43,7 @@ from .design import BinnedStats, PairStats, Sample, assign_folds, seeded_sample
 from .likelihood import LikelihoodFit, maximise, starting_error_variance
 from .options import FPCAOptions
 from .plan import Part, Partitioned, PartResults, ResidualSize
-from .predictor import Predictor, corrected_bands
+from .predictor import Predictor, corrected_variance
 from .result import BandChoice, FPCAFit, Labels, as_labels, frozen
 from .scores import sample_terms
 from .selection import fixed_selection, select_components
@@ -507,8 +507,8 @@ AUTO_CORRECTED_MAX_SUBJECTS = 10000
 # practice, no source), so at 20 the band's width is uncertain by about 16%.
 MIN_RESAMPLES = 20
 # A resample that cannot be smoothed at the main fit's bandwidths is refitted at these
-# multiples of all three (the rule is always defined: the last is wide enough for any
-# resample that the main fit's domain check would pass).
+# multiples of all three; one that fails even at the widest is left out, and the band
+# states how many of the resamples were fitted (unavailable under MIN_RESAMPLES).
 WIDER = (1.5, 2.25, 3.375)
 
 
@@ -554,11 +554,9 @@ def _width_ratio(fit: FPCAFit, data: Partitioned) -> float:
     if len(reps) < 2:
         return float("nan")
     test = sample.subset(np.arange(min(_WIDTH_SUBJECTS, m), dtype=np.intp))
-    scores, cov = fit.predictor.scores(test)
+    _, cov = fit.predictor.scores(test)
     plug = fit.predictor.curve_variance(cov)
-    corrected, _ = corrected_bands(
-        tuple(reps), fit.predictor.fitted(scores), test, fit.options.band_level
-    )
+    corrected = corrected_variance(tuple(reps), test)
     excess = float(np.median(np.mean(corrected, axis=1) / np.mean(plug, axis=1))) - 1.0
     return float(np.sqrt(1.0 + max(excess, 0.0) * m / n))
 
@@ -716,25 +714,15 @@ def _surfaces(
     return cov, diag_var, ridge
 
 
-def mean_covariance(
-    pstats: PairStats,
-    cbins: BinGrid,
-    grid: FloatArray,
-    h: float,
-    kernel: Kernel,
-    weights: FloatArray | None = None,
-) -> FloatArray:
+def mean_covariance(pstats: PairStats, weights: FloatArray) -> FloatArray:
     """Cluster-robust covariance of a linear smoother of the readings on the grid,
-    (n_grid, n_grid); by default the local linear mean's.
+    (n_grid, n_grid), from its equivalent-kernel weights on the covariance bins.
 
-    With equivalent-kernel weights l(x) on the covariance bins, the estimate's deviation is
-    sum_i l(x)' u_i over subjects (u_i: the subject's binned residuals), so its covariance
-    is estimated by L (sum_i u_i u_i') L': the sandwich estimator with subjects as
-    clusters (Liang & Zeger 1986, Biometrika 73:13-22; applied to a linear smoother).
+    With weights l(x), the estimate's deviation is sum_i l(x)' u_i over subjects (u_i: the
+    subject's binned residuals), so its covariance is estimated by L (sum_i u_i u_i') L':
+    the sandwich estimator with subjects as clusters (Liang & Zeger 1986, Biometrika
+    73:13-22; applied to a linear smoother).
     """
-    if weights is None:
-        counts = pstats.diag.counts.sum(axis=0)
-        weights = equivalent_kernel_1d(grid, cbins.centers, counts, h, kernel)
     out: FloatArray = weights @ pstats.cross @ weights.T
     return 0.5 * (out + out.T)
 
@@ -769,7 +757,7 @@ def mean_band(
     bad = ~(np.isfinite(quad) & np.all(np.isfinite(qw), axis=1))
     weights = np.where(bad[:, None], lw, qw)
     centre = np.where(bad, linear, quad)
-    return centre, mean_covariance(pstats, cbins, grid, h, kernel, weights), int(bad.sum())
+    return centre, mean_covariance(pstats, weights), int(bad.sum())
 
 
 def with_bandwidths(

@@ -356,11 +356,25 @@ def sup_multipliers(
     return out
 
 
-def corrected_bands(
-    replicates: tuple[Predictor, ...], fitted: FloatArray, sample: Sample, level: float
-) -> tuple[FloatArray, FloatArray]:
-    """Corrected variance of each subject's trajectory on the grid, (n_subjects, n_grid),
-    and each subject's corrected simultaneous multiplier, (n_subjects,).
+def _over_refits(
+    replicates: tuple[Predictor, ...], sample: Sample
+) -> tuple[FloatArray, list[FloatArray], list[FloatArray]]:
+    """The corrected variance (``corrected_variance``), and each refit's curves and scores'
+    covariance for the sample's subjects."""
+    b = len(replicates)
+    per_rep = [rep.scores(sample) for rep in replicates]
+    curves = [rep.fitted(scores) for rep, (scores, _) in zip(replicates, per_rep, strict=True)]
+    covs = [cov for _, cov in per_rep]
+    within = sum(rep.curve_variance(cov) for rep, cov in zip(replicates, covs, strict=True))
+    first = sum(curves)
+    second = sum(c * c for c in curves)
+    spread = np.maximum(second / b - (first / b) ** 2, 0.0) * b / max(b - 1, 1)
+    variance: FloatArray = within / b + spread
+    return variance, curves, covs
+
+
+def corrected_variance(replicates: tuple[Predictor, ...], sample: Sample) -> FloatArray:
+    """Corrected variance of each subject's trajectory on the grid, (n_subjects, n_grid).
 
     A plug-in band treats the mean, the eigenfunctions, the eigenvalues and the error
     variance as known. Goldsmith, Greven & Crainiceanu (2013, Biometrics 69:41-51,
@@ -370,22 +384,23 @@ def corrected_bands(
 
         Var(X_i(t) | Y_i) ~ mean_b Var_b(X_i(t) | Y_i) + var_b E_b(X_i(t) | Y_i)
 
-    and take the simultaneous band from the distribution of the whole curve's error under
-    that mixture (each refit's curve, minus the main fit's ``fitted``, plus its own
-    Gaussian error; :func:`sup_multipliers`). Each resample's refit is a
-    :class:`Predictor` of its own (its mean on the main grid). The band stays centred on
-    the main fit's trajectory.
+    Each resample's refit is a :class:`Predictor` of its own (its mean on the main grid).
     """
-    b = len(replicates)
-    per_rep = [rep.scores(sample) for rep in replicates]
-    curves = [rep.fitted(scores) for rep, (scores, _) in zip(replicates, per_rep, strict=True)]
-    within = sum(rep.curve_variance(cov) for rep, (_, cov) in zip(replicates, per_rep, strict=True))
-    first = sum(curves)
-    second = sum(c * c for c in curves)
-    spread = np.maximum(second / b - (first / b) ** 2, 0.0) * b / max(b - 1, 1)
-    variance: FloatArray = within / b + spread
+    return _over_refits(replicates, sample)[0]
+
+
+def corrected_bands(
+    replicates: tuple[Predictor, ...], fitted: FloatArray, sample: Sample, level: float
+) -> tuple[FloatArray, FloatArray]:
+    """Corrected variance of each subject's trajectory on the grid (``corrected_variance``),
+    (n_subjects, n_grid), and each subject's corrected simultaneous multiplier,
+    (n_subjects,): from the distribution of the whole curve's error under the mixture of
+    the refits (each refit's curve, minus the main fit's ``fitted``, plus its own Gaussian
+    error; :func:`sup_multipliers`). The band stays centred on the main fit's trajectory.
+    """
+    variance, curves, covs = _over_refits(replicates, sample)
     sources = [
         Source(curve - fitted, cov, rep.eigenfunctions, rep.truncation_variance)
-        for rep, curve, (_, cov) in zip(replicates, curves, per_rep, strict=True)
+        for rep, curve, cov in zip(replicates, curves, covs, strict=True)
     ]
     return variance, sup_multipliers(sources, np.sqrt(variance), level)
