@@ -62,13 +62,14 @@ def sensitivity_factors(spec: Spec, fit: FPCAFit) -> tuple[list[float], str]:
     if spec.sensitivity.given:
         return [float(f) for f in wanted], "Factors as given in the spec."
     floor = _smallest_feasible_factor(fit)
-    factors = sorted({math.ceil(max(f, floor) * 100) / 100 if f < 1 else f for f in wanted})
+    lifted = math.ceil(floor * 100) / 100  # the factor run: the floor rounded up
+    factors = sorted({max(f, lifted) if f < 1 else f for f in wanted})
     factors = [f for f in factors if f != 1.0]
     raised = [f for f in wanted if f < floor]
     note = (
         "Default factors 0.5, 0.75, 1.5 and 2"
         + (
-            f"; {', '.join(f'{f:g}' for f in raised)} raised to {floor:.2f}, the smallest factor "
+            f"; {', '.join(f'{f:g}' for f in raised)} raised to {lifted:g}, the smallest factor "
             "at which every automatically chosen bandwidth stays at or above its smallest "
             "feasible candidate"
             if raised

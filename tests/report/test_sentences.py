@@ -254,3 +254,33 @@ def test_the_dropped_eigenvalues_share_is_the_same_in_components_and_caveats(
     assert share in text
     caveat = [c for c in base.caveats if "non-positive eigenvalues" in c]
     assert all(share in c for c in caveat)
+
+
+def test_a_raised_factor_is_printed_as_the_factor_run(
+    base: AnalysisResult, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # The sentence names the factor that was run (the smallest feasible one, rounded up to
+    # two decimals), not the floor rounded to nearest ("raised to 0.85" beside a 0.86 run).
+    from dataclasses import replace
+
+    import reportgen.analysis.sensitivity as sensitivity
+
+    monkeypatch.setattr(sensitivity, "_smallest_feasible_factor", lambda fit: 0.853)
+    spec = replace(
+        base.spec,
+        sensitivity=replace(base.spec.sensitivity, factors=(0.5, 0.75, 1.5, 2.0), given=False),
+    )
+    factors, note = sensitivity.sensitivity_factors(spec, base.fit)
+    assert factors == [0.86, 1.5, 2.0]
+    assert "0.5, 0.75 raised to 0.86, the smallest factor" in note
+
+
+def test_the_shown_subjects_sentence_reads_without_listed_ids(base: AnalysisResult) -> None:
+    from dataclasses import asdict
+
+    from reportgen.report.sections import build_sections
+
+    assert not base.spec.subjects.show
+    text = " ".join(str(asdict(x)) for x in build_sections(base, {}, {}, order=["trajectories"]))
+    assert "Subjects shown: 6 at even steps through all subjects" in text
+    assert "the rest of the" not in text
