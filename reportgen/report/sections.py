@@ -340,9 +340,12 @@ def _section_trajectories(c: _Context) -> None:
     b.text(
         s,
         "Subjects shown: "
-        + (f"{', '.join(chosen)} as listed in subjects.show; then " if chosen else "")
-        + "the rest of the "
-        f"{spec.subjects.count} at even steps through all subjects ordered by number of "
+        + (
+            f"{', '.join(chosen)} as listed in subjects.show; then the rest of the "
+            if chosen
+            else ""
+        )
+        + f"{spec.subjects.count} at even steps through all subjects ordered by number of "
         "readings, then id (from the fewest readings to the most), so that sparse and dense "
         f"subjects both appear: {', '.join(result.shown_subjects)}. Bands: "
         f"{band_words(fit)}. Inner band: pointwise {fit.options.band_level:.0%}; outer band: "
