@@ -39,6 +39,15 @@ BAND_COLUMNS = (
     "lower_new_reading",
     "upper_new_reading",
 )
+
+
+def without_bands(frame: pd.DataFrame) -> pd.DataFrame:
+    """``frame`` (trajectories or predictions) with every band column emptied: what a fit
+    whose corrected band is unavailable shows, rather than a band drawn too thin."""
+    frame.loc[:, list(BAND_COLUMNS)] = np.nan
+    return frame
+
+
 BandKind = Literal["pointwise", "simultaneous"]
 
 

@@ -21,7 +21,7 @@ from .frame import arrays_from_frame
 from .likelihood import LikelihoodFit
 from .options import FPCAOptions
 from .plan import PartResults
-from .predictor import BAND_COLUMNS, BandKind, Predictor, corrected_bands
+from .predictor import BandKind, Predictor, corrected_bands, without_bands
 
 # Subject labels: an array, or a pandas Index (immutable) of text kept as it came.
 Labels = np.ndarray | pd.Index
@@ -352,9 +352,7 @@ class FPCAFit:
     def _unless_unavailable(self, frame: pd.DataFrame) -> pd.DataFrame:
         """No band (empty cells) where the corrected band was asked for and is unavailable
         (``BandChoice``): a plug-in band in its place would be drawn too thin."""
-        if self.band.kind == "unavailable":
-            frame.loc[:, list(BAND_COLUMNS)] = np.nan
-        return frame
+        return without_bands(frame) if self.band.kind == "unavailable" else frame
 
     def plugin_trajectories(self) -> pd.DataFrame:
         """Every subject's trajectory with plug-in bands, from the scores and their

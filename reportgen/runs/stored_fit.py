@@ -19,7 +19,7 @@ import pandas as pd
 from ..errors import DataError, EstimationError, OutputError, RecordError
 from ..fpca.design import Sample
 from ..fpca.frame import arrays_from_frame
-from ..fpca.predictor import BAND_COLUMNS, Predictor
+from ..fpca.predictor import Predictor, without_bands
 from ..inputs.files import read_path
 from ..inputs.loader import load_file, require_passed
 from ..inputs.spec import Spec, spec_from_bytes
@@ -53,7 +53,7 @@ class StoredFit:
         codes, t, y, labels = arrays_from_frame(frame, "subject", "time", "value")
         out = self.predictor.predict(Sample.from_arrays(codes, t, y), labels, self.replicates)
         if self.band_unavailable:
-            out.loc[:, list(BAND_COLUMNS)] = float("nan")
+            out = without_bands(out)
         if "group" in frame:
             per = frame.drop_duplicates("subject").set_index("subject")["group"]
             out.insert(1, "group", per.reindex(out.subject).to_numpy())

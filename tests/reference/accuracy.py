@@ -105,18 +105,6 @@ DESIGNS = {
         (1, 5),
         200,
     ),
-    "B": Design(
-        "B",
-        "as A with 5-15 readings, n 2000",
-        0.0,
-        1.0,
-        lambda t: 2 * t + np.sin(2 * np.pi * t),
-        COS3,
-        (2.0, 1.0, 0.5),
-        0.25,
-        (5, 15),
-        2000,
-    ),
     "C": Design(
         "C",
         "[0,100], intercept sd 6 + sd 2.5 x sqrt2 cos(pi t/100) (lambda 3600, "
@@ -178,6 +166,9 @@ DESIGNS = {
         300,
     ),
 }
+DESIGNS["B"] = replace(
+    DESIGNS["A"], name="B", text="as A with 5-15 readings, n 2000", readings=(5, 15), n=2000
+)
 DESIGNS["F"] = replace(
     DESIGNS["E"],
     name="F",
