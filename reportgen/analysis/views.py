@@ -26,6 +26,7 @@ from ..fpca.diagnostics import (
 from ..fpca.fit import MIN_SUPPORT as MIN_SUPPORT  # for captions: the report floor
 from ..fpca.plan import Partitioned, PartResults
 from ..fpca.result import FPCAFit
+from ..fpca.smoothing import trapezoid_weights
 
 # The residual diagnostics (figure, spread trend) use the readings of at most this many
 # subjects, a seeded sample above it: at 20 000 subjects (about 10^5 readings) the
@@ -299,3 +300,43 @@ def band_words(fit: FPCAFit) -> str:
     if band.kind == "unavailable":
         return f"not drawn: the corrected band is unavailable ({band.reason})"
     return f"plug-in: the mean, eigenfunctions and variances taken as known ({band.reason})"
+
+
+def function_words(fit: FPCAFit) -> str:
+    """Where the eigenfunctions come from, and the evidence, in words (``FunctionSource``)."""
+    src = fit.functions
+    held = (
+        f"; held-out log-likelihood per subject ({src.folds}-fold cross-validation over "
+        f"{src.subjects} subjects) {src.held_out_likelihood:.4f} refined against "
+        f"{src.held_out_smoothing:.4f} from the surface"
+        if src.folds
+        else ""
+    )
+    if src.used == "likelihood":
+        return (
+            "refined by maximising the marginal Gaussian likelihood of the readings over a "
+            f"cubic B-spline basis of {src.n_basis} functions, started from the covariance "
+            f"surface's ({src.reason}{held})"
+        )
+    return f"those of the smoothed covariance surface ({src.reason}{held})"
+
+
+def other_functions(fit: FPCAFit) -> np.ndarray | None:
+    """The estimate of the eigenfunctions the fit does not use, one column per retained
+    component: the other set's column closest to it (largest absolute inner product, each
+    used once), signed to agree; ``None`` when there is no other estimate."""
+    src = fit.functions
+    other = src.smoothing if src.used == "likelihood" else src.likelihood
+    if other.size == 0:
+        return None
+    w = trapezoid_weights(fit.grid)
+    inner = (fit.eigenfunctions * w[:, None]).T @ other  # (K, K_other)
+    out = np.full(fit.eigenfunctions.shape, np.nan)
+    free = np.ones(other.shape[1], dtype=bool)
+    for k in range(fit.eigenfunctions.shape[1]):
+        if not free.any():
+            break
+        j = int(np.argmax(np.where(free, np.abs(inner[k]), -1.0)))
+        free[j] = False
+        out[:, k] = other[:, j] * (1.0 if inner[k, j] >= 0 else -1.0)
+    return out

@@ -392,12 +392,115 @@ def likelihood_sums(
     return loglik, score, info, True
 
 
+@njit(cache=True, nogil=True, error_model="numpy")
+def refine_terms(
+    gram: FloatArray,
+    cross: FloatArray,
+    rr: FloatArray,
+    n_obs: FloatArray,
+    a: FloatArray,
+    s2: float,
+    gradient: bool,
+) -> tuple[FloatArray, FloatArray, float, bool]:
+    """Each subject's log-likelihood under the spline model ``A`` (M x K), sigma^2, and the
+    gradient in A and sigma^2 summed over subjects (the formulas are in ``refine``'s module
+    docstring). ``gram`` is (n, M, M), ``cross`` (n, M). Per subject, ``H = I + A' G A /
+    sigma^2`` is factored by Cholesky and inverted. Returns ``ok = False`` when some ``H``
+    is not positive definite.
+    """
+    n_subj, mb = cross.shape
+    k = a.shape[1]
+    each = np.zeros(n_subj)
+    grad = np.zeros((mb, k))
+    g_s2 = 0.0
+    ga = np.zeros((mb, k))
+    p = np.zeros((k, k))
+    c = np.zeros(k)
+    chol = np.zeros((k, k))
+    hinv = np.zeros((k, k))
+    linv = np.zeros((k, k))
+    m = np.zeros(k)
+    log2pi = np.log(2.0 * np.pi * s2)
+    for i in range(n_subj):
+        for r in range(mb):
+            for j in range(k):
+                v = 0.0
+                for q in range(mb):
+                    v += gram[i, r, q] * a[q, j]
+                ga[r, j] = v
+        for j in range(k):
+            v = 0.0
+            for r in range(mb):
+                v += cross[i, r] * a[r, j]
+            c[j] = v
+            for u in range(j + 1):
+                v = 0.0
+                for r in range(mb):
+                    v += a[r, j] * ga[r, u]
+                p[j, u] = v
+                p[u, j] = v
+        logdet = 0.0
+        for j in range(k):  # Cholesky of H = I + P / s2
+            for u in range(j + 1):
+                v = p[j, u] / s2 + (1.0 if j == u else 0.0)
+                for q in range(u):
+                    v -= chol[j, q] * chol[u, q]
+                if j == u:
+                    if v <= 0.0:
+                        return each, grad, 0.0, False
+                    chol[j, j] = np.sqrt(v)
+                    logdet += 2.0 * np.log(chol[j, j])
+                else:
+                    chol[j, u] = v / chol[u, u]
+        for j in range(k):  # L^-1 (lower triangular)
+            for u in range(k):
+                linv[j, u] = 0.0
+            linv[j, j] = 1.0 / chol[j, j]
+            for u in range(j):
+                v = 0.0
+                for q in range(u, j):
+                    v += chol[j, q] * linv[q, u]
+                linv[j, u] = -v / chol[j, j]
+        for j in range(k):  # H^-1 = L^-T L^-1
+            for u in range(j + 1):
+                v = 0.0
+                for q in range(j, k):
+                    v += linv[q, j] * linv[q, u]
+                hinv[j, u] = v
+                hinv[u, j] = v
+        cm = 0.0
+        for j in range(k):
+            v = 0.0
+            for u in range(k):
+                v += hinv[j, u] * c[u]
+            m[j] = v / s2
+            cm += c[j] * m[j]
+        each[i] = -0.5 * (n_obs[i] * log2pi + logdet + (rr[i] - cm) / s2)
+        if not gradient:
+            continue
+        mpm = 0.0
+        trace = 0.0
+        for j in range(k):
+            for u in range(k):
+                mpm += m[j] * p[j, u] * m[u]
+                trace += p[j, u] * hinv[j, u]
+        g_s2 += 0.5 * ((rr[i] - 2.0 * cm + mpm) / (s2 * s2) - (n_obs[i] - trace / s2) / s2)
+        for r in range(mb):
+            for j in range(k):
+                v = cross[i, r] * m[j]
+                for u in range(k):
+                    v -= ga[r, u] * (hinv[u, j] + m[u] * m[j])
+                grad[r, j] += v / s2
+    return each, grad, g_s2, True
+
+
 KERNELS: tuple[Any, ...] = (
     bin_readings,
     bin_pairs,
     subject_sums,
     interpolate_columns,
     likelihood_sums,
+    refine_terms,
     order_within_subjects,
 )
 

@@ -44,8 +44,9 @@ from .likelihood import LikelihoodFit, maximise, starting_error_variance
 from .options import FPCAOptions
 from .plan import Part, Partitioned, PartResults, ResidualSize
 from .predictor import Predictor, corrected_variance
+from .refine import choose_functions
 from .result import BandChoice, FPCAFit, Labels, as_labels, frozen
-from .scores import sample_terms
+from .scores import SampleTerms, sample_terms
 from .selection import fixed_selection, select_components
 from .smoothing import (
     BinGrid,
@@ -383,19 +384,41 @@ def _fit(
             f"the likelihood refinement stopped after {lik.iterations} "
             "iterations without meeting its convergence tolerance"
         )
+    # 4b. the eigenfunctions refined by likelihood over a spline basis (started from the
+    # surface's eigenvalues: a component the first step gave no variance may have one with
+    # a better shape), kept where the held-out likelihood prefers them (``refine``); then
+    # lambda and sigma^2 again for exactly the functions on the grid
+    # one component more than step 4's: the next mode's shape on the surface may be poor
+    # while the likelihood finds it (a mode dwarfed by a dominant one)
+    k_fun = min(k_ref + 1, options.max_components, eig.values.size)
+    funcs_ref, surface_ref = eig.functions[:, :k_ref], eig.values[:k_ref]
+    source, refined = choose_functions(
+        chosen,
+        chosen_resid,
+        grid,
+        eig.functions[:, :k_fun],
+        eig.values[:k_fun],
+        lik,
+        options,
+        beyond_readings=not np.all(inside),
+    )
+    if refined is not None:
+        funcs_ref, surface_ref = refined.functions, eig.values[:k_fun]
+        terms = sample_terms(
+            chosen, np.arange(used.size, dtype=np.intp), chosen_resid, grid, funcs_ref
+        )
+        lik = maximise(terms.sums, refined.eigenvalues, refined.error_variance)
+        _check_refined(lik, level)
     # Components the likelihood gives no variance (lambda = 0) leave the refined set.
-    order = np.argsort(-lik.eigenvalues, kind="stable")
-    order = order[lik.eigenvalues[order] > 0]
-    lik = replace(lik, eigenvalues=lik.eigenvalues[order])
-    terms = terms.reorder(order)
-    funcs_ref = eig.functions[:, :k_ref][:, order]
+    lik, terms, order = _with_variance(lik, terms)
+    funcs_ref, surface_ref = funcs_ref[:, order], surface_ref[order]
     if options.component_rule == "fixed" and (options.n_components or 0) > order.size:
         raise EstimationError(
             f"n_components={options.n_components} is more than the {order.size} components "
             "to which the likelihood gives any variance"
         )
     all_values = np.concatenate([lik.eigenvalues, eig.values[k_ref:]])
-    surface_values = np.concatenate([eig.values[:k_ref][order], eig.values[k_ref:]])
+    surface_values = np.concatenate([surface_ref, eig.values[k_ref:]])
     fve = all_values / all_values.sum()
 
     # 5. number of components
@@ -471,12 +494,23 @@ def _fit(
         options=options,
         predictor=predictor,
         _sample=sample,
+        functions=source,
+        refined_eigenfunctions=frozen(funcs_ref),
     )
     if not per_subject:
         return fit.without_subjects()
     if population_only:
         return fit
     return _with_band(fit, data)
+
+
+def _with_variance(
+    lik: LikelihoodFit, terms: SampleTerms
+) -> tuple[LikelihoodFit, SampleTerms, IntArray]:
+    """The components the likelihood gives variance, largest first (and their order)."""
+    order = np.argsort(-lik.eigenvalues, kind="stable")
+    order = order[lik.eigenvalues[order] > 0]
+    return replace(lik, eigenvalues=lik.eigenvalues[order]), terms.reorder(order), order
 
 
 # No band where fewer subjects than this have a reading within the mean's bandwidth: a
@@ -571,6 +605,7 @@ def _refits(fit: FPCAFit, data: Partitioned, count: int) -> tuple[list[Predictor
         component_rule="fixed",
         n_components=fit.n_components,
         band="plugin",
+        eigenfunctions=fit.functions.used,  # as the fit: refined or not, without the test
     )
     hs = (fit.mean_bandwidth, fit.covariance_bandwidth, fit.diagonal_bandwidth)
     rng = np.random.default_rng([fit.options.seed, 1])

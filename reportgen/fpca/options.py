@@ -24,7 +24,10 @@ class FPCAOptions:
     replacement add the uncertainty of the population quantities; ``predictor.corrected_bands``)
     or ``"auto"`` (corrected up to ``fit.AUTO_CORRECTED_MAX_SUBJECTS`` subjects, plug-in
     above, where the population quantities' estimation error is small and the refits cost
-    most).
+    most). ``eigenfunctions`` is ``"auto"`` (refined by the marginal likelihood over a
+    spline basis when that improves the cross-validated likelihood; ``fpca.refine``),
+    ``"smoothing"`` (those of the covariance surface) or ``"likelihood"`` (refined, without
+    the comparison).
     """
 
     n_grid: int = 101
@@ -44,6 +47,7 @@ class FPCAOptions:
     criteria_max_subjects: int = 5000
     band_level: float = 0.95
     band: str = "auto"
+    eigenfunctions: str = "auto"
     bootstrap_replicates: int = 50
     seed: int = 0
 

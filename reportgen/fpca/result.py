@@ -69,6 +69,29 @@ class BandChoice:
 
 
 @dataclass(frozen=True)
+class FunctionSource:
+    """Which eigenfunctions a fit uses, and the evidence (``fpca.refine``).
+
+    ``used`` is ``"likelihood"`` (refined over a spline basis by the marginal likelihood)
+    or ``"smoothing"`` (from the covariance surface); ``asked`` the ``eigenfunctions``
+    option. ``held_out_*`` are the cross-validated log-likelihoods per subject of the two
+    (``nan`` when not compared); ``smoothing`` and ``likelihood`` hold both sets of the
+    refined components on the grid (``likelihood`` empty when not fitted).
+    """
+
+    used: str = "smoothing"
+    asked: str = "smoothing"
+    reason: str = ""
+    held_out_smoothing: float = float("nan")
+    held_out_likelihood: float = float("nan")
+    folds: int = 0
+    n_basis: int = 0
+    subjects: int = 0
+    smoothing: FloatArray = field(default_factory=lambda: np.zeros((0, 0)))
+    likelihood: FloatArray = field(default_factory=lambda: np.zeros((0, 0)))
+
+
+@dataclass(frozen=True)
 class FPCAFit:
     """Result of a sparse FPCA fit. Arrays are read-only.
 
@@ -149,6 +172,11 @@ class FPCAFit:
         The population quantities refitted on resampled subjects (empty for plug-in
         bands); with them, bands are corrected ones (``predictor.corrected_bands``).
     options : FPCAOptions
+    functions : FunctionSource
+        Whether the eigenfunctions are the smoothing or the likelihood ones, and why.
+    refined_eigenfunctions : ndarray of shape (n_grid, likelihood.eigenvalues.size)
+        The eigenfunctions of every refined component (the retained ones first), with
+        ``likelihood.eigenvalues`` the full model beside the retained K.
     """
 
     grid: FloatArray
@@ -189,6 +217,8 @@ class FPCAFit:
     replicates: tuple[Predictor, ...] = ()
     columns: tuple[str, str, str] = ("subject", "time", "value")
     band: BandChoice = BandChoice()
+    functions: FunctionSource = FunctionSource()
+    refined_eigenfunctions: FloatArray = field(default_factory=lambda: np.zeros((0, 0)))
 
     @property
     def mean_bandwidth(self) -> float:

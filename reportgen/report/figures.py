@@ -19,7 +19,7 @@ from matplotlib.figure import Figure as MplFigure
 from scipy.special import ndtri
 
 from ..analysis.analyse import AnalysisResult
-from ..analysis.views import MIN_SUPPORT, band_words, density
+from ..analysis.views import MIN_SUPPORT, band_words, density, other_functions
 from .svg import figure_svg
 
 PALETTE = ("#1f5f8b", "#c0632b", "#3f8f4f", "#8a3f8f", "#7a7a2a", "#2a7a7a")
@@ -291,8 +291,11 @@ def _eigenvalues(r: AnalysisResult) -> Drawn:
 def _eigenfunctions(r: AnalysisResult) -> Drawn:
     fit, g = r.fit, r.fit.grid
     fig, ax = plt.subplots(figsize=(6, 3))
+    other = other_functions(fit)
     for k in range(fit.n_components):
-        ax.plot(g, fit.eigenfunctions[:, k], label=f"phi_{k + 1} (FVE {fit.fve[k]:.2f})")
+        line = ax.plot(g, fit.eigenfunctions[:, k], label=f"phi_{k + 1} (FVE {fit.fve[k]:.2f})")
+        if other is not None:
+            ax.plot(g, other[:, k], color=line[0].get_color(), linestyle="--", linewidth=0.9)
     ax.axhline(0, color="#888", linewidth=0.8)
     ax.set_xlabel(_time_label(r))
     ef_unit = r.spec.units()["eigenfunction"]
@@ -300,8 +303,16 @@ def _eigenfunctions(r: AnalysisResult) -> Drawn:
     ax.legend(fontsize=8)
     return (
         fig,
-        "Eigenfunctions of the retained components.",
-        "Line plot of each retained eigenfunction against time.",
+        "Eigenfunctions of the retained components"
+        + (
+            f" ({fit.functions.used} estimates); dashed: the "
+            f"{'smoothing' if fit.functions.used == 'likelihood' else 'likelihood'} "
+            "estimates, not used."
+            if other is not None
+            else "."
+        ),
+        "Line plot of each retained eigenfunction against time"
+        + (", with the estimate not used dashed." if other is not None else "."),
     )
 
 

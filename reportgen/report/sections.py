@@ -12,7 +12,7 @@ import numpy as np
 
 from ..analysis.analyse import AnalysisResult
 from ..analysis.caveats import STANDARD_CAUTIONS
-from ..analysis.views import NAMED_FLAGGED, band_words
+from ..analysis.views import NAMED_FLAGGED, band_words, function_words
 
 if TYPE_CHECKING:
     from ..fpca.bandwidth import BandwidthChoice
@@ -136,9 +136,10 @@ def _section_summary(c: _Context) -> None:
         "of residuals at two different readings of a subject, with the readings' own "
         "squares smoothed separately to estimate the measurement-error variance; "
         "the eigenvalues and the error variance are then refined by maximising the "
-        "marginal Gaussian likelihood of the readings with the eigenfunctions held fixed "
+        "marginal Gaussian likelihood of the readings "
         f"(over {fit.likelihood.n_subjects} subjects and {fit.likelihood.eigenvalues.size} "
-        "components); each subject's scores and trajectory follow by conditional "
+        f"components), for eigenfunctions {function_words(fit)}; each subject's scores "
+        "and trajectory follow by conditional "
         "expectation, which works with a single reading. Bands for trajectories add the "
         "variance of the components left out. Bandwidths: mean "
         f"{_how(fit.mean_bandwidth_choice)}, covariance "
@@ -286,6 +287,12 @@ def _section_components(c: _Context) -> None:
         ],
     )
     fig(s, "eigenvalues")
+    b.text(
+        s,
+        f"The eigenfunctions are {function_words(fit)}. The figure draws the other "
+        "estimate dashed where there is one; tables/eigenfunctions.csv holds both and "
+        "tables/eigenfunction_source.csv the comparison.",
+    )
     fig(s, "eigenfunctions")
     fig(s, "effects")
 

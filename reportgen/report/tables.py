@@ -14,6 +14,7 @@ import pandas as pd
 
 from ..analysis.analyse import AnalysisResult
 from ..analysis.subjects import every_subject_frames, shown_trajectories
+from ..analysis.views import other_functions
 
 FLOAT_FORMAT = "%.10g"
 
@@ -117,7 +118,27 @@ def build_tables(result: AnalysisResult) -> dict[str, pd.DataFrame]:
     ef = pd.DataFrame({"time": fit.grid})
     for j in range(k):
         ef[f"phi_{j + 1}"] = fit.eigenfunctions[:, j]
+    other = other_functions(fit)
+    if other is not None:  # the estimate not used, matched to the used components
+        name = "smoothing" if fit.functions.used == "likelihood" else "likelihood"
+        for j in range(k):
+            ef[f"{name}_phi_{j + 1}"] = other[:, j]
     tables["eigenfunctions"] = ef
+    src = fit.functions
+    tables["eigenfunction_source"] = pd.DataFrame(
+        [
+            {
+                "used": src.used,
+                "asked": src.asked,
+                "reason": src.reason,
+                "held_out_loglik_smoothing": src.held_out_smoothing,
+                "held_out_loglik_likelihood": src.held_out_likelihood,
+                "folds": src.folds,
+                "spline_basis": src.n_basis,
+                "subjects": src.subjects,
+            }
+        ]
+    )
     if result.spec.subjects.tables == "csv":
         tables.update(every_subject_frames(result))
     if result.groups is not None:

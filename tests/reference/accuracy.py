@@ -237,12 +237,16 @@ def _mean_coverage(fit: FPCAFit, design: Design) -> tuple[float, float]:
     return float(point.mean()), float(simul)
 
 
-def _l2_error(fit: FPCAFit, design: Design, k: int) -> float:
-    """L2 distance of the k-th estimated eigenfunction from the truth, sign-aligned."""
-    if k >= min(fit.n_components, len(design.functions)):
+def _l2_error(fit: FPCAFit, design: Design, k: int, which: str = "used") -> float:
+    """L2 distance of the k-th eigenfunction (of the refined set, whether or not K keeps
+    it) from the truth, sign-aligned; ``which``: the set the fit uses, or "smoothing" /
+    "likelihood" (``fit.functions``)."""
+    which = fit.functions.used if which == "used" else which
+    funcs = getattr(fit.functions, which)
+    if k >= min(funcs.shape[1], len(design.functions)):
         return np.nan
     true = design.functions[k](fit.grid)
-    est = fit.eigenfunctions[:, k]
+    est = funcs[:, k]
     est = est if np.trapezoid(est * true, fit.grid) >= 0 else -est
     return float(np.sqrt(np.trapezoid((est - true) ** 2, fit.grid)))
 
@@ -294,6 +298,9 @@ def run_design(design: Design, seeds: int) -> dict[str, object]:
                 "not_positive": fit.smoothing_error_variance <= 0,
                 **{f"lambda{k + 1}": v for k, v in enumerate(lam)},
                 "phi2": _l2_error(fit, design, 1),
+                "phi2_smoothing": _l2_error(fit, design, 1, "smoothing"),
+                "phi2_likelihood": _l2_error(fit, design, 1, "likelihood"),
+                "likelihood_used": fit.functions.used == "likelihood",
                 "K_fve": fit.n_components,
                 **{f"K_{r}": v for r, v in picks.items()},
                 "mean_pointwise": mp,
@@ -313,6 +320,8 @@ def run_design(design: Design, seeds: int) -> dict[str, object]:
 
 def _q(col: pd.Series) -> str:
     x = col.to_numpy(dtype=float)
+    if not np.any(np.isfinite(x)):
+        return "-"
     return f"{np.nanmedian(x):.2f} [{np.nanquantile(x, 0.1):.2f}, {np.nanquantile(x, 0.9):.2f}]"
 
 
@@ -481,10 +490,12 @@ def main(seeds: int = 20, write: bool = False, only: str = "") -> str:
         "## Estimates",
         "",
         "| design | refused | sigma^2 (refined) | sigma^2 (smoothing) | not positive | "
-        "lambda_1 | lambda_2 | lambda_3 | phi_2: L2 error | K by fve / aic / bic / cv | "
+        "lambda_1 | lambda_2 | lambda_3 | eigenfunctions: likelihood's used | "
+        "phi_2: L2 error (used) | phi_2: smoothing | phi_2: likelihood | "
+        "K by fve / aic / bic / cv | "
         "mean: pointwise | mean: whole curve in simultaneous | "
         "cov. bandwidth / domain length | cov. bandwidth at the limit |",
-        "|" + "---|" * 14,
+        "|" + "---|" * 17,
     ]
     details = []
     for key, res in results.items():
@@ -492,13 +503,15 @@ def main(seeds: int = 20, write: bool = False, only: str = "") -> str:
         assert isinstance(r, pd.DataFrame) and isinstance(design, Design)
         details.append(f"- {key}: {design.text}; true K = {len(design.eigenvalues)}.")
         if not len(r):
-            lines.append(f"| {key} | {res['refused']} |" + " - |" * 12)
+            lines.append(f"| {key} | {res['refused']} |" + " - |" * 15)
             continue
         lam = [(_q(r[f"lambda{k + 1}"]) if f"lambda{k + 1}" in r else "-") for k in range(3)]
         ks = " / ".join(_counts(r[f"K_{x}"]) for x in ("fve", "aic", "bic", "cv"))
         lines.append(
             f"| {key} | {res['refused']} | {_q(r.sigma2)} | {_q(r.smooth)} | "
-            f"{int(r.not_positive.sum())} | {' | '.join(lam)} | {_q(r.phi2)} | {ks} | "
+            f"{int(r.not_positive.sum())} | {' | '.join(lam)} | "
+            f"{int(r.likelihood_used.sum())}/{len(r)} | {_q(r.phi2)} | "
+            f"{_q(r.phi2_smoothing)} | {_q(r.phi2_likelihood)} | {ks} | "
             f"{_q(r.mean_pointwise)} | {r.mean_simultaneous.mean():.2f} | {_q(r.h_cov)} | "
             f"{int(r.h_cov_top.sum())} |"
         )

@@ -7,6 +7,8 @@ import re
 from html.parser import HTMLParser
 from pathlib import Path
 
+import numpy as np
+import pandas as pd
 import pypdf
 import pytest
 
@@ -117,3 +119,31 @@ def test_pdf_is_pdfa_with_attachments(regenerated: dict[str, Path], example: str
         assert "Study FLT-2026-07 (fictional)" in first and "Prepared by" in first
         first = reader.pages[1].extract_text()
     assert "Summary" in first and "Contents" in first
+
+
+@pytest.mark.parametrize("example", ["clinic_visits", "pump_service"])
+def test_the_eigenfunctions_used_are_named_with_their_evidence(
+    regenerated: dict[str, Path], example: str
+) -> None:
+    # The generated words against the run's own table (no outside reference: the sentence
+    # must quote tables/eigenfunction_source.csv and name the set the model table holds).
+    run = regenerated[example]
+    html = (run / "report.html").read_text("utf-8")
+    src = pd.read_csv(run / "tables" / "eigenfunction_source.csv").iloc[0]
+    ef = pd.read_csv(run / "tables" / "eigenfunctions.csv")
+    if src.used == "likelihood":
+        assert "The eigenfunctions are refined by maximising the marginal Gaussian" in html
+        assert "dashed: the smoothing estimates, not used" in html
+        assert "smoothing_phi_1" in ef.columns
+    else:
+        assert "The eigenfunctions are those of the smoothed covariance surface" in html
+        assert "dashed: the likelihood estimates, not used" in html
+        assert "likelihood_phi_1" in ef.columns
+    assert (
+        f"{src.held_out_loglik_likelihood:.4f} refined against "
+        f"{src.held_out_loglik_smoothing:.4f} from the surface" in html
+    )
+    model = pd.read_csv(run / "tables" / "model.csv")
+    phi = model[model.quantity == "eigenfunction"]
+    first = phi[phi.component == 1].value.to_numpy()
+    assert np.allclose(first, ef.phi_1.to_numpy(), rtol=1e-9, atol=1e-12)
