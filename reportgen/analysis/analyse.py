@@ -19,9 +19,12 @@ from ..fpca.plan import Partitioned, PartResults
 from ..fpca.result import FPCAFit, Labels
 from ..inputs.loader import Dataset
 from ..inputs.spec import Spec
-from .caveats import caveats, group_caveats
+from .adequacy import Adequacy, adequacy_caveats, model_checks
+from .caveats import caveats, group_caveats, sensitivity_caveats
 from .sensitivity import (
+    MeanMove,
     SensitivityRun,
+    mean_moves,
     run_sensitivity,
     sensitivity_factors,
     stability,
@@ -53,6 +56,8 @@ class AnalysisResult:
     stable: tuple[bool | None, ...]  # per component; None: no setting could be computed
     factors_note: str  # how the sensitivity factors were chosen
     spread: float = 0.0  # spread_trend(readings.residuals), computed once
+    adequacy: Adequacy | None = None  # the model's checks on the residual sample
+    mean_moves: tuple[MeanMove, ...] = ()  # each setting's mean against the main band
     groups: GroupComparison | None = None  # when the spec names a group column
     subject_groups: tuple[str, ...] = ()  # the group of each of fit.subjects
     # the codes (rows of fit.subjects, increasing) of the subjects of each data part, in
@@ -156,8 +161,10 @@ def analyse(
     # the ids stay Arrow text (as Python strings they would take about twice the memory)
     fit = fit_parts(data, held.ids, spec.options)  # the shown subjects' readings come later
     lap("fit")
-    factors, factors_note = sensitivity_factors(spec, fit)
-    runs = run_sensitivity(data, held.ids, fit, factors, progress)
+    factors, factors_note, fallback = sensitivity_factors(spec, fit)
+    runs, raised = run_sensitivity(data, held.ids, fit, factors, progress, fallback)
+    factors_note += raised
+    moves = mean_moves(runs, fit)
     lap("sensitivity")
     stable = stability(runs, fit.n_components, spec.sensitivity.similarity_threshold)
     drawn, drawn_scores = subject_sample(fit)
@@ -174,7 +181,13 @@ def analyse(
     view, sums, trajectories = reading_view(data, fit, np.sort(fit.rows_of_ids(shown)))
     sampled = view.residuals
     rho = spread_trend(sampled)
-    found = caveats(spec, ds, fit, runs, stable, len(sampled), rho) + group_caveats(groups, fit)
+    adequacy = model_checks(fit, sampled)
+    found = (
+        caveats(spec, ds, fit, runs, stable, len(sampled), rho)
+        + sensitivity_caveats(runs, moves, spec.units()["time"])
+        + adequacy_caveats(adequacy, spec.units()["time"])
+        + group_caveats(groups, fit)
+    )
     subjects = subject_view(fit, sums, spec.subjects.outlier_quantile, drawn, drawn_scores)
     lap("diagnostics")
     return AnalysisResult(
@@ -190,7 +203,9 @@ def analyse(
         caveats=tuple(found),
         stable=tuple(stable),
         factors_note=factors_note,
+        mean_moves=tuple(moves),
         spread=rho,
+        adequacy=adequacy,
         groups=groups,
         subject_groups=subject_groups,
         subject_parts=data.subjects,

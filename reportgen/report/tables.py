@@ -12,6 +12,7 @@ from dataclasses import asdict
 import numpy as np
 import pandas as pd
 
+from ..analysis.adequacy import adequacy_tables
 from ..analysis.analyse import AnalysisResult
 from ..analysis.subjects import every_subject_frames, shown_trajectories
 from ..analysis.views import other_functions
@@ -201,6 +202,8 @@ def build_tables(result: AnalysisResult) -> dict[str, pd.DataFrame]:
             row[f"similarity_{j + 1}"] = run.similarity[j] if run.similarity else np.nan
         rows.append(row)
     tables["sensitivity"] = pd.DataFrame(rows)
+    if result.adequacy is not None:
+        tables.update(adequacy_tables(result.adequacy))
     tables["model"] = fit.predictor.to_frame()
     tables["band"] = pd.DataFrame([asdict(fit.band)])
     if fit.replicates:  # a corrected band: predictions from the run need its resamples
