@@ -9,7 +9,7 @@ from ..fpca.groups import GroupComparison
 from ..fpca.result import FPCAFit
 from ..inputs.loader import Dataset
 from ..inputs.spec import Spec
-from .sensitivity import SensitivityRun
+from .sensitivity import MeanMove, SensitivityRun, directions
 
 STANDARD_CAUTIONS = (
     "These results describe the study sample under the model's assumptions.",
@@ -184,5 +184,32 @@ def selection_caveats(fit: FPCAFit) -> list[str]:
             f"{fit.cumulative_fve[k - 1]:.3f}, is within 0.01 of the threshold "
             f"{fit.options.fve_threshold:g}: a slightly different sample could change "
             "the number of components."
+        )
+    return out
+
+
+def sensitivity_caveats(
+    runs: list[SensitivityRun], moves: list[MeanMove], time_unit: str
+) -> list[str]:
+    """A one-sided sensitivity analysis, and a mean that leaves its band when the
+    bandwidths move."""
+    out = []
+    side = directions(runs)
+    if side and side != "no setting computed":
+        out.append(
+            f"Sensitivity to the bandwidths: {side}, so the stable / not stable verdicts "
+            "say nothing about the other side."
+        )
+    far = [m for m in moves if m.ratio > 1.0]
+    if far:
+        tu = f" {time_unit}" if time_unit else ""
+        out.append(
+            "The mean moves beyond its simultaneous band when the bandwidths change ("
+            + "; ".join(
+                f"x{m.factor:g}: {m.moved:.4g} against {m.main:.4g} at time {m.time:.4g}{tu}, "
+                f"{m.ratio:.2g} band half-widths"
+                for m in far
+            )
+            + "): read the mean curve's shape there with care."
         )
     return out

@@ -16,7 +16,7 @@ import pytest
 
 from reportgen.analysis.analyse import AnalysisResult, analyse
 from reportgen.inputs.loader import load_dataset
-from reportgen.inputs.spec import load_spec
+from reportgen.inputs.spec import Spec, load_spec
 
 ROOT = Path(__file__).resolve().parents[2]
 
@@ -256,23 +256,113 @@ def test_the_dropped_eigenvalues_share_is_the_same_in_components_and_caveats(
     assert all(share in c for c in caveat)
 
 
-def test_a_raised_factor_is_printed_as_the_factor_run(
-    base: AnalysisResult, monkeypatch: pytest.MonkeyPatch
-) -> None:
-    # The sentence names the factor that was run (the smallest feasible one, rounded up to
-    # two decimals), not the floor rounded to nearest ("raised to 0.85" beside a 0.86 run).
+def _failing_below(cut: float, base: AnalysisResult, monkeypatch: pytest.MonkeyPatch) -> None:
+    """Make every sensitivity refit whose factor is below ``cut`` fail, as a smoother that
+    is not defined there would."""
+    import reportgen.analysis.sensitivity as sensitivity
+    from reportgen.errors import EstimationError
+
+    real = sensitivity.fit_parts
+
+    def fit_parts(data, labels, options, per_subject=True):  # type: ignore[no-untyped-def]
+        if options.mean_bandwidth < cut * base.fit.mean_bandwidth - 1e-9:
+            raise EstimationError("the mean smoother is not defined at this bandwidth")
+        return real(data, labels, options, per_subject=per_subject)
+
+    monkeypatch.setattr(sensitivity, "fit_parts", fit_parts)
+
+
+def _default_factors(base: AnalysisResult) -> Spec:
     from dataclasses import replace
 
-    import reportgen.analysis.sensitivity as sensitivity
-
-    monkeypatch.setattr(sensitivity, "_smallest_feasible_factor", lambda fit: 0.853)
-    spec = replace(
+    return replace(
         base.spec,
         sensitivity=replace(base.spec.sensitivity, factors=(0.5, 0.75, 1.5, 2.0), given=False),
     )
-    factors, note = sensitivity.sensitivity_factors(spec, base.fit)
-    assert factors == [0.86, 1.5, 2.0]
-    assert "0.5, 0.75 raised to 0.86, the smallest factor" in note
+
+
+def _data(base: AnalysisResult, tmp_path: Path) -> tuple[object, object]:
+    spec = load_spec(_copy(tmp_path))
+    ds = load_dataset(spec, for_fit=True)
+    from reportgen.fpca.plan import Partitioned
+
+    held = ds.readings
+    assert held is not None
+    return Partitioned.of(held.executor, held.parts), held.ids
+
+
+def _copy(tmp_path: Path) -> Path:
+    shutil.copy(ROOT / "specs" / "clinic_visits.csv", tmp_path / "clinic_visits.csv")
+    (tmp_path / "s.yaml").write_text((ROOT / "specs" / "clinic_visits.yaml").read_text())
+    return tmp_path / "s.yaml"
+
+
+def test_default_factors_are_tried_as_they_are_and_raised_only_when_they_fail(
+    base: AnalysisResult, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # The README's rule: the default factors run as they are; one below 1 that cannot be
+    # fitted is raised to the smallest factor at which every chosen bandwidth stays at or
+    # above its smallest feasible candidate, printed as the factor run (two decimals).
+    import reportgen.analysis.sensitivity as sensitivity
+
+    factors, note, fallback = sensitivity.sensitivity_factors(_default_factors(base), base.fit)
+    assert factors == [0.5, 0.75, 1.5, 2.0] and note == "Default factors 0.5, 0.75, 1.5 and 2."
+    monkeypatch.setattr(sensitivity, "_smallest_feasible_factor", lambda fit: 0.853)
+    factors, _, fallback = sensitivity.sensitivity_factors(_default_factors(base), base.fit)
+    assert fallback == 0.86
+    _failing_below(0.8, base, monkeypatch)
+    data, ids = _data(base, tmp_path)
+    runs, raised = sensitivity.run_sensitivity(data, ids, base.fit, factors, lambda _: None, 0.86)
+    assert [r.factor for r in runs] == [0.86, 1.5, 2.0]
+    assert all(r.fit is not None for r in runs)
+    assert raised.startswith(" 0.5, 0.75 could not be fitted (the mean smoother is not defined")
+    assert "raised to 0.86, the smallest factor" in raised
+    assert sensitivity.directions(runs) == ""
+
+
+def test_only_larger_bandwidths_tried_is_said(
+    base: AnalysisResult, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # No smaller setting computable and no fallback below 1: the verdict is one-sided and
+    # the report says so (a caveat and the verdict table).
+    import reportgen.analysis.sensitivity as sensitivity
+    from reportgen.analysis.caveats import sensitivity_caveats
+
+    _failing_below(1.0, base, monkeypatch)
+    data, ids = _data(base, tmp_path)
+    runs, raised = sensitivity.run_sensitivity(
+        data, ids, base.fit, [0.5, 0.75, 1.5, 2.0], lambda _: None, None
+    )
+    assert raised == ""
+    assert sensitivity.directions(runs) == "only larger bandwidths tried"
+    words = " ".join(sensitivity_caveats(runs, sensitivity.mean_moves(runs, base.fit), "weeks"))
+    assert "Sensitivity to the bandwidths: only larger bandwidths tried" in words
+
+
+def test_a_mean_that_leaves_its_band_gets_a_verdict_and_a_caveat(base: AnalysisResult) -> None:
+    # The rule (no outside reference): a setting's mean further from the main mean than the
+    # simultaneous band's half-width anywhere makes the mean "not stable", with the place.
+    from dataclasses import replace
+
+    import reportgen.analysis.sensitivity as sensitivity
+    from reportgen.analysis.caveats import sensitivity_caveats
+
+    fit = base.fit
+    run = next(r for r in base.sensitivity if r.fit is not None)
+    assert run.fit is not None
+    half = fit.mean_simultaneous_multiplier * fit.mean_se
+    j = int(np.nanargmax(half))
+    bumped = fit.mean.copy()
+    bumped[j] += 2.0 * half[j]
+    moved = replace(run, fit=replace(run.fit, mean=bumped))
+    moves = sensitivity.mean_moves([moved], fit)
+    assert moves[0].ratio == pytest.approx(2.0, rel=1e-9) and moves[0].time == fit.grid[j]
+    words = " ".join(sensitivity_caveats([moved], moves, "weeks"))
+    assert "The mean moves beyond its simultaneous band" in words
+    assert f"at time {fit.grid[j]:.4g} weeks, 2 band half-widths" in words
+    assert all(m.ratio <= 1.0 for m in base.mean_moves) == (
+        not any("The mean moves beyond" in c for c in base.caveats)
+    )
 
 
 def test_the_shown_subjects_sentence_reads_without_listed_ids(base: AnalysisResult) -> None:
