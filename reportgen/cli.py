@@ -36,7 +36,7 @@ data:
   # keep_rows:              # optional: keep only rows that meet every condition
   #   - {{column: PARAMCD, equals: ALB}}
   #   - {{column: ANL01FL, in: ["Y"]}}
-  time_unit: ""
+  time_unit: "{time_unit}"
   value_unit: ""
   transform: none           # none, log or log10
 checks:
@@ -50,7 +50,7 @@ model:
   component_rule: fve       # fve, aic, bic, cv or fixed (then set n_components)
   fve_threshold: 0.95
 sensitivity:
-  factors: [0.5, 0.75, 1.5, 2.0]
+  # factors: [0.5, 0.75, 1.5, 2.0]   # the default; factors written here are used as given
   similarity_threshold: 0.9
 subjects:
   count: 6                  # trajectories shown; or list ids under show: [...]
@@ -190,8 +190,7 @@ def _cmd_compare(args: argparse.Namespace) -> int:
 
 
 DATE_LINES = """\
-  time_origin: first        # dates: first (each subject's first reading), an ISO date, or
-                            # {column: NAME} (each subject's baseline date in that column)
+  time_origin: first        # first (each subject's first date), an ISO date or a column
   time_scale: days          # days, weeks, months, years or hours
 """
 NUMBER_LINES = """\
@@ -245,6 +244,7 @@ def _cmd_init(args: argparse.Namespace) -> int:
         data_name=data.name,
         listing=column_listing(guess),
         time_lines=DATE_LINES if guess.time_is_date else NUMBER_LINES,
+        time_unit="days" if guess.time_is_date else "",  # as time_scale, for units.csv
     )
     target.write_text(text, encoding="utf-8")
     print(f"starter spec written: {target}")

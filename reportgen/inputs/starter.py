@@ -4,11 +4,13 @@ The guess goes by name first, then by type, and never takes a date column for a 
 
 * subject: a column named like an identifier (id, subject, patient, unit, ...), else the
   first text or whole-number column whose values repeat;
-* time: a date column or a numeric column named like a time (time, day, week, visit,
-  age, ...), dates preferred only when no numeric time column is named so;
-* value: the remaining numeric column that varies within subjects (a per-subject constant
-  such as a birth weight is not a reading), named like a measurement (value, result, aval,
-  ...) if one is, else the first such column.
+* time: a column that varies within subjects (age at entry or a follow-up length does
+  not), numeric and named like a time (time, day, week, visit, age, ...; by its name or
+  its stored label, such as "Days since enrollment"), else a date column;
+* value: the remaining numeric column that varies within subjects (a per-subject
+  constant such as a birth weight is not a reading) and is not a flag or a code (four
+  values at most), named (or labelled) like a measurement (value, result, aval, ...) if
+  one is, else the first such column.
 
 The starter spec lists every column of the file in a comment, with its type and any label
 that the file stores, so the user can correct the guess.
@@ -84,6 +86,12 @@ def _varies_within(frame: pd.DataFrame, subject: str, column: str) -> bool:
     return bool((per > 1).any())
 
 
+def _coded(series: pd.Series) -> bool:
+    """Four values at most: a flag or a code (0/1, 0/0.5/1, a stage 1-4), not a
+    measurement."""
+    return int(series.dropna().nunique()) <= 4
+
+
 def guess_columns(table: Table) -> Guess:
     """The guessed subject, time and value columns (raises ValueError when none fits)."""
     frame = table.frame
@@ -102,19 +110,34 @@ def guess_columns(table: Table) -> Guess:
     )
     rest = [n for n in names if n != subject]
     numeric = ("number", "whole number")
+    labels = {c.name: c.label for c in cols}
+    varies = {n: _varies_within(frame, subject, n) for n in rest if kinds[n] in (*numeric, "date")}
+
+    def named(pattern: re.Pattern[str], n: str) -> bool:
+        """The column's name or its stored label reads like ``pattern``."""
+        return bool(pattern.search(n) or pattern.search(labels[n]))
+
+    # the time varies within subjects: age at entry or a follow-up length is constant there
     time = (
-        _first(rest, lambda n: _TIME.search(n) and kinds[n] in numeric)
+        _first(rest, lambda n: named(_TIME, n) and kinds[n] in numeric and varies.get(n))
+        or _first(rest, lambda n: kinds[n] == "date" and varies.get(n))
+        or _first(rest, lambda n: named(_TIME, n) and kinds[n] in numeric)
         or _first(rest, lambda n: kinds[n] == "date")
         or _first(rest, lambda n: kinds[n] in numeric)
     )
     if time is None:
         raise ValueError("no column holds numbers or dates that could be the time")
     rest = [n for n in rest if n != time]
-    varies = {n: _varies_within(frame, subject, n) for n in rest if kinds[n] in numeric}
+
+    def reading(n: str) -> bool:
+        """Varies within subjects and is not a flag or a code."""
+        return bool(varies.get(n)) and kinds[n] in numeric and not _coded(frame[n])
+
     value = (
-        _first(rest, lambda n: _VALUE.search(n) and varies.get(n))
-        or _first(rest, lambda n: kinds[n] == "number" and varies.get(n))
-        or _first(rest, lambda n: varies.get(n))
+        _first(rest, lambda n: named(_VALUE, n) and reading(n))
+        or _first(rest, lambda n: kinds[n] == "number" and reading(n))
+        or _first(rest, reading)
+        or _first(rest, lambda n: bool(varies.get(n)) and kinds[n] in numeric)
         or _first(rest, lambda n: kinds[n] in numeric)
     )
     if value is None:

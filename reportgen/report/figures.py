@@ -18,6 +18,7 @@ from cycler import cycler
 from matplotlib.figure import Figure as MplFigure
 from scipy.special import ndtri
 
+from ..analysis.adequacy import ADEQUACY_LEVEL
 from ..analysis.analyse import AnalysisResult
 from ..analysis.views import MIN_SUPPORT, band_words, density, other_functions
 from .svg import figure_svg
@@ -39,6 +40,7 @@ PLOT_RC = {
     "lines.linewidth": 1.6,
 }
 MAX_POINTS = 4000  # above this, scatter plots become densities
+LABELLED = 5  # flagged subjects named in the scores figure (more overlap and cannot be read)
 MAX_MARKS = 200  # above this many, marked points (flagged subjects) are drawn as an image
 
 
@@ -63,14 +65,23 @@ def make_figures(
 Drawn = tuple[MplFigure, str, str]  # the figure, its caption, its alt text
 
 
+def with_unit(label: str, unit: str) -> str:
+    """``label (unit)``; a label that already ends in a parenthesised unit (a file's stored
+    label, "Serum level (mg/dl)") has it replaced, not repeated."""
+    if not unit:
+        return label
+    stem = label.rstrip()
+    if stem.endswith(")") and "(" in stem:
+        stem = stem[: stem.rfind("(")].rstrip() or stem
+    return f"{stem} ({unit})"
+
+
 def _time_label(r: AnalysisResult) -> str:
-    unit = r.spec.data.time_unit
-    return r.time_label + (f" ({unit})" if unit else "")
+    return with_unit(r.time_label, r.spec.data.time_unit)
 
 
 def _value_label(r: AnalysisResult) -> str:
-    unit = r.spec.value_unit
-    return r.value_label + (f" ({unit})" if unit else "")
+    return with_unit(r.value_label, r.spec.value_unit)
 
 
 def _level(r: AnalysisResult) -> str:
@@ -90,7 +101,7 @@ def _readings_per_subject(r: AnalysisResult) -> Drawn:
     )
 
 
-def _design(r: AnalysisResult) -> Drawn:
+def _pair_coverage(r: AnalysisResult) -> Drawn:
     g, tl = r.fit.grid, _time_label(r)
     fig, ax = plt.subplots(figsize=(4.2, 3.6))
     pc = r.fit.pair_counts
@@ -102,11 +113,11 @@ def _design(r: AnalysisResult) -> Drawn:
         aspect="auto",
     )
     fig.colorbar(img, ax=ax, label="log(1 + pairs)")
-    ax.set_xlabel(tl)
-    ax.set_ylabel(tl)
+    ax.set_xlabel("first reading, " + tl)
+    ax.set_ylabel("second reading, " + tl)
     return (
         fig,
-        "Design: where pairs of readings (t_j, t_l) of one subject fall; white "
+        "Pair coverage: where pairs of readings (t_j, t_l) of one subject fall; white "
         "areas have no support for the covariance.",
         "Heat map of the density of within-subject time pairs.",
     )
@@ -200,15 +211,32 @@ def _covariance(r: AnalysisResult) -> Drawn:
     sd = np.sqrt(np.diag(cov))
     with np.errstate(divide="ignore", invalid="ignore"):
         corr = np.where(np.outer(sd, sd) > 0, cov / np.outer(sd, sd), np.nan)
-    for ax, surf, title, levels in (
-        (axes[0], cov, "covariance (retained)", 12),
-        (axes[1], np.clip(corr, -1, 1), "correlation (retained)", np.linspace(-1, 1, 21)),
-        (axes[2], fit.covariance, "raw smooth (diagnostic)", 12),
+    unit = r.spec.units()["covariance"]
+    rank_one = fit.n_components == 1
+    for ax, surf, title, label in (
+        (axes[0], cov, "covariance (retained)", unit),
+        (axes[1], np.clip(corr, -1, 1), "correlation (retained)", "correlation"),
+        (axes[2], fit.covariance, "raw smooth (diagnostic)", unit),
     ):
-        cs = ax.contourf(g, g, surf, levels=levels, cmap="RdBu_r")
+        if label == "correlation":
+            levels = np.linspace(-1, 1, 21)
+            cmap = "RdBu_r"  # diverging: the sign of a correlation is its message
+        else:
+            # a diverging map centred on 0 where values take both signs; a sequential one
+            # where all are positive (low covariances must not read as negative)
+            top = float(np.nanmax(np.abs(surf))) or 1.0
+            positive = float(np.nanmin(surf)) >= 0.0
+            levels = np.linspace(0.0 if positive else -top, top, 13)
+            cmap = "Blues" if positive else "RdBu_r"
+        cs = ax.contourf(g, g, surf, levels=levels, cmap=cmap)
         cs.set_rasterized(True)
-        fig.colorbar(cs, ax=ax)
-        ax.set_title(title, fontsize=8)
+        fig.colorbar(cs, ax=ax, label=label or None)
+        ax.set_title(
+            "correlation (retained): 1 or -1 everywhere with one component"
+            if rank_one and label == "correlation"
+            else title,
+            fontsize=8 if not (rank_one and label == "correlation") else 6,
+        )
         ax.set_xlabel(tl)
     axes[0].set_ylabel(tl)
     dropped = 1.0 - float(fit.cumulative_fve[fit.n_components - 1])
@@ -217,7 +245,14 @@ def _covariance(r: AnalysisResult) -> Drawn:
         f"Covariance and correlation rebuilt from the {fit.n_components} retained "
         f"components (positive semi-definite; they leave out {dropped:.1%} of the "
         "variance), and the raw smoothed covariance surface, which need not be positive "
-        "semi-definite, as a diagnostic.",
+        "semi-definite, as a diagnostic"
+        + (
+            ". With one component the rebuilt correlation is 1 or -1 at every pair of "
+            "times (the sign of the eigenfunction's product), so that panel says nothing "
+            "beyond it."
+            if rank_one
+            else "."
+        ),
         "Three filled contour maps: the covariance and correlation from the retained "
         "components, and the raw smoothed covariance.",
     )
@@ -372,15 +407,26 @@ def _trajectories(r: AnalysisResult) -> Drawn:
         ax.set_title(f"subject {sid}", fontsize=8)
     for j in range(len(shown), rows * cols):
         axes[j // cols, j % cols].set_visible(False)
+    lo, lo_all = traj.lower.to_numpy(dtype=float), traj.lower_simultaneous.to_numpy(dtype=float)
+    coincide = bool(np.allclose(lo, lo_all, rtol=1e-9, atol=0.0, equal_nan=True))
+    if r.fit.band.kind == "unavailable":
+        caption = f"Recovered trajectories and the subjects' readings; bands {band_words(r.fit)}."
+    elif coincide:
+        caption = (
+            f"Recovered trajectories with {level} bands and the subjects' readings; the "
+            "pointwise and the simultaneous band coincide here (one component and none left "
+            "out: a curve's error is one score's error times the eigenfunction, so a band "
+            f"that holds at one time holds at all). Bands {band_words(r.fit)}."
+        )
+    else:
+        caption = (
+            f"Recovered trajectories with pointwise {level} bands (inner) and "
+            f"simultaneous {level} bands (outer, the whole curve), and the subjects' "
+            f"readings. Bands {band_words(r.fit)}."
+        )
     return (
         fig,
-        (
-            f"Recovered trajectories and the subjects' readings; bands {band_words(r.fit)}."
-            if r.fit.band.kind == "unavailable"
-            else f"Recovered trajectories with pointwise {level} bands (inner) and "
-            f"simultaneous {level} bands (outer, the whole curve), and the subjects' readings. "
-            f"Bands {band_words(r.fit)}."
-        ),
+        caption,
         "Small multiples: each selected subject's fitted curve, band and readings.",
     )
 
@@ -436,11 +482,17 @@ def _sensitivity(r: AnalysisResult) -> Drawn:
         for k in range(min(k_show, run.fit.n_components)):
             sign = np.sign(np.sum(run.fit.eigenfunctions[:, k] * fit.eigenfunctions[:, k])) or 1
             axes[0, 1 + k].plot(g, sign * run.fit.eigenfunctions[:, k], color=color, linewidth=1)
+    ef_unit = r.spec.units()["eigenfunction"]
     for k in range(k_show):
         axes[0, 1 + k].plot(g, fit.eigenfunctions[:, k], color="#222")
         axes[0, 1 + k].set_title(f"phi_{k + 1}")
+        axes[0, 1 + k].set_ylabel("eigenfunction" + (f" ({ef_unit})" if ef_unit else ""))
     axes[0, 0].set_title("mean")
-    axes[0, 0].legend(fontsize=7)
+    axes[0, 0].set_ylabel(_value_label(r))
+    for ax in axes[0]:
+        ax.set_xlabel(_time_label(r))
+    # the legend beside the panels, not over the curves
+    axes[0, 0].legend(fontsize=6, loc="upper left", bbox_to_anchor=(0.0, -0.3), ncol=3)
     return (
         fig,
         "Mean and eigenfunctions at each bandwidth factor (black: main fit).",
@@ -457,8 +509,14 @@ def _scores_figure(r: AnalysisResult) -> Drawn:
     view = r.subjects_view
     sc = view.scores
     flagged = view.flagged
-    named = view.farthest.iloc[:10]  # the ten farthest flagged subjects, of every subject
+    named = view.farthest.iloc[:LABELLED]  # the farthest flagged subjects, of every subject
     labels = named.subject.astype(str).tolist()
+    which = (
+        f"the {len(labels)} farthest of the {view.n_flagged} flagged labelled by id"
+        if view.n_flagged > len(labels)
+        else "labelled by id"
+    )
+    table = "tables/scores/" if r.spec.subjects.tables == "parquet" else "tables/scores.csv"
     at = named[[f"score_{k + 1}" for k in range(min(2, fit.n_components))]].to_numpy()
     over = (
         f" ({view.sample_words()}; the labelled ones of every subject)"
@@ -478,12 +536,12 @@ def _scores_figure(r: AnalysisResult) -> Drawn:
             label="flagged",
             rasterized=bool(flagged.sum() > MAX_MARKS),
         )
-        for label, (x,) in zip(labels, at, strict=True):
+        for i, (label, (x,)) in enumerate(zip(labels, at, strict=True)):
             ax.annotate(
                 label,
                 (x, 0),
                 textcoords="offset points",
-                xytext=(0, 6),
+                xytext=(0, 6 + 14 * (i % 3)),  # staggered: close subjects' ids do not overlap
                 fontsize=6,
                 rotation=90,
                 ha="center",
@@ -492,7 +550,7 @@ def _scores_figure(r: AnalysisResult) -> Drawn:
         ax.set_ylabel("subjects")
         caption = (
             "Distribution of the scores of the single retained component; flagged "
-            f"subjects circled on the axis and labelled by id{over}."
+            f"subjects circled on the axis, {which}{over}; every flag is in {table}."
         )
         alt = "Histogram of the subjects' scores with flagged subjects marked."
     else:
@@ -513,13 +571,15 @@ def _scores_figure(r: AnalysisResult) -> Drawn:
             label="flagged",
             rasterized=bool(flagged.sum() > MAX_MARKS),
         )
-        for label, (x, y) in zip(labels, at, strict=True):
-            ax.annotate(label, (x, y), textcoords="offset points", xytext=(3, 3), fontsize=6)
+        for i, (label, (x, y)) in enumerate(zip(labels, at, strict=True)):
+            # offsets in turn around the point: close subjects' ids do not overlap
+            dx, dy = ((4, 4), (4, -9), (-14, 4), (-14, -9), (4, 12))[i % 5]
+            ax.annotate(label, (x, y), textcoords="offset points", xytext=(dx, dy), fontsize=6)
         ax.set_xlabel("score 1" + unit)
         ax.set_ylabel("score 2" + unit)
         caption = (
-            "Scores of the first two components; flagged subjects circled and labelled "
-            f"by id{over}."
+            f"Scores of the first two components; flagged subjects circled, {which}{over}; "
+            f"every flag is in {table}."
         )
         alt = "Scatter of subjects' first two scores with flagged subjects circled."
     if flagged.any():
@@ -604,10 +664,126 @@ def _group_scores(r: AnalysisResult) -> Drawn | None:
     )
 
 
+def _binned_panel(ax: Any, check: Any, label: str) -> None:
+    """Bin means with their intervals (a bar per bin) and the model's value, marked where
+    it falls outside."""
+    mid = (check.lower_edge + check.upper_edge) / 2.0
+    ok = np.isfinite(check.observed)
+    ax.errorbar(
+        mid[ok],
+        check.observed[ok],
+        yerr=np.vstack([(check.observed - check.low)[ok], (check.high - check.observed)[ok]]),
+        fmt="o",
+        markersize=3,
+        color=PALETTE[0],
+        linewidth=1,
+        label="readings (interval)",
+    )
+    ax.plot(mid[ok], check.expected[ok], color=PALETTE[1], linewidth=1.2, label=label)
+    bad = ok & check.outside
+    if np.any(bad):
+        ax.plot(mid[bad], check.observed[bad], "x", color=PALETTE[1], markersize=7, label="outside")
+
+
+def _variance_check(r: AnalysisResult) -> Drawn | None:
+    found = r.adequacy
+    if found is None:
+        return None
+    fig, ax = plt.subplots(figsize=(6, 2.8))
+    _binned_panel(ax, found.variance, "model")
+    ax.set_xlabel(_time_label(r))
+    unit = r.spec.units()["error variance"]
+    ax.set_ylabel("variance of a reading" + (f" ({unit})" if unit else ""))
+    ax.legend(fontsize=7, loc="best", framealpha=0.8)
+    return (
+        fig,
+        "Model against readings: per bin of reading times (equal numbers of readings), the "
+        "mean squared deviation of the readings from the mean curve with its interval "
+        f"({ADEQUACY_LEVEL:.0%} over the bins together, cluster-robust over subjects), and "
+        "the model's variance of a single reading there (retained and left-out components "
+        "plus the error variance); a cross marks a bin where the model is outside.",
+        "Points with intervals for the readings' variance per time bin and a line for the "
+        "model's variance.",
+    )
+
+
+def _residual_trend(r: AnalysisResult) -> Drawn | None:
+    found = r.adequacy
+    if found is None:
+        return None
+    fig, axes = plt.subplots(1, 3, figsize=(6.9, 2.6))
+    for ax, check, xl, model in (
+        (axes[0], found.by_time, _time_label(r), "0 (model)"),
+        (axes[1], found.by_fitted, "fitted " + _value_label(r), "0 (model)"),
+        (axes[2], found.spread, _time_label(r), "1 (model)"),
+    ):
+        _binned_panel(ax, check, model)
+        ax.set_xlabel(xl)
+    unit = r.spec.units()["residual"]
+    axes[0].set_ylabel("mean residual" + (f" ({unit})" if unit else ""))
+    axes[2].set_ylabel("mean squared standardized")
+    axes[0].legend(fontsize=6, loc="best", framealpha=0.8)
+    return (
+        fig,
+        "Leave-one-reading-out residuals (a reading minus its prediction from the "
+        "subject's other readings): their mean per bin of time and of fitted value (0 "
+        "under the model), and their mean square over its model value per bin of time (1 "
+        f"under the model: one error variance), with {ADEQUACY_LEVEL:.0%} intervals over "
+        "the bins together (cluster-robust over subjects).",
+        "Three panels of binned means with intervals: residuals against time, against "
+        "fitted value, and squared standardized residuals against time, with the model's "
+        "value as a line.",
+    )
+
+
+def _visit_pattern(r: AnalysisResult) -> Drawn | None:
+    found = r.adequacy
+    if found is None:
+        return None
+    fig, axes = plt.subplots(1, 2, figsize=(6.6, 2.6), sharey=True)
+    v = found.visits
+    for ax, x, xl, rho, p in (
+        (
+            axes[0],
+            found.last_time,
+            "last reading, " + _time_label(r),
+            v.with_last_time[0],
+            v.p_last_time[0],
+        ),
+        (axes[1], found.count, "readings of the subject", v.with_count[0], v.p_count[0]),
+    ):
+        if x.size > MAX_POINTS:
+            _density(ax, x, found.first_score, (40, 30))
+        else:
+            ax.scatter(
+                x,
+                found.first_score,
+                s=6,
+                color=PALETTE[0],
+                alpha=0.5,
+                linewidths=0,
+                rasterized=True,
+            )
+        ax.set_xlabel(xl)
+        ax.set_title(f"Spearman {rho:.2f}, p = {p:.2g}", fontsize=8)
+        ax.axhline(0, color="#888", linewidth=0.8)
+    unit = r.spec.units()["score"]
+    axes[0].set_ylabel("component 1 score" + (f" ({unit})" if unit else ""))
+    return (
+        fig,
+        "Visit pattern against level: each subject's component 1 score against the time of "
+        "its last reading and its number of readings (the residual sample). The model "
+        "assumes neither depends on the subject's curve; tables/visit_pattern.csv has "
+        "every component.",
+        "Two scatter plots of the first score against the last reading time and against "
+        "the number of readings.",
+    )
+
+
 # The report's figures, in report order: name -> drawing function (None: not in this report).
 FIGURES: dict[str, Callable[[AnalysisResult], Drawn | None]] = {
     "readings_per_subject": _readings_per_subject,
-    "design": _design,
+    "pair_coverage": _pair_coverage,
     "mean": _mean,
     "covariance": _covariance,
     "bandwidths": _bandwidths,
@@ -619,5 +795,8 @@ FIGURES: dict[str, Callable[[AnalysisResult], Drawn | None]] = {
     "group_scores": _group_scores,
     "trajectories": _trajectories,
     "residuals": _residuals,
+    "variance_check": _variance_check,
+    "residual_trend": _residual_trend,
+    "visit_pattern": _visit_pattern,
     "sensitivity": _sensitivity,
 }

@@ -33,7 +33,7 @@ if TYPE_CHECKING:
 # Figures that need the fit's summaries only (not the readings or per-subject results),
 # drawn by the worker from a slim copy of the analysis: about the third of the drawing that
 # the worker, ready later than the main process, can take (benchmarks/CHOICES.md).
-SUMMARY_FIGURES = ("design", "covariance", "bandwidths", "eigenvalues")
+SUMMARY_FIGURES = ("pair_coverage", "covariance", "bandwidths", "eigenvalues")
 
 
 def _warm_up() -> None:

