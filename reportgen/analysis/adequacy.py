@@ -42,9 +42,10 @@ def model_variance_at(fit: FPCAFit, t: np.ndarray) -> np.ndarray:
     return np.asarray(phi**2 @ model.eigenvalues + left_out + model.error_variance)
 
 
-def model_checks(fit: FPCAFit, readings: pd.DataFrame) -> Adequacy:
-    """The checks on ``readings`` (the residual sample: subject, time, value, fitted,
-    residual), with the subjects' scores and score covariances from the fit.
+def model_checks(fit: FPCAFit, readings: pd.DataFrame, codes: np.ndarray) -> Adequacy:
+    """The checks on ``readings`` (the residual sample: time, value, fitted, residual) of
+    the subjects ``codes`` (rows of ``fit.subjects``, one per reading), with the subjects'
+    scores and score covariances from the fit.
 
     The residual checks use leave-one-reading-out residuals, ``e_j = y_j - E[y_j | the
     subject's other readings]``, under the model of every refined component (the retained
@@ -56,11 +57,10 @@ def model_checks(fit: FPCAFit, readings: pd.DataFrame) -> Adequacy:
     (``Omega`` the score error covariance; ``fpca.scores``), with variance ``1 /
     (Sigma^-1)_jj``.
     """
-    order = np.argsort(fit.rows_of_ids(readings.subject.astype(str).tolist()), kind="stable")
-    readings = readings.iloc[order]
+    order = np.argsort(codes, kind="stable")
+    readings, codes = readings.iloc[order], codes[order]
     t = readings.time.to_numpy(dtype=np.float64)
     value = readings.value.to_numpy(dtype=np.float64)
-    codes = fit.rows_of_ids(readings.subject.astype(str).tolist())
     deviation = value - fit.predictor.mean_at(t)
     subjects, owner = np.unique(codes, return_inverse=True)
     last = np.full(subjects.size, -np.inf)

@@ -181,7 +181,7 @@ def analyse(
     view, sums, trajectories = reading_view(data, fit, np.sort(fit.rows_of_ids(shown)))
     sampled = view.residuals
     rho = spread_trend(sampled)
-    adequacy = model_checks(fit, sampled)
+    adequacy = model_checks(fit, sampled, view.residual_codes)
     found = (
         caveats(spec, ds, fit, runs, stable, len(sampled), rho)
         + sensitivity_caveats(runs, moves, spec.units()["time"])

@@ -114,11 +114,14 @@ def _refit(
     hd = factor * fit.diagonal_bandwidth
     progress(f"sensitivity: bandwidths x {factor:g}")
     # Plug-in bands: the sensitivity fits are compared by their estimates, not bands.
+    # the main fit's eigenfunctions' source (refined or not), without its held-out test:
+    # a setting changes the bandwidths only
     options = replace(
         with_bandwidths(fit.options, hm, hc, hd),
         band="plugin",
         component_rule="fixed",
         n_components=fit.n_components,
+        eigenfunctions=fit.functions.used,
     )
     # only the population parts are compared: the refit's scores and readings would
     # double the memory of the run at large sizes

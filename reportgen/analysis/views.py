@@ -13,6 +13,7 @@ import numpy as np
 import pandas as pd
 from scipy.special import chdtri
 
+from ..fpca.adequacy import average_ranks as average_ranks  # one implementation, shared
 from ..fpca.design import Sample, seeded_sample
 from ..fpca.diagnostics import (
     axis,
@@ -69,14 +70,20 @@ class ReadingView:
     density: np.ndarray
     time_axis: tuple[float, float, int]
     value_axis: tuple[float, float, int]
+    codes: np.ndarray  # the subject code (row of fit.subjects) of each row of frame
 
     @property
     def residuals(self) -> pd.DataFrame:
         """The readings of the residual sample."""
         return self.frame[self.frame.sampled.to_numpy()]
 
+    @property
+    def residual_codes(self) -> np.ndarray:
+        """The subject codes of ``residuals``' rows."""
+        return np.asarray(self.codes[self.frame.sampled.to_numpy()])
+
     def empty(self) -> ReadingView:
-        return replace(self, frame=self.frame.iloc[:0])
+        return replace(self, frame=self.frame.iloc[:0], codes=self.codes[:0])
 
     def sample_words(self, n_subjects: int) -> str:
         """What the residual diagnostics are drawn from when it is a sample ("" when it is
@@ -161,7 +168,13 @@ def reading_view(
         {**found.readings, "subject": fit.subjects[codes], "sampled": np.isin(codes, sampled)}
     )
     view = ReadingView(
-        fit.n_readings, int(sampled.size), frame, found.density, found.time_axis, found.value_axis
+        fit.n_readings,
+        int(sampled.size),
+        frame,
+        found.density,
+        found.time_axis,
+        found.value_axis,
+        np.asarray(codes, dtype=np.intp),
     )
     mine = np.isin(codes, shown)
     readings = Sample.from_arrays(
@@ -266,27 +279,6 @@ def spread_trend(residuals: pd.DataFrame) -> float:
     fitted -= fitted.mean()
     den = math.sqrt(float(size @ size) * float(fitted @ fitted))
     return float(size @ fitted) / den if den > 0 else float("nan")
-
-
-def average_ranks(x: np.ndarray) -> np.ndarray:
-    """Ranks 1..n of finite values, ties given the average of their ranks: one sort, a
-    third of the memory of pandas' rank when no value repeats (benchmarks/RESULTS.md)."""
-    if x.size == 0:
-        return np.zeros(0)
-    order = np.argsort(x)  # ties get one average rank: the sort need not be stable
-    xs = x[order]
-    new = np.empty(x.size, dtype=bool)
-    new[0] = True
-    np.not_equal(xs[1:], xs[:-1], out=new[1:])
-    del xs
-    ranks = np.empty(x.size)
-    if new.all():  # no ties, as with continuous values
-        ranks[order] = np.arange(1.0, x.size + 1.0)
-        return ranks
-    first = np.flatnonzero(new)
-    last = np.append(first[1:], x.size) - 1
-    ranks[order] = np.repeat((first + last) / 2.0 + 1.0, last - first + 1)
-    return ranks
 
 
 def band_words(fit: FPCAFit) -> str:

@@ -403,12 +403,24 @@ def _fit(
         beyond_readings=not np.all(inside),
     )
     if refined is not None:
-        funcs_ref, surface_ref = refined.functions, eig.values[:k_fun]
-        terms = sample_terms(
-            chosen, np.arange(used.size, dtype=np.intp), chosen_resid, grid, funcs_ref
+        new_terms = sample_terms(
+            chosen, np.arange(used.size, dtype=np.intp), chosen_resid, grid, refined.functions
         )
-        lik = maximise(terms.sums, refined.eigenvalues, refined.error_variance)
-        _check_refined(lik, level)
+        new_lik = maximise(new_terms.sums, refined.eigenvalues, refined.error_variance)
+        try:
+            _check_refined(new_lik, level)
+        except EstimationError:
+            # the refined functions reproduce every reading (few readings a subject, one
+            # function more than step 4): no error variance is left, so they are not used
+            source = replace(
+                source,
+                used="smoothing",
+                reason="the likelihood's put the error variance at "
+                f"{new_lik.error_variance:.2g}, i.e. they reproduce every reading; not used",
+            )
+        else:
+            funcs_ref, surface_ref = refined.functions, eig.values[:k_fun]
+            terms, lik = new_terms, new_lik
     # Components the likelihood gives no variance (lambda = 0) leave the refined set.
     lik, terms, order = _with_variance(lik, terms)
     funcs_ref, surface_ref = funcs_ref[:, order], surface_ref[order]

@@ -186,7 +186,9 @@ def _mean(r: AnalysisResult) -> Drawn:
     ax.plot(g, np.where(banded, fit.mean, np.nan), color=PALETTE[1], label="mean")
     ax.set_xlabel(_time_label(r))
     ax.set_ylabel(_value_label(r))
-    ax.legend(fontsize=7)
+    ax.legend(
+        fontsize=7, loc="upper left", bbox_to_anchor=(1.01, 1.0), borderaxespad=0.0
+    )  # beside the curves, not over them
     return (
         fig,
         f"Mean curve with a pointwise {level} band (inner) and a simultaneous "
@@ -335,7 +337,9 @@ def _eigenfunctions(r: AnalysisResult) -> Drawn:
     ax.set_xlabel(_time_label(r))
     ef_unit = r.spec.units()["eigenfunction"]
     ax.set_ylabel("eigenfunction" + (f" ({ef_unit})" if ef_unit else ""))
-    ax.legend(fontsize=8)
+    ax.legend(
+        fontsize=7, loc="upper left", bbox_to_anchor=(1.01, 1.0), borderaxespad=0.0
+    )  # beside the curves, not over them
     return (
         fig,
         "Eigenfunctions of the retained components"
@@ -616,7 +620,9 @@ def _group_means(r: AnalysisResult) -> Drawn | None:
         )
     ax.set_xlabel(_time_label(r))
     ax.set_ylabel(_value_label(r))
-    ax.legend(fontsize=7)
+    ax.legend(
+        fontsize=7, loc="upper left", bbox_to_anchor=(1.01, 1.0), borderaxespad=0.0
+    )  # beside the curves, not over them
     return (
         fig,
         f"Mean curve of each group with a pointwise {level} band (cluster-robust over "

@@ -587,7 +587,20 @@ def _section_reproducibility(c: _Context) -> None:
         "with the same fonts and library versions (the environment above).",
     )
     b.text(s, record_view["commands"], kind="pre")
-    b.text(s, spec.raw.decode("utf-8"), kind="pre")
+    b.text(
+        s,
+        "The spec's settings, its whole-line comments left out (a starter spec lists the "
+        "data file's columns there); spec.yaml in the run is the file as given, its "
+        "SHA-256 in the record above.",
+    )
+    b.text(s, settings_text(spec.raw.decode("utf-8")), kind="pre")
+
+
+def settings_text(raw: str) -> str:
+    """The spec without its whole-line comments (and the blank lines they leave)."""
+    return "\n".join(
+        line for line in raw.splitlines() if line.strip() and not line.lstrip().startswith("#")
+    )
 
 
 def _section_groups(c: _Context) -> None:

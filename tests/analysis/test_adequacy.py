@@ -43,7 +43,7 @@ def _checks(frame: pd.DataFrame) -> Adequacy:
     fit = fit_sparse_fpca(frame, subject="id", time="t", value="y", band="plugin")
     data = Partitioned.local([Part(fit._sample, np.arange(fit.n_subjects))])
     view, _, _ = reading_view(data, fit, np.zeros(0, dtype=np.intp))
-    return model_checks(fit, view.residuals)
+    return model_checks(fit, view.residuals, view.residual_codes)
 
 
 @pytest.mark.parametrize("seed", [1, 2, 3])

@@ -374,3 +374,54 @@ def test_the_shown_subjects_sentence_reads_without_listed_ids(base: AnalysisResu
     text = " ".join(str(asdict(x)) for x in build_sections(base, {}, {}, order=["trajectories"]))
     assert "Subjects shown: 6 at even steps through all subjects" in text
     assert "the rest of the" not in text
+
+
+def test_figure_words_follow_the_fit(base: AnalysisResult) -> None:
+    # The captions and figure labels against the fit and tables they describe (no
+    # outside reference: each sentence must be true of this analysis).
+    from dataclasses import asdict, replace
+
+    from reportgen.analysis.views import subject_view
+    from reportgen.report.figures import FIGURES, with_unit
+    from reportgen.report.sections import build_sections
+
+    fit = base.fit
+    # one component: the rebuilt correlation is +-1 everywhere, and the caption says so
+    assert fit.n_components == 1
+    fig, caption, _ = FIGURES["covariance"](base)  # type: ignore[misc]
+    assert "With one component the rebuilt correlation is 1 or -1" in caption
+    # all-positive covariances get a sequential map with the unit on its bar
+    retained = fit.retained_covariance
+    assert float(np.min(retained)) >= 0
+    assert fig.axes[0].collections[0].get_cmap().name == "Blues"
+    unit = base.spec.units()["covariance"]
+    assert unit and any(ax.get_ylabel() == unit for ax in fig.axes[3:])
+    # pointwise and simultaneous bands: "inner/outer" only where they differ
+    traj = base.trajectories
+    differ = not np.allclose(traj.lower, traj.lower_simultaneous, equal_nan=True)
+    _, caption, _ = FIGURES["trajectories"](base)  # type: ignore[misc]
+    assert ("(inner)" in caption) == differ and ("coincide here" in caption) == (not differ)
+    # a file label that carries a unit is not given a second one
+    assert with_unit("Serum level (mg/dl)", "log(mg/dl)") == "Serum level (log(mg/dl))"
+    assert with_unit("Serum level", "mg/dl") == "Serum level (mg/dl)"
+    assert with_unit("week", "") == "week"
+    # the scores figure names at most five of many flagged subjects, and says how many
+    view = subject_view(
+        fit, base.residual_sums, 0.5, base.subjects_view.sampled, base.subjects_view.scores
+    )
+    _, caption, _ = FIGURES["scores"](replace(base, subjects_view=view))  # type: ignore[misc]
+    assert f"the 5 farthest of the {view.n_flagged} flagged labelled by id" in caption
+    # the components table says when it shows only the first ten
+    text = str(asdict(build_sections(base, {}, {}, order=["components"])[0]))
+    n_all = fit.all_eigenvalues.size
+    assert (f"Shown: the first 10 of {n_all}" in text) == (n_all > 10)
+    # the figure of where pairs of readings fall has a name of its own
+    assert "pair_coverage" in FIGURES and "design" not in FIGURES
+
+
+def test_the_printed_spec_leaves_out_whole_line_comments() -> None:
+    # The rule (no outside reference): every setting line stays, no whole-line comment.
+    from reportgen.report.sections import settings_text
+
+    raw = "# columns:\n#   id: text  <- subject\nreport:\n  id: x   # folder\n\n  title: T\n"
+    assert settings_text(raw) == "report:\n  id: x   # folder\n  title: T"
