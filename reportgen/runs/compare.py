@@ -114,21 +114,8 @@ def compare_runs(a: Path, b: Path, gates: GatesSection) -> list[Finding]:
         out.append(Finding(key, f"{seta[key]['value']:.4g}", f"{setb[key]['value']:.4g}"))
     ka, kb = seta["n_components"], setb["n_components"]
     out.append(Finding("components", str(ka), str(kb), bool(gates.same_components) and ka != kb))
-    ca, cb = _table(a, "components"), _table(b, "components")
-    for k in range(min(ka, kb)):
-        la, lb = ca.eigenvalue[k], cb.eigenvalue[k]
-        rel = (lb - la) / abs(la)  # signed: a fall is a negative change
-        out.append(
-            Finding(
-                f"eigenvalue {k + 1}",
-                f"{la:.4g}",
-                f"{lb:.4g} ({rel:+.1%})",
-                abs(rel) > gates.max_eigenvalue_change,
-            )
-        )
-        out.append(Finding(f"FVE {k + 1}", f"{ca.fve[k]:.3f}", f"{cb.fve[k]:.3f}"))
     va, vb = seta["error_variance"], setb["error_variance"]
-    rel = (vb - va) / abs(va)
+    rel = (vb - va) / abs(va)  # signed: a fall is a negative change
     out.append(
         Finding(
             "error variance",
@@ -137,11 +124,80 @@ def compare_runs(a: Path, b: Path, gates: GatesSection) -> list[Finding]:
             abs(rel) > gates.max_error_variance_change,
         )
     )
-    ma, mb = _table(a, "mean"), _table(b, "mean")
-    grid = ma.time.to_numpy()
-    mb_on_a = np.interp(grid, mb.time.to_numpy(), mb["mean"].to_numpy())
-    span = float(np.ptp(ma["mean"])) or 1.0
-    change = float(np.max(np.abs(mb_on_a - ma["mean"].to_numpy())))
+    out += curve_findings(
+        Curves.of(_table(a, "mean"), _table(a, "eigenfunctions"), _table(a, "components"), ka),
+        Curves.of(_table(b, "mean"), _table(b, "eigenfunctions"), _table(b, "components"), kb),
+        gates,
+    )
+    return out
+
+
+@dataclass(frozen=True)
+class Curves:
+    """A run's mean and retained eigenfunctions on its grid, its eigenvalues and FVE."""
+
+    mean_time: np.ndarray
+    mean: np.ndarray
+    time: np.ndarray
+    functions: np.ndarray  # (grid, K)
+    eigenvalues: np.ndarray
+    fve: np.ndarray
+
+    @classmethod
+    def of(
+        cls, mean: pd.DataFrame, functions: pd.DataFrame, components: pd.DataFrame, k: int
+    ) -> Curves:
+        return cls(
+            mean.time.to_numpy(dtype=float),
+            mean["mean"].to_numpy(dtype=float),
+            functions.time.to_numpy(dtype=float),
+            np.column_stack([functions[f"phi_{j + 1}"].to_numpy(dtype=float) for j in range(k)])
+            if k
+            else np.zeros((len(functions), 0)),
+            components.eigenvalue.to_numpy(dtype=float)[:k],
+            components.fve.to_numpy(dtype=float)[:k],
+        )
+
+
+def curve_findings(ca: Curves, cb: Curves, gates: GatesSection) -> list[Finding]:
+    """The mean and the components of two runs compared on their common time domain only.
+
+    A run's curves are not extended past its own domain: both are interpolated on the
+    common domain (run A's grid points inside it, and its ends), the eigenfunctions
+    renormalised there to unit norm and matched by the largest absolute inner product
+    (greedily: the most similar pair first, then the most similar of the rest; a component
+    that swapped order is compared with its counterpart, and said so); the similarity is
+    then at most 1 (Cauchy-Schwarz) and does not depend on the sign. Eigenvalues are
+    compared between matched components.
+    """
+    out: list[Finding] = []
+    lo = max(float(ca.time[0]), float(cb.time[0]))
+    hi = min(float(ca.time[-1]), float(cb.time[-1]))
+    if not hi > lo:
+        out.append(
+            Finding(
+                "time domain",
+                f"{ca.time[0]:.4g} to {ca.time[-1]:.4g}",
+                f"{cb.time[0]:.4g} to {cb.time[-1]:.4g} (no common part: curves not compared)",
+                True,
+            )
+        )
+        return out
+    if (ca.time[0], ca.time[-1]) != (cb.time[0], cb.time[-1]):
+        out.append(
+            Finding(
+                "time domain",
+                f"{ca.time[0]:.4g} to {ca.time[-1]:.4g}",
+                f"{cb.time[0]:.4g} to {cb.time[-1]:.4g} (changed; curves compared on "
+                f"{lo:.4g} to {hi:.4g})",
+            )
+        )
+    inside = ca.time[(ca.time > lo) & (ca.time < hi)]
+    grid = np.concatenate([[lo], inside, [hi]])
+    mean_a = np.interp(grid, ca.mean_time, ca.mean)
+    mean_b = np.interp(grid, cb.mean_time, cb.mean)
+    span = float(np.ptp(mean_a)) or 1.0
+    change = float(np.max(np.abs(mean_b - mean_a)))
     out.append(
         Finding(
             "largest mean change",
@@ -150,17 +206,54 @@ def compare_runs(a: Path, b: Path, gates: GatesSection) -> list[Finding]:
             change / span > gates.max_mean_change,
         )
     )
-    ea, eb = _table(a, "eigenfunctions"), _table(b, "eigenfunctions")
     w = trapezoid_weights(grid)
-    for k in range(min(ka, kb)):
-        fb = np.interp(grid, eb.time.to_numpy(), eb[f"phi_{k + 1}"].to_numpy())
-        sim = float(abs(np.sum(w * ea[f"phi_{k + 1}"].to_numpy() * fb)))
+
+    def on_common(c: Curves) -> np.ndarray:
+        f = (
+            np.column_stack(
+                [np.interp(grid, c.time, c.functions[:, j]) for j in range(c.functions.shape[1])]
+            )
+            if c.functions.shape[1]
+            else np.zeros((grid.size, 0))
+        )
+        norms = np.sqrt(np.maximum(w @ f**2, 1e-300))
+        return np.asarray(f / norms)
+
+    fa, fb = on_common(ca), on_common(cb)
+    sim = np.abs(fa.T @ (w[:, None] * fb))  # (Ka, Kb)
+    for j, k in _matched(sim):
+        which = "" if j == k else f" (matched to component {k + 1} of the second run)"
+        la, lb = ca.eigenvalues[j], cb.eigenvalues[k]
+        rel = (lb - la) / abs(la)  # signed: a fall is a negative change
         out.append(
             Finding(
-                f"eigenfunction {k + 1} similarity",
+                f"eigenvalue {j + 1}",
+                f"{la:.4g}",
+                f"{lb:.4g} ({rel:+.1%}){which}",
+                abs(rel) > gates.max_eigenvalue_change,
+            )
+        )
+        out.append(Finding(f"FVE {j + 1}", f"{ca.fve[j]:.3f}", f"{cb.fve[k]:.3f}{which}"))
+        out.append(
+            Finding(
+                f"eigenfunction {j + 1} similarity",
                 "",
-                f"{sim:.3f}",
-                sim < gates.min_eigenfunction_similarity,
+                f"{sim[j, k]:.3f}{which}",
+                sim[j, k] < gates.min_eigenfunction_similarity,
             )
         )
     return out
+
+
+def _matched(sim: np.ndarray) -> list[tuple[int, int]]:
+    """Pairs (row, column) of ``sim``, the largest entry first, each row and column used
+    once; sorted by row. (scipy's assignment solver would load scipy into a command that
+    needs no numerical library.)"""
+    left = sim.astype(float).copy()
+    pairs = []
+    for _ in range(min(left.shape)):
+        j, k = np.unravel_index(int(np.argmax(left)), left.shape)
+        pairs.append((int(j), int(k)))
+        left[j, :] = -np.inf
+        left[:, k] = -np.inf
+    return sorted(pairs)

@@ -1,4 +1,5 @@
-"""compare: changes are signed (a fall reads as a fall), and the gates take their size."""
+"""compare: changes are signed (a fall reads as a fall), the gates take their size, and
+curves are compared on the runs' common time domain with their components matched."""
 
 from __future__ import annotations
 
@@ -6,11 +7,13 @@ import json
 import shutil
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
+import pytest
 
 from reportgen.inputs.files import sha256_file
 from reportgen.inputs.spec import GatesSection
-from reportgen.runs.compare import compare_runs
+from reportgen.runs.compare import Curves, compare_runs, curve_findings
 from reportgen.runs.integrity import checksum_list, run_files
 
 
@@ -45,3 +48,71 @@ def test_a_fall_is_signed_and_gated_by_its_size(
     found = {f.item: f for f in compare_runs(run, higher, gates)}
     assert "(+20.0%)" in found["eigenvalue 1"].b and not found["eigenvalue 1"].crossed
     assert "(+60.0%)" in found["error variance"].b and found["error variance"].crossed
+
+
+def _curves(lo: float, hi: float, funcs: list, values: list, mean=None) -> Curves:  # type: ignore[no-untyped-def]
+    """Invented run curves on [lo, hi] (51 grid points; the functions as given, not
+    normalised)."""
+    t = np.linspace(lo, hi, 51)
+    f = np.column_stack([fn(t) for fn in funcs])
+    m = mean(t) if mean is not None else 1.0 + t
+    v = np.asarray(values, dtype=float)
+    return Curves(t, m, t, f, v, v / v.sum())
+
+
+def _unit(fn):  # type: ignore[no-untyped-def]
+    """fn scaled to unit norm on [0, 1] (numerically, fine grid)."""
+    t = np.linspace(0, 1, 20001)
+    norm = np.sqrt(np.trapezoid(fn(t) ** 2, t))
+    return lambda x: fn(x) / norm
+
+
+ONE = _unit(lambda t: np.ones_like(t))
+TWO = _unit(lambda t: np.cos(np.pi * t))
+THREE = _unit(lambda t: np.cos(2 * np.pi * t))
+
+
+def test_a_shorter_domain_is_compared_on_the_common_part_only() -> None:
+    # The same functions and mean, the second run cut at 0.6 (a study cut earlier): on the
+    # common domain, renormalised there, every similarity is 1 (Cauchy-Schwarz; the old
+    # flat extension gave more than 1) and the mean does not change; the domain change is a
+    # finding of its own. Reference: the functions' definitions (no outside source).
+    a = _curves(0, 1, [ONE, TWO], [4.0, 1.0])
+    b = _curves(0, 0.6, [ONE, TWO], [4.0, 1.0])
+    found = {f.item: f for f in curve_findings(a, b, GatesSection())}
+    assert found["time domain"].b == "0 to 0.6 (changed; curves compared on 0 to 0.6)"
+    for j in (1, 2):
+        sim = float(found[f"eigenfunction {j} similarity"].b)
+        assert sim == pytest.approx(1.0, abs=1e-3) and sim <= 1.0 + 1e-12
+        assert not found[f"eigenfunction {j} similarity"].crossed
+    assert found["largest mean change"].b.startswith("0 (0.0% of range)")
+
+
+def test_a_swapped_pair_is_matched_and_said() -> None:
+    # Components 2 and 3 come in the other order in the second run (their eigenvalues too):
+    # each is compared with its counterpart, the eigenvalues do not change and the match
+    # is named.
+    a = _curves(0, 1, [ONE, TWO, THREE], [5.0, 2.0, 1.9])
+    b = _curves(0, 1, [ONE, THREE, TWO], [5.0, 1.9, 2.0])
+    found = {f.item: f for f in curve_findings(a, b, GatesSection())}
+    assert found["eigenfunction 2 similarity"].b.startswith("1.000 (matched to component 3")
+    assert found["eigenfunction 3 similarity"].b.startswith("1.000 (matched to component 2")
+    assert found["eigenvalue 2"].b.startswith("2 (+0.0%) (matched to component 3")
+    assert not any(f.crossed for f in found.values())
+
+
+def test_a_changed_k_compares_the_common_components_and_a_sign_does_not_matter() -> None:
+    # Three components against two (the third gone), the second's sign flipped: two pairs
+    # compared, similarity 1; a half-turn mix of 1 and 2 in another run crosses the gate.
+    a = _curves(0, 1, [ONE, TWO, THREE], [5.0, 2.0, 1.0])
+    b = _curves(0, 1, [ONE, lambda t: -TWO(t)], [5.0, 2.0])
+    found = {f.item: f for f in curve_findings(a, b, GatesSection())}
+    assert "eigenfunction 3 similarity" not in found
+    assert float(found["eigenfunction 2 similarity"].b) == pytest.approx(1.0, abs=1e-3)
+    c, s = np.cos(np.pi / 4), np.sin(np.pi / 4)
+    mixed = _curves(
+        0, 1, [lambda t: c * ONE(t) + s * TWO(t), lambda t: -s * ONE(t) + c * TWO(t)], [5.0, 2.0]
+    )
+    found = {f.item: f for f in curve_findings(a, mixed, GatesSection())}
+    sim = float(found["eigenfunction 1 similarity"].b[:5])
+    assert sim == pytest.approx(c, abs=2e-3) and found["eigenfunction 1 similarity"].crossed
