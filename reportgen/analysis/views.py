@@ -6,7 +6,6 @@ all (:class:`SubjectView`). The per-subject results themselves stay with the dat
 
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass, replace
 
 import numpy as np
@@ -14,6 +13,7 @@ import pandas as pd
 from scipy.special import chdtri
 
 from ..fpca.adequacy import average_ranks as average_ranks  # one implementation, shared
+from ..fpca.adequacy import spearman
 from ..fpca.design import Sample, seeded_sample
 from ..fpca.diagnostics import (
     axis,
@@ -261,24 +261,11 @@ def density(
 
 
 def spread_trend(residuals: pd.DataFrame) -> float:
-    """Spearman correlation of |standardized residual| with the fitted value: the Pearson
-    correlation of their average ranks (its definition; pandas' own method="spearman"
-    imports scipy.stats, a second of start-up for one number)."""
-    columns = (
+    """Spearman correlation of |standardized residual| with the fitted value."""
+    return spearman(
         np.abs(residuals.standardized.to_numpy(dtype=np.float64)),
         residuals.fitted.to_numpy(dtype=np.float64),
-    )
-    if columns[0].size > 100_000:  # numpy sorts without the GIL: two cores, half the time
-        from concurrent.futures import ThreadPoolExecutor
-
-        with ThreadPoolExecutor(2) as pool:
-            size, fitted = pool.map(average_ranks, columns)
-    else:
-        size, fitted = map(average_ranks, columns)
-    size -= size.mean()
-    fitted -= fitted.mean()
-    den = math.sqrt(float(size @ size) * float(fitted @ fitted))
-    return float(size @ fitted) / den if den > 0 else float("nan")
+    )[0]
 
 
 def band_words(fit: FPCAFit) -> str:

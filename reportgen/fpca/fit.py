@@ -12,6 +12,8 @@ Steps (Yao, Müller & Wang 2005, JASA 100:577-590, doi:10.1198/01621450400000174
    or negative and is never floored: it only starts step 4);
 4. likelihood refinement of the eigenvalues and the error variance with the eigenfunctions
    fixed (``likelihood.maximise``, over a seeded sample of at most REFINE_MAX_SUBJECTS);
+   then the eigenfunctions too, over a spline basis, used where the held-out likelihood
+   prefers them (``refine.choose_functions``; the eigenvalues and sigma^2 refitted for them);
 5. number of components by FVE, AIC, BIC, leave-one-reading-out error or fixed
    (``selection``);
 6. scores and their error covariance by conditional expectation (``plan`` pass 3, the
