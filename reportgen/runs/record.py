@@ -172,6 +172,13 @@ def load_record(run_dir: Path) -> dict[str, Any]:
     if not run_dir.is_dir():
         raise RecordError(f"{str(run_dir)!r} is not a run directory")
     if not path.is_file():
+        inside = sorted(p.parent.name for p in run_dir.glob("*/record.json"))
+        if inside:  # a report's folder of versions: name them
+            shown = ", ".join(inside[-3:])
+            raise RecordError(
+                f"{str(run_dir)!r} holds runs ({shown}), not a run itself; "
+                f"give one, e.g. {str(run_dir / inside[-1])!r}"
+            )
         raise RecordError(f"{str(run_dir)!r} has no record.json; it is not a complete run")
     try:
         record = json.loads(path.read_text("utf-8"))

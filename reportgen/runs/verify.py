@@ -82,16 +82,22 @@ class Verification:
             self.problems.append(item)
 
 
-def _spec_places(run: Path, record: dict[str, Any], inputs: Path | None) -> list[Path]:
-    """Where the run's spec (beside which its inputs lie) may be, in the order tried:
-    ``--inputs`` DIR; else the recorded path from the run folder (a copy at the same
-    depth), then the spec's recorded location (a copy anywhere on the same machine)."""
+def _spec_places(
+    run: Path, record: dict[str, Any], inputs: Path | None
+) -> list[tuple[Path, str]]:
+    """Where the run's spec (beside which its inputs lie) may be, in the order tried, each
+    with the words that say where the place comes from: ``--inputs`` DIR; else the
+    recorded path from the run folder (a copy at the same depth), then the spec's recorded
+    location (a copy anywhere on the same machine). A copy at another depth turns the
+    first into a folder the user never named (even the root), hence the words."""
     if inputs is not None:
-        return [inputs / "spec.yaml"]
-    places = [(run / str(record["spec"]["source"])).resolve()]
+        return [(inputs / "spec.yaml", f"{inputs}, given as --inputs")]
+    relative = str(record["spec"]["source"])
+    first = (run / relative).resolve()
+    places = [(first, f"{first.parent}, the run's recorded path {relative} taken from {run.resolve()}")]
     location = record["spec"].get("location")
-    if isinstance(location, str) and Path(location) not in places:
-        places.append(Path(location))
+    if isinstance(location, str) and Path(location) != first:
+        places.append((Path(location), f"{Path(location).parent}, the spec's recorded location"))
     return places
 
 
@@ -265,7 +271,7 @@ def _inputs_and_numbers(
         spec_ok,
     )
     places = _spec_places(run, record, inputs)
-    for source in places:  # the first place where every input is found
+    for source, _ in places:  # the first place where every input is found
         found = [
             (entry, path, current_sha256(path, str(entry["path"]), "manifest" in entry))
             for entry in record["inputs"]
@@ -290,18 +296,19 @@ def _inputs_and_numbers(
         (missing if now == "absent" else changed if now != entry["sha256"] else located).append(
             (str(entry["path"]), path)
         )
-    if not missing and len(places) > 1 and source != places[0]:
+    if not missing and len(places) > 1 and source != places[0][0]:
         out.notes.append(
             f"inputs found at the spec's recorded location ({source.parent}), "
             "not beside the run's recorded path to it"
         )
     if missing:
-        looked = "; ".join(str(p.parent) for p in places)
+        looked = "; ".join(words for _, words in places)
         out.could_not_check = True
         out.verdicts["inputs"] = Verdict(
             "not checked",
             f"COULD NOT CHECK: {', '.join(str(m[0]) for m in missing)} not found (looked in "
-            f"{looked}); give --inputs DIR",
+            f"{looked}); "
+            + ("check the folder given as --inputs" if inputs is not None else "give --inputs DIR"),
         )
     elif changed:
         out.verdicts["inputs"] = Verdict(

@@ -156,6 +156,14 @@ def test_run_copied_elsewhere_verifies_with_inputs(
     assert code == 3, out[-1500:]
     assert "COULD NOT CHECK: clinic_visits.csv not found (looked in" in out
     assert str(tmp_path / "gone") in out and "give --inputs DIR" in out
+    # Each place says where it comes from: the run's relative path to its spec, taken from
+    # a copy at another depth, names a folder the user never chose (it can be the root).
+    source = record["spec"]["source"]
+    assert f"the run's recorded path {source} taken from {moved}" in out, out[-1500:]
+    assert "the spec's recorded location" in out
+    code, out = _verify(capsys, str(moved), "--inputs", str(tmp_path / "empty"))
+    assert code == 3 and f"{tmp_path / 'empty'}, given as --inputs" in out, out[-1500:]
+    assert "check the folder given as --inputs" in out
     data = tmp_path / "handed-over"
     data.mkdir()
     shutil.copy(ROOT / "specs" / "clinic_visits.csv", data / "clinic_visits.csv")
@@ -190,6 +198,17 @@ def test_damaged_record_is_reported(pristine: Path, capsys: pytest.CaptureFixtur
     assert main(["verify", str(run)]) == 2
     err = capsys.readouterr().err
     assert "record.json" in err and "damaged" in err and "Traceback" not in err
+
+
+def test_a_folder_of_versions_names_its_runs(
+    pristine: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    # A user who gives the report's folder rather than one version is told which to give.
+    shutil.copytree(pristine, tmp_path / "study" / "v001")
+    shutil.copytree(pristine, tmp_path / "study" / "v002")
+    assert main(["verify", str(tmp_path / "study")]) == 2
+    err = capsys.readouterr().err
+    assert "holds runs (v001, v002)" in err and str(tmp_path / "study" / "v002") in err, err
 
 
 def _rehash(run: Path) -> None:
