@@ -82,9 +82,7 @@ class Verification:
             self.problems.append(item)
 
 
-def _spec_places(
-    run: Path, record: dict[str, Any], inputs: Path | None
-) -> list[tuple[Path, str]]:
+def _spec_places(run: Path, record: dict[str, Any], inputs: Path | None) -> list[tuple[Path, str]]:
     """Where the run's spec (beside which its inputs lie) may be, in the order tried, each
     with the words that say where the place comes from: ``--inputs`` DIR; else the
     recorded path from the run folder (a copy at the same depth), then the spec's recorded
@@ -94,7 +92,9 @@ def _spec_places(
         return [(inputs / "spec.yaml", f"{inputs}, given as --inputs")]
     relative = str(record["spec"]["source"])
     first = (run / relative).resolve()
-    places = [(first, f"{first.parent}, the run's recorded path {relative} taken from {run.resolve()}")]
+    places = [
+        (first, f"{first.parent}, the run's recorded path {relative} taken from {run.resolve()}")
+    ]
     location = record["spec"].get("location")
     if isinstance(location, str) and Path(location) != first:
         places.append((Path(location), f"{Path(location).parent}, the spec's recorded location"))
