@@ -65,6 +65,30 @@ def make_figures(
 Drawn = tuple[MplFigure, str, str]  # the figure, its caption, its alt text
 
 
+def _legend_beside(
+    ax: Any, fontsize: float = 7, panels: Sequence[Any] = (), below: bool = False
+) -> None:
+    """The legend to the right of ``ax`` (the rightmost panel), or under it in one row
+    (``below``: a row of panels keeps its width), never over a curve or a point;
+    ``figure_svg``'s tight layout makes room for it. With ``panels``, the entries of all
+    of them, each label once."""
+    entries: dict[str, Any] = {}
+    for panel in list(panels) or [ax]:
+        for handle, label in zip(*panel.get_legend_handles_labels(), strict=True):
+            entries.setdefault(label, handle)
+    ax.legend(
+        list(entries.values()),
+        list(entries),
+        fontsize=fontsize,
+        borderaxespad=0.0,
+        **(
+            {"loc": "upper center", "bbox_to_anchor": (0.5, -0.3), "ncol": len(entries)}
+            if below
+            else {"loc": "upper left", "bbox_to_anchor": (1.02, 1.0)}
+        ),
+    )
+
+
 def with_unit(label: str, unit: str) -> str:
     """``label (unit)``; a label that already ends in a parenthesised unit (a file's stored
     label, "Serum level (mg/dl)") has it replaced, not repeated."""
@@ -186,9 +210,7 @@ def _mean(r: AnalysisResult) -> Drawn:
     ax.plot(g, np.where(banded, fit.mean, np.nan), color=PALETTE[1], label="mean")
     ax.set_xlabel(_time_label(r))
     ax.set_ylabel(_value_label(r))
-    ax.legend(
-        fontsize=7, loc="upper left", bbox_to_anchor=(1.01, 1.0), borderaxespad=0.0
-    )  # beside the curves, not over them
+    _legend_beside(ax)
     return (
         fig,
         f"Mean curve with a pointwise {level} band (inner) and a simultaneous "
@@ -315,7 +337,7 @@ def _eigenvalues(r: AnalysisResult) -> Drawn:
     ax.set_ylim(0, 1.05)
     ax.set_xlabel("component")
     ax.set_ylabel("fraction of variance")
-    ax.legend(fontsize=7, loc="center right")
+    _legend_beside(ax)
     return (
         fig,
         "Fraction of variance explained by each component (bars; the retained ones "
@@ -337,9 +359,7 @@ def _eigenfunctions(r: AnalysisResult) -> Drawn:
     ax.set_xlabel(_time_label(r))
     ef_unit = r.spec.units()["eigenfunction"]
     ax.set_ylabel("eigenfunction" + (f" ({ef_unit})" if ef_unit else ""))
-    ax.legend(
-        fontsize=7, loc="upper left", bbox_to_anchor=(1.01, 1.0), borderaxespad=0.0
-    )  # beside the curves, not over them
+    _legend_beside(ax)
     return (
         fig,
         "Eigenfunctions of the retained components"
@@ -362,13 +382,13 @@ def _effects(r: AnalysisResult) -> Drawn:
     for k in range(k_show):
         ax = axes[0, k]
         step = 2 * np.sqrt(fit.eigenvalues[k]) * fit.eigenfunctions[:, k]
-        ax.plot(g, fit.mean, color="#333")
+        ax.plot(g, fit.mean, color="#333", label="mean")
         ax.plot(g, fit.mean + step, color=PALETTE[0], linestyle="--", label="+2 sd")
         ax.plot(g, fit.mean - step, color=PALETTE[1], linestyle=":", label="-2 sd")
         ax.set_title(f"component {k + 1}")
         ax.set_xlabel(_time_label(r))
     axes[0, 0].set_ylabel(_value_label(r))
-    axes[0, 0].legend(fontsize=7)
+    _legend_beside(axes[0, k_show - 1])
     return (
         fig,
         "Effect of each component: the mean plus and minus two times "
@@ -587,7 +607,7 @@ def _scores_figure(r: AnalysisResult) -> Drawn:
         )
         alt = "Scatter of subjects' first two scores with flagged subjects circled."
     if flagged.any():
-        ax.legend(fontsize=7)
+        _legend_beside(ax)
     return fig, caption, alt
 
 
@@ -620,9 +640,7 @@ def _group_means(r: AnalysisResult) -> Drawn | None:
         )
     ax.set_xlabel(_time_label(r))
     ax.set_ylabel(_value_label(r))
-    ax.legend(
-        fontsize=7, loc="upper left", bbox_to_anchor=(1.01, 1.0), borderaxespad=0.0
-    )  # beside the curves, not over them
+    _legend_beside(ax)
     return (
         fig,
         f"Mean curve of each group with a pointwise {level} band (cluster-robust over "
@@ -658,6 +676,7 @@ def _group_scores(r: AnalysisResult) -> Drawn | None:
             rotation=30 if len(g.labels) > 3 else 0,
         )
         ax.set_title(f"score {k + 1}", fontsize=8)
+        ax.set_xlabel(r.spec.data.group or "group")
         ax.axhline(0.0, color="#999", linewidth=0.8)
     axes[0, 0].set_ylabel("score" + (f" ({su})" if su else ""))
     more = f" (the first 4 of {fit.n_components} components)" if fit.n_components > shown else ""
@@ -700,7 +719,7 @@ def _variance_check(r: AnalysisResult) -> Drawn | None:
     ax.set_xlabel(_time_label(r))
     unit = r.spec.units()["error variance"]
     ax.set_ylabel("variance of a reading" + (f" ({unit})" if unit else ""))
-    ax.legend(fontsize=7, loc="best", framealpha=0.8)
+    _legend_beside(ax)
     return (
         fig,
         "Model against readings: per bin of reading times (equal numbers of readings), the "
@@ -719,16 +738,16 @@ def _residual_trend(r: AnalysisResult) -> Drawn | None:
         return None
     fig, axes = plt.subplots(1, 3, figsize=(6.9, 2.6))
     for ax, check, xl, model in (
-        (axes[0], found.by_time, _time_label(r), "0 (model)"),
-        (axes[1], found.by_fitted, "fitted " + _value_label(r), "0 (model)"),
-        (axes[2], found.spread, _time_label(r), "1 (model)"),
+        (axes[0], found.by_time, _time_label(r), "model value"),
+        (axes[1], found.by_fitted, "fitted " + _value_label(r), "model value"),
+        (axes[2], found.spread, _time_label(r), "model value"),
     ):
         _binned_panel(ax, check, model)
         ax.set_xlabel(xl)
     unit = r.spec.units()["residual"]
     axes[0].set_ylabel("mean residual" + (f" ({unit})" if unit else ""))
     axes[2].set_ylabel("mean squared standardized")
-    axes[0].legend(fontsize=6, loc="best", framealpha=0.8)
+    _legend_beside(axes[1], fontsize=6, panels=axes, below=True)
     return (
         fig,
         "Leave-one-reading-out residuals (a reading minus its prediction from the "
