@@ -26,6 +26,7 @@ no verdict.
 from __future__ import annotations
 
 import math
+from collections.abc import Callable
 from dataclasses import dataclass
 
 import numpy as np
@@ -77,18 +78,18 @@ def binned_means(
     expected: FloatArray,
     bins: int = ADEQUACY_BINS,
     level: float = ADEQUACY_LEVEL,
-    shared: FloatArray | None = None,
+    shared: Callable[[IntArray, int], FloatArray] | None = None,
     positive: bool = False,
 ) -> Binned:
     """Mean of ``value`` per equal-count bin of ``x``, its cluster-robust interval over the
     subjects ``owner`` (Bonferroni over the bins), and the mean of ``expected`` there.
 
-    ``shared`` is a variance per reading that every reading near it shares (the estimated
-    mean's, common to all subjects, so that no sum over subjects sees it); its average in
-    the bin is added to the variance of the bin's mean. ``positive``: the values are
-    squares, whose mean is skewed to the right; the interval is then taken on the log
-    scale (delta method), which keeps its two tails nearer their level (common practice,
-    no source)."""
+    ``shared(which, nb)`` gives, for the bin of each value (``which``), a variance per bin
+    that the bin's readings share (the estimated mean's error, common to all subjects, so
+    that no sum over subjects sees it: ``mean_error_variance``); it is added to the
+    variance of the bin's mean. ``positive``: the values are squares, whose mean is
+    skewed to the right; the interval is then taken on the log scale (delta method),
+    which keeps its two tails nearer their level (common practice, no source)."""
     edges = _edges(x, bins)
     if edges.size < 2:
         edges = np.array([float(x.min()), float(x.max())])
@@ -98,6 +99,7 @@ def binned_means(
     out = {name: np.full(nb, np.nan) for name in ("observed", "low", "high", "expected")}
     readings = np.bincount(which, minlength=nb)
     subjects = np.zeros(nb, dtype=np.int64)
+    common = np.zeros(nb) if shared is None else shared(which, nb)
     for b in range(nb):  # a handful of bins; the work inside is vectorised
         inside = which == b
         v, own, e = value[inside], owner[inside], expected[inside]
@@ -109,8 +111,7 @@ def binned_means(
         per = np.bincount(codes, v - mean, groups.size)
         g = groups.size
         var = float(np.sum(per**2) * g / max(g - 1, 1)) / v.size**2
-        if shared is not None:
-            var += float(np.mean(shared[inside]))
+        var += float(common[b])
         se = float(np.sqrt(var))
         out["observed"][b] = mean
         out["expected"][b] = float(np.mean(e))
@@ -221,6 +222,62 @@ def spearman(x: FloatArray, y: FloatArray) -> tuple[float, float]:
         return rho, 0.0
     tstat = rho * math.sqrt((n - 2) / (1.0 - rho * rho))
     return rho, float(2.0 * stdtr(n - 2, -abs(tstat)))
+
+
+def mean_error_variance(
+    which: IntArray,
+    nb: int,
+    t: FloatArray,
+    phi: FloatArray,
+    owner: IntArray,
+    omega: FloatArray,
+    keep: FloatArray,
+    sigma2: float,
+    grid: FloatArray,
+    mean_cov: FloatArray,
+) -> FloatArray:
+    """Variance, per bin, of the part of the bin's mean leave-one-out residual that comes
+    from the estimated mean's error ``delta`` (one draw shared by every subject).
+
+    The leave-one-out residuals of a subject are ``e = D^-1 Sigma^-1 (y - mu)`` with
+    ``D = diag(Sigma^-1)`` (``model_checks``), so an error ``delta`` in the mean moves them
+    by ``-D^-1 Sigma^-1 delta``: reading j by ``a_j . delta`` with ``a_j = sum_l M_jl
+    e(t_l)``, ``M_jl = (1[j = l] - phi_j' Omega phi_l / sigma^2) / keep_j`` and ``e(t)``
+    the linear interpolation weights of time t on the grid. A lone reading takes the whole
+    error (``a_j = e(t_j)``); a subject with readings all along its curve absorbs a smooth
+    error into its scores (the residual moves little). The bin's mean moves by ``abar .
+    delta``, of variance ``abar' C abar`` with ``C`` the mean's covariance over the grid.
+
+    ``phi`` (n, K'), ``owner`` (n,) the subject of each reading (0..n_subjects-1),
+    ``omega`` (n_subjects, K', K') the scores' error covariances, ``keep`` (n,) ``sigma^2
+    (Sigma^-1)_jj``. Vectorised over readings; a loop over the handful of bins only."""
+    n_grid = grid.size
+    pos = np.clip(np.searchsorted(grid, t, side="right") - 1, 0, n_grid - 2)
+    step = grid[pos + 1] - grid[pos]
+    frac = np.clip((t - grid[pos]) / np.where(step > 0, step, 1.0), 0.0, 1.0)
+
+    def spread(weight: FloatArray, rows: np.ndarray | slice = slice(None)) -> FloatArray:
+        """sum_j weight_j e(t_j) over the readings ``rows``."""
+        p, f = pos[rows], frac[rows]
+        return np.bincount(p, weight * (1.0 - f), n_grid) + np.bincount(p + 1, weight * f, n_grid)
+
+    n_subjects, k = omega.shape[0], phi.shape[1]
+    scaled = phi / (sigma2 * keep)[:, None]
+    out = np.zeros(nb)
+    for b in range(nb):
+        inside = which == b
+        count = int(np.count_nonzero(inside))
+        if count == 0:
+            continue
+        direct = spread(1.0 / keep[inside], inside)
+        u = np.column_stack(
+            [np.bincount(owner[inside], scaled[inside, c], n_subjects) for c in range(k)]
+        ).reshape(n_subjects, k)
+        v = np.einsum("ikl,il->ik", omega, u)
+        through = spread(np.sum(v[owner] * phi, axis=1))
+        a = (direct - through) / count
+        out[b] = max(float(a @ mean_cov @ a), 0.0)
+    return out
 
 
 def visit_pattern(

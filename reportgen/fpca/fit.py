@@ -469,6 +469,7 @@ def _fit(
         mean=frozen(mean),
         mean_se=frozen(mean_se),
         mean_band_centre=frozen(band_centre),
+        mean_covariance=frozen(mean_cov),
         covariance=frozen(cov),
         diagonal_variance=frozen(diag_var),
         eigenvalues=predictor.eigenvalues,

@@ -177,6 +177,10 @@ class FPCAFit:
     refined_eigenfunctions : ndarray of shape (n_grid, likelihood.eigenvalues.size)
         The eigenfunctions of every refined component (the retained ones first), with
         ``likelihood.eigenvalues`` the full model beside the retained K.
+    mean_covariance : ndarray of shape (n_grid, n_grid)
+        Cluster-robust covariance over the grid of the mean's band estimate (``mean_se``
+        is the root of its diagonal): how the mean's estimation error at one time moves
+        with that at another (``fpca.adequacy.mean_error_variance``).
     """
 
     grid: FloatArray
@@ -219,6 +223,7 @@ class FPCAFit:
     band: BandChoice = BandChoice()
     functions: FunctionSource = FunctionSource()
     refined_eigenfunctions: FloatArray = field(default_factory=lambda: np.zeros((0, 0)))
+    mean_covariance: FloatArray = field(default_factory=lambda: np.zeros((0, 0)))
 
     @property
     def mean_bandwidth(self) -> float:

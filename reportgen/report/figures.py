@@ -752,9 +752,16 @@ def _residual_trend(r: AnalysisResult) -> Drawn | None:
         fig,
         "Leave-one-reading-out residuals (a reading minus its prediction from the "
         "subject's other readings): their mean per bin of time and of fitted value (0 "
-        "under the model), and their mean square over its model value per bin of time (1 "
-        f"under the model: one error variance), with {ADEQUACY_LEVEL:.0%} intervals over "
-        "the bins together (cluster-robust over subjects).",
+        "under the model), and their mean square over its model value per bin of time "
+        "against its average over all times (one error variance: the same at every time), "
+        f"with {ADEQUACY_LEVEL:.0%} intervals over the bins together (cluster-robust over "
+        "subjects"
+        + (
+            f", and widened by how the bins move over the {len(r.fit.replicates)} "
+            "resampled fits of the corrected band: the estimation of the model's parts)."
+            if r.fit.replicates
+            else "; the mean residuals' intervals include the mean's estimation error)."
+        ),
         "Three panels of binned means with intervals: residuals against time, against "
         "fitted value, and squared standardized residuals against time, with the model's "
         "value as a line.",

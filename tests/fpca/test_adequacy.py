@@ -105,3 +105,60 @@ def test_a_bin_with_few_subjects_gives_no_verdict() -> None:
     x = np.linspace(0, 1, owner.size)
     found = binned_means(x, np.full(x.size, 5.0) + 0.01 * owner, owner, np.zeros(x.size), bins=2)
     assert not found.judged.any() and not found.fires
+
+
+def test_mean_error_reaches_the_binned_residuals_as_the_dense_algebra_says() -> None:
+    # Reference: numpy's dense inverse of each subject's covariance Sigma = Phi Lambda
+    # Phi' + sigma^2 I; the leave-one-out residuals are D^-1 Sigma^-1 (y - mu) (a
+    # standard identity of Gaussian conditioning, common practice, no source), so a mean
+    # error delta moves them by -D^-1 Sigma^-1 delta. Their bin means' variance under
+    # delta ~ N(0, C) is compared with the formula; a lone reading takes the whole error,
+    # and readings all along a constant-function subject absorb a constant error.
+    from reportgen.fpca.adequacy import mean_error_variance
+    from reportgen.fpca.scores import conditional_scores
+
+    rng = np.random.default_rng(11)
+    grid = np.linspace(0.0, 1.0, 21)
+    m = rng.integers(1, 6, 40)
+    owner = np.repeat(np.arange(40), m)
+    t = rng.uniform(0, 1, owner.size)
+    basis = np.column_stack([np.ones(grid.size), np.sqrt(2) * np.cos(np.pi * grid)])
+    phi = np.column_stack([np.interp(t, grid, basis[:, c]) for c in range(2)])
+    lam, s2 = np.array([2.0, 0.5]), 0.3
+    starts = np.searchsorted(owner, np.arange(40)).astype(np.intp)
+    _, omega = conditional_scores(starts, np.zeros(t.size), phi, lam, s2)
+    quad = np.einsum("nk,nkl,nl->n", phi, omega[owner], phi)
+    keep = 1.0 - quad / s2
+    # a smooth covariance of the mean's error over the grid
+    sd = 0.2 + 0.3 * grid
+    cov = np.outer(sd, sd) * np.exp(-((grid[:, None] - grid[None, :]) ** 2) / 0.1)
+    which = np.minimum((t * 3).astype(int), 2)
+    got = mean_error_variance(which, 3, t, phi, owner, omega, keep, s2, grid, cov)
+    # dense: the map from the grid's delta to every reading's residual shift
+    # row j: the linear interpolation weights of t_j on the grid (np.interp of each unit vector)
+    interp = np.column_stack([np.interp(t, grid, unit) for unit in np.eye(grid.size)])
+    shift = np.zeros((t.size, grid.size))
+    for i in range(40):
+        rows = owner == i
+        sigma = phi[rows] @ np.diag(lam) @ phi[rows].T + s2 * np.eye(rows.sum())
+        prec = np.linalg.inv(sigma)
+        shift[rows] = (prec / np.diag(prec)[:, None]) @ interp[rows]
+    for b in range(3):
+        a = shift[which == b].mean(axis=0)
+        assert got[b] == pytest.approx(a @ cov @ a, rel=1e-9)
+    # lone readings (no score error to share) carry the mean's whole error
+    lone = np.arange(5)
+    alone = mean_error_variance(
+        np.zeros(5, dtype=np.intp),
+        1,
+        t[:5],
+        phi[:5],
+        lone,
+        np.zeros((5, 2, 2)),
+        np.ones(5),
+        s2,
+        grid,
+        cov,
+    )
+    e = interp[:5].mean(axis=0)
+    assert alone[0] == pytest.approx(e @ cov @ e, rel=1e-12)
