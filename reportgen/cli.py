@@ -165,10 +165,11 @@ def _cmd_verify(args: argparse.Namespace) -> int:
     return _summary("verify", result.problems, "everything matches")
 
 
-def _compare(run_a: Path, run_b: Path) -> int:
-    """Print what changed from run A to run B under B's gates; 1 when a gate is crossed."""
+def _compare(run_a: Path, run_b: Path, as_json: bool = False, out: Path | None = None) -> int:
+    """Print what changed from run A to run B under B's gates (or the findings as JSON);
+    with ``out``, write the change report there. 1 when a gate is crossed."""
     from .inputs.spec import GatesSection, spec_from_bytes
-    from .runs.compare import compare_runs
+    from .runs.compare import compare
 
     spec_file = run_b / "spec.yaml"
     gates = (
@@ -176,17 +177,36 @@ def _compare(run_a: Path, run_b: Path) -> int:
         if spec_file.is_file()
         else GatesSection()
     )
-    findings = compare_runs(run_a, run_b, gates)
+    found = compare(run_a, run_b, gates)
+    written = None
+    if out is not None:
+        from .runs.change_report import write_change_report
+
+        written = write_change_report(found, gates, out)
+    crossed = found.crossed
+    if as_json:
+        import json
+
+        print(json.dumps(found.as_dict(), indent=2, ensure_ascii=False, default=str))
+        return 1 if crossed else 0
     _print_rows(
-        ("item", "A", "B", "gate"),
-        [(f.item, f.a, f.b, "CROSSED" if f.crossed else "") for f in findings],
+        ("item", "A", "B", "gate", "against the runs' uncertainty"),
+        [(f.item, f.a, f.b, "CROSSED" if f.crossed else "", f.noise) for f in found.findings],
     )
-    crossed = [f.item for f in findings if f.crossed]
+    print(f"uncertainty: {found.overlap.words}")
+    print(f"subjects moved: {found.moved_beyond} beyond the rule ({found.move_rule})")
+    if written is not None:
+        print(f"change report: {written / 'change.html'}")
     return _summary("compare", [f"gate crossed: {c}" for c in crossed], "within the gates")
 
 
 def _cmd_compare(args: argparse.Namespace) -> int:
-    return _compare(Path(args.run_a), Path(args.run_b))
+    return _compare(
+        Path(args.run_a),
+        Path(args.run_b),
+        as_json=args.json,
+        out=None if args.out is None else Path(args.out),
+    )
 
 
 DATE_LINES = """\
@@ -371,6 +391,13 @@ def build_parser() -> argparse.ArgumentParser:
     sp = add("compare", "what changed from RUN_A to RUN_B; exit 1 when a gate is crossed")
     sp.add_argument("run_a")
     sp.add_argument("run_b")
+    sp.add_argument("--json", action="store_true", help="print the findings as JSON")
+    sp.add_argument(
+        "--out",
+        metavar="DIR",
+        help="also write the change report (change.html, change.pdf, tables, SHA256SUMS) "
+        "to DIR, a new folder",
+    )
     sp.set_defaults(func=_cmd_compare)
     sp = add("init", "write a commented starter spec for a data file")
     sp.add_argument("data")

@@ -84,6 +84,19 @@ def render_pdf(html: bytes, spec_bytes: bytes, record_bytes: bytes, stamp: str) 
     UTC as ``YYYY-MM-DDTHH:MM:SSZ``; fixed identifier), so ``verify`` can re-render it and
     compare bytes.
     """
+    return render_pdf_with(
+        html,
+        [
+            ("spec.yaml", spec_bytes, "The spec of this run, as given"),
+            ("record.json", record_bytes, "The hashed record of this run"),
+        ],
+        stamp,
+    )
+
+
+def render_pdf_with(html: bytes, files: list[tuple[str, bytes, str]], stamp: str) -> bytes:
+    """PDF/A-3b from a page with ``files`` (name, bytes, description) attached; a pure
+    function of its inputs (``render_pdf``)."""
     import logging
 
     import weasyprint
@@ -93,21 +106,14 @@ def render_pdf(html: bytes, spec_bytes: bytes, record_bytes: bytes, stamp: str) 
     when = datetime.strptime(stamp, "%Y-%m-%dT%H:%M:%SZ")
     attachments = [
         weasyprint.Attachment(
-            string=spec_bytes,
-            name="spec.yaml",
-            description="The spec of this run, as given",
+            string=data,
+            name=name,
+            description=description,
             url_fetcher=fetcher,
             created=when,
             modified=when,
-        ),
-        weasyprint.Attachment(
-            string=record_bytes,
-            name="record.json",
-            description="The hashed record of this run",
-            url_fetcher=fetcher,
-            created=when,
-            modified=when,
-        ),
+        )
+        for name, data, description in files
     ]
     document = weasyprint.HTML(
         string=_figures_as_images(html.decode("utf-8")), base_url=None, url_fetcher=fetcher
