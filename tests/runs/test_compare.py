@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import json
 import shutil
+from dataclasses import replace
 from pathlib import Path
 
 import numpy as np
@@ -116,3 +117,57 @@ def test_a_changed_k_compares_the_common_components_and_a_sign_does_not_matter()
     found = {f.item: f for f in curve_findings(a, mixed, GatesSection())}
     sim = float(found["eigenfunction 1 similarity"].b[:5])
     assert sim == pytest.approx(c, abs=2e-3) and found["eigenfunction 1 similarity"].crossed
+
+
+def test_subject_moves_follow_their_scores_with_signs_aligned() -> None:
+    # Invented runs: the same mean and functions, the second run's phi_2 sign-flipped. A
+    # subject whose scores are the same curve (score_2 negated with the function) has not
+    # moved; one whose first score rose by 0.5 moved by 0.5 x max|phi_1| (= 0.5, phi_1 the
+    # unit constant on [0, 1]); the rule is the newer run's error sd. Reference: the
+    # definition of the trajectory, mean + sum score_k phi_k (no outside source).
+    from reportgen.runs.compare import _curve_comparison, subject_moves
+
+    a = _curves(0, 1, [ONE, TWO], [4.0, 1.0])
+    b = _curves(0, 1, [ONE, lambda t: -TWO(t)], [4.0, 1.0])
+    _, matching = _curve_comparison(a, b, GatesSection(), None)
+    assert matching is not None and matching.signs == {0: 1.0, 1: -1.0}
+    sa = pd.DataFrame(
+        {
+            "subject": ["s1", "s2", "gone"],
+            "n_obs": [3, 4, 2],
+            "score_1": [1.0, -2.0, 0.0],
+            "score_2": [0.3, 0.1, 0.0],
+        }
+    )
+    sb = pd.DataFrame(
+        {
+            "subject": ["s1", "s2", "new"],
+            "n_obs": [3, 5, 1],
+            "score_1": [1.0, -1.5, 0.0],
+            "score_2": [-0.3, -0.1, 0.0],
+        }
+    )
+    moves, beyond, rule = subject_moves(sa, sb, a, b, matching, error_variance_b=0.09)
+    by = moves.set_index("subject")
+    assert list(moves.subject) == ["s2", "s1"]  # the largest first; only subjects in both
+    assert by.loc["s1", "largest_move"] == pytest.approx(0.0, abs=1e-12)
+    assert by.loc["s2", "largest_move"] == pytest.approx(0.5, rel=1e-3)
+    assert by.loc["s2", "score_1_change"] == pytest.approx(0.5)
+    assert by.loc["s2", "score_2_change"] == pytest.approx(0.0, abs=1e-12)  # sign aligned
+    assert beyond == 1 and "(0.3)" in rule  # 0.5 > sqrt(0.09); 0 is not
+
+
+def test_noise_verdicts_follow_the_shared_subjects() -> None:
+    # The same mean curve moved by 0.1 everywhere. With standard errors of 0.1 in two
+    # independent runs of 100 subjects, the difference has sd 0.141: 0.71 sd, within. With
+    # the same 100 subjects, sampling cannot move it: beyond. Reference: Overlap's formula,
+    # tested against a simulation in tests/runs/test_change_report.py.
+    from reportgen.runs.compare import BEYOND, WITHIN, Overlap
+
+    a = replace(_curves(0, 1, [ONE], [1.0]), mean_se=np.full(51, 0.1), multiplier=2.5)
+    b = replace(a, mean=a.mean + 0.1)
+    independent = {f.item: f for f in curve_findings(a, b, GatesSection(), Overlap(100, 100, 0))}
+    said = independent["largest mean change"].noise
+    assert said.startswith(WITHIN) and "largest 0.7 sd" in said, said
+    same = {f.item: f for f in curve_findings(a, b, GatesSection(), Overlap(100, 100, 100))}
+    assert same["largest mean change"].noise.startswith(BEYOND)
