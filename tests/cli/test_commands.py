@@ -78,7 +78,10 @@ def test_compare_refuses_runs_of_different_reports(regenerated: dict[str, Path])
     # the session's runs of the two examples: other report ids, time and value units
     res = cli("compare", str(regenerated["clinic_visits"]), str(regenerated["pump_service"]))
     assert res.returncode == 2
-    assert "cannot be compared: they differ in report ids" in res.stderr and "'weeks' and 'months'" in res.stderr
+    assert (
+        "cannot be compared: they differ in report ids" in res.stderr
+        and "'weeks' and 'months'" in res.stderr
+    )
 
 
 def test_check_init_and_schema(study: Path, tmp_path: Path) -> None:
