@@ -529,6 +529,13 @@ NOTES = """## Notes on the targets
 - The 10^6-subject run draws the plug-in band (`band: auto` corrects up to 10,000
   subjects) and states the width ratio of the corrected band it measured:
   `benchmarks/BANDS.md` (`benchmarks/band_ratio.py`) has that run's figures.
+- `compare` of two runs of 1,000,000 subjects (data and subject tables as Parquet parts;
+  the second a refresh: 5% of subjects removed, 200,000 added, one reading changed), from
+  `benchmarks/compare_time.sh` with farm-bench on 2026-12-03: 5.1 s median of 5 (peak
+  821 MiB), 7.5 s with `--out` (the change report, HTML and PDF; median of 3); with CSV
+  tables 4.8 s. It found the one subject whose reading changed (1 of 950,000 moved beyond
+  its rule). Before the subject ids were matched as pandas indexes and the moves taken as one
+  matrix product per chunk, it took 11.9 s (Python sets over a million ids).
 - Times are wall-clock on a shared machine; repeated runs vary by about 10%, and the pandas
   floor at 10^6 varied between 0.13 s and 0.25 s across runs of this script (its own
   allocations), so fit / floor at 10^6 has been between 4 and 8.
