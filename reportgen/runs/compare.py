@@ -4,7 +4,7 @@ uncertainty, whether the change is beyond it; the subjects added, removed and mo
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any
 
@@ -280,6 +280,19 @@ def compare(a: Path, b: Path, gates: GatesSection) -> Comparison:
     ca = Curves.of(_table(a, "mean"), _table(a, "eigenfunctions"), _table(a, "components"), ka, pa)
     cb = Curves.of(_table(b, "mean"), _table(b, "eigenfunctions"), _table(b, "components"), kb, pb)
     found, matching = _curve_comparison(ca, cb, gates, overlap)
+    ha, hb = seta["mean_bandwidth"]["value"], setb["mean_bandwidth"]["value"]
+    if abs(hb - ha) > 0.1 * ha:  # a re-chosen bandwidth moves the mean as data would
+        found = [
+            replace(
+                f,
+                noise=f.noise
+                + f"; the mean's bandwidth changed ({ha:.4g} -> {hb:.4g}): part of the "
+                "change is smoothing, not data",
+            )
+            if f.item == "largest mean change" and f.noise
+            else f
+            for f in found
+        ]
     out += found
     moves, beyond, rule = subject_moves(sa, sb, ca, cb, matching, float(vb), in_b)
     out.append(Finding("subjects moved beyond the rule", "", f"{beyond} of {common}"))

@@ -85,6 +85,10 @@ def test_the_refresh_is_found_and_said(
     for item in ("error variance", "largest mean change", "eigenvalue 1"):
         assert items[item].noise.startswith((WITHIN, BEYOND)), items[item]
     assert found.moved_beyond >= 1
+    # a re-chosen mean bandwidth is named beside the mean's change
+    h_a, h_b = float(items["mean_bandwidth"].a), float(items["mean_bandwidth"].b)
+    named = "the mean's bandwidth changed" in items["largest mean change"].noise
+    assert named == (abs(h_b - h_a) > 0.1 * h_a)
     if did["example"] == "pump_service":
         # the corrected reading moves its subject's trajectory: among the largest moves (in
         # the clinic example the refresh re-chooses the mean's bandwidth, 22 -> 42 weeks, and
