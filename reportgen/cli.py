@@ -14,6 +14,7 @@ import sys
 import threading
 from collections.abc import Sequence
 from pathlib import Path
+from typing import Any
 
 from ._version import __version__
 from .errors import ReportgenError
@@ -435,11 +436,29 @@ def _on_sigterm(signum: int, frame: object) -> None:
     raise Terminated
 
 
+def _redeliver(previous: Any) -> Any:
+    """An unraisable-exception hook that sends SIGTERM again when a Terminated was
+    swallowed: a signal handler's exception raised inside a weakref callback or a
+    ``__del__`` (an import lock's, say) is printed and dropped by Python, and the run went
+    on; the signal again raises it at the main thread's next step."""
+
+    def hook(unraisable: Any) -> None:
+        if isinstance(unraisable.exc_value, Terminated):
+            os.kill(os.getpid(), signal.SIGTERM)
+            return
+        previous(unraisable)
+
+    return hook
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
     here = threading.current_thread() is threading.main_thread()
     previous = signal.signal(signal.SIGTERM, _on_sigterm) if here else None
+    unraisable = sys.unraisablehook
+    if here:
+        sys.unraisablehook = _redeliver(unraisable)
     try:
         if args.command in NUMERIC_COMMANDS:
             from ._threads import one_blas_thread
@@ -457,6 +476,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     finally:
         if here and previous is not None:
             signal.signal(signal.SIGTERM, previous)
+        sys.unraisablehook = unraisable
     return code
 
 

@@ -179,7 +179,7 @@ def test_verify_compares_the_parts_and_finds_a_changed_one(runs: dict[str, Path]
 def test_compare_reads_the_parts(runs: dict[str, Path]) -> None:
     done = cli("compare", str(runs["folder csv"]), str(runs["folder parts"]))
     assert done.returncode == 0, done.stdout + done.stderr
-    assert "200 (+0 / -0)" in done.stdout
+    assert "200 (+0 / -0; 200 in both)" in done.stdout
 
 
 def test_the_report_says_where_the_tables_of_subjects_are(runs: dict[str, Path]) -> None:
