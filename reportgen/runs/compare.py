@@ -242,8 +242,8 @@ def compare(a: Path, b: Path, gates: GatesSection) -> Comparison:
     out.append(Finding("spec", ra["spec"]["sha256"][:12], rb["spec"]["sha256"][:12]))
     seta, setb = ra["spec"]["settings"], rb["spec"]["settings"]
     ka, kb = seta["n_components"], setb["n_components"]
-    score_columns = lambda k: ["subject", "n_obs"] + [f"score_{j + 1}" for j in range(k)]  # noqa: E731
-    sa, sb = _table(a, "scores", score_columns(ka)), _table(b, "scores", score_columns(kb))
+    sa = _table(a, "scores", ["subject", "n_obs"] + [f"score_{j + 1}" for j in range(ka)])
+    sb = _table(b, "scores", ["subject", "n_obs"] + [f"score_{k + 1}" for k in range(kb)])
     ids_a, ids_b = pd.Index(sa.subject), pd.Index(sb.subject)
     in_b = ids_b.get_indexer(ids_a)  # each of A's subjects in B, -1 where gone
     common = int(np.count_nonzero(in_b >= 0))
