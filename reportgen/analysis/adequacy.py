@@ -133,15 +133,19 @@ def model_checks(fit: FPCAFit, readings: pd.DataFrame, codes: np.ndarray) -> Ade
     # not read as a change over time.
     average = float(np.mean(z2))
 
-    def estimation(stat: int) -> Callable[[np.ndarray, int], np.ndarray]:
+    def estimation(squares: bool) -> Callable[[np.ndarray, int], np.ndarray]:
+        """The bins' variance from the estimation of the model's parts, for the residuals
+        or (``squares``) their standardized squares."""
+        stat = 1 if squares else 0  # which of each resampled fit's (residuals, squares)
+
         def shared(which: np.ndarray, nb: int) -> np.ndarray:
             counts = np.maximum(np.bincount(which, minlength=nb), 1)
             if again:  # the bin's value under each resampled fit, on these readings
                 binned = np.array([np.bincount(which, r[stat], nb) / counts for r in again])
-                if stat == 1:  # the spread check is on the shape over time, not the level
+                if squares:  # the scatter check is on the shape over time, not the level
                     binned *= average / np.array([np.mean(r[1]) for r in again])[:, None]
                 return np.asarray(np.var(binned, axis=0, ddof=1))
-            if stat == 1 or fit.mean_covariance.size == 0:
+            if squares or fit.mean_covariance.size == 0:
                 return np.zeros(nb)
             # no resampled fits (a plug-in band): the estimated mean's error only, common
             # to every subject, as it reaches each bin's mean residual
@@ -153,9 +157,11 @@ def model_checks(fit: FPCAFit, readings: pd.DataFrame, codes: np.ndarray) -> Ade
 
     return Adequacy(
         _variance_by_time(t, deviation, owner, model_variance_at(fit, t)),
-        binned_means(t, loo, owner, zero, shared=estimation(0)),
-        binned_means(value - loo, loo, owner, zero, shared=estimation(0)),
-        binned_means(t, z2, owner, np.full(t.size, average), shared=estimation(1), positive=True),
+        binned_means(t, loo, owner, zero, shared=estimation(squares=False)),
+        binned_means(value - loo, loo, owner, zero, shared=estimation(squares=False)),
+        binned_means(
+            t, z2, owner, np.full(t.size, average), shared=estimation(squares=True), positive=True
+        ),
         visit_pattern(scores, last, count),
         int(subjects.size),
         last,
