@@ -109,6 +109,13 @@ def _cell(x: Any) -> str:
     return str(x)
 
 
+def _listed(what: str, ids: pd.Index) -> str:
+    """``what: id, id, ...`` (the first ``SHOWN_IDS``, and how many in all), or none."""
+    shown = ", ".join(ids[:SHOWN_IDS]) or "none"
+    more = f" (first {SHOWN_IDS} of {len(ids)})" if len(ids) > SHOWN_IDS else ""
+    return f"{what}: {shown}{more}"
+
+
 def _short(text: str) -> str:
     """A SHA-256 digest cut to 16 digits (a page column cannot hold 64)."""
     if len(text) == 64 and all(c in "0123456789abcdef" for c in text):
@@ -277,22 +284,7 @@ def change_page(found: Comparison, gates: GatesSection) -> tuple[bytes, dict[str
                 ),
                 {
                     "kind": "list",
-                    "items": [
-                        "added: "
-                        + (", ".join(found.added[:SHOWN_IDS]) or "none")
-                        + (
-                            f" (first {SHOWN_IDS} of {len(found.added)})"
-                            if len(found.added) > SHOWN_IDS
-                            else ""
-                        ),
-                        "removed: "
-                        + (", ".join(found.removed[:SHOWN_IDS]) or "none")
-                        + (
-                            f" (first {SHOWN_IDS} of {len(found.removed)})"
-                            if len(found.removed) > SHOWN_IDS
-                            else ""
-                        ),
-                    ],
+                    "items": [_listed("added", found.added), _listed("removed", found.removed)],
                 },
             ],
         },
