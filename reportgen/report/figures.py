@@ -65,7 +65,7 @@ def make_figures(
 Drawn = tuple[MplFigure, str, str]  # the figure, its caption, its alt text
 
 
-def _legend_beside(
+def legend_beside(
     ax: Any, fontsize: float = 7, panels: Sequence[Any] = (), below: bool = False
 ) -> None:
     """The legend to the right of ``ax`` (the rightmost panel), or under it in one row
@@ -210,7 +210,7 @@ def _mean(r: AnalysisResult) -> Drawn:
     ax.plot(g, np.where(banded, fit.mean, np.nan), color=PALETTE[1], label="mean")
     ax.set_xlabel(_time_label(r))
     ax.set_ylabel(_value_label(r))
-    _legend_beside(ax)
+    legend_beside(ax)
     return (
         fig,
         f"Mean curve with a pointwise {level} band (inner) and a simultaneous "
@@ -337,7 +337,7 @@ def _eigenvalues(r: AnalysisResult) -> Drawn:
     ax.set_ylim(0, 1.05)
     ax.set_xlabel("component")
     ax.set_ylabel("fraction of variance")
-    _legend_beside(ax)
+    legend_beside(ax)
     return (
         fig,
         "Fraction of variance explained by each component (bars; the retained ones "
@@ -359,7 +359,7 @@ def _eigenfunctions(r: AnalysisResult) -> Drawn:
     ax.set_xlabel(_time_label(r))
     ef_unit = r.spec.units()["eigenfunction"]
     ax.set_ylabel("eigenfunction" + (f" ({ef_unit})" if ef_unit else ""))
-    _legend_beside(ax)
+    legend_beside(ax)
     return (
         fig,
         "Eigenfunctions of the retained components"
@@ -388,7 +388,7 @@ def _effects(r: AnalysisResult) -> Drawn:
         ax.set_title(f"component {k + 1}")
         ax.set_xlabel(_time_label(r))
     axes[0, 0].set_ylabel(_value_label(r))
-    _legend_beside(axes[0, k_show - 1])
+    legend_beside(axes[0, k_show - 1])
     return (
         fig,
         "Effect of each component: the mean plus and minus two times "
@@ -607,7 +607,7 @@ def _scores_figure(r: AnalysisResult) -> Drawn:
         )
         alt = "Scatter of subjects' first two scores with flagged subjects circled."
     if flagged.any():
-        _legend_beside(ax)
+        legend_beside(ax)
     return fig, caption, alt
 
 
@@ -640,7 +640,7 @@ def _group_means(r: AnalysisResult) -> Drawn | None:
         )
     ax.set_xlabel(_time_label(r))
     ax.set_ylabel(_value_label(r))
-    _legend_beside(ax)
+    legend_beside(ax)
     return (
         fig,
         f"Mean curve of each group with a pointwise {level} band (cluster-robust over "
@@ -719,7 +719,7 @@ def _variance_check(r: AnalysisResult) -> Drawn | None:
     ax.set_xlabel(_time_label(r))
     unit = r.spec.units()["error variance"]
     ax.set_ylabel("variance of a reading" + (f" ({unit})" if unit else ""))
-    _legend_beside(ax)
+    legend_beside(ax)
     return (
         fig,
         "Model against readings: per bin of reading times (equal numbers of readings), the "
@@ -747,7 +747,7 @@ def _residual_trend(r: AnalysisResult) -> Drawn | None:
     unit = r.spec.units()["residual"]
     axes[0].set_ylabel("mean residual" + (f" ({unit})" if unit else ""))
     axes[2].set_ylabel("mean squared standardized")
-    _legend_beside(axes[1], fontsize=6, panels=axes, below=True)
+    legend_beside(axes[1], fontsize=6, panels=axes, below=True)
     return (
         fig,
         "Leave-one-reading-out residuals (a reading minus its prediction from the "

@@ -42,7 +42,7 @@ def _figures(found: Comparison) -> dict[str, tuple[str, str, str]]:
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
 
-    from ..report.figures import PALETTE, PLOT_RC
+    from ..report.figures import PALETTE, PLOT_RC, legend_beside
     from ..report.svg import figure_svg
 
     ca, cb = found.curves
@@ -57,7 +57,7 @@ def _figures(found: Comparison) -> dict[str, tuple[str, str, str]]:
             ax.plot(c.mean_time, c.mean, color=colour, label=f"{name} mean")
         ax.set_xlabel(time_label)
         ax.set_ylabel("mean" + (f" ({value_unit})" if value_unit else ""))
-        ax.legend(fontsize=7, loc="upper left", bbox_to_anchor=(1.02, 1.0), borderaxespad=0.0)
+        legend_beside(ax)
         out["mean_change"] = (
             figure_svg(fig, "mean_change"),
             "The two runs' mean curves, each with its simultaneous band (shaded), each over "
@@ -84,7 +84,7 @@ def _figures(found: Comparison) -> dict[str, tuple[str, str, str]]:
         ax.axhline(0, color="#888", linewidth=0.8)
         ax.set_xlabel(time_label)
         ax.set_ylabel("eigenfunction")
-        ax.legend(fontsize=7, loc="upper left", bbox_to_anchor=(1.02, 1.0), borderaxespad=0.0)
+        legend_beside(ax)
         out["eigenfunction_change"] = (
             figure_svg(fig, "eigenfunction_change"),
             "Eigenfunctions of the earlier run (solid) and their matched counterparts in the "
