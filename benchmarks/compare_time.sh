@@ -1,7 +1,7 @@
 #!/usr/bin/env bash
 # compare of two runs of 1,000,000 simulated subjects (data and tables as Parquet parts),
 # timed from outside
-# with farm-bench (median of 5; 3 with --out): the figures in benchmarks/RESULTS.md,
+# with benchmarks/timing.py (median of 5; 3 with --out): the figures in benchmarks/RESULTS.md,
 # section 6. The second run is a refresh: 5% of subjects removed, 20% new ones added, one
 # reading changed. Run from the repository: benchmarks/compare_time.sh
 set -euo pipefail
@@ -46,7 +46,7 @@ cp -r first big
 rm -rf big && cp -r second big
 "$exe" run big.yaml --out runs --quiet >/dev/null
 [ -z "${RUNS_ONLY:-}" ] || exit 0  # RUNS_ONLY=1 (with KEEP=1): the two runs for profiling
-farm-bench -n 5 --timeout 300 -- "$exe" compare runs/big/v001 runs/big/v002 || true
-farm-bench -n 3 --timeout 300 -- "$exe" compare runs/big/v001 runs/big/v002 --json || true
-farm-bench -n 3 --timeout 300 -- bash -c "rm -rf change && $exe compare runs/big/v001 runs/big/v002 --out change" || true
+"$here/.venv/bin/python" "$here/benchmarks/timing.py" -n 5 -- "$exe" compare runs/big/v001 runs/big/v002 || true
+"$here/.venv/bin/python" "$here/benchmarks/timing.py" -n 3 -- "$exe" compare runs/big/v001 runs/big/v002 --json || true
+"$here/.venv/bin/python" "$here/benchmarks/timing.py" -n 3 -- bash -c "rm -rf change && $exe compare runs/big/v001 runs/big/v002 --out change" || true
 "$exe" compare runs/big/v001 runs/big/v002 | tail -n 8

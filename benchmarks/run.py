@@ -531,7 +531,7 @@ NOTES = """## Notes on the targets
   `benchmarks/BANDS.md` (`benchmarks/band_ratio.py`) has that run's figures.
 - `compare` of two runs of 1,000,000 subjects (data and subject tables as Parquet parts;
   the second a refresh: 5% of subjects removed, 200,000 added, one reading changed), from
-  `benchmarks/compare_time.sh` with farm-bench on 2026-12-03: 5.1 s median of 5 (peak
+  `benchmarks/compare_time.sh`, timed as whole processes, on 2026-12-03: 5.1 s median of 5 (peak
   821 MiB), 7.5 s with `--out` (the change report, HTML and PDF; median of 3); with CSV
   tables 4.8 s. It found the one subject whose reading changed (1 of 950,000 moved beyond
   its rule). Before the subject ids were matched as pandas indexes and the moves taken as one

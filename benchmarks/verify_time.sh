@@ -1,5 +1,5 @@
 #!/usr/bin/env bash
-# verify on the clinic example, timed from outside with farm-bench (median of 5; 3 with
+# verify on the clinic example, timed from outside with benchmarks/timing.py (median of 5; 3 with
 # --render): the figures in benchmarks/VERIFY.md. Run from the repository: benchmarks/verify_time.sh
 set -euo pipefail
 here="$(cd "$(dirname "$0")/.." && pwd)"
@@ -12,6 +12,6 @@ ssh-keygen -q -t ed25519 -N "" -C analyst@example.org -f key
 echo "analyst@example.org $(cut -d' ' -f1,2 key.pub)" > allowed_signers
 "$exe" run clinic_visits.yaml --out runs --quiet --sign key >/dev/null
 run=runs/clinic-visits/v001
-farm-bench -n 5 -- "$exe" verify "$run"
-farm-bench -n 5 -- "$exe" verify "$run" --allowed-signers allowed_signers
-farm-bench -n 3 --timeout 200 -- "$exe" verify "$run" --render
+"$here/.venv/bin/python" "$here/benchmarks/timing.py" -n 5 -- "$exe" verify "$run"
+"$here/.venv/bin/python" "$here/benchmarks/timing.py" -n 5 -- "$exe" verify "$run" --allowed-signers allowed_signers
+"$here/.venv/bin/python" "$here/benchmarks/timing.py" -n 3 -- "$exe" verify "$run" --render
