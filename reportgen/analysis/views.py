@@ -281,6 +281,18 @@ def band_words(fit: FPCAFit) -> str:
     return f"plug-in: the mean, eigenfunctions and variances taken as known ({band.reason})"
 
 
+def mean_variance_words(fit: FPCAFit, whose: str = "subjects") -> str:
+    """How a mean band's variance was estimated, in words for a caption
+    (``FPCAFit.mean_variance``)."""
+    if fit.mean_variance == "jackknife":
+        return (
+            f"a variance by the jackknife over {whose} (leaving out one at a time), widened "
+            "where few subjects carry the fit (the t quantile at its effective degrees of "
+            "freedom)"
+        )
+    return f"a cluster-robust (sandwich) variance over {whose}"
+
+
 def function_words(fit: FPCAFit) -> str:
     """Where the eigenfunctions come from, and the evidence, in words (``FunctionSource``)."""
     src = fit.functions

@@ -43,6 +43,7 @@ from .components import (
 )
 from .design import BinnedStats, PairStats, Sample, assign_folds, seeded_sample
 from .likelihood import LikelihoodFit, maximise, starting_error_variance
+from .meanband import JACKKNIFE_MAX_SUBJECTS, local_fits, mean_band
 from .options import FPCAOptions
 from .plan import Part, Partitioned, PartResults, ResidualSize
 from .predictor import Predictor, corrected_variance
@@ -54,8 +55,6 @@ from .smoothing import (
     BinGrid,
     Kernel,
     design_conditioning_2d,
-    equivalent_kernel_1d,
-    equivalent_kernel_quadratic_1d,
     get_kernel,
     hat_diagonal_1d,
     hat_diagonal_2d,
@@ -315,9 +314,26 @@ def _fit(
     cov, diag_var, ridge = _surfaces(
         pstats, cbins, grid, cov_choice.value, diag_choice.value, kernel
     )
-    band_centre, mean_cov, uncorrected = mean_band(
+    band_centre, mean_cov, quadratic = mean_band(
         pstats, total.counts[0], total.sums[0], mbins, cbins, grid, mean_choice.value, kernel
     )
+    uncorrected = int(np.sum(~quadratic))
+    jackknife = not population_only and n_subjects <= JACKKNIFE_MAX_SUBJECTS
+    if jackknife:
+        fits = local_fits(
+            grid,
+            mbins,
+            total.counts[0],
+            total.sums[0],
+            mean_choice.value,
+            options.kernel,
+            quadratic,
+        )
+        sums = data.jackknife((fits,))
+        mean_cov = sums.covariance(mean_cov, options.band_level)
+        one_subject, mean_df = sums.undefined[0], sums.degrees_of_freedom()
+    else:
+        one_subject, mean_df = np.zeros(grid.size, dtype=bool), np.full(grid.size, np.nan)
     mean_se = np.sqrt(np.maximum(np.diag(mean_cov), 0.0))
     # subjects behind the mean at each grid time; no band where fewer than MIN_SUPPORT
     support = (
@@ -328,8 +344,9 @@ def _fit(
     # more than a grid step beyond the readings, the curves are extrapolated
     step = (hi - lo) / max(grid.size - 1, 1)
     inside = (grid >= data.t_min - step) & (grid <= data.t_max + step)
-    supported = (support >= MIN_SUPPORT) & inside
+    supported = (support >= MIN_SUPPORT) & inside & ~one_subject
     mean_se = np.where(supported, mean_se, np.nan)
+    mean_df = np.where(supported, mean_df, np.nan)
     if not np.all(supported):
         messages.append(
             f"no band is drawn at {int(np.sum(~supported))} of {grid.size} grid times "
@@ -341,6 +358,18 @@ def _fit(
                 if not np.all(inside)
                 else ""
             )
+            + (
+                ", or leaving out one subject leaves the local fit there undefined (the "
+                "mean there rests on that subject's readings)"
+                if np.any(one_subject)
+                else ""
+            )
+        )
+    if not jackknife and not population_only:
+        messages.append(
+            f"the mean's band uses the cluster-robust sandwich variance (above "
+            f"{JACKKNIFE_MAX_SUBJECTS:,} subjects the jackknife over subjects costs more and "
+            "changes little)"
         )
     if uncorrected:
         messages.append(
@@ -442,7 +471,8 @@ def _fit(
         selection = select_components(terms, lik, fve, hi - lo, options)
     k = selection.chosen
     values, funcs = lik.eigenvalues[:k], funcs_ref[:, :k]
-    truncation = np.sum(lik.eigenvalues[k:] * funcs_ref[:, k:] ** 2, axis=1)
+    left_out = funcs_ref[:, k:] * np.sqrt(np.maximum(lik.eigenvalues[k:], 0.0))
+    truncation = np.sum(left_out**2, axis=1)
     # the components that enter a band's variance: the retained ones, plus the left-out
     # refined ones when they carry variance (the simultaneous band's degrees of freedom)
     dof = int(lik.eigenvalues.size if np.any(truncation > 0) else k)
@@ -457,6 +487,7 @@ def _fit(
         options.band_level,
         dof,
         None if population_only else frozen(supported.astype(np.float64)),
+        frozen(left_out),
     )
 
     # 6. scores
@@ -470,6 +501,8 @@ def _fit(
         mean_se=frozen(mean_se),
         mean_band_centre=frozen(band_centre),
         mean_covariance=frozen(mean_cov),
+        mean_variance="jackknife" if jackknife else "sandwich",
+        mean_degrees_of_freedom=frozen(mean_df),
         covariance=frozen(cov),
         diagonal_variance=frozen(diag_var),
         eigenvalues=predictor.eigenvalues,
@@ -762,52 +795,6 @@ def _surfaces(
     # Where the quadratic is undetermined (thin data at the corners), use the plane's value.
     ridge = np.where(np.isfinite(ridge), ridge, np.diag(cov))
     return cov, diag_var, ridge
-
-
-def mean_covariance(pstats: PairStats, weights: FloatArray) -> FloatArray:
-    """Cluster-robust covariance of a linear smoother of the readings on the grid,
-    (n_grid, n_grid), from its equivalent-kernel weights on the covariance bins.
-
-    With weights l(x), the estimate's deviation is sum_i l(x)' u_i over subjects (u_i: the
-    subject's binned residuals), so its covariance is estimated by L (sum_i u_i u_i') L':
-    the sandwich estimator with subjects as clusters (Liang & Zeger 1986, Biometrika
-    73:13-22; applied to a linear smoother).
-    """
-    out: FloatArray = weights @ pstats.cross @ weights.T
-    return 0.5 * (out + out.T)
-
-
-def mean_band(
-    pstats: PairStats,
-    counts: FloatArray,
-    sums: FloatArray,
-    mbins: BinGrid,
-    cbins: BinGrid,
-    grid: FloatArray,
-    h: float,
-    kernel: Kernel,
-) -> tuple[FloatArray, FloatArray, int]:
-    """The mean's band by robust bias correction: (its centre on the grid, its covariance,
-    grid times where it could not be corrected).
-
-    A band around the local linear mean leaves out its smoothing bias, largest where the
-    mean bends and readings are few. Robust bias correction (Calonico, Cattaneo & Farrell
-    2018, JASA 113:767-779) subtracts an estimate of that bias and widens the band for the
-    estimate's own variance; with the bias estimated at the same bandwidth (their rho = 1)
-    the bias-corrected estimate and its variance are those of the local quadratic fit at
-    that bandwidth (from memory), so the band is centred on the local quadratic fit, with
-    its cluster-robust variance. Where the quadratic fit is undefined (too few distinct
-    times in the window), the local linear fit and its variance are used.
-    """
-    linear = local_linear_binned_1d(grid, mbins.centers, counts, sums, h, kernel)
-    quad = equivalent_kernel_quadratic_1d(grid, mbins.centers, counts, h, kernel) @ sums
-    cbin_counts = pstats.diag.counts.sum(axis=0)
-    lw = equivalent_kernel_1d(grid, cbins.centers, cbin_counts, h, kernel)
-    qw = equivalent_kernel_quadratic_1d(grid, cbins.centers, cbin_counts, h, kernel)
-    bad = ~(np.isfinite(quad) & np.all(np.isfinite(qw), axis=1))
-    weights = np.where(bad[:, None], lw, qw)
-    centre = np.where(bad, linear, quad)
-    return centre, mean_covariance(pstats, weights), int(bad.sum())
 
 
 def with_bandwidths(

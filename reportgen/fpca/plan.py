@@ -38,6 +38,7 @@ from .arrays import FloatArray, IntArray
 from .components import evaluate_at
 from .design import BinnedStats, PairStats, Sample, mean_stats, pair_stats, subject_support
 from .executor import Executor, InProcess, tree_sum
+from .meanband import JackknifeSums, LocalFits, jackknife_sums
 from .scores import conditional_scores
 from .smoothing import BinGrid
 
@@ -189,6 +190,12 @@ def residual_sums(
             float(np.max(np.abs(part.sample.y))), float(np.sum(resid * resid)), float(resid.size)
         ),
     )
+
+
+def jackknife(part: Part, group: IntArray, fits: tuple[LocalFits, ...]) -> JackknifeSums:
+    """The mean's jackknife sums over the part's subjects (``meanband.jackknife_sums``;
+    ``group``: each subject's index into ``fits``)."""
+    return jackknife_sums(part.sample, group, fits)
 
 
 def gather(part: Part, rows: IntArray, fine: FloatArray, mean_grid: BinGrid) -> Gathered:
@@ -398,6 +405,16 @@ class Partitioned:
             residual_sums, self.parts, self._each(folds), (fine, mean_grid, grid, n_folds)
         )
         return tree_sum(found, _add_pairs)
+
+    def jackknife(
+        self, fits: tuple[LocalFits, ...], group: IntArray | None = None
+    ) -> JackknifeSums:
+        """The mean's jackknife sums, per group (``group``: each subject's index into
+        ``fits``, by code; all in one by default)."""
+        if group is None:
+            group = np.zeros(self.n_subjects, dtype=np.intp)
+        found = self.executor.map(jackknife, self.parts, self._each(group), (fits,))
+        return tree_sum(found, JackknifeSums.__add__)
 
     def rows_in_parts(self, chosen: IntArray) -> list[IntArray]:
         """Each part's rows of those of the subjects ``chosen`` (increasing codes) that it

@@ -86,6 +86,11 @@ class Predictor:
         1 where at least ``fit.MIN_SUPPORT`` subjects have a reading within the mean's bandwidth
         and the time lies within the readings' range,
         0 elsewhere: no band is drawn at the unsupported times (None: every time supported).
+    truncation_modes : ndarray of shape (n_grid, m) or None
+        The left-out components themselves, each eigenfunction times the root of its
+        eigenvalue (``truncation_variance`` is the sum of their squares): the simultaneous
+        band draws them with their shapes. None (a run stored before they were kept): one
+        smooth mode along sqrt(truncation_variance) stands for them.
     """
 
     grid: FloatArray
@@ -98,6 +103,7 @@ class Predictor:
     band_level: float
     simultaneous_dof: int
     supported: FloatArray | None = None
+    truncation_modes: FloatArray | None = None
 
     @property
     def domain(self) -> tuple[float, float]:
@@ -200,13 +206,23 @@ class Predictor:
             }
         )
 
+    def left_out_modes(self) -> FloatArray:
+        """The left-out components as modes on the grid, (n_grid, m): ``truncation_modes``,
+        or one smooth mode along sqrt(truncation_variance) when they were not kept."""
+        if self.truncation_modes is not None:
+            return self.truncation_modes
+        root = np.sqrt(np.maximum(self.truncation_variance, 0.0))
+        # none left out writes no mode rows: read back as none, not as one mode of zeros
+        # (which would draw other random numbers for the simultaneous multiplier)
+        return root[:, None] if np.any(root > 0) else np.zeros((root.size, 0))
+
     def plugin_sup_multipliers(
         self, cov: FloatArray, sd: FloatArray, level: float | None = None
     ) -> FloatArray:
         """Each subject's simultaneous multiplier for the plug-in band (:func:`sup_multipliers`
         with this predictor as the only source)."""
         lvl = self.band_level if level is None else level
-        source = Source(np.zeros_like(sd), cov, self.eigenfunctions, self.truncation_variance)
+        source = Source(np.zeros_like(sd), cov, self.eigenfunctions, self.left_out_modes())
         return sup_multipliers([source], sd, lvl)
 
     def predict(
@@ -246,10 +262,12 @@ class Predictor:
     def to_frame(self) -> pd.DataFrame:
         """Long table: quantity, component (0: none), time (nan: none), value."""
         k = self.n_components
+        modes = self.truncation_modes if self.truncation_modes is not None else np.zeros((0, 0))
         parts = [
             ("mean", 0, self.mean_time, self.mean_value),
             *(("eigenfunction", j + 1, self.grid, self.eigenfunctions[:, j]) for j in range(k)),
             ("truncation_variance", 0, self.grid, self.truncation_variance),
+            *(("truncation_mode", j + 1, self.grid, modes[:, j]) for j in range(modes.shape[1])),
             *([("supported", 0, self.grid, self.supported)] if self.supported is not None else []),
             ("eigenvalue", np.arange(1, k + 1), np.full(k, np.nan), self.eigenvalues),
             *(
@@ -277,6 +295,17 @@ class Predictor:
             trunc = by["truncation_variance"].sort_values("time", kind="stable")
             scalar = {name: float(by[name].value.iloc[0]) for name in SCALARS}
             held = by.get("supported")
+            kept = by.get("truncation_mode")
+            modes = (
+                None
+                if kept is None
+                else np.ascontiguousarray(
+                    kept.sort_values(["component", "time"], kind="stable")
+                    .value.to_numpy(dtype=np.float64)
+                    .reshape(-1, grid.size)
+                    .T
+                )
+            )
             supported = (
                 None
                 if held is None
@@ -293,6 +322,7 @@ class Predictor:
                 scalar["band_level"],
                 int(scalar["simultaneous_dof"]),
                 supported,
+                modes,
             )
         except (KeyError, ValueError, AttributeError) as e:
             raise EstimationError(f"the stored model table is incomplete or damaged ({e})") from e
@@ -308,12 +338,13 @@ class Predictor:
 class Source(NamedTuple):
     """One equally weighted part of the distribution of the curves' errors on the grid:
     ``offset`` (n, n_grid) plus a Gaussian along ``eigenfunctions`` with the scores'
-    covariance ``cov`` (n, K, K), plus one smooth mode of variance ``truncation``."""
+    covariance ``cov`` (n, K, K), plus independent standard normal multiples of the
+    left-out ``modes`` (n_grid, m; ``Predictor.left_out_modes``)."""
 
     offset: FloatArray
     cov: FloatArray
     eigenfunctions: FloatArray
-    truncation: FloatArray
+    modes: FloatArray
 
 
 # Draws of the whole curve's error for a simultaneous multiplier: the Monte Carlo error of
@@ -341,14 +372,18 @@ def sup_multipliers(
     Semiparametric Regression, sec. 6.5; from memory), not the chi-square bound, which is
     conservative when the components' functions are smooth.
 
-    The left-out components enter as one more mode along sqrt(truncation) (their shapes
-    are not kept; one smooth mode is the least conservative reading, independent noise at
-    each grid time the most). Grid times with zero variance are left out of the maximum.
+    The left-out components enter with their own shapes (``Source.modes``): a left-out
+    mode that changes sign moves the two ends of a curve apart, which one mode along the
+    root of their variance would miss. Grid times with zero variance are left out of the
+    maximum.
     """
     n = sd.shape[0]
     per = max(draws // len(sources), 20)
     rng = np.random.default_rng(SUP_SEED)
-    noise = [rng.standard_normal((per, src.eigenfunctions.shape[1] + 1)) for src in sources]
+    noise = [
+        rng.standard_normal((per, src.eigenfunctions.shape[1] + src.modes.shape[1]))
+        for src in sources
+    ]
     safe = np.where(sd > 1e-12 * max(float(sd.max(initial=0.0)), 1e-300), sd, np.inf)
     out = np.empty(n)
     for lo in range(0, n, _CHUNK):
@@ -358,7 +393,7 @@ def sup_multipliers(
             k = src.eigenfunctions.shape[1]
             scores = np.einsum("ckl,ml->cmk", _roots(src.cov[rows]), z[:, :k])
             err = scores @ src.eigenfunctions.T  # (c, m, g)
-            err += z[None, :, k, None] * np.sqrt(np.maximum(src.truncation, 0.0))[None, None, :]
+            err += (z[:, k:] @ src.modes.T)[None, :, :]
             err += src.offset[rows][:, None, :]
             stats.append(np.max(np.abs(err) / safe[rows][:, None, :], axis=2))
         out[rows] = np.quantile(np.concatenate(stats, axis=1), level, axis=1)
@@ -409,7 +444,7 @@ def corrected_bands(
     """
     variance, curves, covs = _over_refits(replicates, sample)
     sources = [
-        Source(curve - fitted, cov, rep.eigenfunctions, rep.truncation_variance)
+        Source(curve - fitted, cov, rep.eigenfunctions, rep.left_out_modes())
         for rep, curve, cov in zip(replicates, curves, covs, strict=True)
     ]
     return variance, sup_multipliers(sources, np.sqrt(variance), level)

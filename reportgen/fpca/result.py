@@ -100,8 +100,9 @@ class FPCAFit:
     grid : ndarray of shape (n_grid,)
     mean : ndarray of shape (n_grid,)
     mean_se : ndarray of shape (n_grid,)
-        Pointwise standard error of the mean's band, cluster-robust over subjects (the
-        bias-corrected band's: ``fit.mean_band``).
+        Pointwise standard error of the mean's band (the bias-corrected band's:
+        ``meanband.mean_band``), by the jackknife over subjects and widened where few
+        subjects carry the fit (``mean_variance``).
     mean_support : ndarray of shape (n_grid,)
         Subjects with a reading within the mean's bandwidth of each grid time; no band
         (``nan``) where fewer than ``fit.MIN_SUPPORT``.
@@ -178,9 +179,16 @@ class FPCAFit:
         The eigenfunctions of every refined component (the retained ones first), with
         ``likelihood.eigenvalues`` the full model beside the retained K.
     mean_covariance : ndarray of shape (n_grid, n_grid)
-        Cluster-robust covariance over the grid of the mean's band estimate (``mean_se``
-        is the root of its diagonal): how the mean's estimation error at one time moves
-        with that at another (``fpca.adequacy.mean_error_variance``).
+        Covariance over the grid of the mean's band estimate (``mean_se`` is the root of
+        its diagonal; ``mean_variance`` says which estimator): how the mean's estimation
+        error at one time moves with that at another (``fpca.adequacy.mean_error_variance``).
+    mean_variance : str
+        ``"jackknife"`` (over subjects, each time's standard error widened by the t quantile
+        at ``mean_degrees_of_freedom``; ``fpca.meanband``) or ``"sandwich"`` (cluster-robust,
+        above ``meanband.JACKKNIFE_MAX_SUBJECTS`` subjects).
+    mean_degrees_of_freedom : ndarray of shape (n_grid,)
+        The jackknife variance's effective degrees of freedom at each time (``nan`` with the
+        sandwich and where no band is drawn).
     """
 
     grid: FloatArray
@@ -224,6 +232,8 @@ class FPCAFit:
     functions: FunctionSource = FunctionSource()
     refined_eigenfunctions: FloatArray = field(default_factory=lambda: np.zeros((0, 0)))
     mean_covariance: FloatArray = field(default_factory=lambda: np.zeros((0, 0)))
+    mean_variance: str = "jackknife"
+    mean_degrees_of_freedom: FloatArray = field(default_factory=lambda: np.zeros(0))
 
     @property
     def mean_bandwidth(self) -> float:

@@ -20,7 +20,13 @@ from scipy.special import ndtri
 
 from ..analysis.adequacy import ADEQUACY_LEVEL
 from ..analysis.analyse import AnalysisResult
-from ..analysis.views import MIN_SUPPORT, band_words, density, other_functions
+from ..analysis.views import (
+    MIN_SUPPORT,
+    band_words,
+    density,
+    mean_variance_words,
+    other_functions,
+)
 from .svg import figure_svg
 
 PALETTE = ("#1f5f8b", "#c0632b", "#3f8f4f", "#8a3f8f", "#7a7a2a", "#2a7a7a")
@@ -214,10 +220,11 @@ def _mean(r: AnalysisResult) -> Drawn:
     return (
         fig,
         f"Mean curve with a pointwise {level} band (inner) and a simultaneous "
-        f"{level} band (outer; holds at every time at once), both cluster-robust over "
-        "subjects and corrected for the mean's smoothing bias (robust bias correction: "
-        "centred on a local quadratic fit at the mean's bandwidth, so a band may sit off "
-        f"the curve where it bends), over {drawn}"
+        f"{level} band (outer; holds at every time at once), both corrected for the mean's "
+        "smoothing bias (robust bias correction: centred on a local quadratic fit at the "
+        "mean's bandwidth, so a band may sit off the curve where it bends), with "
+        + mean_variance_words(fit)
+        + f", over {drawn}"
         + (
             f". Where fewer than {MIN_SUPPORT} subjects have a reading within the mean's "
             "bandwidth, or beyond the readings, the curve is drawn faint and without a band."
@@ -643,11 +650,11 @@ def _group_means(r: AnalysisResult) -> Drawn | None:
     legend_beside(ax)
     return (
         fig,
-        f"Mean curve of each group with a pointwise {level} band (cluster-robust over "
-        "the group's subjects and corrected for smoothing bias), each smoothed at the common "
-        f"mean bandwidth {fit.mean_bandwidth:.4g}. Where fewer than {MIN_SUPPORT} of a "
-        "group's subjects have a reading within that bandwidth the curve is drawn faint and "
-        "without a band. Descriptive: not adjusted for multiple comparisons.",
+        f"Mean curve of each group with a pointwise {level} band, corrected for smoothing "
+        "bias and with " + mean_variance_words(fit, "the group's subjects") + ". Each curve "
+        f"is smoothed at the common mean bandwidth {fit.mean_bandwidth:.4g}. Where fewer than "
+        f"{MIN_SUPPORT} of a group's subjects have a reading within that bandwidth the curve "
+        "is drawn faint and without a band. Descriptive: not adjusted for multiple comparisons.",
         "One mean curve per group with a shaded band, on one set of axes.",
     )
 

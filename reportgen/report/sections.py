@@ -142,7 +142,7 @@ def _section_summary(c: _Context) -> None:
         f"components), for eigenfunctions {function_words(fit)}; each subject's scores "
         "and trajectory follow by conditional "
         "expectation, which works with a single reading. Bands for trajectories add the "
-        "variance of the components left out. Bandwidths: mean "
+        "components left out (with their shapes, for the simultaneous band). Bandwidths: mean "
         f"{_how(fit.mean_bandwidth_choice)}, covariance "
         f"{_how(fit.covariance_bandwidth_choice)}, variance of single readings "
         f"{_how(fit.diagonal_bandwidth_choice)} ({fit.options.kernel} kernel).",

@@ -102,6 +102,7 @@ def build_tables(result: AnalysisResult) -> dict[str, pd.DataFrame]:
             "upper": fit.mean_band_centre + z * fit.mean_se,
             "lower_simultaneous": fit.mean_band_centre - zs * fit.mean_se,
             "upper_simultaneous": fit.mean_band_centre + zs * fit.mean_se,
+            "degrees_of_freedom": fit.mean_degrees_of_freedom,
         }
     )
     n_all = fit.all_eigenvalues.size

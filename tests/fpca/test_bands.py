@@ -23,7 +23,7 @@ def test_a_rank_one_curve_error_has_the_normal_quantile_as_its_sup_multiplier() 
     t, phi = _one_mode()
     cov = np.full((3, 1, 1), 2.0)
     sd = np.sqrt(2.0) * np.abs(phi[:, 0])[None, :].repeat(3, axis=0)
-    m = sup_multipliers([Source(np.zeros_like(sd), cov, phi, np.zeros(t.size))], sd, 0.95)
+    m = sup_multipliers([Source(np.zeros_like(sd), cov, phi, np.zeros((t.size, 0)))], sd, 0.95)
     assert np.allclose(m, m[0])  # the same draws for every subject
     assert abs(m[0] - stats.norm.ppf(0.975)) < 0.1  # Monte Carlo error of 1000 draws
 
@@ -35,7 +35,7 @@ def test_two_modes_lie_between_the_pointwise_and_the_chi_square_multipliers() ->
     phi = np.column_stack([np.sqrt(2) * np.cos(np.pi * t), np.sqrt(2) * np.cos(2 * np.pi * t)])
     cov = np.array([[[1.0, 0.0], [0.0, 0.5]]])
     sd = np.sqrt(np.einsum("gk,nkl,gl->ng", phi, cov, phi))
-    m = sup_multipliers([Source(np.zeros_like(sd), cov, phi, np.zeros(t.size))], sd, 0.95)[0]
+    m = sup_multipliers([Source(np.zeros_like(sd), cov, phi, np.zeros((t.size, 0)))], sd, 0.95)[0]
     assert stats.norm.ppf(0.975) < m < np.sqrt(stats.chi2.ppf(0.95, 2))
 
 
@@ -45,11 +45,31 @@ def test_an_offset_widens_the_multiplier_and_a_mixture_uses_every_source() -> No
     t, phi = _one_mode()
     cov = np.ones((1, 1, 1))
     sd = np.abs(phi[:, 0])[None, :]
-    zero = Source(np.zeros_like(sd), cov, phi, np.zeros(t.size))
-    shifted = Source(2.0 * sd, cov, phi, np.zeros(t.size))
+    zero = Source(np.zeros_like(sd), cov, phi, np.zeros((t.size, 0)))
+    shifted = Source(2.0 * sd, cov, phi, np.zeros((t.size, 0)))
     alone = sup_multipliers([zero], sd, 0.95)[0]
     mixed = sup_multipliers([zero, shifted], sd, 0.95)[0]
     assert mixed > alone + 1.0
+
+
+def test_a_left_out_mode_that_changes_sign_keeps_its_shape_in_the_simultaneous_band() -> None:
+    # One retained constant mode and one left-out cosine (it moves the two ends of a curve
+    # apart). The whole-curve error a + b cos(pi t), drawn afresh with numpy (another seed),
+    # must lie inside m sd for about 95% of draws; standing the cosine in by one mode along
+    # |cos| (the root of its variance) gives a smaller multiplier that holds far less often.
+    t = np.linspace(0, 1, 61)
+    phi = np.ones((t.size, 1))
+    left_out = 0.8 * np.sqrt(2) * np.cos(np.pi * t)[:, None]
+    cov = np.full((1, 1, 1), 0.3)
+    sd = np.sqrt(0.3 + left_out[:, 0] ** 2)[None, :]
+    shaped = sup_multipliers([Source(np.zeros_like(sd), cov, phi, left_out)], sd, 0.95)[0]
+    rooted = sup_multipliers([Source(np.zeros_like(sd), cov, phi, np.abs(left_out))], sd, 0.95)[0]
+    rng = np.random.default_rng(2024)
+    a = rng.normal(0, np.sqrt(0.3), 20000)[:, None]
+    b = rng.normal(size=20000)[:, None]
+    largest = np.max(np.abs(a + b * left_out[:, 0][None, :]) / sd, axis=1)
+    assert np.mean(largest <= shaped) == pytest.approx(0.95, abs=0.015)
+    assert np.mean(largest <= rooted) < 0.94 and rooted < shaped
 
 
 def test_the_band_for_a_new_reading_adds_the_error_variance() -> None:
@@ -187,3 +207,29 @@ def test_band_auto_above_its_size_measures_the_width_ratio_it_gives_up(
     assert fit.band.kind == "plugin" and not fit.replicates
     assert 1.0 <= fit.band.width_ratio < 1.5
     assert f"would be {fit.band.width_ratio:.3f} times as wide" in fit.band.reason
+
+
+def test_the_model_table_keeps_the_left_out_modes_and_reads_a_table_without_them() -> None:
+    # A table written before the left-out modes were kept reads back with one mode along the
+    # root of their variance (what bands were drawn with then). (common practice, no source)
+    from reportgen.fpca.predictor import Predictor
+
+    t = np.linspace(0, 1, 11)
+    modes = np.column_stack([np.cos(np.pi * t), 0.5 * np.cos(2 * np.pi * t)])
+    p = Predictor(
+        t, t, t**2, np.ones((t.size, 1)), np.array([2.0]), 0.3,
+        np.sum(modes**2, axis=1), 0.95, 3, None, modes,
+    )  # fmt: skip
+    back = Predictor.from_frame(p.to_frame())
+    np.testing.assert_array_equal(back.left_out_modes(), modes)
+    table = p.to_frame()
+    old = Predictor.from_frame(table[table.quantity != "truncation_mode"])
+    assert old.truncation_modes is None
+    np.testing.assert_allclose(old.left_out_modes()[:, 0], np.sqrt(np.sum(modes**2, axis=1)))
+    # none left out: no mode rows, read back as no mode (not one of zeros, which would draw
+    # other random numbers: the stored run's simultaneous band must be the run's own)
+    bare = Predictor(
+        t, t, t**2, np.ones((t.size, 1)), np.array([2.0]), 0.3,
+        np.zeros(t.size), 0.95, 1, None, np.zeros((t.size, 0)),
+    )  # fmt: skip
+    assert Predictor.from_frame(bare.to_frame()).left_out_modes().shape == (t.size, 0)

