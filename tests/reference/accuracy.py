@@ -17,6 +17,7 @@ clinic example (generating error variance 1.5^2 = 2.25, specs/make_examples.py).
 from __future__ import annotations
 
 import argparse
+import pickle
 import time
 from collections.abc import Callable
 from dataclasses import dataclass, replace
@@ -371,17 +372,24 @@ NOTES = [
     "coverage is measured there. "
     "Seconds: one fit with its bands for every subject.",
     "- The plug-in band falls short where readings are few (A, E, F, G: 0.88-0.91 "
-    "pointwise, 0.46-0.77 of whole curves; 0.79-0.80 in the last third of E and F) and the "
+    "pointwise, 0.48-0.81 of whole curves; 0.79-0.80 in the last third of E and F) and the "
     "corrected one holds there; hence the default.",
-    "- Targets the default band still misses: whole curves in G (median just under 0.92, "
-    "10th percentile 0.86; FVE keeps one component in 15 of 20 fits and the second mode "
-    "enters the band only as the left-out components' variance), and the whole mean in E "
-    "(0.80 of seeds), G (0.85) and H (0.80). In H no band is drawn past the last reading "
-    "(0.8 of the domain), where the curves are extrapolated. Over 100 seeds "
-    "(benchmarks/MEAN_BAND.md, `tests/reference/mean_calibration.py`) the whole mean is "
-    "inside in A 0.88, B 0.92, C 0.92, D 0.93, E 0.82, F 0.83, G 0.93, H 0.91 of seeds: the "
-    "mean's standard error falls 5-10% short everywhere and up to 36% short where readings "
-    "are few (E, F late), so G and H's misses here are 20-seed noise and A's 'met' is not.",
+    "- Whole curves in G just meet their target (median 0.92, 0.923 unrounded; 10th "
+    "percentile 0.86): FVE keeps one component in 15 of 20 fits, and those fits hold 0.75-0.95 "
+    "of whole curves against 0.95-0.99 for the fits that keep two. The second mode then "
+    "enters the band as a left-out component, with its estimated shape (before the shapes "
+    "were kept, the median was just under 0.92); where that shape is poor (the surface "
+    "smoothed at a bandwidth near the limit), the band misses at the ends of the domain, "
+    "where the second mode is largest. In H no band is drawn past the last reading (0.8 of "
+    "the domain), where the curves are extrapolated.",
+    "- The whole true mean is judged over 100 seeds (the line under the targets): over 20 a "
+    "share near 0.91 has a binomial standard error of about 0.06, and the 20-seed column of "
+    "the estimates table (E and H: 17 of 20) moves by that much from one set of seeds to "
+    "another. Over seeds 0-99 it is 0.89 in B, G and H, just under the 0.90 target; over "
+    "another 100 (seeds 1000-1099, benchmarks/MEAN_BAND.md) 0.92, 0.93 and 0.92, and 0.91 "
+    "or more on every design. So the simultaneous mean band holds about 0.90-0.94 of the "
+    "time, not 0.95: its studentized error has a root mean square of 1.00-1.08 per tenth of "
+    "the domain, and the mean's bandwidth, chosen from the same data, is taken as fixed.",
     "- Eigenfunctions: the likelihood's (refined over a cubic B-spline basis, "
     "eigenfunctions: auto) are used where the 5-fold held-out likelihood rises by more "
     "than a standard error: in every fit of B and C (phi_2 error 0.08 and 0.11 from the "
@@ -393,9 +401,12 @@ NOTES = [
     "[0.24, 1.23] of the truth and sigma^2 1.04 (before the refinement: 0.85 [0.00, 1.18] "
     "and 1.13). In C sigma^2 comes out 6% low (0.94 [0.90, 0.98]; 1.07 from the surface's "
     "functions): the refined extra component takes a little of the error variance.",
-    "- The mean's bands are cluster-robust and bias-corrected (robust bias correction, "
-    "Calonico, Cattaneo & Farrell 2018: centred on the local quadratic fit at the mean's "
-    "bandwidth); 'mean' columns are measured against that band.",
+    "- The mean's bands are bias-corrected (robust bias correction, Calonico, Cattaneo & "
+    "Farrell 2018: centred on the local quadratic fit at the mean's bandwidth), their "
+    "variance the jackknife over subjects with each standard error widened by the t "
+    "quantile at its effective degrees of freedom (`fpca/meanband.py`); 'mean' columns are "
+    "measured against that band. With the cluster-robust sandwich and the normal quantile "
+    "instead, the whole mean was inside in 0.82-0.93 of 100 seeds (E 0.82, F 0.83).",
     "- The smoothing estimate of sigma^2 (a difference of two smoothed curves) is only the "
     "starting point of the likelihood refinement; 'not positive' counts fits where it was 0 "
     "or below. No fit is floored. 'refused': seeds whose fit stopped with an error "
@@ -413,22 +424,29 @@ NOTES = [
     "that bandwidth (see the factors table).",
 ]
 
+# The whole mean's coverage is a share of seeds (one yes or no per seed): over 20 its
+# binomial standard error is about 0.06 at 0.91, so its target is judged over this many.
+MEAN_SEEDS = 100
+
 # The coverage targets the default band is held to (issue acceptance; common practice for a
 # nominal 95% band, no source).
 TARGETS = (
-    ("pointwise median in [0.93, 0.97]", lambda b, r: 0.93 <= b.pointwise.median() <= 0.97),
+    ("pointwise median in [0.93, 0.97]", lambda b, r, m: 0.93 <= b.pointwise.median() <= 0.97),
     (
         "each third's median >= 0.92",
-        lambda b, r: min(b[f"third{j}"].median() for j in (1, 2, 3)) >= 0.92,
+        lambda b, r, m: min(b[f"third{j}"].median() for j in (1, 2, 3)) >= 0.92,
     ),
     (
         "whole curves: median >= 0.92, 10th percentile >= 0.80",
-        lambda b, r: b.whole.median() >= 0.92 and b.whole.quantile(0.1) >= 0.80,
+        lambda b, r, m: b.whole.median() >= 0.92 and b.whole.quantile(0.1) >= 0.80,
     ),
-    ("whole mean inside in >= 0.90 of seeds", lambda b, r: r.mean_simultaneous.mean() >= 0.90),
+    (
+        f"whole mean inside in >= 0.90 of {MEAN_SEEDS} seeds",
+        lambda b, r, m: m >= 0.90,
+    ),
     (
         "new readings: median in [0.93, 0.97]",
-        lambda b, r: 0.93 <= b.new_reading.median() <= 0.97,
+        lambda b, r, m: 0.93 <= b.new_reading.median() <= 0.97,
     ),
 )
 
@@ -439,13 +457,51 @@ def _one(key: str, seeds: int) -> dict[str, object]:
     return out
 
 
-def main(seeds: int = 20, write: bool = False, only: str = "") -> str:
+def _measure(seeds: int, only: str) -> dict[str, object]:
+    """Every number the page shows (``--keep`` stores them; ``--again`` writes the page
+    from them, e.g. after its notes were edited, without the half hour of fits)."""
     from concurrent.futures import ProcessPoolExecutor
 
     start = time.perf_counter()
     keys = [k for k in DESIGNS if not only or k in only]
     with ProcessPoolExecutor(max_workers=2) as pool:
         results = dict(zip(keys, pool.map(_one, keys, [seeds] * len(keys)), strict=True))
+    from tests.reference.mean_calibration import whole_mean_share
+
+    whole_mean = {k: whole_mean_share(k, MEAN_SEEDS) for k in keys}
+    sens = sensitivity_c(seeds) if not only else None
+    est_smooth = clinic() if not only else None
+    return {
+        "seeds": seeds,
+        "results": results,
+        "whole_mean": whole_mean,
+        "sens": sens,
+        "clinic": est_smooth,
+        "wall": time.perf_counter() - start,
+    }
+
+
+def main(
+    seeds: int = 20, write: bool = False, only: str = "", keep: str = "", again: str = ""
+) -> str:
+    if again:
+        with open(again, "rb") as fh:
+            measured = pickle.load(fh)
+        if "whole_mean" not in measured:  # kept before it was measured here
+            from tests.reference.mean_calibration import whole_mean_share
+
+            measured["whole_mean"] = {
+                k: whole_mean_share(k, MEAN_SEEDS) for k in measured["results"]
+            }
+            with open(again, "wb") as fh:
+                pickle.dump(measured, fh)
+    else:
+        measured = _measure(seeds, only)
+        if keep:
+            with open(keep, "wb") as fh:
+                pickle.dump(measured, fh)
+    seeds = measured["seeds"]
+    results = measured["results"]
     lines = [
         "# Accuracy against known truth",
         "",
@@ -496,9 +552,18 @@ def main(seeds: int = 20, write: bool = False, only: str = "") -> str:
         assert isinstance(b, pd.DataFrame) and isinstance(r, pd.DataFrame)
         d = b[(b.kind == "default") & (b.drawn > 0.0)] if len(b) else b
         verdicts = [
-            ("met" if len(d) and len(r) and test(d, r) else "NOT met") for _, test in TARGETS
+            ("met" if len(d) and len(r) and test(d, r, measured["whole_mean"][key]) else "NOT met")
+            for _, test in TARGETS
         ]
         lines.append(f"| {key} | " + " | ".join(verdicts) + " |")
+    lines += [
+        "",
+        f"The whole true mean inside its simultaneous band, over {MEAN_SEEDS} seeds (0 to "
+        f"{MEAN_SEEDS - 1}, the {seeds} above among them; the mean's band does not depend on "
+        "the trajectories' band): "
+        + ", ".join(f"{k} {v:.2f}" for k, v in measured["whole_mean"].items())
+        + ".",
+    ]
     lines += [
         "",
         "## Estimates",
@@ -545,8 +610,8 @@ def main(seeds: int = 20, write: bool = False, only: str = "") -> str:
         + ".",
     ]
     lines += ["", "Designs:", *details]
-    if not only:
-        sens = sensitivity_c(seeds)
+    sens = measured["sens"]
+    if sens is not None:
         lines += [
             "",
             "Design C with all three bandwidths fixed at a factor times the chosen ones "
@@ -556,13 +621,13 @@ def main(seeds: int = 20, write: bool = False, only: str = "") -> str:
             "|---|---|",
         ]
         lines += [f"| {f:g} | {_q(v)} |" for f, v in sens.items()]
-        est, smooth = clinic()
+        est, smooth = measured["clinic"]
         lines += [
             "",
             f"Clinic example (specs/clinic_visits.yaml; generating sigma^2 2.25): refined "
             f"{est:.3f}, smoothing estimate {smooth:.3f}.",
         ]
-    lines += ["", f"Wall time {time.perf_counter() - start:.0f} s (2 processes).", "", *NOTES]
+    lines += ["", f"Wall time {measured['wall']:.0f} s (2 processes).", "", *NOTES]
     text = "\n".join(lines) + "\n"
     if write:
         (ROOT / "benchmarks" / "ACCURACY.md").write_text(text, encoding="utf-8")
@@ -574,5 +639,7 @@ if __name__ == "__main__":
     parser.add_argument("--seeds", type=int, default=20)
     parser.add_argument("--write", action="store_true")
     parser.add_argument("--only", default="", help="design letters, e.g. EFG (not written)")
+    parser.add_argument("--keep", default="", help="store the measurements in this file")
+    parser.add_argument("--again", default="", help="write the page from a --keep file")
     args = parser.parse_args()
-    print(main(args.seeds, args.write and not args.only, args.only))
+    print(main(args.seeds, args.write and not args.only, args.only, args.keep, args.again))
