@@ -329,9 +329,8 @@ def _fit(
             options.kernel,
             quadratic,
         )
-        sums = data.jackknife((fits,))
-        mean_cov = sums.covariance(mean_cov, options.band_level)
-        one_subject, mean_df = sums.undefined[0], sums.degrees_of_freedom()
+        covs, undefined, df = data.jackknife([fits], [mean_cov], options.band_level)
+        mean_cov, one_subject, mean_df = covs[0], undefined[0], df[0]
     else:
         one_subject, mean_df = np.zeros(grid.size, dtype=bool), np.full(grid.size, np.nan)
     mean_se = np.sqrt(np.maximum(np.diag(mean_cov), 0.0))

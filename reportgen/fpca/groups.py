@@ -28,7 +28,7 @@ from .design import BinnedStats, PairStats, Sample, mean_stats, pair_stats, subj
 from .diagnostics import part_group_sums
 from .executor import tree_sum
 from .fit import MIN_SUPPORT
-from .meanband import JACKKNIFE_MAX_SUBJECTS, local_fits, mean_band
+from .meanband import local_fits, mean_band
 from .plan import Part, Partitioned, add_binned, add_pair_stats
 from .result import FPCAFit
 from .smoothing import BinGrid, get_kernel, local_linear_binned_1d
@@ -215,23 +215,19 @@ def group_means(
     support = np.sum(
         data.executor.map(group_support, data.parts, each, (n_groups, fit.grid, h)), axis=0
     )
-    centres, variances, fits = [], [], []
+    centres, covs, fits = [], [], []
     for k in range(n_groups):
         pstats = tree_sum([f[k] for f in found_pairs], add_pair_stats)
         counts, sums = totals[k].counts[0], totals[k].sums[0]
         centre, cov, quadratic = mean_band(pstats, counts, sums, mbins, cbins, fit.grid, h, kernel)
         centres.append(centre)
-        variances.append(np.diag(cov))
+        covs.append(cov)
         fits.append(local_fits(fit.grid, mbins, counts, sums, h, opts.kernel, quadratic))
     drawn = np.isfinite(np.stack(means)) & (support >= MIN_SUPPORT)
-    if data.n_subjects <= JACKKNIFE_MAX_SUBJECTS:  # as the common mean's band (``meanband``)
-        sums = data.jackknife(tuple(fits), groups)
-        level = opts.band_level
-        variances = [
-            np.diag(sums.covariance(np.diag(v), level, k)) for k, v in enumerate(variances)
-        ]
-        drawn &= ~sums.undefined
-    ses = np.sqrt(np.maximum(np.stack(variances), 0.0))
+    if fit.mean_variance == "jackknife":  # as the common mean's band
+        covs, undefined, _ = data.jackknife(fits, covs, opts.band_level, groups)
+        drawn &= ~undefined
+    ses = np.sqrt(np.maximum(np.stack([np.diag(c) for c in covs]), 0.0))
     return np.stack(means), np.stack(centres), np.where(drawn, ses, np.nan)
 
 

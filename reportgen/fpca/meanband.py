@@ -3,7 +3,7 @@
 The centre is the local quadratic fit at the mean's bandwidth (robust bias correction with
 the bias estimated at the same bandwidth; :func:`mean_band`). Its variance over subjects is
 estimated by the jackknife, leaving out one subject at a time (:func:`local_fits`,
-:func:`jackknife_deviations`, summed over the data's parts by ``plan.jackknife_sums``), or,
+:func:`jackknife_deviations`, summed over the data's parts by ``plan.Partitioned.jackknife``), or,
 above ``JACKKNIFE_MAX_SUBJECTS``, by the cluster-robust sandwich (:func:`mean_covariance`).
 
 Why the jackknife: the sandwich sum_i l' u_i u_i' l uses each subject's residuals from a
@@ -185,10 +185,13 @@ def _first_of_inverse(m: FloatArray, g: FloatArray, p: int) -> tuple[FloatArray,
     return out, singular
 
 
-def jackknife_deviations(fits: LocalFits, sample: Sample) -> tuple[FloatArray, np.ndarray]:
+def jackknife_deviations(
+    fits: LocalFits, sample: Sample, weights: list[FloatArray] | None = None
+) -> tuple[FloatArray, np.ndarray]:
     """Each subject's jackknife deviation of the fit at each grid time, (n_subjects, n_grid):
     the fit without the subject minus the fit with all, and the grid times where leaving
-    some subject out leaves the local fit undefined (n_grid,)."""
+    some subject out leaves the local fit undefined (n_grid,). ``weights``: the fits'
+    :meth:`LocalFits.weights` when the caller holds them."""
     n, g = sample.n_subjects, fits.grid.size
     bins = fits.bins
     left, frac = bins.locate(sample.t)
@@ -198,7 +201,7 @@ def jackknife_deviations(fits: LocalFits, sample: Sample) -> tuple[FloatArray, n
     shape = (n, bins.n_bins)
     counts = sparse.csr_matrix((share, (rows, cols)), shape=shape)
     sums = sparse.csr_matrix((share * np.concatenate([sample.y, sample.y]), (rows, cols)), shape)
-    w = fits.weights()
+    w = fits.weights() if weights is None else weights
     m = np.stack([np.asarray(counts @ wk.T) for wk in w], axis=-1)  # (n, grid, 5)
     t = np.stack([np.asarray(sums @ wk.T) for wk in w[:3]], axis=-1)  # (n, grid, 3)
     # T_i - S_i beta: the subject's kernel-weighted residuals from the local fit
@@ -291,9 +294,10 @@ def jackknife_sums(sample: Sample, group: IntArray, fits: tuple[LocalFits, ...])
     undefined = np.zeros((k, g), dtype=bool)
     for j in range(k):
         members = np.flatnonzero(group == j).astype(np.intp)
+        weights = fits[j].weights()
         for start in range(0, members.size, _CHUNK):
             chunk = sample.subset(members[start : start + _CHUNK])
-            d, bad = jackknife_deviations(fits[j], chunk)
+            d, bad = jackknife_deviations(fits[j], chunk, weights)
             cross[j] += d.T @ d
             total[j] += d.sum(axis=0)
             fourth[j] += np.sum(d**4, axis=0)

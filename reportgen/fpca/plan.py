@@ -407,14 +407,24 @@ class Partitioned:
         return tree_sum(found, _add_pairs)
 
     def jackknife(
-        self, fits: tuple[LocalFits, ...], group: IntArray | None = None
-    ) -> JackknifeSums:
-        """The mean's jackknife sums, per group (``group``: each subject's index into
-        ``fits``, by code; all in one by default)."""
+        self,
+        fits: Sequence[LocalFits],
+        sandwiches: Sequence[FloatArray],
+        level: float,
+        group: IntArray | None = None,
+    ) -> tuple[list[FloatArray], np.ndarray, FloatArray]:
+        """The mean band's covariance over the grid per group by the jackknife over its
+        subjects (``meanband.JackknifeSums.covariance``; ``sandwiches``: each group's
+        sandwich covariance, used where the jackknife is undefined), where it is undefined
+        (n_groups, n_grid), and its degrees of freedom (n_groups, n_grid). ``group``: each
+        subject's index into ``fits``, by code (all in one by default)."""
         if group is None:
             group = np.zeros(self.n_subjects, dtype=np.intp)
-        found = self.executor.map(jackknife, self.parts, self._each(group), (fits,))
-        return tree_sum(found, JackknifeSums.__add__)
+        found = self.executor.map(jackknife, self.parts, self._each(group), (tuple(fits),))
+        sums = tree_sum(found, JackknifeSums.__add__)
+        covs = [sums.covariance(c, level, k) for k, c in enumerate(sandwiches)]
+        df = np.stack([sums.degrees_of_freedom(k) for k in range(len(fits))])
+        return covs, sums.undefined, df
 
     def rows_in_parts(self, chosen: IntArray) -> list[IntArray]:
         """Each part's rows of those of the subjects ``chosen`` (increasing codes) that it
