@@ -128,9 +128,13 @@ class LocalFits:
 
     def weights(self) -> list[FloatArray]:
         """K((c_b - x) / h) u^k for k = 0..4, each (n_grid, n_bins)."""
-        d = (self.bins.centers[None, :] - self.grid[:, None]) / self.h
-        w = get_kernel(self.kernel)(d)
-        return [w * d**k for k in range(5)]
+        return _kernel_powers(self.grid, self.bins, self.h, self.kernel)
+
+
+def _kernel_powers(grid: FloatArray, bins: BinGrid, h: float, kernel: str) -> list[FloatArray]:
+    d = (bins.centers[None, :] - grid[:, None]) / h
+    w = get_kernel(kernel)(d)
+    return [w * d**k for k in range(5)]
 
 
 def local_fits(
@@ -143,8 +147,7 @@ def local_fits(
     quadratic: np.ndarray,
 ) -> LocalFits:
     """The local fits at each grid time from the binned counts and sums of all readings."""
-    draft = LocalFits(grid, bins, h, kernel, quadratic, np.zeros((grid.size, 5)), np.zeros(0))
-    w = draft.weights()
+    w = _kernel_powers(grid, bins, h, kernel)
     moments = np.stack([wk @ counts for wk in w], axis=1)
     rhs = np.stack([wk @ sums for wk in w[:3]], axis=1)
     coef = np.zeros((grid.size, 3))
