@@ -388,8 +388,10 @@ NOTES = [
     "another. Over seeds 0-99 it is 0.89 in B, G and H, just under the 0.90 target; over "
     "another 100 (seeds 1000-1099, benchmarks/MEAN_BAND.md) 0.92, 0.93 and 0.92, and 0.91 "
     "or more on every design. So the simultaneous mean band holds about 0.90-0.94 of the "
-    "time, not 0.95: its studentized error has a root mean square of 1.00-1.08 per tenth of "
-    "the domain, and the mean's bandwidth, chosen from the same data, is taken as fixed.",
+    "time, not 0.95. Over seeds 0-99 its studentized error has a root mean square per tenth "
+    "of the domain of 0.96-1.08 in B and G and up to 1.20 in H, and a mean at most 0.17 in "
+    "size; in B a mean bandwidth fixed at the median of the chosen ones gives 0.91 (the "
+    "bandwidth, chosen from the same data, is taken as fixed).",
     "- Eigenfunctions: the likelihood's (refined over a cubic B-spline basis, "
     "eigenfunctions: auto) are used where the 5-fold held-out likelihood rises by more "
     "than a standard error: in every fit of B and C (phi_2 error 0.08 and 0.11 from the "
