@@ -293,6 +293,32 @@ def mean_variance_words(fit: FPCAFit, whose: str = "subjects") -> str:
     return f"a cluster-robust (sandwich) variance over {whose}"
 
 
+def mean_multiplier_words(fit: FPCAFit) -> str:
+    """How the mean's simultaneous band multiplier was found, in words for a caption
+    (``FPCAFit.mean_multiplier``)."""
+    chosen = fit.mean_multiplier
+    level = f"{fit.options.band_level:.0%}"
+    if chosen.method == "bootstrap-t":
+        return (
+            f"The simultaneous band's multiplier, {chosen.value:.2f}, is the bootstrap-t one: "
+            f"the {level} quantile of the largest studentized deviation of the band's centre "
+            f"over {chosen.resamples} resamples of subjects, each refitted and jackknifed as "
+            "the data are, so that the noise of the standard error itself counts"
+            + (
+                f" ({chosen.undefined} resamples undefined where the band is drawn, counted "
+                "as beyond it)"
+                if chosen.undefined
+                else ""
+            )
+            + f"; the normal-theory multiplier would be {chosen.normal:.2f}."
+        )
+    return (
+        f"The simultaneous band's multiplier, {fit.mean_simultaneous_multiplier:.2f}, is the "
+        f"{level} quantile of the largest standardized deviation of a normal process with the "
+        "band's covariance" + (f" ({chosen.reason})." if chosen.reason else ".")
+    )
+
+
 def function_words(fit: FPCAFit) -> str:
     """Where the eigenfunctions come from, and the evidence, in words (``FunctionSource``)."""
     src = fit.functions

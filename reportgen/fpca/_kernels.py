@@ -494,6 +494,71 @@ def refine_terms(
     return each, grad, g_s2, True
 
 
+@njit(cache=True, nogil=True, error_model="numpy")
+def resample_spread(
+    moments: FloatArray,
+    sums: FloatArray,
+    draws: np.ndarray,
+    total: FloatArray,
+    beta: FloatArray,
+    quadratic: np.ndarray,
+    rtol: float,
+) -> tuple[FloatArray, np.ndarray]:
+    """The jackknife sums of the mean band's centre inside each resample of subjects.
+
+    ``moments`` (n, g, 5) and ``sums`` (n, g, 3): each subject's kernel-weighted design
+    moments and sums at each grid time (``meanband.subject_moments``); ``draws`` (B, n): how
+    often each subject is drawn in each resample; ``total`` (B, g, 5) and ``beta`` (B, g, 3):
+    each resample's summed moments and local fit. A subject drawn w times is w subjects of
+    the resample, each with the deviation -e1' (S - S_i)^-1 (T_i - S_i beta) of leaving one
+    copy out (as ``meanband.jackknife_deviations``, 2 x 2 or 3 x 3 by cofactors). Returns
+    sum w d, sum w d^2 and sum w d^4 (B, g, 3), and where some deviation is undefined (B, g).
+    """
+    n, g = moments.shape[0], moments.shape[1]
+    n_draws = draws.shape[0]
+    out = np.zeros((n_draws, g, 3))
+    undefined = np.zeros((n_draws, g), dtype=np.bool_)
+    for b in range(n_draws):
+        for i in range(n):
+            w = draws[b, i]
+            if w == 0:
+                continue
+            for x in range(g):
+                m = moments[i, x]
+                if m[0] == 0.0:  # no reading within the bandwidth: d = 0
+                    continue
+                s = total[b, x]
+                p = beta[b, x]
+                r0 = sums[i, x, 0] - (m[0] * p[0] + m[1] * p[1] + m[2] * p[2])
+                r1 = sums[i, x, 1] - (m[1] * p[0] + m[2] * p[1] + m[3] * p[2])
+                a = s[0] - m[0]
+                bb = s[1] - m[1]
+                c = s[2] - m[2]
+                if quadratic[x]:
+                    r2 = sums[i, x, 2] - (m[2] * p[0] + m[3] * p[1] + m[4] * p[2])
+                    dd = s[3] - m[3]
+                    f = s[4] - m[4]
+                    c00 = c * f - dd * dd
+                    c01 = c * dd - bb * f
+                    c02 = bb * dd - c * c
+                    det = a * c00 + bb * c01 + c * c02
+                    top = c00 * r0 + c01 * r1 + c02 * r2
+                    scale = a * c * f
+                else:
+                    det = a * c - bb * bb
+                    top = c * r0 - bb * r1
+                    scale = a * c
+                if not det > rtol * scale:
+                    undefined[b, x] = True
+                    continue
+                d = -top / det
+                d2 = d * d
+                out[b, x, 0] += w * d
+                out[b, x, 1] += w * d2
+                out[b, x, 2] += w * d2 * d2
+    return out, undefined
+
+
 KERNELS: tuple[Any, ...] = (
     bin_readings,
     bin_pairs,
@@ -502,6 +567,7 @@ KERNELS: tuple[Any, ...] = (
     likelihood_sums,
     refine_terms,
     order_within_subjects,
+    resample_spread,
 )
 
 

@@ -43,12 +43,20 @@ from .components import (
 )
 from .design import BinnedStats, PairStats, Sample, assign_folds, seeded_sample
 from .likelihood import LikelihoodFit, maximise, starting_error_variance
-from .meanband import JACKKNIFE_MAX_SUBJECTS, local_fits, mean_band
+from .meanband import (
+    JACKKNIFE_MAX_SUBJECTS,
+    MEAN_RESAMPLES,
+    LocalFits,
+    bootstrap_t,
+    local_fits,
+    mean_band,
+    resample_counts,
+)
 from .options import FPCAOptions
 from .plan import Part, Partitioned, PartResults, ResidualSize
 from .predictor import Predictor, corrected_variance
 from .refine import choose_functions
-from .result import BandChoice, FPCAFit, Labels, as_labels, frozen
+from .result import BandChoice, FPCAFit, Labels, MeanMultiplier, as_labels, frozen
 from .scores import SampleTerms, sample_terms
 from .selection import fixed_selection, select_components
 from .smoothing import (
@@ -319,6 +327,7 @@ def _fit(
     )
     uncorrected = int(np.sum(~quadratic))
     jackknife = not population_only and n_subjects <= JACKKNIFE_MAX_SUBJECTS
+    fits: LocalFits | None = None
     if jackknife:
         fits = local_fits(
             grid,
@@ -370,6 +379,32 @@ def _fit(
             f"{JACKKNIFE_MAX_SUBJECTS:,} subjects the jackknife over subjects costs more and "
             "changes little)"
         )
+    mean_multiplier = MeanMultiplier()
+    mean_multiplier_value = np.nan
+    if not population_only and np.any(supported):
+        normal = _sup_multiplier(
+            mean_cov[np.ix_(supported, supported)], options.band_level, options.seed
+        )
+        mean_multiplier = (
+            _bootstrap_t(data, fits, band_centre, supported, normal, options)
+            if fits is not None
+            else MeanMultiplier(
+                "normal",
+                normal,
+                reason=f"above {JACKKNIFE_MAX_SUBJECTS:,} subjects the mean's band has no "
+                "jackknife to resample",
+            )
+        )
+        mean_multiplier_value = (
+            mean_multiplier.value if mean_multiplier.method == "bootstrap-t" else normal
+        )
+        if mean_multiplier.undefined:
+            messages.append(
+                f"{mean_multiplier.undefined} of {MEAN_RESAMPLES} resamples of subjects leave "
+                "the mean's local fit or its jackknife undefined somewhere the band is drawn "
+                "(too few readings there in the resample); they count as beyond the band in "
+                "its bootstrap-t multiplier"
+            )
     if uncorrected:
         messages.append(
             f"the mean's band is not bias-corrected at {uncorrected} of {grid.size} grid times "
@@ -502,6 +537,7 @@ def _fit(
         mean_covariance=frozen(mean_cov),
         mean_variance="jackknife" if jackknife else "sandwich",
         mean_degrees_of_freedom=frozen(mean_df),
+        mean_multiplier=mean_multiplier,
         covariance=frozen(cov),
         diagonal_variance=frozen(diag_var),
         eigenvalues=predictor.eigenvalues,
@@ -513,11 +549,7 @@ def _fit(
         smoothing_error_variance=sigma2_smooth,
         likelihood=lik,
         truncation_variance=predictor.truncation_variance,
-        mean_simultaneous_multiplier=np.nan
-        if population_only or not np.any(supported)
-        else _sup_multiplier(
-            mean_cov[np.ix_(supported, supported)], options.band_level, options.seed
-        ),
+        mean_simultaneous_multiplier=mean_multiplier_value,
         mean_support=frozen(support),
         diagonal_support=frozen(
             design_conditioning_2d(
@@ -747,6 +779,36 @@ def _check_refined(lik: LikelihoodFit, level: float) -> None:
             "every reading exactly, so measurement error and scores cannot be told apart; "
             "lower max_components or fix n_components"
         )
+
+
+def _bootstrap_t(
+    data: Partitioned,
+    fits: LocalFits,
+    centre: FloatArray,
+    banded: np.ndarray,
+    normal: float,
+    options: FPCAOptions,
+) -> MeanMultiplier:
+    """The mean's simultaneous multiplier by the bootstrap-t over resamples of subjects
+    (``meanband.bootstrap_t``), or the normal one when too many resamples leave the fit
+    undefined where the band is drawn."""
+    n = data.n_subjects
+    draws = resample_counts(n, MEAN_RESAMPLES, options.seed)
+    coef, singular, spread = data.mean_resamples(fits, draws)
+    found = bootstrap_t(centre, banded, coef, singular, spread, n, options.band_level)
+    if np.isfinite(found.multiplier):
+        return MeanMultiplier(
+            "bootstrap-t", normal, MEAN_RESAMPLES, found.undefined, value=found.multiplier
+        )
+    return MeanMultiplier(
+        "normal",
+        normal,
+        MEAN_RESAMPLES,
+        found.undefined,
+        reason=f"{found.undefined} of {MEAN_RESAMPLES} resamples of subjects leave the "
+        "mean's local fit or its jackknife undefined where the band is drawn, too many for "
+        "a bootstrap-t multiplier",
+    )
 
 
 def _sup_multiplier(cov: FloatArray, level: float, seed: int, draws: int = 20000) -> float:

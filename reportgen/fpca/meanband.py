@@ -188,15 +188,12 @@ def _first_of_inverse(m: FloatArray, g: FloatArray, p: int) -> tuple[FloatArray,
     return out, singular
 
 
-def jackknife_deviations(
+def subject_moments(
     fits: LocalFits, sample: Sample, weights: list[FloatArray] | None = None
-) -> tuple[FloatArray, np.ndarray]:
-    """Each subject's jackknife deviation of the fit at each grid time, (n_subjects, n_grid):
-    the fit without the subject minus the fit with all, and the grid times where leaving
-    some subject out leaves the local fit undefined (n_grid,). ``weights``: the fits'
-    :meth:`LocalFits.weights` when the caller holds them."""
-    n, g = sample.n_subjects, fits.grid.size
-    bins = fits.bins
+) -> tuple[FloatArray, FloatArray]:
+    """Each subject's local design moments S_i (n_subjects, n_grid, 5) and sums T_i
+    (n_subjects, n_grid, 3) at each grid time, from its linearly binned readings."""
+    n, bins = sample.n_subjects, fits.bins
     left, frac = bins.locate(sample.t)
     rows = np.concatenate([sample.subject, sample.subject])
     cols = np.concatenate([left, left + 1])
@@ -205,8 +202,20 @@ def jackknife_deviations(
     counts = sparse.csr_matrix((share, (rows, cols)), shape=shape)
     sums = sparse.csr_matrix((share * np.concatenate([sample.y, sample.y]), (rows, cols)), shape)
     w = fits.weights() if weights is None else weights
-    m = np.stack([np.asarray(counts @ wk.T) for wk in w], axis=-1)  # (n, grid, 5)
-    t = np.stack([np.asarray(sums @ wk.T) for wk in w[:3]], axis=-1)  # (n, grid, 3)
+    m = np.stack([np.asarray(counts @ wk.T) for wk in w], axis=-1)
+    t = np.stack([np.asarray(sums @ wk.T) for wk in w[:3]], axis=-1)
+    return m, t
+
+
+def jackknife_deviations(
+    fits: LocalFits, sample: Sample, weights: list[FloatArray] | None = None
+) -> tuple[FloatArray, np.ndarray]:
+    """Each subject's jackknife deviation of the fit at each grid time, (n_subjects, n_grid):
+    the fit without the subject minus the fit with all, and the grid times where leaving
+    some subject out leaves the local fit undefined (n_grid,). ``weights``: the fits'
+    :meth:`LocalFits.weights` when the caller holds them."""
+    n, g = sample.n_subjects, fits.grid.size
+    m, t = subject_moments(fits, sample, weights)
     # T_i - S_i beta: the subject's kernel-weighted residuals from the local fit
     beta = fits.coef
     local = t - np.stack(
@@ -306,3 +315,165 @@ def jackknife_sums(sample: Sample, group: IntArray, fits: tuple[LocalFits, ...])
             fourth[j] += np.sum(d**4, axis=0)
             undefined[j] |= bad
     return JackknifeSums(cross, total, fourth, n, undefined)
+
+
+# --- the simultaneous band's multiplier: bootstrap-t over resamples of subjects -------------
+
+# Resamples of subjects behind the mean's simultaneous multiplier. (B + 1) x level is a whole
+# number at the usual levels (0.9, 0.95, 0.99), so the multiplier is the order statistic
+# whose Monte Carlo level is exact for exchangeable statistics (the rule of Monte Carlo
+# tests; Davison & Hinkley 1997, Bootstrap Methods and their Application, ch. 4-5; from
+# memory). The cost: one pass over the readings per resample (benchmarks/MEAN_BAND.md).
+MEAN_RESAMPLES = 199
+
+
+def resample_counts(n: int, count: int, seed: int) -> np.ndarray:
+    """How often each of ``n`` subjects is drawn in each of ``count`` resamples of n with
+    replacement, (count, n) int32; seeded (a stream of its own)."""
+    rng = np.random.default_rng([seed, 2])
+    out = np.empty((count, n), dtype=np.int32)
+    for b in range(count):
+        out[b] = np.bincount(rng.integers(0, n, n), minlength=n)
+    return out
+
+
+@dataclass(frozen=True)
+class ResampledMoments:
+    """Each resample's local design moments (B, n_grid, 5) and sums (B, n_grid, 3), the
+    sums over its subjects of :func:`subject_moments`, added over parts."""
+
+    moments: FloatArray
+    sums: FloatArray
+
+    def __add__(self, other: ResampledMoments) -> ResampledMoments:
+        return ResampledMoments(self.moments + other.moments, self.sums + other.sums)
+
+
+def _chunks(n: int) -> list[IntArray]:
+    return [np.arange(s, min(s + _CHUNK, n), dtype=np.intp) for s in range(0, n, _CHUNK)]
+
+
+def resample_moments(fits: LocalFits, sample: Sample, draws: np.ndarray) -> ResampledMoments:
+    """Pass 1 of the bootstrap-t: the local moments and sums of each resample (``draws``:
+    how often each of the sample's subjects is drawn in each resample, (B, n_subjects))."""
+    b, g = draws.shape[0], fits.grid.size
+    moments, sums = np.zeros((b, g * 5)), np.zeros((b, g * 3))
+    weights = fits.weights()
+    for rows in _chunks(sample.n_subjects):
+        m, t = subject_moments(fits, sample.subset(rows), weights)
+        w = draws[:, rows].astype(np.float64)
+        moments += w @ m.reshape(rows.size, -1)
+        sums += w @ t.reshape(rows.size, -1)
+    return ResampledMoments(moments.reshape(b, g, 5), sums.reshape(b, g, 3))
+
+
+def resample_fits(fits: LocalFits, found: ResampledMoments) -> tuple[FloatArray, np.ndarray]:
+    """Each resample's local fit (B, n_grid, 3) at the main fit's bandwidth, quadratic where
+    it is, and where its local design is singular (B, n_grid)."""
+    b, g = found.moments.shape[:2]
+    coef, singular = np.zeros((b, g, 3)), np.zeros((b, g), dtype=bool)
+    for p, cols in ((3, fits.quadratic), (2, ~fits.quadratic)):
+        if not np.any(cols):
+            continue
+        m = found.moments[:, cols]
+        design = _design(m, p)
+        scale = m[..., 0] * m[..., 2] * (m[..., 4] if p == 3 else 1.0)
+        bad = ~(np.linalg.det(design) > _SINGULAR_RTOL * scale)
+        solved = np.zeros((*m.shape[:2], p))
+        solved[~bad] = np.linalg.solve(design[~bad], found.sums[:, cols][~bad][:, :p, None])[..., 0]
+        coef[:, cols, :p] = solved
+        singular[:, cols] = bad
+    return coef, singular
+
+
+@dataclass(frozen=True)
+class ResampledSpread:
+    """Per resample: the jackknife sums sum w d, sum w d^2, sum w d^4 (B, n_grid, 3) of its
+    subjects (``_kernels.resample_spread``), and where a deviation is undefined (B, n_grid),
+    added over parts."""
+
+    sums: FloatArray
+    undefined: np.ndarray
+
+    def __add__(self, other: ResampledSpread) -> ResampledSpread:
+        return ResampledSpread(self.sums + other.sums, self.undefined | other.undefined)
+
+
+def resample_spread(
+    fits: LocalFits,
+    sample: Sample,
+    draws: np.ndarray,
+    found: ResampledMoments,
+    coef: FloatArray,
+) -> ResampledSpread:
+    """Pass 2 of the bootstrap-t: each resample's jackknife sums over the sample's subjects,
+    with the resample's own local fits ``coef`` (:func:`resample_fits`)."""
+    from ._kernels import resample_spread as kernel
+
+    b, g = draws.shape[0], fits.grid.size
+    out, undefined = np.zeros((b, g, 3)), np.zeros((b, g), dtype=bool)
+    weights = fits.weights()
+    for rows in _chunks(sample.n_subjects):
+        m, t = subject_moments(fits, sample.subset(rows), weights)
+        found_sums, bad = kernel(
+            m,
+            t,
+            np.ascontiguousarray(draws[:, rows]),
+            found.moments,
+            coef,
+            fits.quadratic,
+            _SINGULAR_RTOL,
+        )
+        out += found_sums
+        undefined |= bad
+    return ResampledSpread(out, undefined)
+
+
+@dataclass(frozen=True)
+class BootstrapT:
+    """The bootstrap-t statistics of the mean's simultaneous band.
+
+    ``statistics`` (B,): each resample's largest studentized deviation of its band centre
+    from the full data's over the times where a band is drawn, ``inf`` where the resample's
+    fit or jackknife is undefined at one of them (counted in ``undefined``).
+    ``multiplier``: their (B + 1) x level-th smallest (``inf`` when too many are undefined).
+    """
+
+    statistics: FloatArray
+    multiplier: float
+    undefined: int
+
+
+def bootstrap_t(
+    centre: FloatArray,
+    banded: np.ndarray,
+    coef: FloatArray,
+    singular: np.ndarray,
+    spread: ResampledSpread,
+    n: int,
+    level: float,
+) -> BootstrapT:
+    """The bootstrap-t multiplier of the mean's simultaneous band.
+
+    Each resample's band centre and standard error are computed as the full data's are: the
+    jackknife over its subjects (a subject drawn w times is w subjects), each time's
+    standard error widened by :func:`small_sample_factor` at its degrees of freedom. The
+    multiplier is the level quantile of max_t |centre*(t) - centre(t)| / se*(t) over the
+    times ``banded``, so the band centre +- multiplier x se holds the whole mean with the
+    level's probability to the bootstrap's accuracy, with the noise of the standard error
+    itself (few subjects at a thin end) and a non-normal spread counted (the studentized
+    bootstrap for simultaneous bands: Hall 1993, J. R. Statist. Soc. B 55:291-304; from
+    memory).
+    """
+    first, second, fourth = spread.sums[..., 0], spread.sums[..., 1], spread.sums[..., 2]
+    raw = (n - 1.0) / n * (second - first**2 / n)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        df = np.where(fourth > 0, 3.0 * second**2 / fourth, np.inf)
+        se = np.sqrt(np.maximum(raw, 0.0)) * small_sample_factor(df, level)
+        dev = np.abs(coef[..., 0] - centre)[:, banded] / se[:, banded]
+    bad = np.any((singular | spread.undefined)[:, banded] | ~np.isfinite(dev), axis=1)
+    largest = np.max(dev, axis=1, initial=0.0, where=np.isfinite(dev))
+    statistics = np.where(bad, np.inf, largest)
+    k = int(np.ceil((statistics.size + 1) * level - 1e-9))
+    multiplier = float(np.sort(statistics)[k - 1]) if k <= statistics.size else np.inf
+    return BootstrapT(statistics, multiplier, int(bad.sum()))

@@ -38,7 +38,16 @@ from .arrays import FloatArray, IntArray
 from .components import evaluate_at
 from .design import BinnedStats, PairStats, Sample, mean_stats, pair_stats, subject_support
 from .executor import Executor, InProcess, tree_sum
-from .meanband import JackknifeSums, LocalFits, jackknife_sums
+from .meanband import (
+    JackknifeSums,
+    LocalFits,
+    ResampledMoments,
+    ResampledSpread,
+    jackknife_sums,
+    resample_fits,
+    resample_moments,
+    resample_spread,
+)
 from .scores import conditional_scores
 from .smoothing import BinGrid
 
@@ -196,6 +205,18 @@ def jackknife(part: Part, group: IntArray, fits: tuple[LocalFits, ...]) -> Jackk
     """The mean's jackknife sums over the part's subjects (``meanband.jackknife_sums``;
     ``group``: each subject's index into ``fits``)."""
     return jackknife_sums(part.sample, group, fits)
+
+
+def resampled_moments(part: Part, draws: np.ndarray, fits: LocalFits) -> ResampledMoments:
+    """The bootstrap-t's pass 1 over the part's subjects (``meanband.resample_moments``)."""
+    return resample_moments(fits, part.sample, draws)
+
+
+def resampled_spread(
+    part: Part, draws: np.ndarray, fits: LocalFits, found: ResampledMoments, coef: FloatArray
+) -> ResampledSpread:
+    """The bootstrap-t's pass 2 over the part's subjects (``meanband.resample_spread``)."""
+    return resample_spread(fits, part.sample, draws, found, coef)
 
 
 def gather(part: Part, rows: IntArray, fine: FloatArray, mean_grid: BinGrid) -> Gathered:
@@ -425,6 +446,24 @@ class Partitioned:
         covs = [sums.covariance(c, level, k) for k, c in enumerate(sandwiches)]
         df = np.stack([sums.degrees_of_freedom(k) for k in range(len(fits))])
         return covs, sums.undefined, df
+
+    def mean_resamples(
+        self, fits: LocalFits, draws: np.ndarray
+    ) -> tuple[FloatArray, np.ndarray, ResampledSpread]:
+        """The mean band's centre refitted on each resample of subjects (``draws``: how often
+        each subject is drawn, (B, n_subjects) by code), where that fit is singular, and
+        each resample's jackknife sums: two passes (``meanband.bootstrap_t`` takes them)."""
+        each = [(np.ascontiguousarray(draws[:, codes]),) for codes in self.subjects]
+        found = tree_sum(
+            self.executor.map(resampled_moments, self.parts, each, (fits,)),
+            ResampledMoments.__add__,
+        )
+        coef, singular = resample_fits(fits, found)
+        spread = tree_sum(
+            self.executor.map(resampled_spread, self.parts, each, (fits, found, coef)),
+            ResampledSpread.__add__,
+        )
+        return coef, singular, spread
 
     def rows_in_parts(self, chosen: IntArray) -> list[IntArray]:
         """Each part's rows of those of the subjects ``chosen`` (increasing codes) that it

@@ -69,6 +69,28 @@ class BandChoice:
 
 
 @dataclass(frozen=True)
+class MeanMultiplier:
+    """How the multiplier of the mean's simultaneous band was found.
+
+    ``method``: ``"bootstrap-t"`` (``meanband.bootstrap_t``: the band centre and its
+    jackknife standard error recomputed on resamples of subjects, the multiplier the level
+    quantile of the largest studentized deviation) or ``"normal"`` (the level quantile of
+    the largest standardized deviation of a normal process with the band's covariance).
+    ``normal``: the normal multiplier, kept for comparison. ``resamples``: drawn;
+    ``undefined``: of those, the resamples whose fit or jackknife is undefined somewhere
+    the band is drawn (counted as beyond the band). ``reason``: why the normal multiplier
+    is used, when it is.
+    """
+
+    method: str = "normal"
+    normal: float = float("nan")
+    resamples: int = 0
+    undefined: int = 0
+    reason: str = ""
+    value: float = float("nan")  # the bootstrap-t multiplier
+
+
+@dataclass(frozen=True)
 class FunctionSource:
     """Which eigenfunctions a fit uses, and the evidence (``fpca.refine``).
 
@@ -189,6 +211,8 @@ class FPCAFit:
     mean_degrees_of_freedom : ndarray of shape (n_grid,)
         The jackknife variance's effective degrees of freedom at each time (``nan`` with the
         sandwich and where no band is drawn).
+    mean_multiplier : MeanMultiplier
+        How ``mean_simultaneous_multiplier`` was found (bootstrap-t or normal).
     """
 
     grid: FloatArray
@@ -234,6 +258,7 @@ class FPCAFit:
     mean_covariance: FloatArray = field(default_factory=lambda: np.zeros((0, 0)))
     mean_variance: str = "jackknife"
     mean_degrees_of_freedom: FloatArray = field(default_factory=lambda: np.zeros(0))
+    mean_multiplier: MeanMultiplier = MeanMultiplier()
 
     @property
     def mean_bandwidth(self) -> float:

@@ -24,6 +24,7 @@ from ..analysis.views import (
     MIN_SUPPORT,
     band_words,
     density,
+    mean_multiplier_words,
     mean_variance_words,
     other_functions,
 )
@@ -227,10 +228,11 @@ def _mean(r: AnalysisResult) -> Drawn:
         + f", over {drawn}"
         + (
             f". Where fewer than {MIN_SUPPORT} subjects have a reading within the mean's "
-            "bandwidth, or beyond the readings, the curve is drawn faint and without a band."
+            "bandwidth, or beyond the readings, the curve is drawn faint and without a band. "
             if not np.all(banded)
-            else "."
-        ),
+            else ". "
+        )
+        + mean_multiplier_words(fit),
         "Grey density of readings against time with the mean curve and its two bands.",
     )
 

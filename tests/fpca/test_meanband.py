@@ -15,10 +15,17 @@ import pytest
 from reportgen.fpca.design import Sample
 from reportgen.fpca.frame import arrays_from_frame
 from reportgen.fpca.meanband import (
+    MEAN_RESAMPLES,
     JackknifeSums,
+    ResampledSpread,
+    bootstrap_t,
     jackknife_deviations,
     jackknife_sums,
     local_fits,
+    resample_counts,
+    resample_fits,
+    resample_moments,
+    resample_spread,
     small_sample_factor,
 )
 from reportgen.fpca.smoothing import BinGrid, bin_1d
@@ -136,3 +143,107 @@ def test_the_sandwich_above_the_jackknife_limit_is_the_cluster_robust_ols(
         np.sqrt(np.einsum("gi,ij,gj->g", design, sandwich, design)),
         rtol=0.02,
     )
+
+
+def test_each_resample_is_refitted_and_jackknifed_as_the_data(dietox: pd.DataFrame) -> None:
+    # A resample with its subjects' copies written out is a data set of its own: its local
+    # fits (statsmodels WLS on the copies' binned readings) and its jackknife deviations
+    # (statsmodels WLS refitted without one copy, as in the first test) are what the
+    # resample's passes must give.
+    import statsmodels.api as sm
+
+    codes, t, y, _labels = arrays_from_frame(dietox, "Pig", "Time", "Weight")
+    sample = Sample.from_arrays(codes, t, y)
+    bins = BinGrid(float(t.min()), float(t.max()), 401)
+    grid = np.linspace(float(t.min()), float(t.max()), 9)
+    h = 3.0
+    counts, sums = bin_1d(bins, t, y)
+    quadratic = np.arange(grid.size) % 3 != 1
+    fits = local_fits(grid, bins, counts[0], sums[0], h, "epanechnikov", quadratic)
+    draws = resample_counts(72, 2, seed=4)
+    assert draws.shape == (2, 72) and np.all(draws.sum(axis=1) == 72)
+    found = resample_moments(fits, sample, draws)
+    coef, singular = resample_fits(fits, found)
+    spread = resample_spread(fits, sample, draws, found, coef)
+    assert not singular.any() and not spread.undefined.any()
+    x, share, py, owner = _binned(t, y, codes, bins)
+    for b in range(2):
+        rows = np.repeat(np.arange(72), draws[b])  # each copy a subject of the resample
+        copy = np.concatenate([np.flatnonzero(owner == i) for i in rows])
+        copy_owner = np.repeat(np.arange(rows.size), [np.sum(owner == i) for i in rows])
+        for g in (0, 1, 4, 8):
+            u = (x[copy] - grid[g]) / h
+            # Epanechnikov kernel 0.75 (1 - u^2) on |u| < 1 (common practice, no source)
+            w = share[copy] * np.where(np.abs(u) < 1, 0.75 * (1 - u * u), 0.0)
+            design = np.column_stack([u**k for k in range(3 if quadratic[g] else 2)])
+            full = sm.WLS(py[copy], design, weights=w).fit().params[0]
+            assert coef[b, g, 0] == pytest.approx(full, rel=1e-9)
+            d = np.empty(rows.size)
+            for i in range(rows.size):
+                keep = copy_owner != i
+                d[i] = sm.WLS(py[copy][keep], design[keep], weights=w[keep]).fit().params[0] - full
+            expected = [d.sum(), np.sum(d**2), np.sum(d**4)]
+            # sum d is 0 up to rounding (the deviations cancel), hence the absolute tolerance
+            np.testing.assert_allclose(spread.sums[b, g], expected, rtol=1e-6, atol=1e-9)
+
+
+def test_the_bootstrap_t_multiplier_is_the_order_statistic_of_the_studentized_maxima() -> None:
+    # Synthetic resamples: each one's centre deviates by a known amount at two times, with
+    # jackknife sums that give a known standard error; the statistic is the larger
+    # |deviation| / se, and the multiplier its (B + 1) x level-th smallest (the Monte Carlo
+    # test rule, Davison & Hinkley 1997, ch. 4; from memory).
+    b, n = MEAN_RESAMPLES, 50
+    dev = np.linspace(0.01, 1.99, b)
+    coef = np.zeros((b, 3, 3))
+    coef[:, 0, 0] = dev
+    coef[:, 1, 0] = -dev / 2
+    coef[:, 2, 0] = 100.0  # a time where no band is drawn: left out
+    # sum d = 0 and sum d^2 = n / (n - 1): a jackknife variance of 1; sum d^4 as from n
+    # deviations of equal size: 3n degrees of freedom, so the t widening of 3n df
+    second = np.full((b, 3), n / (n - 1.0))
+    fourth = second**2 / n
+    sums = np.stack([np.zeros((b, 3)), second, fourth], axis=-1)
+    spread = ResampledSpread(sums, np.zeros((b, 3), bool))
+    banded = np.array([True, True, False])
+    found = bootstrap_t(np.zeros(3), banded, coef, np.zeros((b, 3), bool), spread, n, 0.95)
+    factor = float(small_sample_factor(np.array([3.0 * n]), 0.95)[0])
+    np.testing.assert_allclose(found.statistics, dev / factor, rtol=1e-12)
+    assert found.multiplier == pytest.approx(dev[189] / factor, rel=1e-12)  # 200 x 0.95 = 190th
+    assert found.undefined == 0
+    # resamples undefined where the band is drawn count as beyond it (the 190th smallest is
+    # then the 190th of the others); more than 199 - 190 of them: no multiplier
+    bad = np.zeros((b, 3), bool)
+    bad[:5, 0] = True
+    bad[5:200, 2] = True  # where no band is drawn: ignored
+    found = bootstrap_t(np.zeros(3), banded, coef, bad, spread, n, 0.95)
+    assert found.undefined == 5 and np.isinf(found.statistics[:5]).all()
+    assert found.multiplier == pytest.approx(np.sort(dev[5:])[189] / factor, rel=1e-12)
+    bad[:11, 1] = True
+    assert np.isinf(bootstrap_t(np.zeros(3), banded, coef, bad, spread, n, 0.95).multiplier)
+
+
+def test_a_fit_takes_the_bootstrap_t_multiplier_and_keeps_the_normal_one(
+    dietox: pd.DataFrame, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    from scipy import stats
+
+    from reportgen import fit_sparse_fpca
+    from reportgen.fpca import fit as fit_module
+
+    fit = fit_sparse_fpca(dietox, subject="Pig", time="Time", value="Weight", band="plugin")
+    chosen = fit.mean_multiplier
+    assert chosen.method == "bootstrap-t" and chosen.resamples == 199 and chosen.undefined == 0
+    assert fit.mean_simultaneous_multiplier == chosen.value
+    # a simultaneous multiplier lies between the pointwise normal quantile and Bonferroni's
+    # over the grid's 101 times (common practice, no source)
+    for value in (chosen.normal, chosen.value):
+        assert stats.norm.ppf(0.975) < value < stats.norm.ppf(1 - 0.025 / 101)
+    # the same seed, the same resamples
+    again = fit_sparse_fpca(dietox, subject="Pig", time="Time", value="Weight", band="plugin")
+    assert again.mean_multiplier == chosen
+    # with the sandwich (above the jackknife's limit) there is nothing to resample
+    monkeypatch.setattr(fit_module, "JACKKNIFE_MAX_SUBJECTS", 50)
+    wide = fit_sparse_fpca(dietox, subject="Pig", time="Time", value="Weight", band="plugin")
+    assert wide.mean_variance == "sandwich" and wide.mean_multiplier.method == "normal"
+    assert "jackknife" in wide.mean_multiplier.reason
+    assert wide.mean_simultaneous_multiplier == wide.mean_multiplier.normal
