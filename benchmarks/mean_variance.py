@@ -1,5 +1,6 @@
-"""Why the mean's band uses the jackknife up to 10,000 subjects and the sandwich above:
-how far apart the two are, and what the jackknife costs, as the study grows.
+"""Why the mean's band uses the jackknife (and the bootstrap-t multiplier) up to 10,000
+subjects and the sandwich above: how far apart the two are, and what they cost, as the
+study grows.
 
 Run:  .venv/bin/python -m benchmarks.mean_variance [--sizes 200 2000 10000 20000 100000] [--write]
 
@@ -9,8 +10,10 @@ and the smoothing eigenfunctions: once as a run fits it (the jackknife), once wi
 sandwich forced. Per size: the ratio of the jackknife's standard error (before its t
 factor) to the sandwich's, median and largest over the grid times with a band; the largest
 t factor (``meanband.small_sample_factor``) and the smallest effective degrees of freedom;
-each fit's wall time (median of 3). Not part of the test run; with --write the table goes
-to benchmarks/MEAN_VARIANCE.md.
+the bootstrap-t multiplier of the simultaneous band over the normal one; each fit's wall
+time (median of 3): with the jackknife and the bootstrap-t (as a run fits up to the limit),
+with the jackknife and the normal multiplier (no resamples), with the sandwich. Not part of
+the test run; with --write the table goes to benchmarks/MEAN_VARIANCE.md.
 """
 
 from __future__ import annotations
@@ -24,14 +27,15 @@ import numpy as np
 
 import reportgen.fpca.fit as fit_module
 from reportgen import fit_sparse_fpca
-from reportgen.fpca.meanband import JACKKNIFE_MAX_SUBJECTS, small_sample_factor
+from reportgen.fpca.meanband import JACKKNIFE_MAX_SUBJECTS, MEAN_RESAMPLES, small_sample_factor
 from tests.reference.accuracy import DESIGNS
 
 ROOT = Path(__file__).resolve().parents[1]
 
 
-def _fit(frame, limit: int):  # type: ignore[no-untyped-def]
+def _fit(frame, limit: int, resamples: int = MEAN_RESAMPLES):  # type: ignore[no-untyped-def]
     fit_module.JACKKNIFE_MAX_SUBJECTS = limit  # type: ignore[attr-defined]
+    fit_module.MEAN_RESAMPLES = resamples  # type: ignore[attr-defined]
     try:
         seconds = []
         for _ in range(3):
@@ -43,20 +47,25 @@ def _fit(frame, limit: int):  # type: ignore[no-untyped-def]
         return fit, float(np.median(seconds))
     finally:
         fit_module.JACKKNIFE_MAX_SUBJECTS = JACKKNIFE_MAX_SUBJECTS  # type: ignore[attr-defined]
+        fit_module.MEAN_RESAMPLES = MEAN_RESAMPLES  # type: ignore[attr-defined]
 
 
 def measure(n: int) -> str:
     frame, _ = dataclasses.replace(DESIGNS["E"], n=n).sample(7)
     jack, t_jack = _fit(frame, 10**12)
+    _, t_normal = _fit(frame, 10**12, 0)  # no resamples: the normal multiplier
     sand, t_sand = _fit(frame, 0)
     assert jack.mean_variance == "jackknife" and sand.mean_variance == "sandwich"
+    assert jack.mean_multiplier.method == "bootstrap-t"
+    multiplier = jack.mean_multiplier.value / jack.mean_multiplier.normal
     df = np.asarray(jack.mean_degrees_of_freedom)
     drawn = np.isfinite(jack.mean_se) & np.isfinite(sand.mean_se)
     factor = small_sample_factor(df[drawn], jack.options.band_level)
     ratio = np.asarray(jack.mean_se)[drawn] / factor / np.asarray(sand.mean_se)[drawn]
     return (
         f"| {n:,} | {np.median(ratio):.3f} | {ratio.max():.3f} | {factor.max():.3f} | "
-        f"{df[drawn].min():.0f} | {t_jack:.2f} | {t_sand:.2f} |"
+        f"{df[drawn].min():.0f} | {multiplier:.3f} | {t_jack:.2f} | {t_normal:.2f} | "
+        f"{t_sand:.2f} |"
     )
 
 
@@ -67,8 +76,9 @@ def main() -> None:
     args = parser.parse_args()
     lines = [
         "| subjects | jackknife / sandwich se, median | largest | largest t factor | "
-        "smallest degrees of freedom | seconds, jackknife | seconds, sandwich |",
-        "|---|---|---|---|---|---|---|",
+        "smallest degrees of freedom | bootstrap-t / normal multiplier | seconds, "
+        "jackknife and bootstrap-t | jackknife, normal multiplier | sandwich |",
+        "|---|---|---|---|---|---|---|---|---|",
     ]
     print("\n".join(lines), flush=True)
     for n in args.sizes:

@@ -379,14 +379,29 @@ def _fit(
             f"{JACKKNIFE_MAX_SUBJECTS:,} subjects the jackknife over subjects costs more and "
             "changes little)"
         )
+    # The mean's band needs MIN_SUPPORT subjects in effect behind its variance too: the
+    # jackknife's effective degrees of freedom count them (one subject's readings that
+    # dominate the local fit count as about one). Below, the variance and its bootstrap-t
+    # rest on a handful of subjects: a resample without the dominant one moved the centre
+    # by 60 of its own standard errors, and the multiplier to 4x the normal one
+    # (benchmarks/MEAN_BAND.md).
+    few = supported & (mean_df < MIN_SUPPORT)
+    banded = supported & ~few
+    if np.any(few):
+        mean_se = np.where(banded, mean_se, np.nan)
+        mean_df = np.where(banded, mean_df, np.nan)
+        messages.append(
+            f"no band is drawn for the mean at {int(np.sum(few))} of {grid.size} grid times "
+            f"({_spans(grid, few)}): there its variance rests in effect on fewer than "
+            f"{MIN_SUPPORT} subjects (the jackknife's effective degrees of freedom; one "
+            "subject's readings dominate the local fit); the trajectories keep theirs"
+        )
     mean_multiplier = MeanMultiplier()
     mean_multiplier_value = np.nan
-    if not population_only and np.any(supported):
-        normal = _sup_multiplier(
-            mean_cov[np.ix_(supported, supported)], options.band_level, options.seed
-        )
+    if not population_only and np.any(banded):
+        normal = _sup_multiplier(mean_cov[np.ix_(banded, banded)], options.band_level, options.seed)
         mean_multiplier = (
-            _bootstrap_t(data, fits, band_centre, supported, normal, options)
+            _bootstrap_t(data, fits, band_centre, banded, normal, options)
             if fits is not None
             else MeanMultiplier(
                 "normal",

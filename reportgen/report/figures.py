@@ -228,7 +228,9 @@ def _mean(r: AnalysisResult) -> Drawn:
         + f", over {drawn}"
         + (
             f". Where fewer than {MIN_SUPPORT} subjects have a reading within the mean's "
-            "bandwidth, or beyond the readings, the curve is drawn faint and without a band. "
+            f"bandwidth (or its variance rests in effect on fewer than {MIN_SUPPORT}: the "
+            "jackknife's effective degrees of freedom), or beyond the readings, the curve is "
+            "drawn faint and without a band. "
             if not np.all(banded)
             else ". "
         )

@@ -12,6 +12,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
+from reportgen import fit_sparse_fpca
 from reportgen.fpca.design import Sample
 from reportgen.fpca.frame import arrays_from_frame
 from reportgen.fpca.meanband import (
@@ -227,7 +228,6 @@ def test_a_fit_takes_the_bootstrap_t_multiplier_and_keeps_the_normal_one(
 ) -> None:
     from scipy import stats
 
-    from reportgen import fit_sparse_fpca
     from reportgen.fpca import fit as fit_module
 
     fit = fit_sparse_fpca(dietox, subject="Pig", time="Time", value="Weight", band="plugin")
@@ -247,3 +247,24 @@ def test_a_fit_takes_the_bootstrap_t_multiplier_and_keeps_the_normal_one(
     assert wide.mean_variance == "sandwich" and wide.mean_multiplier.method == "normal"
     assert "jackknife" in wide.mean_multiplier.reason
     assert wide.mean_simultaneous_multiplier == wide.mean_multiplier.normal
+
+
+def test_no_mean_band_where_its_variance_rests_in_effect_on_few_subjects(
+    dietox: pd.DataFrame,
+) -> None:
+    # Weeks 1-10 of every pig and week 12 of one: past week 11 the local quadratic's
+    # curvature comes from that pig's one reading, so its jackknife variance has a few
+    # effective degrees of freedom though all 72 pigs have readings within the bandwidth.
+    first = dietox.Pig.min()
+    late = dietox[(dietox.Time <= 10) | ((dietox.Time == 12) & (dietox.Pig == first))]
+    fit = fit_sparse_fpca(
+        late, subject="Pig", time="Time", value="Weight", band="plugin", mean_bandwidth=3.0
+    )
+    assert np.all(fit.mean_support >= 10)
+    banded = np.isfinite(fit.mean_se)
+    assert not banded[-1] and banded[0]
+    assert np.all(fit.mean_degrees_of_freedom[banded] >= 10)
+    assert any("in effect on fewer than 10 subjects" in w for w in fit.warnings)
+    # the trajectories keep their band there
+    traj = fit.trajectories([first])
+    assert np.isfinite(traj.lower.to_numpy()[-1]) and np.isfinite(traj.upper.to_numpy()[-1])
