@@ -75,6 +75,7 @@ def calibration(key: str, seeds: int) -> str:
         f"{np.mean(largest <= normal):.2f} | {np.median(multiplier / normal):.3f} |"
     )
 
+
 NOTES = """
 Read: a standard deviation above 1 is a standard error that falls short there (it is the
 t-widened standard error here, so above 1 also means tails heavier than the normal's). The
@@ -93,9 +94,10 @@ the bandwidth chosen most often) the band held the whole mean in 0.96 of seeds w
 true standard deviation and in 0.89 with the estimated standard error, which varied from
 seed to seed by about 11% (at the bandwidth fixed, 300 seeds: about 45-55 degrees of
 freedom mid-domain where the jackknife's formula says 65-75); the largest of 101
-studentized errors is sensitive to that noise. The bootstrap-t counts it from the data. It costs little below 2,000 subjects and about
-1.7 s at 10,000 (benchmarks/MEAN_VARIANCE.md), and its multiplier varies by 3-5% with the
-seed of the resamples (10 seeds on one data set of designs A and E).
+studentized errors is sensitive to that noise. The bootstrap-t counts it from the data.
+It costs little below 2,000 subjects and about 1.6 s at 10,000
+(benchmarks/MEAN_VARIANCE.md), and its multiplier varies by 3-5% with the seed of the
+resamples (10 seeds on one data set of designs A and E).
 
 Before, with the cluster-robust sandwich and the normal quantile, it was A 0.88, B 0.92,
 C 0.92, D 0.93, E 0.82, F 0.83, G 0.93, H 0.91 over these seeds, with the standard
