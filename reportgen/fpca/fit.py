@@ -383,8 +383,8 @@ def _fit(
     # jackknife's effective degrees of freedom count them (one subject's readings that
     # dominate the local fit count as about one). Below, the variance and its bootstrap-t
     # rest on a handful of subjects: a resample without the dominant one moved the centre
-    # by 60 of its own standard errors, and the multiplier to 4x the normal one
-    # (benchmarks/MEAN_BAND.md).
+    # by 58 of its own standard errors, and the multiplier to 4x the normal one
+    # (benchmarks/CHOICES.md).
     few = supported & (mean_df < MIN_SUPPORT)
     banded = supported & ~few
     if np.any(few):
@@ -396,30 +396,18 @@ def _fit(
             f"{MIN_SUPPORT} subjects (the jackknife's effective degrees of freedom; one "
             "subject's readings dominate the local fit); the trajectories keep theirs"
         )
-    mean_multiplier = MeanMultiplier()
-    mean_multiplier_value = np.nan
-    if not population_only and np.any(banded):
-        normal = _sup_multiplier(mean_cov[np.ix_(banded, banded)], options.band_level, options.seed)
-        mean_multiplier = (
-            _bootstrap_t(data, fits, band_centre, banded, normal, options)
-            if fits is not None
-            else MeanMultiplier(
-                "normal",
-                normal,
-                reason=f"above {JACKKNIFE_MAX_SUBJECTS:,} subjects the mean's band has no "
-                "jackknife to resample",
-            )
+    mean_multiplier = (
+        MeanMultiplier()
+        if population_only or not np.any(banded)
+        else _mean_multiplier(data, fits, band_centre, mean_cov, banded, options)
+    )
+    if mean_multiplier.method == "bootstrap-t" and mean_multiplier.undefined:
+        messages.append(
+            f"{mean_multiplier.undefined} of {MEAN_RESAMPLES} resamples of subjects leave the "
+            "mean's local fit or its jackknife undefined somewhere the band is drawn (too few "
+            "readings there in the resample); they count as beyond the band in its "
+            "bootstrap-t multiplier"
         )
-        mean_multiplier_value = (
-            mean_multiplier.value if mean_multiplier.method == "bootstrap-t" else normal
-        )
-        if mean_multiplier.undefined:
-            messages.append(
-                f"{mean_multiplier.undefined} of {MEAN_RESAMPLES} resamples of subjects leave "
-                "the mean's local fit or its jackknife undefined somewhere the band is drawn "
-                "(too few readings there in the resample); they count as beyond the band in "
-                "its bootstrap-t multiplier"
-            )
     if uncorrected:
         messages.append(
             f"the mean's band is not bias-corrected at {uncorrected} of {grid.size} grid times "
@@ -564,7 +552,7 @@ def _fit(
         smoothing_error_variance=sigma2_smooth,
         likelihood=lik,
         truncation_variance=predictor.truncation_variance,
-        mean_simultaneous_multiplier=mean_multiplier_value,
+        mean_simultaneous_multiplier=mean_multiplier.value,
         mean_support=frozen(support),
         diagonal_support=frozen(
             design_conditioning_2d(
@@ -796,21 +784,32 @@ def _check_refined(lik: LikelihoodFit, level: float) -> None:
         )
 
 
-def _bootstrap_t(
+def _mean_multiplier(
     data: Partitioned,
-    fits: LocalFits,
+    fits: LocalFits | None,
     centre: FloatArray,
+    cov: FloatArray,
     banded: np.ndarray,
-    normal: float,
     options: FPCAOptions,
 ) -> MeanMultiplier:
-    """The mean's simultaneous multiplier by the bootstrap-t over resamples of subjects
-    (``meanband.bootstrap_t``), or the normal one when too many resamples leave the fit
-    undefined where the band is drawn."""
+    """The mean's simultaneous multiplier over the times ``banded``: the bootstrap-t one over
+    resamples of subjects (``meanband.bootstrap_t``) when the band's variance is the
+    jackknife's (``fits``), else, or when too many resamples leave the fit undefined where
+    the band is drawn, the normal one (kept beside the bootstrap-t for comparison)."""
+    level = options.band_level
+    normal = _sup_multiplier(cov[np.ix_(banded, banded)], level, options.seed)
+    if fits is None:
+        return MeanMultiplier(
+            "normal",
+            normal,
+            reason=f"above {JACKKNIFE_MAX_SUBJECTS:,} subjects the mean's band has no "
+            "jackknife to resample",
+            value=normal,
+        )
     n = data.n_subjects
     draws = resample_counts(n, MEAN_RESAMPLES, options.seed)
     coef, singular, spread = data.mean_resamples(fits, draws)
-    found = bootstrap_t(centre, banded, coef, singular, spread, n, options.band_level)
+    found = bootstrap_t(centre, banded, coef, singular, spread, n, level)
     if np.isfinite(found.multiplier):
         return MeanMultiplier(
             "bootstrap-t", normal, MEAN_RESAMPLES, found.undefined, value=found.multiplier
@@ -823,6 +822,7 @@ def _bootstrap_t(
         reason=f"{found.undefined} of {MEAN_RESAMPLES} resamples of subjects leave the "
         "mean's local fit or its jackknife undefined where the band is drawn, too many for "
         "a bootstrap-t multiplier",
+        value=normal,
     )
 
 

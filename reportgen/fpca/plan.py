@@ -44,6 +44,7 @@ from .meanband import (
     ResampledMoments,
     ResampledSpread,
     jackknife_sums,
+    local_fits,
     resample_fits,
     resample_moments,
     resample_spread,
@@ -262,6 +263,11 @@ def warm_up() -> None:
     residual_sums(part, folds, np.zeros(5), grid, grid, 1)
     gather(part, np.arange(2), np.zeros(5), grid)
     part_scores(part, np.zeros(5), grid, grid.centers, np.ones((5, 1)), np.ones(1), 1.0)
+    counts, sums = np.ones(5), grid.centers.copy()
+    fits = local_fits(grid.centers, grid, counts, sums, 1.0, "epanechnikov", np.ones(5, bool))
+    draws = np.ones((1, 2), dtype=np.int32)
+    found = resampled_moments(part, draws, fits)
+    resampled_spread(part, draws, fits, found, resample_fits(fits, found)[0])
 
 
 def rows_in_parts(subjects: Sequence[IntArray], chosen: IntArray) -> list[IntArray]:

@@ -87,7 +87,7 @@ class MeanMultiplier:
     resamples: int = 0
     undefined: int = 0
     reason: str = ""
-    value: float = float("nan")  # the bootstrap-t multiplier
+    value: float = float("nan")  # the multiplier used (FPCAFit.mean_simultaneous_multiplier)
 
 
 @dataclass(frozen=True)

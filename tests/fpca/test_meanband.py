@@ -247,6 +247,7 @@ def test_a_fit_takes_the_bootstrap_t_multiplier_and_keeps_the_normal_one(
     assert wide.mean_variance == "sandwich" and wide.mean_multiplier.method == "normal"
     assert "jackknife" in wide.mean_multiplier.reason
     assert wide.mean_simultaneous_multiplier == wide.mean_multiplier.normal
+    assert wide.mean_multiplier.value == wide.mean_multiplier.normal
 
 
 def test_no_mean_band_where_its_variance_rests_in_effect_on_few_subjects(

@@ -425,3 +425,23 @@ def test_the_printed_spec_leaves_out_whole_line_comments() -> None:
 
     raw = "# columns:\n#   id: text  <- subject\nreport:\n  id: x   # folder\n\n  title: T\n"
     assert settings_text(raw) == "report:\n  id: x   # folder\n  title: T"
+
+
+def test_the_mean_caption_names_its_multiplier_and_the_normal_one(base: AnalysisResult) -> None:
+    # The rule (no outside reference): the caption quotes the multiplier that mean.csv's
+    # simultaneous columns use, says how it was found, and gives the normal one beside it.
+    from dataclasses import replace
+
+    from reportgen.analysis.views import mean_multiplier_words
+    from reportgen.fpca.result import MeanMultiplier
+
+    fit = base.fit
+    words = mean_multiplier_words(fit)
+    assert fit.mean_multiplier.method == "bootstrap-t"
+    assert f"multiplier, {fit.mean_simultaneous_multiplier:.2f}, is the bootstrap-t one" in words
+    assert f"over {fit.mean_multiplier.resamples} resamples of subjects" in words
+    assert f"the normal-theory multiplier would be {fit.mean_multiplier.normal:.2f}" in words
+    normal = MeanMultiplier("normal", 2.5, reason="a stated reason", value=2.5)
+    other = replace(fit, mean_multiplier=normal, mean_simultaneous_multiplier=2.5)
+    words = mean_multiplier_words(other)
+    assert "multiplier, 2.50, is the 95% quantile" in words and "(a stated reason)" in words
