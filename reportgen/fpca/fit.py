@@ -393,8 +393,8 @@ def _fit(
         messages.append(
             f"no band is drawn for the mean at {int(np.sum(few))} of {grid.size} grid times "
             f"({_spans(grid, few)}): there its variance rests in effect on fewer than "
-            f"{MIN_SUPPORT} subjects (the jackknife's effective degrees of freedom; one "
-            "subject's readings dominate the local fit); the trajectories keep theirs"
+            f"{MIN_SUPPORT} subjects (the jackknife's effective degrees of freedom: a few "
+            "subjects' readings carry most of it); the trajectories keep theirs"
         )
     mean_multiplier = (
         MeanMultiplier()
