@@ -150,15 +150,23 @@ def local_fits(
     w = _kernel_powers(grid, bins, h, kernel)
     moments = np.stack([wk @ counts for wk in w], axis=1)
     rhs = np.stack([wk @ sums for wk in w[:3]], axis=1)
-    coef = np.zeros((grid.size, 3))
-    for p, rows in ((3, quadratic), (2, ~quadratic)):
-        design = _design(moments[rows], p)
-        ok = np.abs(np.linalg.det(design)) > 0
-        found = np.full((int(rows.sum()), p), np.nan)
-        if np.any(ok):
-            found[ok] = np.linalg.solve(design[ok], rhs[rows][ok, :p, None])[..., 0]
-        coef[rows, :p] = found
+    coef = _solve_local(moments, rhs, quadratic)
     return LocalFits(grid, bins, h, kernel, quadratic, moments, coef)
+
+
+def _solve_local(moments: FloatArray, rhs: FloatArray, quadratic: np.ndarray) -> FloatArray:
+    """The local fits' coefficients (..., n_grid, 3) from their moments (..., n_grid, 5) and
+    sums (..., n_grid, 3): quadratic where ``quadratic`` (n_grid,), else linear (third 0);
+    ``nan`` where the local design is singular."""
+    coef = np.zeros(rhs.shape)
+    for p, cols in ((3, quadratic), (2, ~quadratic)):
+        design = _design(moments[..., cols, :], p)
+        ok = np.abs(np.linalg.det(design)) > 0
+        found = np.full((*design.shape[:-2], p), np.nan)
+        if np.any(ok):
+            found[ok] = np.linalg.solve(design[ok], rhs[..., cols, :p][ok][..., None])[..., 0]
+        coef[..., cols, :p] = found
+    return coef
 
 
 def _design(moments: FloatArray, p: int) -> FloatArray:
@@ -369,21 +377,11 @@ def resample_moments(fits: LocalFits, sample: Sample, draws: np.ndarray) -> Resa
 
 def resample_fits(fits: LocalFits, found: ResampledMoments) -> tuple[FloatArray, np.ndarray]:
     """Each resample's local fit (B, n_grid, 3) at the main fit's bandwidth, quadratic where
-    it is, and where its local design is singular (B, n_grid)."""
-    b, g = found.moments.shape[:2]
-    coef, singular = np.zeros((b, g, 3)), np.zeros((b, g), dtype=bool)
-    for p, cols in ((3, fits.quadratic), (2, ~fits.quadratic)):
-        if not np.any(cols):
-            continue
-        m = found.moments[:, cols]
-        design = _design(m, p)
-        scale = m[..., 0] * m[..., 2] * (m[..., 4] if p == 3 else 1.0)
-        bad = ~(np.linalg.det(design) > _SINGULAR_RTOL * scale)
-        solved = np.zeros((*m.shape[:2], p))
-        solved[~bad] = np.linalg.solve(design[~bad], found.sums[:, cols][~bad][:, :p, None])[..., 0]
-        coef[:, cols, :p] = solved
-        singular[:, cols] = bad
-    return coef, singular
+    it is, as :func:`local_fits` fits the data, and where its local design is singular
+    (B, n_grid; the coefficients 0 there)."""
+    coef = _solve_local(found.moments, found.sums, fits.quadratic)
+    singular = ~np.isfinite(coef[..., 0])
+    return np.where(singular[..., None], 0.0, coef), singular
 
 
 @dataclass(frozen=True)
