@@ -39,9 +39,26 @@ def _binned(t: np.ndarray, y: np.ndarray, codes: np.ndarray, bins: BinGrid):  # 
     return x, share, np.concatenate([y, y]), np.concatenate([codes, codes])
 
 
-def test_each_deviation_is_the_fit_refitted_without_the_subject(dietox: pd.DataFrame) -> None:
+def _wls_and_deviations(  # type: ignore[no-untyped-def]
+    x, share, py, owner, at: float, h: float, quadratic: bool, subjects
+) -> tuple[float, np.ndarray]:
+    """statsmodels WLS's local fit at ``at`` on binned readings (x, share, py, owner), and
+    the fit refitted without each of ``subjects`` minus it."""
     import statsmodels.api as sm
 
+    u = (x - at) / h
+    # Epanechnikov kernel 0.75 (1 - u^2) on |u| < 1 (common practice, no source)
+    w = share * np.where(np.abs(u) < 1, 0.75 * (1 - u * u), 0.0)
+    design = np.column_stack([u**k for k in range(3 if quadratic else 2)])
+    full = sm.WLS(py, design, weights=w).fit().params[0]
+    without = [
+        sm.WLS(py[owner != i], design[owner != i], weights=w[owner != i]).fit().params[0]
+        for i in subjects
+    ]
+    return float(full), np.asarray(without) - full
+
+
+def test_each_deviation_is_the_fit_refitted_without_the_subject(dietox: pd.DataFrame) -> None:
     codes, t, y, _labels = arrays_from_frame(dietox, "Pig", "Time", "Weight")
     sample = Sample.from_arrays(codes, t, y)
     bins = BinGrid(float(t.min()), float(t.max()), 401)
@@ -53,16 +70,10 @@ def test_each_deviation_is_the_fit_refitted_without_the_subject(dietox: pd.DataF
     d, undefined = jackknife_deviations(fits, sample)
     assert d.shape == (72, grid.size) and not undefined.any()
     x, share, py, owner = _binned(t, y, codes, bins)
+    pigs = [0, 17, 71]
     for g in (0, 5, 11, 22):
-        u = (x - grid[g]) / h
-        # Epanechnikov kernel 0.75 (1 - u^2) on |u| < 1 (common practice, no source)
-        w = share * np.where(np.abs(u) < 1, 0.75 * (1 - u * u), 0.0)
-        design = np.column_stack([u**k for k in range(3 if quadratic[g] else 2)])
-        full = sm.WLS(py, design, weights=w).fit().params[0]
-        for i in (0, 17, 71):
-            keep = owner != i
-            without = sm.WLS(py[keep], design[keep], weights=w[keep]).fit().params[0]
-            assert d[i, g] == pytest.approx(without - full, rel=1e-7, abs=1e-9)
+        _, dev = _wls_and_deviations(x, share, py, owner, grid[g], h, quadratic[g], pigs)
+        np.testing.assert_allclose(d[pigs, g], dev, rtol=1e-7, atol=1e-9)
 
 
 def test_a_time_that_rests_on_one_subject_has_no_jackknife(dietox: pd.DataFrame) -> None:
@@ -151,8 +162,6 @@ def test_each_resample_is_refitted_and_jackknifed_as_the_data(dietox: pd.DataFra
     # fits (statsmodels WLS on the copies' binned readings) and its jackknife deviations
     # (statsmodels WLS refitted without one copy, as in the first test) are what the
     # resample's passes must give.
-    import statsmodels.api as sm
-
     codes, t, y, _labels = arrays_from_frame(dietox, "Pig", "Time", "Weight")
     sample = Sample.from_arrays(codes, t, y)
     bins = BinGrid(float(t.min()), float(t.max()), 401)
@@ -173,16 +182,17 @@ def test_each_resample_is_refitted_and_jackknifed_as_the_data(dietox: pd.DataFra
         copy = np.concatenate([np.flatnonzero(owner == i) for i in rows])
         copy_owner = np.repeat(np.arange(rows.size), [np.sum(owner == i) for i in rows])
         for g in (0, 1, 4, 8):
-            u = (x[copy] - grid[g]) / h
-            # Epanechnikov kernel 0.75 (1 - u^2) on |u| < 1 (common practice, no source)
-            w = share[copy] * np.where(np.abs(u) < 1, 0.75 * (1 - u * u), 0.0)
-            design = np.column_stack([u**k for k in range(3 if quadratic[g] else 2)])
-            full = sm.WLS(py[copy], design, weights=w).fit().params[0]
+            full, d = _wls_and_deviations(
+                x[copy],
+                share[copy],
+                py[copy],
+                copy_owner,
+                grid[g],
+                h,
+                quadratic[g],
+                range(rows.size),
+            )
             assert coef[b, g, 0] == pytest.approx(full, rel=1e-9)
-            d = np.empty(rows.size)
-            for i in range(rows.size):
-                keep = copy_owner != i
-                d[i] = sm.WLS(py[copy][keep], design[keep], weights=w[keep]).fit().params[0] - full
             expected = [d.sum(), np.sum(d**2), np.sum(d**4)]
             # sum d is 0 up to rounding (the deviations cancel), hence the absolute tolerance
             np.testing.assert_allclose(spread.sums[b, g], expected, rtol=1e-6, atol=1e-9)
