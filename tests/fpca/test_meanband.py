@@ -58,15 +58,22 @@ def _wls_and_deviations(  # type: ignore[no-untyped-def]
     return float(full), np.asarray(without) - full
 
 
-def test_each_deviation_is_the_fit_refitted_without_the_subject(dietox: pd.DataFrame) -> None:
+def _dietox_fits(dietox: pd.DataFrame, n_grid: int, every: int):  # type: ignore[no-untyped-def]
+    """The pigs as a sample, the local fits of their weights at bandwidth 3 on ``n_grid``
+    times (linear at every ``every``-th time from the second, quadratic elsewhere)."""
     codes, t, y, _labels = arrays_from_frame(dietox, "Pig", "Time", "Weight")
     sample = Sample.from_arrays(codes, t, y)
     bins = BinGrid(float(t.min()), float(t.max()), 401)
-    grid = np.linspace(float(t.min()), float(t.max()), 23)
-    h = 3.0
+    grid = np.linspace(float(t.min()), float(t.max()), n_grid)
     counts, sums = bin_1d(bins, t, y)
-    quadratic = np.arange(grid.size) % 2 == 0  # quadratic fits at even times, linear at odd
-    fits = local_fits(grid, bins, counts[0], sums[0], h, "epanechnikov", quadratic)
+    quadratic = np.arange(grid.size) % every != 1
+    fits = local_fits(grid, bins, counts[0], sums[0], 3.0, "epanechnikov", quadratic)
+    return codes, t, y, sample, bins, grid, 3.0, quadratic, fits
+
+
+def test_each_deviation_is_the_fit_refitted_without_the_subject(dietox: pd.DataFrame) -> None:
+    # quadratic fits at even times, linear at odd
+    codes, t, y, sample, bins, grid, h, quadratic, fits = _dietox_fits(dietox, 23, 2)
     d, undefined = jackknife_deviations(fits, sample)
     assert d.shape == (72, grid.size) and not undefined.any()
     x, share, py, owner = _binned(t, y, codes, bins)
@@ -162,14 +169,7 @@ def test_each_resample_is_refitted_and_jackknifed_as_the_data(dietox: pd.DataFra
     # fits (statsmodels WLS on the copies' binned readings) and its jackknife deviations
     # (statsmodels WLS refitted without one copy, as in the first test) are what the
     # resample's passes must give.
-    codes, t, y, _labels = arrays_from_frame(dietox, "Pig", "Time", "Weight")
-    sample = Sample.from_arrays(codes, t, y)
-    bins = BinGrid(float(t.min()), float(t.max()), 401)
-    grid = np.linspace(float(t.min()), float(t.max()), 9)
-    h = 3.0
-    counts, sums = bin_1d(bins, t, y)
-    quadratic = np.arange(grid.size) % 3 != 1
-    fits = local_fits(grid, bins, counts[0], sums[0], h, "epanechnikov", quadratic)
+    codes, t, y, sample, bins, grid, h, quadratic, fits = _dietox_fits(dietox, 9, 3)
     draws = resample_counts(72, 2, seed=4)
     assert draws.shape == (2, 72) and np.all(draws.sum(axis=1) == 72)
     found = resample_moments(fits, sample, draws)
