@@ -264,20 +264,9 @@ class JackknifeSums:
         )
 
     def degrees_of_freedom(self, group: int = 0) -> FloatArray:
-        """Effective degrees of freedom of the jackknife variance at each grid time,
-        3 (sum_i d_i^2)^2 / sum_i d_i^4 (n_grid,).
-
-        A sum of n independent squares d_i^2 of variances s_i^2 has about the variance of
-        a scaled chi-square with (sum s_i^2)^2 / sum s_i^4 degrees of freedom
-        (Satterthwaite 1946, Biometrics Bulletin 2:110-114); for normal d_i, E d_i^4 =
-        3 s_i^4 gives the estimate above. It is n for n equal contributions and near 1
-        where one subject carries the fit."""
-        second = np.diag(self.cross[group])
-        with np.errstate(divide="ignore", invalid="ignore"):
-            out: FloatArray = np.where(
-                self.fourth[group] > 0, 3.0 * second**2 / self.fourth[group], np.inf
-            )
-        return out
+        """Effective degrees of freedom of the jackknife variance at each grid time
+        (n_grid,), by :func:`effective_degrees_of_freedom`."""
+        return effective_degrees_of_freedom(np.diag(self.cross[group]), self.fourth[group])
 
     def covariance(self, fallback: FloatArray, level: float, group: int = 0) -> FloatArray:
         """The band's covariance of one group's fit over the grid: the jackknife's,
@@ -296,6 +285,21 @@ class JackknifeSums:
         return out
 
 
+def effective_degrees_of_freedom(second: FloatArray, fourth: FloatArray) -> FloatArray:
+    """Effective degrees of freedom of a jackknife variance, 3 (sum_i d_i^2)^2 / sum_i d_i^4,
+    from ``second`` = sum_i d_i^2 and ``fourth`` = sum_i d_i^4 (any shape; inf where
+    ``fourth`` is 0).
+
+    A sum of n independent squares d_i^2 of variances s_i^2 has about the variance of a
+    scaled chi-square with (sum s_i^2)^2 / sum s_i^4 degrees of freedom (Satterthwaite
+    1946, Biometrics Bulletin 2:110-114); for normal d_i, E d_i^4 = 3 s_i^4 gives the
+    estimate above. It is n for n equal contributions and near 1 where one subject carries
+    the fit."""
+    with np.errstate(divide="ignore", invalid="ignore"):
+        out: FloatArray = np.where(fourth > 0, 3.0 * second**2 / fourth, np.inf)
+    return out
+
+
 def small_sample_factor(df: FloatArray, level: float) -> FloatArray:
     """t quantile at ``df`` over the normal quantile, at a two-sided ``level`` (n_grid,):
     the factor that widens a standard error with ``df`` degrees of freedom so that normal
@@ -303,6 +307,11 @@ def small_sample_factor(df: FloatArray, level: float) -> FloatArray:
     q = 0.5 + 0.5 * level
     out: FloatArray = student_t.ppf(q, np.where(np.isfinite(df), df, 1e12)) / ndtri(q)
     return out
+
+
+def _chunks(n: int) -> list[IntArray]:
+    """Consecutive rows 0 .. n - 1 in chunks of ``_CHUNK`` subjects."""
+    return [np.arange(s, min(s + _CHUNK, n), dtype=np.intp) for s in range(0, n, _CHUNK)]
 
 
 def jackknife_sums(sample: Sample, group: IntArray, fits: tuple[LocalFits, ...]) -> JackknifeSums:
@@ -315,9 +324,8 @@ def jackknife_sums(sample: Sample, group: IntArray, fits: tuple[LocalFits, ...])
     for j in range(k):
         members = np.flatnonzero(group == j).astype(np.intp)
         weights = fits[j].weights()
-        for start in range(0, members.size, _CHUNK):
-            chunk = sample.subset(members[start : start + _CHUNK])
-            d, bad = jackknife_deviations(fits[j], chunk, weights)
+        for rows in _chunks(members.size):
+            d, bad = jackknife_deviations(fits[j], sample.subset(members[rows]), weights)
             cross[j] += d.T @ d
             total[j] += d.sum(axis=0)
             fourth[j] += np.sum(d**4, axis=0)
@@ -331,7 +339,7 @@ def jackknife_sums(sample: Sample, group: IntArray, fits: tuple[LocalFits, ...])
 # number at the usual levels (0.9, 0.95, 0.99), so the multiplier is the order statistic
 # whose Monte Carlo level is exact for exchangeable statistics (the rule of Monte Carlo
 # tests; Davison & Hinkley 1997, Bootstrap Methods and their Application, ch. 4-5; from
-# memory). The cost: one pass over the readings per resample (benchmarks/MEAN_BAND.md).
+# memory). The cost: one pass over the readings per resample (benchmarks/MEAN_VARIANCE.md).
 MEAN_RESAMPLES = 199
 
 
@@ -355,10 +363,6 @@ class ResampledMoments:
 
     def __add__(self, other: ResampledMoments) -> ResampledMoments:
         return ResampledMoments(self.moments + other.moments, self.sums + other.sums)
-
-
-def _chunks(n: int) -> list[IntArray]:
-    return [np.arange(s, min(s + _CHUNK, n), dtype=np.intp) for s in range(0, n, _CHUNK)]
 
 
 def resample_moments(fits: LocalFits, sample: Sample, draws: np.ndarray) -> ResampledMoments:
@@ -465,8 +469,8 @@ def bootstrap_t(
     """
     first, second, fourth = spread.sums[..., 0], spread.sums[..., 1], spread.sums[..., 2]
     raw = (n - 1.0) / n * (second - first**2 / n)
+    df = effective_degrees_of_freedom(second, fourth)
     with np.errstate(divide="ignore", invalid="ignore"):
-        df = np.where(fourth > 0, 3.0 * second**2 / fourth, np.inf)
         se = np.sqrt(np.maximum(raw, 0.0)) * small_sample_factor(df, level)
         dev = np.abs(coef[..., 0] - centre)[:, banded] / se[:, banded]
     bad = np.any((singular | spread.undefined)[:, banded] | ~np.isfinite(dev), axis=1)
